@@ -1,0 +1,254 @@
+//! Actions after a verdict: the file goes to its folder, a report goes beside it, the vendor gets a notice,
+//! and the store records the batch as settled.
+//!
+//! Order (see `store` for what is durable when): the verdict is already recorded (state `Decided`) when
+//! [`settle`] runs; [`settle`] then
+//!
+//! 1. puts the bytes in the terminal folder: the in-memory copy the daemon hashed and parsed is written
+//!    as a new daemon-owned file (temp → fsync → rename → fsync folder), then the claimed original is
+//!    unlinked from `processing/`; without a copy (after a restart, or for entries that were never read)
+//!    the entry itself is renamed. Quarantined files are made read-only (`0440`); symbolic links are removed
+//!    (their target is never followed; the report says what it was);
+//! 2. writes `<batch id>.report.json` beside it (quarantine and rejected): hash, vendor, scores, top
+//!    suspects with proposed labels, reasons, timestamps;
+//! 3. writes the vendor notice into `notices/<vendor>/` through [`crate::notice`] (atomic; every notice says
+//!    that a flag is a suspicion pending review, not proof);
+//! 4. records the terminal state with an audit record naming the folder and the notice files (flushed).
+//!
+//! Every step is idempotent, so the daemon redoes [`settle`] for batches it finds `Decided` at startup.
+
+use std::fs;
+use std::io::Write;
+use std::os::unix::fs::PermissionsExt;
+use std::path::{Path, PathBuf};
+
+use chrono::Utc;
+
+use crate::config::{Config, Workspace};
+use crate::metrics::Metrics;
+use crate::notice::{self, BatchRef, Notice, NoticeItem, NoticeReason};
+use crate::store::{AuditRecord, BatchRecord, BatchState, Outcome, PoolChange, Store, StoreError};
+
+/// Errors while filing a batch (daemon-side; never about the input).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ActionError {
+    /// Filesystem error on a daemon folder.
+    #[error("{op} {path}: {source}")]
+    Io {
+        /// What was being done.
+        op: &'static str,
+        /// The path.
+        path: PathBuf,
+        /// The cause.
+        source: std::io::Error,
+    },
+    /// Store error.
+    #[error(transparent)]
+    Store(#[from] StoreError),
+}
+
+fn io_err(op: &'static str, path: &Path) -> impl FnOnce(std::io::Error) -> ActionError {
+    let path = path.to_path_buf();
+    move |source| ActionError::Io { op, path, source }
+}
+
+/// Write `bytes` to `dir/name` atomically with the given mode: temporary file, fsync, rename, fsync dir.
+pub fn write_atomic_mode(dir: &Path, name: &str, bytes: &[u8], mode: u32) -> std::io::Result<PathBuf> {
+    let final_path = dir.join(name);
+    let tmp = dir.join(format!(".{name}.tmp-{}", std::process::id()));
+    // A read-only leftover from an interrupted attempt cannot be opened for writing: remove it first.
+    let _ = fs::remove_file(&tmp);
+    {
+        let mut f = fs::OpenOptions::new()
+            .write(true)
+            .create(true)
+            .truncate(true)
+            .open(&tmp)?;
+        f.write_all(bytes)?;
+        f.set_permissions(fs::Permissions::from_mode(mode))?;
+        f.sync_all()?;
+    }
+    if let Err(e) = fs::rename(&tmp, &final_path) {
+        let _ = fs::remove_file(&tmp);
+        return Err(e);
+    }
+    crate::ingest::sync_dir(dir)?;
+    Ok(final_path)
+}
+
+/// Where a batch's file lives once settled: `<folder>/<file_name>`.
+pub fn settled_path(ws: &Workspace, record: &BatchRecord) -> Option<PathBuf> {
+    record
+        .outcome
+        .map(|o| ws.folder(o.folder()).join(&record.file_name))
+}
+
+/// The report written beside quarantined and rejected files.
+pub fn report_name(record: &BatchRecord) -> String {
+    format!("{}.report.json", record.id)
+}
+
+fn move_file(ws: &Workspace, record: &BatchRecord, outcome: Outcome, bytes: Option<&[u8]>) -> Result<(), ActionError> {
+    let src_dir = ws.processing();
+    let src = src_dir.join(&record.file_name);
+    let dst_dir = ws.folder(outcome.folder());
+    let mode = if outcome == Outcome::Quarantined { 0o440 } else { 0o640 };
+    let meta = fs::symlink_metadata(&src);
+    match meta {
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(()), // already moved
+        Err(e) => return Err(io_err("stat", &src)(e)),
+        Ok(m) if m.file_type().is_symlink() => {
+            // Never keep a link that points anywhere: remove it; the report records that it was one.
+            fs::remove_file(&src).map_err(io_err("remove symlink", &src))?;
+        }
+        Ok(m) if m.file_type().is_file() && bytes.is_some() => {
+            let b = bytes.unwrap_or_default();
+            write_atomic_mode(&dst_dir, &record.file_name, b, mode).map_err(io_err("write", &dst_dir))?;
+            fs::remove_file(&src).map_err(io_err("remove", &src))?;
+        }
+        Ok(m) => {
+            let dst = dst_dir.join(&record.file_name);
+            if fs::symlink_metadata(&dst).is_ok() {
+                // A previous attempt got this far; the destination is complete.
+                if m.is_dir() {
+                    fs::remove_dir_all(&src).map_err(io_err("remove", &src))?;
+                } else {
+                    fs::remove_file(&src).map_err(io_err("remove", &src))?;
+                }
+            } else {
+                fs::rename(&src, &dst).map_err(io_err("move", &src))?;
+                if m.is_file() {
+                    fs::set_permissions(&dst, fs::Permissions::from_mode(mode)).map_err(io_err("chmod", &dst))?;
+                }
+            }
+            crate::ingest::sync_dir(&dst_dir).map_err(io_err("fsync", &dst_dir))?;
+        }
+    }
+    crate::ingest::sync_dir(&src_dir).map_err(io_err("fsync", &src_dir))?;
+    Ok(())
+}
+
+/// The notice for a decided batch, built from its record alone (so it can be rebuilt after a restart).
+pub fn notice_for(record: &BatchRecord) -> Option<Notice> {
+    let outcome = record.outcome?;
+    let batch = BatchRef {
+        batch_id: record.id.clone(),
+        vendor: record.vendor.clone(),
+        file_name: Some(record.original_name.clone()),
+        sha256: record.sha256.clone(),
+        received_at: record.claimed_at,
+        decided_at: record.decided_at.unwrap_or_else(Utc::now),
+    };
+    Some(match outcome {
+        Outcome::Accepted | Outcome::Quarantined => {
+            let items: Vec<NoticeItem> = record
+                .suspects
+                .iter()
+                .filter(|s| s.proposed_label != s.label)
+                .map(|s| NoticeItem {
+                    id: s.id.clone(),
+                    reasons: vec![notice::item_codes::LABEL_SUSPECTED.to_string()],
+                    proposed_label: Some(s.proposed_label.clone()),
+                    suspicion: Some(s.suspicion),
+                })
+                .collect();
+            match &record.decision {
+                Some(d) => Notice::for_decision(
+                    batch,
+                    d,
+                    record.scores.as_ref().map_or(f64::NAN, |s| s.repair_cost),
+                    record.items.unwrap_or(0) as u64,
+                    items,
+                ),
+                None => return None,
+            }
+        }
+        Outcome::Rejected => {
+            let r = record.reject.clone().unwrap_or(crate::store::RejectReason {
+                code: "rejected".into(),
+                detail: "rejected".into(),
+                row: None,
+                column: None,
+            });
+            Notice::malformed(
+                batch,
+                vec![NoticeReason {
+                    code: r.code,
+                    detail: r.detail,
+                    row: r.row.map(|x| x as u64),
+                    column: r.column,
+                }],
+            )
+        }
+        Outcome::Duplicate => Notice::duplicate(batch, record.duplicate_of.as_deref().unwrap_or("unknown")),
+    })
+}
+
+/// File a decided batch (steps 1–4 above). `bytes` is the copy that was hashed and parsed, when the
+/// caller has it. Returns the settled record. Calling it again for a settled batch does nothing.
+pub fn settle(
+    ws: &Workspace,
+    config: &Config,
+    store: &Store,
+    metrics: Option<&Metrics>,
+    record: &BatchRecord,
+    bytes: Option<&[u8]>,
+) -> Result<BatchRecord, ActionError> {
+    if record.state != BatchState::Decided {
+        return Ok(record.clone());
+    }
+    let Some(outcome) = record.outcome else {
+        return Ok(record.clone());
+    };
+    move_file(ws, record, outcome, bytes)?;
+    if outcome != Outcome::Accepted {
+        let dir = ws.folder(outcome.folder());
+        let mut report = serde_json::to_value(record).unwrap_or_default();
+        if let Some(obj) = report.as_object_mut() {
+            obj.insert(
+                "note".into(),
+                serde_json::Value::String(notice::SUSPICION_SENTENCE.to_string()),
+            );
+        }
+        let text = serde_json::to_vec_pretty(&report).unwrap_or_default();
+        let mode = if outcome == Outcome::Quarantined { 0o440 } else { 0o640 };
+        write_atomic_mode(&dir, &report_name(record), &text, mode).map_err(io_err("write report", &dir))?;
+    }
+    let mut written = Vec::new();
+    if let Some(n) = notice_for(record) {
+        let dir = ws.notices(&record.vendor);
+        let paths = notice::write_notice(&dir, &n, &config.notices).map_err(io_err("write notice", &dir))?;
+        for p in &paths {
+            let name = p.file_name().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+            if let Some(m) = metrics {
+                let fmt = if name.ends_with(".json") {
+                    "json"
+                } else if name.ends_with(".md") {
+                    "markdown"
+                } else {
+                    "csv"
+                };
+                m.notice_written(&record.vendor, fmt);
+            }
+            written.push(name);
+        }
+    }
+    let audit = AuditRecord::new("daemon", "filed")
+        .batch(&record.id, &record.vendor)
+        .outcome(outcome.as_str())
+        .detail(serde_json::json!({
+            "folder": outcome.folder(),
+            "file": record.file_name,
+            "notices": written,
+        }));
+    let settled = store.transition(
+        &record.id,
+        &[BatchState::Decided],
+        outcome.settled_state(),
+        PoolChange::None,
+        vec![audit],
+        |r| r.notices = written.clone(),
+    )?;
+    Ok(settled)
+}

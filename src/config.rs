@@ -1,0 +1,531 @@
+//! The workspace configuration: `DIR/labelweir.toml`.
+//!
+//! One documented default file ships as `config/labelweir.toml`; every key appears there with its default
+//! and its unit (units are in the key names: `_ms`, `_secs`, `_bytes`). A test parses the shipped file and
+//! compares it with [`Config::default`], so defaults are written once. Unknown keys are errors
+//! (`deny_unknown_fields` on every section), and [`Config::validate`] checks what serde cannot (ranges, vendor
+//! names, the listen address). `labelweir config check DIR` runs both and exits 78 on failure.
+
+use std::collections::HashSet;
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use crate::model::ModelSettings;
+use crate::notice::NoticeSettings;
+use crate::policy::PolicySettings;
+use crate::review::TrustedSettings;
+
+/// The shipped, documented default configuration file (also the template `labelweir init` writes).
+pub const SHIPPED_CONFIG: &str = include_str!("../config/labelweir.toml");
+
+/// Name of the configuration file inside a workspace.
+pub const CONFIG_FILE: &str = "labelweir.toml";
+
+/// The whole configuration file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
+#[serde(default, deny_unknown_fields)]
+pub struct Config {
+    /// Contracted vendors; each has a drop folder `inbox/<vendor>/`. A vendor's identity is the folder a
+    /// file arrived in, never anything inside the file.
+    pub vendors: Vec<String>,
+    /// Drop-folder watching, claiming and limits.
+    pub ingest: IngestSettings,
+    /// The metrics and health endpoint.
+    pub http: HttpSettings,
+    /// Column names and the feature schema of batches.
+    pub schema: SchemaSettings,
+    /// The embedded store.
+    pub store: StoreSettings,
+    /// The accepted pool's summary upkeep.
+    pub pool: PoolSettings,
+    /// The label-repair engine.
+    pub model: ModelSettings,
+    /// When a batch is quarantined.
+    pub policy: PolicySettings,
+    /// What vendor notices disclose.
+    pub notices: NoticeSettings,
+    /// Trusted-set upkeep.
+    pub trusted: TrustedSettings,
+}
+
+/// Which filesystem watcher feeds the hints (rescans are the truth either way).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum WatcherKind {
+    /// inotify on Linux (local filesystems).
+    Native,
+    /// Periodic polling (NFS, CIFS, FUSE, where inotify sees no remote writes).
+    Poll,
+}
+
+/// The `[ingest]` section.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct IngestSettings {
+    /// A file whose mtime is younger than this is left alone (for tools that cannot write to a temporary
+    /// name and rename). Milliseconds.
+    pub quiet_period_ms: u64,
+    /// Full rescan of every vendor folder at this interval, whatever the watcher says. Seconds.
+    pub rescan_interval_secs: u64,
+    /// Watcher backend.
+    pub watcher: WatcherKind,
+    /// Poll interval when `watcher = "poll"`. Milliseconds.
+    pub poll_interval_ms: u64,
+    /// Largest accepted batch file. Bytes.
+    pub max_file_bytes: u64,
+    /// Most data rows (items) in one batch. Count.
+    pub max_rows: usize,
+    /// Most columns in one batch, id and label included. Count.
+    pub max_columns: usize,
+    /// Longest single field. Bytes.
+    pub max_field_bytes: usize,
+    /// Stop claiming (and report not ready) when free space on the inbox or state filesystem falls below
+    /// this. Bytes.
+    pub min_free_bytes: u64,
+    /// Parsed batches waiting for the scoring worker (the bounded channel between them). Count.
+    pub queue_capacity: usize,
+}
+
+impl Default for IngestSettings {
+    fn default() -> Self {
+        Self {
+            quiet_period_ms: 2000,
+            rescan_interval_secs: 60,
+            watcher: WatcherKind::Native,
+            poll_interval_ms: 2000,
+            max_file_bytes: 64 * 1024 * 1024,
+            max_rows: 200_000,
+            max_columns: 1024,
+            max_field_bytes: 4096,
+            min_free_bytes: 64 * 1024 * 1024,
+            queue_capacity: 4,
+        }
+    }
+}
+
+/// The `[http]` section.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct HttpSettings {
+    /// Serve `/metrics`, `/livez`, `/readyz`.
+    pub enabled: bool,
+    /// Address and port; loopback by default (put a reverse proxy in front to expose it).
+    pub listen: String,
+}
+
+impl Default for HttpSettings {
+    fn default() -> Self {
+        Self {
+            enabled: true,
+            listen: "127.0.0.1:9464".into(),
+        }
+    }
+}
+
+/// The `[schema]` section.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct SchemaSettings {
+    /// Column holding the item id.
+    pub id_column: String,
+    /// Column holding the label (a class name of the trusted set).
+    pub label_column: String,
+    /// Expected feature columns, in order. Empty: the feature columns of the trusted set given to
+    /// `labelweir init` (stored in the workspace). Non-empty: must equal those.
+    pub features: Vec<String>,
+}
+
+impl Default for SchemaSettings {
+    fn default() -> Self {
+        Self {
+            id_column: "id".into(),
+            label_column: "label".into(),
+            features: Vec::new(),
+        }
+    }
+}
+
+/// The `[store]` section (sled).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct StoreSettings {
+    /// sled's page cache. Bytes.
+    pub cache_capacity_bytes: u64,
+    /// sled's background flush, as insurance (every transition is flushed explicitly anyway).
+    /// Milliseconds; 0 turns it off.
+    pub flush_every_ms: u64,
+}
+
+impl Default for StoreSettings {
+    fn default() -> Self {
+        Self {
+            cache_capacity_bytes: 64 * 1024 * 1024,
+            flush_every_ms: 500,
+        }
+    }
+}
+
+/// The `[pool]` section.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct PoolSettings {
+    /// Rebuild the pool summary exactly from the stored pool at this interval, in the background (when the
+    /// pool changed since the last rebuild). Seconds; 0 turns it off.
+    pub exact_refresh_interval_secs: u64,
+    /// Save the in-memory pool summary to the store at this interval (and at shutdown). Seconds.
+    pub summary_save_interval_secs: u64,
+}
+
+impl Default for PoolSettings {
+    fn default() -> Self {
+        Self {
+            exact_refresh_interval_secs: 3600,
+            summary_save_interval_secs: 60,
+        }
+    }
+}
+
+/// A configuration that cannot be used.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ConfigError {
+    /// The file could not be read.
+    #[error("cannot read {path}: {source}")]
+    Io {
+        /// The file.
+        path: PathBuf,
+        /// The cause.
+        source: std::io::Error,
+    },
+    /// TOML syntax, a wrong type, or an unknown key.
+    #[error("{path}: {message}")]
+    Parse {
+        /// The file.
+        path: PathBuf,
+        /// The parser's message (it names the key and line).
+        message: String,
+    },
+    /// A value out of its allowed range.
+    #[error("{key}: {message}")]
+    Invalid {
+        /// The offending key, e.g. `ingest.quiet_period_ms`.
+        key: String,
+        /// What is wrong.
+        message: String,
+    },
+}
+
+fn invalid(key: &str, message: impl Into<String>) -> ConfigError {
+    ConfigError::Invalid {
+        key: key.into(),
+        message: message.into(),
+    }
+}
+
+/// Whether a vendor name is acceptable as a folder name and a metric label value:
+/// 1–64 characters from `a-z 0-9 _ -`, starting with a letter or digit, and not `tmp`.
+pub fn valid_vendor_name(name: &str) -> bool {
+    let b = name.as_bytes();
+    !b.is_empty()
+        && b.len() <= 64
+        && b[0].is_ascii_alphanumeric()
+        && b.iter()
+            .all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || *c == b'_' || *c == b'-')
+        && name != "tmp"
+}
+
+impl Config {
+    /// Parse TOML text without semantic validation (the shipped file has no vendors and parses this way).
+    pub fn parse_str(text: &str, path: &Path) -> Result<Self, ConfigError> {
+        toml::from_str(text).map_err(|e| ConfigError::Parse {
+            path: path.to_path_buf(),
+            message: e.to_string(),
+        })
+    }
+
+    /// Read, parse and validate a configuration file.
+    pub fn from_file(path: &Path) -> Result<Self, ConfigError> {
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Io {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        let config = Self::parse_str(&text, path)?;
+        config.validate()?;
+        Ok(config)
+    }
+
+    /// Read `DIR/labelweir.toml`.
+    pub fn from_workspace(dir: &Path) -> Result<Self, ConfigError> {
+        Self::from_file(&dir.join(CONFIG_FILE))
+    }
+
+    /// Semantic validation.
+    pub fn validate(&self) -> Result<(), ConfigError> {
+        if self.vendors.is_empty() {
+            return Err(invalid("vendors", "list at least one vendor"));
+        }
+        let mut seen = HashSet::new();
+        for v in &self.vendors {
+            if !valid_vendor_name(v) {
+                return Err(invalid(
+                    "vendors",
+                    format!(
+                        "{:?} is not a valid vendor name (1-64 of a-z 0-9 _ -, starting with a letter or digit, not \"tmp\")",
+                        v
+                    ),
+                ));
+            }
+            if !seen.insert(v) {
+                return Err(invalid("vendors", format!("{v:?} is listed twice")));
+            }
+        }
+        let i = &self.ingest;
+        if i.rescan_interval_secs == 0 || i.rescan_interval_secs > 86_400 {
+            return Err(invalid(
+                "ingest.rescan_interval_secs",
+                "must be in 1..=86400",
+            ));
+        }
+        if i.quiet_period_ms > 3_600_000 {
+            return Err(invalid(
+                "ingest.quiet_period_ms",
+                "must be at most 3600000 (one hour)",
+            ));
+        }
+        if i.poll_interval_ms < 10 {
+            return Err(invalid("ingest.poll_interval_ms", "must be at least 10"));
+        }
+        if i.max_file_bytes == 0 || i.max_file_bytes > usize::MAX as u64 {
+            return Err(invalid("ingest.max_file_bytes", "must be > 0"));
+        }
+        if i.max_rows == 0 {
+            return Err(invalid("ingest.max_rows", "must be > 0"));
+        }
+        if i.max_columns < 3 {
+            return Err(invalid(
+                "ingest.max_columns",
+                "must be at least 3 (id, label, one feature)",
+            ));
+        }
+        if i.max_field_bytes == 0 {
+            return Err(invalid("ingest.max_field_bytes", "must be > 0"));
+        }
+        if i.queue_capacity == 0 || i.queue_capacity > 1024 {
+            return Err(invalid("ingest.queue_capacity", "must be in 1..=1024"));
+        }
+        self.listen_addr()?;
+        let s = &self.schema;
+        if s.id_column.is_empty() || s.label_column.is_empty() || s.id_column == s.label_column {
+            return Err(invalid(
+                "schema.id_column / schema.label_column",
+                "must be non-empty and different",
+            ));
+        }
+        let mut names = HashSet::new();
+        for f in &s.features {
+            if f.is_empty() || *f == s.id_column || *f == s.label_column || !names.insert(f) {
+                return Err(invalid(
+                    "schema.features",
+                    format!("{f:?} is empty, repeated, or names the id/label column"),
+                ));
+            }
+        }
+        if self.store.cache_capacity_bytes < 1024 * 1024 {
+            return Err(invalid(
+                "store.cache_capacity_bytes",
+                "must be at least 1048576",
+            ));
+        }
+        if self.pool.summary_save_interval_secs == 0 {
+            return Err(invalid("pool.summary_save_interval_secs", "must be > 0"));
+        }
+        self.model
+            .validate()
+            .map_err(|e| invalid("model", e.to_string()))?;
+        self.policy
+            .validate()
+            .map_err(|e| invalid("policy", e.to_string()))?;
+        Ok(())
+    }
+
+    /// The metrics listen address.
+    pub fn listen_addr(&self) -> Result<SocketAddr, ConfigError> {
+        self.http.listen.parse().map_err(|_| {
+            invalid(
+                "http.listen",
+                format!(
+                    "{:?} is not an address like 127.0.0.1:9464",
+                    self.http.listen
+                ),
+            )
+        })
+    }
+
+    /// Parse limits for the data module, from `[ingest]`.
+    pub fn limits(&self) -> crate::data::Limits {
+        crate::data::Limits {
+            max_bytes: self.ingest.max_file_bytes as usize,
+            max_rows: self.ingest.max_rows,
+            max_columns: self.ingest.max_columns,
+            max_field_bytes: self.ingest.max_field_bytes,
+        }
+    }
+
+    /// Table options for the data module.
+    pub fn table_options(&self) -> crate::data::TableOptions {
+        crate::data::TableOptions {
+            id_column: self.schema.id_column.clone(),
+            label_column: self.schema.label_column.clone(),
+            limits: self.limits(),
+        }
+    }
+}
+
+/// The shipped configuration text with the `vendors = [...]` line set to the given vendors (what
+/// `labelweir init` writes).
+pub fn render_with_vendors(vendors: &[String]) -> String {
+    let list = vendors
+        .iter()
+        .map(|v| format!("{v:?}"))
+        .collect::<Vec<_>>()
+        .join(", ");
+    let mut out = String::with_capacity(SHIPPED_CONFIG.len() + 64);
+    let mut replaced = false;
+    for line in SHIPPED_CONFIG.lines() {
+        if !replaced && line.starts_with("vendors = ") {
+            out.push_str(&format!("vendors = [{list}]\n"));
+            replaced = true;
+        } else {
+            out.push_str(line);
+            out.push('\n');
+        }
+    }
+    out
+}
+
+/// The folders of a workspace (`DIR`): `labelweir.toml`, `inbox/<vendor>/`, the daemon-private
+/// `processing/`, `accepted/`, `quarantine/`, `rejected/`, `notices/<vendor>/`, and the store in `state/`.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Workspace {
+    /// The workspace root.
+    pub root: PathBuf,
+}
+
+impl Workspace {
+    /// Folders the daemon owns, created by `init`.
+    pub const PRIVATE_FOLDERS: [&'static str; 6] =
+        ["processing", "accepted", "quarantine", "rejected", "notices", "state"];
+
+    /// A workspace rooted at `root`.
+    pub fn new(root: impl Into<PathBuf>) -> Self {
+        Self { root: root.into() }
+    }
+
+    /// `DIR/labelweir.toml`.
+    pub fn config_file(&self) -> PathBuf {
+        self.root.join(CONFIG_FILE)
+    }
+
+    /// `DIR/inbox`.
+    pub fn inbox(&self) -> PathBuf {
+        self.root.join("inbox")
+    }
+
+    /// `DIR/inbox/<vendor>`.
+    pub fn vendor_inbox(&self, vendor: &str) -> PathBuf {
+        self.inbox().join(vendor)
+    }
+
+    /// `DIR/processing`.
+    pub fn processing(&self) -> PathBuf {
+        self.root.join("processing")
+    }
+
+    /// `DIR/accepted`, `DIR/quarantine` or `DIR/rejected` (by name, as in `store::Outcome::folder`).
+    pub fn folder(&self, name: &str) -> PathBuf {
+        self.root.join(name)
+    }
+
+    /// `DIR/notices/<vendor>`.
+    pub fn notices(&self, vendor: &str) -> PathBuf {
+        self.root.join("notices").join(vendor)
+    }
+
+    /// `DIR/state` (the sled store).
+    pub fn state(&self) -> PathBuf {
+        self.root.join("state")
+    }
+
+    /// `DIR/admin.sock` (the review commands' channel to a running daemon).
+    pub fn admin_socket(&self) -> PathBuf {
+        self.root.join("admin.sock")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn shipped_file_is_the_defaults() {
+        let parsed = Config::parse_str(SHIPPED_CONFIG, Path::new("config/labelweir.toml")).unwrap();
+        assert_eq!(parsed, Config::default());
+    }
+
+    #[test]
+    fn rendered_file_validates_and_lists_vendors() {
+        let text = render_with_vendors(&["north-sort".into(), "b2".into()]);
+        let c = Config::parse_str(&text, Path::new("x")).unwrap();
+        c.validate().unwrap();
+        assert_eq!(c.vendors, vec!["north-sort".to_string(), "b2".to_string()]);
+    }
+
+    #[test]
+    fn unknown_keys_are_rejected() {
+        let e = Config::parse_str(
+            "vendors = [\"a\"]\n[ingest]\nquiet_period = 3\n",
+            Path::new("x"),
+        )
+        .unwrap_err();
+        assert!(e.to_string().contains("quiet_period"), "{e}");
+    }
+
+    #[test]
+    fn semantic_validation_names_the_key() {
+        let mut c = Config {
+            vendors: vec!["a".into()],
+            ..Config::default()
+        };
+        c.validate().unwrap();
+        c.ingest.rescan_interval_secs = 0;
+        assert!(c
+            .validate()
+            .unwrap_err()
+            .to_string()
+            .contains("rescan_interval_secs"));
+        c.ingest.rescan_interval_secs = 5;
+        c.http.listen = "localhost".into();
+        assert!(c
+            .validate()
+            .unwrap_err()
+            .to_string()
+            .contains("http.listen"));
+        c.http.listen = "127.0.0.1:1".into();
+        c.vendors = vec!["../etc".into()];
+        assert!(c.validate().unwrap_err().to_string().contains("vendors"));
+        c.vendors = vec!["a".into(), "a".into()];
+        assert!(c.validate().is_err());
+    }
+
+    #[test]
+    fn vendor_names() {
+        for ok in ["a", "north-sort", "v_2"] {
+            assert!(valid_vendor_name(ok), "{ok}");
+        }
+        for bad in ["", "A", "-x", "a/b", "..", "tmp", "a b", &"x".repeat(65)] {
+            assert!(!valid_vendor_name(bad), "{bad}");
+        }
+    }
+}

@@ -1,0 +1,504 @@
+//! The drop folder: finding, claiming, reading and parsing vendor files.
+//!
+//! # The delivery contract (for vendors)
+//!
+//! A vendor uploads into its own folder `inbox/<vendor>/` under a **temporary name** — a name starting with
+//! `.`, or ending in `.part`, `.filepart` or `.tmp`, or anywhere under `inbox/<vendor>/tmp/` — and then
+//! renames the file to its final `NAME.csv` or `NAME.jsonl`. Temporary names, the `tmp/` folder and
+//! `*.done` marker files are never touched. For tools that cannot rename, a file is only picked up once
+//! its modification time is older than `ingest.quiet_period_ms`. Everything else found in the folder is
+//! claimed and, if it is not a usable batch, rejected with a written reason.
+//!
+//! # How a file is taken
+//!
+//! 1. **Find.** Filesystem events (notify, non-recursive, symlinks not followed) only mark a vendor
+//!    folder dirty; the folder is then *listed*. A full rescan runs at startup and every
+//!    `ingest.rescan_interval_secs`, so lost or coalesced events lose nothing.
+//! 2. **Claim.** A [`BatchRecord`] in state `Claimed` (vendor, escaped original name, generated file name)
+//!    is flushed to the store, then the entry is renamed with `renameat2(RENAME_NOREPLACE)` into the
+//!    daemon-private `processing/<batch id>.<ext>`; both folders are fsynced. The vendor is the folder the
+//!    file was found in. The original name is kept only as escaped metadata, never used as a path.
+//! 3. **Read.** The claimed entry is opened with `O_NOFOLLOW | O_NONBLOCK | O_CLOEXEC` and checked with
+//!    `fstat` on the open descriptor: a regular file, one link, at most `ingest.max_file_bytes`. Its bytes
+//!    are read (bounded) into memory while hashing (SHA-256); everything after this works on that copy.
+//!    Symlinks are never followed (they are removed and reported), directories, FIFOs and devices are
+//!    never read.
+//! 4. **Parse** with [`crate::data::parse_table`] against the workspace's feature schema and classes.
+//!
+//! Any failure in 2–4 that is about the input becomes a [`RejectReason`]; the daemon never crashes on
+//! input. Nothing here writes to the trusted set, and no path is built from vendor data.
+
+use std::ffi::OsStr;
+use std::fs::File;
+use std::io::Read;
+use std::os::unix::ffi::OsStrExt;
+use std::path::Path;
+use std::time::{Duration, SystemTime};
+
+use rustix::fs::{Mode, OFlags, RenameFlags};
+use sha2::{Digest, Sha256};
+
+use crate::config::{Config, Workspace};
+use crate::data::{self, Classes, Format, Table};
+use crate::store::{BatchRecord, RejectReason, Store, StoreError};
+
+/// Suffixes of temporary upload names (ignored).
+pub const TEMP_SUFFIXES: [&str; 3] = [".part", ".filepart", ".tmp"];
+/// Suffix of optional completion markers (ignored).
+pub const MARKER_SUFFIX: &str = ".done";
+/// Name of the staging sub-folder inside a vendor folder (ignored).
+pub const STAGING_DIR: &str = "tmp";
+
+/// How a directory entry looked when listed (without following links).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum EntryKind {
+    /// A regular file.
+    File,
+    /// A symbolic link (never followed).
+    Symlink,
+    /// A directory.
+    Dir,
+    /// A FIFO, socket or device.
+    Special,
+}
+
+/// A file found in a vendor folder that is ready to be claimed.
+#[derive(Debug, Clone)]
+pub struct Candidate {
+    /// The vendor (the folder it was found in).
+    pub vendor: String,
+    /// Its name in the folder (raw bytes; may be non-UTF-8).
+    pub name: std::ffi::OsString,
+    /// What it looked like.
+    pub kind: EntryKind,
+    /// Its modification time.
+    pub mtime: SystemTime,
+}
+
+/// Result of listing one vendor folder.
+#[derive(Debug, Default)]
+pub struct Scan {
+    /// Entries old enough to claim, oldest first.
+    pub ready: Vec<Candidate>,
+    /// Entries still inside their quiet period.
+    pub waiting: usize,
+    /// When the youngest waiting entry leaves its quiet period.
+    pub next_ready: Option<SystemTime>,
+    /// Entries counted as backlog (ready + waiting).
+    pub backlog: usize,
+    /// Age of the oldest backlog entry.
+    pub oldest_age: Duration,
+}
+
+/// Whether a name is a temporary upload name, a marker, or otherwise never to be touched.
+pub fn is_ignored_name(name: &OsStr, kind: EntryKind) -> bool {
+    let b = name.as_bytes();
+    if b.first() == Some(&b'.') {
+        return true;
+    }
+    if kind == EntryKind::Dir && b == STAGING_DIR.as_bytes() {
+        return true;
+    }
+    let lower = String::from_utf8_lossy(b).to_ascii_lowercase();
+    TEMP_SUFFIXES.iter().any(|s| lower.ends_with(s)) || lower.ends_with(MARKER_SUFFIX)
+}
+
+/// List a vendor folder. `quiet` is the quiet period; entries younger than it wait.
+pub fn scan_vendor(dir: &Path, vendor: &str, quiet: Duration, now: SystemTime) -> std::io::Result<Scan> {
+    let mut scan = Scan::default();
+    for entry in std::fs::read_dir(dir)? {
+        let entry = entry?;
+        let ft = match entry.file_type() {
+            Ok(ft) => ft,
+            Err(_) => continue,
+        };
+        let kind = if ft.is_symlink() {
+            EntryKind::Symlink
+        } else if ft.is_dir() {
+            EntryKind::Dir
+        } else if ft.is_file() {
+            EntryKind::File
+        } else {
+            EntryKind::Special
+        };
+        let name = entry.file_name();
+        if is_ignored_name(&name, kind) {
+            continue;
+        }
+        // lstat: the entry itself, never a link's target.
+        let meta = match std::fs::symlink_metadata(entry.path()) {
+            Ok(m) => m,
+            Err(_) => continue,
+        };
+        let mtime = meta.modified().unwrap_or(now);
+        let age = now.duration_since(mtime).unwrap_or(Duration::ZERO);
+        scan.backlog += 1;
+        scan.oldest_age = scan.oldest_age.max(age);
+        if age < quiet {
+            scan.waiting += 1;
+            let at = mtime + quiet;
+            scan.next_ready = Some(scan.next_ready.map_or(at, |t: SystemTime| t.min(at)));
+        } else {
+            scan.ready.push(Candidate {
+                vendor: vendor.to_string(),
+                name,
+                kind,
+                mtime,
+            });
+        }
+    }
+    scan.ready.sort_by(|a, b| a.mtime.cmp(&b.mtime).then_with(|| a.name.cmp(&b.name)));
+    Ok(scan)
+}
+
+/// A vendor-supplied name made printable: invalid UTF-8 bytes as `\xNN`, control, bidi and other
+/// format characters as `\u{...}`, cut to 255 characters.
+pub fn escape_name(name: &OsStr) -> String {
+    let mut out = String::new();
+    for chunk in name.as_bytes().utf8_chunks() {
+        for c in chunk.valid().chars() {
+            if c.is_control() || is_bidi_or_format(c) || c == '\\' {
+                out.push_str(&c.escape_unicode().to_string());
+            } else {
+                out.push(c);
+            }
+        }
+        for b in chunk.invalid() {
+            out.push_str(&format!("\\x{b:02x}"));
+        }
+    }
+    if out.chars().count() > 255 {
+        out = out.chars().take(255).collect::<String>() + "…";
+    }
+    out
+}
+
+fn is_bidi_or_format(c: char) -> bool {
+    matches!(c, '\u{200b}'..='\u{200f}' | '\u{202a}'..='\u{202e}' | '\u{2066}'..='\u{2069}' | '\u{feff}' | '\u{061c}')
+}
+
+/// Why a name is unsafe, if it is: not UTF-8, control or bidi characters, backslashes (a name that
+/// reads as a path elsewhere), or longer than 200 bytes.
+pub fn unsafe_name(name: &OsStr) -> Option<&'static str> {
+    let Some(s) = name.to_str() else {
+        return Some("the file name is not valid UTF-8");
+    };
+    if s.chars().any(|c| c.is_control() || is_bidi_or_format(c)) {
+        return Some("the file name contains control or bidirectional-override characters");
+    }
+    if s.contains('\\') || s.contains("..") {
+        return Some("the file name contains a backslash or '..' and reads like a path");
+    }
+    if s.len() > 200 {
+        return Some("the file name is longer than 200 bytes");
+    }
+    None
+}
+
+/// The file's format from its name, if the name is one the contract allows.
+pub fn format_of(name: &OsStr) -> Option<Format> {
+    Path::new(name)
+        .extension()
+        .and_then(|e| e.to_str())
+        .and_then(Format::from_extension)
+}
+
+/// A claimed entry.
+#[derive(Debug, Clone)]
+pub struct Claimed {
+    /// Its record (state `Claimed`).
+    pub record: BatchRecord,
+    /// What it looked like when listed.
+    pub kind: EntryKind,
+}
+
+/// Errors that stop claiming (not input problems).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum IngestError {
+    /// Filesystem error on a daemon folder.
+    #[error("{op} {path}: {source}")]
+    Io {
+        /// What was being done.
+        op: &'static str,
+        /// The path (daemon folders only, never vendor names).
+        path: String,
+        /// The cause.
+        source: std::io::Error,
+    },
+    /// Store error.
+    #[error(transparent)]
+    Store(#[from] StoreError),
+}
+
+/// fsync a directory (makes renames inside it durable).
+pub fn sync_dir(dir: &Path) -> std::io::Result<()> {
+    File::open(dir)?.sync_all()
+}
+
+/// Claim a candidate: record it, then rename it into `processing/` without replacing anything.
+/// Returns `None` if the entry vanished before the rename (nothing recorded).
+pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Claimed>, IngestError> {
+    let id = store.new_batch_id()?;
+    let ext = match (c.kind, format_of(&c.name)) {
+        (EntryKind::File, Some(f)) if unsafe_name(&c.name).is_none() => f.extension(),
+        (EntryKind::Dir, _) => "dir",
+        _ => "bin",
+    };
+    let file_name = format!("{id}.{ext}");
+    let mut record = BatchRecord::claimed(id.clone(), &c.vendor, escape_name(&c.name), file_name.clone());
+    record.discovered_at = c.mtime.into();
+    store.record_claim(&record)?;
+    let from = ws.vendor_inbox(&c.vendor);
+    let to = ws.processing();
+    let io = |op, path: &Path| {
+        let path = path.display().to_string();
+        move |source| IngestError::Io { op, path, source }
+    };
+    let from_dir = File::open(&from).map_err(io("open", &from))?;
+    let to_dir = File::open(&to).map_err(io("open", &to))?;
+    match rustix::fs::renameat_with(&from_dir, c.name.as_os_str(), &to_dir, file_name.as_str(), RenameFlags::NOREPLACE) {
+        Ok(()) => {}
+        Err(e) if e == rustix::io::Errno::NOENT => {
+            store.forget_claim(&id)?;
+            return Ok(None);
+        }
+        Err(e) => {
+            store.forget_claim(&id)?;
+            return Err(IngestError::Io {
+                op: "claim (rename into processing/)",
+                path: from.display().to_string(),
+                source: e.into(),
+            });
+        }
+    }
+    to_dir.sync_all().map_err(io("fsync", &to))?;
+    from_dir.sync_all().map_err(io("fsync", &from))?;
+    Ok(Some(Claimed { record, kind: c.kind }))
+}
+
+/// The bytes of a claimed file, read through one descriptor.
+#[derive(Debug)]
+pub struct ReadFile {
+    /// The bytes.
+    pub bytes: Vec<u8>,
+    /// SHA-256, lower-case hex.
+    pub sha256: String,
+}
+
+fn reject(code: &str, detail: impl Into<String>) -> RejectReason {
+    RejectReason {
+        code: code.to_string(),
+        detail: detail.into(),
+        row: None,
+        column: None,
+    }
+}
+
+/// Open `processing/<file_name>` without following links and read it, checking that it is a regular file
+/// with one link and at most `max_bytes` bytes. An input problem is `Err(Ok(reason))`; a daemon-side I/O
+/// error is `Err(Err(..))`.
+pub fn read_claimed(path: &Path, max_bytes: u64) -> Result<ReadFile, Result<RejectReason, std::io::Error>> {
+    let fd = match rustix::fs::open(
+        path,
+        OFlags::RDONLY | OFlags::NOFOLLOW | OFlags::NONBLOCK | OFlags::CLOEXEC | OFlags::NOCTTY,
+        Mode::empty(),
+    ) {
+        Ok(fd) => fd,
+        Err(e) if e == rustix::io::Errno::LOOP => {
+            return Err(Ok(reject("symlink", "the entry is a symbolic link; links are never followed")))
+        }
+        Err(e) if e == rustix::io::Errno::NOENT => return Err(Err(e.into())),
+        Err(e) => {
+            return Err(Ok(reject(
+                "unreadable",
+                format!("the entry could not be opened for reading: {e}"),
+            )))
+        }
+    };
+    let st = rustix::fs::fstat(&fd).map_err(|e| Err(e.into()))?;
+    let ftype = rustix::fs::FileType::from_raw_mode(st.st_mode);
+    match ftype {
+        rustix::fs::FileType::RegularFile => {}
+        rustix::fs::FileType::Directory => {
+            return Err(Ok(reject("not_regular_file", "the entry is a directory; only files are batches")))
+        }
+        rustix::fs::FileType::Symlink => {
+            return Err(Ok(reject("symlink", "the entry is a symbolic link; links are never followed")))
+        }
+        other => {
+            return Err(Ok(reject(
+                "not_regular_file",
+                format!("the entry is not a regular file ({other:?}); it was not read"),
+            )))
+        }
+    }
+    if st.st_nlink != 1 {
+        return Err(Ok(reject(
+            "hard_link",
+            format!(
+                "the file has {} hard links; deliver a file with a single link (another name could still change it)",
+                st.st_nlink
+            ),
+        )));
+    }
+    if st.st_size as u64 > max_bytes {
+        return Err(Ok(reject(
+            "too_large",
+            format!("the file has {} bytes, more than the limit of {max_bytes}", st.st_size),
+        )));
+    }
+    // Blocking reads from here on (a regular file never blocks on O_NONBLOCK anyway).
+    let file = File::from(fd);
+    let mut bytes = Vec::with_capacity(st.st_size.max(0) as usize);
+    let mut hasher = Sha256::new();
+    let mut limited = file.take(max_bytes + 1);
+    let mut buf = [0u8; 64 * 1024];
+    loop {
+        let n = limited.read(&mut buf).map_err(Err)?;
+        if n == 0 {
+            break;
+        }
+        hasher.update(&buf[..n]);
+        bytes.extend_from_slice(&buf[..n]);
+    }
+    if bytes.len() as u64 > max_bytes {
+        return Err(Ok(reject(
+            "too_large",
+            format!("the file grew past the limit of {max_bytes} bytes while being read"),
+        )));
+    }
+    Ok(ReadFile {
+        sha256: hex::encode(hasher.finalize()),
+        bytes,
+    })
+}
+
+/// A parsed batch ready for scoring.
+#[derive(Debug)]
+pub struct Parsed {
+    /// The table.
+    pub table: Table,
+    /// Class index per item.
+    pub labels: Vec<usize>,
+}
+
+/// Why a claimed entry whose generated name has no batch extension was not a batch: an unsafe original
+/// name (its escaped form shows `\\x..` or `\\u{..}` escapes, a backslash or `..`), or an unsupported type.
+pub fn name_problem(escaped_original: &str) -> RejectReason {
+    if escaped_original.contains("\\x")
+        || escaped_original.contains("\\u{")
+        || escaped_original.contains("..")
+        || escaped_original.chars().count() > 200
+    {
+        reject(
+            "unsafe_name",
+            "the file name is not valid UTF-8, contains control, bidirectional-override or path characters, or is too long; rename it",
+        )
+    } else {
+        reject("unsupported_type", "the file name does not end in .csv or .jsonl")
+    }
+}
+
+/// Parse the bytes against the schema and classes.
+pub fn parse_claimed(
+    format: Format,
+    escaped_name: &str,
+    bytes: &[u8],
+    config: &Config,
+    features: &[String],
+    classes: &Classes,
+) -> Result<Parsed, RejectReason> {
+    let opts = config.table_options();
+    let from_data = |e: data::DataError| RejectReason {
+        code: "parse_error".into(),
+        detail: e.to_string(),
+        row: e.row,
+        column: e.column.clone(),
+    };
+    let table = data::parse_table(bytes, format, escaped_name, &opts, Some(features)).map_err(from_data)?;
+    let labels = table.class_indices(classes).map_err(|e| RejectReason {
+        code: "unknown_label".into(),
+        ..from_data(e)
+    })?;
+    Ok(Parsed { table, labels })
+}
+
+/// Read, hash and parse a claimed entry (`processing/<file_name>`) into a job input for the scoring
+/// worker. `None` when the entry is gone (nothing to do; the caller forgets the claim).
+pub fn prepare(
+    ws: &Workspace,
+    config: &Config,
+    features: &[String],
+    classes: &Classes,
+    record: &BatchRecord,
+) -> Option<crate::scoring::JobInput> {
+    use crate::scoring::JobInput;
+    let path = ws.processing().join(&record.file_name);
+    let read = match read_claimed(&path, config.ingest.max_file_bytes) {
+        Ok(r) => r,
+        Err(Ok(reason)) => {
+            return Some(JobInput::Rejected {
+                reason,
+                bytes: None,
+                sha256: None,
+            })
+        }
+        Err(Err(e)) if e.kind() == std::io::ErrorKind::NotFound => return None,
+        Err(Err(e)) => {
+            return Some(JobInput::Rejected {
+                reason: reject("unreadable", format!("the file could not be read: {e}")),
+                bytes: None,
+                sha256: None,
+            })
+        }
+    };
+    let format = format_of(OsStr::new(&record.file_name));
+    let parsed = match format {
+        Some(f) => parse_claimed(f, &record.original_name, &read.bytes, config, features, classes),
+        None => Err(name_problem(&record.original_name)),
+    };
+    Some(match parsed {
+        Ok(p) => JobInput::Parsed {
+            bytes: read.bytes,
+            sha256: read.sha256,
+            table: p.table,
+            labels: p.labels,
+        },
+        Err(reason) => JobInput::Rejected {
+            reason,
+            bytes: Some(read.bytes),
+            sha256: Some(read.sha256),
+        },
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::ffi::OsString;
+    use std::os::unix::ffi::OsStringExt;
+
+    #[test]
+    fn temporary_names_are_ignored() {
+        for n in [".x.csv", "a.csv.part", "a.CSV.PART", "b.filepart", "c.tmp", "d.csv.done"] {
+            assert!(is_ignored_name(OsStr::new(n), EntryKind::File), "{n}");
+        }
+        assert!(is_ignored_name(OsStr::new("tmp"), EntryKind::Dir));
+        assert!(!is_ignored_name(OsStr::new("tmp"), EntryKind::File));
+        assert!(!is_ignored_name(OsStr::new("batch.csv"), EntryKind::File));
+    }
+
+    #[test]
+    fn hostile_names_are_flagged_and_escaped() {
+        let bad = OsString::from_vec(vec![b'a', 0xff, b'.', b'c', b's', b'v']);
+        assert!(unsafe_name(&bad).is_some());
+        assert_eq!(escape_name(&bad), "a\\xff.csv");
+        let ctl = OsStr::new("evil\u{1b}[31m.csv");
+        assert!(unsafe_name(ctl).is_some());
+        assert!(!escape_name(ctl).contains('\u{1b}'));
+        assert!(unsafe_name(OsStr::new("..\\..\\etc\\passwd.csv")).is_some());
+        assert!(unsafe_name(OsStr::new("x\u{202e}vsc.exe")).is_some());
+        assert!(unsafe_name(OsStr::new("week 12 batch.csv")).is_none());
+    }
+}

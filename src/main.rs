@@ -1,0 +1,66 @@
+//! The `labelweir` binary: parses the command line, runs a subcommand, maps errors to exit codes.
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+use labelweir::cli::{self, exit, Failure};
+
+/// labelweir: guards a training pool against poisoned and systematically wrong vendor labels.
+///
+/// A flag is a suspicion for human review, not proof.
+#[derive(Debug, Parser)]
+#[command(name = "labelweir", version, about, long_about = None)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    Assess(cli::assess::Args),
+    Init(cli::init::Args),
+    Run(cli::run::Args),
+    Demo(cli::demo::Args),
+    Config(cli::config_cmd::Args),
+    Quarantine(cli::quarantine::Args),
+    Trusted(cli::trusted::Args),
+    Audit(cli::audit::Args),
+    Bench(cli::bench::Args),
+}
+
+fn main() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(e) => {
+            let code = if e.use_stderr() {
+                exit::INPUT
+            } else {
+                exit::OK
+            };
+            let _ = e.print();
+            return ExitCode::from(code);
+        }
+    };
+    let result = match cli.command {
+        Command::Assess(a) => cli::assess::run(a),
+        Command::Init(a) => cli::init::run(a),
+        Command::Run(a) => cli::run::run(a),
+        Command::Demo(a) => cli::demo::run(a),
+        Command::Config(a) => cli::config_cmd::run(a),
+        Command::Quarantine(a) => cli::quarantine::run(a),
+        Command::Trusted(a) => cli::trusted::run(a),
+        Command::Audit(a) => cli::audit::run(a),
+        Command::Bench(a) => cli::bench::run(a),
+    };
+    match result {
+        Ok(code) => ExitCode::from(code),
+        Err(err) => {
+            let code = err
+                .downcast_ref::<Failure>()
+                .map(|f| f.code)
+                .unwrap_or(exit::INTERNAL);
+            eprintln!("labelweir: {err:#}");
+            ExitCode::from(code)
+        }
+    }
+}

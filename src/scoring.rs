@@ -1,0 +1,636 @@
+//! The scoring worker: the only place where CPU-heavy work runs, on a dedicated `std::thread` fed by a
+//! bounded channel (never on the async runtime's threads).
+//!
+//! The ingest thread sends parsed (or rejected) batches as [`Job`]s; when the channel is full, `send`
+//! blocks and claiming pauses (backpressure). For each job the worker, in order:
+//!
+//! 1. checks the idempotency key (vendor + SHA-256) — a re-delivery is a `duplicate`;
+//! 2. **score**: runs the label-repair engine ([`crate::model::assess`], Zhang, Zhu & Wright, "Training Set
+//!    Debugging Using Trusted Items", AAAI 2018) in incremental mode against the in-memory pool summary and
+//!    the trusted set; a panic or error in the engine is caught and the batch is quarantined with reason
+//!    `score_invalid` (held for a person, never silently accepted);
+//! 3. **decide**: [`crate::policy::decide`] against the vendor's history;
+//! 4. **persist**: one flushed store transaction with the verdict, audit record, idempotency key, new
+//!    history and (accepted) the items in the pool; then the pool summary absorbs the new pool entries;
+//! 5. **notice**: [`crate::actions::settle`] files the batch and writes the vendor notice.
+//!
+//! Between jobs (and every half second when idle) it picks up pool changes made by reviewers
+//! ([`ScoringHandle::pool_changed`]), trusted-set changes ([`ScoringHandle::trusted_changed`]), the result
+//! of a background exact refresh of the pool summary, and saves the summary periodically. On shutdown it
+//! finishes the job in hand, leaves queued jobs in `processing/` (the next start re-processes them), saves
+//! the summary, and returns.
+
+use std::panic::{catch_unwind, AssertUnwindSafe};
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
+use std::sync::mpsc::{Receiver, RecvTimeoutError, SyncSender};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use ndarray::{Array1, Array2};
+
+use crate::config::{Config, Workspace};
+use crate::data::Table;
+use crate::metrics::Metrics;
+use crate::model::{self, Assessment, PoolInput, PoolSummary, TrustedInput};
+use crate::policy::{self, Decision, Reason, ReasonCode, Verdict};
+use crate::store::{
+    AuditRecord, BatchRecord, BatchScores, Outcome, PoolEntry, RejectReason, SavedSummary, Store, StoreError,
+    Suspect, WorkspaceMeta, RECORD_VERSION,
+};
+
+/// Called after every settled batch (the demo prints verdicts through it).
+pub type Observer = Arc<dyn Fn(&BatchRecord) + Send + Sync>;
+
+/// What the ingest thread hands to the worker.
+#[derive(Debug)]
+pub enum JobInput {
+    /// Read and parsed.
+    Parsed {
+        /// The bytes that were hashed and parsed.
+        bytes: Vec<u8>,
+        /// Their SHA-256.
+        sha256: String,
+        /// The table.
+        table: Table,
+        /// Class index per item.
+        labels: Vec<usize>,
+    },
+    /// Not a usable batch.
+    Rejected {
+        /// Why.
+        reason: RejectReason,
+        /// The bytes, if they were read.
+        bytes: Option<Vec<u8>>,
+        /// Their SHA-256, if read.
+        sha256: Option<String>,
+    },
+}
+
+/// One claimed batch on its way to a verdict.
+#[derive(Debug)]
+pub struct Job {
+    /// Its record (state `Claimed`).
+    pub record: BatchRecord,
+    /// What ingest found.
+    pub input: JobInput,
+}
+
+/// Flags and counters shared between the worker and the rest of the daemon.
+#[derive(Debug, Default)]
+pub struct Shared {
+    /// Stop after the job in hand.
+    pub cancel: AtomicBool,
+    /// A reviewer changed the pool.
+    pub pool_changed: AtomicBool,
+    /// A reviewer changed the trusted set.
+    pub trusted_changed: AtomicBool,
+    /// Jobs waiting in the channel.
+    pub queue_depth: AtomicUsize,
+    /// Batches settled since start.
+    pub settled: AtomicU64,
+    /// Items in the pool summary.
+    pub pool_items: AtomicU64,
+}
+
+/// The handle the rest of the daemon (and the admin server) holds.
+#[derive(Clone, Debug)]
+pub struct ScoringHandle {
+    tx: SyncSender<Job>,
+    /// Shared flags.
+    pub shared: Arc<Shared>,
+}
+
+impl ScoringHandle {
+    /// Queue a job, blocking while the channel is full. Gives the job back if the worker has stopped.
+    pub fn submit(&self, job: Job) -> Result<(), Box<Job>> {
+        self.shared.queue_depth.fetch_add(1, Ordering::SeqCst);
+        self.tx.send(job).map_err(|e| {
+            self.shared.queue_depth.fetch_sub(1, Ordering::SeqCst);
+            Box::new(e.0)
+        })
+    }
+
+    /// Tell the worker the pool changed outside it (a release or withdrawal went through
+    /// `Store::transition`); it absorbs new entries, or rebuilds exactly after a removal.
+    pub fn pool_changed(&self) {
+        self.shared.pool_changed.store(true, Ordering::SeqCst);
+    }
+
+    /// Tell the worker the trusted set changed; it reloads it before the next batch.
+    pub fn trusted_changed(&self) {
+        self.shared.trusted_changed.store(true, Ordering::SeqCst);
+    }
+}
+
+/// Errors that stop the worker (store failures; input problems never do).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ScoringError {
+    /// Store error.
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    /// Filing error.
+    #[error(transparent)]
+    Action(#[from] crate::actions::ActionError),
+    /// The engine rejected the workspace's own data (trusted set, pool).
+    #[error("engine: {0}")]
+    Model(String),
+}
+
+/// The trusted set as arrays.
+#[derive(Debug, Clone)]
+pub struct TrustedArrays {
+    /// Item ids.
+    pub ids: Vec<String>,
+    /// Features.
+    pub x: Array2<f64>,
+    /// Class indices.
+    pub y: Vec<usize>,
+    /// Confidence weights.
+    pub w: Array1<f64>,
+}
+
+impl TrustedArrays {
+    /// Load from the store; items with a class outside the workspace's classes are skipped.
+    pub fn load(store: &Store, meta: &WorkspaceMeta) -> Result<Self, StoreError> {
+        let d = meta.features.len();
+        let mut ids = Vec::new();
+        let mut x = Vec::new();
+        let mut y = Vec::new();
+        let mut w = Vec::new();
+        for t in store.trusted_items()? {
+            let Some(k) = meta.classes.iter().position(|c| *c == t.label) else {
+                continue;
+            };
+            if t.features.len() != d {
+                continue;
+            }
+            ids.push(t.id);
+            x.extend_from_slice(&t.features);
+            y.push(k);
+            w.push(if t.weight.is_finite() && t.weight > 0.0 { t.weight } else { 1.0 });
+        }
+        let n = ids.len();
+        Ok(Self {
+            ids,
+            x: Array2::from_shape_vec((n, d), x).unwrap_or_else(|_| Array2::zeros((0, d))),
+            y,
+            w: Array1::from(w),
+        })
+    }
+
+    /// Items per class name.
+    pub fn per_class(&self, classes: &[String]) -> Vec<(String, usize)> {
+        classes
+            .iter()
+            .enumerate()
+            .map(|(k, c)| (c.clone(), self.y.iter().filter(|y| **y == k).count()))
+            .collect()
+    }
+}
+
+/// The in-memory pool summary and what it covers.
+#[derive(Debug, Clone)]
+pub struct PoolState {
+    /// The summary.
+    pub summary: PoolSummary,
+    /// Highest pool sequence absorbed.
+    pub through_seq: u64,
+    /// Pool epoch it belongs to.
+    pub epoch: u64,
+    /// Changed since the last save.
+    pub dirty: bool,
+}
+
+fn model_err(e: impl std::fmt::Display) -> ScoringError {
+    ScoringError::Model(e.to_string())
+}
+
+/// Build the summary exactly from the stored pool.
+pub fn rebuild_pool(store: &Store, meta: &WorkspaceMeta, config: &Config) -> Result<PoolState, ScoringError> {
+    let epoch = store.pool_epoch()?;
+    let (x, y, last) = store.pool_matrix(meta.features.len())?;
+    let k = meta.classes.len();
+    let summary = if y.is_empty() {
+        PoolSummary::empty(meta.feature_map.clone(), k)
+    } else {
+        PoolSummary::fit(&config.model, meta.feature_map.clone(), k, x.view(), &y)
+            .map_err(model_err)?
+            .0
+    };
+    Ok(PoolState {
+        summary,
+        through_seq: last,
+        epoch,
+        dirty: true,
+    })
+}
+
+/// Load the saved summary (or rebuild it when missing or from another pool epoch) and absorb what was
+/// accepted since it was saved.
+pub fn load_pool(store: &Store, meta: &WorkspaceMeta, config: &Config) -> Result<PoolState, ScoringError> {
+    let epoch = store.pool_epoch()?;
+    let mut state = match store.saved_summary()? {
+        Some(s) if s.epoch == epoch && s.summary.feature_map == meta.feature_map => PoolState {
+            summary: s.summary,
+            through_seq: s.through_seq,
+            epoch,
+            dirty: false,
+        },
+        _ => rebuild_pool(store, meta, config)?,
+    };
+    catch_up(&mut state, store, meta, config)?;
+    Ok(state)
+}
+
+/// Absorb pool entries past the watermark; rebuild exactly if items left the pool.
+pub fn catch_up(state: &mut PoolState, store: &Store, meta: &WorkspaceMeta, config: &Config) -> Result<(), ScoringError> {
+    if store.pool_epoch()? != state.epoch {
+        *state = rebuild_pool(store, meta, config)?;
+    }
+    for (seq, e) in store.pool_entries_after(state.through_seq)? {
+        if !e.labels.is_empty() {
+            state
+                .summary
+                .absorb(&config.model, e.features().view(), &e.labels)
+                .map_err(model_err)?;
+        }
+        state.through_seq = seq;
+        state.dirty = true;
+    }
+    Ok(())
+}
+
+/// Save the summary with its watermark.
+pub fn save_pool(state: &mut PoolState, store: &Store) -> Result<(), StoreError> {
+    store.save_summary(&SavedSummary {
+        version: RECORD_VERSION,
+        epoch: state.epoch,
+        through_seq: state.through_seq,
+        summary: state.summary.clone(),
+    })?;
+    state.dirty = false;
+    Ok(())
+}
+
+/// Everything the worker needs.
+pub struct Worker {
+    /// Workspace folders.
+    pub ws: Workspace,
+    /// Configuration.
+    pub config: Arc<Config>,
+    /// The store.
+    pub store: Store,
+    /// What init fixed.
+    pub meta: WorkspaceMeta,
+    /// Metrics.
+    pub metrics: Arc<Metrics>,
+    /// Verdict observer.
+    pub observer: Option<Observer>,
+    /// Trusted set.
+    pub trusted: TrustedArrays,
+    /// Pool summary.
+    pub pool: PoolState,
+    /// Shared flags.
+    pub shared: Arc<Shared>,
+}
+
+/// Start the worker thread. Returns its handle and the thread (which returns the final pool state).
+pub fn spawn(mut worker: Worker) -> std::io::Result<(ScoringHandle, std::thread::JoinHandle<Result<(), ScoringError>>)> {
+    let cap = worker.config.ingest.queue_capacity;
+    let (tx, rx) = std::sync::mpsc::sync_channel::<Job>(cap);
+    let handle = ScoringHandle {
+        tx,
+        shared: worker.shared.clone(),
+    };
+    let thread = std::thread::Builder::new()
+        .name("labelweir-scoring".into())
+        .spawn(move || worker.run(rx))?;
+    Ok((handle, thread))
+}
+
+type Refreshed = Arc<Mutex<Option<Result<PoolState, String>>>>;
+
+impl Worker {
+    fn run(&mut self, rx: Receiver<Job>) -> Result<(), ScoringError> {
+        let mut last_save = Instant::now();
+        let mut last_refresh = Instant::now();
+        let refreshed: Refreshed = Arc::new(Mutex::new(None));
+        let mut refreshing = false;
+        self.publish_pool();
+        let result = loop {
+            if self.shared.cancel.load(Ordering::SeqCst) {
+                break Ok(());
+            }
+            match rx.recv_timeout(Duration::from_millis(500)) {
+                Ok(job) => {
+                    let depth = self.shared.queue_depth.fetch_sub(1, Ordering::SeqCst).saturating_sub(1);
+                    self.metrics.queue_depth(depth);
+                    if self.shared.cancel.load(Ordering::SeqCst) {
+                        // Abandon at a safe point: the file stays in processing/ and is redone at start.
+                        break Ok(());
+                    }
+                    if let Err(e) = self.process(job) {
+                        break Err(e);
+                    }
+                }
+                Err(RecvTimeoutError::Timeout) => {}
+                Err(RecvTimeoutError::Disconnected) => break Ok(()),
+            }
+            if let Err(e) = self.housekeeping(&mut last_save, &mut last_refresh, &refreshed, &mut refreshing) {
+                break Err(e);
+            }
+        };
+        if self.pool.dirty {
+            if let Err(e) = save_pool(&mut self.pool, &self.store) {
+                tracing::error!(error = %e, "saving the pool summary at shutdown failed");
+            }
+        }
+        result
+    }
+
+    fn publish_pool(&self) {
+        let n = self.pool.summary.len();
+        self.shared.pool_items.store(n, Ordering::SeqCst);
+        self.metrics.pool_items(n);
+        self.metrics.trusted(&self.trusted.per_class(&self.meta.classes));
+    }
+
+    fn housekeeping(
+        &mut self,
+        last_save: &mut Instant,
+        last_refresh: &mut Instant,
+        refreshed: &Refreshed,
+        refreshing: &mut bool,
+    ) -> Result<(), ScoringError> {
+        if self.shared.trusted_changed.swap(false, Ordering::SeqCst) {
+            self.trusted = TrustedArrays::load(&self.store, &self.meta)?;
+            self.publish_pool();
+        }
+        if self.shared.pool_changed.swap(false, Ordering::SeqCst) {
+            self.catch_up_logged();
+        }
+        let done = refreshed.lock().ok().and_then(|mut g| g.take());
+        if let Some(r) = done {
+            *refreshing = false;
+            match r {
+                Ok(fresh) if fresh.epoch == self.pool.epoch && fresh.through_seq <= self.pool.through_seq => {
+                    tracing::info!(items = fresh.summary.len(), "exact pool summary refresh done");
+                    self.pool = fresh;
+                    self.catch_up_logged();
+                }
+                Ok(_) => {} // the pool changed underneath; the next refresh will do
+                Err(e) => {
+                    tracing::warn!(error = %e, "exact pool summary refresh failed");
+                    self.metrics.error("persist", "pool_refresh");
+                }
+            }
+        }
+        let every = self.config.pool.exact_refresh_interval_secs;
+        if every > 0
+            && !*refreshing
+            && last_refresh.elapsed() >= Duration::from_secs(every)
+            && self.pool.summary.exact_at_n != self.pool.summary.len()
+        {
+            *last_refresh = Instant::now();
+            *refreshing = true;
+            let (store, meta, config, slot) =
+                (self.store.clone(), self.meta.clone(), self.config.clone(), refreshed.clone());
+            let spawned = std::thread::Builder::new()
+                .name("labelweir-refresh".into())
+                .spawn(move || {
+                    let r = catch_unwind(AssertUnwindSafe(|| rebuild_pool(&store, &meta, &config)))
+                        .map_err(|_| "the engine panicked".to_string())
+                        .and_then(|r| r.map_err(|e| e.to_string()));
+                    if let Ok(mut g) = slot.lock() {
+                        *g = Some(r);
+                    }
+                });
+            if spawned.is_err() {
+                *refreshing = false;
+            }
+        }
+        if self.pool.dirty && last_save.elapsed() >= Duration::from_secs(self.config.pool.summary_save_interval_secs) {
+            *last_save = Instant::now();
+            save_pool(&mut self.pool, &self.store)?;
+        }
+        Ok(())
+    }
+
+    fn catch_up_logged(&mut self) {
+        let r = catch_unwind(AssertUnwindSafe(|| {
+            catch_up(&mut self.pool, &self.store, &self.meta, &self.config)
+        }));
+        match r {
+            Ok(Ok(())) => {}
+            Ok(Err(e)) => {
+                tracing::error!(error = %e, "pool summary update failed; it will be rebuilt exactly");
+                self.metrics.error("persist", "pool_update");
+                self.pool.epoch = u64::MAX; // forces an exact rebuild at the next catch-up
+            }
+            Err(_) => {
+                tracing::error!("the engine panicked while updating the pool summary");
+                self.metrics.error("persist", "pool_update_panic");
+                self.pool.epoch = u64::MAX;
+            }
+        }
+        self.publish_pool();
+    }
+
+    fn process(&mut self, job: Job) -> Result<(), ScoringError> {
+        let Job { mut record, input } = job;
+        let settled = match input {
+            JobInput::Rejected { reason, bytes, sha256 } => {
+                let t = Instant::now();
+                record.outcome = Some(Outcome::Rejected);
+                record.bytes = bytes.as_ref().map(|b| b.len() as u64);
+                record.sha256 = sha256;
+                let audit = AuditRecord::new("daemon", "verdict")
+                    .batch(&record.id, &record.vendor)
+                    .outcome(Outcome::Rejected.as_str())
+                    .reason(reason.code.clone())
+                    .detail(serde_json::json!({ "detail": reason.detail, "row": reason.row, "column": reason.column, "original_name": record.original_name }));
+                record.reject = Some(reason);
+                let rec = self.store.record_verdict(&record, audit, false, None, None, None)?;
+                self.metrics.stage("persist", t.elapsed());
+                self.file(rec, bytes.as_deref())?
+            }
+            JobInput::Parsed { bytes, sha256, table, labels } => {
+                record.sha256 = Some(sha256.clone());
+                record.bytes = Some(bytes.len() as u64);
+                record.items = Some(table.len());
+                if let Some(first) = self.store.batch_by_hash(&record.vendor, &sha256)? {
+                    let t = Instant::now();
+                    record.outcome = Some(Outcome::Duplicate);
+                    record.duplicate_of = Some(first.clone());
+                    let audit = AuditRecord::new("daemon", "verdict")
+                        .batch(&record.id, &record.vendor)
+                        .outcome(Outcome::Duplicate.as_str())
+                        .reason("duplicate")
+                        .detail(serde_json::json!({ "duplicate_of": first, "sha256": sha256 }));
+                    let rec = self.store.record_verdict(&record, audit, false, None, None, None)?;
+                    self.metrics.stage("persist", t.elapsed());
+                    self.file(rec, Some(&bytes))?
+                } else {
+                    self.score_and_decide(record, bytes, table, labels)?
+                }
+            }
+        };
+        let outcome = settled.outcome.map_or("rejected", |o| o.as_str());
+        let items = settled.items.unwrap_or(0) as u64;
+        self.metrics.batch_outcome(
+            &settled.vendor,
+            outcome,
+            items,
+            settled.bytes.unwrap_or(0),
+            chrono::Utc::now().timestamp_millis() as f64 / 1000.0,
+        );
+        self.shared.settled.fetch_add(1, Ordering::SeqCst);
+        tracing::info!(
+            batch_id = %settled.id,
+            vendor = %settled.vendor,
+            sha256 = settled.sha256.as_deref().unwrap_or(""),
+            outcome,
+            stage = "notice",
+            "batch settled"
+        );
+        if let Some(obs) = &self.observer {
+            obs(&settled);
+        }
+        Ok(())
+    }
+
+    fn file(&mut self, rec: BatchRecord, bytes: Option<&[u8]>) -> Result<BatchRecord, ScoringError> {
+        let t = Instant::now();
+        let settled = crate::actions::settle(&self.ws, &self.config, &self.store, Some(&self.metrics), &rec, bytes)?;
+        self.metrics.stage("notice", t.elapsed());
+        Ok(settled)
+    }
+
+    fn score_and_decide(
+        &mut self,
+        mut record: BatchRecord,
+        bytes: Vec<u8>,
+        table: Table,
+        labels: Vec<usize>,
+    ) -> Result<BatchRecord, ScoringError> {
+        let k = self.meta.classes.len();
+        let t_score = Instant::now();
+        let assessed = catch_unwind(AssertUnwindSafe(|| {
+            model::assess(
+                &self.config.model,
+                &self.meta.feature_map.standardizer,
+                k,
+                TrustedInput {
+                    x: self.trusted.x.view(),
+                    y: &self.trusted.y,
+                    weight: self.trusted.w.view(),
+                },
+                PoolInput::Summary(&self.pool.summary),
+                table.features.view(),
+                &labels,
+            )
+        }));
+        let score_seconds = t_score.elapsed().as_secs_f64();
+        self.metrics.stage("score", t_score.elapsed());
+        let assessment: Result<Assessment, String> = match assessed {
+            Ok(Ok(a)) => Ok(a),
+            Ok(Err(e)) => Err(format!("the engine could not score the batch: {e}")),
+            Err(_) => Err("the engine failed (internal error) while scoring the batch".to_string()),
+        };
+        let t_decide = Instant::now();
+        let mut history = self.store.vendor_history(&record.vendor)?;
+        let decision: Decision = match &assessment {
+            Ok(a) => policy::decide(&self.config.policy, &history, a.repair_cost, a.damage),
+            Err(msg) => {
+                self.metrics.error("score", "engine");
+                tracing::error!(batch_id = %record.id, vendor = %record.vendor, error = %msg, "scoring failed; quarantining");
+                let mut d = policy::decide(&self.config.policy, &history, f64::NAN, f64::NAN);
+                d.verdict = Verdict::Quarantine;
+                d.reasons = vec![Reason {
+                    code: ReasonCode::ScoreInvalid,
+                    detail: msg.clone(),
+                }];
+                d
+            }
+        };
+        let accept = decision.verdict == Verdict::Accept;
+        self.metrics.stage("decide", t_decide.elapsed());
+
+        let t_persist = Instant::now();
+        let names = &self.meta.classes;
+        let class = |k: usize| names.get(k).cloned().unwrap_or_else(|| k.to_string());
+        if let Ok(a) = &assessment {
+            let flagged = a.items.iter().filter(|s| s.proposed_label != s.label).count();
+            record.scores = Some(BatchScores {
+                repair_cost: a.repair_cost,
+                damage: a.damage,
+                target_reached: a.target_reached,
+                converged: a.convergence.inner_converged && a.convergence.linear_converged,
+                score_seconds,
+                flagged_items: flagged,
+            });
+            let ranked = a.ranked();
+            let keep = flagged.max(20).min(1000);
+            record.suspects = ranked
+                .iter()
+                .take(keep)
+                .map(|s| Suspect {
+                    id: table.ids.get(s.index).cloned().unwrap_or_default(),
+                    label: class(s.label),
+                    proposed_label: class(s.proposed_label),
+                    suspicion: s.suspicion,
+                    confidence: s.confidence,
+                })
+                .collect();
+            record.broken_trusted = a
+                .broken_trusted
+                .iter()
+                .filter_map(|b| self.trusted.ids.get(b.index).cloned())
+                .collect();
+            self.metrics
+                .batch_scored(&record.vendor, a.repair_cost, Some(decision.baseline.median));
+        }
+        record.outcome = Some(if accept { Outcome::Accepted } else { Outcome::Quarantined });
+        record.decision = Some(decision.clone());
+        let codes: Vec<&str> = decision.reasons.iter().map(|r| r.code.as_str()).collect();
+        let audit = AuditRecord::new("daemon", "verdict")
+            .batch(&record.id, &record.vendor)
+            .outcome(if accept { "accepted" } else { "quarantined" })
+            .reason(codes.join(","))
+            .detail(serde_json::json!({
+                "sha256": record.sha256,
+                "items": record.items,
+                "repair_cost": record.scores.as_ref().map(|s| s.repair_cost),
+                "damage": record.scores.as_ref().map(|s| s.damage),
+                "baseline_median": decision.baseline.median,
+                "reasons": decision.reasons,
+            }));
+        let pool = accept.then(|| PoolEntry {
+            batch_id: record.id.clone(),
+            vendor: record.vendor.clone(),
+            ids: table.ids.clone(),
+            labels: labels.clone(),
+            x: table.features.iter().copied().collect(),
+            n_features: table.features.ncols(),
+        });
+        if accept {
+            if let Ok(a) = &assessment {
+                history.record_accepted(&self.config.policy, a.repair_cost);
+            }
+        }
+        let rec = self.store.record_verdict(
+            &record,
+            audit,
+            true,
+            accept.then_some(&history),
+            if accept { None } else { assessment.as_ref().ok() },
+            pool,
+        )?;
+        if accept {
+            self.catch_up_logged();
+        }
+        self.metrics.stage("persist", t_persist.elapsed());
+        self.file(rec, Some(&bytes))
+    }
+}

@@ -1,0 +1,1337 @@
+//! The embedded store: batch states, the audit trail, the trusted set, the accepted pool, vendor history.
+//!
+//! One sled database (`DIR/state/`, pinned `sled = "=0.34.7"`) per process. sled takes a file lock, so
+//! while the daemon runs, review commands reach the store through the daemon's admin socket; when the daemon
+//! is stopped they open it directly with [`Store::open`] (which fails with [`StoreError::Locked`] if another
+//! process holds it).
+//!
+//! # What is durable when
+//!
+//! * Every method that changes state runs **one multi-tree transaction and flushes it** (sled
+//!   `TransactionalTree::flush`, an fsync of sled's log) before it returns `Ok`. Callers perform the side
+//!   effect a transition enables (renaming a file, writing a notice) only after that `Ok`. No I/O happens
+//!   inside transaction closures (they may be retried).
+//! * A batch is recorded as [`BatchState::Claimed`] *before* its file is renamed into `processing/`, so
+//!   the vendor and original name survive a crash; at startup the daemon reconciles every non-terminal
+//!   record with the folders (see `daemon::reconcile`).
+//! * The verdict is recorded ([`BatchState::Decided`]) in the same transaction as everything it implies:
+//!   the audit record, the idempotency key (`by_hash`), the vendor's history, and the accepted items in
+//!   the pool. Moving the file and writing the notice come after; the terminal state
+//!   ([`BatchState::Accepted`] and friends) is recorded once both are done. Redoing them after a crash is
+//!   idempotent, and the verdict's audit record is written exactly once.
+//! * The pool tree is the truth about the accepted pool. The pool *summary* is a cache saved every
+//!   `pool.summary_save_interval_secs` and at shutdown with a watermark (the last pool sequence number it
+//!   covers) and the pool epoch (bumped whenever items leave the pool); on restart the daemon absorbs the
+//!   entries past the watermark, or rebuilds the summary exactly when the epoch changed.
+//! * sled's background flush (`store.flush_every_ms`) stays on as insurance.
+//!
+//! # Trees
+//!
+//! `batches` (batch id → [`BatchRecord`]), `by_hash` (`vendor \0 sha256` → batch id), `audit`
+//! (big-endian `generate_id` → [`AuditRecord`], append-only), `trusted` (item id → [`TrustedItem`]),
+//! `pool` (big-endian sequence → [`PoolEntry`], binary), `pool_index` (batch id → sequence), `assessments`
+//! (batch id → the engine's full report, kept for quarantined batches), `vendor_history` (vendor →
+//! `policy::VendorHistory`), `summary` (the saved pool summary), `meta` (schema version, the workspace's
+//! classes, feature schema and feature map, the pool epoch). Every value carries a version number.
+
+use std::path::{Path, PathBuf};
+
+use chrono::{DateTime, Utc};
+use serde::de::DeserializeOwned;
+use serde::{Deserialize, Serialize};
+use sled::transaction::{ConflictableTransactionError, TransactionError, TransactionalTree};
+use sled::Transactional;
+
+use crate::config::StoreSettings;
+use crate::model::{Assessment, FeatureMap, PoolSummary};
+use crate::policy::{Decision, VendorHistory};
+
+/// Version of the store layout; a store with another version is refused.
+pub const SCHEMA_VERSION: u32 = 1;
+/// Version written into every record type defined here.
+pub const RECORD_VERSION: u32 = 1;
+
+/// Errors from the store.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum StoreError {
+    /// sled reported an I/O or corruption error.
+    #[error("store error during {op}: {source}")]
+    Sled {
+        /// What was being done.
+        op: &'static str,
+        /// The cause.
+        source: sled::Error,
+    },
+    /// Another process (usually the running daemon) holds the store.
+    #[error("the store at {0} is in use by another process (is the daemon running? use its admin socket)")]
+    Locked(PathBuf),
+    /// The workspace has not been initialised, or the store's layout is from another version.
+    #[error("store at {path}: {message}")]
+    Layout {
+        /// Store folder.
+        path: PathBuf,
+        /// What is wrong.
+        message: String,
+    },
+    /// A stored value could not be decoded.
+    #[error("corrupt {what} record {key}: {message}")]
+    Corrupt {
+        /// Which tree.
+        what: &'static str,
+        /// The key, printable.
+        key: String,
+        /// The decoder's message.
+        message: String,
+    },
+    /// A batch is not in a state that allows the transition (e.g. a second reviewer's decision).
+    #[error("batch {batch} is {found}, expected one of: {expected}")]
+    Conflict {
+        /// The batch.
+        batch: String,
+        /// Its current state.
+        found: String,
+        /// States that would have allowed the transition.
+        expected: String,
+    },
+    /// No such record.
+    #[error("no {what} {key}")]
+    NotFound {
+        /// Which kind of record.
+        what: &'static str,
+        /// The key.
+        key: String,
+    },
+    /// A value could not be encoded.
+    #[error("cannot encode {what}: {message}")]
+    Encode {
+        /// Which kind of record.
+        what: &'static str,
+        /// The encoder's message.
+        message: String,
+    },
+}
+
+impl StoreError {
+    fn sled(op: &'static str) -> impl FnOnce(sled::Error) -> StoreError {
+        move |source| StoreError::Sled { op, source }
+    }
+}
+
+/// A batch's place in its life cycle. Daemon verdicts end in `Accepted`, `Quarantined`, `Rejected` or
+/// `Duplicate`; review decisions move quarantined batches on.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum BatchState {
+    /// Recorded before the rename into `processing/`; no verdict yet.
+    Claimed,
+    /// The verdict ([`BatchRecord::outcome`]) is recorded; moving the file and writing the notice are
+    /// pending (redone after a crash).
+    Decided,
+    /// In `accepted/`; its items are in the pool.
+    Accepted,
+    /// In `quarantine/`, waiting for a security reviewer.
+    Quarantined,
+    /// In `rejected/` (malformed or unsafe input); the reason is in [`BatchRecord::reject`].
+    Rejected,
+    /// In `rejected/`: the same vendor already delivered the same bytes ([`BatchRecord::duplicate_of`]).
+    Duplicate,
+    /// Released from quarantine by a reviewer; its (possibly edited) items are in the pool.
+    Released,
+    /// Rejected by a reviewer after quarantine.
+    ReviewRejected,
+    /// Pulled back out of the pool after acceptance or release.
+    Withdrawn,
+    /// The claimed file disappeared from `processing/` before a verdict (an operator removed it).
+    Vanished,
+}
+
+impl BatchState {
+    /// Stable snake_case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Self::Claimed => "claimed",
+            Self::Decided => "decided",
+            Self::Accepted => "accepted",
+            Self::Quarantined => "quarantined",
+            Self::Rejected => "rejected",
+            Self::Duplicate => "duplicate",
+            Self::Released => "released",
+            Self::ReviewRejected => "review_rejected",
+            Self::Withdrawn => "withdrawn",
+            Self::Vanished => "vanished",
+        }
+    }
+
+    /// Whether the daemon has nothing left to do for a batch in this state.
+    pub fn is_settled(self) -> bool {
+        !matches!(self, Self::Claimed | Self::Decided)
+    }
+}
+
+impl std::fmt::Display for BatchState {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// The daemon's verdict on a batch.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Outcome {
+    /// Into the pool; file to `accepted/`.
+    Accepted,
+    /// Held for review; file to `quarantine/`.
+    Quarantined,
+    /// Malformed or unsafe; file to `rejected/`.
+    Rejected,
+    /// Same vendor, same bytes as an earlier batch; file to `rejected/`.
+    Duplicate,
+}
+
+impl Outcome {
+    /// Stable snake_case name (also the metrics label value).
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Self::Accepted => "accepted",
+            Self::Quarantined => "quarantined",
+            Self::Rejected => "rejected",
+            Self::Duplicate => "duplicate",
+        }
+    }
+
+    /// The terminal state a batch with this verdict reaches once filed.
+    pub fn settled_state(self) -> BatchState {
+        match self {
+            Self::Accepted => BatchState::Accepted,
+            Self::Quarantined => BatchState::Quarantined,
+            Self::Rejected => BatchState::Rejected,
+            Self::Duplicate => BatchState::Duplicate,
+        }
+    }
+
+    /// The workspace folder the file ends in.
+    pub fn folder(self) -> &'static str {
+        match self {
+            Self::Accepted => "accepted",
+            Self::Quarantined => "quarantine",
+            Self::Rejected | Self::Duplicate => "rejected",
+        }
+    }
+}
+
+/// Why a file was rejected without scoring.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RejectReason {
+    /// Stable snake_case code (e.g. `not_regular_file`, `too_large`, `parse_error`, `unsafe_name`).
+    pub code: String,
+    /// Human-readable explanation (names file, row and column for parse errors).
+    pub detail: String,
+    /// 1-based data row, for parse errors.
+    pub row: Option<usize>,
+    /// Column name, for parse errors.
+    pub column: Option<String>,
+}
+
+/// One suspicious item kept with the batch record (the full report is in the `assessments` tree for
+/// quarantined batches).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Suspect {
+    /// Item id as delivered.
+    pub id: String,
+    /// Given label (class name).
+    pub label: String,
+    /// Proposed label (class name).
+    pub proposed_label: String,
+    /// Suspicion in `[0, 1]` (a suspicion for review, not proof).
+    pub suspicion: f64,
+    /// Confidence in the proposed label.
+    pub confidence: f64,
+}
+
+/// The engine's numbers for a scored batch.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BatchScores {
+    /// Repair cost in `[0, 1]`.
+    pub repair_cost: f64,
+    /// Damage in nats.
+    pub damage: f64,
+    /// Whether the repair path reached the trusted-loss target.
+    pub target_reached: bool,
+    /// Whether every solve converged.
+    pub converged: bool,
+    /// Scoring wall time in seconds.
+    pub score_seconds: f64,
+    /// Items whose proposed label differs from the given one.
+    pub flagged_items: usize,
+}
+
+/// A batch as the store knows it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct BatchRecord {
+    /// Record version.
+    pub version: u32,
+    /// Generated id (`b` + zero-padded number); also the stem of its file name in the workspace.
+    pub id: String,
+    /// The vendor folder it arrived in.
+    pub vendor: String,
+    /// The name it arrived under, escaped (vendor-controlled; never used as a path).
+    pub original_name: String,
+    /// The daemon's file name for it: `<id>.<ext>` (`ext` is `csv`, `jsonl` or `bin` for unusable input).
+    pub file_name: String,
+    /// Current state.
+    pub state: BatchState,
+    /// The daemon's verdict, once decided.
+    pub outcome: Option<Outcome>,
+    /// When the daemon first saw the file.
+    pub discovered_at: DateTime<Utc>,
+    /// When it was claimed.
+    pub claimed_at: DateTime<Utc>,
+    /// When the verdict was recorded.
+    pub decided_at: Option<DateTime<Utc>>,
+    /// When the file reached its folder and the notice was written.
+    pub settled_at: Option<DateTime<Utc>>,
+    /// SHA-256 of the bytes (hex), once read.
+    pub sha256: Option<String>,
+    /// Size in bytes, once read.
+    pub bytes: Option<u64>,
+    /// Number of items, once parsed.
+    pub items: Option<usize>,
+    /// Why it was rejected, for `Rejected`.
+    pub reject: Option<RejectReason>,
+    /// The earlier batch with the same bytes, for `Duplicate`.
+    pub duplicate_of: Option<String>,
+    /// Engine numbers, for scored batches.
+    pub scores: Option<BatchScores>,
+    /// The policy's decision, for scored batches.
+    pub decision: Option<Decision>,
+    /// The most suspicious items (flagged ones first, at most 200).
+    pub suspects: Vec<Suspect>,
+    /// Ids of trusted items the batch as delivered would have broken.
+    pub broken_trusted: Vec<String>,
+    /// Pool sequence number of its items, while they are in the pool.
+    pub pool_seq: Option<u64>,
+    /// Notice files written for it (names inside `notices/<vendor>/`).
+    pub notices: Vec<String>,
+}
+
+impl BatchRecord {
+    /// A fresh record in state `Claimed`.
+    pub fn claimed(id: String, vendor: &str, original_name: String, file_name: String) -> Self {
+        let now = Utc::now();
+        Self {
+            version: RECORD_VERSION,
+            id,
+            vendor: vendor.to_string(),
+            original_name,
+            file_name,
+            state: BatchState::Claimed,
+            outcome: None,
+            discovered_at: now,
+            claimed_at: now,
+            decided_at: None,
+            settled_at: None,
+            sha256: None,
+            bytes: None,
+            items: None,
+            reject: None,
+            duplicate_of: None,
+            scores: None,
+            decision: None,
+            suspects: Vec::new(),
+            broken_trusted: Vec::new(),
+            pool_seq: None,
+            notices: Vec::new(),
+        }
+    }
+}
+
+/// One entry of the append-only audit trail.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AuditRecord {
+    /// Record version.
+    pub version: u32,
+    /// Position in the trail (monotonic, not contiguous); set by the store.
+    pub seq: u64,
+    /// When.
+    pub at: DateTime<Utc>,
+    /// Who: `daemon`, or the reviewer's name.
+    pub actor: String,
+    /// What, as a stable snake_case code: `verdict`, `filed`, `notice`, `release`, `reject`, `withdraw`,
+    /// `trusted_add`, `trusted_remove`, `recovered`, ...
+    pub action: String,
+    /// The batch concerned, if any.
+    pub batch_id: Option<String>,
+    /// The vendor concerned, if any.
+    pub vendor: Option<String>,
+    /// The verdict or new state, if any (`accepted`, `quarantined`, ...).
+    pub outcome: Option<String>,
+    /// Why (the reviewer's reason, or the policy's reason codes).
+    pub reason: Option<String>,
+    /// Anything else worth keeping, as JSON.
+    pub detail: serde_json::Value,
+}
+
+impl AuditRecord {
+    /// A new record dated now; `seq` is assigned by the store.
+    pub fn new(actor: &str, action: &str) -> Self {
+        Self {
+            version: RECORD_VERSION,
+            seq: 0,
+            at: Utc::now(),
+            actor: actor.to_string(),
+            action: action.to_string(),
+            batch_id: None,
+            vendor: None,
+            outcome: None,
+            reason: None,
+            detail: serde_json::Value::Null,
+        }
+    }
+
+    /// Set the batch and vendor.
+    pub fn batch(mut self, batch_id: &str, vendor: &str) -> Self {
+        self.batch_id = Some(batch_id.to_string());
+        self.vendor = Some(vendor.to_string());
+        self
+    }
+
+    /// Set the outcome.
+    pub fn outcome(mut self, outcome: &str) -> Self {
+        self.outcome = Some(outcome.to_string());
+        self
+    }
+
+    /// Set the reason.
+    pub fn reason(mut self, reason: impl Into<String>) -> Self {
+        self.reason = Some(reason.into());
+        self
+    }
+
+    /// Set the detail.
+    pub fn detail(mut self, detail: serde_json::Value) -> Self {
+        self.detail = detail;
+        self
+    }
+}
+
+/// A trusted (expert-verified) item with its provenance. Nothing from the inbox ever writes these.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TrustedItem {
+    /// Record version.
+    pub version: u32,
+    /// Item id (unique in the trusted set).
+    pub id: String,
+    /// Verified class name (one of the workspace's classes).
+    pub label: String,
+    /// Raw features in the workspace's schema order.
+    pub features: Vec<f64>,
+    /// Confidence weight (1.0 when unknown).
+    pub weight: f64,
+    /// Who verified it.
+    pub added_by: String,
+    /// When it entered the trusted set.
+    pub added_at: DateTime<Utc>,
+    /// Where it came from (a file name, a review of batch X, ...).
+    pub source: String,
+}
+
+/// Accepted items of one batch, as stored in the pool.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PoolEntry {
+    /// The batch they came from.
+    pub batch_id: String,
+    /// Its vendor.
+    pub vendor: String,
+    /// Item ids.
+    pub ids: Vec<String>,
+    /// Class indices (into the workspace's classes).
+    pub labels: Vec<usize>,
+    /// Raw features, row-major, `ids.len() × n_features`.
+    pub x: Vec<f64>,
+    /// Feature count.
+    pub n_features: usize,
+}
+
+#[derive(Serialize, Deserialize)]
+struct PoolHeader {
+    version: u32,
+    batch_id: String,
+    vendor: String,
+    ids: Vec<String>,
+    labels: Vec<usize>,
+    n_features: usize,
+}
+
+impl PoolEntry {
+    /// The features as an `n × d` array.
+    pub fn features(&self) -> ndarray::Array2<f64> {
+        ndarray::Array2::from_shape_vec((self.ids.len(), self.n_features), self.x.clone())
+            .unwrap_or_else(|_| ndarray::Array2::zeros((0, self.n_features)))
+    }
+
+    /// Binary encoding: `u32 header length (LE) | JSON header | f64 LE features` (features as JSON text
+    /// would cost more time than scoring).
+    fn encode(&self) -> Result<Vec<u8>, StoreError> {
+        let header = serde_json::to_vec(&PoolHeader {
+            version: RECORD_VERSION,
+            batch_id: self.batch_id.clone(),
+            vendor: self.vendor.clone(),
+            ids: self.ids.clone(),
+            labels: self.labels.clone(),
+            n_features: self.n_features,
+        })
+        .map_err(|e| StoreError::Encode {
+            what: "pool entry",
+            message: e.to_string(),
+        })?;
+        let mut out = Vec::with_capacity(4 + header.len() + 8 * self.x.len());
+        out.extend_from_slice(&(header.len() as u32).to_le_bytes());
+        out.extend_from_slice(&header);
+        for v in &self.x {
+            out.extend_from_slice(&v.to_le_bytes());
+        }
+        Ok(out)
+    }
+
+    fn decode(key: &str, bytes: &[u8]) -> Result<Self, StoreError> {
+        let corrupt = |m: &str| StoreError::Corrupt {
+            what: "pool",
+            key: key.to_string(),
+            message: m.to_string(),
+        };
+        if bytes.len() < 4 {
+            return Err(corrupt("short value"));
+        }
+        let hl = u32::from_le_bytes([bytes[0], bytes[1], bytes[2], bytes[3]]) as usize;
+        let header: PoolHeader = bytes
+            .get(4..4 + hl)
+            .ok_or_else(|| corrupt("short header"))
+            .and_then(|h| serde_json::from_slice(h).map_err(|e| corrupt(&e.to_string())))?;
+        let rest = &bytes[4 + hl..];
+        if rest.len() != 8 * header.ids.len() * header.n_features || header.labels.len() != header.ids.len()
+        {
+            return Err(corrupt("feature block does not match the header"));
+        }
+        let x = rest
+            .chunks_exact(8)
+            .map(|c| f64::from_le_bytes(c.try_into().unwrap_or([0; 8])))
+            .collect();
+        Ok(Self {
+            batch_id: header.batch_id,
+            vendor: header.vendor,
+            ids: header.ids,
+            labels: header.labels,
+            x,
+            n_features: header.n_features,
+        })
+    }
+}
+
+/// What the workspace fixed at `init`: classes, feature schema, feature map.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct WorkspaceMeta {
+    /// Record version.
+    pub version: u32,
+    /// Class names in index order (sorted, from the trusted set).
+    pub classes: Vec<String>,
+    /// Feature column names in order.
+    pub features: Vec<String>,
+    /// The learner's feature map (standardiser fit on the trusted set at init, random features if any).
+    pub feature_map: FeatureMap,
+    /// The `[model] feature_map` setting it was built from, as JSON (changing it later is refused).
+    pub feature_map_setting: serde_json::Value,
+    /// When the workspace was created.
+    pub created_at: DateTime<Utc>,
+}
+
+/// The saved pool summary with its watermark.
+#[derive(Debug, Clone, Serialize, Deserialize)]
+pub struct SavedSummary {
+    /// Record version.
+    pub version: u32,
+    /// The pool epoch it was built in (see [`Store::pool_epoch`]).
+    pub epoch: u64,
+    /// Highest pool sequence number absorbed (0: none).
+    pub through_seq: u64,
+    /// The summary.
+    pub summary: PoolSummary,
+}
+
+/// A change to the pool made together with a batch transition.
+#[derive(Debug, Clone)]
+pub enum PoolChange {
+    /// Leave the pool alone.
+    None,
+    /// Add these items (a new sequence number is assigned and stored in the record's `pool_seq`).
+    Add(PoolEntry),
+    /// Remove the batch's items (bumps the pool epoch, so the summary is rebuilt exactly).
+    Remove,
+}
+
+const T_BATCHES: usize = 0;
+const T_BY_HASH: usize = 1;
+const T_AUDIT: usize = 2;
+const T_TRUSTED: usize = 3;
+const T_POOL: usize = 4;
+const T_POOL_INDEX: usize = 5;
+const T_ASSESS: usize = 6;
+const T_HISTORY: usize = 7;
+const T_META: usize = 8;
+const TREE_NAMES: [&str; 9] = [
+    "batches",
+    "by_hash",
+    "audit",
+    "trusted",
+    "pool",
+    "pool_index",
+    "assessments",
+    "vendor_history",
+    "meta",
+];
+
+const META_SCHEMA: &[u8] = b"schema_version";
+const META_WORKSPACE: &[u8] = b"workspace";
+const META_EPOCH: &[u8] = b"pool_epoch";
+const META_POOL_SEQ: &[u8] = b"pool_seq";
+const META_BATCH_SEQ: &[u8] = b"batch_seq";
+const SUMMARY_KEY: &[u8] = b"current";
+
+type TxResult<T> = Result<T, ConflictableTransactionError<StoreError>>;
+
+fn enc<T: Serialize>(what: &'static str, v: &T) -> Result<Vec<u8>, StoreError> {
+    serde_json::to_vec(v).map_err(|e| StoreError::Encode {
+        what,
+        message: e.to_string(),
+    })
+}
+
+fn dec<T: DeserializeOwned>(what: &'static str, key: &[u8], v: &[u8]) -> Result<T, StoreError> {
+    serde_json::from_slice(v).map_err(|e| StoreError::Corrupt {
+        what,
+        key: String::from_utf8_lossy(key).into_owned(),
+        message: e.to_string(),
+    })
+}
+
+fn u64_of(v: Option<sled::IVec>) -> u64 {
+    v.and_then(|v| <[u8; 8]>::try_from(v.as_ref()).ok())
+        .map(u64::from_be_bytes)
+        .unwrap_or(0)
+}
+
+fn hash_key(vendor: &str, sha256: &str) -> Vec<u8> {
+    let mut k = vendor.as_bytes().to_vec();
+    k.push(0);
+    k.extend_from_slice(sha256.as_bytes());
+    k
+}
+
+/// The store handle; cheap to clone, shareable across threads.
+#[derive(Clone)]
+pub struct Store {
+    db: sled::Db,
+    trees: [sled::Tree; 9],
+    summary: sled::Tree,
+    path: PathBuf,
+}
+
+impl std::fmt::Debug for Store {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Store").field("path", &self.path).finish()
+    }
+}
+
+impl Store {
+    /// Open (or create) the store in `dir` (a workspace's `state/` folder).
+    pub fn open(dir: &Path, settings: &StoreSettings) -> Result<Self, StoreError> {
+        let flush = (settings.flush_every_ms > 0).then_some(settings.flush_every_ms);
+        let db = sled::Config::new()
+            .path(dir)
+            .cache_capacity(settings.cache_capacity_bytes)
+            .flush_every_ms(flush)
+            .open()
+            .map_err(|e| match e {
+                sled::Error::Io(ref io) if io.kind() == std::io::ErrorKind::WouldBlock
+                    || io.to_string().contains("lock") =>
+                {
+                    StoreError::Locked(dir.to_path_buf())
+                }
+                other => StoreError::Sled {
+                    op: "open",
+                    source: other,
+                },
+            })?;
+        let open = |name: &str| db.open_tree(name).map_err(StoreError::sled("open tree"));
+        let trees = [
+            open(TREE_NAMES[0])?,
+            open(TREE_NAMES[1])?,
+            open(TREE_NAMES[2])?,
+            open(TREE_NAMES[3])?,
+            open(TREE_NAMES[4])?,
+            open(TREE_NAMES[5])?,
+            open(TREE_NAMES[6])?,
+            open(TREE_NAMES[7])?,
+            open(TREE_NAMES[8])?,
+        ];
+        let summary = open("summary")?;
+        let store = Self {
+            db,
+            trees,
+            summary,
+            path: dir.to_path_buf(),
+        };
+        match store.trees[T_META]
+            .get(META_SCHEMA)
+            .map_err(StoreError::sled("read meta"))?
+        {
+            None => {
+                store.trees[T_META]
+                    .insert(META_SCHEMA, &SCHEMA_VERSION.to_be_bytes())
+                    .map_err(StoreError::sled("write meta"))?;
+                store.flush()?;
+            }
+            Some(v) => {
+                let found = <[u8; 4]>::try_from(v.as_ref())
+                    .map(u32::from_be_bytes)
+                    .unwrap_or(0);
+                if found != SCHEMA_VERSION {
+                    return Err(StoreError::Layout {
+                        path: dir.to_path_buf(),
+                        message: format!(
+                            "store layout version {found}, this labelweir reads version {SCHEMA_VERSION}"
+                        ),
+                    });
+                }
+            }
+        }
+        Ok(store)
+    }
+
+    /// Open the store of workspace `dir` (its `state/` folder), which must have been initialised.
+    pub fn open_workspace(dir: &Path, settings: &StoreSettings) -> Result<Self, StoreError> {
+        let state = dir.join("state");
+        if !state.is_dir() {
+            return Err(StoreError::Layout {
+                path: state,
+                message: "no store here: create the workspace with `labelweir init`".into(),
+            });
+        }
+        Self::open(&state, settings)
+    }
+
+    /// The store's folder.
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// Flush everything to disk (fsync).
+    pub fn flush(&self) -> Result<(), StoreError> {
+        self.db.flush().map_err(StoreError::sled("flush"))?;
+        Ok(())
+    }
+
+    /// Bytes used on disk.
+    pub fn size_on_disk(&self) -> u64 {
+        self.db.size_on_disk().unwrap_or(0)
+    }
+
+    // ----- workspace -----
+
+    /// Record what `init` fixed, and the initial trusted set (one transaction, flushed).
+    pub fn initialise(
+        &self,
+        meta: &WorkspaceMeta,
+        trusted: &[TrustedItem],
+        audit: AuditRecord,
+    ) -> Result<(), StoreError> {
+        if self.workspace_meta().is_ok() {
+            return Err(StoreError::Layout {
+                path: self.path.clone(),
+                message: "already initialised".into(),
+            });
+        }
+        let meta_v = enc("workspace", meta)?;
+        let items: Vec<(Vec<u8>, Vec<u8>)> = trusted
+            .iter()
+            .map(|t| Ok((t.id.as_bytes().to_vec(), enc("trusted item", t)?)))
+            .collect::<Result<_, StoreError>>()?;
+        let audit = self.prepare_audit(audit)?;
+        self.run_tx("initialise", |t| {
+            t[T_META].insert(META_WORKSPACE, meta_v.as_slice())?;
+            for (k, v) in &items {
+                t[T_TRUSTED].insert(k.as_slice(), v.as_slice())?;
+            }
+            t[T_AUDIT].insert(&audit.0, audit.1.as_slice())?;
+            Ok(())
+        })
+    }
+
+    /// What `init` fixed.
+    pub fn workspace_meta(&self) -> Result<WorkspaceMeta, StoreError> {
+        let v = self.trees[T_META]
+            .get(META_WORKSPACE)
+            .map_err(StoreError::sled("read meta"))?
+            .ok_or_else(|| StoreError::Layout {
+                path: self.path.clone(),
+                message: "the workspace was never initialised (run `labelweir init`)".into(),
+            })?;
+        dec("workspace", META_WORKSPACE, &v)
+    }
+
+    // ----- batches -----
+
+    /// A new batch id (`b` + 8+ digits; monotonic, unique across restarts).
+    pub fn new_batch_id(&self) -> Result<String, StoreError> {
+        let n = self
+            .trees[T_META]
+            .update_and_fetch(META_BATCH_SEQ, |old| {
+                Some((u64_of(old.map(sled::IVec::from)) + 1).to_be_bytes().to_vec())
+            })
+            .map_err(StoreError::sled("batch id"))?;
+        Ok(format!("b{:08}", u64_of(n)))
+    }
+
+    /// Record a claim (state `Claimed`) and flush, before the file is renamed into `processing/`.
+    /// The batch counter is flushed with it, so an id is never handed out twice.
+    pub fn record_claim(&self, record: &BatchRecord) -> Result<(), StoreError> {
+        let v = enc("batch", record)?;
+        let id = record.id.clone();
+        self.run_tx("record claim", |t| {
+            t[T_BATCHES].insert(id.as_bytes(), v.as_slice())?;
+            Ok(())
+        })
+    }
+
+    /// Remove a `Claimed` record whose rename never happened (the file is still in the inbox).
+    pub fn forget_claim(&self, batch_id: &str) -> Result<(), StoreError> {
+        let id = batch_id.to_string();
+        self.run_tx("forget claim", |t| {
+            if let Some(v) = t[T_BATCHES].get(id.as_bytes())? {
+                let rec: BatchRecord = dec("batch", id.as_bytes(), &v).map_err(ConflictableTransactionError::Abort)?;
+                if rec.state == BatchState::Claimed {
+                    t[T_BATCHES].remove(id.as_bytes())?;
+                }
+            }
+            Ok(())
+        })
+    }
+
+    /// One batch.
+    pub fn batch(&self, batch_id: &str) -> Result<Option<BatchRecord>, StoreError> {
+        self.trees[T_BATCHES]
+            .get(batch_id.as_bytes())
+            .map_err(StoreError::sled("read batch"))?
+            .map(|v| dec("batch", batch_id.as_bytes(), &v))
+            .transpose()
+    }
+
+    /// All batches, in id order (= arrival order).
+    pub fn batches(&self) -> Result<Vec<BatchRecord>, StoreError> {
+        self.trees[T_BATCHES]
+            .iter()
+            .map(|kv| {
+                let (k, v) = kv.map_err(StoreError::sled("scan batches"))?;
+                dec("batch", &k, &v)
+            })
+            .collect()
+    }
+
+    /// Batches in any of the given states, in id order.
+    pub fn batches_in(&self, states: &[BatchState]) -> Result<Vec<BatchRecord>, StoreError> {
+        Ok(self
+            .batches()?
+            .into_iter()
+            .filter(|b| states.contains(&b.state))
+            .collect())
+    }
+
+    /// The first batch the vendor delivered with these bytes, if any (the idempotency key).
+    pub fn batch_by_hash(&self, vendor: &str, sha256: &str) -> Result<Option<String>, StoreError> {
+        Ok(self.trees[T_BY_HASH]
+            .get(hash_key(vendor, sha256))
+            .map_err(StoreError::sled("read by_hash"))?
+            .map(|v| String::from_utf8_lossy(&v).into_owned()))
+    }
+
+    /// The engine's full report for a batch (kept for quarantined batches).
+    pub fn assessment(&self, batch_id: &str) -> Result<Option<Assessment>, StoreError> {
+        self.trees[T_ASSESS]
+            .get(batch_id.as_bytes())
+            .map_err(StoreError::sled("read assessment"))?
+            .map(|v| dec("assessment", batch_id.as_bytes(), &v))
+            .transpose()
+    }
+
+    /// Record a verdict in one flushed transaction: the record (state `Decided`, with its outcome), its
+    /// audit record, and as applicable the idempotency key, the vendor's new history, the full assessment,
+    /// and the accepted items in the pool. The record must currently be `Claimed`.
+    /// Returns the record as stored (with `pool_seq` set when items were added).
+    #[allow(clippy::too_many_arguments)]
+    pub fn record_verdict(
+        &self,
+        record: &BatchRecord,
+        audit: AuditRecord,
+        index_hash: bool,
+        history: Option<&VendorHistory>,
+        assessment: Option<&Assessment>,
+        pool: Option<PoolEntry>,
+    ) -> Result<BatchRecord, StoreError> {
+        let mut record = record.clone();
+        record.state = BatchState::Decided;
+        record.decided_at = Some(Utc::now());
+        let by_hash = match (&record.sha256, index_hash) {
+            (Some(h), true) => Some((hash_key(&record.vendor, h), record.id.as_bytes().to_vec())),
+            _ => None,
+        };
+        let history = history
+            .map(|h| Ok::<_, StoreError>((record.vendor.as_bytes().to_vec(), enc("history", h)?)))
+            .transpose()?;
+        let assessment = assessment
+            .map(|a| Ok::<_, StoreError>((record.id.as_bytes().to_vec(), enc("assessment", a)?)))
+            .transpose()?;
+        let pool_add = pool.map(|p| p.encode()).transpose()?;
+        self.apply(
+            record,
+            &[BatchState::Claimed],
+            vec![audit],
+            by_hash,
+            history,
+            assessment,
+            pool_add,
+            None,
+        )
+    }
+
+    /// Move a batch from one state to another in one flushed transaction, with its audit records and an
+    /// optional pool change. Fails with [`StoreError::Conflict`] if the batch is not in one of `expect`
+    /// (so of two concurrent reviewers, the second is refused). `edit` may change any other field.
+    ///
+    /// This is the pool-mutation path for review decisions: `release` is
+    /// `transition(id, &[Quarantined], Released, PoolChange::Add(entry), ...)`; `withdraw` is
+    /// `transition(id, &[Accepted, Released], Withdrawn, PoolChange::Remove, ...)`. While the daemon runs,
+    /// call it through the daemon (`scoring::ScoringHandle::pool_changed` afterwards) so the in-memory pool
+    /// summary follows; when it is stopped, the daemon catches up from the pool at its next start.
+    pub fn transition(
+        &self,
+        batch_id: &str,
+        expect: &[BatchState],
+        to: BatchState,
+        pool: PoolChange,
+        audit: Vec<AuditRecord>,
+        edit: impl FnOnce(&mut BatchRecord),
+    ) -> Result<BatchRecord, StoreError> {
+        let mut record = self.batch(batch_id)?.ok_or_else(|| StoreError::NotFound {
+            what: "batch",
+            key: batch_id.to_string(),
+        })?;
+        if !expect.contains(&record.state) {
+            return Err(conflict(&record, expect));
+        }
+        edit(&mut record);
+        record.state = to;
+        if to.is_settled() && record.settled_at.is_none() {
+            record.settled_at = Some(Utc::now());
+        }
+        let (pool_add, pool_remove) = match pool {
+            PoolChange::None => (None, None),
+            PoolChange::Add(e) => (Some(e.encode()?), None),
+            PoolChange::Remove => (None, Some(batch_id)),
+        };
+        self.apply(record, expect, audit, None, None, None, pool_add, pool_remove)
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    fn apply(
+        &self,
+        record: BatchRecord,
+        expect: &[BatchState],
+        audit: Vec<AuditRecord>,
+        by_hash: Option<(Vec<u8>, Vec<u8>)>,
+        history: Option<(Vec<u8>, Vec<u8>)>,
+        assessment: Option<(Vec<u8>, Vec<u8>)>,
+        pool_add: Option<Vec<u8>>,
+        pool_remove: Option<&str>,
+    ) -> Result<BatchRecord, StoreError> {
+        let mut audits = Vec::with_capacity(audit.len());
+        for a in audit {
+            audits.push(self.prepare_audit(a)?);
+        }
+        let id = record.id.clone();
+        // The pool sequence number is read and bumped inside the transaction, so pool entries commit in
+        // sequence order (two transactions adding to the pool conflict on the counter and one retries):
+        // a reader that has seen sequence n has seen every entry below n.
+        let stored = self.run_tx("transition", |t| {
+            let mut record = record.clone();
+            let cur = t[T_BATCHES].get(id.as_bytes())?.ok_or_else(|| {
+                ConflictableTransactionError::Abort(StoreError::NotFound {
+                    what: "batch",
+                    key: id.clone(),
+                })
+            })?;
+            let cur: BatchRecord =
+                dec("batch", id.as_bytes(), &cur).map_err(ConflictableTransactionError::Abort)?;
+            if !expect.contains(&cur.state) {
+                return Err(ConflictableTransactionError::Abort(conflict(&cur, expect)));
+            }
+            if let Some(v) = &pool_add {
+                let seq = u64_of(t[T_META].get(META_POOL_SEQ)?) + 1;
+                t[T_META].insert(META_POOL_SEQ, &seq.to_be_bytes())?;
+                t[T_POOL].insert(&seq.to_be_bytes(), v.as_slice())?;
+                t[T_POOL_INDEX].insert(id.as_bytes(), &seq.to_be_bytes())?;
+                record.pool_seq = Some(seq);
+            }
+            if let Some(bid) = pool_remove {
+                if let Some(seq) = t[T_POOL_INDEX].remove(bid.as_bytes())? {
+                    t[T_POOL].remove(seq)?;
+                    let epoch = u64_of(t[T_META].get(META_EPOCH)?) + 1;
+                    t[T_META].insert(META_EPOCH, &epoch.to_be_bytes())?;
+                }
+                record.pool_seq = None;
+            }
+            let rv = enc("batch", &record).map_err(ConflictableTransactionError::Abort)?;
+            t[T_BATCHES].insert(id.as_bytes(), rv)?;
+            for (k, v) in &audits {
+                t[T_AUDIT].insert(k, v.as_slice())?;
+            }
+            if let Some((k, v)) = &by_hash {
+                if t[T_BY_HASH].get(k.as_slice())?.is_none() {
+                    t[T_BY_HASH].insert(k.as_slice(), v.as_slice())?;
+                }
+            }
+            if let Some((k, v)) = &history {
+                t[T_HISTORY].insert(k.as_slice(), v.as_slice())?;
+            }
+            if let Some((k, v)) = &assessment {
+                t[T_ASSESS].insert(k.as_slice(), v.as_slice())?;
+            }
+            Ok(record)
+        })?;
+        Ok(stored)
+    }
+
+    /// Highest pool sequence number handed out so far.
+    pub fn pool_seq(&self) -> Result<u64, StoreError> {
+        Ok(u64_of(
+            self.trees[T_META]
+                .get(META_POOL_SEQ)
+                .map_err(StoreError::sled("read pool seq"))?,
+        ))
+    }
+
+    // ----- audit -----
+
+    fn prepare_audit(&self, mut a: AuditRecord) -> Result<([u8; 8], Vec<u8>), StoreError> {
+        let id = self.db.generate_id().map_err(StoreError::sled("audit id"))?;
+        a.seq = id;
+        Ok((id.to_be_bytes(), enc("audit", &a)?))
+    }
+
+    /// Append audit records (one flushed transaction). Returns their sequence numbers.
+    pub fn append_audit(&self, records: Vec<AuditRecord>) -> Result<Vec<u64>, StoreError> {
+        let mut prepared = Vec::with_capacity(records.len());
+        for r in records {
+            prepared.push(self.prepare_audit(r)?);
+        }
+        self.run_tx("append audit", |t| {
+            for (k, v) in &prepared {
+                t[T_AUDIT].insert(k, v.as_slice())?;
+            }
+            Ok(())
+        })?;
+        Ok(prepared.iter().map(|(k, _)| u64::from_be_bytes(*k)).collect())
+    }
+
+    /// The audit trail in order, starting after sequence number `after` (0: from the start).
+    pub fn audit_since(&self, after: u64) -> Result<Vec<AuditRecord>, StoreError> {
+        self.trees[T_AUDIT]
+            .range((after + 1).to_be_bytes()..)
+            .map(|kv| {
+                let (k, v) = kv.map_err(StoreError::sled("scan audit"))?;
+                dec("audit", &k, &v)
+            })
+            .collect()
+    }
+
+    // ----- trusted set -----
+
+    /// Every trusted item, in id order.
+    pub fn trusted_items(&self) -> Result<Vec<TrustedItem>, StoreError> {
+        self.trees[T_TRUSTED]
+            .iter()
+            .map(|kv| {
+                let (k, v) = kv.map_err(StoreError::sled("scan trusted"))?;
+                dec("trusted item", &k, &v)
+            })
+            .collect()
+    }
+
+    /// Add or replace trusted items and remove others, with audit records, in one flushed transaction.
+    /// Only review commands call this; nothing on the ingest path can.
+    pub fn update_trusted(
+        &self,
+        add: &[TrustedItem],
+        remove: &[String],
+        audit: Vec<AuditRecord>,
+    ) -> Result<(), StoreError> {
+        let adds: Vec<(Vec<u8>, Vec<u8>)> = add
+            .iter()
+            .map(|t| Ok((t.id.as_bytes().to_vec(), enc("trusted item", t)?)))
+            .collect::<Result<_, StoreError>>()?;
+        let mut audits = Vec::new();
+        for a in audit {
+            audits.push(self.prepare_audit(a)?);
+        }
+        self.run_tx("update trusted", |t| {
+            for id in remove {
+                t[T_TRUSTED].remove(id.as_bytes())?;
+            }
+            for (k, v) in &adds {
+                t[T_TRUSTED].insert(k.as_slice(), v.as_slice())?;
+            }
+            for (k, v) in &audits {
+                t[T_AUDIT].insert(k, v.as_slice())?;
+            }
+            Ok(())
+        })
+    }
+
+    // ----- pool -----
+
+    /// Pool entries with sequence number greater than `after`, in order, with their sequence numbers.
+    pub fn pool_entries_after(&self, after: u64) -> Result<Vec<(u64, PoolEntry)>, StoreError> {
+        self.trees[T_POOL]
+            .range((after + 1).to_be_bytes()..)
+            .map(|kv| {
+                let (k, v) = kv.map_err(StoreError::sled("scan pool"))?;
+                let seq = u64_of(Some(k));
+                Ok((seq, PoolEntry::decode(&seq.to_string(), &v)?))
+            })
+            .collect()
+    }
+
+    /// The whole pool as one `(x, y)` pair (for an exact refresh), plus the highest sequence included.
+    pub fn pool_matrix(&self, n_features: usize) -> Result<(ndarray::Array2<f64>, Vec<usize>, u64), StoreError> {
+        let mut x = Vec::new();
+        let mut y = Vec::new();
+        let mut last = 0;
+        for kv in self.trees[T_POOL].iter() {
+            let (k, v) = kv.map_err(StoreError::sled("scan pool"))?;
+            let seq = u64_of(Some(k));
+            let e = PoolEntry::decode(&seq.to_string(), &v)?;
+            if e.n_features != n_features {
+                return Err(StoreError::Corrupt {
+                    what: "pool",
+                    key: seq.to_string(),
+                    message: format!("{} features, expected {n_features}", e.n_features),
+                });
+            }
+            x.extend_from_slice(&e.x);
+            y.extend_from_slice(&e.labels);
+            last = seq;
+        }
+        let n = y.len();
+        let x = ndarray::Array2::from_shape_vec((n, n_features), x).map_err(|e| StoreError::Corrupt {
+            what: "pool",
+            key: "*".into(),
+            message: e.to_string(),
+        })?;
+        Ok((x, y, last))
+    }
+
+    /// Number of items in the pool.
+    pub fn pool_items(&self) -> Result<u64, StoreError> {
+        let mut n = 0u64;
+        for kv in self.trees[T_POOL].iter() {
+            let (k, v) = kv.map_err(StoreError::sled("scan pool"))?;
+            n += PoolEntry::decode(&u64_of(Some(k)).to_string(), &v)?.ids.len() as u64;
+        }
+        Ok(n)
+    }
+
+    /// Batch ids whose items are in the pool, in pool order.
+    pub fn pool_batches(&self) -> Result<Vec<String>, StoreError> {
+        let mut v: Vec<(u64, String)> = self.trees[T_POOL_INDEX]
+            .iter()
+            .map(|kv| {
+                let (k, s) = kv.map_err(StoreError::sled("scan pool index"))?;
+                Ok((u64_of(Some(s)), String::from_utf8_lossy(&k).into_owned()))
+            })
+            .collect::<Result<_, StoreError>>()?;
+        v.sort();
+        Ok(v.into_iter().map(|(_, b)| b).collect())
+    }
+
+    /// The pool epoch: bumped whenever items leave the pool.
+    pub fn pool_epoch(&self) -> Result<u64, StoreError> {
+        Ok(u64_of(
+            self.trees[T_META]
+                .get(META_EPOCH)
+                .map_err(StoreError::sled("read epoch"))?,
+        ))
+    }
+
+    /// The saved pool summary, if any.
+    pub fn saved_summary(&self) -> Result<Option<SavedSummary>, StoreError> {
+        self.summary
+            .get(SUMMARY_KEY)
+            .map_err(StoreError::sled("read summary"))?
+            .map(|v| dec("summary", SUMMARY_KEY, &v))
+            .transpose()
+    }
+
+    /// Save the pool summary (flushed).
+    pub fn save_summary(&self, s: &SavedSummary) -> Result<(), StoreError> {
+        let v = enc("summary", s)?;
+        self.summary
+            .insert(SUMMARY_KEY, v)
+            .map_err(StoreError::sled("write summary"))?;
+        self.summary.flush().map_err(StoreError::sled("flush"))?;
+        Ok(())
+    }
+
+    // ----- vendor history -----
+
+    /// A vendor's history (empty if none yet).
+    pub fn vendor_history(&self, vendor: &str) -> Result<VendorHistory, StoreError> {
+        Ok(self.trees[T_HISTORY]
+            .get(vendor.as_bytes())
+            .map_err(StoreError::sled("read history"))?
+            .map(|v| dec("history", vendor.as_bytes(), &v))
+            .transpose()?
+            .unwrap_or_default())
+    }
+
+    /// Replace a vendor's history (flushed), e.g. after a reviewer resets its drift statistic.
+    pub fn set_vendor_history(&self, vendor: &str, h: &VendorHistory, audit: AuditRecord) -> Result<(), StoreError> {
+        let v = enc("history", h)?;
+        let a = self.prepare_audit(audit)?;
+        let vendor = vendor.to_string();
+        self.run_tx("write history", |t| {
+            t[T_HISTORY].insert(vendor.as_bytes(), v.as_slice())?;
+            t[T_AUDIT].insert(&a.0, a.1.as_slice())?;
+            Ok(())
+        })
+    }
+
+    fn run_tx<R>(
+        &self,
+        op: &'static str,
+        f: impl Fn(&[TransactionalTree]) -> TxResult<R>,
+    ) -> Result<R, StoreError> {
+        let trees: Vec<&sled::Tree> = self.trees.iter().collect();
+        let started = std::time::Instant::now();
+        let r = trees.as_slice().transaction(|t| {
+            let r = f(t)?;
+            t[0].flush();
+            Ok(r)
+        });
+        crate::metrics::store_flush_observed(started.elapsed());
+        match r {
+            Ok(r) => Ok(r),
+            Err(TransactionError::Abort(e)) => Err(e),
+            Err(TransactionError::Storage(e)) => {
+                crate::metrics::store_error(op);
+                Err(StoreError::Sled { op, source: e })
+            }
+        }
+    }
+}
+
+fn conflict(rec: &BatchRecord, expect: &[BatchState]) -> StoreError {
+    StoreError::Conflict {
+        batch: rec.id.clone(),
+        found: rec.state.to_string(),
+        expected: expect
+            .iter()
+            .map(|s| s.as_str())
+            .collect::<Vec<_>>()
+            .join(", "),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn tmp_store() -> (tempfile::TempDir, Store) {
+        let d = tempfile::tempdir().unwrap();
+        let s = Store::open(&d.path().join("state"), &StoreSettings::default()).unwrap();
+        (d, s)
+    }
+
+    fn claimed(s: &Store) -> BatchRecord {
+        let id = s.new_batch_id().unwrap();
+        let r = BatchRecord::claimed(id.clone(), "v1", "x.csv".into(), format!("{id}.csv"));
+        s.record_claim(&r).unwrap();
+        r
+    }
+
+    #[test]
+    fn verdict_then_second_transition_conflicts() {
+        let (_d, s) = tmp_store();
+        let mut r = claimed(&s);
+        r.sha256 = Some("ab".into());
+        r.outcome = Some(Outcome::Quarantined);
+        let r = s
+            .record_verdict(&r, AuditRecord::new("daemon", "verdict"), true, None, None, None)
+            .unwrap();
+        assert_eq!(r.state, BatchState::Decided);
+        assert_eq!(s.batch_by_hash("v1", "ab").unwrap().as_deref(), Some(r.id.as_str()));
+        // Recording a second verdict on a decided batch is refused.
+        assert!(matches!(
+            s.record_verdict(&r, AuditRecord::new("daemon", "verdict"), true, None, None, None),
+            Err(StoreError::Conflict { .. })
+        ));
+        s.transition(&r.id, &[BatchState::Decided], BatchState::Quarantined, PoolChange::None, vec![], |_| {})
+            .unwrap();
+        let entry = PoolEntry {
+            batch_id: r.id.clone(),
+            vendor: "v1".into(),
+            ids: vec!["a".into(), "b".into()],
+            labels: vec![0, 1],
+            x: vec![1.0, 2.0, 3.0, 4.0],
+            n_features: 2,
+        };
+        let rel = s
+            .transition(&r.id, &[BatchState::Quarantined], BatchState::Released, PoolChange::Add(entry.clone()), vec![AuditRecord::new("alice", "release")], |_| {})
+            .unwrap();
+        assert!(rel.pool_seq.is_some());
+        // A second reviewer's release is refused cleanly.
+        let again = s.transition(&r.id, &[BatchState::Quarantined], BatchState::Released, PoolChange::Add(entry.clone()), vec![], |_| {});
+        assert!(matches!(again, Err(StoreError::Conflict { .. })));
+        let (x, y, last) = s.pool_matrix(2).unwrap();
+        assert_eq!((x.nrows(), y, last), (2, vec![0, 1], rel.pool_seq.unwrap()));
+        assert_eq!(s.pool_entries_after(0).unwrap()[0].1, entry);
+        assert_eq!(s.pool_epoch().unwrap(), 0);
+        s.transition(&r.id, &[BatchState::Released], BatchState::Withdrawn, PoolChange::Remove, vec![], |_| {})
+            .unwrap();
+        assert_eq!(s.pool_items().unwrap(), 0);
+        assert_eq!(s.pool_epoch().unwrap(), 1);
+        let audit = s.audit_since(0).unwrap();
+        assert_eq!(audit.iter().map(|a| a.action.as_str()).collect::<Vec<_>>(), ["verdict", "release"]);
+        assert!(audit[0].seq < audit[1].seq);
+    }
+
+    #[test]
+    fn ids_are_unique_across_reopen() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("state");
+        let a = {
+            let s = Store::open(&p, &StoreSettings::default()).unwrap();
+            let r = claimed(&s);
+            r.id
+        };
+        let s = Store::open(&p, &StoreSettings::default()).unwrap();
+        let b = claimed(&s);
+        assert!(b.id > a, "{} vs {a}", b.id);
+        assert!(s.batch(&a).unwrap().is_some());
+    }
+
+    #[test]
+    fn second_open_is_refused_as_locked() {
+        let (d, _s) = tmp_store();
+        let e = Store::open(&d.path().join("state"), &StoreSettings::default()).unwrap_err();
+        assert!(matches!(e, StoreError::Locked(_)), "{e}");
+    }
+}

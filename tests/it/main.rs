@@ -1,0 +1,18 @@
+//! labelweir's integration tests, compiled into one binary.
+//!
+//! Table of contents (one module per area; each test works in its own temporary directory):
+//! - `util`       — shared helpers: temp workspaces, running the binary, waiting for verdicts.
+//! - `engine`     — the label-repair engine against outside references and its own derivatives.
+//! - `assess_cli` — the `labelweir assess` contract: output, exit codes, bad input.
+//! - `daemon`     — the watching daemon end to end: verdicts, folders, notices, audit, pool, hostile input.
+//! - `crash`      — SIGKILL at random moments, restart, invariants.
+//! - `review`     — quarantine review, trusted-set upkeep, notices, audit through the binary.
+//! - `alerting`   — alert rules, dashboard and service unit checked with the real tools.
+
+mod alerting;
+mod assess_cli;
+mod crash;
+mod daemon;
+mod engine;
+mod review;
+mod util;
