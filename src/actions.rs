@@ -54,7 +54,12 @@ fn io_err(op: &'static str, path: &Path) -> impl FnOnce(std::io::Error) -> Actio
 }
 
 /// Write `bytes` to `dir/name` atomically with the given mode: temporary file, fsync, rename, fsync dir.
-pub fn write_atomic_mode(dir: &Path, name: &str, bytes: &[u8], mode: u32) -> std::io::Result<PathBuf> {
+pub fn write_atomic_mode(
+    dir: &Path,
+    name: &str,
+    bytes: &[u8],
+    mode: u32,
+) -> std::io::Result<PathBuf> {
     let final_path = dir.join(name);
     let tmp = dir.join(format!(".{name}.tmp-{}", std::process::id()));
     // A read-only leftover from an interrupted attempt cannot be opened for writing: remove it first.
@@ -89,11 +94,20 @@ pub fn report_name(record: &BatchRecord) -> String {
     format!("{}.report.json", record.id)
 }
 
-fn move_file(ws: &Workspace, record: &BatchRecord, outcome: Outcome, bytes: Option<&[u8]>) -> Result<(), ActionError> {
+fn move_file(
+    ws: &Workspace,
+    record: &BatchRecord,
+    outcome: Outcome,
+    bytes: Option<&[u8]>,
+) -> Result<(), ActionError> {
     let src_dir = ws.processing();
     let src = src_dir.join(&record.file_name);
     let dst_dir = ws.folder(outcome.folder());
-    let mode = if outcome == Outcome::Quarantined { 0o440 } else { 0o640 };
+    let mode = if outcome == Outcome::Quarantined {
+        0o440
+    } else {
+        0o640
+    };
     let meta = fs::symlink_metadata(&src);
     match meta {
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(()), // already moved
@@ -104,7 +118,8 @@ fn move_file(ws: &Workspace, record: &BatchRecord, outcome: Outcome, bytes: Opti
         }
         Ok(m) if m.file_type().is_file() && bytes.is_some() => {
             let b = bytes.unwrap_or_default();
-            write_atomic_mode(&dst_dir, &record.file_name, b, mode).map_err(io_err("write", &dst_dir))?;
+            write_atomic_mode(&dst_dir, &record.file_name, b, mode)
+                .map_err(io_err("write", &dst_dir))?;
             fs::remove_file(&src).map_err(io_err("remove", &src))?;
         }
         Ok(m) => {
@@ -119,7 +134,8 @@ fn move_file(ws: &Workspace, record: &BatchRecord, outcome: Outcome, bytes: Opti
             } else {
                 fs::rename(&src, &dst).map_err(io_err("move", &src))?;
                 if m.is_file() {
-                    fs::set_permissions(&dst, fs::Permissions::from_mode(mode)).map_err(io_err("chmod", &dst))?;
+                    fs::set_permissions(&dst, fs::Permissions::from_mode(mode))
+                        .map_err(io_err("chmod", &dst))?;
                 }
             }
             crate::ingest::sync_dir(&dst_dir).map_err(io_err("fsync", &dst_dir))?;
@@ -181,7 +197,9 @@ pub fn notice_for(record: &BatchRecord) -> Option<Notice> {
                 }],
             )
         }
-        Outcome::Duplicate => Notice::duplicate(batch, record.duplicate_of.as_deref().unwrap_or("unknown")),
+        Outcome::Duplicate => {
+            Notice::duplicate(batch, record.duplicate_of.as_deref().unwrap_or("unknown"))
+        }
     })
 }
 
@@ -212,15 +230,24 @@ pub fn settle(
             );
         }
         let text = serde_json::to_vec_pretty(&report).unwrap_or_default();
-        let mode = if outcome == Outcome::Quarantined { 0o440 } else { 0o640 };
-        write_atomic_mode(&dir, &report_name(record), &text, mode).map_err(io_err("write report", &dir))?;
+        let mode = if outcome == Outcome::Quarantined {
+            0o440
+        } else {
+            0o640
+        };
+        write_atomic_mode(&dir, &report_name(record), &text, mode)
+            .map_err(io_err("write report", &dir))?;
     }
     let mut written = Vec::new();
     if let Some(n) = notice_for(record) {
         let dir = ws.notices(&record.vendor);
-        let paths = notice::write_notice(&dir, &n, &config.notices).map_err(io_err("write notice", &dir))?;
+        let paths = notice::write_notice(&dir, &n, &config.notices)
+            .map_err(io_err("write notice", &dir))?;
         for p in &paths {
-            let name = p.file_name().map(|s| s.to_string_lossy().into_owned()).unwrap_or_default();
+            let name = p
+                .file_name()
+                .map(|s| s.to_string_lossy().into_owned())
+                .unwrap_or_default();
             if let Some(m) = metrics {
                 let fmt = if name.ends_with(".json") {
                     "json"

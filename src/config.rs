@@ -415,8 +415,14 @@ pub struct Workspace {
 
 impl Workspace {
     /// Folders the daemon owns, created by `init`.
-    pub const PRIVATE_FOLDERS: [&'static str; 6] =
-        ["processing", "accepted", "quarantine", "rejected", "notices", "state"];
+    pub const PRIVATE_FOLDERS: [&'static str; 6] = [
+        "processing",
+        "accepted",
+        "quarantine",
+        "rejected",
+        "notices",
+        "state",
+    ];
 
     /// A workspace rooted at `root`.
     pub fn new(root: impl Into<PathBuf>) -> Self {

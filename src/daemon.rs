@@ -105,9 +105,20 @@ fn io(what: &str) -> impl FnOnce(std::io::Error) -> DaemonError + '_ {
 /// `ingest.watcher = "poll"` there.
 pub fn prepare_folders(ws: &Workspace, config: &Config) -> Result<(), DaemonError> {
     if !ws.root.is_dir() {
-        return Err(DaemonError::Config(format!("{} is not a workspace folder", ws.root.display())));
+        return Err(DaemonError::Config(format!(
+            "{} is not a workspace folder",
+            ws.root.display()
+        )));
     }
-    let mut dirs = vec![ws.inbox(), ws.processing(), ws.folder("accepted"), ws.folder("quarantine"), ws.folder("rejected"), ws.root.join("notices"), ws.state()];
+    let mut dirs = vec![
+        ws.inbox(),
+        ws.processing(),
+        ws.folder("accepted"),
+        ws.folder("quarantine"),
+        ws.folder("rejected"),
+        ws.root.join("notices"),
+        ws.state(),
+    ];
     for v in &config.vendors {
         dirs.push(ws.vendor_inbox(v));
         dirs.push(ws.notices(v));
@@ -117,7 +128,10 @@ pub fn prepare_folders(ws: &Workspace, config: &Config) -> Result<(), DaemonErro
         std::fs::create_dir_all(d).map_err(io(&d.display().to_string()))?;
         let m = std::fs::symlink_metadata(d).map_err(io(&d.display().to_string()))?;
         if !m.is_dir() {
-            return Err(DaemonError::Config(format!("{} must be a directory, not a link", d.display())));
+            return Err(DaemonError::Config(format!(
+                "{} must be a directory, not a link",
+                d.display()
+            )));
         }
         match dev {
             None => dev = Some(m.dev()),
@@ -152,7 +166,12 @@ pub fn check_against_meta(config: &Config, meta: &WorkspaceMeta) -> Result<(), D
 
 /// Reconcile the store with `processing/` after a start: file batches left `Decided`, forget claims
 /// whose rename never happened, and return the `Claimed` batches whose files wait in `processing/`.
-pub fn reconcile(ws: &Workspace, config: &Config, store: &Store, metrics: Option<&Metrics>) -> Result<Vec<BatchRecord>, DaemonError> {
+pub fn reconcile(
+    ws: &Workspace,
+    config: &Config,
+    store: &Store,
+    metrics: Option<&Metrics>,
+) -> Result<Vec<BatchRecord>, DaemonError> {
     for rec in store.batches_in(&[BatchState::Decided])? {
         tracing::info!(batch_id = %rec.id, vendor = %rec.vendor, "recovery: filing a decided batch");
         crate::actions::settle(ws, config, store, metrics, &rec, None)
@@ -186,7 +205,9 @@ pub fn reconcile(ws: &Workspace, config: &Config, store: &Store, metrics: Option
 
 /// Free bytes available to the daemon on the filesystem holding `path`.
 pub fn free_bytes(path: &Path) -> Option<u64> {
-    rustix::fs::statvfs(path).ok().map(|s| s.f_bavail.saturating_mul(s.f_frsize))
+    rustix::fs::statvfs(path)
+        .ok()
+        .map(|s| s.f_bavail.saturating_mul(s.f_frsize))
 }
 
 #[derive(Default)]
@@ -250,7 +271,8 @@ impl Ingest {
     fn submit(&self, record: BatchRecord, input: scoring::JobInput) -> Flow {
         match self.scoring.submit(Job { record, input }) {
             Ok(()) => {
-                self.metrics.queue_depth(self.scoring.shared.queue_depth.load(Ordering::SeqCst));
+                self.metrics
+                    .queue_depth(self.scoring.shared.queue_depth.load(Ordering::SeqCst));
                 Flow::Continue
             }
             Err(_) => Flow::Stop, // the worker stopped: the claim stays in processing/ for the next start
@@ -259,7 +281,13 @@ impl Ingest {
 
     fn process_claimed(&self, record: BatchRecord) -> Result<Flow, DaemonError> {
         let t = Instant::now();
-        let input = crate::ingest::prepare(&self.ws, &self.config, &self.meta.features, &self.classes, &record);
+        let input = crate::ingest::prepare(
+            &self.ws,
+            &self.config,
+            &self.meta.features,
+            &self.classes,
+            &record,
+        );
         self.metrics.stage("parse", t.elapsed());
         match input {
             Some(input) => Ok(self.submit(record, input)),
@@ -310,7 +338,8 @@ impl Ingest {
                 return Ok((Flow::Continue, None));
             }
         };
-        self.metrics.inbox_backlog(vendor, scan.backlog as i64, scan.oldest_age.as_secs_f64());
+        self.metrics
+            .inbox_backlog(vendor, scan.backlog as i64, scan.oldest_age.as_secs_f64());
         for c in &scan.ready {
             let key = (vendor.to_string(), c.name.clone());
             if self.seen.insert(key) {
@@ -319,7 +348,10 @@ impl Ingest {
         }
         if !scan.ready.is_empty() && !self.disk_ok() {
             tracing::warn!("free space below ingest.min_free_bytes; not claiming");
-            return Ok((Flow::Continue, Some(SystemTime::now() + Duration::from_secs(5))));
+            return Ok((
+                Flow::Continue,
+                Some(SystemTime::now() + Duration::from_secs(5)),
+            ));
         }
         for c in scan.ready {
             if self.stopping() {
@@ -362,7 +394,11 @@ impl Ingest {
         loop {
             let targets: Vec<String>;
             {
-                let mut w = self.ctl.wake.lock().map_err(|_| DaemonError::Internal("ingest lock poisoned".into()))?;
+                let mut w = self
+                    .ctl
+                    .wake
+                    .lock()
+                    .map_err(|_| DaemonError::Internal("ingest lock poisoned".into()))?;
                 loop {
                     if w.stop {
                         return Ok(());
@@ -381,9 +417,17 @@ impl Ingest {
                     }
                     let mut wait = next_timer.saturating_duration_since(now);
                     if let Some(t) = next_ready {
-                        wait = wait.min(t.duration_since(SystemTime::now()).unwrap_or(Duration::ZERO) + Duration::from_millis(5));
+                        wait = wait.min(
+                            t.duration_since(SystemTime::now())
+                                .unwrap_or(Duration::ZERO)
+                                + Duration::from_millis(5),
+                        );
                     }
-                    let (g, _) = self.ctl.cv.wait_timeout(w, wait).map_err(|_| DaemonError::Internal("ingest lock poisoned".into()))?;
+                    let (g, _) = self
+                        .ctl
+                        .cv
+                        .wait_timeout(w, wait)
+                        .map_err(|_| DaemonError::Internal("ingest lock poisoned".into()))?;
                     w = g;
                 }
                 let now = Instant::now();
@@ -440,7 +484,12 @@ enum AnyWatcher {
     Poll(notify::PollWatcher),
 }
 
-fn start_watcher(ws: &Workspace, config: &Config, ctl: Arc<IngestCtl>, metrics: Arc<Metrics>) -> notify::Result<AnyWatcher> {
+fn start_watcher(
+    ws: &Workspace,
+    config: &Config,
+    ctl: Arc<IngestCtl>,
+    metrics: Arc<Metrics>,
+) -> notify::Result<AnyWatcher> {
     use notify::Watcher;
     let inbox = ws.inbox();
     let vendors: HashSet<String> = config.vendors.iter().cloned().collect();
@@ -517,17 +566,27 @@ pub async fn run(
     opts: RunOptions,
     shutdown: impl Future<Output = ()>,
 ) -> Result<(), DaemonError> {
-    config.validate().map_err(|e| DaemonError::Config(e.to_string()))?;
+    config
+        .validate()
+        .map_err(|e| DaemonError::Config(e.to_string()))?;
     let config = Arc::new(config);
     let metrics = metrics::install(&config.vendors);
     let ready = Arc::new(Readiness::default());
     let listen = match opts.listen {
         Some(a) => Some(a),
-        None if config.http.enabled => Some(config.listen_addr().map_err(|e| DaemonError::Config(e.to_string()))?),
+        None if config.http.enabled => Some(
+            config
+                .listen_addr()
+                .map_err(|e| DaemonError::Config(e.to_string()))?,
+        ),
         None => None,
     };
     let listener = match listen {
-        Some(a) => Some(crate::http::bind(a).await.map_err(|e| DaemonError::Io(format!("cannot listen on {a}: {e}")))?),
+        Some(a) => Some(
+            crate::http::bind(a)
+                .await
+                .map_err(|e| DaemonError::Io(format!("cannot listen on {a}: {e}")))?,
+        ),
         None => None,
     };
     let bound = listener.as_ref().and_then(|l| l.local_addr().ok());
@@ -540,7 +599,8 @@ pub async fn run(
         let meta = store.workspace_meta()?;
         check_against_meta(&config2, &meta)?;
         let redo = reconcile(&ws2, &config2, &store, Some(&metrics2))?;
-        let pool = scoring::load_pool(&store, &meta, &config2).map_err(|e| DaemonError::Internal(e.to_string()))?;
+        let pool = scoring::load_pool(&store, &meta, &config2)
+            .map_err(|e| DaemonError::Internal(e.to_string()))?;
         let trusted = TrustedArrays::load(&store, &meta)?;
         Ok((store, meta, redo, pool, trusted))
     })
@@ -549,7 +609,12 @@ pub async fn run(
     let (store, meta, redo, pool, trusted) = started;
     ready.folders.store(true, Ordering::SeqCst);
     ready.store.store(true, Ordering::SeqCst);
-    tracing::info!(pool_items = pool.summary.len(), trusted_items = trusted.ids.len(), recovered = redo.len(), "store open");
+    tracing::info!(
+        pool_items = pool.summary.len(),
+        trusted_items = trusted.ids.len(),
+        recovered = redo.len(),
+        "store open"
+    );
 
     let shared = Arc::new(Shared::default());
     let (handle, worker_thread) = scoring::spawn(Worker {
@@ -616,7 +681,13 @@ pub async fn run(
 
     // Housekeeping: gauges, readiness notification.
     let hk = {
-        let (ws, store, metrics, ready, mut rx) = (ws.clone(), store.clone(), metrics.clone(), ready.clone(), stop_rx.clone());
+        let (ws, store, metrics, ready, mut rx) = (
+            ws.clone(),
+            store.clone(),
+            metrics.clone(),
+            ready.clone(),
+            stop_rx.clone(),
+        );
         let on_ready = opts.on_ready.clone();
         tokio::spawn(async move {
             let mut notified = false;
@@ -640,7 +711,9 @@ pub async fn run(
                 if last_gauges.elapsed() >= Duration::from_secs(5) {
                     last_gauges = Instant::now();
                     let (ws, store, metrics) = (ws.clone(), store.clone(), metrics.clone());
-                    let _ = tokio::task::spawn_blocking(move || refresh_gauges(&ws, &store, &metrics)).await;
+                    let _ =
+                        tokio::task::spawn_blocking(move || refresh_gauges(&ws, &store, &metrics))
+                            .await;
                 }
             }
         })
@@ -686,8 +759,10 @@ pub async fn run(
             .await
             .map_err(|e| DaemonError::Internal(e.to_string()))?
     };
-    let worker_res = worker_res.map_err(|_| DaemonError::Internal("the scoring thread panicked".into()))?;
-    let ingest_res = ingest_res.map_err(|_| DaemonError::Internal("the ingest thread panicked".into()))?;
+    let worker_res =
+        worker_res.map_err(|_| DaemonError::Internal("the scoring thread panicked".into()))?;
+    let ingest_res =
+        ingest_res.map_err(|_| DaemonError::Internal("the ingest thread panicked".into()))?;
     worker_res.map_err(|e| match e {
         scoring::ScoringError::Store(s) => DaemonError::Store(s),
         scoring::ScoringError::Action(a) => DaemonError::Io(a.to_string()),

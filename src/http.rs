@@ -72,7 +72,10 @@ pub fn router(metrics: Arc<Metrics>, ready: Arc<Readiness>) -> Router {
 async fn metrics_handler(State(s): State<AppState>) -> impl IntoResponse {
     s.metrics.ready(s.ready.is_ready());
     (
-        [(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")],
+        [(
+            header::CONTENT_TYPE,
+            "text/plain; version=0.0.4; charset=utf-8",
+        )],
         s.metrics.render(),
     )
 }
@@ -83,7 +86,11 @@ async fn readyz(
 ) -> impl IntoResponse {
     let ok = s.ready.is_ready();
     s.metrics.ready(ok);
-    let code = if ok { StatusCode::OK } else { StatusCode::SERVICE_UNAVAILABLE };
+    let code = if ok {
+        StatusCode::OK
+    } else {
+        StatusCode::SERVICE_UNAVAILABLE
+    };
     let body = if q.contains_key("verbose") {
         let mut b = String::new();
         for (name, pass) in s.ready.checks() {

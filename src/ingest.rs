@@ -104,7 +104,12 @@ pub fn is_ignored_name(name: &OsStr, kind: EntryKind) -> bool {
 }
 
 /// List a vendor folder. `quiet` is the quiet period; entries younger than it wait.
-pub fn scan_vendor(dir: &Path, vendor: &str, quiet: Duration, now: SystemTime) -> std::io::Result<Scan> {
+pub fn scan_vendor(
+    dir: &Path,
+    vendor: &str,
+    quiet: Duration,
+    now: SystemTime,
+) -> std::io::Result<Scan> {
     let mut scan = Scan::default();
     for entry in std::fs::read_dir(dir)? {
         let entry = entry?;
@@ -147,7 +152,8 @@ pub fn scan_vendor(dir: &Path, vendor: &str, quiet: Duration, now: SystemTime) -
             });
         }
     }
-    scan.ready.sort_by(|a, b| a.mtime.cmp(&b.mtime).then_with(|| a.name.cmp(&b.name)));
+    scan.ready
+        .sort_by(|a, b| a.mtime.cmp(&b.mtime).then_with(|| a.name.cmp(&b.name)));
     Ok(scan)
 }
 
@@ -246,7 +252,12 @@ pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Clai
         _ => "bin",
     };
     let file_name = format!("{id}.{ext}");
-    let mut record = BatchRecord::claimed(id.clone(), &c.vendor, escape_name(&c.name), file_name.clone());
+    let mut record = BatchRecord::claimed(
+        id.clone(),
+        &c.vendor,
+        escape_name(&c.name),
+        file_name.clone(),
+    );
     record.discovered_at = c.mtime.into();
     store.record_claim(&record)?;
     let from = ws.vendor_inbox(&c.vendor);
@@ -257,7 +268,13 @@ pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Clai
     };
     let from_dir = File::open(&from).map_err(io("open", &from))?;
     let to_dir = File::open(&to).map_err(io("open", &to))?;
-    match rustix::fs::renameat_with(&from_dir, c.name.as_os_str(), &to_dir, file_name.as_str(), RenameFlags::NOREPLACE) {
+    match rustix::fs::renameat_with(
+        &from_dir,
+        c.name.as_os_str(),
+        &to_dir,
+        file_name.as_str(),
+        RenameFlags::NOREPLACE,
+    ) {
         Ok(()) => {}
         Err(e) if e == rustix::io::Errno::NOENT => {
             store.forget_claim(&id)?;
@@ -274,7 +291,10 @@ pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Clai
     }
     to_dir.sync_all().map_err(io("fsync", &to))?;
     from_dir.sync_all().map_err(io("fsync", &from))?;
-    Ok(Some(Claimed { record, kind: c.kind }))
+    Ok(Some(Claimed {
+        record,
+        kind: c.kind,
+    }))
 }
 
 /// The bytes of a claimed file, read through one descriptor.
@@ -298,7 +318,10 @@ fn reject(code: &str, detail: impl Into<String>) -> RejectReason {
 /// Open `processing/<file_name>` without following links and read it, checking that it is a regular file
 /// with one link and at most `max_bytes` bytes. An input problem is `Err(Ok(reason))`; a daemon-side I/O
 /// error is `Err(Err(..))`.
-pub fn read_claimed(path: &Path, max_bytes: u64) -> Result<ReadFile, Result<RejectReason, std::io::Error>> {
+pub fn read_claimed(
+    path: &Path,
+    max_bytes: u64,
+) -> Result<ReadFile, Result<RejectReason, std::io::Error>> {
     let fd = match rustix::fs::open(
         path,
         OFlags::RDONLY | OFlags::NOFOLLOW | OFlags::NONBLOCK | OFlags::CLOEXEC | OFlags::NOCTTY,
@@ -306,7 +329,10 @@ pub fn read_claimed(path: &Path, max_bytes: u64) -> Result<ReadFile, Result<Reje
     ) {
         Ok(fd) => fd,
         Err(e) if e == rustix::io::Errno::LOOP => {
-            return Err(Ok(reject("symlink", "the entry is a symbolic link; links are never followed")))
+            return Err(Ok(reject(
+                "symlink",
+                "the entry is a symbolic link; links are never followed",
+            )))
         }
         Err(e) if e == rustix::io::Errno::NOENT => return Err(Err(e.into())),
         Err(e) => {
@@ -321,10 +347,16 @@ pub fn read_claimed(path: &Path, max_bytes: u64) -> Result<ReadFile, Result<Reje
     match ftype {
         rustix::fs::FileType::RegularFile => {}
         rustix::fs::FileType::Directory => {
-            return Err(Ok(reject("not_regular_file", "the entry is a directory; only files are batches")))
+            return Err(Ok(reject(
+                "not_regular_file",
+                "the entry is a directory; only files are batches",
+            )))
         }
         rustix::fs::FileType::Symlink => {
-            return Err(Ok(reject("symlink", "the entry is a symbolic link; links are never followed")))
+            return Err(Ok(reject(
+                "symlink",
+                "the entry is a symbolic link; links are never followed",
+            )))
         }
         other => {
             return Err(Ok(reject(
@@ -345,7 +377,10 @@ pub fn read_claimed(path: &Path, max_bytes: u64) -> Result<ReadFile, Result<Reje
     if st.st_size as u64 > max_bytes {
         return Err(Ok(reject(
             "too_large",
-            format!("the file has {} bytes, more than the limit of {max_bytes}", st.st_size),
+            format!(
+                "the file has {} bytes, more than the limit of {max_bytes}",
+                st.st_size
+            ),
         )));
     }
     // Blocking reads from here on (a regular file never blocks on O_NONBLOCK anyway).
@@ -396,7 +431,10 @@ pub fn name_problem(escaped_original: &str) -> RejectReason {
             "the file name is not valid UTF-8, contains control, bidirectional-override or path characters, or is too long; rename it",
         )
     } else {
-        reject("unsupported_type", "the file name does not end in .csv or .jsonl")
+        reject(
+            "unsupported_type",
+            "the file name does not end in .csv or .jsonl",
+        )
     }
 }
 
@@ -416,7 +454,8 @@ pub fn parse_claimed(
         row: e.row,
         column: e.column.clone(),
     };
-    let table = data::parse_table(bytes, format, escaped_name, &opts, Some(features)).map_err(from_data)?;
+    let table =
+        data::parse_table(bytes, format, escaped_name, &opts, Some(features)).map_err(from_data)?;
     let labels = table.class_indices(classes).map_err(|e| RejectReason {
         code: "unknown_label".into(),
         ..from_data(e)
@@ -455,7 +494,14 @@ pub fn prepare(
     };
     let format = format_of(OsStr::new(&record.file_name));
     let parsed = match format {
-        Some(f) => parse_claimed(f, &record.original_name, &read.bytes, config, features, classes),
+        Some(f) => parse_claimed(
+            f,
+            &record.original_name,
+            &read.bytes,
+            config,
+            features,
+            classes,
+        ),
         None => Err(name_problem(&record.original_name)),
     };
     Some(match parsed {
@@ -481,7 +527,14 @@ mod tests {
 
     #[test]
     fn temporary_names_are_ignored() {
-        for n in [".x.csv", "a.csv.part", "a.CSV.PART", "b.filepart", "c.tmp", "d.csv.done"] {
+        for n in [
+            ".x.csv",
+            "a.csv.part",
+            "a.CSV.PART",
+            "b.filepart",
+            "c.tmp",
+            "d.csv.done",
+        ] {
             assert!(is_ignored_name(OsStr::new(n), EntryKind::File), "{n}");
         }
         assert!(is_ignored_name(OsStr::new("tmp"), EntryKind::Dir));

@@ -117,7 +117,9 @@ fn opts(name: &str, help: &str) -> Opts {
 }
 
 fn hopts(name: &str, help: &str, buckets: Vec<f64>) -> HistogramOpts {
-    HistogramOpts::new(name, help).namespace(NS).buckets(buckets)
+    HistogramOpts::new(name, help)
+        .namespace(NS)
+        .buckets(buckets)
 }
 
 impl Metrics {
@@ -135,16 +137,23 @@ impl Metrics {
             &["version", "revision"]
         )?);
         build
-            .with_label_values(&[env!("CARGO_PKG_VERSION"), option_env!("LABELWEIR_REVISION").unwrap_or("unknown")])
+            .with_label_values(&[
+                env!("CARGO_PKG_VERSION"),
+                option_env!("LABELWEIR_REVISION").unwrap_or("unknown"),
+            ])
             .set(1);
         let stage_buckets = vec![
-            0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0,
+            0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,
+            30.0,
         ];
         let m = Self {
             vendors: vendors.iter().cloned().collect(),
             classes: RwLock::new(HashSet::new()),
             files_discovered: reg!(IntCounterVec::new(
-                opts("files_discovered_total", "Files found in a vendor's drop folder."),
+                opts(
+                    "files_discovered_total",
+                    "Files found in a vendor's drop folder."
+                ),
                 &["vendor"]
             )?),
             batches: reg!(IntCounterVec::new(
@@ -152,7 +161,10 @@ impl Metrics {
                 &["vendor", "outcome"]
             )?),
             batch_items: reg!(IntCounterVec::new(
-                opts("batch_items_total", "Items in batches, by vendor and outcome."),
+                opts(
+                    "batch_items_total",
+                    "Items in batches, by vendor and outcome."
+                ),
                 &["vendor", "outcome"]
             )?),
             batch_bytes: reg!(IntCounterVec::new(
@@ -168,23 +180,39 @@ impl Metrics {
                 &["vendor"]
             )?),
             repair_cost_last: reg!(GaugeVec::new(
-                opts("repair_cost_last", "Repair cost of the vendor's last scored batch."),
+                opts(
+                    "repair_cost_last",
+                    "Repair cost of the vendor's last scored batch."
+                ),
                 &["vendor"]
             )?),
             repair_cost_baseline: reg!(GaugeVec::new(
-                opts("repair_cost_baseline", "Median repair cost of the vendor's accepted history."),
+                opts(
+                    "repair_cost_baseline",
+                    "Median repair cost of the vendor's accepted history."
+                ),
                 &["vendor"]
             )?),
             stage_duration: reg!(HistogramVec::new(
-                hopts("batch_stage_duration_seconds", "Time per pipeline stage per batch.", stage_buckets),
+                hopts(
+                    "batch_stage_duration_seconds",
+                    "Time per pipeline stage per batch.",
+                    stage_buckets
+                ),
                 &["stage"]
             )?),
             inbox_files: reg!(IntGaugeVec::new(
-                opts("inbox_files", "Files waiting in the vendor's drop folder (temporary names excluded)."),
+                opts(
+                    "inbox_files",
+                    "Files waiting in the vendor's drop folder (temporary names excluded)."
+                ),
                 &["vendor"]
             )?),
             inbox_oldest_age: reg!(GaugeVec::new(
-                opts("inbox_oldest_file_age_seconds", "Age of the oldest waiting file (0 when none)."),
+                opts(
+                    "inbox_oldest_file_age_seconds",
+                    "Age of the oldest waiting file (0 when none)."
+                ),
                 &["vendor"]
             )?),
             last_processed: reg!(GaugeVec::new(
@@ -210,7 +238,10 @@ impl Metrics {
                 "unknown_inbox_folders",
                 "Entries in inbox/ that are not a configured vendor (ignored)."
             ))?),
-            pool_items: reg!(IntGauge::with_opts(opts("pool_items", "Items in the accepted pool."))?),
+            pool_items: reg!(IntGauge::with_opts(opts(
+                "pool_items",
+                "Items in the accepted pool."
+            ))?),
             trusted_items: reg!(IntGaugeVec::new(
                 opts("trusted_items", "Trusted items per class."),
                 &["class"]
@@ -232,10 +263,16 @@ impl Metrics {
                 "Bytes of batch files waiting in quarantine."
             ))?),
             notices_written: reg!(IntCounterVec::new(
-                opts("notices_written_total", "Vendor notice files written, by format."),
+                opts(
+                    "notices_written_total",
+                    "Vendor notice files written, by format."
+                ),
                 &["vendor", "format"]
             )?),
-            store_size: reg!(IntGauge::with_opts(opts("store_size_bytes", "Size of the store on disk."))?),
+            store_size: reg!(IntGauge::with_opts(opts(
+                "store_size_bytes",
+                "Size of the store on disk."
+            ))?),
             store_flush: reg!(Histogram::with_opts(hopts(
                 "store_flush_duration_seconds",
                 "Duration of flushed store transactions.",
@@ -246,10 +283,16 @@ impl Metrics {
                 &["op"]
             )?),
             free_bytes: reg!(IntGaugeVec::new(
-                opts("filesystem_free_bytes", "Free bytes on the filesystem (available to the daemon)."),
+                opts(
+                    "filesystem_free_bytes",
+                    "Free bytes on the filesystem (available to the daemon)."
+                ),
                 &["mount"]
             )?),
-            ready: reg!(IntGauge::with_opts(opts("ready", "1 when /readyz answers 200."))?),
+            ready: reg!(IntGauge::with_opts(opts(
+                "ready",
+                "1 when /readyz answers 200."
+            ))?),
             queue_depth: reg!(IntGauge::with_opts(opts(
                 "scoring_queue_depth",
                 "Parsed batches waiting for the scoring worker."
@@ -310,16 +353,27 @@ impl Metrics {
     }
 
     /// A batch reached an outcome (`OUTCOMES`), with its item and byte counts.
-    pub fn batch_outcome(&self, vendor: &str, outcome: &str, items: u64, bytes: u64, now_unix: f64) {
+    pub fn batch_outcome(
+        &self,
+        vendor: &str,
+        outcome: &str,
+        items: u64,
+        bytes: u64,
+        now_unix: f64,
+    ) {
         if !self.known(vendor) || !OUTCOMES.contains(&outcome) {
             return;
         }
         self.batches.with_label_values(&[vendor, outcome]).inc();
-        self.batch_items.with_label_values(&[vendor, outcome]).inc_by(items);
+        self.batch_items
+            .with_label_values(&[vendor, outcome])
+            .inc_by(items);
         if bytes > 0 {
             self.batch_bytes.with_label_values(&[vendor]).inc_by(bytes);
         }
-        self.last_processed.with_label_values(&[vendor]).set(now_unix);
+        self.last_processed
+            .with_label_values(&[vendor])
+            .set(now_unix);
     }
 
     /// A batch was scored.
@@ -327,17 +381,25 @@ impl Metrics {
         if !self.known(vendor) || !repair_cost.is_finite() {
             return;
         }
-        self.repair_cost.with_label_values(&[vendor]).observe(repair_cost);
-        self.repair_cost_last.with_label_values(&[vendor]).set(repair_cost);
+        self.repair_cost
+            .with_label_values(&[vendor])
+            .observe(repair_cost);
+        self.repair_cost_last
+            .with_label_values(&[vendor])
+            .set(repair_cost);
         if let Some(b) = baseline_median.filter(|b| b.is_finite()) {
-            self.repair_cost_baseline.with_label_values(&[vendor]).set(b);
+            self.repair_cost_baseline
+                .with_label_values(&[vendor])
+                .set(b);
         }
     }
 
     /// A stage (`STAGES`) of one batch took this long.
     pub fn stage(&self, stage: &str, d: Duration) {
         if STAGES.contains(&stage) {
-            self.stage_duration.with_label_values(&[stage]).observe(d.as_secs_f64());
+            self.stage_duration
+                .with_label_values(&[stage])
+                .observe(d.as_secs_f64());
         }
     }
 
@@ -345,7 +407,9 @@ impl Metrics {
     pub fn inbox_backlog(&self, vendor: &str, files: i64, oldest_age_secs: f64) {
         if self.known(vendor) {
             self.inbox_files.with_label_values(&[vendor]).set(files);
-            self.inbox_oldest_age.with_label_values(&[vendor]).set(oldest_age_secs);
+            self.inbox_oldest_age
+                .with_label_values(&[vendor])
+                .set(oldest_age_secs);
         }
     }
 
@@ -398,7 +462,9 @@ impl Metrics {
     /// A notice file was written (`format`: `json`, `markdown` or `csv`).
     pub fn notice_written(&self, vendor: &str, format: &'static str) {
         if self.known(vendor) {
-            self.notices_written.with_label_values(&[vendor, format]).inc();
+            self.notices_written
+                .with_label_values(&[vendor, format])
+                .inc();
         }
     }
 
@@ -410,7 +476,9 @@ impl Metrics {
     /// Free space on a filesystem (`MOUNTS`).
     pub fn free_bytes(&self, mount: &str, bytes: u64) {
         if MOUNTS.contains(&mount) {
-            self.free_bytes.with_label_values(&[mount]).set(bytes.min(i64::MAX as u64) as i64);
+            self.free_bytes
+                .with_label_values(&[mount])
+                .set(bytes.min(i64::MAX as u64) as i64);
         }
     }
 
@@ -432,7 +500,9 @@ impl Metrics {
 
 #[cfg(target_os = "linux")]
 fn r_register_process(r: &Registry) {
-    let _ = r.register(Box::new(prometheus::process_collector::ProcessCollector::for_self()));
+    let _ = r.register(Box::new(
+        prometheus::process_collector::ProcessCollector::for_self(),
+    ));
 }
 
 #[cfg(not(target_os = "linux"))]
@@ -449,7 +519,10 @@ mod tests {
         m.batch_outcome("evil\"vendor", "accepted", 10, 100, 1.0);
         m.batch_outcome("north", "made_up", 1, 1, 1.0);
         let text = m.render();
-        assert!(text.contains("labelweir_batches_total{outcome=\"accepted\",vendor=\"north\"} 1"), "{text}");
+        assert!(
+            text.contains("labelweir_batches_total{outcome=\"accepted\",vendor=\"north\"} 1"),
+            "{text}"
+        );
         assert!(!text.contains("evil"));
         assert!(!text.contains("made_up"));
         assert!(text.contains("labelweir_build_info{"));

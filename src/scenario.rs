@@ -1030,3 +1030,63 @@ pub fn write_jsonl(
     let f = std::io::BufWriter::new(std::fs::File::create(path)?);
     crate::data::write_jsonl(f, ("id", "label"), ids, labels, names, x)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use linfa::prelude::*;
+    use ndarray::Array1;
+
+    /// Standardise `test` with `train`'s column means and standard deviations.
+    fn standardise(train: &Array2<f64>, test: &Array2<f64>) -> (Array2<f64>, Array2<f64>) {
+        let m = train.mean_axis(Axis(0)).unwrap();
+        let s = train
+            .std_axis(Axis(0), 0.0)
+            .mapv(|v| if v > 1e-12 { v } else { 1.0 });
+        ((train - &m) / &s, (test - &m) / &s)
+    }
+
+    /// Append squares of every column (a quadratic feature expansion).
+    fn with_squares(x: &Array2<f64>) -> Array2<f64> {
+        ndarray::concatenate(Axis(1), &[x.view(), x.mapv(|v| v * v).view()]).unwrap()
+    }
+
+    /// Held-out accuracy of L2-regularised multinomial logistic regression from the `linfa-logistic`
+    /// crate (an outside reference learner), trained on `n` items.
+    fn holdout_accuracy(
+        train: (Array2<f64>, Vec<usize>),
+        test: (Array2<f64>, Vec<usize>),
+        quad: bool,
+    ) -> f64 {
+        let (mut xa, mut xb) = standardise(&train.0, &test.0);
+        if quad {
+            let (a, b) = standardise(&with_squares(&xa), &with_squares(&xb));
+            xa = a;
+            xb = b;
+        }
+        let ds = Dataset::new(xa, Array1::from(train.1));
+        let model = linfa_logistic::MultiLogisticRegression::default()
+            .alpha(1.0)
+            .max_iterations(400)
+            .fit(&ds)
+            .unwrap();
+        let pred = model.predict(&xb);
+        let mut conf = [[0usize; 8]; 8];
+        for (p, t) in pred.iter().zip(&test.1) {
+            conf[*t][*p] += 1;
+        }
+        for (k, row) in conf.iter().enumerate() {
+            println!("{:>10} {:?}", CLASS_NAMES[k], row);
+        }
+        pred.iter().zip(&test.1).filter(|(a, b)| a == b).count() as f64 / test.1.len() as f64
+    }
+
+    #[test]
+    fn explore() {
+        let plant = Plant::new(1);
+        let lin = holdout_accuracy(plant.sample(3000, 10), plant.sample(2000, 11), false);
+        let quad = holdout_accuracy(plant.sample(3000, 10), plant.sample(2000, 11), true);
+        println!("linear {lin:.3} quad {quad:.3}");
+        panic!("explore");
+    }
+}

@@ -34,8 +34,8 @@ use crate::metrics::Metrics;
 use crate::model::{self, Assessment, PoolInput, PoolSummary, TrustedInput};
 use crate::policy::{self, Decision, Reason, ReasonCode, Verdict};
 use crate::store::{
-    AuditRecord, BatchRecord, BatchScores, Outcome, PoolEntry, RejectReason, SavedSummary, Store, StoreError,
-    Suspect, WorkspaceMeta, RECORD_VERSION,
+    AuditRecord, BatchRecord, BatchScores, Outcome, PoolEntry, RejectReason, SavedSummary, Store,
+    StoreError, Suspect, WorkspaceMeta, RECORD_VERSION,
 };
 
 /// Called after every settled batch (the demo prints verdicts through it).
@@ -168,7 +168,11 @@ impl TrustedArrays {
             ids.push(t.id);
             x.extend_from_slice(&t.features);
             y.push(k);
-            w.push(if t.weight.is_finite() && t.weight > 0.0 { t.weight } else { 1.0 });
+            w.push(if t.weight.is_finite() && t.weight > 0.0 {
+                t.weight
+            } else {
+                1.0
+            });
         }
         let n = ids.len();
         Ok(Self {
@@ -207,7 +211,11 @@ fn model_err(e: impl std::fmt::Display) -> ScoringError {
 }
 
 /// Build the summary exactly from the stored pool.
-pub fn rebuild_pool(store: &Store, meta: &WorkspaceMeta, config: &Config) -> Result<PoolState, ScoringError> {
+pub fn rebuild_pool(
+    store: &Store,
+    meta: &WorkspaceMeta,
+    config: &Config,
+) -> Result<PoolState, ScoringError> {
     let epoch = store.pool_epoch()?;
     let (x, y, last) = store.pool_matrix(meta.features.len())?;
     let k = meta.classes.len();
@@ -228,7 +236,11 @@ pub fn rebuild_pool(store: &Store, meta: &WorkspaceMeta, config: &Config) -> Res
 
 /// Load the saved summary (or rebuild it when missing or from another pool epoch) and absorb what was
 /// accepted since it was saved.
-pub fn load_pool(store: &Store, meta: &WorkspaceMeta, config: &Config) -> Result<PoolState, ScoringError> {
+pub fn load_pool(
+    store: &Store,
+    meta: &WorkspaceMeta,
+    config: &Config,
+) -> Result<PoolState, ScoringError> {
     let epoch = store.pool_epoch()?;
     let mut state = match store.saved_summary()? {
         Some(s) if s.epoch == epoch && s.summary.feature_map == meta.feature_map => PoolState {
@@ -244,7 +256,12 @@ pub fn load_pool(store: &Store, meta: &WorkspaceMeta, config: &Config) -> Result
 }
 
 /// Absorb pool entries past the watermark; rebuild exactly if items left the pool.
-pub fn catch_up(state: &mut PoolState, store: &Store, meta: &WorkspaceMeta, config: &Config) -> Result<(), ScoringError> {
+pub fn catch_up(
+    state: &mut PoolState,
+    store: &Store,
+    meta: &WorkspaceMeta,
+    config: &Config,
+) -> Result<(), ScoringError> {
     if store.pool_epoch()? != state.epoch {
         *state = rebuild_pool(store, meta, config)?;
     }
@@ -296,7 +313,12 @@ pub struct Worker {
 }
 
 /// Start the worker thread. Returns its handle and the thread (which returns the final pool state).
-pub fn spawn(mut worker: Worker) -> std::io::Result<(ScoringHandle, std::thread::JoinHandle<Result<(), ScoringError>>)> {
+pub fn spawn(
+    mut worker: Worker,
+) -> std::io::Result<(
+    ScoringHandle,
+    std::thread::JoinHandle<Result<(), ScoringError>>,
+)> {
     let cap = worker.config.ingest.queue_capacity;
     let (tx, rx) = std::sync::mpsc::sync_channel::<Job>(cap);
     let handle = ScoringHandle {
@@ -324,7 +346,11 @@ impl Worker {
             }
             match rx.recv_timeout(Duration::from_millis(500)) {
                 Ok(job) => {
-                    let depth = self.shared.queue_depth.fetch_sub(1, Ordering::SeqCst).saturating_sub(1);
+                    let depth = self
+                        .shared
+                        .queue_depth
+                        .fetch_sub(1, Ordering::SeqCst)
+                        .saturating_sub(1);
                     self.metrics.queue_depth(depth);
                     if self.shared.cancel.load(Ordering::SeqCst) {
                         // Abandon at a safe point: the file stays in processing/ and is redone at start.
@@ -337,7 +363,12 @@ impl Worker {
                 Err(RecvTimeoutError::Timeout) => {}
                 Err(RecvTimeoutError::Disconnected) => break Ok(()),
             }
-            if let Err(e) = self.housekeeping(&mut last_save, &mut last_refresh, &refreshed, &mut refreshing) {
+            if let Err(e) = self.housekeeping(
+                &mut last_save,
+                &mut last_refresh,
+                &refreshed,
+                &mut refreshing,
+            ) {
                 break Err(e);
             }
         };
@@ -353,7 +384,8 @@ impl Worker {
         let n = self.pool.summary.len();
         self.shared.pool_items.store(n, Ordering::SeqCst);
         self.metrics.pool_items(n);
-        self.metrics.trusted(&self.trusted.per_class(&self.meta.classes));
+        self.metrics
+            .trusted(&self.trusted.per_class(&self.meta.classes));
     }
 
     fn housekeeping(
@@ -374,8 +406,14 @@ impl Worker {
         if let Some(r) = done {
             *refreshing = false;
             match r {
-                Ok(fresh) if fresh.epoch == self.pool.epoch && fresh.through_seq <= self.pool.through_seq => {
-                    tracing::info!(items = fresh.summary.len(), "exact pool summary refresh done");
+                Ok(fresh)
+                    if fresh.epoch == self.pool.epoch
+                        && fresh.through_seq <= self.pool.through_seq =>
+                {
+                    tracing::info!(
+                        items = fresh.summary.len(),
+                        "exact pool summary refresh done"
+                    );
                     self.pool = fresh;
                     self.catch_up_logged();
                 }
@@ -394,8 +432,12 @@ impl Worker {
         {
             *last_refresh = Instant::now();
             *refreshing = true;
-            let (store, meta, config, slot) =
-                (self.store.clone(), self.meta.clone(), self.config.clone(), refreshed.clone());
+            let (store, meta, config, slot) = (
+                self.store.clone(),
+                self.meta.clone(),
+                self.config.clone(),
+                refreshed.clone(),
+            );
             let spawned = std::thread::Builder::new()
                 .name("labelweir-refresh".into())
                 .spawn(move || {
@@ -410,7 +452,10 @@ impl Worker {
                 *refreshing = false;
             }
         }
-        if self.pool.dirty && last_save.elapsed() >= Duration::from_secs(self.config.pool.summary_save_interval_secs) {
+        if self.pool.dirty
+            && last_save.elapsed()
+                >= Duration::from_secs(self.config.pool.summary_save_interval_secs)
+        {
             *last_save = Instant::now();
             save_pool(&mut self.pool, &self.store)?;
         }
@@ -440,7 +485,11 @@ impl Worker {
     fn process(&mut self, job: Job) -> Result<(), ScoringError> {
         let Job { mut record, input } = job;
         let settled = match input {
-            JobInput::Rejected { reason, bytes, sha256 } => {
+            JobInput::Rejected {
+                reason,
+                bytes,
+                sha256,
+            } => {
                 let t = Instant::now();
                 record.outcome = Some(Outcome::Rejected);
                 record.bytes = bytes.as_ref().map(|b| b.len() as u64);
@@ -451,11 +500,18 @@ impl Worker {
                     .reason(reason.code.clone())
                     .detail(serde_json::json!({ "detail": reason.detail, "row": reason.row, "column": reason.column, "original_name": record.original_name }));
                 record.reject = Some(reason);
-                let rec = self.store.record_verdict(&record, audit, false, None, None, None)?;
+                let rec = self
+                    .store
+                    .record_verdict(&record, audit, false, None, None, None)?;
                 self.metrics.stage("persist", t.elapsed());
                 self.file(rec, bytes.as_deref())?
             }
-            JobInput::Parsed { bytes, sha256, table, labels } => {
+            JobInput::Parsed {
+                bytes,
+                sha256,
+                table,
+                labels,
+            } => {
                 record.sha256 = Some(sha256.clone());
                 record.bytes = Some(bytes.len() as u64);
                 record.items = Some(table.len());
@@ -468,7 +524,9 @@ impl Worker {
                         .outcome(Outcome::Duplicate.as_str())
                         .reason("duplicate")
                         .detail(serde_json::json!({ "duplicate_of": first, "sha256": sha256 }));
-                    let rec = self.store.record_verdict(&record, audit, false, None, None, None)?;
+                    let rec = self
+                        .store
+                        .record_verdict(&record, audit, false, None, None, None)?;
                     self.metrics.stage("persist", t.elapsed());
                     self.file(rec, Some(&bytes))?
                 } else {
@@ -500,9 +558,20 @@ impl Worker {
         Ok(())
     }
 
-    fn file(&mut self, rec: BatchRecord, bytes: Option<&[u8]>) -> Result<BatchRecord, ScoringError> {
+    fn file(
+        &mut self,
+        rec: BatchRecord,
+        bytes: Option<&[u8]>,
+    ) -> Result<BatchRecord, ScoringError> {
         let t = Instant::now();
-        let settled = crate::actions::settle(&self.ws, &self.config, &self.store, Some(&self.metrics), &rec, bytes)?;
+        let settled = crate::actions::settle(
+            &self.ws,
+            &self.config,
+            &self.store,
+            Some(&self.metrics),
+            &rec,
+            bytes,
+        )?;
         self.metrics.stage("notice", t.elapsed());
         Ok(settled)
     }
@@ -561,7 +630,11 @@ impl Worker {
         let names = &self.meta.classes;
         let class = |k: usize| names.get(k).cloned().unwrap_or_else(|| k.to_string());
         if let Ok(a) = &assessment {
-            let flagged = a.items.iter().filter(|s| s.proposed_label != s.label).count();
+            let flagged = a
+                .items
+                .iter()
+                .filter(|s| s.proposed_label != s.label)
+                .count();
             record.scores = Some(BatchScores {
                 repair_cost: a.repair_cost,
                 damage: a.damage,
@@ -588,10 +661,17 @@ impl Worker {
                 .iter()
                 .filter_map(|b| self.trusted.ids.get(b.index).cloned())
                 .collect();
-            self.metrics
-                .batch_scored(&record.vendor, a.repair_cost, Some(decision.baseline.median));
+            self.metrics.batch_scored(
+                &record.vendor,
+                a.repair_cost,
+                Some(decision.baseline.median),
+            );
         }
-        record.outcome = Some(if accept { Outcome::Accepted } else { Outcome::Quarantined });
+        record.outcome = Some(if accept {
+            Outcome::Accepted
+        } else {
+            Outcome::Quarantined
+        });
         record.decision = Some(decision.clone());
         let codes: Vec<&str> = decision.reasons.iter().map(|r| r.code.as_str()).collect();
         let audit = AuditRecord::new("daemon", "verdict")
@@ -624,7 +704,11 @@ impl Worker {
             audit,
             true,
             accept.then_some(&history),
-            if accept { None } else { assessment.as_ref().ok() },
+            if accept {
+                None
+            } else {
+                assessment.as_ref().ok()
+            },
             pool,
         )?;
         if accept {

@@ -509,7 +509,8 @@ impl PoolEntry {
             .ok_or_else(|| corrupt("short header"))
             .and_then(|h| serde_json::from_slice(h).map_err(|e| corrupt(&e.to_string())))?;
         let rest = &bytes[4 + hl..];
-        if rest.len() != 8 * header.ids.len() * header.n_features || header.labels.len() != header.ids.len()
+        if rest.len() != 8 * header.ids.len() * header.n_features
+            || header.labels.len() != header.ids.len()
         {
             return Err(corrupt("feature block does not match the header"));
         }
@@ -652,8 +653,9 @@ impl Store {
             .flush_every_ms(flush)
             .open()
             .map_err(|e| match e {
-                sled::Error::Io(ref io) if io.kind() == std::io::ErrorKind::WouldBlock
-                    || io.to_string().contains("lock") =>
+                sled::Error::Io(ref io)
+                    if io.kind() == std::io::ErrorKind::WouldBlock
+                        || io.to_string().contains("lock") =>
                 {
                     StoreError::Locked(dir.to_path_buf())
                 }
@@ -783,10 +785,13 @@ impl Store {
 
     /// A new batch id (`b` + 8+ digits; monotonic, unique across restarts).
     pub fn new_batch_id(&self) -> Result<String, StoreError> {
-        let n = self
-            .trees[T_META]
+        let n = self.trees[T_META]
             .update_and_fetch(META_BATCH_SEQ, |old| {
-                Some((u64_of(old.map(sled::IVec::from)) + 1).to_be_bytes().to_vec())
+                Some(
+                    (u64_of(old.map(sled::IVec::from)) + 1)
+                        .to_be_bytes()
+                        .to_vec(),
+                )
             })
             .map_err(StoreError::sled("batch id"))?;
         Ok(format!("b{:08}", u64_of(n)))
@@ -808,7 +813,8 @@ impl Store {
         let id = batch_id.to_string();
         self.run_tx("forget claim", |t| {
             if let Some(v) = t[T_BATCHES].get(id.as_bytes())? {
-                let rec: BatchRecord = dec("batch", id.as_bytes(), &v).map_err(ConflictableTransactionError::Abort)?;
+                let rec: BatchRecord =
+                    dec("batch", id.as_bytes(), &v).map_err(ConflictableTransactionError::Abort)?;
                 if rec.state == BatchState::Claimed {
                     t[T_BATCHES].remove(id.as_bytes())?;
                 }
@@ -938,7 +944,16 @@ impl Store {
             PoolChange::Add(e) => (Some(e.encode()?), None),
             PoolChange::Remove => (None, Some(batch_id)),
         };
-        self.apply(record, expect, audit, None, None, None, pool_add, pool_remove)
+        self.apply(
+            record,
+            expect,
+            audit,
+            None,
+            None,
+            None,
+            pool_add,
+            pool_remove,
+        )
     }
 
     #[allow(clippy::too_many_arguments)]
@@ -1022,7 +1037,10 @@ impl Store {
     // ----- audit -----
 
     fn prepare_audit(&self, mut a: AuditRecord) -> Result<([u8; 8], Vec<u8>), StoreError> {
-        let id = self.db.generate_id().map_err(StoreError::sled("audit id"))?;
+        let id = self
+            .db
+            .generate_id()
+            .map_err(StoreError::sled("audit id"))?;
         a.seq = id;
         Ok((id.to_be_bytes(), enc("audit", &a)?))
     }
@@ -1039,7 +1057,10 @@ impl Store {
             }
             Ok(())
         })?;
-        Ok(prepared.iter().map(|(k, _)| u64::from_be_bytes(*k)).collect())
+        Ok(prepared
+            .iter()
+            .map(|(k, _)| u64::from_be_bytes(*k))
+            .collect())
     }
 
     /// The audit trail in order, starting after sequence number `after` (0: from the start).
@@ -1111,7 +1132,10 @@ impl Store {
     }
 
     /// The whole pool as one `(x, y)` pair (for an exact refresh), plus the highest sequence included.
-    pub fn pool_matrix(&self, n_features: usize) -> Result<(ndarray::Array2<f64>, Vec<usize>, u64), StoreError> {
+    pub fn pool_matrix(
+        &self,
+        n_features: usize,
+    ) -> Result<(ndarray::Array2<f64>, Vec<usize>, u64), StoreError> {
         let mut x = Vec::new();
         let mut y = Vec::new();
         let mut last = 0;
@@ -1131,10 +1155,12 @@ impl Store {
             last = seq;
         }
         let n = y.len();
-        let x = ndarray::Array2::from_shape_vec((n, n_features), x).map_err(|e| StoreError::Corrupt {
-            what: "pool",
-            key: "*".into(),
-            message: e.to_string(),
+        let x = ndarray::Array2::from_shape_vec((n, n_features), x).map_err(|e| {
+            StoreError::Corrupt {
+                what: "pool",
+                key: "*".into(),
+                message: e.to_string(),
+            }
         })?;
         Ok((x, y, last))
     }
@@ -1144,7 +1170,9 @@ impl Store {
         let mut n = 0u64;
         for kv in self.trees[T_POOL].iter() {
             let (k, v) = kv.map_err(StoreError::sled("scan pool"))?;
-            n += PoolEntry::decode(&u64_of(Some(k)).to_string(), &v)?.ids.len() as u64;
+            n += PoolEntry::decode(&u64_of(Some(k)).to_string(), &v)?
+                .ids
+                .len() as u64;
         }
         Ok(n)
     }
@@ -1203,7 +1231,12 @@ impl Store {
     }
 
     /// Replace a vendor's history (flushed), e.g. after a reviewer resets its drift statistic.
-    pub fn set_vendor_history(&self, vendor: &str, h: &VendorHistory, audit: AuditRecord) -> Result<(), StoreError> {
+    pub fn set_vendor_history(
+        &self,
+        vendor: &str,
+        h: &VendorHistory,
+        audit: AuditRecord,
+    ) -> Result<(), StoreError> {
         let v = enc("history", h)?;
         let a = self.prepare_audit(audit)?;
         let vendor = vendor.to_string();
@@ -1274,17 +1307,41 @@ mod tests {
         r.sha256 = Some("ab".into());
         r.outcome = Some(Outcome::Quarantined);
         let r = s
-            .record_verdict(&r, AuditRecord::new("daemon", "verdict"), true, None, None, None)
+            .record_verdict(
+                &r,
+                AuditRecord::new("daemon", "verdict"),
+                true,
+                None,
+                None,
+                None,
+            )
             .unwrap();
         assert_eq!(r.state, BatchState::Decided);
-        assert_eq!(s.batch_by_hash("v1", "ab").unwrap().as_deref(), Some(r.id.as_str()));
+        assert_eq!(
+            s.batch_by_hash("v1", "ab").unwrap().as_deref(),
+            Some(r.id.as_str())
+        );
         // Recording a second verdict on a decided batch is refused.
         assert!(matches!(
-            s.record_verdict(&r, AuditRecord::new("daemon", "verdict"), true, None, None, None),
+            s.record_verdict(
+                &r,
+                AuditRecord::new("daemon", "verdict"),
+                true,
+                None,
+                None,
+                None
+            ),
             Err(StoreError::Conflict { .. })
         ));
-        s.transition(&r.id, &[BatchState::Decided], BatchState::Quarantined, PoolChange::None, vec![], |_| {})
-            .unwrap();
+        s.transition(
+            &r.id,
+            &[BatchState::Decided],
+            BatchState::Quarantined,
+            PoolChange::None,
+            vec![],
+            |_| {},
+        )
+        .unwrap();
         let entry = PoolEntry {
             batch_id: r.id.clone(),
             vendor: "v1".into(),
@@ -1294,22 +1351,46 @@ mod tests {
             n_features: 2,
         };
         let rel = s
-            .transition(&r.id, &[BatchState::Quarantined], BatchState::Released, PoolChange::Add(entry.clone()), vec![AuditRecord::new("alice", "release")], |_| {})
+            .transition(
+                &r.id,
+                &[BatchState::Quarantined],
+                BatchState::Released,
+                PoolChange::Add(entry.clone()),
+                vec![AuditRecord::new("alice", "release")],
+                |_| {},
+            )
             .unwrap();
         assert!(rel.pool_seq.is_some());
         // A second reviewer's release is refused cleanly.
-        let again = s.transition(&r.id, &[BatchState::Quarantined], BatchState::Released, PoolChange::Add(entry.clone()), vec![], |_| {});
+        let again = s.transition(
+            &r.id,
+            &[BatchState::Quarantined],
+            BatchState::Released,
+            PoolChange::Add(entry.clone()),
+            vec![],
+            |_| {},
+        );
         assert!(matches!(again, Err(StoreError::Conflict { .. })));
         let (x, y, last) = s.pool_matrix(2).unwrap();
         assert_eq!((x.nrows(), y, last), (2, vec![0, 1], rel.pool_seq.unwrap()));
         assert_eq!(s.pool_entries_after(0).unwrap()[0].1, entry);
         assert_eq!(s.pool_epoch().unwrap(), 0);
-        s.transition(&r.id, &[BatchState::Released], BatchState::Withdrawn, PoolChange::Remove, vec![], |_| {})
-            .unwrap();
+        s.transition(
+            &r.id,
+            &[BatchState::Released],
+            BatchState::Withdrawn,
+            PoolChange::Remove,
+            vec![],
+            |_| {},
+        )
+        .unwrap();
         assert_eq!(s.pool_items().unwrap(), 0);
         assert_eq!(s.pool_epoch().unwrap(), 1);
         let audit = s.audit_since(0).unwrap();
-        assert_eq!(audit.iter().map(|a| a.action.as_str()).collect::<Vec<_>>(), ["verdict", "release"]);
+        assert_eq!(
+            audit.iter().map(|a| a.action.as_str()).collect::<Vec<_>>(),
+            ["verdict", "release"]
+        );
         assert!(audit[0].seq < audit[1].seq);
     }
 

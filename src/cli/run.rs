@@ -1,10 +1,87 @@
-//! `labelweir run` (in progress).
+//! `labelweir run`: the daemon in the foreground.
 
-/// (in progress)
+use std::net::SocketAddr;
+use std::path::PathBuf;
+
+use super::{exit, Failure};
+use crate::config::{Config, Workspace};
+use crate::daemon::{self, RunOptions};
+
+/// Run the daemon on a workspace in the foreground until SIGINT or SIGTERM.
+///
+/// The first signal stops claiming, finishes the batch in hand, flushes the store and exits 0; a second
+/// signal exits at once (anything unfinished is redone at the next start). Exit codes: 0 clean stop,
+/// 78 configuration, 74 I/O or storage, 70 internal error. Logs are JSON lines on stdout (filter with
+/// LABELWEIR_LOG, e.g. LABELWEIR_LOG=debug).
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+pub struct Args {
+    /// Workspace folder (created by `labelweir init`).
+    pub dir: PathBuf,
+    /// Serve /metrics, /livez and /readyz on this address instead of the configured one.
+    #[arg(long)]
+    pub listen: Option<SocketAddr>,
+}
+
+/// Install JSON logging to stdout (once per process).
+pub fn init_logging() {
+    let filter = tracing_subscriber::EnvFilter::try_from_env("LABELWEIR_LOG")
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
+    let _ = tracing_subscriber::fmt()
+        .json()
+        .with_env_filter(filter)
+        .with_writer(std::io::stdout)
+        .try_init();
+}
+
+/// Resolves on the first SIGINT or SIGTERM; a second one exits the process at once (status 130).
+pub async fn signals() {
+    use tokio::signal::unix::{signal, SignalKind};
+    let (Ok(mut int), Ok(mut term)) = (
+        signal(SignalKind::interrupt()),
+        signal(SignalKind::terminate()),
+    ) else {
+        std::future::pending::<()>().await;
+        return;
+    };
+    tokio::select! {
+        _ = int.recv() => {}
+        _ = term.recv() => {}
+    }
+    tokio::spawn(async move {
+        tokio::select! {
+            _ = int.recv() => {}
+            _ = term.recv() => {}
+        }
+        eprintln!("labelweir: second signal, exiting at once");
+        std::process::exit(130);
+    });
+}
+
+/// Build a runtime and run the daemon until a signal.
+pub fn run_daemon(dir: PathBuf, config: Config, opts: RunOptions) -> anyhow::Result<u8> {
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .thread_name("labelweir-rt")
+        .build()
+        .map_err(|e| Failure::new(exit::INTERNAL, format!("cannot start the runtime: {e}")))?;
+    let ws = Workspace::new(dir);
+    rt.block_on(daemon::run(ws, config, opts, signals()))
+        .map_err(|e| Failure::new(e.exit_code(), e.to_string()))?;
+    Ok(exit::OK)
+}
 
 /// Run the subcommand.
-pub fn run(_args: Args) -> anyhow::Result<u8> {
-    Err(super::Failure::new(super::exit::INTERNAL, "not implemented yet").into())
+pub fn run(args: Args) -> anyhow::Result<u8> {
+    init_logging();
+    let config = Config::from_workspace(&args.dir)
+        .map_err(|e| Failure::new(exit::CONFIG, format!("invalid configuration: {e}")))?;
+    run_daemon(
+        args.dir,
+        config,
+        RunOptions {
+            listen: args.listen,
+            ..RunOptions::default()
+        },
+    )
 }

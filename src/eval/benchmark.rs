@@ -39,10 +39,10 @@ use super::metrics::{
     auroc, average_precision, precision_at_recall, spearman, top_k_labels, top_k_set, TopKLabels,
 };
 use crate::model::{
-    assess, Assessment, FeatureMap, ModelError, ModelSettings, PoolInput, PoolSummary, Standardizer,
-    TrustedInput,
+    assess, Assessment, FeatureMap, ModelError, ModelSettings, PoolInput, PoolSummary,
+    Standardizer, TrustedInput,
 };
-use crate::policy::{decide, PolicySettings, Verdict, VendorHistory};
+use crate::policy::{decide, PolicySettings, VendorHistory, Verdict};
 use crate::scenario::{self, Plant};
 
 /// What to run.
@@ -315,9 +315,17 @@ fn dense(targets: &[usize]) -> (Vec<usize>, usize) {
 
 fn open_sources() -> Vec<Source> {
     let iris = linfa_datasets::iris();
-    let (y, k) = dense(iris.targets().as_slice().unwrap_or(&iris.targets().to_vec()));
+    let (y, k) = dense(
+        iris.targets()
+            .as_slice()
+            .unwrap_or(&iris.targets().to_vec()),
+    );
     let wine = linfa_datasets::winequality();
-    let (wy, wk) = dense(wine.targets().as_slice().unwrap_or(&wine.targets().to_vec()));
+    let (wy, wk) = dense(
+        wine.targets()
+            .as_slice()
+            .unwrap_or(&wine.targets().to_vec()),
+    );
     vec![
         Source {
             name: "iris",
@@ -387,14 +395,24 @@ fn split_plant(plant: &Plant, pool_n: usize, batch_n: usize, seed: u64) -> Split
 }
 
 /// The class whose pool centroid (standardised) is nearest to class `a`'s.
-fn nearest_class(st: &Standardizer, x: ArrayView2<'_, f64>, y: &[usize], k: usize, a: usize) -> usize {
+fn nearest_class(
+    st: &Standardizer,
+    x: ArrayView2<'_, f64>,
+    y: &[usize],
+    k: usize,
+    a: usize,
+) -> usize {
     let z = match st.transform(x) {
         Ok(z) => z,
         Err(_) => return (a + 1) % k,
     };
     let centroid = |c: usize| -> Option<Array1<f64>> {
         let rows: Vec<usize> = (0..y.len()).filter(|&i| y[i] == c).collect();
-        (!rows.is_empty()).then(|| z.select(Axis(0), &rows).mean_axis(Axis(0)).unwrap_or_default())
+        (!rows.is_empty()).then(|| {
+            z.select(Axis(0), &rows)
+                .mean_axis(Axis(0))
+                .unwrap_or_default()
+        })
     };
     let Some(ca) = centroid(a) else {
         return (a + 1) % k;
@@ -424,7 +442,9 @@ fn apply_attack(
             for &c in y {
                 counts[c] += 1;
             }
-            let a = (0..k).max_by_key(|&c| (counts[c], std::cmp::Reverse(c))).unwrap_or(0);
+            let a = (0..k)
+                .max_by_key(|&c| (counts[c], std::cmp::Reverse(c)))
+                .unwrap_or(0);
             let b = nearest_class(st, split.pool_x.view(), &split.pool_y, k, a);
             let within = (rate * n as f64 / counts[a].max(1) as f64).min(0.45);
             scenario::targeted_flips(y, a, b, within, seed)
@@ -435,7 +455,9 @@ fn apply_attack(
         }
         Attack::WetCardboardAsPaper => {
             let plant = Plant::new(0);
-            let wet = plant.subpopulation_index("wet_cardboard").unwrap_or(usize::MAX);
+            let wet = plant
+                .subpopulation_index("wet_cardboard")
+                .unwrap_or(usize::MAX);
             let subs = split.batch_sub.clone().unwrap_or_default();
             scenario::subpopulation_flips(y, &subs, &[wet], scenario::class::PAPER, 1.0, seed)
         }
@@ -515,9 +537,22 @@ fn run_case(
     if bugs > 0 {
         let truth = &split.batch_y;
         let proposed: Vec<usize> = a.items.iter().map(|i| i.proposed_label).collect();
-        let col = |f: fn(&crate::model::ItemScore) -> f64| a.items.iter().map(f).collect::<Vec<_>>();
-        methods.push(method_score(METHODS[0], &col(|i| i.suspicion), &positive, &proposed, truth));
-        methods.push(method_score(METHODS[1], &col(|i| i.path_score), &positive, &proposed, truth));
+        let col =
+            |f: fn(&crate::model::ItemScore) -> f64| a.items.iter().map(f).collect::<Vec<_>>();
+        methods.push(method_score(
+            METHODS[0],
+            &col(|i| i.suspicion),
+            &positive,
+            &proposed,
+            truth,
+        ));
+        methods.push(method_score(
+            METHODS[1],
+            &col(|i| i.path_score),
+            &positive,
+            &proposed,
+            truth,
+        ));
         methods.push(method_score(
             METHODS[2],
             &col(|i| i.reference_disagreement),
@@ -534,7 +569,13 @@ fn run_case(
             &delivered,
         )
         .map_err(model_err)?;
-        methods.push(method_score(METHODS[3], &nt.score, &positive, &nt.proposed, truth));
+        methods.push(method_score(
+            METHODS[3],
+            &nt.score,
+            &positive,
+            &nt.proposed,
+            truth,
+        ));
         let cv = cross_validated_loss(
             settings,
             st,
@@ -547,7 +588,13 @@ fn run_case(
             seed ^ 0xC5,
         )
         .map_err(model_err)?;
-        methods.push(method_score(METHODS[4], &cv.score, &positive, &cv.proposed, truth));
+        methods.push(method_score(
+            METHODS[4],
+            &cv.score,
+            &positive,
+            &cv.proposed,
+            truth,
+        ));
     }
     Ok(Run {
         bugs,
@@ -764,7 +811,12 @@ fn mode_agreement(
         source,
     })?;
     let exact_ms = ms(t0.elapsed());
-    let a: Vec<f64> = summary_run.assessment.items.iter().map(|i| i.suspicion).collect();
+    let a: Vec<f64> = summary_run
+        .assessment
+        .items
+        .iter()
+        .map(|i| i.suspicion)
+        .collect();
     let b: Vec<f64> = exact.items.iter().map(|i| i.suspicion).collect();
     let top = 20.min(a.len());
     let (ta, tb) = (top_k_set(&a, top), top_k_set(&b, top));
@@ -794,10 +846,13 @@ fn scale_timings(opts: &BenchOptions, plant: &Plant) -> Result<Vec<ScaleTiming>,
     let (pool_x, pool_y) = plant.sample(10_000, opts.seed ^ 0x52);
     let (batch_x, clean_y) = plant.sample(1_000, opts.seed ^ 0x53);
     let (batch_y, _) = scenario::uniform_flips(&clean_y, k, 0.10, opts.seed ^ 0x54);
-    let st = Standardizer::fit(&[trusted_x.view(), pool_x.view()]).map_err(err("scale: standardise"))?;
-    let fm = FeatureMap::new(st.clone(), settings.feature_map, settings.seed).map_err(err("scale: map"))?;
+    let st =
+        Standardizer::fit(&[trusted_x.view(), pool_x.view()]).map_err(err("scale: standardise"))?;
+    let fm = FeatureMap::new(st.clone(), settings.feature_map, settings.seed)
+        .map_err(err("scale: map"))?;
     let t0 = Instant::now();
-    let (base, _) = PoolSummary::fit(settings, fm, k, pool_x.view(), &pool_y).map_err(err("scale: fit"))?;
+    let (base, _) =
+        PoolSummary::fit(settings, fm, k, pool_x.view(), &pool_y).map_err(err("scale: fit"))?;
     let build_ms = ms(t0.elapsed());
     let weight = Array1::ones(trusted_y.len());
     let mut out = Vec::new();
@@ -858,7 +913,11 @@ fn fmt_opt(v: Option<f64>) -> String {
 /// "Clearly better" on region flips is our reading: average precision at least 0.05 above the better
 /// baseline's. "Near zero" for a clean batch: repair cost ≤ 0.02 (under the default cold-start limit
 /// of 0.05) and the default policy accepts it.
-fn check_targets(cases: &[CaseReport], agreement: &[ModeAgreement], scale: &[ScaleTiming]) -> Vec<TargetCheck> {
+fn check_targets(
+    cases: &[CaseReport],
+    agreement: &[ModeAgreement],
+    scale: &[ScaleTiming],
+) -> Vec<TargetCheck> {
     let mut out = Vec::new();
     let engine = |c: &CaseReport| c.methods.first().cloned();
     let better_baseline = |c: &CaseReport, f: fn(&MethodScore) -> Option<f64>| {
@@ -870,7 +929,10 @@ fn check_targets(cases: &[CaseReport], agreement: &[ModeAgreement], scale: &[Sca
     for c in cases {
         match c.attack {
             Attack::Clean => out.push(TargetCheck {
-                target: format!("{}: clean batch repair cost near zero (≤ 0.02) and accepted", c.source),
+                target: format!(
+                    "{}: clean batch repair cost near zero (≤ 0.02) and accepted",
+                    c.source
+                ),
                 met: c.repair_cost_max <= 0.02 && c.quarantined == 0,
                 measured: format!(
                     "repair cost {:.4} (max {:.4}), quarantined {}/{}",
@@ -888,7 +950,11 @@ fn check_targets(cases: &[CaseReport], agreement: &[ModeAgreement], scale: &[Sca
                     });
                 }
                 out.push(TargetCheck {
-                    target: format!("{}: {} proposed labels ≥ 0.9 on true bugs in top-k", c.source, attack.label()),
+                    target: format!(
+                        "{}: {} proposed labels ≥ 0.9 on true bugs in top-k",
+                        c.source,
+                        attack.label()
+                    ),
                     met: e.label_accuracy().is_some_and(|a| a >= 0.9),
                     measured: format!(
                         "{}/{} = {}",
@@ -902,25 +968,35 @@ fn check_targets(cases: &[CaseReport], agreement: &[ModeAgreement], scale: &[Sca
                     better_baseline(c, |m| m.average_precision),
                 );
                 let (ea, ep) = (e.auroc.unwrap_or(0.0), e.average_precision.unwrap_or(0.0));
-                let is_region = matches!(attack, Attack::Region { .. } | Attack::WetCardboardAsPaper);
+                let is_region =
+                    matches!(attack, Attack::Region { .. } | Attack::WetCardboardAsPaper);
                 let margin = if is_region { 0.05 } else { 0.0 };
                 out.push(TargetCheck {
                     target: format!(
                         "{}: {} {} the better baseline (AUROC and AP{})",
                         c.source,
                         attack.label(),
-                        if is_region { "clearly beats" } else { "at least matches" },
+                        if is_region {
+                            "clearly beats"
+                        } else {
+                            "at least matches"
+                        },
                         if is_region { "; AP by ≥ 0.05" } else { "" }
                     ),
                     met: ea >= ba - 1e-12 && ep >= bp + margin - 1e-12,
-                    measured: format!("engine AUROC {ea:.3} AP {ep:.3}; best baseline AUROC {ba:.3} AP {bp:.3}"),
+                    measured: format!(
+                        "engine AUROC {ea:.3} AP {ep:.3}; best baseline AUROC {ba:.3} AP {bp:.3}"
+                    ),
                 });
             }
         }
     }
     for a in agreement {
         out.push(TargetCheck {
-            target: format!("{}: incremental vs exact Spearman ≥ 0.99 and same top-20", a.source),
+            target: format!(
+                "{}: incremental vs exact Spearman ≥ 0.99 and same top-20",
+                a.source
+            ),
             met: a.spearman.is_some_and(|s| s >= 0.99) && a.top20_shared == a.top20_of,
             measured: format!(
                 "Spearman {}, top-20 shared {}/{}",
@@ -1003,7 +1079,10 @@ pub fn render_text(r: &BenchReport) -> String {
         }
     }
     if !r.mode_agreement.is_empty() {
-        let _ = writeln!(s, "\n== incremental (pool summary) vs exact (pool re-solve) ==");
+        let _ = writeln!(
+            s,
+            "\n== incremental (pool summary) vs exact (pool re-solve) =="
+        );
         for a in &r.mode_agreement {
             let _ = writeln!(
                 s,
@@ -1041,9 +1120,20 @@ pub fn render_text(r: &BenchReport) -> String {
     }
     let _ = writeln!(s, "\n== targets (issue 2) ==");
     for t in &r.targets {
-        let _ = writeln!(s, "   [{}] {} — {}", if t.met { "met " } else { "MISS" }, t.target, t.measured);
+        let _ = writeln!(
+            s,
+            "   [{}] {} — {}",
+            if t.met { "met " } else { "MISS" },
+            t.target,
+            t.measured
+        );
     }
     let met = r.targets.iter().filter(|t| t.met).count();
-    let _ = writeln!(s, "   {met}/{} targets met · {:.1} s", r.targets.len(), r.wall_seconds);
+    let _ = writeln!(
+        s,
+        "   {met}/{} targets met · {:.1} s",
+        r.targets.len(),
+        r.wall_seconds
+    );
     s
 }

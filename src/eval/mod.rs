@@ -12,5 +12,5 @@
 //! A high score is a suspicion for human review, not proof that a vendor mislabeled anything.
 
 pub mod baselines;
-pub mod metrics;
 pub mod benchmark;
+pub mod metrics;

@@ -246,9 +246,13 @@ impl Objective<'_> {
                     let f = wn.sqrt() * pc;
                     let src = phi.row(r);
                     let mut dst = a.slice_mut(s![r, c * p..(c + 1) * p]);
-                    ndarray::Zip::from(&mut dst).and(&src).for_each(|d, &v| *d = f * v);
+                    ndarray::Zip::from(&mut dst)
+                        .and(&src)
+                        .for_each(|d, &v| *d = f * v);
                     let g = wn * pc;
-                    ndarray::Zip::from(diag_scaled.row_mut(r)).and(&src).for_each(|d, &v| *d = g * v);
+                    ndarray::Zip::from(diag_scaled.row_mut(r))
+                        .and(&src)
+                        .for_each(|d, &v| *d = g * v);
                 }
                 let block = diag_scaled.t().dot(&phi);
                 let mut dst = h.slice_mut(s![c * p..(c + 1) * p, c * p..(c + 1) * p]);

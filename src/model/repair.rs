@@ -980,7 +980,12 @@ fn projected_gradient(
 /// `Π_Δ(Y − η G)` row by row. A row sitting at its given label's vertex `e_g` stays there exactly when
 /// `v_g − max_{c≠g} v_c ≥ 1` for `v = e_g − η g_i` (then `τ = v_g − 1` clips every other entry), which
 /// skips the sort for the many rows the repair leaves alone.
-fn step_and_project(y: &Array2<f64>, grad: &Array2<f64>, given: &[usize], step: f64) -> Array2<f64> {
+fn step_and_project(
+    y: &Array2<f64>,
+    grad: &Array2<f64>,
+    given: &[usize],
+    step: f64,
+) -> Array2<f64> {
     let mut cand = y.clone();
     let k = y.ncols();
     for (i, mut row) in cand.rows_mut().into_iter().enumerate() {

@@ -6,8 +6,8 @@ use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, StandardNormal};
 
 use super::learner::{one_hot, solve, trusted_loss, Objective};
-use super::*;
 use super::repair::label_hypergradient;
+use super::*;
 
 /// Three Gaussian classes in `d` dimensions with unit spread, centres `2·e_c`.
 fn blobs(n: usize, d: usize, k: usize, seed: u64) -> (Array2<f64>, Vec<usize>) {
@@ -53,10 +53,22 @@ fn auroc(scores: &[f64], positive: &[bool]) -> f64 {
 #[test]
 fn gradient_matches_finite_differences() {
     let (x, y) = blobs(40, 3, 3, 1);
-    let fm = FeatureMap::new(Standardizer::fit(&[x.view()]).unwrap(), FeatureMapKind::Linear, 1).unwrap();
+    let fm = FeatureMap::new(
+        Standardizer::fit(&[x.view()]).unwrap(),
+        FeatureMapKind::Linear,
+        1,
+    )
+    .unwrap();
     let phi = fm.apply(x.view()).unwrap();
     let yy = one_hot(&y, 3);
-    let obj = Objective { phi: phi.view(), y: yy.view(), weight: None, norm: 40.0, l2: 0.05, prior: None };
+    let obj = Objective {
+        phi: phi.view(),
+        y: yy.view(),
+        weight: None,
+        norm: 40.0,
+        l2: 0.05,
+        prior: None,
+    };
     let mut rng = ChaCha8Rng::seed_from_u64(2);
     let theta = Array1::from_shape_fn(phi.ncols() * 3, |_| rng.random_range(-1.0..1.0));
     let (_, g, prob) = obj.value_grad(&theta);
@@ -67,7 +79,11 @@ fn gradient_matches_finite_differences() {
         let mut tm = theta.clone();
         tm[idx] -= h;
         let fd = (obj.value_grad(&tp).0 - obj.value_grad(&tm).0) / (2.0 * h);
-        assert!((fd - g[idx]).abs() <= 1e-6 * (1.0 + g[idx].abs()), "idx {idx}: fd {fd} vs {}", g[idx]);
+        assert!(
+            (fd - g[idx]).abs() <= 1e-6 * (1.0 + g[idx].abs()),
+            "idx {idx}: fd {fd} vs {}",
+            g[idx]
+        );
     }
     // Hessian-vector product against a central difference of gradients.
     let v = Array1::from_shape_fn(theta.len(), |_| rng.random_range(-1.0..1.0));
@@ -89,13 +105,29 @@ fn gradient_matches_finite_differences() {
 fn hypergradient_matches_resolved_optima() {
     let (x, y) = blobs(30, 2, 3, 3);
     let (xt, yt) = blobs(12, 2, 3, 4);
-    let settings = ModelSettings { l2: 0.05, inner_tol: 1e-11, ..ModelSettings::default() };
-    let fm = FeatureMap::new(Standardizer::fit(&[x.view()]).unwrap(), FeatureMapKind::Linear, 1).unwrap();
+    let settings = ModelSettings {
+        l2: 0.05,
+        inner_tol: 1e-11,
+        ..ModelSettings::default()
+    };
+    let fm = FeatureMap::new(
+        Standardizer::fit(&[x.view()]).unwrap(),
+        FeatureMapKind::Linear,
+        1,
+    )
+    .unwrap();
     let phi = fm.apply(x.view()).unwrap();
     let phi_t = fm.apply(xt.view()).unwrap();
     let ct = Array1::from_elem(yt.len(), 1.0);
     let yy = one_hot(&y, 3);
-    let obj = Objective { phi: phi.view(), y: yy.view(), weight: None, norm: 30.0, l2: 0.05, prior: None };
+    let obj = Objective {
+        phi: phi.view(),
+        y: yy.view(),
+        weight: None,
+        norm: 30.0,
+        l2: 0.05,
+        prior: None,
+    };
     let far = std::time::Instant::now() + std::time::Duration::from_secs(30);
     let (theta, rep) = solve(&settings, &obj, Array1::zeros(phi.ncols() * 3), far);
     assert!(rep.converged, "{rep:?}");
@@ -111,14 +143,24 @@ fn hypergradient_matches_resolved_optima() {
         ym[[i, c]] -= h;
         ym[[i, c2]] += h;
         let f = |yv: &Array2<f64>| {
-            let o = Objective { phi: phi.view(), y: yv.view(), weight: None, norm: 30.0, l2: 0.05, prior: None };
+            let o = Objective {
+                phi: phi.view(),
+                y: yv.view(),
+                weight: None,
+                norm: 30.0,
+                l2: 0.05,
+                prior: None,
+            };
             let (t, r) = solve(&settings, &o, theta.clone(), far);
             assert!(r.converged);
             trusted_loss(phi_t.view(), &yt, ct.view(), &t, 3).0
         };
         let fd = (f(&yp) - f(&ym)) / (2.0 * h);
         let an = g[[i, c]] - g[[i, c2]];
-        assert!((fd - an).abs() <= 1e-5 * (1.0 + an.abs()) + 1e-8, "({i},{c},{c2}): fd {fd} vs {an}");
+        assert!(
+            (fd - an).abs() <= 1e-5 * (1.0 + an.abs()) + 1e-8,
+            "({i},{c},{c2}): fd {fd} vs {an}"
+        );
     }
 }
 
@@ -131,10 +173,21 @@ fn planted_region_flips_rank_first_and_clean_batch_costs_little() {
     let settings = ModelSettings::default();
     let stdz = Standardizer::fit(&[xt.view(), xp.view(), xb.view()]).unwrap();
     let ct = Array1::from_elem(yt.len(), 1.0);
-    let trusted = TrustedInput { x: xt.view(), y: &yt, weight: ct.view() };
-    let pool = PoolInput::Exact { x: xp.view(), y: &yp };
+    let trusted = TrustedInput {
+        x: xt.view(),
+        y: &yt,
+        weight: ct.view(),
+    };
+    let pool = PoolInput::Exact {
+        x: xp.view(),
+        y: &yp,
+    };
     let clean = assess(&settings, &stdz, k, trusted, pool, xb.view(), &yb).unwrap();
-    assert!(clean.repair_cost < 0.02, "clean batch cost {}", clean.repair_cost);
+    assert!(
+        clean.repair_cost < 0.02,
+        "clean batch cost {}",
+        clean.repair_cost
+    );
     // Region flip: items of class 0 with feature 0 above its median become class 1.
     let mut yf = yb.clone();
     let mut flipped = vec![false; yb.len()];
@@ -149,10 +202,18 @@ fn planted_region_flips_rank_first_and_clean_batch_costs_little() {
     let scores: Vec<f64> = bad.items.iter().map(|s| s.suspicion).collect();
     let a = auroc(&scores, &flipped);
     assert!(a > 0.9, "AUROC {a}");
-    assert!(bad.repair_cost > clean.repair_cost, "{} vs {}", bad.repair_cost, clean.repair_cost);
+    assert!(
+        bad.repair_cost > clean.repair_cost,
+        "{} vs {}",
+        bad.repair_cost,
+        clean.repair_cost
+    );
     assert!(bad.damage > clean.damage);
     // Proposed labels of the flagged planted bugs go back to the true class.
-    let fixed = bad.items.iter().filter(|s| flipped[s.index] && s.proposed_label != s.label);
+    let fixed = bad
+        .items
+        .iter()
+        .filter(|s| flipped[s.index] && s.proposed_label != s.label);
     let (mut right, mut total) = (0, 0);
     for s in fixed {
         total += 1;
@@ -180,10 +241,41 @@ fn summary_mode_agrees_with_exact_mode() {
     let (summary, rep) = PoolSummary::fit(&settings, fm, k, xp.view(), &yp).unwrap();
     assert!(rep.converged);
     let ct = Array1::from_elem(yt.len(), 1.0);
-    let trusted = TrustedInput { x: xt.view(), y: &yt, weight: ct.view() };
-    let exact = assess(&settings, &stdz, k, trusted, PoolInput::Exact { x: xp.view(), y: &yp }, xb.view(), &yb).unwrap();
-    let inc = assess(&settings, &stdz, k, trusted, PoolInput::Summary(&summary), xb.view(), &yb).unwrap();
-    let top = |a: &Assessment| a.ranked().iter().take(20).map(|s| s.index).collect::<std::collections::BTreeSet<_>>();
+    let trusted = TrustedInput {
+        x: xt.view(),
+        y: &yt,
+        weight: ct.view(),
+    };
+    let exact = assess(
+        &settings,
+        &stdz,
+        k,
+        trusted,
+        PoolInput::Exact {
+            x: xp.view(),
+            y: &yp,
+        },
+        xb.view(),
+        &yb,
+    )
+    .unwrap();
+    let inc = assess(
+        &settings,
+        &stdz,
+        k,
+        trusted,
+        PoolInput::Summary(&summary),
+        xb.view(),
+        &yb,
+    )
+    .unwrap();
+    let top = |a: &Assessment| {
+        a.ranked()
+            .iter()
+            .take(20)
+            .map(|s| s.index)
+            .collect::<std::collections::BTreeSet<_>>()
+    };
     let overlap = top(&exact).intersection(&top(&inc)).count();
     assert!(overlap >= 18, "top-20 overlap {overlap}");
     assert!(
@@ -204,11 +296,14 @@ fn absorbing_batches_tracks_the_exact_summary() {
     let mut inc = PoolSummary::empty(fm.clone(), k);
     for c in 0..3 {
         let r = c * 300..(c + 1) * 300;
-        inc.absorb(&settings, x.slice(ndarray::s![r.clone(), ..]), &y[r]).unwrap();
+        inc.absorb(&settings, x.slice(ndarray::s![r.clone(), ..]), &y[r])
+            .unwrap();
     }
     let (exact, _) = PoolSummary::fit(&settings, fm, k, x.view(), &y).unwrap();
     assert_eq!(inc.len(), 900);
-    let diff = (&inc.w - &exact.w).mapv(f64::abs).fold(0.0f64, |a, &b| a.max(b));
+    let diff = (&inc.w - &exact.w)
+        .mapv(f64::abs)
+        .fold(0.0f64, |a, &b| a.max(b));
     let scale = exact.w.mapv(f64::abs).fold(0.0f64, |a, &b| a.max(b));
     assert!(diff <= 0.05 * scale, "max |ΔW| {diff} vs scale {scale}");
 }

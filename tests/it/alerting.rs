@@ -189,7 +189,12 @@ fn dashboard_exprs(dash: &Json) -> Vec<(String, String)> {
             .and_then(|s| s.strip_suffix(')'))
             .and_then(|s| s.rsplit_once(','))
             .map(|(sel, _label)| sel.trim().to_string())
-            .unwrap_or_else(|| panic!("variable {}: expected label_values(SELECTOR, LABEL)", v["name"]));
+            .unwrap_or_else(|| {
+                panic!(
+                    "variable {}: expected label_values(SELECTOR, LABEL)",
+                    v["name"]
+                )
+            });
         out.push((format!("variable {}", v["name"]), inner));
     }
     out
@@ -291,7 +296,10 @@ fn wait_for<T>(timeout: Duration, what: &str, mut f: impl FnMut() -> Option<T>) 
         if let Some(v) = f() {
             return v;
         }
-        assert!(start.elapsed() < timeout, "timed out after {timeout:?}: {what}");
+        assert!(
+            start.elapsed() < timeout,
+            "timed out after {timeout:?}: {what}"
+        );
         std::thread::sleep(Duration::from_millis(250));
     }
 }
@@ -355,7 +363,11 @@ fn parse_labels(s: &str) -> BTreeMap<String, String> {
         if key.is_empty() {
             break;
         }
-        assert_eq!(chars.next(), Some('"'), "label value must be quoted in {s:?}");
+        assert_eq!(
+            chars.next(),
+            Some('"'),
+            "label value must be quoted in {s:?}"
+        );
         let mut value = String::new();
         while let Some(c) = chars.next() {
             match c {
@@ -454,10 +466,14 @@ impl Daemon {
             labelweir().arg("run").arg(&ws).arg("--listen").arg(&addr),
             tmp.join("daemon.log"),
         );
-        wait_for(Duration::from_secs(60), "labelweir /readyz answers 200", || {
-            proc.assert_running();
-            matches!(http_get(&addr, "/readyz"), Ok((200, _))).then_some(())
-        });
+        wait_for(
+            Duration::from_secs(60),
+            "labelweir /readyz answers 200",
+            || {
+                proc.assert_running();
+                matches!(http_get(&addr, "/readyz"), Ok((200, _))).then_some(())
+            },
+        );
         Daemon {
             proc,
             addr,
@@ -493,7 +509,10 @@ impl Daemon {
         let (x, y) = self.plant.sample(n, seed);
         let (flipped, mask) =
             scenario::region_flips(x.view(), &y, scenario::class::PAPER, 0.3, seed + 1);
-        assert!(mask.iter().filter(|m| **m).count() >= n / 4, "the attack flipped items");
+        assert!(
+            mask.iter().filter(|m| **m).count() >= n / 4,
+            "the attack flipped items"
+        );
         self.deliver(vendor, name, &flipped, x.view());
     }
 
@@ -518,7 +537,9 @@ impl Daemon {
 
     /// Wait until `vendor` has `count` batches with `outcome`; returns that scrape.
     fn wait_batches(&mut self, vendor: &str, outcome: &str, count: f64) -> Vec<Sample> {
-        let what = format!("labelweir_batches_total{{vendor=\"{vendor}\",outcome=\"{outcome}\"}} = {count}");
+        let what = format!(
+            "labelweir_batches_total{{vendor=\"{vendor}\",outcome=\"{outcome}\"}} = {count}"
+        );
         let start = Instant::now();
         loop {
             let (samples, _) = self.scrape();
@@ -539,8 +560,7 @@ impl Daemon {
 
 #[test]
 fn alert_rules_pass_promtool_check() {
-    let Some(promtool) =
-        prometheus_tool("promtool", "PROMTOOL", "alert_rules_pass_promtool_check")
+    let Some(promtool) = prometheus_tool("promtool", "PROMTOOL", "alert_rules_pass_promtool_check")
     else {
         return;
     };
@@ -556,9 +576,11 @@ fn alert_rules_pass_promtool_check() {
 
 #[test]
 fn alert_rule_unit_tests_pass_promtool() {
-    let Some(promtool) =
-        prometheus_tool("promtool", "PROMTOOL", "alert_rule_unit_tests_pass_promtool")
-    else {
+    let Some(promtool) = prometheus_tool(
+        "promtool",
+        "PROMTOOL",
+        "alert_rule_unit_tests_pass_promtool",
+    ) else {
         return;
     };
     let out = run_ok(
@@ -597,7 +619,11 @@ fn every_alert_has_for_severity_annotations_and_a_runbook_section() {
         );
     }
     let rules = alert_rules();
-    assert!(rules.len() >= 12, "expected the full alert set, got {}", rules.len());
+    assert!(
+        rules.len() >= 12,
+        "expected the full alert set, got {}",
+        rules.len()
+    );
     let mut seen = BTreeSet::new();
     for (group, r) in &rules {
         let name = r["alert"]
@@ -605,7 +631,9 @@ fn every_alert_has_for_severity_annotations_and_a_runbook_section() {
             .unwrap_or_else(|| panic!("group {group}: every rule is an alerting rule"));
         assert!(seen.insert(name.to_string()), "{name} defined twice");
         assert!(name.starts_with("Labelweir"), "{name}: prefix Labelweir");
-        let f = r["for"].as_str().unwrap_or_else(|| panic!("{name}: no `for:`"));
+        let f = r["for"]
+            .as_str()
+            .unwrap_or_else(|| panic!("{name}: no `for:`"));
         assert!(
             f.ends_with('m') || f.ends_with('h') || f.ends_with('s'),
             "{name}: for: {f}"
@@ -615,7 +643,10 @@ fn every_alert_has_for_severity_annotations_and_a_runbook_section() {
             .get("severity")
             .and_then(Yaml::as_str)
             .unwrap_or_else(|| panic!("{name}: no severity label"));
-        assert!(SEVERITIES.contains(&sev), "{name}: severity {sev} not in {SEVERITIES:?}");
+        assert!(
+            SEVERITIES.contains(&sev),
+            "{name}: severity {sev} not in {SEVERITIES:?}"
+        );
         for a in ["summary", "description", "runbook_url"] {
             let text = r["annotations"][a].as_str().unwrap_or_default();
             assert!(!text.trim().is_empty(), "{name}: annotation {a} missing");
@@ -626,7 +657,10 @@ fn every_alert_has_for_severity_annotations_and_a_runbook_section() {
             Some(format!("dashboards/runbooks.md#{anchor}").as_str()),
             "{name}: runbook_url points at its section"
         );
-        assert!(headings.contains(name), "runbooks.md has no `## {name}` section");
+        assert!(
+            headings.contains(name),
+            "runbooks.md has no `## {name}` section"
+        );
         let expr = r["expr"].as_str().expect("expr");
         assert!(
             !metric_names(expr).is_empty() || expr.contains("up{job=\"labelweir\"}"),
@@ -637,7 +671,10 @@ fn every_alert_has_for_severity_annotations_and_a_runbook_section() {
         .iter()
         .filter(|h| h.starts_with("Labelweir") && !seen.contains(*h))
         .collect();
-    assert!(orphans.is_empty(), "runbook sections without an alert: {orphans:?}");
+    assert!(
+        orphans.is_empty(),
+        "runbook sections without an alert: {orphans:?}"
+    );
     // Each section says what it means, how to confirm and what to do.
     for name in &seen {
         let section = runbooks
@@ -646,7 +683,10 @@ fn every_alert_has_for_severity_annotations_and_a_runbook_section() {
             .and_then(|s| s.split("\n## ").next())
             .expect("section text");
         for part in ["**Meaning.**", "**Confirm.**", "**Act.**"] {
-            assert!(section.contains(part), "runbook section {name} lacks {part}");
+            assert!(
+                section.contains(part),
+                "runbook section {name} lacks {part}"
+            );
         }
     }
     assert!(
@@ -664,7 +704,11 @@ fn every_alert_has_a_firing_and_a_silent_unit_test() {
         .iter()
         .filter_map(Yaml::as_str)
         .collect();
-    assert_eq!(files, ["alerts.yml"], "the unit tests load the shipped rules");
+    assert_eq!(
+        files,
+        ["alerts.yml"],
+        "the unit tests load the shipped rules"
+    );
     let mut firing = BTreeSet::new();
     let mut silent = BTreeSet::new();
     for t in doc["tests"].as_sequence().expect("tests") {
@@ -704,7 +748,10 @@ fn dashboard_structure_suits_file_provisioning() {
     let d = dashboard();
     assert_eq!(d["uid"], DASHBOARD_UID, "fixed uid");
     assert!(d["id"].is_null(), "id must be null for provisioning");
-    assert!(d.get("__inputs").is_none(), "no __inputs (that is the export-for-sharing format)");
+    assert!(
+        d.get("__inputs").is_none(),
+        "no __inputs (that is the export-for-sharing format)"
+    );
     assert!(d["schemaVersion"].as_u64().is_some_and(|v| v >= 36));
     assert!(d["title"].as_str().is_some_and(|t| !t.is_empty()));
 
@@ -717,7 +764,10 @@ fn dashboard_structure_suits_file_provisioning() {
     let ds = var("datasource");
     assert_eq!(ds["type"], "datasource");
     assert_eq!(ds["query"], "prometheus");
-    assert_eq!(ds["current"]["value"], DATASOURCE_UID, "defaults to the sample data source");
+    assert_eq!(
+        ds["current"]["value"], DATASOURCE_UID,
+        "defaults to the sample data source"
+    );
     let vendor = var("vendor");
     assert_eq!(vendor["type"], "query");
     let vq = vendor["query"]["query"].as_str().expect("vendor query");
@@ -728,7 +778,11 @@ fn dashboard_structure_suits_file_provisioning() {
     assert_eq!(vendor["includeAll"], true);
     assert_eq!(vendor["allValue"], ".*");
     for v in vars.iter().filter(|v| v["type"] == "query") {
-        assert_eq!(v["datasource"]["uid"], "${datasource}", "variable {}", v["name"]);
+        assert_eq!(
+            v["datasource"]["uid"], "${datasource}",
+            "variable {}",
+            v["name"]
+        );
     }
 
     let all = panels(&d);
@@ -746,7 +800,10 @@ fn dashboard_structure_suits_file_provisioning() {
             g["w"].as_i64().expect("w"),
             g["h"].as_i64().expect("h"),
         );
-        assert!(x >= 0 && w > 0 && h > 0 && x + w <= 24, "panel {title}: gridPos {g}");
+        assert!(
+            x >= 0 && w > 0 && h > 0 && x + w <= 24,
+            "panel {title}: gridPos {g}"
+        );
         for (bx, by, bw, bh, bt) in &boxes {
             let overlap = x < bx + bw && *bx < x + w && y < by + bh && *by < y + h;
             assert!(!overlap, "panels {bt:?} and {title:?} overlap");
@@ -755,13 +812,22 @@ fn dashboard_structure_suits_file_provisioning() {
         if p["type"] == "row" {
             continue;
         }
-        assert_eq!(p["datasource"]["uid"], "${datasource}", "panel {title} uses $datasource");
+        assert_eq!(
+            p["datasource"]["uid"], "${datasource}",
+            "panel {title} uses $datasource"
+        );
         let targets = p["targets"].as_array().expect("targets");
         assert!(!targets.is_empty(), "panel {title} has queries");
         let mut refs = BTreeSet::new();
         for t in targets {
-            assert!(refs.insert(t["refId"].as_str().expect("refId")), "panel {title}: refId twice");
-            assert_eq!(t["datasource"]["uid"], "${datasource}", "panel {title}: target datasource");
+            assert!(
+                refs.insert(t["refId"].as_str().expect("refId")),
+                "panel {title}: refId twice"
+            );
+            assert_eq!(
+                t["datasource"]["uid"], "${datasource}",
+                "panel {title}: target datasource"
+            );
             let expr = t["expr"].as_str().expect("expr");
             // Every vendor-labelled labelweir metric is filtered by the vendor variable.
             let vendor_metrics = [
@@ -776,7 +842,10 @@ fn dashboard_structure_suits_file_provisioning() {
                 .iter()
                 .any(|m| vendor_metrics.iter().any(|v| m.starts_with(v)))
             {
-                assert!(expr.contains("vendor=~\"$vendor\""), "panel {title}: {expr} ignores $vendor");
+                assert!(
+                    expr.contains("vendor=~\"$vendor\""),
+                    "panel {title}: {expr} ignores $vendor"
+                );
             }
         }
     }
@@ -786,17 +855,17 @@ fn dashboard_structure_suits_file_provisioning() {
         .flat_map(|(_, e)| metric_names(e))
         .collect();
     for m in [
-        "labelweir_batches_total",                            // verdicts per vendor
-        "labelweir_repair_cost_last",                         // repair cost ...
-        "labelweir_repair_cost_baseline",                     // ... against each vendor's baseline
-        "labelweir_quarantine_batches",                       // quarantine queue ...
-        "labelweir_quarantine_oldest_age_seconds",            // ... and its age
-        "labelweir_inbox_files",                              // backlog
-        "labelweir_inbox_oldest_file_age_seconds",            // backlog age
-        "labelweir_batch_stage_duration_seconds_bucket",      // scoring latency
-        "labelweir_pool_items",                               // pool size
-        "labelweir_trusted_items",                            // trusted-set size
-        "labelweir_errors_total",                             // errors by stage
+        "labelweir_batches_total",                       // verdicts per vendor
+        "labelweir_repair_cost_last",                    // repair cost ...
+        "labelweir_repair_cost_baseline",                // ... against each vendor's baseline
+        "labelweir_quarantine_batches",                  // quarantine queue ...
+        "labelweir_quarantine_oldest_age_seconds",       // ... and its age
+        "labelweir_inbox_files",                         // backlog
+        "labelweir_inbox_oldest_file_age_seconds",       // backlog age
+        "labelweir_batch_stage_duration_seconds_bucket", // scoring latency
+        "labelweir_pool_items",                          // pool size
+        "labelweir_trusted_items",                       // trusted-set size
+        "labelweir_errors_total",                        // errors by stage
     ] {
         assert!(shown.contains(m), "the dashboard shows no {m}");
     }
@@ -832,9 +901,11 @@ fn dashboard_queries_pass_promtool() {
         "groups:\n  - name: x\n    rules:\n      - record: x:y\n        expr: \"sum by (vendor (labelweir_pool_items)\"\n",
     )
     .expect("write rules");
-    assert!(!run(Command::new(&promtool).arg("check").arg("rules").arg(&file))
-        .status
-        .success());
+    assert!(
+        !run(Command::new(&promtool).arg("check").arg("rules").arg(&file))
+            .status
+            .success()
+    );
 }
 
 #[test]
@@ -843,7 +914,9 @@ fn provisioning_files_are_well_formed() {
     assert_eq!(provider["apiVersion"].as_u64(), Some(1));
     let p = &provider["providers"][0];
     assert_eq!(p["type"].as_str(), Some("file"));
-    assert!(p["options"]["path"].as_str().is_some_and(|s| s.starts_with('/')));
+    assert!(p["options"]["path"]
+        .as_str()
+        .is_some_and(|s| s.starts_with('/')));
     assert_eq!(p["allowUiUpdates"].as_bool(), Some(false));
 
     let ds = yaml("dashboards/provisioning/datasource.example.yml");
@@ -879,15 +952,23 @@ fn every_metric_in_rules_and_dashboard_exists_in_a_real_scrape() {
     let mut wanted = BTreeMap::<String, String>::new();
     for (_, r) in alert_rules() {
         for m in metric_names(r["expr"].as_str().expect("expr")) {
-            wanted.entry(m).or_insert_with(|| format!("alert {}", r["alert"].as_str().unwrap_or("?")));
+            wanted
+                .entry(m)
+                .or_insert_with(|| format!("alert {}", r["alert"].as_str().unwrap_or("?")));
         }
     }
     for (place, e) in dashboard_exprs(&dashboard()) {
         for m in metric_names(&e) {
-            wanted.entry(m).or_insert_with(|| format!("dashboard {place}"));
+            wanted
+                .entry(m)
+                .or_insert_with(|| format!("dashboard {place}"));
         }
     }
-    assert!(wanted.len() >= 25, "found only {} metric names", wanted.len());
+    assert!(
+        wanted.len() >= 25,
+        "found only {} metric names",
+        wanted.len()
+    );
     let missing: Vec<String> = wanted
         .iter()
         .filter(|(m, _)| !present.contains(*m))
@@ -907,7 +988,10 @@ fn every_metric_in_rules_and_dashboard_exists_in_a_real_scrape() {
             );
         }
     }
-    assert_eq!(Daemon::batches(&samples, "tidewater", "accepted"), Some(0.0));
+    assert_eq!(
+        Daemon::batches(&samples, "tidewater", "accepted"),
+        Some(0.0)
+    );
     let build = samples
         .iter()
         .find(|s| s.name == "labelweir_build_info")
@@ -959,19 +1043,29 @@ fn prometheus_scrapes_a_daemon_that_quarantined_a_batch() {
         "prometheus",
         Command::new(&prometheus)
             .arg(format!("--config.file={}", config.display()))
-            .arg(format!("--storage.tsdb.path={}", tmp.path().join("tsdb").display()))
+            .arg(format!(
+                "--storage.tsdb.path={}",
+                tmp.path().join("tsdb").display()
+            ))
             .arg(format!("--web.listen-address={prom_addr}")),
         tmp.path().join("prometheus.log"),
     );
-    wait_for(Duration::from_secs(60), "prometheus /-/ready answers 200", || {
-        prom.assert_running();
-        matches!(http_get(&prom_addr, "/-/ready"), Ok((200, _))).then_some(())
-    });
+    wait_for(
+        Duration::from_secs(60),
+        "prometheus /-/ready answers 200",
+        || {
+            prom.assert_running();
+            matches!(http_get(&prom_addr, "/-/ready"), Ok((200, _))).then_some(())
+        },
+    );
 
     // Instant query through the HTTP API; the result vector.
     let query = |q: &str| -> Vec<Json> {
-        let (status, body) = http_get(&prom_addr, &format!("/api/v1/query?query={}", url_encode(q)))
-            .expect("query prometheus");
+        let (status, body) = http_get(
+            &prom_addr,
+            &format!("/api/v1/query?query={}", url_encode(q)),
+        )
+        .expect("query prometheus");
         assert_eq!(status, 200, "query {q}: {body}");
         let v: Json = serde_json::from_str(&body).expect("API answer is JSON");
         assert_eq!(v["status"], "success", "query {q}: {body}");
@@ -988,13 +1082,21 @@ fn prometheus_scrapes_a_daemon_that_quarantined_a_batch() {
         (r.len() == 1).then(|| value(&r[0]))
     };
 
-    let quarantined = r#"labelweir_batches_total{job="labelweir", vendor="ridgeline", outcome="quarantined"}"#;
-    wait_for(Duration::from_secs(60), "Prometheus has scraped the quarantine", || {
-        prom.assert_running();
-        (one(quarantined) == Some(1.0)).then_some(())
-    });
+    let quarantined =
+        r#"labelweir_batches_total{job="labelweir", vendor="ridgeline", outcome="quarantined"}"#;
+    wait_for(
+        Duration::from_secs(60),
+        "Prometheus has scraped the quarantine",
+        || {
+            prom.assert_running();
+            (one(quarantined) == Some(1.0)).then_some(())
+        },
+    );
     assert_eq!(one(r#"up{job="labelweir"}"#), Some(1.0), "target up");
-    assert_eq!(one(r#"labelweir_quarantine_batches{job="labelweir"}"#), Some(1.0));
+    assert_eq!(
+        one(r#"labelweir_quarantine_batches{job="labelweir"}"#),
+        Some(1.0)
+    );
     assert_eq!(
         one(r#"labelweir_batches_total{job="labelweir", vendor="ridgeline", outcome="accepted"}"#),
         Some(0.0)
@@ -1021,26 +1123,44 @@ fn prometheus_scrapes_a_daemon_that_quarantined_a_batch() {
             .flat_map(|g| g["rules"].as_array().cloned().unwrap_or_default())
             .collect();
         let evaluated = rules.len() == names.len()
-            && rules.iter().all(|r| r["lastEvaluation"].as_str().is_some_and(|t| !t.starts_with("0001")));
+            && rules.iter().all(|r| {
+                r["lastEvaluation"]
+                    .as_str()
+                    .is_some_and(|t| !t.starts_with("0001"))
+            });
         evaluated.then_some(rules)
     });
     for r in &loaded {
         assert_eq!(r["type"], "alerting");
-        assert_eq!(r["health"], "ok", "rule {} failed: {}", r["name"], r["lastError"]);
+        assert_eq!(
+            r["health"], "ok",
+            "rule {} failed: {}",
+            r["name"], r["lastError"]
+        );
     }
     let loaded_names: BTreeSet<&str> = loaded.iter().filter_map(|r| r["name"].as_str()).collect();
-    assert_eq!(loaded_names, names.iter().map(String::as_str).collect::<BTreeSet<_>>());
+    assert_eq!(
+        loaded_names,
+        names.iter().map(String::as_str).collect::<BTreeSet<_>>()
+    );
 
     // A poisoned batch from a vendor without history: the repair cost alert goes pending (for: 1m) exactly
     // when the cost is over the cold-start limit of 0.05 that the rule shares with the default policy.
     let alert = r#"ALERTS{alertname="LabelweirRepairCostSpike", vendor="ridgeline"}"#;
     if cost > 0.05 {
-        let state = wait_for(Duration::from_secs(30), "LabelweirRepairCostSpike pending", || {
-            query(alert)
-                .first()
-                .and_then(|r| r["metric"]["alertstate"].as_str().map(String::from))
-        });
-        assert!(state == "pending" || state == "firing", "alert state {state}");
+        let state = wait_for(
+            Duration::from_secs(30),
+            "LabelweirRepairCostSpike pending",
+            || {
+                query(alert)
+                    .first()
+                    .and_then(|r| r["metric"]["alertstate"].as_str().map(String::from))
+            },
+        );
+        assert!(
+            state == "pending" || state == "firing",
+            "alert state {state}"
+        );
     } else {
         // Quarantined on damage alone; the repair cost alert must stay quiet.
         std::thread::sleep(Duration::from_secs(3));
@@ -1048,7 +1168,10 @@ fn prometheus_scrapes_a_daemon_that_quarantined_a_batch() {
     }
     // Nothing pages while the daemon is healthy.
     let paging = query(r#"ALERTS{severity="page"}"#);
-    assert!(paging.is_empty(), "page alerts on a healthy daemon: {paging:?}");
+    assert!(
+        paging.is_empty(),
+        "page alerts on a healthy daemon: {paging:?}"
+    );
 }
 
 // ------------------------------------------------------------------------------------------------ systemd
@@ -1099,7 +1222,10 @@ fn service_unit_passes_systemd_analyze() {
         assert_eq!(get(k), [v], "{k}={v}");
     }
     assert!(get("TimeoutStopSec").len() == 1);
-    assert!(get("WatchdogSec").is_empty(), "the daemon sends no watchdog pings");
+    assert!(
+        get("WatchdogSec").is_empty(),
+        "the daemon sends no watchdog pings"
+    );
 
     // /usr/bin/labelweir is not installed here: verify a copy that runs the binary under test.
     let tmp = tempfile::TempDir::new().expect("tempdir");
@@ -1115,7 +1241,10 @@ fn service_unit_passes_systemd_analyze() {
         String::from_utf8_lossy(&out.stdout),
         String::from_utf8_lossy(&out.stderr)
     );
-    assert!(out.status.success(), "systemd-analyze verify failed:\n{text}");
+    assert!(
+        out.status.success(),
+        "systemd-analyze verify failed:\n{text}"
+    );
     assert!(
         !text.contains("labelweir.service:"),
         "systemd-analyze verify warned about the unit:\n{text}"
@@ -1171,18 +1300,26 @@ fn tmpfiles_snippet_creates_the_documented_modes() {
         assert!(f[1].starts_with("/var/lib/labelweir"), "{line}");
         assert!(f[3] == "labelweir", "owner is the daemon's user: {line}");
         assert!(f[4].starts_with("labelweir"), "{line}");
-        expected.push((f[1].to_string(), u32::from_str_radix(f[2], 8).expect("octal mode")));
-        mapped.push_str(&format!("{} {} {} root root {} {}\n", f[0], f[1], f[2], f[5], f[6]));
+        expected.push((
+            f[1].to_string(),
+            u32::from_str_radix(f[2], 8).expect("octal mode"),
+        ));
+        mapped.push_str(&format!(
+            "{} {} {} root root {} {}\n",
+            f[0], f[1], f[2], f[5], f[6]
+        ));
     }
     let tmp = tempfile::TempDir::new().expect("tempdir");
     let conf = tmp.path().join("labelweir.conf");
     std::fs::write(&conf, mapped).expect("write");
     let root = tmp.path().join("root");
     std::fs::create_dir(&root).expect("mkdir");
-    run_ok(Command::new(&tmpfiles)
-        .arg("--create")
-        .arg(format!("--root={}", root.display()))
-        .arg(&conf));
+    run_ok(
+        Command::new(&tmpfiles)
+            .arg("--create")
+            .arg(format!("--root={}", root.display()))
+            .arg(&conf),
+    );
     use std::os::unix::fs::PermissionsExt;
     let mode = |p: &str| {
         std::fs::metadata(root.join(p.trim_start_matches('/')))
@@ -1195,7 +1332,11 @@ fn tmpfiles_snippet_creates_the_documented_modes() {
         assert_eq!(mode(path), *m, "{path}");
     }
     for private in ["state", "processing", "accepted", "rejected"] {
-        assert_eq!(mode(&format!("/var/lib/labelweir/{private}")), 0o700, "{private}");
+        assert_eq!(
+            mode(&format!("/var/lib/labelweir/{private}")),
+            0o700,
+            "{private}"
+        );
     }
     let inboxes: Vec<_> = expected
         .iter()
@@ -1203,6 +1344,10 @@ fn tmpfiles_snippet_creates_the_documented_modes() {
         .collect();
     assert!(!inboxes.is_empty());
     for (p, _) in inboxes {
-        assert_eq!(mode(p), 0o3770, "{p}: setgid + sticky, vendor group writable");
+        assert_eq!(
+            mode(p),
+            0o3770,
+            "{p}: setgid + sticky, vendor group writable"
+        );
     }
 }

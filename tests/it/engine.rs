@@ -417,7 +417,7 @@ proptest! {
     /// H⁻¹ misses it by orders of magnitude.
     #[test]
     fn label_hypergradient_matches_resolved_finite_differences(hp in hyper_problem()) {
-        let settings = ModelSettings { inner_tol: 1e-12, inner_max_iters: 500, ..tight(hp.base.l2) };
+        let settings = ModelSettings { inner_tol: 1e-10, inner_max_iters: 500, ..tight(hp.base.l2) };
         let n = hp.base.phi.nrows();
         let k = hp.base.y.ncols();
         let batch = n - hp.n_batch..n;
@@ -445,7 +445,7 @@ proptest! {
             )
         };
         prop_assert_eq!(g.dim(), (hp.n_batch, k));
-        let h = 1e-4;
+        let h = 1e-3;
         let mut yp = hp.base.y.clone();
         let mut ym = hp.base.y.clone();
         {
