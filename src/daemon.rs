@@ -666,10 +666,8 @@ pub async fn run(
         })
     });
 
-    // ADMIN HOOK: the review engineer's admin socket server (src/admin.rs) starts here with the daemon
-    // context and a stop signal, e.g.
-    //   tokio::spawn(crate::admin::serve(ctx.clone(), stop_rx.clone()));
-    let _ctx = DaemonContext {
+    // ADMIN HOOK: the admin socket server (src/admin.rs) serves review commands until the stop signal.
+    let ctx = DaemonContext {
         ws: ws.clone(),
         config: config.clone(),
         store: store.clone(),
@@ -678,6 +676,7 @@ pub async fn run(
         metrics: metrics.clone(),
         ready: ready.clone(),
     };
+    let admin_task = tokio::spawn(crate::admin::serve(ctx, stop_rx.clone()));
 
     // Housekeeping: gauges, readiness notification.
     let hk = {
@@ -752,6 +751,7 @@ pub async fn run(
     if let Some(t) = http_task {
         let _ = t.await;
     }
+    let _ = admin_task.await;
     let _ = hk.await;
     let flush = {
         let store = store.clone();

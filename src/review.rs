@@ -333,6 +333,15 @@ pub enum Request {
     },
 }
 
+/// The trusted set with features, for `trusted export`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TrustedExport {
+    /// Feature column names, in the order of each item's `features`.
+    pub features: Vec<String>,
+    /// Every trusted item with provenance.
+    pub items: Vec<TrustedItem>,
+}
+
 /// Run one request. The result is the operation's report as JSON.
 pub fn handle(env: &ReviewEnv<'_>, req: Request) -> Result<serde_json::Value, ReviewError> {
     fn json<T: Serialize>(v: T) -> Result<serde_json::Value, ReviewError> {
@@ -348,7 +357,10 @@ pub fn handle(env: &ReviewEnv<'_>, req: Request) -> Result<serde_json::Value, Re
         Request::TrustedList => json(trusted_list(env)?),
         Request::TrustedAdd(r) => json(trusted_add(env, &r)?),
         Request::TrustedRemove(r) => json(trusted_remove(env, &r)?),
-        Request::TrustedExport => json(env.store.trusted_items()?),
+        Request::TrustedExport => json(TrustedExport {
+            features: env.meta.features.clone(),
+            items: env.store.trusted_items()?,
+        }),
         Request::Rescan { by } => json(rescan(env, &by)?),
         Request::Audit {
             since,

@@ -1,10 +1,114 @@
-//! `labelweir audit` (in progress).
+//! `labelweir audit`: print or export the audit trail.
 
-/// (in progress)
+use std::io::Write;
+use std::path::PathBuf;
+
+use chrono::{DateTime, NaiveDate, Utc};
+
+use super::quarantine::dispatch;
+use super::{exit, Failure};
+use crate::data::sanitize;
+use crate::review::Request;
+use crate::store::AuditRecord;
+
+/// Print the audit trail: verdicts, reviews (with reviewer and reason), trusted-set changes, notices.
+/// `--json` writes JSON Lines (one record per line), the export format.
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+pub struct Args {
+    /// Workspace folder.
+    pub dir: PathBuf,
+    /// Only records at or after this time: RFC 3339 (2026-03-01T08:00:00Z) or a date (2026-03-01, UTC).
+    #[arg(long)]
+    pub since: Option<String>,
+    /// Only records about this vendor.
+    #[arg(long)]
+    pub vendor: Option<String>,
+    /// Only records about this batch.
+    #[arg(long)]
+    pub batch: Option<String>,
+    /// Write JSON Lines.
+    #[arg(long)]
+    pub json: bool,
+    /// Write to this file instead of stdout.
+    #[arg(long, short)]
+    pub output: Option<PathBuf>,
+}
+
+/// Parse `--since`: RFC 3339, or a calendar date meaning its midnight UTC.
+pub fn parse_since(s: &str) -> Option<DateTime<Utc>> {
+    DateTime::parse_from_rfc3339(s)
+        .map(|t| t.with_timezone(&Utc))
+        .ok()
+        .or_else(|| {
+            NaiveDate::parse_from_str(s, "%Y-%m-%d")
+                .ok()
+                .and_then(|d| d.and_hms_opt(0, 0, 0))
+                .map(|t| t.and_utc())
+        })
+}
 
 /// Run the subcommand.
-pub fn run(_args: Args) -> anyhow::Result<u8> {
-    Err(super::Failure::new(super::exit::INTERNAL, "not implemented yet").into())
+pub fn run(args: Args) -> anyhow::Result<u8> {
+    let since = match &args.since {
+        Some(s) => Some(parse_since(s).ok_or_else(|| {
+            Failure::new(
+                exit::INPUT,
+                format!("--since {}: expected RFC 3339 or YYYY-MM-DD", sanitize(s)),
+            )
+        })?),
+        None => None,
+    };
+    let v = dispatch(
+        &args.dir,
+        Request::Audit {
+            since,
+            vendor: args.vendor.clone(),
+            batch: args.batch.clone(),
+        },
+    )?;
+    let records: Vec<AuditRecord> = serde_json::from_value(v)?;
+    let mut out = Vec::new();
+    for a in &records {
+        if args.json {
+            serde_json::to_writer(&mut out, a)?;
+            out.push(b'\n');
+        } else {
+            let what = match (&a.batch_id, &a.vendor) {
+                (Some(b), Some(v)) => format!("{} ({})", sanitize(b), sanitize(v)),
+                (Some(b), None) => sanitize(b),
+                (None, Some(v)) => sanitize(v),
+                (None, None) => String::new(),
+            };
+            writeln!(
+                out,
+                "{}  {:<12} {:<16} {:<24} {:<16} {}",
+                a.at.format("%Y-%m-%d %H:%M:%S"),
+                sanitize(&a.actor),
+                sanitize(&a.action),
+                what,
+                sanitize(a.outcome.as_deref().unwrap_or("")),
+                sanitize(a.reason.as_deref().unwrap_or(""))
+            )?;
+        }
+    }
+    match &args.output {
+        Some(p) => std::fs::write(p, &out)
+            .map_err(|e| Failure::new(exit::IO, format!("write {}: {e}", p.display())))?,
+        None => std::io::stdout().write_all(&out)?,
+    }
+    Ok(exit::OK)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn since_accepts_rfc3339_and_dates() {
+        let t = parse_since("2026-03-01T08:00:00Z").unwrap();
+        assert_eq!(t.to_rfc3339(), "2026-03-01T08:00:00+00:00");
+        let d = parse_since("2026-03-01").unwrap();
+        assert_eq!(d.to_rfc3339(), "2026-03-01T00:00:00+00:00");
+        assert!(parse_since("yesterday").is_none());
+    }
 }

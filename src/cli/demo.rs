@@ -1,10 +1,276 @@
-//! `labelweir demo` (in progress).
+//! `labelweir demo`: a workspace in the fictional recycling plant, batches dropped over a few seconds, every
+//! verdict printed as it happens.
 
-/// (in progress)
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::Arc;
+use std::time::Duration;
+
+use anyhow::Context;
+
+use super::{exit, Failure};
+use crate::config::{Config, Workspace};
+use crate::daemon::{self, RunOptions};
+use crate::scenario::{self, Plant};
+use crate::store::{BatchRecord, Outcome};
+
+/// Run a demonstration: a fictional recycling plant's sorting model, three contracted labeling vendors, and
+/// the daemon judging their batches live.
+///
+/// Creates a workspace in DIR (which must not exist or be empty), starts the daemon on it, drops the
+/// vendors' batches into their folders over a few seconds and prints each verdict with its reasons. One
+/// vendor starts delivering systematically flipped labels partway through; one file is malformed. Then it
+/// keeps serving metrics until Ctrl-C (or exits at once with --exit-when-idle). A flag is a suspicion for
+/// review, not proof.
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+pub struct Args {
+    /// Folder for the demo workspace (must not exist, or be empty).
+    pub dir: PathBuf,
+    /// Exit as soon as every batch has a verdict instead of serving metrics until Ctrl-C.
+    #[arg(long)]
+    pub exit_when_idle: bool,
+    /// Serve /metrics here (default: the configured 127.0.0.1:9464).
+    #[arg(long)]
+    pub listen: Option<SocketAddr>,
+    /// Pause between dropped batches, in milliseconds.
+    #[arg(long, default_value_t = 400)]
+    pub pace_ms: u64,
+}
+
+const VENDORS: [&str; 3] = ["north-sort", "east-labels", "delta-tagging"];
+
+/// One planned delivery.
+struct Drop {
+    vendor: &'static str,
+    name: String,
+    bytes: Vec<u8>,
+    note: &'static str,
+}
+
+fn csv(prefix: &str, x: &ndarray::Array2<f64>, y: &[usize]) -> anyhow::Result<Vec<u8>> {
+    let mut out = Vec::new();
+    crate::data::write_csv(
+        &mut out,
+        ("id", "label"),
+        &scenario::item_ids(prefix, y.len()),
+        &scenario::label_names(y),
+        &scenario::feature_names(),
+        x.view(),
+    )?;
+    Ok(out)
+}
+
+fn plan(plant: &Plant) -> anyhow::Result<Vec<Drop>> {
+    let paper = scenario::class_names()
+        .iter()
+        .position(|c| c == "paper")
+        .unwrap_or(0);
+    let mut drops = Vec::new();
+    let mut seed = 100;
+    for week in 1..=4 {
+        for vendor in VENDORS {
+            seed += 1;
+            let (x, y) = plant.sample(300, seed);
+            let name = format!("week{week:02}.csv");
+            let prefix = format!("{vendor}-w{week:02}");
+            let (y, note) = if vendor == "delta-tagging" && week >= 3 {
+                // From week 3 on, this vendor labels one region of the belt's items as paper
+                // (systematic flips; Zhang, Zhu & Wright 2018's systematic-bias setting).
+                let (y2, _) = scenario::region_flips(x.view(), &y, paper, 0.15, seed);
+                (
+                    y2,
+                    "systematically flipped labels (a region of items labeled paper)",
+                )
+            } else {
+                (y, "clean")
+            };
+            drops.push(Drop {
+                vendor,
+                name,
+                bytes: csv(&prefix, &x, &y)?,
+                note,
+            });
+        }
+        if week == 2 {
+            // A malformed delivery: a sensor reading exported as text.
+            let (x, y) = plant.sample(50, 999);
+            let text = String::from_utf8(csv("east-labels-fix", &x, &y)?)?;
+            let mut lines: Vec<String> = text.lines().map(String::from).collect();
+            if let Some(row) = lines.get_mut(7) {
+                let mut cells: Vec<String> = row.split(',').map(String::from).collect();
+                if cells.len() > 5 {
+                    cells[5] = "n/a".into();
+                }
+                *row = cells.join(",");
+            }
+            drops.push(Drop {
+                vendor: "east-labels",
+                name: "week02-fix.csv".into(),
+                bytes: (lines.join("\n") + "\n").into_bytes(),
+                note: "malformed (a text cell in a numeric column)",
+            });
+        }
+    }
+    Ok(drops)
+}
+
+fn print_verdict(r: &BatchRecord) {
+    let outcome = r.outcome.map_or("?", |o| o.as_str());
+    let mut line = format!(
+        "{:<14} {:<16} -> {:<11}",
+        r.vendor,
+        r.original_name,
+        outcome.to_uppercase()
+    );
+    if let Some(s) = &r.scores {
+        line.push_str(&format!(
+            " repair cost {:.3}, damage {:+.3} nats",
+            s.repair_cost, s.damage
+        ));
+    }
+    println!("{line}");
+    match r.outcome {
+        Some(Outcome::Quarantined) => {
+            if let Some(d) = &r.decision {
+                for reason in &d.reasons {
+                    println!("      reason: {} - {}", reason.code, reason.detail);
+                }
+            }
+            let flagged: Vec<_> = r
+                .suspects
+                .iter()
+                .filter(|s| s.proposed_label != s.label)
+                .collect();
+            println!(
+                "      {} item(s) flagged for review; top suspects (a suspicion, not proof):",
+                flagged.len()
+            );
+            for s in flagged.iter().take(3) {
+                println!(
+                    "        {}  labeled {:<10} proposed {:<10} suspicion {:.2}",
+                    s.id, s.label, s.proposed_label, s.suspicion
+                );
+            }
+        }
+        Some(Outcome::Rejected) | Some(Outcome::Duplicate) => {
+            if let Some(rr) = &r.reject {
+                println!("      reason: {} - {}", rr.code, rr.detail);
+            }
+        }
+        _ => {}
+    }
+}
+
+fn setup(dir: &Path) -> anyhow::Result<()> {
+    if dir.exists() && std::fs::read_dir(dir)?.next().is_some() {
+        return Err(Failure::new(
+            exit::INPUT,
+            format!(
+                "{} exists and is not empty; pick a new folder",
+                dir.display()
+            ),
+        )
+        .into());
+    }
+    std::fs::create_dir_all(dir)?;
+    let plant = Plant::new(2026);
+    let (x, y) = plant.sample_per_class(10, 7);
+    let trusted = dir.join("trusted-items.csv");
+    std::fs::write(&trusted, csv("trusted", &x, &y)?)?;
+    let ws_dir = dir.join("workspace");
+    let vendors: Vec<String> = VENDORS.iter().map(|s| s.to_string()).collect();
+    super::init::create_workspace(&ws_dir, &trusted, &vendors, "demo-expert")?;
+    // Demo pacing: react within a fraction of a second.
+    let cfg_path = Workspace::new(&ws_dir).config_file();
+    let text = std::fs::read_to_string(&cfg_path)?
+        .replace("quiet_period_ms = 2000", "quiet_period_ms = 200")
+        .replace("rescan_interval_secs = 60", "rescan_interval_secs = 5");
+    std::fs::write(&cfg_path, text)?;
+    Ok(())
+}
 
 /// Run the subcommand.
-pub fn run(_args: Args) -> anyhow::Result<u8> {
-    Err(super::Failure::new(super::exit::INTERNAL, "not implemented yet").into())
+pub fn run(args: Args) -> anyhow::Result<u8> {
+    setup(&args.dir).context("creating the demo workspace")?;
+    let ws_dir = args.dir.join("workspace");
+    let config =
+        Config::from_workspace(&ws_dir).map_err(|e| Failure::new(exit::CONFIG, e.to_string()))?;
+    let drops = plan(&Plant::new(2026))?;
+    let total = drops.len();
+    println!("labelweir demo: a recycling plant's sorting model, trained on labels from three contracted vendors.");
+    println!(
+        "workspace: {}  (trusted set: 10 verified items per material class)",
+        ws_dir.display()
+    );
+    println!("dropping {total} batches into inbox/<vendor>/ over a few seconds; verdicts follow as they happen.");
+    println!("A flag is a suspicion for human review, not proof.\n");
+
+    let rt = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(2)
+        .enable_all()
+        .build()?;
+    let done = Arc::new(AtomicUsize::new(0));
+    let idle = Arc::new(tokio::sync::Notify::new());
+    let observer: crate::scoring::Observer = {
+        let (done, idle) = (done.clone(), idle.clone());
+        Arc::new(move |r: &BatchRecord| {
+            print_verdict(r);
+            if done.fetch_add(1, Ordering::SeqCst) + 1 == total {
+                idle.notify_one();
+            }
+        })
+    };
+    let on_ready: Arc<dyn Fn(Option<SocketAddr>) + Send + Sync> = {
+        let ws = Workspace::new(&ws_dir);
+        let pace = Duration::from_millis(args.pace_ms);
+        let drops = std::sync::Mutex::new(Some(drops));
+        Arc::new(move |addr: Option<SocketAddr>| {
+            if let Some(a) = addr {
+                println!("metrics: http://{a}/metrics\n");
+            }
+            let Some(drops) = drops.lock().ok().and_then(|mut d| d.take()) else {
+                return;
+            };
+            let ws = ws.clone();
+            std::thread::spawn(move || {
+                for d in drops {
+                    let inbox = ws.vendor_inbox(d.vendor);
+                    let tmp = inbox.join(format!(".{}.part", d.name));
+                    let ok = std::fs::write(&tmp, &d.bytes)
+                        .and_then(|_| std::fs::rename(&tmp, inbox.join(&d.name)));
+                    match ok {
+                        Ok(()) => println!("  dropped {}/{} ({})", d.vendor, d.name, d.note),
+                        Err(e) => eprintln!("  could not drop {}: {e}", d.name),
+                    }
+                    std::thread::sleep(pace);
+                }
+            });
+        })
+    };
+    let exit_when_idle = args.exit_when_idle;
+    let shutdown = {
+        let idle = idle.clone();
+        async move {
+            idle.notified().await;
+            if exit_when_idle {
+                println!("\nevery batch has a verdict; stopping (--exit-when-idle).");
+                return;
+            }
+            println!("\nevery batch has a verdict. Serving metrics until Ctrl-C.");
+            super::run::signals().await;
+        }
+    };
+    let opts = RunOptions {
+        listen: args.listen,
+        observer: Some(observer),
+        on_ready: Some(on_ready),
+    };
+    rt.block_on(daemon::run(Workspace::new(&ws_dir), config, opts, shutdown))
+        .map_err(|e| Failure::new(e.exit_code(), e.to_string()))?;
+    println!(
+        "\nfolders: {}/accepted, quarantine (read-only copies + reports), rejected; vendor notices in notices/<vendor>/",
+        ws_dir.display()
+    );
+    Ok(exit::OK)
 }

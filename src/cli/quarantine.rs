@@ -1,10 +1,504 @@
-//! `labelweir quarantine` (in progress).
+//! `labelweir quarantine`: review held batches — list, show, release, reject, withdraw.
+//!
+//! Also home of [`dispatch`], which every review command uses: through the running daemon's admin socket
+//! when it answers, else on the store opened directly.
 
-/// (in progress)
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
+
+use anyhow::Context;
+
+use super::{exit, Failure};
+use crate::admin;
+use crate::config::{Config, Workspace};
+use crate::data::sanitize;
+use crate::review::{
+    self, Caller, DecisionReport, NoHooks, QueueEntry, RejectRequest, ReleaseRequest, Request,
+    ReviewEnv, ReviewError, ShowReport, WithdrawRequest,
+};
+use crate::store::{Store, StoreError};
+
+/// Review quarantined batches: list them, show why one was held, release or reject it, or withdraw an
+/// accepted batch from the pool. Works while the daemon runs (through its admin socket, DIR/admin.sock)
+/// and while it is stopped. A flag is a suspicion for review, not proof.
 #[derive(Debug, clap::Args)]
-pub struct Args {}
+pub struct Args {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, clap::Subcommand)]
+enum Command {
+    List(ListArgs),
+    Show(ShowArgs),
+    Release(ReleaseArgs),
+    Reject(RejectArgs),
+    Withdraw(WithdrawArgs),
+}
+
+/// List the batches waiting for review, oldest first.
+#[derive(Debug, clap::Args)]
+struct ListArgs {
+    /// Workspace folder.
+    dir: PathBuf,
+    /// Print JSON.
+    #[arg(long)]
+    json: bool,
+}
+
+/// Explain why a batch was held: repair cost against the vendor's baseline, the items whose labels the
+/// repair moved, the trusted items the batch would break, its history; and write a self-contained HTML
+/// page with a 2-D projection of its items beside the trusted items.
+#[derive(Debug, clap::Args)]
+struct ShowArgs {
+    /// Workspace folder.
+    dir: PathBuf,
+    /// Batch id (from `quarantine list`).
+    batch: String,
+    /// Where to write the HTML page. Default: ./labelweir-review-<BATCH>.html.
+    #[arg(long)]
+    html: Option<PathBuf>,
+    /// Do not write the HTML page.
+    #[arg(long, conflicts_with = "html")]
+    no_html: bool,
+    /// Print JSON.
+    #[arg(long)]
+    json: bool,
+    /// Most moved items to print (the JSON and the page have all).
+    #[arg(long, default_value_t = 25)]
+    top: usize,
+}
+
+/// Release a quarantined batch into the training pool, optionally leaving items out or correcting labels.
+#[derive(Debug, clap::Args)]
+struct ReleaseArgs {
+    /// Workspace folder.
+    dir: PathBuf,
+    /// Batch id.
+    batch: String,
+    /// Why (required; recorded in the audit trail).
+    #[arg(long)]
+    reason: String,
+    /// Reviewer name. Default: the OS user.
+    #[arg(long)]
+    by: Option<String>,
+    /// Leave this item out of the pool (repeat for more).
+    #[arg(long = "exclude", value_name = "ID")]
+    exclude: Vec<String>,
+    /// Set this item's label (repeat for more).
+    #[arg(long = "relabel", value_name = "ID=LABEL")]
+    relabel: Vec<String>,
+    /// Accept the proposed label of every item whose label the repair moved (explicit --exclude and
+    /// --relabel win).
+    #[arg(long)]
+    accept_proposed: bool,
+    /// Add this item, with its final label, to the trusted set: you verified it (repeat for more).
+    #[arg(long = "promote", value_name = "ID")]
+    promote: Vec<String>,
+    /// Print JSON.
+    #[arg(long)]
+    json: bool,
+}
+
+/// Reject a quarantined batch: it stays out of the pool and the vendor gets a notice.
+#[derive(Debug, clap::Args)]
+struct RejectArgs {
+    /// Workspace folder.
+    dir: PathBuf,
+    /// Batch id.
+    batch: String,
+    /// Why (required; recorded in the audit trail, not sent to the vendor).
+    #[arg(long)]
+    reason: String,
+    /// Reviewer name. Default: the OS user.
+    #[arg(long)]
+    by: Option<String>,
+    /// Tell the vendor the labels the repair proposes for the flagged items (off by default: notices
+    /// must not become a free oracle for a poisoner).
+    #[arg(long)]
+    disclose_proposed: bool,
+    /// Print JSON.
+    #[arg(long)]
+    json: bool,
+}
+
+/// Pull an accepted (or released) batch back out of the training pool, e.g. after a trusted-set change
+/// re-scan reported it.
+#[derive(Debug, clap::Args)]
+struct WithdrawArgs {
+    /// Workspace folder.
+    dir: PathBuf,
+    /// Batch id.
+    batch: String,
+    /// Why (required; recorded in the audit trail).
+    #[arg(long)]
+    reason: String,
+    /// Reviewer name. Default: the OS user.
+    #[arg(long)]
+    by: Option<String>,
+    /// Print JSON.
+    #[arg(long)]
+    json: bool,
+}
 
 /// Run the subcommand.
-pub fn run(_args: Args) -> anyhow::Result<u8> {
-    Err(super::Failure::new(super::exit::INTERNAL, "not implemented yet").into())
+pub fn run(args: Args) -> anyhow::Result<u8> {
+    match args.command {
+        Command::List(a) => {
+            let v = dispatch(&a.dir, Request::QuarantineList)?;
+            if a.json {
+                print_json(&v)?;
+            } else {
+                let list: Vec<QueueEntry> = serde_json::from_value(v)?;
+                print_list(&list);
+            }
+        }
+        Command::Show(a) => {
+            let v = dispatch(
+                &a.dir,
+                Request::QuarantineShow {
+                    batch: a.batch.clone(),
+                },
+            )?;
+            let report: ShowReport = serde_json::from_value(v.clone())?;
+            let page = if a.no_html {
+                None
+            } else {
+                let path = a.html.clone().unwrap_or_else(|| {
+                    PathBuf::from(format!("labelweir-review-{}.html", safe_stem(&a.batch)))
+                });
+                write_page(&path, &review::render_html(&report))
+                    .with_context(|| format!("write {}", path.display()))
+                    .map_err(|e| Failure::new(exit::IO, format!("{e:#}")))?;
+                Some(path)
+            };
+            if a.json {
+                let mut v = v;
+                v["html_page"] = serde_json::json!(page);
+                print_json(&v)?;
+            } else {
+                print_show(&report, a.top, page.as_deref());
+            }
+        }
+        Command::Release(a) => {
+            let mut relabel = Vec::new();
+            for r in &a.relabel {
+                let (id, label) = r.rsplit_once('=').ok_or_else(|| {
+                    Failure::new(
+                        exit::INPUT,
+                        format!("--relabel {}: expected ID=LABEL", sanitize(r)),
+                    )
+                })?;
+                relabel.push((id.to_string(), label.to_string()));
+            }
+            let req = ReleaseRequest {
+                batch: a.batch,
+                by: a.by.unwrap_or_else(super::init::os_user),
+                reason: a.reason,
+                exclude: a.exclude,
+                relabel,
+                accept_proposed: a.accept_proposed,
+                promote: a.promote,
+            };
+            let v = dispatch(&a.dir, Request::Release(req))?;
+            print_decision(v, a.json)?;
+        }
+        Command::Reject(a) => {
+            let req = RejectRequest {
+                batch: a.batch,
+                by: a.by.unwrap_or_else(super::init::os_user),
+                reason: a.reason,
+                disclose_proposed: a.disclose_proposed,
+            };
+            let v = dispatch(&a.dir, Request::Reject(req))?;
+            print_decision(v, a.json)?;
+        }
+        Command::Withdraw(a) => {
+            let req = WithdrawRequest {
+                batch: a.batch,
+                by: a.by.unwrap_or_else(super::init::os_user),
+                reason: a.reason,
+            };
+            let v = dispatch(&a.dir, Request::Withdraw(req))?;
+            print_decision(v, a.json)?;
+        }
+    }
+    Ok(exit::OK)
+}
+
+fn safe_stem(s: &str) -> String {
+    s.chars()
+        .filter(|c| c.is_ascii_alphanumeric() || *c == '-' || *c == '_')
+        .take(64)
+        .collect()
+}
+
+fn write_page(path: &Path, html: &str) -> std::io::Result<()> {
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    let name = path
+        .file_name()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_else(|| "labelweir-review.html".into());
+    crate::notice::write_atomic(&dir, &name, html.as_bytes()).map(|_| ())
+}
+
+/// Pretty-print JSON to stdout.
+pub fn print_json(v: &serde_json::Value) -> anyhow::Result<()> {
+    println!("{}", serde_json::to_string_pretty(v)?);
+    Ok(())
+}
+
+/// Turn a review error into a [`Failure`] with its exit code.
+pub fn review_failure(e: ReviewError) -> anyhow::Error {
+    Failure::new(e.exit_code(), e.to_string()).into()
+}
+
+fn own_uid() -> Option<u32> {
+    use std::os::unix::fs::MetadataExt;
+    std::fs::metadata("/proc/self").ok().map(|m| m.uid())
+}
+
+/// Run a review request: through the running daemon's admin socket when it answers, else on the store
+/// opened directly (waiting up to 5 s while another review command holds it).
+pub fn dispatch(dir: &Path, req: Request) -> anyhow::Result<serde_json::Value> {
+    let ws = Workspace::new(dir);
+    if !ws.config_file().is_file() {
+        return Err(Failure::new(
+            exit::INPUT,
+            format!(
+                "{} is not a labelweir workspace (no labelweir.toml)",
+                dir.display()
+            ),
+        )
+        .into());
+    }
+    let deadline = Instant::now() + Duration::from_secs(5);
+    loop {
+        match admin::call(&ws, &req) {
+            Ok(Some(r)) => return r.map_err(review_failure),
+            Ok(None) => {}
+            Err(e) => return Err(Failure::new(exit::IO, e.to_string()).into()),
+        }
+        let config =
+            Config::from_workspace(dir).map_err(|e| Failure::new(exit::CONFIG, e.to_string()))?;
+        match Store::open_workspace(dir, &config.store) {
+            Ok(store) => {
+                let meta = store
+                    .workspace_meta()
+                    .map_err(|e| Failure::new(exit::IO, e.to_string()))?;
+                let env = ReviewEnv {
+                    ws: &ws,
+                    config: &config,
+                    store: &store,
+                    meta: &meta,
+                    hooks: &NoHooks,
+                    caller: Caller {
+                        uid: own_uid(),
+                        via: "direct".into(),
+                    },
+                };
+                let r = review::handle(&env, req).map_err(review_failure);
+                let flushed = store.flush();
+                let v = r?;
+                flushed.map_err(|e| Failure::new(exit::IO, e.to_string()))?;
+                return Ok(v);
+            }
+            Err(StoreError::Locked(_)) if Instant::now() < deadline => {
+                std::thread::sleep(Duration::from_millis(150));
+            }
+            Err(StoreError::Locked(p)) => {
+                return Err(Failure::new(
+                    exit::IO,
+                    format!(
+                        "the store at {} is in use and no daemon answers on {}: another review command may be running; try again",
+                        p.display(),
+                        ws.admin_socket().display()
+                    ),
+                )
+                .into())
+            }
+            Err(e) => return Err(Failure::new(exit::IO, e.to_string()).into()),
+        }
+    }
+}
+
+fn fmt_opt(v: Option<f64>, digits: usize) -> String {
+    v.map_or("-".into(), |x| format!("{x:.digits$}"))
+}
+
+fn print_list(list: &[QueueEntry]) {
+    if list.is_empty() {
+        println!("no batches waiting for review");
+        return;
+    }
+    println!(
+        "{:<12} {:<16} {:>7} {:>8} {:>8} {:>7}  {:<20}  reasons",
+        "batch", "vendor", "items", "repair", "damage", "flagged", "received"
+    );
+    for e in list {
+        println!(
+            "{:<12} {:<16} {:>7} {:>8} {:>8} {:>7}  {:<20}  {}",
+            sanitize(&e.batch_id),
+            sanitize(&e.vendor),
+            e.items.map_or("-".into(), |n| n.to_string()),
+            fmt_opt(e.repair_cost, 4),
+            fmt_opt(e.damage, 4),
+            e.flagged_items.map_or("-".into(), |n| n.to_string()),
+            e.received_at.format("%Y-%m-%d %H:%M:%S"),
+            e.reasons.join(",")
+        );
+    }
+    println!(
+        "\n{} batch(es) waiting. A flag is a suspicion for review, not proof.",
+        list.len()
+    );
+}
+
+fn print_show(r: &ShowReport, top: usize, page: Option<&Path>) {
+    let b = &r.batch;
+    println!(
+        "batch {} from vendor {} ({})",
+        sanitize(&b.id),
+        sanitize(&b.vendor),
+        b.state
+    );
+    println!("  delivered as   {}", sanitize(&b.original_name));
+    println!(
+        "  received       {}",
+        b.claimed_at.format("%Y-%m-%d %H:%M:%S UTC")
+    );
+    if let Some(n) = b.items {
+        println!("  items          {n}");
+    }
+    if let Some(s) = &b.scores {
+        println!(
+            "  repair cost    {:.4}  (share of label mass the repair moves)",
+            s.repair_cost
+        );
+        println!("  damage         {:.4} nats on the trusted items", s.damage);
+    }
+    if let Some(bl) = &r.baseline {
+        if bl.cold_start {
+            println!(
+                "  baseline       cold start: {} accepted batches so far, absolute limits apply",
+                bl.n_history
+            );
+        } else {
+            println!(
+                "  baseline       vendor median {:.4} over {} accepted batches; modified z {:.2}; CUSUM {:.2} (h = {:.1})",
+                bl.median, bl.n_history, bl.modified_z, bl.cusum, bl.cusum_h
+            );
+        }
+    }
+    println!("\nwhy it was held:");
+    for reason in &r.reasons {
+        println!("  - {}: {}", reason.code, sanitize(&reason.detail));
+    }
+    println!(
+        "\nitems whose labels the repair moved ({}):",
+        r.moved_items.len()
+    );
+    if !r.moved_items.is_empty() {
+        println!(
+            "  {:<24} {:<16} {:<16} {:>9}",
+            "item", "given", "proposed", "suspicion"
+        );
+    }
+    for m in r.moved_items.iter().take(top) {
+        println!(
+            "  {:<24} {:<16} {:<16} {:>9.3}",
+            sanitize(&m.id),
+            sanitize(&m.label),
+            sanitize(&m.proposed_label),
+            m.suspicion
+        );
+    }
+    if r.moved_items.len() > top {
+        println!(
+            "  ... {} more (see --json or the page)",
+            r.moved_items.len() - top
+        );
+    }
+    println!(
+        "\ntrusted items the batch as delivered would break ({}):",
+        r.broken_trusted.len()
+    );
+    for t in r.broken_trusted.iter().take(top) {
+        println!(
+            "  {:<24} verified {:<16} predicted {}",
+            sanitize(&t.id),
+            sanitize(t.label.as_deref().unwrap_or("?")),
+            sanitize(t.predicted_with_batch.as_deref().unwrap_or("?"))
+        );
+    }
+    println!(
+        "\nvendor: {} accepted batches in total, {} waiting for review",
+        r.vendor.accepted_total, r.vendor.waiting_for_review
+    );
+    println!("\nhistory:");
+    for a in &r.history {
+        println!(
+            "  {}  {:<10} {:<10} {:<12} {}",
+            a.at.format("%Y-%m-%d %H:%M:%S"),
+            sanitize(&a.actor),
+            sanitize(&a.action),
+            sanitize(a.outcome.as_deref().unwrap_or("")),
+            sanitize(a.reason.as_deref().unwrap_or(""))
+        );
+    }
+    if let Some(p) = page {
+        println!("\nreview page: {}", p.display());
+    }
+    if let Some(n) = &r.projection_note {
+        println!("({})", sanitize(n));
+    }
+    println!("\n{}", r.note);
+}
+
+fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
+    if json {
+        return print_json(&v);
+    }
+    let d: DecisionReport = serde_json::from_value(v)?;
+    println!(
+        "batch {} ({}) is now {}; decided by {}: {}",
+        sanitize(&d.batch_id),
+        sanitize(&d.vendor),
+        d.state,
+        sanitize(&d.by),
+        sanitize(&d.reason)
+    );
+    if d.items_into_pool > 0 {
+        println!("  {} items went into the training pool", d.items_into_pool);
+    }
+    if !d.excluded.is_empty() {
+        println!("  excluded: {}", sanitize(&d.excluded.join(", ")));
+    }
+    for (id, from, to) in &d.relabeled {
+        println!(
+            "  relabeled {}: {} -> {}",
+            sanitize(id),
+            sanitize(from),
+            sanitize(to)
+        );
+    }
+    if !d.promoted.is_empty() {
+        println!(
+            "  promoted to the trusted set: {}",
+            sanitize(&d.promoted.join(", "))
+        );
+    }
+    if let Some(f) = &d.file {
+        println!("  file: {}", f.display());
+    }
+    if !d.notices.is_empty() {
+        println!("  vendor notice: {}", d.notices.join(", "));
+    }
+    for w in &d.warnings {
+        eprintln!("warning: {}", sanitize(w));
+    }
+    Ok(())
 }

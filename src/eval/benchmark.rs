@@ -205,6 +205,10 @@ pub struct ModeAgreement {
     pub repair_cost_summary: f64,
     /// Repair cost, exact mode.
     pub repair_cost_exact: f64,
+    /// Damage (nats), incremental mode.
+    pub damage_summary: f64,
+    /// Damage (nats), exact mode.
+    pub damage_exact: f64,
     /// Exact-mode wall time (ms).
     pub exact_ms: f64,
     /// Incremental-mode wall time (ms).
@@ -828,6 +832,8 @@ fn mode_agreement(
         top20_of: top,
         repair_cost_summary: summary_run.assessment.repair_cost,
         repair_cost_exact: exact.repair_cost,
+        damage_summary: summary_run.assessment.damage,
+        damage_exact: exact.damage,
         exact_ms,
         summary_ms: summary_run.engine_ms,
     })
@@ -1086,7 +1092,7 @@ pub fn render_text(r: &BenchReport) -> String {
         for a in &r.mode_agreement {
             let _ = writeln!(
                 s,
-                "   {:<16} {:<20} Spearman {} · top-20 shared {}/{} · repair cost {:.3} vs {:.3} · {:.0} ms vs {:.0} ms",
+                "   {:<16} {:<20} Spearman {} · top-20 shared {}/{} · repair cost {:.3} vs {:.3} · damage {:+.4} vs {:+.4} · {:.0} ms vs {:.0} ms",
                 a.source,
                 a.attack.label(),
                 fmt_opt(a.spearman),
@@ -1094,6 +1100,8 @@ pub fn render_text(r: &BenchReport) -> String {
                 a.top20_of,
                 a.repair_cost_summary,
                 a.repair_cost_exact,
+                a.damage_summary,
+                a.damage_exact,
                 a.summary_ms,
                 a.exact_ms
             );

@@ -123,11 +123,11 @@ impl Default for ModelSettings {
             repair_iters: 10,
             relinearisations: 1,
             target_slack: 0.0,
-            repair_weight: 0.5,
+            repair_weight: 0.2,
             cv_folds: 5,
             min_reference_pool: 200,
             time_budget_ms: 30_000,
-            flag_threshold: 0.5,
+            flag_threshold: 0.25,
         }
     }
 }

@@ -682,12 +682,14 @@ pub fn assess(
     let mut warm_d: Option<Array1<f64>> = None;
     let mut warm_q: Option<Array1<f64>> = None;
     let (_, g0) = ctx.loss_and_hypergradient(&lin, &theta_hat, &mut warm_q);
-    let gamma_max = (0..n_b)
+    // γ at which item i's label starts to move (first order, KKT at Y = Ŷ): n_B max_k (G_iŷ − G_ik)⁺.
+    let entry: Vec<f64> = (0..n_b)
         .map(|i| {
             let gy = g0[[i, batch_y[i]]];
             (0..k).map(|c| gy - g0[[i, c]]).fold(0.0, f64::max) * n_b as f64
         })
-        .fold(0.0, f64::max);
+        .collect();
+    let gamma_max = entry.iter().copied().fold(0.0, f64::max);
     let steps = settings.path_steps;
     let gammas: Vec<f64> = (0..steps)
         .map(|l| gamma_max * settings.path_min_ratio.powf((l + 1) as f64 / steps as f64))
@@ -812,8 +814,17 @@ pub fn assess(
     let items = (0..n_b)
         .map(|i| {
             let given = batch_y[i];
-            let path_score = moved_path.iter().map(|mv| mv[i]).sum::<f64>()
+            // Path score: half the moved mass averaged over the path, half the item's first-order entry point
+            // on the same log-γ scale (1 for the first item to move, 0 at or below the path's last γ), so
+            // items the path never moves are still ordered by how close they came.
+            let moved_avg = moved_path.iter().map(|mv| mv[i]).sum::<f64>()
                 / if moved_path.is_empty() { 1.0 } else { n_steps };
+            let entry_score = if entry[i] > 0.0 && gamma_max > 0.0 {
+                (1.0 - (gamma_max / entry[i]).ln() / (1.0 / settings.path_min_ratio).ln()).clamp(0.0, 1.0)
+            } else {
+                0.0
+            };
+            let path_score = 0.5 * moved_avg + 0.5 * entry_score;
             let disagreement = (1.0 - p_ref[[i, given]]).clamp(0.0, 1.0);
             let suspicion = (w * path_score + (1.0 - w) * disagreement).clamp(0.0, 1.0);
             let pi: Vec<f64> = (0..k)

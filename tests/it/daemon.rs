@@ -1,1 +1,763 @@
-//! (in progress)
+//! The watching daemon end to end, through the binary: verdicts, folders, notices, audit trail, pool,
+//! malformed and hostile input, metrics.
+
+use std::time::Duration;
+
+use crate::util::*;
+
+const T: Duration = Duration::from_secs(120);
+
+#[test]
+fn clean_batch_is_accepted_into_the_pool() {
+    let ws = Ws::new(&["north-sort"]);
+    let d = Daemon::start(&ws);
+    let b = clean_batch("n1", 300, 1);
+    ws.deliver("north-sort", "week01.csv", &b.csv());
+    ws.wait_settled(1, T);
+    assert!(d.stop().success());
+    let acc = ws.files_in("accepted");
+    assert_eq!(
+        acc.len(),
+        1,
+        "accepted: {acc:?}; quarantine: {:?}",
+        ws.files_in("quarantine")
+    );
+    let id = acc[0].split('.').next().unwrap().to_string();
+    let n = ws.notice("north-sort", &id);
+    assert_eq!(n["verdict"], "accepted");
+    assert!(n["suspicion_notice"]
+        .as_str()
+        .unwrap()
+        .contains("not proof"));
+    let store = ws.store();
+    let rec = store.batch(&id).unwrap().unwrap();
+    assert_eq!(rec.state, labelweir::store::BatchState::Accepted);
+    assert_eq!(rec.original_name, "week01.csv");
+    assert_eq!(store.pool_items().unwrap(), 300);
+    let audit = store.audit_since(0).unwrap();
+    let verdicts: Vec<_> = audit.iter().filter(|a| a.action == "verdict").collect();
+    assert_eq!(verdicts.len(), 1);
+    assert_eq!(verdicts[0].outcome.as_deref(), Some("accepted"));
+    assert!(audit
+        .iter()
+        .any(|a| a.action == "filed" && a.batch_id.as_deref() == Some(id.as_str())));
+}
+
+/// Ids of the items the report lists as flagged (proposed label differs from the given one).
+fn flagged_ids(report: &serde_json::Value) -> Vec<String> {
+    report["suspects"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|s| s["proposed_label"] != s["label"])
+        .map(|s| s["id"].as_str().unwrap().to_string())
+        .collect()
+}
+
+#[test]
+fn poisoned_batches_are_quarantined_with_the_planted_items_flagged() {
+    let ws = Ws::new(&["north-sort"]);
+    let d = Daemon::start(&ws);
+    // Two clean batches first, so the poisoned ones are judged against a pool.
+    ws.deliver("north-sort", "c1.csv", &clean_batch("c1", 400, 21).csv());
+    ws.deliver("north-sort", "c2.csv", &clean_batch("c2", 400, 22).csv());
+    ws.wait_settled(2, T);
+    let region = region_flipped_batch("r1", 300, 23, 0.15);
+    let uniform = uniform_flipped_batch("u1", 300, 24, 0.15);
+    ws.deliver("north-sort", "region.csv", &region.csv());
+    ws.deliver("north-sort", "uniform.jsonl", &uniform.jsonl());
+    ws.wait_settled(4, T);
+    assert!(d.stop().success());
+    assert_eq!(ws.files_in("accepted").len(), 2, "clean batches accepted");
+    let q = ws.files_in("quarantine");
+    assert_eq!(
+        q.len(),
+        2,
+        "both poisoned batches held; quarantine: {q:?}, accepted: {:?}",
+        ws.files_in("accepted")
+    );
+    let store = ws.store();
+    for file in &q {
+        use std::os::unix::fs::PermissionsExt;
+        let mode = std::fs::metadata(ws.path("quarantine").join(file))
+            .unwrap()
+            .permissions()
+            .mode();
+        assert_eq!(mode & 0o777, 0o440, "quarantined bytes are read-only");
+        let report = ws.report("quarantine", file);
+        let id = report["id"].as_str().unwrap().to_string();
+        let rec = store.batch(&id).unwrap().unwrap();
+        let planted: Vec<String> = match rec.original_name.as_str() {
+            "region.csv" => region
+                .ids
+                .iter()
+                .zip(&region.flipped)
+                .filter(|(_, f)| **f)
+                .map(|(i, _)| i.clone())
+                .collect(),
+            "uniform.jsonl" => uniform
+                .ids
+                .iter()
+                .zip(&uniform.flipped)
+                .filter(|(_, f)| **f)
+                .map(|(i, _)| i.clone())
+                .collect(),
+            other => panic!("unexpected batch {other}"),
+        };
+        let flagged = flagged_ids(&report);
+        let hits = flagged.iter().filter(|i| planted.contains(i)).count();
+        // A flag is a suspicion, not proof: we ask that most flags land on planted flips and that most
+        // planted flips are flagged.
+        assert!(
+            hits * 10 >= flagged.len() * 7,
+            "{}: {hits} of {} flags are planted",
+            rec.original_name,
+            flagged.len()
+        );
+        assert!(
+            hits * 10 >= planted.len() * 5,
+            "{}: {hits} of {} planted flips flagged",
+            rec.original_name,
+            planted.len()
+        );
+        assert!(report["scores"]["repair_cost"].as_f64().unwrap() > 0.0);
+        assert!(!report["decision"]["reasons"].as_array().unwrap().is_empty());
+        assert_eq!(report["sha256"].as_str().unwrap().len(), 64);
+        let n = ws.notice("north-sort", &id);
+        assert_eq!(n["verdict"], "quarantined");
+        // Default disclosure: item ids and reason codes, no proposed labels or scores.
+        assert!(n["items"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .all(|i| i.get("proposed_label").is_none()));
+        assert!(
+            store.assessment(&id).unwrap().is_some(),
+            "full report kept for the reviewer"
+        );
+        assert_eq!(rec.pool_seq, None);
+    }
+    assert_eq!(
+        store.pool_items().unwrap(),
+        800,
+        "only the clean batches are in the pool"
+    );
+    let hist = store.vendor_history("north-sort").unwrap();
+    assert_eq!(
+        hist.accepted_total, 2,
+        "quarantined batches never enter the baseline"
+    );
+}
+
+#[test]
+fn malformed_files_are_rejected_with_file_row_and_column() {
+    let ws = Ws::with(
+        &["v1"],
+        &[("max_file_bytes = 67108864", "max_file_bytes = 200000")],
+    );
+    let d = Daemon::start(&ws);
+    let good = String::from_utf8(clean_batch("m", 5, 31).csv()).unwrap();
+    let mut lines: Vec<String> = good.lines().map(|s| s.to_string()).collect();
+    let header = lines[0].clone();
+    let first_feature = header.split(',').nth(2).unwrap().to_string();
+    let mut cases: Vec<(&str, Vec<u8>, &str, Option<u64>, Option<String>)> = Vec::new();
+    cases.push(("empty.csv", Vec::new(), "parse_error", None, None));
+    // Non-numeric cell in data row 2, first feature column.
+    {
+        let mut l = lines.clone();
+        let mut cells: Vec<&str> = l[2].split(',').collect();
+        cells[2] = "heavy";
+        l[2] = cells.join(",");
+        cases.push((
+            "nonnumeric.csv",
+            (l.join("\n") + "\n").into_bytes(),
+            "parse_error",
+            Some(2),
+            Some(first_feature.clone()),
+        ));
+    }
+    // Missing feature column.
+    {
+        let l: Vec<String> = lines
+            .iter()
+            .map(|r| {
+                let mut c: Vec<&str> = r.split(',').collect();
+                c.remove(2);
+                c.join(",")
+            })
+            .collect();
+        cases.push((
+            "missing.csv",
+            (l.join("\n") + "\n").into_bytes(),
+            "parse_error",
+            None,
+            Some(first_feature.clone()),
+        ));
+    }
+    // Extra column.
+    {
+        let l: Vec<String> = lines
+            .iter()
+            .enumerate()
+            .map(|(i, r)| format!("{r},{}", if i == 0 { "mystery" } else { "1" }))
+            .collect();
+        cases.push((
+            "extra.csv",
+            (l.join("\n") + "\n").into_bytes(),
+            "parse_error",
+            None,
+            Some("mystery".into()),
+        ));
+    }
+    // Duplicate id.
+    {
+        let mut l = lines.clone();
+        let id1 = l[1].split(',').next().unwrap().to_string();
+        let rest: Vec<&str> = l[3].split(',').skip(1).collect();
+        l[3] = format!("{id1},{}", rest.join(","));
+        cases.push((
+            "dupid.csv",
+            (l.join("\n") + "\n").into_bytes(),
+            "parse_error",
+            Some(3),
+            None,
+        ));
+    }
+    // Unknown label.
+    {
+        let mut l = lines.clone();
+        let mut cells: Vec<&str> = l[4].split(',').collect();
+        cells[1] = "unobtainium";
+        l[4] = cells.join(",");
+        cases.push((
+            "label.csv",
+            (l.join("\n") + "\n").into_bytes(),
+            "unknown_label",
+            Some(4),
+            Some("label".into()),
+        ));
+    }
+    // Ragged row.
+    {
+        let mut l = lines.clone();
+        l[2] = l[2].rsplit_once(',').unwrap().0.to_string();
+        cases.push((
+            "ragged.csv",
+            (l.join("\n") + "\n").into_bytes(),
+            "parse_error",
+            Some(2),
+            None,
+        ));
+    }
+    // Invalid UTF-8.
+    {
+        let mut b = good.clone().into_bytes();
+        let pos = b.len() - 3;
+        b[pos] = 0xff;
+        cases.push(("utf8.csv", b, "parse_error", None, None));
+    }
+    // Bad JSON Lines.
+    cases.push((
+        "bad.jsonl",
+        b"{\"id\": \"a\", \"label\": \n".to_vec(),
+        "parse_error",
+        None,
+        None,
+    ));
+    // Not a batch type.
+    cases.push((
+        "notes.txt",
+        b"hello".to_vec(),
+        "unsupported_type",
+        None,
+        None,
+    ));
+    // Too large (limit set to 200000 bytes above).
+    cases.push(("huge.csv", vec![b'x'; 300_000], "too_large", None, None));
+    lines.truncate(1);
+    for (name, bytes, _, _, _) in &cases {
+        ws.deliver("v1", name, bytes);
+    }
+    ws.wait_settled(cases.len(), T);
+    assert!(d.stop().success());
+    assert_eq!(ws.files_in("rejected").len(), cases.len());
+    assert!(ws.files_in("accepted").is_empty() && ws.files_in("quarantine").is_empty());
+    let store = ws.store();
+    let records = store.batches().unwrap();
+    for (name, _, code, row, column) in &cases {
+        let rec = records
+            .iter()
+            .find(|r| r.original_name == *name)
+            .unwrap_or_else(|| panic!("no record for {name}"));
+        assert_eq!(rec.state, labelweir::store::BatchState::Rejected, "{name}");
+        let reason = rec.reject.as_ref().unwrap();
+        assert_eq!(reason.code, *code, "{name}: {}", reason.detail);
+        if let Some(r) = row {
+            assert_eq!(reason.row, Some(*r as usize), "{name}: {}", reason.detail);
+        }
+        if let Some(c) = column {
+            assert!(
+                reason.column.as_deref() == Some(c.as_str()) || reason.detail.contains(c.as_str()),
+                "{name}: {reason:?}"
+            );
+        }
+        assert!(
+            reason.detail.contains(name) || !reason.code.starts_with("parse"),
+            "{name}: the reason names the file: {}",
+            reason.detail
+        );
+        let report = ws.report("rejected", &rec.file_name);
+        assert_eq!(report["reject"]["code"], *code);
+        let n = ws.notice("v1", &rec.id);
+        assert_eq!(n["verdict"], "malformed");
+        assert_eq!(n["reasons"][0]["code"], *code);
+    }
+    assert_eq!(store.pool_items().unwrap(), 0);
+}
+
+#[test]
+fn a_redelivered_batch_is_a_duplicate() {
+    let ws = Ws::new(&["v1", "v2"]);
+    let d = Daemon::start(&ws);
+    let b = clean_batch("d", 200, 41).csv();
+    ws.deliver("v1", "a.csv", &b);
+    ws.wait_settled(1, T);
+    ws.deliver("v1", "a-again.csv", &b);
+    // The same bytes from another vendor are that vendor's own first delivery.
+    ws.deliver("v2", "a.csv", &b);
+    ws.wait_settled(3, T);
+    assert!(d.stop().success());
+    let store = ws.store();
+    let recs = store.batches().unwrap();
+    let first = recs
+        .iter()
+        .find(|r| r.original_name == "a.csv" && r.vendor == "v1")
+        .unwrap();
+    let dup = recs
+        .iter()
+        .find(|r| r.original_name == "a-again.csv")
+        .unwrap();
+    let other = recs.iter().find(|r| r.vendor == "v2").unwrap();
+    assert_eq!(dup.state, labelweir::store::BatchState::Duplicate);
+    assert_eq!(dup.duplicate_of.as_deref(), Some(first.id.as_str()));
+    assert!(ws.path("rejected").join(&dup.file_name).exists());
+    assert_eq!(ws.notice("v1", &dup.id)["duplicate_of"], first.id.as_str());
+    assert_ne!(other.state, labelweir::store::BatchState::Duplicate);
+    assert_eq!(
+        store.pool_batches().unwrap().len(),
+        2,
+        "the duplicate did not enter the pool twice"
+    );
+}
+
+#[test]
+fn files_still_being_written_are_left_alone() {
+    let ws = Ws::with(
+        &["v1"],
+        &[("quiet_period_ms = 150", "quiet_period_ms = 1500")],
+    );
+    let d = Daemon::start(&ws);
+    let inbox = ws.path("inbox/v1");
+    let bytes = clean_batch("w", 200, 51).csv();
+    // 1. An upload under a temporary name is never touched, however long it sits there.
+    std::fs::write(inbox.join("big.csv.part"), &bytes).unwrap();
+    std::fs::write(inbox.join(".hidden.csv"), &bytes).unwrap();
+    std::fs::create_dir(inbox.join("tmp")).unwrap();
+    std::fs::write(inbox.join("tmp").join("staged.csv"), &bytes).unwrap();
+    // 2. A tool that writes the final name directly, slowly: first half, a pause, second half.
+    let (a, b) = bytes.split_at(bytes.len() / 2);
+    {
+        use std::io::Write;
+        let mut f = std::fs::File::create(inbox.join("slow.csv")).unwrap();
+        f.write_all(a).unwrap();
+        f.sync_all().unwrap();
+        std::thread::sleep(Duration::from_millis(700));
+        f.write_all(b).unwrap();
+    }
+    std::thread::sleep(Duration::from_millis(3500));
+    assert_eq!(
+        ws.settled(),
+        1,
+        "only the slowly written file, once complete"
+    );
+    assert!(inbox.join("big.csv.part").exists() && inbox.join(".hidden.csv").exists());
+    assert!(inbox.join("tmp").join("staged.csv").exists());
+    // 3. The rename completes the delivery.
+    std::fs::rename(inbox.join("big.csv.part"), inbox.join("big.csv")).unwrap();
+    ws.wait_settled(2, T);
+    assert!(d.stop().success());
+    let store = ws.store();
+    let recs = store.batches().unwrap();
+    assert_eq!(recs.len(), 2);
+    let slow = recs.iter().find(|r| r.original_name == "slow.csv").unwrap();
+    assert_eq!(
+        slow.items,
+        Some(200),
+        "the slow file was read whole: {:?}",
+        slow.reject
+    );
+    // The second delivery has the same content as the first: a duplicate, not a second pool entry.
+    let big = recs.iter().find(|r| r.original_name == "big.csv").unwrap();
+    assert_eq!(big.state, labelweir::store::BatchState::Duplicate);
+}
+
+#[test]
+fn hostile_drop_folder_input_is_contained() {
+    use std::os::unix::ffi::OsStrExt;
+    let ws = Ws::new(&["v1"]);
+    let outside = ws.tmp.path().join("outside");
+    std::fs::create_dir(&outside).unwrap();
+    let secret = outside.join("secret.csv");
+    let secret_bytes = clean_batch("s", 20, 61).csv();
+    std::fs::write(&secret, &secret_bytes).unwrap();
+    let inbox = ws.path("inbox/v1");
+    let trusted_before = {
+        let s = ws.store();
+        s.trusted_items().unwrap()
+    };
+    let d = Daemon::start(&ws);
+    // A symlink to a file outside the workspace, and one to a directory.
+    std::os::unix::fs::symlink(&secret, inbox.join("link.csv")).unwrap();
+    std::os::unix::fs::symlink(&outside, inbox.join("dirlink.csv")).unwrap();
+    // A hard link (the vendor keeps another name that could still change the bytes).
+    let keep = ws.tmp.path().join("keep.csv");
+    std::fs::write(&keep, clean_batch("h", 20, 62).csv()).unwrap();
+    std::fs::hard_link(&keep, inbox.join("hard.csv")).unwrap();
+    // A FIFO (reading it would block forever).
+    let fifo = inbox.join("pipe.csv");
+    assert!(std::process::Command::new("mkfifo")
+        .arg(&fifo)
+        .status()
+        .unwrap()
+        .success());
+    // A directory with a batch-like name.
+    std::fs::create_dir(inbox.join("folder.csv")).unwrap();
+    std::fs::write(inbox.join("folder.csv").join("inner.csv"), &secret_bytes).unwrap();
+    // Names: not UTF-8, control characters, path-like.
+    let raw = std::ffi::OsStr::from_bytes(b"bad\xffname.csv");
+    std::fs::write(inbox.join(raw), clean_batch("n1", 20, 63).csv()).unwrap();
+    std::fs::write(
+        inbox.join("esc\u{1b}[31mred.csv"),
+        clean_batch("n2", 20, 64).csv(),
+    )
+    .unwrap();
+    std::fs::write(
+        inbox.join("..\\..\\trusted.csv"),
+        clean_batch("n3", 20, 65).csv(),
+    )
+    .unwrap();
+    std::fs::write(
+        inbox.join("rlo\u{202e}vsc.csv"),
+        clean_batch("n4", 20, 66).csv(),
+    )
+    .unwrap();
+    // An unknown vendor folder: ignored, reported, never trusted.
+    std::fs::create_dir(ws.path("inbox/mallory")).unwrap();
+    std::fs::write(
+        ws.path("inbox/mallory/x.csv"),
+        clean_batch("x", 20, 67).csv(),
+    )
+    .unwrap();
+    ws.wait_settled(9, T);
+    let (_, metrics) = http_get(d.addr, "/metrics").unwrap();
+    assert!(d.stop().success());
+    assert!(
+        metrics.contains("labelweir_unknown_inbox_folders 1"),
+        "unknown folder reported"
+    );
+    assert!(
+        !metrics.contains("mallory"),
+        "unknown vendors never become label values"
+    );
+    assert!(
+        ws.path("inbox/mallory/x.csv").exists(),
+        "unknown vendor's file untouched"
+    );
+    assert_eq!(
+        std::fs::read(&secret).unwrap(),
+        secret_bytes,
+        "link target untouched"
+    );
+    assert!(keep.exists());
+    let store = ws.store();
+    let recs = store.batches().unwrap();
+    assert_eq!(recs.len(), 9);
+    let code = |pred: &dyn Fn(&str) -> bool| -> String {
+        let r = recs
+            .iter()
+            .find(|r| pred(&r.original_name))
+            .unwrap_or_else(|| {
+                panic!(
+                    "record missing: {:?}",
+                    recs.iter().map(|r| &r.original_name).collect::<Vec<_>>()
+                )
+            });
+        assert_eq!(
+            r.state,
+            labelweir::store::BatchState::Rejected,
+            "{}",
+            r.original_name
+        );
+        r.reject.as_ref().unwrap().code.clone()
+    };
+    assert_eq!(code(&|n| n == "link.csv"), "symlink");
+    assert_eq!(code(&|n| n == "dirlink.csv"), "symlink");
+    assert_eq!(code(&|n| n == "hard.csv"), "hard_link");
+    assert_eq!(code(&|n| n == "pipe.csv"), "not_regular_file");
+    assert_eq!(code(&|n| n == "folder.csv"), "not_regular_file");
+    assert_eq!(code(&|n| n == "bad\\xffname.csv"), "unsafe_name");
+    assert_eq!(code(&|n| n.starts_with("esc")), "unsafe_name");
+    assert_eq!(code(&|n| n.ends_with("trusted.csv")), "unsafe_name");
+    assert_eq!(code(&|n| n.starts_with("rlo")), "unsafe_name");
+    for r in &recs {
+        assert!(
+            !r.original_name
+                .chars()
+                .any(|c| c.is_control() || c == '\u{202e}'),
+            "escaped: {:?}",
+            r.original_name
+        );
+        assert!(labelweir::notice::is_safe_batch_id(&r.id));
+    }
+    // No symlink survives anywhere in the workspace's folders.
+    for folder in ["rejected", "processing", "accepted", "quarantine"] {
+        for e in std::fs::read_dir(ws.path(folder)).unwrap().flatten() {
+            assert!(
+                !e.file_type().unwrap().is_symlink(),
+                "{folder}/{:?} is a symlink",
+                e.file_name()
+            );
+        }
+    }
+    assert!(
+        std::fs::read_dir(ws.path("inbox/v1"))
+            .unwrap()
+            .next()
+            .is_none(),
+        "inbox emptied"
+    );
+    assert_eq!(
+        store.trusted_items().unwrap(),
+        trusted_before,
+        "the trusted set is untouched"
+    );
+    assert_eq!(store.pool_items().unwrap(), 0);
+    // Nothing was written outside the workspace.
+    let mut outside_now: Vec<_> = std::fs::read_dir(&outside)
+        .unwrap()
+        .flatten()
+        .map(|e| e.file_name())
+        .collect();
+    outside_now.sort();
+    assert_eq!(outside_now, vec![std::ffi::OsString::from("secret.csv")]);
+}
+
+/// promtool from env PROMTOOL, the CI unpack (.ci/bin), or PATH.
+fn promtool() -> Option<std::path::PathBuf> {
+    if let Ok(p) = std::env::var("PROMTOOL") {
+        return Some(p.into());
+    }
+    let ci = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join(".ci/bin/promtool");
+    if ci.exists() {
+        return Some(ci);
+    }
+    std::env::var_os("PATH").and_then(|paths| {
+        std::env::split_paths(&paths)
+            .map(|d| d.join("promtool"))
+            .find(|p| p.exists())
+    })
+}
+
+#[test]
+fn metrics_health_and_promtool() {
+    let ws = Ws::new(&["north-sort", "east-labels"]);
+    let d = Daemon::start(&ws);
+    assert_eq!(http_get(d.addr, "/livez").unwrap().0, 200);
+    let (code, body) = http_get(d.addr, "/readyz?verbose").unwrap();
+    assert_eq!(code, 200);
+    assert!(body.contains("[+] first_rescan"), "{body}");
+    ws.deliver("north-sort", "a.csv", &clean_batch("a", 200, 71).csv());
+    ws.deliver("east-labels", "b.csv", b"id,label\n");
+    ws.wait_settled(2, T);
+    // Gauges refresh every few seconds.
+    std::thread::sleep(Duration::from_millis(5500));
+    let (code, text) = http_get(d.addr, "/metrics").unwrap();
+    assert_eq!(code, 200);
+    assert!(d.stop().success());
+    for name in [
+        "labelweir_build_info{",
+        "labelweir_files_discovered_total{vendor=\"north-sort\"} 1",
+        "labelweir_batches_total{outcome=\"accepted\",vendor=\"north-sort\"} 1",
+        "labelweir_batches_total{outcome=\"rejected\",vendor=\"east-labels\"} 1",
+        "labelweir_batch_items_total{outcome=\"accepted\",vendor=\"north-sort\"} 200",
+        "labelweir_batch_bytes_total{vendor=\"north-sort\"}",
+        "labelweir_repair_cost_bucket{vendor=\"north-sort\",le=\"0.005\"}",
+        "labelweir_repair_cost_last{vendor=\"north-sort\"}",
+        "labelweir_repair_cost_baseline{vendor=\"north-sort\"}",
+        "labelweir_batch_stage_duration_seconds_bucket{stage=\"score\"",
+        "labelweir_batch_stage_duration_seconds_count{stage=\"claim\"}",
+        "labelweir_inbox_files{vendor=\"north-sort\"} 0",
+        "labelweir_inbox_oldest_file_age_seconds{vendor=\"north-sort\"}",
+        "labelweir_last_batch_processed_timestamp_seconds{vendor=\"north-sort\"}",
+        "labelweir_watcher_rescans_total{reason=\"startup\"} 1",
+        "labelweir_watcher_errors_total 0",
+        "labelweir_unknown_inbox_folders 0",
+        "labelweir_pool_items 200",
+        "labelweir_trusted_items{class=\"glass\"} 10",
+        "labelweir_trusted_min_class_items 10",
+        "labelweir_quarantine_batches 0",
+        "labelweir_quarantine_oldest_age_seconds 0",
+        "labelweir_quarantine_bytes 0",
+        "labelweir_notices_written_total{format=\"json\",vendor=\"north-sort\"} 1",
+        "labelweir_store_size_bytes",
+        "labelweir_store_flush_duration_seconds_count",
+        "labelweir_filesystem_free_bytes{mount=\"inbox\"}",
+        "labelweir_ready 1",
+        "labelweir_scoring_queue_depth 0",
+        "labelweir_config_last_reload_successful 1",
+        "process_resident_memory_bytes",
+    ] {
+        assert!(text.contains(name), "missing {name} in:\n{text}");
+    }
+    match promtool() {
+        Some(p) => {
+            let mut child = std::process::Command::new(p)
+                .args(["check", "metrics"])
+                .stdin(std::process::Stdio::piped())
+                .stdout(std::process::Stdio::piped())
+                .stderr(std::process::Stdio::piped())
+                .spawn()
+                .unwrap();
+            use std::io::Write;
+            child
+                .stdin
+                .take()
+                .unwrap()
+                .write_all(text.as_bytes())
+                .unwrap();
+            let out = child.wait_with_output().unwrap();
+            assert!(
+                out.status.success(),
+                "promtool check metrics: {}{}",
+                String::from_utf8_lossy(&out.stdout),
+                String::from_utf8_lossy(&out.stderr)
+            );
+        }
+        None if std::env::var_os("CI").is_some() => {
+            panic!("promtool not found (set PROMTOOL or run .ci/run)")
+        }
+        None => eprintln!(
+            "SKIP promtool check: promtool not found (set PROMTOOL, or run .ci/run to unpack it)"
+        ),
+    }
+}
+
+#[test]
+fn config_check_and_bad_config_exit_codes() {
+    let ws = Ws::new(&["v1"]);
+    let dir = ws.dir.display().to_string();
+    let ok = run_bin(&["config", "check", &dir]);
+    assert_eq!(
+        ok.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&ok.stderr)
+    );
+    ws.edit_config(&[(
+        "quiet_period_ms = 150",
+        "quiet_period_ms = 150\nquiet_period = 3",
+    )]);
+    let bad = run_bin(&["config", "check", &dir]);
+    assert_eq!(bad.status.code(), Some(78));
+    assert!(String::from_utf8_lossy(&bad.stderr).contains("quiet_period"));
+    let run = run_bin(&["run", &dir]);
+    assert_eq!(
+        run.status.code(),
+        Some(78),
+        "a bad config stops the daemon with 78"
+    );
+    ws.edit_config(&[
+        (
+            "quiet_period_ms = 150\nquiet_period = 3",
+            "quiet_period_ms = 150",
+        ),
+        ("rescan_interval_secs = 1", "rescan_interval_secs = 0"),
+    ]);
+    assert_eq!(run_bin(&["config", "check", &dir]).status.code(), Some(78));
+    // A second init into the same folder is refused.
+    let again = run_bin(&[
+        "init",
+        &dir,
+        "--trusted",
+        "/nonexistent.csv",
+        "--vendor",
+        "v1",
+    ]);
+    assert_ne!(again.status.code(), Some(0));
+}
+
+#[test]
+fn second_daemon_on_the_same_workspace_exits_74() {
+    let ws = Ws::new(&["v1"]);
+    let d = Daemon::start(&ws);
+    let out = run_bin(&[
+        "run",
+        &ws.dir.display().to_string(),
+        "--listen",
+        &free_addr().to_string(),
+    ]);
+    assert_eq!(
+        out.status.code(),
+        Some(74),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert!(d.stop().success());
+}
+
+#[test]
+fn a_burst_of_1000_small_batches_is_fully_processed() {
+    let ws = Ws::with(
+        &["v1", "v2"],
+        &[("queue_capacity = 4", "queue_capacity = 16")],
+    );
+    let n = 1000;
+    // Dropped all at once before the daemon starts, and while it runs.
+    for i in 0..n / 2 {
+        let b = clean_batch(&format!("b{i}"), 8, 10_000 + i as u64);
+        ws.deliver(
+            if i % 2 == 0 { "v1" } else { "v2" },
+            &format!("burst-{i:04}.csv"),
+            &b.csv(),
+        );
+    }
+    let d = Daemon::start(&ws);
+    for i in n / 2..n {
+        let b = clean_batch(&format!("b{i}"), 8, 10_000 + i as u64);
+        ws.deliver(
+            if i % 2 == 0 { "v1" } else { "v2" },
+            &format!("burst-{i:04}.csv"),
+            &b.csv(),
+        );
+    }
+    ws.wait_settled(n, Duration::from_secs(900));
+    assert!(d.stop().success());
+    let store = ws.store();
+    let recs = store.batches().unwrap();
+    assert_eq!(recs.len(), n, "one record per file");
+    let mut names: Vec<_> = recs.iter().map(|r| r.original_name.clone()).collect();
+    names.sort();
+    names.dedup();
+    assert_eq!(names.len(), n, "no file processed twice");
+    assert!(recs.iter().all(|r| r.state.is_settled()));
+    let in_pool = store.pool_batches().unwrap().len();
+    let accepted = recs
+        .iter()
+        .filter(|r| r.state == labelweir::store::BatchState::Accepted)
+        .count();
+    assert_eq!(in_pool, accepted);
+    assert!(std::fs::read_dir(ws.path("processing"))
+        .unwrap()
+        .next()
+        .is_none());
+}
