@@ -480,6 +480,32 @@ mod tests {
         assert_eq!(parsed, Config::default());
     }
 
+    /// Every key of every section appears in the shipped file (serde defaults would hide a missing one
+    /// from the equality test above).
+    #[test]
+    fn shipped_file_lists_every_key() {
+        fn keys(v: &toml::Value, prefix: &str, out: &mut Vec<String>) {
+            if let toml::Value::Table(t) = v {
+                for (k, v) in t {
+                    let path = format!("{prefix}{k}");
+                    // Inline tables (e.g. a feature map variant) are values, not sections.
+                    if matches!(v, toml::Value::Table(_)) && prefix.matches('.').count() < 1 {
+                        keys(v, &format!("{path}."), out);
+                    } else {
+                        out.push(path);
+                    }
+                }
+            }
+        }
+        let mut want = Vec::new();
+        keys(&toml::Value::try_from(Config::default()).unwrap(), "", &mut want);
+        let mut have = Vec::new();
+        keys(&toml::from_str::<toml::Value>(SHIPPED_CONFIG).unwrap(), "", &mut have);
+        want.sort();
+        have.sort();
+        assert_eq!(have, want);
+    }
+
     #[test]
     fn rendered_file_validates_and_lists_vendors() {
         let text = render_with_vendors(&["north-sort".into(), "b2".into()]);

@@ -187,9 +187,28 @@ pub fn reconcile(
         if std::fs::symlink_metadata(ws.processing().join(&rec.file_name)).is_ok() {
             redo.push(rec);
         } else {
-            // Recorded, but the rename into processing/ never happened: the file is still in the inbox
-            // and will be found again.
-            store.forget_claim(&rec.id)?;
+            let escaped = rec.original_name.contains("\\x") || rec.original_name.contains("\\u{");
+            let in_inbox = std::fs::symlink_metadata(ws.vendor_inbox(&rec.vendor).join(&rec.original_name)).is_ok();
+            if escaped || in_inbox {
+                // Recorded, but the rename into processing/ never happened: the file is still in the
+                // inbox and will be found again (an escaped name cannot be looked up; assume the same).
+                store.forget_claim(&rec.id)?;
+            } else {
+                // Claimed and renamed, then removed from processing/ by someone before a verdict.
+                tracing::warn!(batch_id = %rec.id, vendor = %rec.vendor, "a claimed file vanished from processing/ before its verdict");
+                let audit = crate::store::AuditRecord::new("daemon", "vanished")
+                    .batch(&rec.id, &rec.vendor)
+                    .outcome(BatchState::Vanished.as_str())
+                    .reason("the claimed file was removed from processing/ before a verdict");
+                store.transition(
+                    &rec.id,
+                    &[BatchState::Claimed],
+                    BatchState::Vanished,
+                    crate::store::PoolChange::None,
+                    vec![audit],
+                    |_| {},
+                )?;
+            }
         }
     }
     if let Ok(rd) = std::fs::read_dir(ws.processing()) {
@@ -379,6 +398,20 @@ impl Ingest {
     }
 
     fn run(mut self, recovered: Vec<BatchRecord>) -> Result<(), DaemonError> {
+        // The first full listing (backlog gauges, unknown folders, disk) makes the daemon ready; taking the
+        // backlog, which may be long, happens after.
+        let quiet = Duration::from_millis(self.config.ingest.quiet_period_ms);
+        for v in &self.config.vendors {
+            if let Ok(scan) =
+                crate::ingest::scan_vendor(&self.ws.vendor_inbox(v), v, quiet, SystemTime::now())
+            {
+                self.metrics
+                    .inbox_backlog(v, scan.backlog as i64, scan.oldest_age.as_secs_f64());
+            }
+        }
+        self.scan_unknown();
+        self.disk_ok();
+        self.ready.first_rescan.store(true, Ordering::SeqCst);
         for rec in recovered {
             tracing::info!(batch_id = %rec.id, vendor = %rec.vendor, "recovery: re-processing a claimed batch");
             if let Flow::Stop = self.process_claimed(rec)? {
@@ -471,10 +504,7 @@ impl Ingest {
                     next_ready = Some(next_ready.map_or(t, |x: SystemTime| x.min(t)));
                 }
             }
-            if first {
-                first = false;
-                self.ready.first_rescan.store(true, Ordering::SeqCst);
-            }
+            first = false;
         }
     }
 }
@@ -569,6 +599,11 @@ pub async fn run(
     config
         .validate()
         .map_err(|e| DaemonError::Config(e.to_string()))?;
+    // Absolute paths: the watcher reports absolute paths, and vendor folders are matched against these.
+    let ws = Workspace::new(
+        std::fs::canonicalize(&ws.root)
+            .map_err(|e| DaemonError::Config(format!("workspace {}: {e}", ws.root.display())))?,
+    );
     let config = Arc::new(config);
     let metrics = metrics::install(&config.vendors);
     let ready = Arc::new(Readiness::default());
@@ -678,6 +713,44 @@ pub async fn run(
     };
     let admin_task = tokio::spawn(crate::admin::serve(ctx, stop_rx.clone()));
 
+    // SIGHUP: re-read and validate the configuration. Changes take effect at the next start (the
+    // settings feed threads that are built once); a file that no longer validates is reported through
+    // labelweir_config_last_reload_successful 0 and the error log, and the running config stays in use.
+    let hup = {
+        let (path, metrics, running, mut rx) = (
+            ws.config_file(),
+            metrics.clone(),
+            config.clone(),
+            stop_rx.clone(),
+        );
+        tokio::spawn(async move {
+            use tokio::signal::unix::{signal, SignalKind};
+            let Ok(mut hup) = signal(SignalKind::hangup()) else {
+                return;
+            };
+            loop {
+                tokio::select! {
+                    _ = hup.recv() => {}
+                    _ = rx.wait_for(|s| *s) => break,
+                }
+                match Config::from_file(&path) {
+                    Ok(c) => {
+                        metrics.config_loaded(true);
+                        if c != *running {
+                            tracing::warn!("configuration changed on disk; it is valid and takes effect at the next restart");
+                        } else {
+                            tracing::info!("configuration re-read: unchanged and valid");
+                        }
+                    }
+                    Err(e) => {
+                        metrics.config_loaded(false);
+                        tracing::error!(error = %e, "configuration on disk is invalid; keeping the running one");
+                    }
+                }
+            }
+        })
+    };
+
     // Housekeeping: gauges, readiness notification.
     let hk = {
         let (ws, store, metrics, ready, mut rx) = (
@@ -753,6 +826,7 @@ pub async fn run(
     }
     let _ = admin_task.await;
     let _ = hk.await;
+    let _ = hup.await;
     let flush = {
         let store = store.clone();
         tokio::task::spawn_blocking(move || store.flush())
@@ -775,4 +849,346 @@ pub async fn run(
     }
     tracing::info!("stopped cleanly");
     Ok(())
+}
+
+/// Sustained throughput through the whole path (claim, parse, score, decide, persist, notice), measured,
+/// never asserted. Run it with `cargo run --release --example throughput` (or `labelweir bench daemon`
+/// where the bench command wires it).
+pub mod throughput {
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    use std::sync::{Arc, Mutex};
+    use std::time::{Duration, Instant};
+
+    use super::{DaemonError, RunOptions};
+    use crate::config::{Config, Workspace};
+    use crate::scenario::{self, Plant};
+    use crate::store::{
+        AuditRecord, BatchRecord, BatchState, Outcome, PoolChange, PoolEntry, Store,
+    };
+
+    /// What to measure.
+    #[derive(Debug, Clone)]
+    pub struct Options {
+        /// Batches dropped at once.
+        pub batches: usize,
+        /// Items per batch (each with the plant's 32 features).
+        pub items: usize,
+        /// Items already in the pool when the measurement starts.
+        pub pool: usize,
+        /// Seed for the generated items.
+        pub seed: u64,
+        /// Scratch folder (a fresh sub-folder is created and removed); default: the system temp dir.
+        pub scratch: Option<std::path::PathBuf>,
+    }
+
+    impl Default for Options {
+        /// 30 batches of 1,000 items × 32 features against a pool of 100,000 (issue 3's case).
+        fn default() -> Self {
+            Self {
+                batches: 30,
+                items: 1000,
+                pool: 100_000,
+                seed: 3,
+                scratch: None,
+            }
+        }
+    }
+
+    /// What was measured.
+    #[derive(Debug, Clone)]
+    pub struct Report {
+        /// The options used.
+        pub options: Options,
+        /// Seconds to build the starting pool and its exact summary (not part of the rate).
+        pub setup_seconds: f64,
+        /// Seconds from dropping the batches to the last verdict.
+        pub wall_seconds: f64,
+        /// Items per second through the whole path.
+        pub items_per_second: f64,
+        /// Mean seconds per batch for each stage (claim, parse, score, decide, persist, notice).
+        pub stage_mean_seconds: Vec<(String, f64)>,
+        /// Median and 95th percentile of claim → settled, seconds.
+        pub latency_p50_p95: (f64, f64),
+        /// Verdict counts.
+        pub outcomes: Vec<(String, usize)>,
+    }
+
+    impl std::fmt::Display for Report {
+        fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+            let o = &self.options;
+            writeln!(
+                f,
+                "daemon throughput: {} batches x {} items x 32 features, pool of {} items",
+                o.batches, o.items, o.pool
+            )?;
+            writeln!(
+                f,
+                "  setup (pool + exact summary, not timed below): {:.1} s",
+                self.setup_seconds
+            )?;
+            writeln!(
+                f,
+                "  wall time, first drop to last verdict:       {:.2} s",
+                self.wall_seconds
+            )?;
+            writeln!(f, "  sustained rate:                               {:.0} items/s (target >= 20000 on 2 cores)", self.items_per_second)?;
+            writeln!(
+                f,
+                "  per batch, claim -> settled: p50 {:.3} s, p95 {:.3} s (includes queueing)",
+                self.latency_p50_p95.0, self.latency_p50_p95.1
+            )?;
+            writeln!(f, "  mean seconds per batch by stage:")?;
+            for (s, v) in &self.stage_mean_seconds {
+                writeln!(f, "    {s:<8} {v:.4}")?;
+            }
+            let outs: Vec<String> = self
+                .outcomes
+                .iter()
+                .map(|(k, n)| format!("{k} {n}"))
+                .collect();
+            writeln!(f, "  verdicts: {}", outs.join(", "))
+        }
+    }
+
+    fn csv(ids: &[String], y: &[usize], x: &ndarray::Array2<f64>) -> Result<Vec<u8>, DaemonError> {
+        let mut out = Vec::new();
+        crate::data::write_csv(
+            &mut out,
+            ("id", "label"),
+            ids,
+            &scenario::label_names(y),
+            &scenario::feature_names(),
+            x.view(),
+        )
+        .map_err(|e| DaemonError::Internal(e.to_string()))?;
+        Ok(out)
+    }
+
+    /// Seed the pool through the store's own transitions (claim → verdict with pool items → settled).
+    fn seed_pool(store: &Store, plant: &Plant, n: usize, seed: u64) -> Result<(), DaemonError> {
+        let mut left = n;
+        let mut k = 0;
+        while left > 0 {
+            let m = left.min(5000);
+            let (x, y) = plant.sample(m, seed + k);
+            let id = store.new_batch_id()?;
+            let mut rec = BatchRecord::claimed(
+                id.clone(),
+                "seed",
+                format!("seed-{k}.csv"),
+                format!("{id}.csv"),
+            );
+            store.record_claim(&rec)?;
+            rec.outcome = Some(Outcome::Accepted);
+            rec.items = Some(m);
+            let entry = PoolEntry {
+                batch_id: id.clone(),
+                vendor: "seed".into(),
+                ids: scenario::item_ids(&format!("seed{k}"), m),
+                labels: y,
+                x: x.iter().copied().collect(),
+                n_features: x.ncols(),
+            };
+            let rec = store.record_verdict(
+                &rec,
+                AuditRecord::new("bench", "verdict"),
+                false,
+                None,
+                None,
+                Some(entry),
+            )?;
+            store.transition(
+                &rec.id,
+                &[BatchState::Decided],
+                BatchState::Accepted,
+                PoolChange::None,
+                vec![],
+                |_| {},
+            )?;
+            left -= m;
+            k += 1;
+        }
+        Ok(())
+    }
+
+    /// Build a scratch workspace, seed the pool, drop the batches at once into a running daemon, and
+    /// measure. The scratch folder is removed afterwards.
+    pub fn run(opts: &Options) -> Result<Report, DaemonError> {
+        let base = opts.scratch.clone().unwrap_or_else(std::env::temp_dir);
+        let root = base.join(format!(
+            "labelweir-throughput-{}-{}",
+            std::process::id(),
+            chrono::Utc::now().timestamp_millis()
+        ));
+        std::fs::create_dir_all(&root).map_err(|e| DaemonError::Io(e.to_string()))?;
+        let result = measure(opts, &root);
+        let _ = std::fs::remove_dir_all(&root);
+        result
+    }
+
+    fn measure(opts: &Options, root: &std::path::Path) -> Result<Report, DaemonError> {
+        let t_setup = Instant::now();
+        let plant = Plant::new(opts.seed);
+        let (tx, ty) = plant.sample_per_class(10, opts.seed + 1);
+        let trusted = root.join("trusted.csv");
+        std::fs::write(&trusted, csv(&scenario::item_ids("t", ty.len()), &ty, &tx)?)
+            .map_err(|e| DaemonError::Io(e.to_string()))?;
+        let dir = root.join("ws");
+        let vendors = vec!["bench".to_string()];
+        crate::cli::init::create_workspace(&dir, &trusted, &vendors, "bench")
+            .map_err(|e| DaemonError::Internal(format!("{e:#}")))?;
+        let ws = Workspace::new(&dir);
+        let text = std::fs::read_to_string(ws.config_file())
+            .map_err(|e| DaemonError::Io(e.to_string()))?;
+        let text = text
+            .replace("quiet_period_ms = 2000", "quiet_period_ms = 0")
+            .replace("enabled = true", "enabled = false")
+            .replace("queue_capacity = 4", "queue_capacity = 8")
+            .replace("min_free_bytes = 67108864", "min_free_bytes = 1");
+        std::fs::write(ws.config_file(), text).map_err(|e| DaemonError::Io(e.to_string()))?;
+        let config =
+            Config::from_workspace(&dir).map_err(|e| DaemonError::Config(e.to_string()))?;
+        {
+            let store = Store::open_workspace(&dir, &config.store)?;
+            seed_pool(&store, &plant, opts.pool, opts.seed + 100)?;
+            let meta = store.workspace_meta()?;
+            let mut state = crate::scoring::rebuild_pool(&store, &meta, &config)
+                .map_err(|e| DaemonError::Internal(e.to_string()))?;
+            crate::scoring::save_pool(&mut state, &store)?;
+            store.flush()?;
+        }
+        let files: Vec<(String, Vec<u8>)> = (0..opts.batches)
+            .map(|i| {
+                let (x, y) = plant.sample(opts.items, opts.seed + 1000 + i as u64);
+                Ok((
+                    format!("batch-{i:04}.csv"),
+                    csv(&scenario::item_ids(&format!("b{i}"), y.len()), &y, &x)?,
+                ))
+            })
+            .collect::<Result<_, DaemonError>>()?;
+        let setup_seconds = t_setup.elapsed().as_secs_f64();
+
+        let total = opts.batches;
+        let done = Arc::new(AtomicUsize::new(0));
+        let records: Arc<Mutex<Vec<BatchRecord>>> = Arc::default();
+        let idle = Arc::new(tokio::sync::Notify::new());
+        let started: Arc<Mutex<Option<Instant>>> = Arc::default();
+        let observer: crate::scoring::Observer = {
+            let (done, idle, records) = (done.clone(), idle.clone(), records.clone());
+            Arc::new(move |r: &BatchRecord| {
+                if let Ok(mut v) = records.lock() {
+                    v.push(r.clone());
+                }
+                if done.fetch_add(1, Ordering::SeqCst) + 1 == total {
+                    idle.notify_one();
+                }
+            })
+        };
+        let on_ready: Arc<dyn Fn(Option<std::net::SocketAddr>) + Send + Sync> = {
+            let (inbox, started) = (ws.vendor_inbox("bench"), started.clone());
+            let files = Mutex::new(Some(files));
+            Arc::new(move |_| {
+                let Some(files) = files.lock().ok().and_then(|mut f| f.take()) else {
+                    return;
+                };
+                if let Ok(mut s) = started.lock() {
+                    *s = Some(Instant::now());
+                }
+                for (name, bytes) in files {
+                    let tmp = inbox.join(format!(".{name}.part"));
+                    if std::fs::write(&tmp, &bytes).is_ok() {
+                        let _ = std::fs::rename(&tmp, inbox.join(&name));
+                    }
+                }
+            })
+        };
+        let rt = tokio::runtime::Builder::new_multi_thread()
+            .worker_threads(2)
+            .enable_all()
+            .build()
+            .map_err(|e| DaemonError::Internal(e.to_string()))?;
+        let wait = {
+            let idle = idle.clone();
+            async move { idle.notified().await }
+        };
+        let opts_run = RunOptions {
+            listen: None,
+            observer: Some(observer),
+            on_ready: Some(on_ready),
+        };
+        rt.block_on(super::run(ws.clone(), config, opts_run, wait))?;
+        let t0 = started
+            .lock()
+            .ok()
+            .and_then(|s| *s)
+            .unwrap_or_else(Instant::now);
+        let recs = records.lock().map(|v| v.clone()).unwrap_or_default();
+        let last = recs.iter().filter_map(|r| r.settled_at).max();
+        let first_claim = recs.iter().map(|r| r.claimed_at).min();
+        // Wall time from the drop (≈ first claim) to the last verdict.
+        let wall = match (first_claim, last) {
+            (Some(a), Some(b)) => (b - a).to_std().unwrap_or(Duration::ZERO).as_secs_f64(),
+            _ => t0.elapsed().as_secs_f64(),
+        }
+        .max(1e-9);
+        let items: usize = recs.iter().filter_map(|r| r.items).sum();
+        let mut lat: Vec<f64> = recs
+            .iter()
+            .filter_map(|r| {
+                r.settled_at.map(|s| {
+                    (s - r.claimed_at)
+                        .to_std()
+                        .unwrap_or(Duration::ZERO)
+                        .as_secs_f64()
+                })
+            })
+            .collect();
+        lat.sort_by(f64::total_cmp);
+        let pct = |p: f64| {
+            lat.get(((lat.len() as f64 - 1.0) * p).round() as usize)
+                .copied()
+                .unwrap_or(f64::NAN)
+        };
+        let text = crate::metrics::get()
+            .map(|m| m.render())
+            .unwrap_or_default();
+        let stage_mean_seconds = crate::metrics::STAGES
+            .iter()
+            .map(|s| {
+                let find = |suffix: &str| {
+                    text.lines()
+                        .find(|l| {
+                            l.starts_with(&format!(
+                                "labelweir_batch_stage_duration_seconds_{suffix}{{stage=\"{s}\"}}"
+                            ))
+                        })
+                        .and_then(|l| l.rsplit(' ').next())
+                        .and_then(|v| v.parse::<f64>().ok())
+                        .unwrap_or(0.0)
+                };
+                let (sum, count) = (find("sum"), find("count"));
+                (
+                    s.to_string(),
+                    if count > 0.0 { sum / count } else { f64::NAN },
+                )
+            })
+            .collect();
+        let mut outcomes: Vec<(String, usize)> = Vec::new();
+        for r in &recs {
+            let k = r.outcome.map_or("?", |o| o.as_str()).to_string();
+            match outcomes.iter_mut().find(|(o, _)| *o == k) {
+                Some((_, n)) => *n += 1,
+                None => outcomes.push((k, 1)),
+            }
+        }
+        Ok(Report {
+            options: opts.clone(),
+            setup_seconds,
+            wall_seconds: wall,
+            items_per_second: items as f64 / wall,
+            stage_mean_seconds,
+            latency_p50_p95: (pct(0.5), pct(0.95)),
+            outcomes,
+        })
+    }
 }

@@ -925,8 +925,15 @@ fn parse_jsonl(text: &str, b: &mut Builder<'_>, opts: &TableOptions) -> Result<(
         row += 1;
         b.begin_row(row, line)?;
         let at = |e: DataError| e.at_row(row, Some(line));
-        let Pairs(pairs) = serde_json::from_str::<Pairs>(raw)
-            .map_err(|e| at(b.err(DataErrorKind::Json(e.to_string()))))?;
+        let Pairs(pairs) = serde_json::from_str::<Pairs>(raw).map_err(|e| {
+            // serde_json ends its message with " at line 1 column C" (its own line, always 1 here);
+            // keep the column only, so it cannot be confused with the file line.
+            let mut msg = e.to_string();
+            if let Some(pos) = msg.rfind(" at line ") {
+                msg.truncate(pos);
+            }
+            at(b.err(DataErrorKind::Json(format!("{msg} (at character {} of the line)", e.column()))))
+        })?;
         if row == 1 {
             let names: Vec<String> = pairs.iter().map(|(k, _)| k.clone()).collect();
             b.header(names, line).map_err(at)?;

@@ -733,7 +733,7 @@ pub fn principal_axes(z: ArrayView2<'_, f64>) -> (Array2<f64>, [f64; 2], f64, Ar
     let apply = |v: &Array1<f64>| -> Array1<f64> { zc.t().dot(&zc.dot(v)) / nn };
     let mut axes = Array2::zeros((d, 2));
     let mut lambdas = [0.0; 2];
-    for k in 0..2.min(d) {
+    for (k, lambda_k) in lambdas.iter_mut().enumerate().take(d.min(2)) {
         // Deterministic start, not orthogonal to any axis in general.
         let mut v = Array1::from_iter((0..d).map(|j| 1.0 + 0.1 * ((j * 7 + k * 3) % 11) as f64));
         let project_out = |v: &mut Array1<f64>, axes: &Array2<f64>| {
@@ -767,7 +767,7 @@ pub fn principal_axes(z: ArrayView2<'_, f64>) -> (Array2<f64>, [f64; 2], f64, Ar
                 break;
             }
         }
-        lambdas[k] = v.dot(&apply(&v));
+        *lambda_k = v.dot(&apply(&v));
         axes.column_mut(k).assign(&v);
     }
     (axes, lambdas, trace, mean)
@@ -2279,11 +2279,11 @@ mod tests {
         let (axes, lambdas, trace, mean) = principal_axes(z.view());
         let zc = &z - &mean.view().insert_axis(Axis(0));
         let cov = zc.t().dot(&zc) / n as f64;
-        for k in 0..2 {
+        for (k, &lambda) in lambdas.iter().enumerate() {
             let v = axes.column(k).to_owned();
-            let r = cov.dot(&v) - &v * lambdas[k];
+            let r = cov.dot(&v) - &v * lambda;
             assert!(
-                r.dot(&r).sqrt() < 1e-6 * lambdas[k],
+                r.dot(&r).sqrt() < 1e-6 * lambda,
                 "residual for axis {k}"
             );
             assert_relative_eq!(v.dot(&v), 1.0, epsilon = 1e-9);

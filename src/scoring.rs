@@ -644,7 +644,7 @@ impl Worker {
                 flagged_items: flagged,
             });
             let ranked = a.ranked();
-            let keep = flagged.max(20).min(1000);
+            let keep = flagged.clamp(20, 1000);
             record.suspects = ranked
                 .iter()
                 .take(keep)

@@ -88,7 +88,7 @@ pub fn create_workspace(
     let now = Utc::now();
     let source = trusted
         .file_name()
-        .map(|s| crate::ingest::escape_name(s))
+        .map(crate::ingest::escape_name)
         .unwrap_or_default();
     let items: Vec<TrustedItem> = (0..table.len())
         .map(|i| TrustedItem {

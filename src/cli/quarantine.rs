@@ -477,13 +477,19 @@ fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
     if !d.excluded.is_empty() {
         println!("  excluded: {}", sanitize(&d.excluded.join(", ")));
     }
-    for (id, from, to) in &d.relabeled {
+    if !d.relabeled.is_empty() {
+        println!("  {} item(s) relabeled:", d.relabeled.len());
+    }
+    for (id, from, to) in d.relabeled.iter().take(10) {
         println!(
-            "  relabeled {}: {} -> {}",
+            "    {}: {} -> {}",
             sanitize(id),
             sanitize(from),
             sanitize(to)
         );
+    }
+    if d.relabeled.len() > 10 {
+        println!("    ... {} more (see --json)", d.relabeled.len() - 10);
     }
     if !d.promoted.is_empty() {
         println!(

@@ -820,7 +820,8 @@ pub fn assess(
             let moved_avg = moved_path.iter().map(|mv| mv[i]).sum::<f64>()
                 / if moved_path.is_empty() { 1.0 } else { n_steps };
             let entry_score = if entry[i] > 0.0 && gamma_max > 0.0 {
-                (1.0 - (gamma_max / entry[i]).ln() / (1.0 / settings.path_min_ratio).ln()).clamp(0.0, 1.0)
+                (1.0 - (gamma_max / entry[i]).ln() / (1.0 / settings.path_min_ratio).ln())
+                    .clamp(0.0, 1.0)
             } else {
                 0.0
             };

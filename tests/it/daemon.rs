@@ -104,18 +104,26 @@ fn poisoned_batches_are_quarantined_with_the_planted_items_flagged() {
                 .collect(),
             other => panic!("unexpected batch {other}"),
         };
+        // A flag is a suspicion, not proof: we ask that the planted flips rank high (most of the top-k
+        // suspects, k = number planted, are planted) and that most planted flips are flagged.
+        let top: Vec<String> = report["suspects"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .take(planted.len())
+            .map(|s| s["id"].as_str().unwrap().to_string())
+            .collect();
+        let top_hits = top.iter().filter(|i| planted.contains(i)).count();
+        assert!(
+            top_hits * 10 >= planted.len() * 7,
+            "{}: {top_hits} of the top {} suspects are planted",
+            rec.original_name,
+            planted.len()
+        );
         let flagged = flagged_ids(&report);
         let hits = flagged.iter().filter(|i| planted.contains(i)).count();
-        // A flag is a suspicion, not proof: we ask that most flags land on planted flips and that most
-        // planted flips are flagged.
         assert!(
-            hits * 10 >= flagged.len() * 7,
-            "{}: {hits} of {} flags are planted",
-            rec.original_name,
-            flagged.len()
-        );
-        assert!(
-            hits * 10 >= planted.len() * 5,
+            hits * 10 >= planted.len() * 7,
             "{}: {hits} of {} planted flips flagged",
             rec.original_name,
             planted.len()
@@ -149,6 +157,9 @@ fn poisoned_batches_are_quarantined_with_the_planted_items_flagged() {
     );
 }
 
+/// A malformed delivery: file name, bytes, expected reason code, row, column.
+type Case = (&'static str, Vec<u8>, &'static str, Option<u64>, Option<String>);
+
 #[test]
 fn malformed_files_are_rejected_with_file_row_and_column() {
     let ws = Ws::with(
@@ -160,7 +171,7 @@ fn malformed_files_are_rejected_with_file_row_and_column() {
     let mut lines: Vec<String> = good.lines().map(|s| s.to_string()).collect();
     let header = lines[0].clone();
     let first_feature = header.split(',').nth(2).unwrap().to_string();
-    let mut cases: Vec<(&str, Vec<u8>, &str, Option<u64>, Option<String>)> = Vec::new();
+    let mut cases: Vec<Case> = Vec::new();
     cases.push(("empty.csv", Vec::new(), "parse_error", None, None));
     // Non-numeric cell in data row 2, first feature column.
     {
@@ -442,7 +453,7 @@ fn hostile_drop_folder_input_is_contained() {
     )
     .unwrap();
     std::fs::write(
-        inbox.join("..\\..\\trusted.csv"),
+        inbox.join("up\\..\\..\\trusted.csv"),
         clean_batch("n3", 20, 65).csv(),
     )
     .unwrap();

@@ -544,114 +544,150 @@ fn relaxed_repair_proposes_the_exact_combinatorial_optimum_on_tiny_problems() {
     // The exact problem of Zhang, Zhu & Wright (AAAI 2018): among all hard relabellings Y of the batch,
     // find the one with the fewest changed labels whose retrained model meets the post-condition
     // Φ(θ*(pool ∪ Y)) ≤ Φ_target; ties by the smaller Φ. On n ≤ 10 items it is found by enumerating all
-    // K^n labellings and retraining for each. The engine solves the relaxation (labels on the simplex,
-    // penalty path); compared here:
-    //   (a) the set of items whose label mass the engine moves by more than ½ at its repair-cost point
-    //       (`repair_mass > 0.5`) equals the set the exact optimum changes;
-    //   (b) for those items, the engine's proposed label equals the exact optimum's label;
-    //   (c) the engine's repair cost is at most the exact optimum's cost (the relaxation contains every
+    // K^n labellings and retraining for each (exact mode, the engine's learner and settings).
+    //
+    // The target is set so that the exact problem is well posed (a unique optimum with a margin): with
+    // c = 2 planted flips, Φ_best = the smallest Φ over labellings changing 2 labels, Φ_2nd the next one,
+    // Φ_cheap the smallest Φ over labellings changing fewer; the instance must have Φ_best < Φ_cheap, and
+    // Φ_target = Φ_best + ½ min(Φ_cheap − Φ_best, Φ_2nd − Φ_best), reached through `target_slack`.
+    // Compared:
+    //   (a) rounding the relaxed repair: the c items with the most moved label mass (`repair_mass`, at the
+    //       repair-cost point; c = the exact optimum's number of changes) are the items it changes (a
+    //       relaxation may legitimately split mass, e.g. 0.5 on each of two items, so no fixed mass
+    //       threshold is required of them);
+    //   (b) no other item has more than ½ of its label mass moved;
+    //   (c) for the items the exact optimum changes, the engine's `proposed_label` is the exact optimum's
+    //       label. (Items outside that set may still get a different proposal from the engine's second
+    //       signal, the reference model; that is not the repair and is not compared here.)
+    //   (d) the engine's repair cost is at most the exact optimum's cost (the relaxation contains every
     //       hard labelling) plus one item's worth (1/n) of slack for the linearised, discretised path.
-    // Φ_target is the engine's own `trusted_loss_target`; the exact solver uses the same learner settings
-    // and exact mode (PoolInput::Exact), so both solve the same bilevel problem.
-    let cases: [(usize, usize, u64); 4] = [(2, 10, 1), (2, 9, 2), (3, 7, 3), (3, 6, 4)];
+    // Instances: for each (K, n), the first seed whose instance is well posed with a margin — Φ_cheap and
+    // Φ_2nd both at least 0.01 nats above Φ_best — a criterion that does not look at the engine.
+    let configs: [(usize, usize, u64); 4] = [(2, 10, 1), (2, 9, 2), (3, 7, 3), (3, 6, 4)];
     let settings = ModelSettings {
         l2: 1e-2,
         ..ModelSettings::default()
     };
-    for (k, n, seed) in cases {
-        let mut rng = ChaCha8Rng::seed_from_u64(seed);
-        let centres: Vec<[f64; 2]> = [[-2.0, 0.0], [2.0, 0.0], [0.0, 3.0]][..k].to_vec();
-        let (tx, ty) = blobs(&centres, &vec![4; k], 0.7, &mut rng);
-        let (px, py) = blobs(&centres, &vec![3; k], 0.7, &mut rng);
-        let per: Vec<usize> = (0..k).map(|c| n / k + usize::from(c < n % k)).collect();
-        let (bx, by_true) = blobs(&centres, &per, 0.7, &mut rng);
-        // Plant two bugs: items 0 and n−1 (different classes) moved to the next class.
-        let mut by = by_true.clone();
-        for &i in &[0, n - 1] {
-            by[i] = (by_true[i] + 1) % k;
-        }
-        let st = Standardizer::fit(&[tx.view(), px.view(), bx.view()]).expect("standardise");
-        let fm = FeatureMap::new(st.clone(), FeatureMapKind::Linear, settings.seed).expect("map");
-        let w = Array1::ones(ty.len());
-        let a = assess(
-            &settings,
-            &st,
-            k,
-            TrustedInput {
-                x: tx.view(),
-                y: &ty,
-                weight: w.view(),
-            },
-            PoolInput::Exact {
-                x: px.view(),
-                y: &py,
-            },
-            bx.view(),
-            &by,
-        )
-        .expect("assess");
-        let target = a.trusted_loss_target;
-
-        // Exact optimum by enumeration.
-        let mut best: Option<(usize, f64, Vec<usize>)> = None;
-        for lab in labellings(n, k) {
-            let changed = lab.iter().zip(&by).filter(|(a, b)| a != b).count();
-            if best.as_ref().is_some_and(|(c, _, _)| changed > *c) {
-                continue;
+    let mut failures = Vec::new();
+    let mut checked = Vec::new();
+    for (k, n, first_seed) in configs {
+        for seed in first_seed * 100..first_seed * 100 + 20 {
+            let mut rng = ChaCha8Rng::seed_from_u64(seed);
+            let centres: Vec<[f64; 2]> = [[-2.0, 0.0], [2.0, 0.0], [0.0, 3.0]][..k].to_vec();
+            let (tx, ty) = blobs(&centres, &vec![4; k], 0.7, &mut rng);
+            let (px, py) = blobs(&centres, &vec![3; k], 0.7, &mut rng);
+            let per: Vec<usize> = (0..k).map(|c| n / k + usize::from(c < n % k)).collect();
+            let (bx, by_true) = blobs(&centres, &per, 0.7, &mut rng);
+            // Plant two bugs: items 0 and n−1 (different classes) moved to the next class.
+            let planted = [0, n - 1];
+            let mut by = by_true.clone();
+            for &i in &planted {
+                by[i] = (by_true[i] + 1) % k;
             }
-            let phi = retrained_trusted_loss(&settings, &fm, k, (&px, &py), &bx, &lab, (&tx, &ty));
-            if phi <= target {
-                let better = match &best {
-                    None => true,
-                    Some((c, f, _)) => changed < *c || (changed == *c && phi < *f),
-                };
-                if better {
-                    best = Some((changed, phi, lab));
-                }
-            }
-        }
-        let phi_true = retrained_trusted_loss(&settings, &fm, k, (&px, &py), &bx, &by_true, (&tx, &ty));
-        let (exact_changed, _, exact_lab) = best.unwrap_or_else(|| {
-            panic!(
-                "case k={k} n={n}: no labelling meets the target {target} (true labelling {phi_true}, pool {}, \
-                 with batch {}, engine reached: {})",
-                a.trusted_loss_pool, a.trusted_loss_with_batch, a.target_reached
-            )
-        });
-        let exact_set: Vec<usize> = (0..n).filter(|&i| exact_lab[i] != by[i]).collect();
-        // Sanity of the construction: the exact optimum repairs exactly the planted bugs.
-        assert_eq!(
-            exact_set,
-            vec![0, n - 1],
-            "case k={k} n={n}: exact optimum {exact_lab:?}"
-        );
-        assert_eq!(exact_lab, by_true, "case k={k} n={n}");
+            let st = Standardizer::fit(&[tx.view(), px.view(), bx.view()]).expect("standardise");
+            let fm =
+                FeatureMap::new(st.clone(), FeatureMapKind::Linear, settings.seed).expect("map");
 
-        let engine_set: Vec<usize> = a
-            .items
-            .iter()
-            .filter(|i| i.repair_mass > 0.5)
-            .map(|i| i.index)
-            .collect();
-        assert_eq!(
-            engine_set,
-            exact_set,
-            "case k={k} n={n}: engine moved {:?}",
-            masses(&a)
-        );
-        for &i in &exact_set {
-            assert_eq!(
-                a.items[i].proposed_label, exact_lab[i],
-                "case k={k} n={n}, item {i}"
+            // Every labelling: (changed labels, Φ after retraining).
+            let all: Vec<(usize, f64, Vec<usize>)> = labellings(n, k)
+                .map(|lab| {
+                    let changed = lab.iter().zip(&by).filter(|(a, b)| a != b).count();
+                    let phi = retrained_trusted_loss(
+                        &settings,
+                        &fm,
+                        k,
+                        (&px, &py),
+                        &bx,
+                        &lab,
+                        (&tx, &ty),
+                    );
+                    (changed, phi, lab)
+                })
+                .collect();
+            let cheap = all
+                .iter()
+                .filter(|e| e.0 < 2)
+                .map(|e| e.1)
+                .fold(f64::INFINITY, f64::min);
+            let mut two: Vec<&(usize, f64, Vec<usize>)> = all.iter().filter(|e| e.0 == 2).collect();
+            two.sort_by(|a, b| a.1.total_cmp(&b.1));
+            let (best, second) = (two[0], two[1].1);
+            if cheap - best.1 < 0.01 || second - best.1 < 0.01 {
+                continue; // not well posed with a margin; try the next seed
+            }
+            let target = best.1 + 0.5 * (cheap - best.1).min(second - best.1);
+
+            let w = Array1::ones(ty.len());
+            let run = |settings: &ModelSettings| {
+                assess(
+                    settings,
+                    &st,
+                    k,
+                    TrustedInput {
+                        x: tx.view(),
+                        y: &ty,
+                        weight: w.view(),
+                    },
+                    PoolInput::Exact {
+                        x: px.view(),
+                        y: &py,
+                    },
+                    bx.view(),
+                    &by,
+                )
+                .expect("assess")
+            };
+            let base_target = run(&settings).trusted_loss_target;
+            assert!(
+                target >= base_target,
+                "k={k} n={n}: target {target} below the engine's own {base_target}"
             );
+            let a = run(&ModelSettings {
+                target_slack: target - base_target,
+                ..settings.clone()
+            });
+            assert!(
+                (a.trusted_loss_target - target).abs() < 1e-9,
+                "target not applied"
+            );
+
+            let exact_lab = &best.2;
+            let exact_set: Vec<usize> = (0..n).filter(|&i| exact_lab[i] != by[i]).collect();
+            let exact_cost = best.0 as f64 / n as f64;
+            let mass: Vec<f64> = a.items.iter().map(|i| i.repair_mass).collect();
+            let engine_set = labelweir::eval::metrics::top_k_set(&mass, exact_set.len());
+            let others_stay = (0..n).all(|i| exact_set.contains(&i) || mass[i] < 0.5);
+            let labels_agree = exact_set
+                .iter()
+                .all(|&i| a.items[i].proposed_label == exact_lab[i]);
+            if engine_set != exact_set
+                || !others_stay
+                || !labels_agree
+                || a.repair_cost > exact_cost + 1.0 / n as f64
+            {
+                failures.push(format!(
+                "k={k} n={n} seed {seed}: exact changes {exact_set:?} to {:?} (cost {exact_cost:.3}; planted {planted:?}); \
+                 engine moves most mass on {engine_set:?}, repair cost {:.3}; \
+                     (index, mass, proposal) = {:?}",
+                exact_set.iter().map(|&i| exact_lab[i]).collect::<Vec<_>>(),
+                a.repair_cost,
+                masses(&a)
+            ));
+            }
+            checked.push((k, n, seed));
+            break;
         }
-        let exact_cost = exact_changed as f64 / n as f64;
-        assert!(
-            a.repair_cost <= exact_cost + 1.0 / n as f64,
-            "case k={k} n={n}: relaxed cost {} vs exact {exact_cost}",
-            a.repair_cost
-        );
     }
+    assert_eq!(
+        checked.len(),
+        configs.len(),
+        "no well-posed instance found for some (K, n): {checked:?}"
+    );
+    assert!(
+        failures.is_empty(),
+        "relaxed repair ≠ exact optimum:\n{}",
+        failures.join("\n")
+    );
 }
 
 fn masses(a: &Assessment) -> Vec<(usize, f64, usize)> {
@@ -888,6 +924,7 @@ fn incremental_and_exact_modes_agree_on_plant_batches() {
             scenario::region_flips(bx.view(), &by_clean, scenario::class::PAPER, 0.10, 55),
         ),
     ];
+    let mut failures = Vec::new();
     for (name, (by, _)) in attacks {
         let inc = assess(
             &settings,
@@ -917,11 +954,26 @@ fn incremental_and_exact_modes_agree_on_plant_batches() {
         let rho = spearman(&a, &b).expect("ρ defined");
         let (ta, tb) = (top_k_set(&a, 20), top_k_set(&b, 20));
         let shared = ta.iter().filter(|i| tb.contains(i)).count();
-        assert!(
-            rho >= 0.99 && shared == 20,
-            "{name}: Spearman {rho:.4}, top-20 shared {shared}/20 (repair cost {:.3} vs {:.3})",
-            inc.repair_cost,
-            ex.repair_cost
+        // Diagnostics only: which signal differs between the modes.
+        let col = |a: &Assessment, f: fn(&labelweir::model::ItemScore) -> f64| {
+            a.items.iter().map(f).collect::<Vec<f64>>()
+        };
+        let rho_path = spearman(&col(&inc, |i| i.path_score), &col(&ex, |i| i.path_score));
+        let rho_ref = spearman(
+            &col(&inc, |i| i.reference_disagreement),
+            &col(&ex, |i| i.reference_disagreement),
         );
+        if rho < 0.99 || shared != 20 {
+            failures.push(format!(
+                "{name}: Spearman {rho:.4}, top-20 shared {shared}/20 (path_score ρ {rho_path:?}, \
+                 reference ρ {rho_ref:?}; repair cost {:.3} vs {:.3}; damage {:.4} vs {:.4})",
+                inc.repair_cost, ex.repair_cost, inc.damage, ex.damage
+            ));
+        }
     }
+    assert!(
+        failures.is_empty(),
+        "incremental ≠ exact:\n{}",
+        failures.join("\n")
+    );
 }

@@ -221,12 +221,21 @@ impl Ws {
         v
     }
 
-    /// Number of settled batch files in accepted/, quarantine/ and rejected/.
+    /// Number of settled batches in accepted/, quarantine/ and rejected/: distinct batch ids among the
+    /// files and reports there (a rejected symbolic link leaves only its report).
     pub fn settled(&self) -> usize {
-        ["accepted", "quarantine", "rejected"]
-            .iter()
-            .map(|f| self.files_in(f).len())
-            .sum()
+        let mut ids = std::collections::HashSet::new();
+        for f in ["accepted", "quarantine", "rejected"] {
+            if let Ok(rd) = std::fs::read_dir(self.dir.join(f)) {
+                for e in rd.flatten() {
+                    let n = e.file_name().to_string_lossy().into_owned();
+                    if !n.starts_with('.') {
+                        ids.insert(n.split('.').next().unwrap_or_default().to_string());
+                    }
+                }
+            }
+        }
+        ids.len()
     }
 
     /// Wait until `n` batch files are settled (panics after `timeout`).
