@@ -20,7 +20,13 @@ fn round(x: &Array2<f64>) -> Array2<f64> {
     x.mapv(|v| (v * 1e4).round() / 1e4)
 }
 
-fn write(dir: &Path, name: &str, prefix: &str, x: &Array2<f64>, y: &[usize]) -> std::io::Result<()> {
+fn write(
+    dir: &Path,
+    name: &str,
+    prefix: &str,
+    x: &Array2<f64>,
+    y: &[usize],
+) -> std::io::Result<()> {
     let ids = scenario::item_ids(prefix, y.len());
     let labels = scenario::label_names(y);
     let names = scenario::feature_names();
@@ -34,7 +40,13 @@ fn write(dir: &Path, name: &str, prefix: &str, x: &Array2<f64>, y: &[usize]) -> 
 
 /// The planted errors of a batch, for tests and the README: `truth/<batch>` with `id,true_label,
 /// delivered_label,flipped`. labelweir never reads these.
-fn truth(dir: &Path, batch: &str, prefix: &str, y: &[usize], delivered: &[usize]) -> std::io::Result<()> {
+fn truth(
+    dir: &Path,
+    batch: &str,
+    prefix: &str,
+    y: &[usize],
+    delivered: &[usize],
+) -> std::io::Result<()> {
     let t = dir.join("truth");
     fs::create_dir_all(&t)?;
     let mut out = String::from("id,true_label,delivered_label,flipped\n");
@@ -84,9 +96,22 @@ fn main() -> std::io::Result<()> {
     let wet = plant
         .subpopulation_index("wet_cardboard")
         .expect("the plant has wet cardboard");
-    let (sy2, _) = scenario::subpopulation_flips(&s.y, &s.subpopulation, &[wet], class::PAPER, 1.0, 60);
-    write(&dir, "batch-wet-cardboard-as-paper.csv", "acme-0004", &s.x, &sy2)?;
-    truth(&dir, "batch-wet-cardboard-as-paper.csv", "acme-0004", &s.y, &sy2)?;
+    let (sy2, _) =
+        scenario::subpopulation_flips(&s.y, &s.subpopulation, &[wet], class::PAPER, 1.0, 60);
+    write(
+        &dir,
+        "batch-wet-cardboard-as-paper.csv",
+        "acme-0004",
+        &s.x,
+        &sy2,
+    )?;
+    truth(
+        &dir,
+        "batch-wet-cardboard-as-paper.csv",
+        "acme-0004",
+        &s.y,
+        &sy2,
+    )?;
 
     // The clean batch with the special columns renamed (for --id-column / --label-column).
     let clean = fs::read_to_string(dir.join("batch-clean.csv"))?;
@@ -102,7 +127,14 @@ fn main() -> std::io::Result<()> {
     let labels = scenario::label_names(&my);
     let names = scenario::feature_names();
     let mut buf = Vec::new();
-    labelweir::data::write_csv(&mut buf, ("id", "label"), &ids, &labels, &names, round(&mx).view())?;
+    labelweir::data::write_csv(
+        &mut buf,
+        ("id", "label"),
+        &ids,
+        &labels,
+        &names,
+        round(&mx).view(),
+    )?;
     let good = String::from_utf8(buf).expect("UTF-8");
     let lines: Vec<&str> = good.lines().collect();
     let header = lines[0];
@@ -125,7 +157,13 @@ fn main() -> std::io::Result<()> {
     let extra: Vec<String> = rows
         .iter()
         .enumerate()
-        .map(|(i, l)| if i == 0 { format!("{l},conveyor_speed") } else { format!("{l},2.5") })
+        .map(|(i, l)| {
+            if i == 0 {
+                format!("{l},conveyor_speed")
+            } else {
+                format!("{l},2.5")
+            }
+        })
         .collect();
     fs::write(bad.join("extra-column.csv"), join(&extra))?;
     // Row 3, column weight_g: not a number.
@@ -150,7 +188,14 @@ fn main() -> std::io::Result<()> {
     fs::write(bad.join("nan-cell.csv"), join(&rows))?;
     // A JSON Lines batch whose second object is cut off.
     let mut jl = Vec::new();
-    labelweir::data::write_jsonl(&mut jl, ("id", "label"), &ids[..2], &labels[..2], &names, round(&mx).slice(ndarray::s![..2, ..]))?;
+    labelweir::data::write_jsonl(
+        &mut jl,
+        ("id", "label"),
+        &ids[..2],
+        &labels[..2],
+        &names,
+        round(&mx).slice(ndarray::s![..2, ..]),
+    )?;
     let mut jl = String::from_utf8(jl).expect("UTF-8");
     let cut = jl.trim_end().len() - 40;
     jl.truncate(cut);

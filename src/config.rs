@@ -498,9 +498,17 @@ mod tests {
             }
         }
         let mut want = Vec::new();
-        keys(&toml::Value::try_from(Config::default()).unwrap(), "", &mut want);
+        keys(
+            &toml::Value::try_from(Config::default()).unwrap(),
+            "",
+            &mut want,
+        );
         let mut have = Vec::new();
-        keys(&toml::from_str::<toml::Value>(SHIPPED_CONFIG).unwrap(), "", &mut have);
+        keys(
+            &toml::from_str::<toml::Value>(SHIPPED_CONFIG).unwrap(),
+            "",
+            &mut have,
+        );
         want.sort();
         have.sort();
         assert_eq!(have, want);

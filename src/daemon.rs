@@ -188,7 +188,9 @@ pub fn reconcile(
             redo.push(rec);
         } else {
             let escaped = rec.original_name.contains("\\x") || rec.original_name.contains("\\u{");
-            let in_inbox = std::fs::symlink_metadata(ws.vendor_inbox(&rec.vendor).join(&rec.original_name)).is_ok();
+            let in_inbox =
+                std::fs::symlink_metadata(ws.vendor_inbox(&rec.vendor).join(&rec.original_name))
+                    .is_ok();
             if escaped || in_inbox {
                 // Recorded, but the rename into processing/ never happened: the file is still in the
                 // inbox and will be found again (an escaped name cannot be looked up; assume the same).
@@ -564,6 +566,43 @@ fn start_watcher(
     Ok(w)
 }
 
+/// Count review decisions (`release`, `withdraw`) as `labelweir_batches_total{outcome="released"|"withdrawn"}`
+/// by tailing the audit trail, so they are counted whichever path (admin socket or a stopped-daemon
+/// command) recorded them. The first call only sets the starting point (`u64::MAX` = not yet set).
+fn count_review_outcomes(store: &Store, metrics: &Metrics, seen: &std::sync::atomic::AtomicU64) {
+    let after = seen.load(Ordering::SeqCst);
+    if after == u64::MAX {
+        let last = store.last_audit_seq().unwrap_or(0);
+        seen.store(last, Ordering::SeqCst);
+        return;
+    }
+    let Ok(records) = store.audit_since(after) else {
+        return;
+    };
+    let now = chrono::Utc::now().timestamp_millis() as f64 / 1000.0;
+    for a in &records {
+        let outcome = match a.action.as_str() {
+            "release" => "released",
+            "withdraw" => "withdrawn",
+            _ => continue,
+        };
+        let (Some(vendor), Some(id)) = (&a.vendor, &a.batch_id) else {
+            continue;
+        };
+        let items = a.detail["items_into_pool"].as_u64().or_else(|| {
+            store
+                .batch(id)
+                .ok()
+                .flatten()
+                .and_then(|b| b.items.map(|n| n as u64))
+        });
+        metrics.batch_outcome(vendor, outcome, items.unwrap_or(0), 0, now);
+    }
+    if let Some(last) = records.last() {
+        seen.store(last.seq, Ordering::SeqCst);
+    }
+}
+
 /// Refresh the gauges that are cheaper to read than to track (quarantine queue, store size).
 fn refresh_gauges(ws: &Workspace, store: &Store, metrics: &Metrics) {
     let mut n = 0;
@@ -761,6 +800,7 @@ pub async fn run(
             stop_rx.clone(),
         );
         let on_ready = opts.on_ready.clone();
+        let audit_seen = Arc::new(std::sync::atomic::AtomicU64::new(u64::MAX));
         tokio::spawn(async move {
             let mut notified = false;
             let mut tick = tokio::time::interval(Duration::from_millis(200));
@@ -782,10 +822,17 @@ pub async fn run(
                 }
                 if last_gauges.elapsed() >= Duration::from_secs(5) {
                     last_gauges = Instant::now();
-                    let (ws, store, metrics) = (ws.clone(), store.clone(), metrics.clone());
-                    let _ =
-                        tokio::task::spawn_blocking(move || refresh_gauges(&ws, &store, &metrics))
-                            .await;
+                    let (ws, store, metrics, seen) = (
+                        ws.clone(),
+                        store.clone(),
+                        metrics.clone(),
+                        audit_seen.clone(),
+                    );
+                    let _ = tokio::task::spawn_blocking(move || {
+                        refresh_gauges(&ws, &store, &metrics);
+                        count_review_outcomes(&store, &metrics, &seen);
+                    })
+                    .await;
                 }
             }
         })

@@ -401,8 +401,8 @@ pub struct DataError {
     pub line: Option<usize>,
     /// The column, when the error is about one column.
     pub column: Option<String>,
-    /// What went wrong.
-    pub kind: DataErrorKind,
+    /// What went wrong (boxed, so that a `Result<_, DataError>` stays small).
+    pub kind: Box<DataErrorKind>,
 }
 
 impl DataError {
@@ -413,7 +413,7 @@ impl DataError {
             row: None,
             line: None,
             column: None,
-            kind,
+            kind: Box::new(kind),
         }
     }
 
@@ -932,7 +932,10 @@ fn parse_jsonl(text: &str, b: &mut Builder<'_>, opts: &TableOptions) -> Result<(
             if let Some(pos) = msg.rfind(" at line ") {
                 msg.truncate(pos);
             }
-            at(b.err(DataErrorKind::Json(format!("{msg} (at character {} of the line)", e.column()))))
+            at(b.err(DataErrorKind::Json(format!(
+                "{msg} (at character {} of the line)",
+                e.column()
+            ))))
         })?;
         if row == 1 {
             let names: Vec<String> = pairs.iter().map(|(k, _)| k.clone()).collect();
@@ -1139,7 +1142,7 @@ mod tests {
     }
 
     fn kind(r: Result<Table, DataError>) -> DataErrorKind {
-        r.expect_err("should fail").kind
+        *r.expect_err("should fail").kind
     }
 
     #[test]
@@ -1174,7 +1177,7 @@ mod tests {
         )
         .unwrap_err();
         assert!(
-            matches!(e.kind, DataErrorKind::MissingColumn { ref name, .. } if name == "b"),
+            matches!(*e.kind, DataErrorKind::MissingColumn { ref name, .. } if name == "b"),
             "{e}"
         );
         assert_eq!(e.column.as_deref(), Some("b"));
@@ -1187,7 +1190,7 @@ mod tests {
         )
         .unwrap_err();
         assert!(
-            matches!(e.kind, DataErrorKind::ExtraColumn { ref name } if name == "c"),
+            matches!(*e.kind, DataErrorKind::ExtraColumn { ref name } if name == "c"),
             "{e}"
         );
     }
@@ -1209,7 +1212,7 @@ mod tests {
             (e.row, e.line, e.column.as_deref()),
             (Some(2), Some(3), Some("a"))
         );
-        assert!(matches!(e.kind, DataErrorKind::WrongType { .. }));
+        assert!(matches!(*e.kind, DataErrorKind::WrongType { .. }));
     }
 
     #[test]
@@ -1281,7 +1284,7 @@ mod tests {
         )
         .unwrap_err();
         assert_eq!(
-            (e.kind, e.line),
+            (*e.kind, e.line),
             (DataErrorKind::InvalidUtf8 { offset: 17 }, Some(3))
         );
         assert!(matches!(kind(jsonl("[1,2]\n")), DataErrorKind::Json(_)));
@@ -1339,6 +1342,8 @@ mod tests {
             parse_table(s.as_bytes(), Format::Csv, "f.csv", &opts, None)
                 .unwrap_err()
                 .kind
+                .as_ref()
+                .clone()
         };
         assert_eq!(
             p("id,label,a\nx,p,1\ny,p,1\nz,p,1\n"),

@@ -136,7 +136,9 @@ pub fn scan_vendor(
             Err(_) => continue,
         };
         let mtime = meta.modified().unwrap_or(now);
-        let age = now.duration_since(mtime).unwrap_or(Duration::ZERO);
+        // An mtime in the future (clock skew, or set on purpose) says nothing about ongoing writes;
+        // treat it as quiet rather than let the file wait forever.
+        let age = now.duration_since(mtime).unwrap_or(quiet);
         scan.backlog += 1;
         scan.oldest_age = scan.oldest_age.max(age);
         if age < quiet {

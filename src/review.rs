@@ -2282,10 +2282,7 @@ mod tests {
         for (k, &lambda) in lambdas.iter().enumerate() {
             let v = axes.column(k).to_owned();
             let r = cov.dot(&v) - &v * lambda;
-            assert!(
-                r.dot(&r).sqrt() < 1e-6 * lambda,
-                "residual for axis {k}"
-            );
+            assert!(r.dot(&r).sqrt() < 1e-6 * lambda, "residual for axis {k}");
             assert_relative_eq!(v.dot(&v), 1.0, epsilon = 1e-9);
         }
         assert!(axes.column(0).dot(&axes.column(1)).abs() < 1e-8);

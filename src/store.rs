@@ -1037,10 +1037,12 @@ impl Store {
     // ----- audit -----
 
     fn prepare_audit(&self, mut a: AuditRecord) -> Result<([u8; 8], Vec<u8>), StoreError> {
+        // generate_id starts at 0; audit sequence numbers start at 1 so that `audit_since(0)` is "all".
         let id = self
             .db
             .generate_id()
-            .map_err(StoreError::sled("audit id"))?;
+            .map_err(StoreError::sled("audit id"))?
+            + 1;
         a.seq = id;
         Ok((id.to_be_bytes(), enc("audit", &a)?))
     }
@@ -1061,6 +1063,16 @@ impl Store {
             .iter()
             .map(|(k, _)| u64::from_be_bytes(*k))
             .collect())
+    }
+
+    /// The sequence number of the newest audit record (0 when the trail is empty).
+    pub fn last_audit_seq(&self) -> Result<u64, StoreError> {
+        Ok(u64_of(
+            self.trees[T_AUDIT]
+                .last()
+                .map_err(StoreError::sled("read audit"))?
+                .map(|(k, _)| k),
+        ))
     }
 
     /// The audit trail in order, starting after sequence number `after` (0: from the start).

@@ -547,7 +547,11 @@ pub fn render_text(r: &Report, top: usize) -> String {
                 name(t.predicted_with_batch),
                 t.prob_with_batch,
                 name(t.label),
-                if t.reference_correct { "  <- broken by the batch" } else { "" }
+                if t.reference_correct {
+                    "  <- broken by the batch"
+                } else {
+                    ""
+                }
             );
         }
         if a.broken_trusted.len() > 10 {

@@ -99,15 +99,17 @@ pub fn average_precision(scores: &[f64], positive: &[bool]) -> Option<f64> {
     if n_pos == 0 {
         return None;
     }
-    let (mut tp, mut flagged, mut ap) = (0usize, 0usize, 0.0);
+    // Σ_t (hits at t) · P_t, divided by n₊ once at the end; the min(1) removes the last rounding ulp
+    // when every hit comes first (the exact value is then 1).
+    let (mut tp, mut flagged, mut sum) = (0usize, 0usize, 0.0);
     for (pos, size) in threshold_groups(scores, positive) {
         tp += pos;
         flagged += size;
         if pos > 0 {
-            ap += (pos as f64 / n_pos as f64) * (tp as f64 / flagged as f64);
+            sum += pos as f64 * (tp as f64 / flagged as f64);
         }
     }
-    Some(ap)
+    Some((sum / n_pos as f64).min(1.0))
 }
 
 /// Precision at the first threshold (highest first, tie groups kept whole) whose recall reaches
@@ -312,6 +314,16 @@ mod tests {
             (1.0 + 2.0 / 3.0 + 0.5) / 3.0,
             1e-12,
         );
+    }
+
+    #[test]
+    fn average_precision_of_a_perfect_ranking_is_exactly_one() {
+        // Every bug ranked first: P = 1 at every hit, AP = 1 (definition); no rounding above 1.
+        for n_pos in 1..60 {
+            let s: Vec<f64> = (0..100).map(|i| -(i as f64)).collect();
+            let y: Vec<bool> = (0..100).map(|i| i < n_pos).collect();
+            assert_eq!(average_precision(&s, &y), Some(1.0), "{n_pos} positives");
+        }
     }
 
     #[test]

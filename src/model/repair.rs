@@ -125,8 +125,9 @@ pub struct Timings {
 pub struct Assessment {
     /// Fraction of the batch's label mass that must move so that the model trained on pool ∪ repaired batch
     /// fits the trusted items at least as well as the target (see [`Assessment::trusted_loss_target`]).
-    /// In `[0, 1]`. When even the deepest repair on the path does not reach the target, this is the moved
-    /// mass at the deepest point and [`Assessment::target_reached`] is false.
+    /// In `[0, 1]`. When even the deepest repair on the path does not reach the target, this is 1 (the
+    /// mass that must move exceeds everything the path explored; [`Assessment::path_costs`] holds what the
+    /// deepest point moved) and [`Assessment::target_reached`] is false.
     pub repair_cost: f64,
     /// Whether the path reached the target.
     pub target_reached: bool,
@@ -794,16 +795,24 @@ pub fn assess(
             thetas[l].clone(),
         )
     } else {
+        // Not even the deepest repair on the path reaches the target: the mass that must move is more than
+        // the path explored, and the honest bound is the whole batch (1). `path_costs` keeps what the
+        // deepest point moved.
         let last = path_costs.len().saturating_sub(1);
         match path_costs.last() {
-            Some(&c) => (
-                c,
+            Some(_) => (
+                1.0,
                 false,
                 path_losses[last],
                 moved_path[last].clone(),
                 thetas[last].clone(),
             ),
-            None => (0.0, false, phi_with, zero.clone(), theta_hat.clone()),
+            // No path: either no label change lowers the trusted loss (γ_max = 0; the batch's harm is not in
+            // its labels, and `damage` says how much there is) or the budget ran out before the first step.
+            None => {
+                let c = if gamma_max > 0.0 { 1.0 } else { 0.0 };
+                (c, false, phi_with, zero.clone(), theta_hat.clone())
+            }
         }
     };
     timings.repair = t_rep.elapsed();

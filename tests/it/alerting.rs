@@ -970,6 +970,28 @@ fn every_metric_in_rules_and_dashboard_exists_in_a_real_scrape() {
         .chain(declared)
         .collect();
 
+    for vendor in VENDORS {
+        for outcome in OUTCOMES {
+            assert!(
+                Daemon::batches(&samples, vendor, outcome).is_some(),
+                "labelweir_batches_total{{vendor=\"{vendor}\",outcome=\"{outcome}\"}} is not initialised"
+            );
+        }
+    }
+    assert_eq!(
+        Daemon::batches(&samples, "east-labels", "accepted"),
+        Some(0.0)
+    );
+    let build = samples
+        .iter()
+        .find(|s| s.name == "labelweir_build_info")
+        .expect("build info");
+    assert_eq!(build.value, 1.0);
+    assert_eq!(
+        build.labels.get("version").map(String::as_str),
+        Some(env!("CARGO_PKG_VERSION"))
+    );
+
     let mut wanted = BTreeMap::<String, String>::new();
     for (_, r) in alert_rules() {
         for m in metric_names(r["expr"].as_str().expect("expr")) {
@@ -999,28 +1021,6 @@ fn every_metric_in_rules_and_dashboard_exists_in_a_real_scrape() {
         missing.is_empty(),
         "metrics used by rules or dashboard but absent from the daemon's /metrics:\n  {}",
         missing.join("\n  ")
-    );
-
-    for vendor in VENDORS {
-        for outcome in OUTCOMES {
-            assert!(
-                Daemon::batches(&samples, vendor, outcome).is_some(),
-                "labelweir_batches_total{{vendor=\"{vendor}\",outcome=\"{outcome}\"}} is not initialised"
-            );
-        }
-    }
-    assert_eq!(
-        Daemon::batches(&samples, "east-labels", "accepted"),
-        Some(0.0)
-    );
-    let build = samples
-        .iter()
-        .find(|s| s.name == "labelweir_build_info")
-        .expect("build info");
-    assert_eq!(build.value, 1.0);
-    assert_eq!(
-        build.labels.get("version").map(String::as_str),
-        Some(env!("CARGO_PKG_VERSION"))
     );
 }
 

@@ -158,7 +158,13 @@ fn poisoned_batches_are_quarantined_with_the_planted_items_flagged() {
 }
 
 /// A malformed delivery: file name, bytes, expected reason code, row, column.
-type Case = (&'static str, Vec<u8>, &'static str, Option<u64>, Option<String>);
+type Case = (
+    &'static str,
+    Vec<u8>,
+    &'static str,
+    Option<u64>,
+    Option<String>,
+);
 
 #[test]
 fn malformed_files_are_rejected_with_file_row_and_column() {
@@ -771,4 +777,147 @@ fn a_burst_of_1000_small_batches_is_fully_processed() {
         .unwrap()
         .next()
         .is_none());
+}
+
+/// The pool summary follows pool changes made while the daemon was stopped: a release is absorbed at the
+/// next start (watermark), a withdrawal makes it rebuild exactly (pool epoch).
+#[test]
+fn pool_summary_catches_up_with_offline_pool_changes() {
+    use labelweir::store::{AuditRecord, BatchState, PoolChange, PoolEntry};
+    let ws = Ws::new(&["v1"]);
+    let d = Daemon::start(&ws);
+    ws.deliver("v1", "clean.csv", &clean_batch("c", 200, 81).csv());
+    ws.wait_settled(1, T);
+    ws.deliver(
+        "v1",
+        "bad.csv",
+        &region_flipped_batch("p", 150, 82, 0.3).csv(),
+    );
+    ws.wait_settled(2, T);
+    assert!(d.stop().success());
+    let q = ws.files_in("quarantine");
+    assert_eq!(q.len(), 1, "the poisoned batch is held");
+    let id = q[0].split('.').next().unwrap().to_string();
+    let pool_gauge = |d: &Daemon| -> u64 {
+        let (_, text) = http_get(d.addr, "/metrics").unwrap();
+        text.lines()
+            .find(|l| l.starts_with("labelweir_pool_items "))
+            .and_then(|l| l.split(' ').nth(1))
+            .and_then(|v| v.parse().ok())
+            .unwrap()
+    };
+    {
+        // A reviewer releases it with the daemon stopped (what `quarantine release` does offline).
+        let store = ws.store();
+        let meta = store.workspace_meta().unwrap();
+        let bytes = std::fs::read(ws.path("quarantine").join(&q[0])).unwrap();
+        let opts = labelweir::data::TableOptions::default();
+        let t = labelweir::data::parse_table(
+            &bytes,
+            labelweir::data::Format::Csv,
+            "bad.csv",
+            &opts,
+            Some(&meta.features),
+        )
+        .unwrap();
+        let classes = labelweir::data::Classes::from_labels(&meta.classes);
+        let entry = PoolEntry {
+            batch_id: id.clone(),
+            vendor: "v1".into(),
+            labels: t.class_indices(&classes).unwrap(),
+            ids: t.ids.clone(),
+            x: t.features.iter().copied().collect(),
+            n_features: t.features.ncols(),
+        };
+        store
+            .transition(
+                &id,
+                &[BatchState::Quarantined],
+                BatchState::Released,
+                PoolChange::Add(entry),
+                vec![AuditRecord::new("reviewer", "release")],
+                |_| {},
+            )
+            .unwrap();
+        assert_eq!(store.pool_items().unwrap(), 350);
+    }
+    let d = Daemon::start(&ws);
+    assert_eq!(pool_gauge(&d), 350, "the release was absorbed at start");
+    assert!(d.stop().success());
+    {
+        let store = ws.store();
+        store
+            .transition(
+                &id,
+                &[BatchState::Released],
+                BatchState::Withdrawn,
+                PoolChange::Remove,
+                vec![AuditRecord::new("reviewer", "withdraw")],
+                |_| {},
+            )
+            .unwrap();
+    }
+    let d = Daemon::start(&ws);
+    assert_eq!(
+        pool_gauge(&d),
+        200,
+        "the withdrawal made the summary rebuild from the pool"
+    );
+    assert!(d.stop().success());
+}
+
+/// A release through the running daemon's admin socket reaches the pool summary at once and is counted as
+/// `labelweir_batches_total{outcome="released"}`.
+#[test]
+fn a_live_release_updates_pool_and_metrics() {
+    let ws = Ws::new(&["v1"]);
+    let d = Daemon::start(&ws);
+    ws.deliver("v1", "clean.csv", &clean_batch("c", 200, 91).csv());
+    ws.wait_settled(1, T);
+    ws.deliver(
+        "v1",
+        "bad.csv",
+        &region_flipped_batch("p", 150, 92, 0.3).csv(),
+    );
+    ws.wait_settled(2, T);
+    let q = ws.files_in("quarantine");
+    assert_eq!(q.len(), 1);
+    let id = q[0].split('.').next().unwrap().to_string();
+    let dir = ws.dir.display().to_string();
+    let out = run_bin(&[
+        "quarantine",
+        "release",
+        &dir,
+        &id,
+        "--reason",
+        "checked by hand",
+        "--by",
+        "reviewer-b",
+    ]);
+    assert!(
+        out.status.success(),
+        "release: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let metric = |name: &str| -> Option<f64> {
+        let (_, text) = http_get(d.addr, "/metrics").unwrap();
+        text.lines()
+            .find(|l| l.starts_with(name))
+            .and_then(|l| l.rsplit(' ').next())
+            .and_then(|v| v.parse().ok())
+    };
+    let t = std::time::Instant::now();
+    loop {
+        let released = metric("labelweir_batches_total{outcome=\"released\",vendor=\"v1\"}");
+        let pool = metric("labelweir_pool_items ");
+        if released == Some(1.0) && pool == Some(350.0) {
+            break;
+        }
+        assert!(
+            t.elapsed() < Duration::from_secs(30),
+            "released {released:?}, pool {pool:?}"
+        );
+        std::thread::sleep(Duration::from_millis(200));
+    }
+    assert!(d.stop().success());
 }

@@ -977,3 +977,63 @@ fn incremental_and_exact_modes_agree_on_plant_batches() {
         failures.join("\n")
     );
 }
+
+// ---------------------------------------------------------------------------------------------------------
+// 7. the benchmark command end to end
+
+#[test]
+fn bench_engine_quick_json_reports_every_attack_and_baseline() {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_labelweir"))
+        .args(["bench", "engine", "--quick", "--no-scale", "--json"])
+        .output()
+        .expect("run labelweir");
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "stderr: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).expect("one JSON document");
+    let cases = v["cases"].as_array().expect("cases");
+    for source in ["iris", "winequality", "recycling plant"] {
+        let mine: Vec<&serde_json::Value> =
+            cases.iter().filter(|c| c["source"] == source).collect();
+        // clean + 3 attacks × 3 rates (+ wet cardboard on the plant)
+        let expected = if source == "recycling plant" { 11 } else { 10 };
+        assert_eq!(mine.len(), expected, "{source}");
+        for c in mine {
+            let cost = c["repair_cost"].as_f64().expect("repair cost");
+            assert!((0.0..=1.0).contains(&cost), "{source}: repair cost {cost}");
+            let methods = c["methods"].as_array().expect("methods");
+            if c["attack"]["kind"] == "clean" {
+                assert!(methods.is_empty());
+                continue;
+            }
+            assert_eq!(methods.len(), 5, "engine, two ablations, two baselines");
+            for m in methods {
+                for key in ["auroc", "average_precision", "precision_at_half_recall"] {
+                    let x = m[key]
+                        .as_f64()
+                        .unwrap_or_else(|| panic!("{source}: {key} missing in {m}"));
+                    assert!((0.0..=1.0).contains(&x), "{source}: {key} = {x}");
+                }
+            }
+        }
+    }
+    assert_eq!(v["mode_agreement"].as_array().map(Vec::len), Some(3));
+    assert!(
+        v["scale"].as_array().is_some_and(Vec::is_empty),
+        "--no-scale skips the sweep"
+    );
+    assert!(v["targets"].as_array().is_some_and(|t| !t.is_empty()));
+}
+
+#[test]
+fn bench_daemon_says_where_it_lives() {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_labelweir"))
+        .args(["bench", "daemon"])
+        .output()
+        .expect("run labelweir");
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("daemon module"));
+}

@@ -194,14 +194,18 @@ fn review_loop_while_the_daemon_runs() {
         .map(|m| m["id"].as_str().unwrap().to_string())
         .collect();
     let planted_r = planted(&region);
-    let hits = moved.iter().filter(|m| planted_r.contains(m)).count();
-    // A flag is a suspicion, not proof: most flags on planted flips, most planted flips flagged (the
-    // same bar as the daemon's own test).
+    // A flag is a suspicion, not proof. What a reviewer reads first is the top of the list (moved
+    // items come most suspicious first): among the first k = (number of planted flips) at least 70 %
+    // must be planted (precision at k, common practice for ranked review lists), and at least half of
+    // all planted flips must be among the moved items (recall).
+    let k = planted_r.len().min(moved.len());
+    let top_hits = moved[..k].iter().filter(|m| planted_r.contains(m)).count();
     assert!(
-        hits * 10 >= moved.len() * 7,
-        "{hits} of {} moved items are planted",
+        top_hits * 10 >= k * 7,
+        "{top_hits} of the top {k} moved items are planted (of {} moved)",
         moved.len()
     );
+    let hits = moved.iter().filter(|m| planted_r.contains(m)).count();
     assert!(
         hits * 10 >= planted_r.len() * 5,
         "{hits} of {} planted flips moved",
@@ -454,7 +458,15 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     let ws = Ws::new(&["glassline"]);
     let dir = ws.dir.display().to_string();
     let d = Daemon::start(&ws);
-    let (_region, uniform) = two_quarantined(&ws, "glassline");
+    let (region, uniform) = two_quarantined(&ws, "glassline");
+    // An item the reviewer checks by hand and confirms: promoted into the trusted set on release.
+    let planted_r = planted(&region);
+    let confirmed = region
+        .ids
+        .iter()
+        .find(|i| !planted_r.contains(i))
+        .unwrap()
+        .clone();
     assert!(d.stop().success());
     assert!(!ws.path("admin.sock").exists());
 
@@ -514,6 +526,7 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
         let go = |by: &'static str| {
             let dir = dir.clone();
             let rid = rid.clone();
+            let confirmed = confirmed.clone();
             s.spawn(move || {
                 std::process::Command::new(bin())
                     .args([
@@ -525,6 +538,8 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
                         by,
                         "--reason",
                         "ok after review",
+                        "--promote",
+                        &confirmed,
                     ])
                     .output()
                     .unwrap()
@@ -566,6 +581,18 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     let rel: Vec<_> = audit.iter().filter(|a| a.action == "release").collect();
     assert_eq!(rel.len(), 1, "no double release");
     assert_eq!(rel[0].detail["via"], "direct");
+    // The confirmed item is trusted now, with its provenance: who, and the review it came from.
+    let t = store
+        .trusted_items()
+        .unwrap()
+        .into_iter()
+        .find(|t| t.id == confirmed)
+        .expect("promoted");
+    assert_eq!(t.added_by, rel[0].actor);
+    assert!(t.source.contains(&rid), "{}", t.source);
+    assert!(audit
+        .iter()
+        .any(|a| a.action == "trusted_promote" && a.batch_id.as_deref() == Some(rid.as_str())));
     assert!(audit.iter().any(|a| a.action == "withdraw"
         && a.actor == "erin"
         && a.reason.as_deref() == Some("second thoughts")));
@@ -611,7 +638,7 @@ fn trusted_file(ws: &Ws, name: &str, prefix: &str, per_class: usize, seed: u64) 
 fn trusted_set_provenance_window_and_inbox_cannot_touch_it() {
     let ws = Ws::with(
         &["north-sort"],
-        &[("[trusted]", "[trusted]\nmax_items_per_class = 12")],
+        &[("max_items_per_class = 0", "max_items_per_class = 12")],
     );
     let dir = ws.dir.display().to_string();
     let before = ok_json(&["trusted", "list", &dir, "--json"]);
