@@ -106,6 +106,9 @@ pub enum AdminError {
         /// The cause.
         source: std::io::Error,
     },
+    /// The socket's permissions do not let this user connect.
+    #[error("no permission to use the admin socket {0}: ask for membership in the daemon's group")]
+    Denied(String),
     /// The daemon's answer could not be read.
     #[error("admin socket: bad response: {0}")]
     Protocol(String),
@@ -248,6 +251,9 @@ pub fn call_at(
             ) =>
         {
             return Ok(None)
+        }
+        Err(e) if e.kind() == std::io::ErrorKind::PermissionDenied => {
+            return Err(AdminError::Denied(path.display().to_string()))
         }
         Err(e) => return Err(io(e)),
     };

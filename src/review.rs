@@ -401,7 +401,8 @@ pub struct QueueEntry {
 
 /// Quarantined batches, oldest first.
 pub fn list(env: &ReviewEnv<'_>) -> Result<Vec<QueueEntry>, ReviewError> {
-    finish_moves(env)?;
+    // Best effort: a move a crash interrupted; each decision reports problems with its own move.
+    let _ = finish_moves(env);
     Ok(env
         .store
         .batches_in(&[BatchState::Quarantined])?
@@ -1199,6 +1200,8 @@ fn caller_detail(env: &ReviewEnv<'_>) -> serde_json::Value {
 pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionReport, ReviewError> {
     require_reason(&req.reason)?;
     require_by(&req.by)?;
+    // Best effort: a move a crash interrupted; each decision reports problems with its own move.
+    let _ = finish_moves(env);
     let rec = get_batch(env.store, &req.batch)?;
     expect_state(&rec, &[BatchState::Quarantined], "released")?;
     let table = match read_batch_table(env, &rec) {
@@ -1462,6 +1465,8 @@ fn proposals_for(
 pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport, ReviewError> {
     require_reason(&req.reason)?;
     require_by(&req.by)?;
+    // Best effort: a move a crash interrupted; each decision reports problems with its own move.
+    let _ = finish_moves(env);
     let rec = get_batch(env.store, &req.batch)?;
     expect_state(&rec, &[BatchState::Quarantined], "rejected")?;
     let mut detail = caller_detail(env);
@@ -1529,6 +1534,8 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
 pub fn withdraw(env: &ReviewEnv<'_>, req: &WithdrawRequest) -> Result<DecisionReport, ReviewError> {
     require_reason(&req.reason)?;
     require_by(&req.by)?;
+    // Best effort: a move a crash interrupted; each decision reports problems with its own move.
+    let _ = finish_moves(env);
     let rec = get_batch(env.store, &req.batch)?;
     let allowed = [BatchState::Accepted, BatchState::Released];
     expect_state(&rec, &allowed, "withdrawn")?;
@@ -2296,6 +2303,62 @@ mod tests {
     fn html_escape_neutralises_markup_and_controls() {
         let s = html_escape("<img src=x onerror=alert(1)>\u{202E}&\"'");
         assert_eq!(s, "&lt;img src=x onerror=alert(1)&gt;&amp;&quot;&#39;");
+    }
+
+    #[test]
+    fn the_page_escapes_vendor_strings_and_loads_nothing() {
+        let mut rec = BatchRecord::claimed(
+            "b00000001".into(),
+            "north-sort",
+            "<script>alert(1)</script>.csv".into(),
+            "b00000001.csv".into(),
+        );
+        rec.state = BatchState::Quarantined;
+        let hostile = "\"><img src=x onerror=alert(1)>\u{202E}";
+        let report = ShowReport {
+            batch: rec,
+            reasons: Vec::new(),
+            baseline: None,
+            vendor: VendorStanding {
+                accepted_total: 0,
+                baseline_batches: 0,
+                baseline_median: 0.0,
+                cusum: 0.0,
+                waiting_for_review: 1,
+            },
+            moved_items: vec![MovedItem {
+                id: hostile.into(),
+                label: "paper".into(),
+                proposed_label: "pet".into(),
+                suspicion: 0.9,
+                confidence: 0.8,
+            }],
+            broken_trusted: Vec::new(),
+            history: Vec::new(),
+            projection: Some(Projection {
+                method: "test".into(),
+                explained: [0.5, 0.2],
+                points: vec![ProjectedPoint {
+                    group: "batch".into(),
+                    id: hostile.into(),
+                    label: "paper".into(),
+                    proposed_label: Some("pet".into()),
+                    suspicion: Some(0.9),
+                    x: 0.0,
+                    y: 1.0,
+                }],
+                omitted: 0,
+            }),
+            projection_note: None,
+            note: notice::SUSPICION_SENTENCE.into(),
+        };
+        let html = render_html(&report);
+        assert!(!html.contains("<script"), "{html}");
+        assert!(!html.contains("<img"), "{html}");
+        assert!(!html.contains('\u{202E}'));
+        assert!(html.contains("&lt;img src=x onerror=alert(1)&gt;"));
+        assert!(html.contains("default-src 'none'"));
+        assert_eq!(html.matches("<circle").count(), 1);
     }
 
     #[test]

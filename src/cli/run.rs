@@ -10,7 +10,8 @@ use crate::daemon::{self, RunOptions};
 /// Run the daemon on a workspace in the foreground until SIGINT or SIGTERM.
 ///
 /// The first signal stops claiming, finishes the batch in hand, flushes the store and exits 0; a second
-/// signal exits at once (anything unfinished is redone at the next start). Exit codes: 0 clean stop,
+/// signal exits at once (anything unfinished is redone at the next start). SIGHUP re-reads and validates
+/// the config (changes apply at the next start). Exit codes: 0 clean stop,
 /// 78 configuration, 74 I/O or storage, 70 internal error. Logs are JSON lines on stdout (filter with
 /// LABELWEIR_LOG, e.g. LABELWEIR_LOG=debug).
 #[derive(Debug, clap::Args)]

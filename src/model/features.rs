@@ -129,7 +129,7 @@ impl FeatureMap {
         let (omega, offset) = match kind {
             FeatureMapKind::Linear => (Array2::zeros((0, d)), Array1::zeros(0)),
             FeatureMapKind::RandomFourier { dim, bandwidth } => {
-                if dim == 0 || !(bandwidth >= 0.0) || !bandwidth.is_finite() {
+                if dim == 0 || !bandwidth.is_finite() || bandwidth < 0.0 {
                     return Err(ModelError::Settings(
                         "random_fourier needs dim > 0 and a finite bandwidth ≥ 0".into(),
                     ));

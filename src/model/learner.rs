@@ -285,9 +285,12 @@ impl Objective<'_> {
 
 /// argmin adapter: evaluates value and gradient together and caches the last point, since the line search
 /// asks for both at the same parameters.
+/// The last point evaluated: `(θ, f(θ), ∇f(θ))`.
+type Evaluated = Option<(Array1<f64>, f64, Array1<f64>)>;
+
 struct Problem<'a> {
     obj: Objective<'a>,
-    cache: RefCell<Option<(Array1<f64>, f64, Array1<f64>)>>,
+    cache: RefCell<Evaluated>,
 }
 
 impl Problem<'_> {
@@ -458,7 +461,7 @@ pub fn train_newton(
         let mut accepted = false;
         for dir in newton_dir.into_iter().chain(std::iter::once(-g.clone())) {
             let slope = g.dot(&dir);
-            if !(slope < 0.0) {
+            if slope.is_nan() || slope >= 0.0 {
                 continue;
             }
             let mut step = 1.0;

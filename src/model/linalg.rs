@@ -36,7 +36,7 @@ impl Cholesky {
                     }
                 }
                 if i == j {
-                    if !(sum > 1e-300) || !sum.is_finite() {
+                    if !sum.is_finite() || sum <= 1e-300 {
                         return None;
                     }
                     a[[i, i]] = sum.sqrt();
@@ -125,7 +125,7 @@ pub fn conjugate_gradient(
     while rel > tol && it < max_iters {
         let ad = apply(&d);
         let dad = d.dot(&ad);
-        if !(dad > 0.0) {
+        if dad.is_nan() || dad <= 0.0 {
             break;
         }
         let alpha = rz / dad;

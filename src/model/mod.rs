@@ -175,19 +175,19 @@ impl ModelSettings {
     /// Check ranges; the message names the offending key.
     pub fn validate(&self) -> Result<(), ModelError> {
         let bad = |k: &str, why: &str| Err(ModelError::Settings(format!("model.{k}: {why}")));
-        if !(self.l2 > 0.0) || !self.l2.is_finite() {
+        if !self.l2.is_finite() || self.l2 <= 0.0 {
             return bad(
                 "l2",
                 "must be a finite number > 0 (the softmax is not identifiable without it)",
             );
         }
-        if !(self.inner_tol > 0.0) {
+        if self.inner_tol.is_nan() || self.inner_tol <= 0.0 {
             return bad("inner_tol", "must be > 0");
         }
         if self.inner_max_iters == 0 || self.cg_max_iters == 0 {
             return bad("inner_max_iters / cg_max_iters", "must be ≥ 1");
         }
-        if !(self.cg_tol > 0.0) {
+        if self.cg_tol.is_nan() || self.cg_tol <= 0.0 {
             return bad("cg_tol", "must be > 0");
         }
         if self.path_steps < 2 {
@@ -199,7 +199,7 @@ impl ModelSettings {
         if self.repair_iters == 0 {
             return bad("repair_iters", "must be ≥ 1");
         }
-        if !(self.target_slack >= 0.0) {
+        if !self.target_slack.is_finite() || self.target_slack < 0.0 {
             return bad("target_slack", "must be ≥ 0");
         }
         if !(0.0..=1.0).contains(&self.repair_weight) {
@@ -212,7 +212,7 @@ impl ModelSettings {
             return bad("flag_threshold", "must be in [0, 1]");
         }
         if let FeatureMapKind::RandomFourier { dim, bandwidth } = self.feature_map {
-            if dim == 0 || dim > 4096 || !(bandwidth >= 0.0) || !bandwidth.is_finite() {
+            if dim == 0 || dim > 4096 || !bandwidth.is_finite() || bandwidth < 0.0 {
                 return bad(
                     "feature_map",
                     "random_fourier needs 1 ≤ dim ≤ 4096 and bandwidth ≥ 0",

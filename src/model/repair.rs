@@ -501,7 +501,7 @@ pub fn assess(
             "rows, labels and weights must have the same length".into(),
         ));
     }
-    if trusted.weight.iter().any(|w| !(w.is_finite() && *w >= 0.0)) || !(trusted.weight.sum() > 0.0)
+    if trusted.weight.iter().any(|w| !w.is_finite() || *w < 0.0) || trusted.weight.sum() <= 0.0
     {
         return Err(ModelError::Degenerate(
             "trusted weights must be finite, ≥ 0, and not all zero".into(),

@@ -256,8 +256,11 @@ struct SmallProblem {
     l2: f64,
     theta: Array1<f64>,
     dir: Array1<f64>,
-    prior: Option<(f64, Array1<f64>, Array1<f64>, Array2<f64>)>,
+    prior: Option<Prior>,
 }
+
+/// A quadratic prior: (scale, centre, gradient, Hessian).
+type Prior = (f64, Array1<f64>, Array1<f64>, Array2<f64>);
 
 impl SmallProblem {
     fn objective(&self) -> Objective<'_> {
@@ -893,6 +896,9 @@ fn huge_feature_magnitudes_give_finite_scores() {
 // ---------------------------------------------------------------------------------------------------------
 // 6. incremental (pool summary) against exact (pool re-solve) mode
 
+/// Delivered labels and the mask of flipped items, as the attack functions return them.
+type Flips = (Vec<usize>, Vec<bool>);
+
 #[test]
 fn incremental_and_exact_modes_agree_on_plant_batches() {
     // Issue 2's criterion: Spearman ≥ 0.99 on suspicion and the same top 20, on benchmark-like cases
@@ -914,7 +920,7 @@ fn incremental_and_exact_modes_agree_on_plant_batches() {
         y: &ty,
         weight: w.view(),
     };
-    let attacks: [(&str, (Vec<usize>, Vec<bool>)); 2] = [
+    let attacks: [(&str, Flips); 2] = [
         (
             "uniform 10%",
             scenario::uniform_flips(&by_clean, k, 0.10, 54),
