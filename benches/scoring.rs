@@ -46,13 +46,15 @@ fn workload() -> Workload {
     let (pool_x, pool_y) = plant.sample(10_000, 2);
     let (batch_x, clean_y) = plant.sample(1_000, 3);
     let (batch_y, _) = scenario::uniform_flips(&clean_y, k, 0.10, 4);
-    let standardizer =
-        Standardizer::fit(&[trusted_x.view(), pool_x.view()]).expect("standardise");
+    let standardizer = Standardizer::fit(&[trusted_x.view(), pool_x.view()]).expect("standardise");
     let fm = FeatureMap::new(standardizer.clone(), settings.feature_map, settings.seed)
         .expect("feature map");
     let (base, report) =
         PoolSummary::fit(&settings, fm, k, pool_x.view(), &pool_y).expect("pool summary");
-    assert!(report.converged, "pool summary fit did not converge: {report:?}");
+    assert!(
+        report.converged,
+        "pool summary fit did not converge: {report:?}"
+    );
     let trusted_w = Array1::ones(trusted_y.len());
     Workload {
         settings,

@@ -9,7 +9,8 @@
 //! * the **ingest** thread (`labelweir-ingest`) waits for dirty marks, the rescan timer or a quiet-period
 //!   deadline, lists folders, claims, reads, hashes and parses files, and sends jobs into
 //! * the **bounded channel** (`ingest.queue_capacity`) to the **scoring** thread (`labelweir-scoring`,
-//!   see [`crate::scoring`]), which scores, decides, persists and files each batch in turn;
+//!   see [`crate::scoring`]), which scores, decides and persists each batch in turn, and hands it to the
+//!   **filing** thread (`labelweir-filing`) that moves the file and writes the notice;
 //! * an occasional **refresh** thread rebuilds the pool summary exactly.
 //!
 //! Startup: config and folder checks (exit 78), store (74), reconciliation of `processing/` (batches

@@ -527,6 +527,25 @@ mod tests {
     use std::ffi::OsString;
     use std::os::unix::ffi::OsStringExt;
 
+    proptest::proptest! {
+        /// Any byte string as a name: escaping never panics and never lets a control or bidi character
+        /// through, and a name with one of them, a backslash, or invalid UTF-8 is reported unsafe.
+        #[test]
+        fn escaping_any_name_is_printable(bytes in proptest::collection::vec(proptest::num::u8::ANY, 1..80)) {
+            let name = OsString::from_vec(bytes.clone());
+            let e = escape_name(&name);
+            proptest::prop_assert!(!e.chars().any(|c| c.is_control() || is_bidi_or_format(c)));
+            let s = String::from_utf8(bytes);
+            let risky = match &s {
+                Err(_) => true,
+                Ok(s) => s.chars().any(|c| c.is_control() || is_bidi_or_format(c) || c == '\\'),
+            };
+            if risky {
+                proptest::prop_assert!(unsafe_name(&name).is_some());
+            }
+        }
+    }
+
     #[test]
     fn temporary_names_are_ignored() {
         for n in [

@@ -29,7 +29,7 @@
 //! Only these functions write trusted items (through [`Store::update_trusted`]); nothing on the ingest
 //! path can. Each item keeps its provenance (who verified it, when, from what source). After every change
 //! the rolling window ([`TrustedSettings`]) is applied, class balance is checked, and the most recently
-//! accepted batches are re-scored against the new set ([`rescore_recent`]); batches that would now be
+//! accepted batches are re-scored against the new set ([`rescan`]); batches that would now be
 //! quarantined are reported with the command that pulls them out of the pool (`quarantine withdraw`).
 
 use std::collections::{BTreeMap, HashMap, HashSet};

@@ -22,7 +22,10 @@
 //!   bands are flat and dark and only density, gloss and the impact sound tell the polymers apart;
 //! * **wet cardboard**: water absorbs around 1450 nm and darkens the colour, which moves it towards paper.
 //!
-//! The plant's physics is fixed; [`Plant::new`]'s seed sets small per-plant calibration offsets and gains of
+//! Readings are calibrated sensor outputs with additive noise (twice the nominal sensor noise, so that the
+//! classes overlap as they do on a real belt), so a physically non-negative quantity such as the magnetic
+//! response of a plastic bottle can read slightly below zero; about 10% of items touch a neighbour and show
+//! a blend of both. The plant's physics is fixed; [`Plant::new`]'s seed sets small per-plant calibration offsets and gains of
 //! the sensors, and every sampling call takes its own seed, so every draw is reproducible.
 //!
 //! # Attacks

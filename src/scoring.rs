@@ -12,7 +12,10 @@
 //! 3. **decide**: [`crate::policy::decide`] against the vendor's history;
 //! 4. **persist**: one flushed store transaction with the verdict, audit record, idempotency key, new
 //!    history and (accepted) the items in the pool; then the pool summary absorbs the new pool entries;
-//! 5. **notice**: [`crate::actions::settle`] files the batch and writes the vendor notice.
+//! 5. **notice**: hands the decided batch to the filing thread (`labelweir-filing`, bounded channel),
+//!    where [`crate::actions::settle`] files it and writes the vendor notice while the worker scores the
+//!    next batch. The verdict is already durable at hand-over; a filing interrupted by a crash is redone
+//!    at the next start.
 //!
 //! Between jobs (and every half second when idle) it picks up pool changes made by reviewers
 //! ([`ScoringHandle::pool_changed`]), trusted-set changes ([`ScoringHandle::trusted_changed`]), the result
@@ -325,16 +328,92 @@ pub fn spawn(
         tx,
         shared: worker.shared.clone(),
     };
+    // Filing (moving the file, the report, the notice: mostly waiting on fsync) runs on its own thread so
+    // it overlaps the next batch's scoring. The verdict is already durable when a batch is handed over.
+    let (ftx, frx) = std::sync::mpsc::sync_channel::<Filing>(8);
+    let filer = Filer {
+        ws: worker.ws.clone(),
+        config: worker.config.clone(),
+        store: worker.store.clone(),
+        metrics: worker.metrics.clone(),
+        observer: worker.observer.clone(),
+        shared: worker.shared.clone(),
+    };
+    let filer_thread = std::thread::Builder::new()
+        .name("labelweir-filing".into())
+        .spawn(move || filer.run(frx))?;
     let thread = std::thread::Builder::new()
         .name("labelweir-scoring".into())
-        .spawn(move || worker.run(rx))?;
+        .spawn(move || {
+            let r = worker.run(rx, &ftx);
+            // Closing the channel lets the filer drain what it holds and stop.
+            drop(ftx);
+            let f = filer_thread
+                .join()
+                .unwrap_or_else(|_| Err(ScoringError::Model("the filing thread panicked".into())));
+            r.and(f)
+        })?;
     Ok((handle, thread))
+}
+
+/// A decided batch on its way to its folder.
+struct Filing {
+    record: BatchRecord,
+    bytes: Option<Vec<u8>>,
+}
+
+/// The filing thread: [`crate::actions::settle`], then metrics, log line and observer.
+struct Filer {
+    ws: Workspace,
+    config: Arc<Config>,
+    store: Store,
+    metrics: Arc<Metrics>,
+    observer: Option<Observer>,
+    shared: Arc<Shared>,
+}
+
+impl Filer {
+    fn run(self, rx: Receiver<Filing>) -> Result<(), ScoringError> {
+        for f in rx {
+            let t = Instant::now();
+            let settled = crate::actions::settle(
+                &self.ws,
+                &self.config,
+                &self.store,
+                Some(&self.metrics),
+                &f.record,
+                f.bytes.as_deref(),
+            )?;
+            self.metrics.stage("notice", t.elapsed());
+            let outcome = settled.outcome.map_or("rejected", |o| o.as_str());
+            self.metrics.batch_outcome(
+                &settled.vendor,
+                outcome,
+                settled.items.unwrap_or(0) as u64,
+                settled.bytes.unwrap_or(0),
+                chrono::Utc::now().timestamp_millis() as f64 / 1000.0,
+            );
+            self.shared.settled.fetch_add(1, Ordering::SeqCst);
+            tracing::info!(
+                batch_id = %settled.id,
+                vendor = %settled.vendor,
+                sha256 = settled.sha256.as_deref().unwrap_or(""),
+                outcome,
+                stage = "notice",
+                "batch settled"
+            );
+            if let Some(obs) = &self.observer {
+                obs(&settled);
+            }
+        }
+        Ok(())
+    }
 }
 
 type Refreshed = Arc<Mutex<Option<Result<PoolState, String>>>>;
 
 impl Worker {
-    fn run(&mut self, rx: Receiver<Job>) -> Result<(), ScoringError> {
+    fn run(&mut self, rx: Receiver<Job>, filer: &SyncSender<Filing>) -> Result<(), ScoringError> {
         let mut last_save = Instant::now();
         let mut last_refresh = Instant::now();
         let refreshed: Refreshed = Arc::new(Mutex::new(None));
@@ -356,7 +435,7 @@ impl Worker {
                         // Abandon at a safe point: the file stays in processing/ and is redone at start.
                         break Ok(());
                     }
-                    if let Err(e) = self.process(job) {
+                    if let Err(e) = self.process(job, filer) {
                         break Err(e);
                     }
                 }
@@ -482,9 +561,9 @@ impl Worker {
         self.publish_pool();
     }
 
-    fn process(&mut self, job: Job) -> Result<(), ScoringError> {
+    fn process(&mut self, job: Job, filer: &SyncSender<Filing>) -> Result<(), ScoringError> {
         let Job { mut record, input } = job;
-        let settled = match input {
+        let decided = match input {
             JobInput::Rejected {
                 reason,
                 bytes,
@@ -504,7 +583,7 @@ impl Worker {
                     .store
                     .record_verdict(&record, audit, false, None, None, None)?;
                 self.metrics.stage("persist", t.elapsed());
-                self.file(rec, bytes.as_deref())?
+                self.file(rec, bytes)
             }
             JobInput::Parsed {
                 bytes,
@@ -528,52 +607,19 @@ impl Worker {
                         .store
                         .record_verdict(&record, audit, false, None, None, None)?;
                     self.metrics.stage("persist", t.elapsed());
-                    self.file(rec, Some(&bytes))?
+                    self.file(rec, Some(bytes))
                 } else {
                     self.score_and_decide(record, bytes, table, labels)?
                 }
             }
         };
-        let outcome = settled.outcome.map_or("rejected", |o| o.as_str());
-        let items = settled.items.unwrap_or(0) as u64;
-        self.metrics.batch_outcome(
-            &settled.vendor,
-            outcome,
-            items,
-            settled.bytes.unwrap_or(0),
-            chrono::Utc::now().timestamp_millis() as f64 / 1000.0,
-        );
-        self.shared.settled.fetch_add(1, Ordering::SeqCst);
-        tracing::info!(
-            batch_id = %settled.id,
-            vendor = %settled.vendor,
-            sha256 = settled.sha256.as_deref().unwrap_or(""),
-            outcome,
-            stage = "notice",
-            "batch settled"
-        );
-        if let Some(obs) = &self.observer {
-            obs(&settled);
-        }
-        Ok(())
+        filer
+            .send(decided)
+            .map_err(|_| ScoringError::Model("the filing thread stopped".into()))
     }
 
-    fn file(
-        &mut self,
-        rec: BatchRecord,
-        bytes: Option<&[u8]>,
-    ) -> Result<BatchRecord, ScoringError> {
-        let t = Instant::now();
-        let settled = crate::actions::settle(
-            &self.ws,
-            &self.config,
-            &self.store,
-            Some(&self.metrics),
-            &rec,
-            bytes,
-        )?;
-        self.metrics.stage("notice", t.elapsed());
-        Ok(settled)
+    fn file(&mut self, record: BatchRecord, bytes: Option<Vec<u8>>) -> Filing {
+        Filing { record, bytes }
     }
 
     fn score_and_decide(
@@ -582,7 +628,7 @@ impl Worker {
         bytes: Vec<u8>,
         table: Table,
         labels: Vec<usize>,
-    ) -> Result<BatchRecord, ScoringError> {
+    ) -> Result<Filing, ScoringError> {
         let k = self.meta.classes.len();
         let t_score = Instant::now();
         let assessed = catch_unwind(AssertUnwindSafe(|| {
@@ -715,6 +761,6 @@ impl Worker {
             self.catch_up_logged();
         }
         self.metrics.stage("persist", t_persist.elapsed());
-        self.file(rec, Some(&bytes))
+        Ok(self.file(rec, Some(bytes)))
     }
 }

@@ -53,14 +53,14 @@ pub struct Args {
     /// Print one JSON document instead of the readable report.
     #[arg(long)]
     pub json: bool,
-    /// Configuration file: its [model] section sets the engine, its [policy] section the verdict, its
-    /// [schema] the default id and label column names. Without it, the documented defaults apply.
+    /// Configuration file: its `[model]` section sets the engine, its `[policy]` section the verdict, its
+    /// `[schema]` the default id and label column names. Without it, the documented defaults apply.
     #[arg(long, value_name = "FILE")]
     pub config: Option<PathBuf>,
-    /// Name of the item-id column [default: id, or [schema] id_column of --config].
+    /// Name of the item-id column (default: `id`, or `[schema] id_column` of --config).
     #[arg(long, value_name = "C")]
     pub id_column: Option<String>,
-    /// Name of the label column [default: label, or [schema] label_column of --config].
+    /// Name of the label column (default: `label`, or `[schema] label_column` of --config).
     #[arg(long, value_name = "C")]
     pub label_column: Option<String>,
     /// How the pool enters: `incremental` summarises it first (gradient and Hessian of its loss at its

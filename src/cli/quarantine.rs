@@ -262,7 +262,7 @@ fn own_uid() -> Option<u32> {
 }
 
 /// Run a review request: through the running daemon's admin socket when it answers, else on the store
-/// opened directly (waiting up to 5 s while another review command holds it).
+/// opened directly (waiting up to 15 s while another review command holds it).
 pub fn dispatch(dir: &Path, req: Request) -> anyhow::Result<serde_json::Value> {
     let ws = Workspace::new(dir);
     if !ws.config_file().is_file() {
@@ -275,7 +275,7 @@ pub fn dispatch(dir: &Path, req: Request) -> anyhow::Result<serde_json::Value> {
         )
         .into());
     }
-    let deadline = Instant::now() + Duration::from_secs(5);
+    let deadline = Instant::now() + Duration::from_secs(15);
     loop {
         match admin::call(&ws, &req) {
             Ok(Some(r)) => return r.map_err(review_failure),

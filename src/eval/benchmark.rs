@@ -542,7 +542,10 @@ fn run_case(
     let mut methods = Vec::new();
     if bugs > 0 {
         let truth = &split.batch_y;
-        let proposed: Vec<usize> = a.items.iter().map(|i| i.proposed_label).collect();
+        // The relabel a reviewer is offered for a top-k suspect: the proposed label once the item is
+        // flagged, else the engine's best alternative class (`alternative_label` equals `proposed_label`
+        // for every flagged item).
+        let proposed: Vec<usize> = a.items.iter().map(|i| i.alternative_label).collect();
         let col =
             |f: fn(&crate::model::ItemScore) -> f64| a.items.iter().map(f).collect::<Vec<_>>();
         methods.push(method_score(
@@ -744,7 +747,10 @@ pub fn run(opts: &BenchOptions, mut progress: impl FnMut(&str)) -> Result<BenchR
                     seed ^ (ai as u64 * 0x1F1F),
                     &case,
                 )?;
-                if rep == 0 && attack == (Attack::Uniform { rate: 0.10 }) {
+                if rep == 0
+                    && (attack == Attack::Uniform { rate: 0.10 }
+                        || attack == Attack::Region { rate: 0.10 })
+                {
                     agreement.push(mode_agreement(
                         settings,
                         &st,
@@ -1014,8 +1020,9 @@ fn check_targets(
     for a in agreement {
         out.push(TargetCheck {
             target: format!(
-                "{}: incremental vs exact Spearman ≥ 0.99 and same top-20",
-                a.source
+                "{}: {} incremental vs exact Spearman ≥ 0.99 and same top-20",
+                a.source,
+                a.attack.label()
             ),
             met: a.spearman.is_some_and(|s| s >= 0.99) && a.top20_shared == a.top20_of,
             measured: format!(

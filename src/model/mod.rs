@@ -103,7 +103,7 @@ pub struct ModelSettings {
     pub min_reference_pool: usize,
     /// Wall-clock budget for one assessment, in milliseconds (every solve is also bounded by iterations).
     pub time_budget_ms: u64,
-    /// Items whose suspicion reaches this get the best alternative class as their proposed label.
+    /// Items whose suspicion reaches this are flagged: their proposed label becomes the best alternative class.
     pub flag_threshold: f64,
 }
 
@@ -127,7 +127,7 @@ impl Default for ModelSettings {
             cv_folds: 5,
             min_reference_pool: 200,
             time_budget_ms: 30_000,
-            flag_threshold: 0.25,
+            flag_threshold: 0.5,
         }
     }
 }

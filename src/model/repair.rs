@@ -55,8 +55,17 @@ pub struct ItemScore {
     pub suspicion: f64,
     /// Proposed label (class index); equals `label` when the engine sees no reason to change it.
     pub proposed_label: usize,
-    /// Confidence in the proposed label, in `[0, 1]`.
+    /// Confidence in the proposed label, in `[0, 1]`: `suspicion × alternative_share` for a proposed change,
+    /// `1 − suspicion` when the given label is kept.
     pub confidence: f64,
+    /// The most likely other class (what a reviewer would relabel the item to if its label is wrong),
+    /// whether or not the suspicion reaches the flag threshold.
+    #[serde(default)]
+    pub alternative_label: usize,
+    /// `P(alternative | the given label is wrong)` under the engine's blend of repaired labels and the
+    /// reference model.
+    #[serde(default)]
+    pub alternative_share: f64,
     /// Label mass the repair moves away from the given label at the repair-cost point of the path.
     pub repair_mass: f64,
     /// Repair-path signal in `[0, 1]`: moved mass averaged over the whole penalty path (early movers ≈ 1).
@@ -501,8 +510,7 @@ pub fn assess(
             "rows, labels and weights must have the same length".into(),
         ));
     }
-    if trusted.weight.iter().any(|w| !w.is_finite() || *w < 0.0) || trusted.weight.sum() <= 0.0
-    {
+    if trusted.weight.iter().any(|w| !w.is_finite() || *w < 0.0) || trusted.weight.sum() <= 0.0 {
         return Err(ModelError::Degenerate(
             "trusted weights must be finite, ≥ 0, and not all zero".into(),
         ));
@@ -707,8 +715,12 @@ pub fn assess(
     let mut path_labels: Vec<Array2<f64>> = Vec::with_capacity(steps);
     let mut step_size = f64::NAN;
     let mut budget_exhausted = false;
+    let mut gammas = gammas;
+    let mut relin_at = relin_at;
     if gamma_max > 0.0 {
-        for (l, &gamma) in gammas.iter().enumerate() {
+        let mut l = 0;
+        while l < gammas.len() {
+            let gamma = gammas[l];
             if Instant::now() >= deadline {
                 budget_exhausted = true;
                 break;
@@ -736,8 +748,24 @@ pub fn assess(
             moved_path.push(mv);
             thetas.push(theta_l);
             path_labels.push(y.clone());
+            let reached = path_losses.iter().any(|&v| v <= target) || phi_with <= target;
+            if l + 1 == steps && !reached {
+                // The path ended above the target: continue it as far again on the same log scale (to
+                // γ_max·r²), re-linearising first, and stop at the first step that meets the target.
+                let last = gammas[steps - 1];
+                gammas.extend(
+                    (1..=steps)
+                        .map(|j| last * settings.path_min_ratio.powf(j as f64 / steps as f64)),
+                );
+                relin_at.push(steps);
+            }
+            if l >= steps && reached {
+                break;
+            }
+            l += 1;
         }
     }
+    gammas.truncate(path_costs.len().max(steps.min(gammas.len())));
     // Verify the crossing with an exact re-solve where the linearised path first meets the target.
     let mut crossing = path_losses.iter().position(|&v| v <= target);
     if let Some(l) = crossing {
@@ -819,15 +847,17 @@ pub fn assess(
 
     // ---- 5. items ---------------------------------------------------------------------------------------
     let w = settings.repair_weight;
-    let n_steps = moved_path.len().max(1) as f64;
+    // The path score averages over the main path only (the extension, when there is one, is a search for
+    // the target, not part of the ranking).
+    let main_path = &moved_path[..moved_path.len().min(steps)];
+    let n_steps = main_path.len().max(1) as f64;
     let items = (0..n_b)
         .map(|i| {
             let given = batch_y[i];
             // Path score: half the moved mass averaged over the path, half the item's first-order entry point
             // on the same log-γ scale (1 for the first item to move, 0 at or below the path's last γ), so
             // items the path never moves are still ordered by how close they came.
-            let moved_avg = moved_path.iter().map(|mv| mv[i]).sum::<f64>()
-                / if moved_path.is_empty() { 1.0 } else { n_steps };
+            let moved_avg = main_path.iter().map(|mv| mv[i]).sum::<f64>() / n_steps;
             let entry_score = if entry[i] > 0.0 && gamma_max > 0.0 {
                 (1.0 - (gamma_max / entry[i]).ln() / (1.0 / settings.path_min_ratio).ln())
                     .clamp(0.0, 1.0)
@@ -840,15 +870,17 @@ pub fn assess(
             let pi: Vec<f64> = (0..k)
                 .map(|c| w * y[[i, c]] + (1.0 - w) * p_ref[[i, c]])
                 .collect();
+            // Best alternative class under π = w·Y_deep + (1−w)·p_ref, and its share of the non-given mass:
+            // P(alternative | the given label is wrong). The proposed label is the alternative once the
+            // suspicion reaches `flag_threshold`, otherwise the given label.
+            let alt = argmax((0..k).map(|c| if c == given { f64::NEG_INFINITY } else { pi[c] }));
+            let rest: f64 = (0..k).filter(|&c| c != given).map(|c| pi[c]).sum();
+            let share = if rest > 0.0 {
+                pi[alt] / rest
+            } else {
+                1.0 / (k - 1) as f64
+            };
             let (proposed_label, confidence) = if suspicion >= settings.flag_threshold {
-                let alt =
-                    argmax((0..k).map(|c| if c == given { f64::NEG_INFINITY } else { pi[c] }));
-                let rest: f64 = (0..k).filter(|&c| c != given).map(|c| pi[c]).sum();
-                let share = if rest > 0.0 {
-                    pi[alt] / rest
-                } else {
-                    1.0 / (k - 1) as f64
-                };
                 (alt, (suspicion * share).clamp(0.0, 1.0))
             } else {
                 (given, 1.0 - suspicion)
@@ -859,6 +891,8 @@ pub fn assess(
                 suspicion,
                 proposed_label,
                 confidence,
+                alternative_label: alt,
+                alternative_share: share.clamp(0.0, 1.0),
                 repair_mass: repair_mass[i],
                 path_score,
                 reference_disagreement: disagreement,
