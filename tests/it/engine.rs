@@ -1048,11 +1048,17 @@ fn bench_engine_quick_json_reports_every_attack_and_baseline() {
 }
 
 #[test]
-fn bench_daemon_says_where_it_lives() {
+fn bench_daemon_measures_the_whole_path() {
+    // A tiny run of the throughput command: it must report a rate and every stage (the numbers are
+    // measured, not asserted).
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_labelweir"))
-        .args(["bench", "daemon"])
+        .args(["bench", "daemon", "--batches", "3", "--items", "40", "--pool", "300"])
         .output()
         .expect("run labelweir");
-    assert_eq!(out.status.code(), Some(2));
-    assert!(String::from_utf8_lossy(&out.stderr).contains("daemon module"));
+    let text = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(out.status.code(), Some(0), "{text}\n{}", String::from_utf8_lossy(&out.stderr));
+    assert!(text.contains("items/s"), "{text}");
+    for stage in ["claim", "parse", "score", "decide", "persist", "notice"] {
+        assert!(text.contains(stage), "stage {stage} missing:\n{text}");
+    }
 }
