@@ -38,6 +38,26 @@ pub const STAGES: [&str; 6] = ["claim", "parse", "score", "decide", "persist", "
 pub const RESCAN_REASONS: [&str; 5] = ["startup", "timer", "event", "overflow", "error"];
 /// Filesystems whose free space is reported.
 pub const MOUNTS: [&str; 2] = ["inbox", "state"];
+/// Every `(stage, kind)` pair `labelweir_errors_total` is incremented with (pre-created at zero so alert
+/// rules see a series before the first error).
+pub const ERROR_KINDS: [(&str, &str); 6] = [
+    ("claim", "list"),
+    ("claim", "rename"),
+    ("persist", "pool_refresh"),
+    ("persist", "pool_update"),
+    ("persist", "pool_update_panic"),
+    ("score", "engine"),
+];
+/// Every store operation `labelweir_store_errors_total` counts (the transactions in `store.rs`).
+pub const STORE_OPS: [&str; 7] = [
+    "initialise",
+    "record claim",
+    "forget claim",
+    "transition",
+    "append audit",
+    "update trusted",
+    "write history",
+];
 /// Buckets of the repair-cost histogram (fractions of label mass).
 pub const REPAIR_COST_BUCKETS: [f64; 8] = [0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0];
 
@@ -326,6 +346,12 @@ impl Metrics {
         }
         for mt in MOUNTS {
             m.free_bytes.with_label_values(&[mt]);
+        }
+        for (stage, kind) in ERROR_KINDS {
+            m.errors.with_label_values(&[stage, kind]);
+        }
+        for op in STORE_OPS {
+            m.store_errors.with_label_values(&[op]);
         }
         m.config_reload_ok.set(1);
         Ok(m)

@@ -1156,6 +1156,26 @@ pub struct DecisionReport {
     pub warnings: Vec<String>,
 }
 
+impl DecisionReport {
+    /// A report for a decision just recorded on `settled`, with nothing moved or written yet.
+    fn new(settled: &BatchRecord, by: &str, reason: &str) -> Self {
+        Self {
+            batch_id: settled.id.clone(),
+            vendor: settled.vendor.clone(),
+            state: settled.state,
+            by: by.to_string(),
+            reason: reason.to_string(),
+            items_into_pool: 0,
+            excluded: Vec::new(),
+            relabeled: Vec::new(),
+            promoted: Vec::new(),
+            file: None,
+            notices: Vec::new(),
+            warnings: Vec::new(),
+        }
+    }
+}
+
 fn require_reason(reason: &str) -> Result<(), ReviewError> {
     if reason.trim().is_empty() {
         return Err(ReviewError::Invalid(
@@ -1321,20 +1341,10 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         |_| {},
     )?;
     env.hooks.pool_changed();
-    let mut report = DecisionReport {
-        batch_id: settled.id.clone(),
-        vendor: settled.vendor.clone(),
-        state: settled.state,
-        by: req.by.clone(),
-        reason: req.reason.clone(),
-        items_into_pool: n_pool,
-        excluded: excluded_ids.clone(),
-        relabeled: relabeled.clone(),
-        promoted: Vec::new(),
-        file: None,
-        notices: Vec::new(),
-        warnings: Vec::new(),
-    };
+    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
+    report.items_into_pool = n_pool;
+    report.excluded = excluded_ids.clone();
+    report.relabeled = relabeled.clone();
     // Promotion: the verified items join the trusted set with their final labels.
     if !promote.is_empty() {
         let now = Utc::now();
@@ -1484,20 +1494,7 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
         vec![audit],
         |_| {},
     )?;
-    let mut report = DecisionReport {
-        batch_id: settled.id.clone(),
-        vendor: settled.vendor.clone(),
-        state: settled.state,
-        by: req.by.clone(),
-        reason: req.reason.clone(),
-        items_into_pool: 0,
-        excluded: Vec::new(),
-        relabeled: Vec::new(),
-        promoted: Vec::new(),
-        file: None,
-        notices: Vec::new(),
-        warnings: Vec::new(),
-    };
+    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
     let mut n = review_notice(
         &settled,
         NoticeVerdict::Rejected,
@@ -1553,20 +1550,7 @@ pub fn withdraw(env: &ReviewEnv<'_>, req: &WithdrawRequest) -> Result<DecisionRe
         |_| {},
     )?;
     env.hooks.pool_changed();
-    let mut report = DecisionReport {
-        batch_id: settled.id.clone(),
-        vendor: settled.vendor.clone(),
-        state: settled.state,
-        by: req.by.clone(),
-        reason: req.reason.clone(),
-        items_into_pool: 0,
-        excluded: Vec::new(),
-        relabeled: Vec::new(),
-        promoted: Vec::new(),
-        file: None,
-        notices: Vec::new(),
-        warnings: Vec::new(),
-    };
+    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
     let mut n = review_notice(
         &settled,
         NoticeVerdict::Withdrawn,

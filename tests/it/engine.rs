@@ -1052,11 +1052,25 @@ fn bench_daemon_measures_the_whole_path() {
     // A tiny run of the throughput command: it must report a rate and every stage (the numbers are
     // measured, not asserted).
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_labelweir"))
-        .args(["bench", "daemon", "--batches", "3", "--items", "40", "--pool", "300"])
+        .args([
+            "bench",
+            "daemon",
+            "--batches",
+            "3",
+            "--items",
+            "40",
+            "--pool",
+            "300",
+        ])
         .output()
         .expect("run labelweir");
     let text = String::from_utf8_lossy(&out.stdout);
-    assert_eq!(out.status.code(), Some(0), "{text}\n{}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{text}\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     assert!(text.contains("items/s"), "{text}");
     for stage in ["claim", "parse", "score", "decide", "persist", "notice"] {
         assert!(text.contains(stage), "stage {stage} missing:\n{text}");
