@@ -436,6 +436,21 @@ pub fn train_newton(
     max_iters: u64,
     deadline: Instant,
 ) -> (Array1<f64>, TrainReport) {
+    let (theta, report, _) = train_newton_factored(obj, init, tol, max_iters, deadline);
+    (theta, report)
+}
+
+/// [`train_newton`], also returning the Cholesky factor of the last Hessian it assembled (at the iterate
+/// one Newton step before the returned one; at a converged solve the two agree to second order), so a
+/// caller that needs `H⁻¹` at the optimum need not assemble it again. `None` if no step was taken.
+pub fn train_newton_factored(
+    obj: &Objective<'_>,
+    init: Array1<f64>,
+    tol: f64,
+    max_iters: u64,
+    deadline: Instant,
+) -> (Array1<f64>, TrainReport, Option<super::linalg::Cholesky>) {
+    let mut last_factor = None;
     let mut theta = init;
     let (mut f, mut g, mut prob) = obj.value_grad(&theta);
     let mut iterations = 0;
@@ -455,7 +470,9 @@ pub fn train_newton(
         }
         iterations += 1;
         let h = obj.hessian(prob.view());
-        let newton_dir = super::linalg::Cholesky::factor(h).map(|c| -c.solve(&g));
+        let factor = super::linalg::Cholesky::factor(h);
+        let newton_dir = factor.as_ref().map(|c| -c.solve(&g));
+        last_factor = factor;
         // Newton direction first; if its line search fails (e.g. round-off along the nearly flat intercept
         // direction), a steepest-descent step, which always descends.
         let mut accepted = false;
@@ -497,6 +514,7 @@ pub fn train_newton(
             objective: f,
             stopped,
         },
+        last_factor,
     )
 }
 
@@ -604,8 +622,20 @@ pub fn solve(
     init: Array1<f64>,
     deadline: Instant,
 ) -> (Array1<f64>, TrainReport) {
+    let (theta, report, _) = solve_factored(settings, obj, init, deadline);
+    (theta, report)
+}
+
+/// [`solve`], also returning the last Hessian factor when Newton's method ran (see
+/// [`train_newton_factored`]).
+pub fn solve_factored(
+    settings: &super::ModelSettings,
+    obj: &Objective<'_>,
+    init: Array1<f64>,
+    deadline: Instant,
+) -> (Array1<f64>, TrainReport, Option<super::linalg::Cholesky>) {
     if prefer_newton(settings, obj) {
-        train_newton(
+        train_newton_factored(
             obj,
             init,
             settings.inner_tol,
@@ -614,13 +644,14 @@ pub fn solve(
         )
     } else {
         let left = deadline.saturating_duration_since(Instant::now());
-        train(
+        let (theta, report) = train(
             obj,
             init,
             settings.inner_tol,
             settings.inner_max_iters,
             left,
-        )
+        );
+        (theta, report, None)
     }
 }
 

@@ -12,7 +12,7 @@ use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
 use super::learner::{
-    one_hot, predict_proba, solve, trusted_loss, vstack, weights_view, Objective,
+    one_hot, predict_proba, solve, solve_factored, trusted_loss, vstack, weights_view, Objective,
 };
 use super::linalg::{conjugate_gradient, project_simplex, Cholesky};
 use super::{check_labels, FeatureMap, ModelError, ModelSettings, PoolSummary, Standardizer};
@@ -303,7 +303,7 @@ impl Ctx<'_, '_> {
     ) -> Linearisation {
         let y_all = self.inner.labels(y_batch.view());
         let obj = self.inner.objective(&y_all);
-        let (theta, rep) = solve(self.settings, &obj, init, deadline);
+        let (theta, rep, factor) = solve_factored(self.settings, &obj, init, deadline);
         {
             let mut c = self.conv.borrow_mut();
             c.inner_iterations += rep.iterations;
@@ -318,8 +318,11 @@ impl Ctx<'_, '_> {
         let (_, _, prob) = obj.value_grad(&theta);
         let m = theta.len();
         let dense_ok = m <= self.settings.dense_max_params;
-        let solver = if dense_ok {
-            match Cholesky::factor(obj.hessian(prob.view())) {
+        // Newton's last factor is H at the iterate one step before θ (equal to second order at a converged
+        // solve): reuse it rather than assembling the Hessian again.
+        let solver = match (dense_ok, factor) {
+            (true, Some(c)) if rep.converged => HessianSolver::Dense(c),
+            (true, _) => match Cholesky::factor(obj.hessian(prob.view())) {
                 Some(c) => {
                     self.conv.borrow_mut().linear_iterations += 1;
                     HessianSolver::Dense(c)
@@ -330,9 +333,8 @@ impl Ctx<'_, '_> {
                     );
                     HessianSolver::Cg { prob }
                 }
-            }
-        } else {
-            HessianSolver::Cg { prob }
+            },
+            (false, _) => HessianSolver::Cg { prob },
         };
         Linearisation {
             y_anchor: y_batch.clone(),
