@@ -14,8 +14,8 @@ use crate::store::{AuditRecord, Store, TrustedItem, WorkspaceMeta, RECORD_VERSIO
 /// Create a workspace: the config file, a drop folder per vendor, the daemon's folders, and the store
 /// seeded with the trusted set.
 ///
-/// Layout: DIR/labelweir.toml, DIR/inbox/<vendor>/, DIR/processing/, DIR/accepted/, DIR/quarantine/,
-/// DIR/rejected/, DIR/notices/<vendor>/, DIR/state/ (the store). The trusted set's feature columns become
+/// Layout: `DIR/labelweir.toml`, `DIR/inbox/<vendor>/`, `DIR/processing/`, `DIR/accepted/`, `DIR/quarantine/`,
+/// `DIR/rejected/`, `DIR/notices/<vendor>/`, `DIR/state/` (the store). The trusted set's feature columns become
 /// the workspace's schema and its labels the classes; features are standardised on it.
 #[derive(Debug, clap::Args)]
 pub struct Args {
@@ -24,7 +24,7 @@ pub struct Args {
     /// Trusted (expert-verified) items: CSV or JSON Lines with id, label and feature columns.
     #[arg(long)]
     pub trusted: PathBuf,
-    /// A contracted vendor (repeat for each); its drop folder is inbox/<vendor>/.
+    /// A contracted vendor (repeat for each); its drop folder is `inbox/<vendor>/`.
     #[arg(long = "vendor", required = true)]
     pub vendors: Vec<String>,
     /// Who verified the trusted items (recorded as their provenance). Default: the OS user.
