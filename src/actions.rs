@@ -5,12 +5,14 @@
 //! [`settle`] runs; [`settle`] then
 //!
 //! 1. puts the bytes in the terminal folder: the in-memory copy the daemon hashed and parsed is written
-//!    as a new daemon-owned file (temp → fsync → rename → fsync folder), then the claimed original is
-//!    unlinked from `processing/`; without a copy (after a restart, or for entries that were never read)
-//!    the entry itself is renamed. Quarantined files are made read-only (`0440`); symbolic links are removed
-//!    (their target is never followed; the report says what it was);
+//!    as a new daemon-owned file (temp → fsync → rename); without a copy (after a restart, or for entries
+//!    that were never read) the entry itself is renamed. Quarantined files are made read-only (`0440`);
+//!    symbolic links are removed (their target is never followed; the report says what it was);
 //! 2. writes `<batch id>.report.json` beside it (quarantine and rejected): hash, vendor, scores, top
-//!    suspects with proposed labels, reasons, timestamps;
+//!    suspects with proposed labels, reasons, timestamps. The terminal folder is fsynced **once** for
+//!    steps 1 and 2, and only then is the claimed original unlinked from `processing/` (then fsynced), so
+//!    after a crash the bytes are in `processing/`, or in the terminal folder, or durably in both (the
+//!    redo then unlinks the original) — never in neither;
 //! 3. writes the vendor notice into `notices/<vendor>/` through [`crate::notice`] (atomic; every notice says
 //!    that a flag is a suspicion pending review, not proof);
 //! 4. records the terminal state with an audit record naming the folder and the notice files (flushed).
@@ -60,26 +62,51 @@ pub fn write_atomic_mode(
     bytes: &[u8],
     mode: u32,
 ) -> std::io::Result<PathBuf> {
-    let final_path = dir.join(name);
-    let tmp = dir.join(format!(".{name}.tmp-{}", std::process::id()));
-    // A read-only leftover from an interrupted attempt cannot be opened for writing: remove it first.
-    let _ = fs::remove_file(&tmp);
-    {
-        let mut f = fs::OpenOptions::new()
+    let mut written = write_atomic_mode_all(dir, &[(name, bytes)], mode)?;
+    Ok(written.remove(0))
+}
+
+/// Write several files into `dir` with the given mode, each atomically, with **one** fsync of the folder:
+/// each goes to a temporary name and is fsynced, then each is renamed over its final name, then the folder
+/// is fsynced once (which makes every rename in it durable). Returns the final paths.
+pub fn write_atomic_mode_all(
+    dir: &Path,
+    files: &[(&str, &[u8])],
+    mode: u32,
+) -> std::io::Result<Vec<PathBuf>> {
+    let tmp_of = |name: &str| dir.join(format!(".{name}.tmp-{}", std::process::id()));
+    for (name, bytes) in files {
+        let tmp = tmp_of(name);
+        // A read-only leftover from an interrupted attempt cannot be opened for writing: remove it first.
+        let _ = fs::remove_file(&tmp);
+        let written = fs::OpenOptions::new()
             .write(true)
             .create(true)
             .truncate(true)
-            .open(&tmp)?;
-        f.write_all(bytes)?;
-        f.set_permissions(fs::Permissions::from_mode(mode))?;
-        f.sync_all()?;
+            .open(&tmp)
+            .and_then(|mut f| {
+                f.write_all(bytes)?;
+                f.set_permissions(fs::Permissions::from_mode(mode))?;
+                f.sync_all()
+            });
+        if let Err(e) = written {
+            let _ = fs::remove_file(&tmp);
+            return Err(e);
+        }
     }
-    if let Err(e) = fs::rename(&tmp, &final_path) {
-        let _ = fs::remove_file(&tmp);
-        return Err(e);
+    let mut out = Vec::with_capacity(files.len());
+    for (i, (name, _)) in files.iter().enumerate() {
+        let final_path = dir.join(name);
+        if let Err(e) = fs::rename(tmp_of(name), &final_path) {
+            for (name, _) in &files[i..] {
+                let _ = fs::remove_file(tmp_of(name));
+            }
+            return Err(e);
+        }
+        out.push(final_path);
     }
     crate::ingest::sync_dir(dir)?;
-    Ok(final_path)
+    Ok(out)
 }
 
 /// Where a batch's file lives once settled: `<folder>/<file_name>`.
@@ -94,11 +121,16 @@ pub fn report_name(record: &BatchRecord) -> String {
     format!("{}.report.json", record.id)
 }
 
-fn move_file(
+/// Steps 1 and 2: the bytes (or the entry itself) and, for quarantine and rejected, the report go into
+/// the terminal folder, which is fsynced once for both; only then is the claimed original unlinked and
+/// `processing/` fsynced. Idempotent: an entry already gone from `processing/` was moved by an earlier
+/// attempt (the report is rewritten, with the same content).
+fn file_into_folder(
     ws: &Workspace,
     record: &BatchRecord,
     outcome: Outcome,
     bytes: Option<&[u8]>,
+    report: Option<&[u8]>,
 ) -> Result<(), ActionError> {
     let src_dir = ws.processing();
     let src = src_dir.join(&record.file_name);
@@ -108,29 +140,30 @@ fn move_file(
     } else {
         0o640
     };
-    let meta = fs::symlink_metadata(&src);
-    match meta {
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(()), // already moved
+    let report_name = report_name(record);
+    let mut writes: Vec<(&str, &[u8])> = Vec::with_capacity(2);
+    // What to do with the claimed entry once the terminal folder is durable.
+    let mut unlink_src = false;
+    let mut remove_dir = false;
+    let mut touched_src_dir = true;
+    match fs::symlink_metadata(&src) {
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => touched_src_dir = false, // already moved
         Err(e) => return Err(io_err("stat", &src)(e)),
         Ok(m) if m.file_type().is_symlink() => {
             // Never keep a link that points anywhere: remove it; the report records that it was one.
             fs::remove_file(&src).map_err(io_err("remove symlink", &src))?;
         }
         Ok(m) if m.file_type().is_file() && bytes.is_some() => {
-            let b = bytes.unwrap_or_default();
-            write_atomic_mode(&dst_dir, &record.file_name, b, mode)
-                .map_err(io_err("write", &dst_dir))?;
-            fs::remove_file(&src).map_err(io_err("remove", &src))?;
+            writes.push((record.file_name.as_str(), bytes.unwrap_or_default()));
+            unlink_src = true;
         }
         Ok(m) => {
             let dst = dst_dir.join(&record.file_name);
             if fs::symlink_metadata(&dst).is_ok() {
-                // A previous attempt got this far; the destination is complete.
-                if m.is_dir() {
-                    fs::remove_dir_all(&src).map_err(io_err("remove", &src))?;
-                } else {
-                    fs::remove_file(&src).map_err(io_err("remove", &src))?;
-                }
+                // A previous attempt got this far; the destination is complete (its folder is fsynced
+                // below before the original goes).
+                unlink_src = !m.is_dir();
+                remove_dir = m.is_dir();
             } else {
                 fs::rename(&src, &dst).map_err(io_err("move", &src))?;
                 if m.is_file() {
@@ -138,10 +171,25 @@ fn move_file(
                         .map_err(io_err("chmod", &dst))?;
                 }
             }
-            crate::ingest::sync_dir(&dst_dir).map_err(io_err("fsync", &dst_dir))?;
         }
     }
-    crate::ingest::sync_dir(&src_dir).map_err(io_err("fsync", &src_dir))?;
+    if let Some(r) = report {
+        writes.push((report_name.as_str(), r));
+    }
+    // One fsync of the terminal folder covers the renamed entry, the copied bytes and the report.
+    if !writes.is_empty() {
+        write_atomic_mode_all(&dst_dir, &writes, mode).map_err(io_err("write", &dst_dir))?;
+    } else if touched_src_dir {
+        crate::ingest::sync_dir(&dst_dir).map_err(io_err("fsync", &dst_dir))?;
+    }
+    if remove_dir {
+        fs::remove_dir_all(&src).map_err(io_err("remove", &src))?;
+    } else if unlink_src {
+        fs::remove_file(&src).map_err(io_err("remove", &src))?;
+    }
+    if touched_src_dir {
+        crate::ingest::sync_dir(&src_dir).map_err(io_err("fsync", &src_dir))?;
+    }
     Ok(())
 }
 
@@ -219,9 +267,7 @@ pub fn settle(
     let Some(outcome) = record.outcome else {
         return Ok(record.clone());
     };
-    move_file(ws, record, outcome, bytes)?;
-    if outcome != Outcome::Accepted {
-        let dir = ws.folder(outcome.folder());
+    let report = (outcome != Outcome::Accepted).then(|| {
         let mut report = serde_json::to_value(record).unwrap_or_default();
         if let Some(obj) = report.as_object_mut() {
             obj.insert(
@@ -229,15 +275,9 @@ pub fn settle(
                 serde_json::Value::String(notice::SUSPICION_SENTENCE.to_string()),
             );
         }
-        let text = serde_json::to_vec_pretty(&report).unwrap_or_default();
-        let mode = if outcome == Outcome::Quarantined {
-            0o440
-        } else {
-            0o640
-        };
-        write_atomic_mode(&dir, &report_name(record), &text, mode)
-            .map_err(io_err("write report", &dir))?;
-    }
+        serde_json::to_vec_pretty(&report).unwrap_or_default()
+    });
+    file_into_folder(ws, record, outcome, bytes, report.as_deref())?;
     let mut written = Vec::new();
     if let Some(n) = notice_for(record) {
         let dir = ws.notices(&record.vendor);

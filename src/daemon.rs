@@ -927,6 +927,9 @@ pub mod throughput {
         pub seed: u64,
         /// Scratch folder (a fresh sub-folder is created and removed); default: the system temp dir.
         pub scratch: Option<std::path::PathBuf>,
+        /// Engine settings for the run (default: the workspace defaults). A cheaper setting shows how the
+        /// pipeline behaves around a faster scoring stage.
+        pub model: Option<crate::model::ModelSettings>,
     }
 
     impl Default for Options {
@@ -938,6 +941,7 @@ pub mod throughput {
                 pool: 100_000,
                 seed: 3,
                 scratch: None,
+                model: None,
             }
         }
     }
@@ -951,10 +955,21 @@ pub mod throughput {
         pub setup_seconds: f64,
         /// Seconds from dropping the batches to the last verdict.
         pub wall_seconds: f64,
-        /// Items per second through the whole path.
+        /// Items per second through the whole path (first claim to last verdict).
         pub items_per_second: f64,
-        /// Mean seconds per batch for each stage (claim, parse, score, decide, persist, notice).
+        /// Items per second once the pipeline is full: from the verdict of batch `warmup` to the last one,
+        /// counting the items settled in between.
+        pub steady_items_per_second: f64,
+        /// Batches left out of the steady rate (pipeline fill).
+        pub warmup: usize,
+        /// What scoring alone would allow: items per batch / mean `score` seconds.
+        pub scoring_bound_items_per_second: f64,
+        /// Mean seconds per batch for each stage ([`crate::metrics::STAGES`]).
         pub stage_mean_seconds: Vec<(String, f64)>,
+        /// CPU milliseconds per batch between the drop and the last verdict: `("process", total)`, then
+        /// per thread (`scoring`, `ingest`, `filing`, `runtime`, `store`), then `other` (the rest,
+        /// mostly the short-lived `labelweir-absorb` threads). Empty where `/proc` is not readable.
+        pub cpu_ms_per_batch: Vec<(String, f64)>,
         /// Median and 95th percentile of claim → settled, seconds.
         pub latency_p50_p95: (f64, f64),
         /// Verdict counts.
@@ -982,12 +997,56 @@ pub mod throughput {
             writeln!(f, "  sustained rate:                               {:.0} items/s (target >= 20000 on 2 cores)", self.items_per_second)?;
             writeln!(
                 f,
+                "  steady rate (after the first {} verdicts):    {:.0} items/s",
+                self.warmup, self.steady_items_per_second
+            )?;
+            writeln!(
+                f,
+                "  scoring alone would allow:                    {:.0} items/s (steady rate is {:.0}% of it)",
+                self.scoring_bound_items_per_second,
+                100.0 * self.steady_items_per_second / self.scoring_bound_items_per_second
+            )?;
+            writeln!(
+                f,
                 "  per batch, claim -> settled: p50 {:.3} s, p95 {:.3} s (includes queueing)",
                 self.latency_p50_p95.0, self.latency_p50_p95.1
             )?;
-            writeln!(f, "  mean seconds per batch by stage:")?;
+            writeln!(
+                f,
+                "  mean seconds per batch by stage (thread; stages on different threads overlap):"
+            )?;
             for (s, v) in &self.stage_mean_seconds {
-                writeln!(f, "    {s:<8} {v:.4}")?;
+                let thread = match s.as_str() {
+                    "claim" | "parse" => "ingest",
+                    "notice" => "filing",
+                    _ => "scoring",
+                };
+                writeln!(f, "    {s:<8} {v:.4}  ({thread})")?;
+            }
+            if let Some((_, total)) = self.cpu_ms_per_batch.first() {
+                let scoring = self
+                    .cpu_ms_per_batch
+                    .iter()
+                    .find(|(k, _)| k == "scoring")
+                    .map_or(f64::NAN, |(_, v)| *v);
+                let parts: Vec<String> = self.cpu_ms_per_batch[1..]
+                    .iter()
+                    .map(|(k, v)| format!("{k} {v:.1}"))
+                    .collect();
+                writeln!(
+                    f,
+                    "  CPU ms per batch: {total:.1} in all ({})",
+                    parts.join(", ")
+                )?;
+                // On an otherwise idle machine with two cores a batch needs at least max(scoring
+                // thread, all CPU / 2) of wall time; wall time above that is waiting (other load on
+                // the machine, or the pipeline stalling).
+                let floor_ms = scoring.max(total / 2.0);
+                writeln!(
+                    f,
+                    "  CPU bound on an idle 2-core machine:          {:.0} items/s (max of scoring thread, all CPU / 2 = {floor_ms:.1} ms per batch)",
+                    o.items as f64 / floor_ms * 1000.0
+                )?;
             }
             let outs: Vec<String> = self
                 .outcomes
@@ -995,6 +1054,71 @@ pub mod throughput {
                 .map(|(k, n)| format!("{k} {n}"))
                 .collect();
             writeln!(f, "  verdicts: {}", outs.join(", "))
+        }
+    }
+
+    /// CPU time from `/proc` (Linux): the process (user + system, every thread that ever ran, in
+    /// `USER_HZ` ticks of 1/100 s) and each live thread by name (`schedstat`, nanoseconds on the CPU).
+    #[derive(Debug, Clone)]
+    struct CpuSnapshot {
+        process_s: f64,
+        threads: Vec<(String, f64)>,
+    }
+
+    impl CpuSnapshot {
+        fn take() -> Option<Self> {
+            let stat = std::fs::read_to_string("/proc/self/stat").ok()?;
+            // Fields after the command name's closing parenthesis: state is field 3, utime 14, stime 15.
+            let rest = &stat[stat.rfind(')')? + 1..];
+            let f: Vec<&str> = rest.split_whitespace().collect();
+            let ticks = f.get(11)?.parse::<f64>().ok()? + f.get(12)?.parse::<f64>().ok()?;
+            let mut threads = Vec::new();
+            for e in std::fs::read_dir("/proc/self/task").ok()?.flatten() {
+                let p = e.path();
+                let comm = std::fs::read_to_string(p.join("comm")).unwrap_or_default();
+                let ns = std::fs::read_to_string(p.join("schedstat"))
+                    .ok()
+                    .and_then(|t| t.split_whitespace().next()?.parse::<f64>().ok())
+                    .unwrap_or(0.0);
+                threads.push((comm.trim().to_string(), ns / 1e9));
+            }
+            Some(Self {
+                process_s: ticks / 100.0,
+                threads,
+            })
+        }
+
+        fn group(name: &str) -> &'static str {
+            match name {
+                "labelweir-scori" | "labelweir-scoring" => "scoring",
+                "labelweir-inges" | "labelweir-ingest" => "ingest",
+                "labelweir-filin" | "labelweir-filing" => "filing",
+                n if n.starts_with("tokio") => "runtime",
+                n if n.starts_with("sled") || n == "log flusher" => "store",
+                _ => "other",
+            }
+        }
+
+        /// `self − start`, in ms per batch: the process total first, then by thread group.
+        fn per_batch_ms(&self, start: &Self, batches: usize) -> Vec<(String, f64)> {
+            let per = |s: f64| 1000.0 * s / batches as f64;
+            let total = self.process_s - start.process_s;
+            let mut out = vec![("process".to_string(), per(total))];
+            let mut named = 0.0;
+            for g in ["scoring", "ingest", "filing", "runtime", "store"] {
+                let sum = |snap: &Self| -> f64 {
+                    snap.threads
+                        .iter()
+                        .filter(|(n, _)| Self::group(n) == g)
+                        .map(|(_, s)| s)
+                        .sum()
+                };
+                let d = (sum(self) - sum(start)).max(0.0);
+                named += d;
+                out.push((g.to_string(), per(d)));
+            }
+            out.push(("other".to_string(), per((total - named).max(0.0))));
+            out
         }
     }
 
@@ -1094,8 +1218,15 @@ pub mod throughput {
             .replace("queue_capacity = 4", "queue_capacity = 8")
             .replace("min_free_bytes = 67108864", "min_free_bytes = 1");
         std::fs::write(ws.config_file(), text).map_err(|e| DaemonError::Io(e.to_string()))?;
-        let config =
+        let mut config =
             Config::from_workspace(&dir).map_err(|e| DaemonError::Config(e.to_string()))?;
+        if let Some(m) = &opts.model {
+            // The feature map is fixed at init; everything else in [model] may vary per run.
+            config.model = crate::model::ModelSettings {
+                feature_map: config.model.feature_map,
+                ..m.clone()
+            };
+        }
         {
             let store = Store::open_workspace(&dir, &config.store)?;
             seed_pool(&store, &plant, opts.pool, opts.seed + 100)?;
@@ -1121,24 +1252,33 @@ pub mod throughput {
         let records: Arc<Mutex<Vec<BatchRecord>>> = Arc::default();
         let idle = Arc::new(tokio::sync::Notify::new());
         let started: Arc<Mutex<Option<Instant>>> = Arc::default();
+        // CPU time of the process and its threads at the drop and at the last verdict.
+        let cpu: Arc<Mutex<(Option<CpuSnapshot>, Option<CpuSnapshot>)>> = Arc::default();
         let observer: crate::scoring::Observer = {
-            let (done, idle, records) = (done.clone(), idle.clone(), records.clone());
+            let (done, idle, records, cpu) =
+                (done.clone(), idle.clone(), records.clone(), cpu.clone());
             Arc::new(move |r: &BatchRecord| {
                 if let Ok(mut v) = records.lock() {
                     v.push(r.clone());
                 }
                 if done.fetch_add(1, Ordering::SeqCst) + 1 == total {
+                    if let Ok(mut c) = cpu.lock() {
+                        c.1 = CpuSnapshot::take();
+                    }
                     idle.notify_one();
                 }
             })
         };
         let on_ready: Arc<dyn Fn(Option<std::net::SocketAddr>) + Send + Sync> = {
-            let (inbox, started) = (ws.vendor_inbox("bench"), started.clone());
+            let (inbox, started, cpu) = (ws.vendor_inbox("bench"), started.clone(), cpu.clone());
             let files = Mutex::new(Some(files));
             Arc::new(move |_| {
                 let Some(files) = files.lock().ok().and_then(|mut f| f.take()) else {
                     return;
                 };
+                if let Ok(mut c) = cpu.lock() {
+                    c.0 = CpuSnapshot::take();
+                }
                 if let Ok(mut s) = started.lock() {
                     *s = Some(Instant::now());
                 }
@@ -1180,6 +1320,23 @@ pub mod throughput {
         }
         .max(1e-9);
         let items: usize = recs.iter().filter_map(|r| r.items).sum();
+        // Steady state: leave out the first verdicts (the pipeline filling up, first-touch costs), then
+        // rate = items settled after verdict `warmup` / time from that verdict to the last one.
+        let mut settled: Vec<(chrono::DateTime<chrono::Utc>, usize)> = recs
+            .iter()
+            .filter_map(|r| r.settled_at.map(|t| (t, r.items.unwrap_or(0))))
+            .collect();
+        settled.sort_by_key(|(t, _)| *t);
+        let warmup = (settled.len() / 5)
+            .clamp(1, 5)
+            .min(settled.len().saturating_sub(2));
+        let steady = match (settled.get(warmup), settled.last()) {
+            (Some((a, _)), Some((b, _))) if b > a => {
+                let n: usize = settled[warmup + 1..].iter().map(|(_, n)| n).sum();
+                n as f64 / (*b - *a).to_std().unwrap_or(Duration::ZERO).as_secs_f64()
+            }
+            _ => f64::NAN,
+        };
         let mut lat: Vec<f64> = recs
             .iter()
             .filter_map(|r| {
@@ -1200,7 +1357,7 @@ pub mod throughput {
         let text = crate::metrics::get()
             .map(|m| m.render())
             .unwrap_or_default();
-        let stage_mean_seconds = crate::metrics::STAGES
+        let stage_mean_seconds: Vec<(String, f64)> = crate::metrics::STAGES
             .iter()
             .map(|s| {
                 let find = |suffix: &str| {
@@ -1221,6 +1378,14 @@ pub mod throughput {
                 )
             })
             .collect();
+        let cpu_ms_per_batch = match cpu.lock().map(|c| c.clone()) {
+            Ok((Some(a), Some(b))) => b.per_batch_ms(&a, recs.len().max(1)),
+            _ => Vec::new(),
+        };
+        let score_mean = stage_mean_seconds
+            .iter()
+            .find(|(s, _)| s == "score")
+            .map_or(f64::NAN, |(_, v)| *v);
         let mut outcomes: Vec<(String, usize)> = Vec::new();
         for r in &recs {
             let k = r.outcome.map_or("?", |o| o.as_str()).to_string();
@@ -1234,6 +1399,10 @@ pub mod throughput {
             setup_seconds,
             wall_seconds: wall,
             items_per_second: items as f64 / wall,
+            steady_items_per_second: steady,
+            warmup,
+            scoring_bound_items_per_second: opts.items as f64 / score_mean,
+            cpu_ms_per_batch,
             stage_mean_seconds,
             latency_p50_p95: (pct(0.5), pct(0.95)),
             outcomes,

@@ -32,8 +32,13 @@ pub const OUTCOMES: [&str; 6] = [
     "released",
     "withdrawn",
 ];
-/// Pipeline stages used as the `stage` label of the duration histogram.
-pub const STAGES: [&str; 6] = ["claim", "parse", "score", "decide", "persist", "notice"];
+/// Pipeline stages used as the `stage` label of the duration histogram: `claim` and `parse` (ingest
+/// thread), `score`, `decide`, `persist` (the verdict's store transaction) and `absorb` (the pool summary
+/// taking in an accepted batch) on the scoring thread, `notice` (filing: file, report, notice, terminal
+/// state) on the filing thread.
+pub const STAGES: [&str; 7] = [
+    "claim", "parse", "score", "decide", "persist", "absorb", "notice",
+];
 /// Reasons for a rescan.
 pub const RESCAN_REASONS: [&str; 5] = ["startup", "timer", "event", "overflow", "error"];
 /// Filesystems whose free space is reported.

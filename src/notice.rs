@@ -602,6 +602,18 @@ fn generic_policy_detail(code: &str) -> Option<&'static str> {
         ReasonCode::RepairCostDrift => {
             "This vendor's recent batches have drifted upward in the share of labels that would have to change."
         }
+        ReasonCode::FlaggedShareCeiling => {
+            "The share of items flagged for review is above the fixed limit for every vendor."
+        }
+        ReasonCode::ColdStartFlaggedShare => {
+            "The share of items flagged for review is above the limit used while a vendor's history is short."
+        }
+        ReasonCode::FlaggedShareOutlier => {
+            "The share of items flagged for review is far above this vendor's usual range."
+        }
+        ReasonCode::FlaggedShareDrift => {
+            "This vendor's recent batches have drifted upward in the share of items flagged for review."
+        }
     })
 }
 
@@ -706,8 +718,9 @@ pub fn is_safe_batch_id(id: &str) -> bool {
 
 /// Write a notice into `vendor_dir` (the vendor's folder, `<workspace>/notices/<vendor>/`, created if
 /// missing): `<stem>.json` always, `<stem>.md` and `<stem>.items.csv` as configured. The notice is
-/// redacted with `settings` first. Each file is written atomically: a temporary file in the same folder,
-/// fsync, rename over the final name, fsync of the folder. Returns the paths written.
+/// redacted with `settings` first. Each file is written atomically — a temporary file in the same folder,
+/// fsync, rename over the final name — and the folder is fsynced once after the last rename, which makes
+/// all the renames durable together (see [`write_atomic_all`]). Returns the paths written.
 pub fn write_notice(
     vendor_dir: &Path,
     notice: &Notice,
@@ -722,27 +735,59 @@ pub fn write_notice(
     std::fs::create_dir_all(vendor_dir)?;
     let n = notice.redacted(settings);
     let stem = n.file_stem();
-    let mut written = Vec::new();
-    let json = serde_json::to_vec_pretty(&n).map_err(io::Error::other)?;
-    written.push(write_atomic(vendor_dir, &format!("{stem}.json"), &json)?);
+    let mut files = vec![(
+        format!("{stem}.json"),
+        serde_json::to_vec_pretty(&n).map_err(io::Error::other)?,
+    )];
     if settings.markdown {
-        let md = n.to_markdown(settings);
-        written.push(write_atomic(
-            vendor_dir,
-            &format!("{stem}.md"),
-            md.as_bytes(),
-        )?);
+        files.push((format!("{stem}.md"), n.to_markdown(settings).into_bytes()));
     }
     if settings.csv {
-        let csv = n.to_csv()?;
-        written.push(write_atomic(
-            vendor_dir,
-            &format!("{stem}.items.csv"),
-            &csv,
-        )?);
+        files.push((format!("{stem}.items.csv"), n.to_csv()?));
     }
-    sync_dir(vendor_dir)?;
-    Ok(written)
+    write_atomic_all(vendor_dir, &files)
+}
+
+/// Write several files into one folder, each atomically, with one folder fsync for all of them:
+/// every file goes to a temporary name in `dir` and is fsynced; then each is renamed over its final name;
+/// then `dir` is fsynced once. A reader sees each final name either absent, or old, or complete and new,
+/// never partial; after a crash before the folder fsync some renames may be lost, and the caller redoes
+/// the whole write (filing is idempotent). On an error the temporary files are removed.
+pub fn write_atomic_all(dir: &Path, files: &[(String, Vec<u8>)]) -> io::Result<Vec<PathBuf>> {
+    let tmp_of = |name: &str| dir.join(format!(".{name}.tmp-{}", std::process::id()));
+    let cleanup = |upto: usize| {
+        for (name, _) in &files[..upto] {
+            let _ = std::fs::remove_file(tmp_of(name));
+        }
+    };
+    for (i, (name, bytes)) in files.iter().enumerate() {
+        let written = std::fs::OpenOptions::new()
+            .write(true)
+            .create(true)
+            .truncate(true)
+            .open(tmp_of(name))
+            .and_then(|mut f| {
+                f.write_all(bytes)?;
+                f.sync_all()
+            });
+        if let Err(e) = written {
+            cleanup(i + 1);
+            return Err(e);
+        }
+    }
+    let mut out = Vec::with_capacity(files.len());
+    for (i, (name, _)) in files.iter().enumerate() {
+        let final_path = dir.join(name);
+        if let Err(e) = std::fs::rename(tmp_of(name), &final_path) {
+            for (name, _) in &files[i..] {
+                let _ = std::fs::remove_file(tmp_of(name));
+            }
+            return Err(e);
+        }
+        out.push(final_path);
+    }
+    sync_dir(dir)?;
+    Ok(out)
 }
 
 /// Write `bytes` to `dir/name` atomically: temporary file (same folder), fsync, rename, fsync folder.

@@ -2134,7 +2134,11 @@ pub fn rescan(env: &ReviewEnv<'_>, by: &str) -> Result<RescanReport, ReviewError
         match result {
             Ok(Ok(a)) => {
                 let h = env.store.vendor_history(&rec.vendor)?;
-                let dcs = policy::decide(&env.config.policy, &h, a.repair_cost, a.damage);
+                let dcs = policy::decide_batch(
+                    &env.config.policy,
+                    &h,
+                    &policy::BatchSignals::from_assessment(&a, env.config.model.flag_threshold),
+                );
                 entry.repair_cost_now = Some(a.repair_cost);
                 entry.damage_now = Some(a.damage);
                 entry.verdict_now = Some(dcs.verdict);

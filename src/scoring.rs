@@ -11,7 +11,14 @@
 //!    `score_invalid` (held for a person, never silently accepted);
 //! 3. **decide**: [`crate::policy::decide`] against the vendor's history;
 //! 4. **persist**: one flushed store transaction with the verdict, audit record, idempotency key, new
-//!    history and (accepted) the items in the pool; then the pool summary absorbs the new pool entries;
+//!    history and (accepted) the items in the pool; then **absorb**: the pool summary takes in the
+//!    accepted batch before the next batch is scored (batches are scored strictly in arrival order, each
+//!    against a summary that holds every batch accepted before it). The absorb itself is computed
+//!    *speculatively*: while the engine scores batch `i` on this thread, a short-lived
+//!    `labelweir-absorb` thread absorbs batch `i` into a copy of the same summary; an accepting verdict
+//!    adopts the copy (the same computation on the same numbers as absorbing the stored pool entry), any
+//!    other verdict drops it. So on two cores the absorb costs the scoring thread only the wait, if the
+//!    copy is not ready when scoring ends;
 //! 5. **notice**: hands the decided batch to the filing thread (`labelweir-filing`, bounded channel),
 //!    where [`crate::actions::settle`] files it and writes the vendor notice while the worker scores the
 //!    next batch. The verdict is already durable at hand-over; a filing interrupted by a crash is redone
@@ -93,6 +100,8 @@ pub struct Shared {
     pub settled: AtomicU64,
     /// Items in the pool summary.
     pub pool_items: AtomicU64,
+    /// Accepted batches whose speculative absorb was adopted (the others went through [`catch_up`]).
+    pub speculative_absorbs: AtomicU64,
 }
 
 /// The handle the rest of the daemon (and the admin server) holds.
@@ -322,6 +331,9 @@ pub fn spawn(
     ScoringHandle,
     std::thread::JoinHandle<Result<(), ScoringError>>,
 )> {
+    // Publish the pool and trusted-set gauges before the daemon reports ready, not whenever the new
+    // thread first runs (a scrape right after `/readyz` turned 200 would otherwise see 0).
+    worker.publish_pool();
     let cap = worker.config.ingest.queue_capacity;
     let (tx, rx) = std::sync::mpsc::sync_channel::<Job>(cap);
     let handle = ScoringHandle {
@@ -631,23 +643,53 @@ impl Worker {
     ) -> Result<Filing, ScoringError> {
         let k = self.meta.classes.len();
         let t_score = Instant::now();
-        let assessed = catch_unwind(AssertUnwindSafe(|| {
-            model::assess(
-                &self.config.model,
-                &self.meta.feature_map.standardizer,
-                k,
-                TrustedInput {
-                    x: self.trusted.x.view(),
-                    y: &self.trusted.y,
-                    weight: self.trusted.w.view(),
-                },
-                PoolInput::Summary(&self.pool.summary),
-                table.features.view(),
-                &labels,
-            )
-        }));
-        let score_seconds = t_score.elapsed().as_secs_f64();
-        self.metrics.stage("score", t_score.elapsed());
+        // The summary this batch is scored against; a speculative absorb (below) starts from it too.
+        let base = (self.pool.through_seq, self.pool.epoch);
+        let (assessed, score_elapsed, speculative) = std::thread::scope(|s| {
+            // Speculative absorb: while the engine scores the batch against the pool summary, a second
+            // thread absorbs the same batch into a copy of that summary (the update the batch needs if it
+            // is accepted; it does not depend on the score). Adopted after an accepting verdict, dropped
+            // otherwise. See `absorb_accepted` for when a copy may stand in for the stored entry.
+            let spec = (base.1 != u64::MAX)
+                .then(|| {
+                    let (summary, settings) = (&self.pool.summary, &self.config.model);
+                    let (x, y) = (table.features.view(), labels.as_slice());
+                    std::thread::Builder::new()
+                        .name("labelweir-absorb".into())
+                        .spawn_scoped(s, move || {
+                            let mut copy = summary.clone();
+                            match catch_unwind(AssertUnwindSafe(|| copy.absorb(settings, x, y))) {
+                                Ok(Ok(_)) => Some(copy),
+                                _ => None, // the store path (`catch_up`) redoes it and reports the error
+                            }
+                        })
+                        .ok()
+                })
+                .flatten();
+            let assessed = catch_unwind(AssertUnwindSafe(|| {
+                model::assess(
+                    &self.config.model,
+                    &self.meta.feature_map.standardizer,
+                    k,
+                    TrustedInput {
+                        x: self.trusted.x.view(),
+                        y: &self.trusted.y,
+                        weight: self.trusted.w.view(),
+                    },
+                    PoolInput::Summary(&self.pool.summary),
+                    table.features.view(),
+                    &labels,
+                )
+            }));
+            let score_elapsed = t_score.elapsed();
+            // Waiting here for the speculative absorb counts as `absorb` time.
+            let t_wait = Instant::now();
+            let speculative = spec.and_then(|h| h.join().ok().flatten());
+            (assessed, score_elapsed, (speculative, t_wait.elapsed()))
+        });
+        let (speculative, absorb_wait) = speculative;
+        let score_seconds = score_elapsed.as_secs_f64();
+        self.metrics.stage("score", score_elapsed);
         let assessment: Result<Assessment, String> = match assessed {
             Ok(Ok(a)) => Ok(a),
             Ok(Err(e)) => Err(format!("the engine could not score the batch: {e}")),
@@ -656,7 +698,11 @@ impl Worker {
         let t_decide = Instant::now();
         let mut history = self.store.vendor_history(&record.vendor)?;
         let decision: Decision = match &assessment {
-            Ok(a) => policy::decide(&self.config.policy, &history, a.repair_cost, a.damage),
+            Ok(a) => policy::decide_batch(
+                &self.config.policy,
+                &history,
+                &policy::BatchSignals::from_assessment(a, self.config.model.flag_threshold),
+            ),
             Err(msg) => {
                 self.metrics.error("score", "engine");
                 tracing::error!(batch_id = %record.id, vendor = %record.vendor, error = %msg, "scoring failed; quarantining");
@@ -742,7 +788,10 @@ impl Worker {
         });
         if accept {
             if let Ok(a) = &assessment {
-                history.record_accepted(&self.config.policy, a.repair_cost);
+                history.record_accepted(
+                    &self.config.policy,
+                    &policy::BatchSignals::from_assessment(a, self.config.model.flag_threshold),
+                );
             }
         }
         let rec = self.store.record_verdict(
@@ -757,10 +806,215 @@ impl Worker {
             },
             pool,
         )?;
-        if accept {
-            self.catch_up_logged();
-        }
         self.metrics.stage("persist", t_persist.elapsed());
+        if accept {
+            let t_absorb = Instant::now();
+            self.absorb_accepted(rec.pool_seq, base, speculative);
+            self.metrics
+                .stage("absorb", absorb_wait + t_absorb.elapsed());
+        }
         Ok(self.file(rec, Some(bytes)))
+    }
+
+    /// Bring the pool summary up to date after this worker accepted a batch (its entry has sequence
+    /// `seq`), before the next batch is scored.
+    ///
+    /// The speculative copy (`base` summary ⊕ the batch, computed from the same features and labels
+    /// that were stored as the pool entry, by the same `PoolSummary::absorb`) is adopted only when it is
+    /// exactly what [`catch_up`] would compute: the summary still is the one the copy started from, the
+    /// pool epoch has not moved (nothing left the pool), and the only pool entry past the watermark is
+    /// this batch's own. Anything else (a reviewer's release or withdrawal committed meanwhile, a failed
+    /// speculative absorb) falls back to [`catch_up`] from the store, which absorbs in sequence order.
+    fn absorb_accepted(&mut self, seq: Option<u64>, base: (u64, u64), spec: Option<PoolSummary>) {
+        let (through, epoch) = (self.pool.through_seq, self.pool.epoch);
+        let adoptable = match (seq, spec) {
+            (Some(seq), Some(summary)) if base == (through, epoch) => {
+                let only_ours = self
+                    .store
+                    .pool_seqs_after(through)
+                    .is_ok_and(|s| s == [seq]);
+                let same_epoch = self.store.pool_epoch().is_ok_and(|e| e == epoch);
+                (only_ours && same_epoch).then_some((seq, summary))
+            }
+            _ => None,
+        };
+        match adoptable {
+            Some((seq, summary)) => {
+                self.shared
+                    .speculative_absorbs
+                    .fetch_add(1, Ordering::SeqCst);
+                self.pool.summary = summary;
+                self.pool.through_seq = seq;
+                self.pool.dirty = true;
+                self.publish_pool();
+            }
+            None => self.catch_up_logged(),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::data::{Classes, Format, TableOptions};
+    use crate::scenario::{self, Plant};
+    use crate::store::{BatchState, PoolChange};
+
+    /// A workspace of the recycling plant with one vendor, and a worker on it (no threads started).
+    fn worker(dir: &std::path::Path) -> (Worker, Plant) {
+        let plant = Plant::new(11);
+        let (tx, ty) = plant.sample_per_class(10, 12);
+        let mut csv = Vec::new();
+        crate::data::write_csv(
+            &mut csv,
+            ("id", "label"),
+            &scenario::item_ids("t", ty.len()),
+            &scenario::label_names(&ty),
+            &scenario::feature_names(),
+            tx.view(),
+        )
+        .unwrap();
+        let trusted = dir.join("trusted.csv");
+        std::fs::write(&trusted, csv).unwrap();
+        let root = dir.join("ws");
+        crate::cli::init::create_workspace(&root, &trusted, &["v".to_string()], "test").unwrap();
+        let ws = Workspace::new(&root);
+        let config = Config::from_workspace(&root).unwrap();
+        crate::daemon::prepare_folders(&ws, &config).unwrap();
+        let store = Store::open_workspace(&root, &config.store).unwrap();
+        let meta = store.workspace_meta().unwrap();
+        let pool = load_pool(&store, &meta, &config).unwrap();
+        let trusted = TrustedArrays::load(&store, &meta).unwrap();
+        let metrics = crate::metrics::install(&config.vendors);
+        let w = Worker {
+            ws,
+            config: Arc::new(config),
+            store,
+            meta,
+            metrics,
+            observer: None,
+            trusted,
+            pool,
+            shared: Arc::default(),
+        };
+        (w, plant)
+    }
+
+    /// Claim a clean batch of the plant and hand it to the worker as the ingest thread would.
+    fn submit(w: &mut Worker, plant: &Plant, i: u64, filer: &SyncSender<Filing>) {
+        let (x, y) = plant.sample(150, 100 + i);
+        let mut bytes = Vec::new();
+        crate::data::write_csv(
+            &mut bytes,
+            ("id", "label"),
+            &scenario::item_ids(&format!("b{i}-"), y.len()),
+            &scenario::label_names(&y),
+            &scenario::feature_names(),
+            x.view(),
+        )
+        .unwrap();
+        let table = crate::data::parse_table(
+            &bytes,
+            Format::Csv,
+            "b.csv",
+            &TableOptions::default(),
+            Some(&w.meta.features),
+        )
+        .unwrap();
+        let labels = table
+            .class_indices(&Classes::from_labels(&w.meta.classes))
+            .unwrap();
+        let id = w.store.new_batch_id().unwrap();
+        let record =
+            BatchRecord::claimed(id.clone(), "v", format!("b{i}.csv"), format!("{id}.csv"));
+        w.store.record_claim(&record).unwrap();
+        let input = JobInput::Parsed {
+            bytes,
+            sha256: format!("{i:064x}"),
+            table,
+            labels,
+        };
+        w.process(Job { record, input }, filer).unwrap();
+    }
+
+    /// The store path: an empty summary that absorbs every stored pool entry in sequence order.
+    fn from_store(w: &Worker) -> PoolState {
+        let mut fresh = PoolState {
+            summary: PoolSummary::empty(w.meta.feature_map.clone(), w.meta.classes.len()),
+            through_seq: 0,
+            epoch: w.store.pool_epoch().unwrap(),
+            dirty: false,
+        };
+        catch_up(&mut fresh, &w.store, &w.meta, &w.config).unwrap();
+        fresh
+    }
+
+    fn accepted(rx: &Receiver<Filing>) -> usize {
+        rx.try_iter()
+            .filter(|f| f.record.outcome == Some(Outcome::Accepted))
+            .count()
+    }
+
+    /// An adopted speculative absorb is bit-for-bit the summary that absorbing the stored pool entries
+    /// gives (the ordering guarantee: each batch is scored against every batch accepted before it).
+    #[test]
+    fn adopted_speculative_absorb_equals_absorbing_the_stored_pool() {
+        let tmp = tempfile::tempdir().unwrap();
+        let (mut w, plant) = worker(tmp.path());
+        let (ftx, frx) = std::sync::mpsc::sync_channel(16);
+        for i in 0..3 {
+            submit(&mut w, &plant, i, &ftx);
+        }
+        let n = accepted(&frx);
+        assert!(n >= 2, "clean batches of the plant are accepted ({n} of 3)");
+        assert_eq!(
+            w.shared.speculative_absorbs.load(Ordering::SeqCst),
+            n as u64
+        );
+        let fresh = from_store(&w);
+        assert_eq!(w.pool.through_seq, fresh.through_seq);
+        assert_eq!(w.pool.summary.len(), w.store.pool_items().unwrap());
+        assert!(w.pool.summary == fresh.summary, "the adopted copy differs");
+    }
+
+    /// A pool entry committed by someone else while a batch is scored (a reviewer's release) makes the
+    /// worker fall back to absorbing from the store, in sequence order, instead of adopting its copy.
+    #[test]
+    fn a_concurrent_pool_change_falls_back_to_the_store_path() {
+        let tmp = tempfile::tempdir().unwrap();
+        let (mut w, plant) = worker(tmp.path());
+        let (ftx, frx) = std::sync::mpsc::sync_channel(16);
+        submit(&mut w, &plant, 0, &ftx);
+        assert_eq!(accepted(&frx), 1);
+        // A release goes through the store without telling the worker (no `pool_changed`).
+        let id = w.store.new_batch_id().unwrap();
+        let rec = BatchRecord::claimed(id.clone(), "v", "r.csv".into(), format!("{id}.csv"));
+        w.store.record_claim(&rec).unwrap();
+        let (x, y) = plant.sample(80, 999);
+        let entry = PoolEntry {
+            batch_id: id.clone(),
+            vendor: "v".into(),
+            ids: scenario::item_ids("r", y.len()),
+            labels: y,
+            x: x.iter().copied().collect(),
+            n_features: x.ncols(),
+        };
+        w.store
+            .transition(
+                &id,
+                &[BatchState::Claimed],
+                BatchState::Released,
+                PoolChange::Add(entry),
+                vec![],
+                |_| {},
+            )
+            .unwrap();
+        submit(&mut w, &plant, 1, &ftx);
+        assert_eq!(accepted(&frx), 1);
+        assert_eq!(w.shared.speculative_absorbs.load(Ordering::SeqCst), 1);
+        let fresh = from_store(&w);
+        assert_eq!(w.pool.through_seq, fresh.through_seq);
+        assert_eq!(w.pool.summary.len(), 150 + 80 + 150);
+        assert!(w.pool.summary == fresh.summary, "fallback differs");
     }
 }

@@ -1143,6 +1143,15 @@ impl Store {
             .collect()
     }
 
+    /// Sequence numbers of the pool entries after `after`, in order (keys only; nothing is decoded).
+    pub fn pool_seqs_after(&self, after: u64) -> Result<Vec<u64>, StoreError> {
+        self.trees[T_POOL]
+            .range((after + 1).to_be_bytes()..)
+            .keys()
+            .map(|k| Ok(u64_of(Some(k.map_err(StoreError::sled("scan pool"))?))))
+            .collect()
+    }
+
     /// The whole pool as one `(x, y)` pair (for an exact refresh), plus the highest sequence included.
     pub fn pool_matrix(
         &self,

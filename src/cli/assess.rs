@@ -294,7 +294,7 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
         &batch_y,
     )
     .map_err(engine_error)?;
-    let decision = decide(&cfg.policy, &assessment);
+    let decision = decide(&cfg.policy, &assessment, settings.flag_threshold);
     Ok(Report {
         batch_path: batch.source.clone(),
         trusted_path: trusted.source.clone(),
@@ -312,9 +312,13 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
 }
 
 /// The policy's verdict for a batch from a vendor with no history (cold-start limits and the absolute
-/// ceilings apply).
-fn decide(settings: &PolicySettings, a: &Assessment) -> Decision {
-    policy::decide(settings, &VendorHistory::default(), a.repair_cost, a.damage)
+/// ceilings apply), on every signal the daemon judges: repair cost, damage and flagged share.
+fn decide(settings: &PolicySettings, a: &Assessment, flag_threshold: f64) -> Decision {
+    policy::decide_batch(
+        settings,
+        &VendorHistory::default(),
+        &policy::BatchSignals::from_assessment(a, flag_threshold),
+    )
 }
 
 fn ms(d: std::time::Duration) -> f64 {
@@ -403,6 +407,10 @@ pub fn report_json(r: &Report) -> Value {
         "items": items,
         "flag_threshold": r.flag_threshold,
         "flagged": a.items.iter().filter(|i| i.suspicion >= r.flag_threshold).count(),
+        "expected_flagged_share": {
+            "share": a.expected_flagged_share,
+            "sd": a.expected_flagged_sd,
+        },
         "target_reached": a.target_reached,
         "trusted_loss": {
             "pool": a.trusted_loss_pool,

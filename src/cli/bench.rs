@@ -48,6 +48,11 @@ struct DaemonArgs {
     /// Items already in the pool when the measurement starts.
     #[arg(long)]
     pool: Option<usize>,
+    /// Engine settings: a TOML file whose `[model]` table overrides the defaults (other tables ignored;
+    /// the feature map stays linear). Cheaper settings (e.g. fewer `path_steps`) show how the pipeline
+    /// keeps up with a faster scoring stage.
+    #[arg(long, value_name = "FILE")]
+    config: Option<std::path::PathBuf>,
 }
 
 #[derive(Debug, clap::Args)]
@@ -83,6 +88,9 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             }
             if let Some(p) = d.pool {
                 o.pool = p;
+            }
+            if let Some(path) = &d.config {
+                o.model = Some(model_settings(path)?);
             }
             match crate::daemon::throughput::run(&o) {
                 Ok(r) => {

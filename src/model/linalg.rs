@@ -6,11 +6,9 @@
 use ndarray::{Array1, Array2};
 
 /// Lower-triangular Cholesky factor `L` of a symmetric positive definite `A = L Lᵀ`.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, PartialEq)]
 pub struct Cholesky {
     l: Array2<f64>,
-    /// `Lᵀ`, kept so that both substitutions walk contiguous rows.
-    u: Array2<f64>,
 }
 
 impl Cholesky {
@@ -26,15 +24,12 @@ impl Cholesky {
         }
         for i in 0..n {
             for j in 0..=i {
-                let mut sum = a[[i, j]];
-                {
+                let sum = {
                     let ri = a.row(i);
                     let rj = a.row(j);
                     let (ri, rj) = (ri.as_slice()?, rj.as_slice()?);
-                    for k in 0..j {
-                        sum -= ri[k] * rj[k];
-                    }
-                }
+                    a[[i, j]] - dot(&ri[..j], &rj[..j])
+                };
                 if i == j {
                     if !sum.is_finite() || sum <= 1e-300 {
                         return None;
@@ -48,8 +43,7 @@ impl Cholesky {
                 a[[i, j]] = 0.0;
             }
         }
-        let u = a.t().as_standard_layout().into_owned();
-        Some(Self { l: a, u })
+        Some(Self { l: a })
     }
 
     /// Dimension of the factored matrix.
@@ -58,23 +52,49 @@ impl Cholesky {
     }
 
     /// Solve `A x = b` by forward (`L z = b`) and back (`Lᵀ x = z`) substitution.
+    ///
+    /// Both walk the rows of `L` contiguously: the forward pass as dot products, `z_i = (b_i − L_{i,<i}·z_{<i})
+    /// / L_ii`; the backward pass in column (axpy) form, `x_i = z_i / L_ii` then `z_{<i} −= x_i L_{i,<i}` for
+    /// `i = n−1, …, 0`, since row `i` of `L` is column `i` of `Lᵀ`. One copy of the factor is read twice.
     pub fn solve(&self, b: &Array1<f64>) -> Array1<f64> {
         let n = self.dim();
         let mut z: Vec<f64> = b.to_vec();
         let l = self.l.as_slice().expect("standard layout");
-        let u = self.u.as_slice().expect("standard layout");
         for i in 0..n {
-            let row = &l[i * n..i * n + i];
-            let s: f64 = row.iter().zip(&z[..i]).map(|(a, b)| a * b).sum();
+            let s = dot(&l[i * n..i * n + i], &z[..i]);
             z[i] = (z[i] - s) / l[i * n + i];
         }
         for i in (0..n).rev() {
-            let row = &u[i * n + i + 1..(i + 1) * n];
-            let s: f64 = row.iter().zip(&z[i + 1..]).map(|(a, b)| a * b).sum();
-            z[i] = (z[i] - s) / u[i * n + i];
+            let xi = z[i] / l[i * n + i];
+            z[i] = xi;
+            for (zj, &lij) in z[..i].iter_mut().zip(&l[i * n..i * n + i]) {
+                *zj -= xi * lij;
+            }
         }
         Array1::from(z)
     }
+}
+
+/// `Σ_i a_i b_i` over the shorter of the two slices, with eight independent partial sums so that the
+/// compiler can keep them in vector registers (a single running sum is a serial dependency chain that
+/// floating-point rules forbid it to reorder). The summation order differs from left-to-right, which
+/// changes the result only by rounding.
+pub fn dot(a: &[f64], b: &[f64]) -> f64 {
+    let n = a.len().min(b.len());
+    let (a, b) = (&a[..n], &b[..n]);
+    let mut acc = [0.0f64; 8];
+    let (ca, cb) = (a.chunks_exact(8), b.chunks_exact(8));
+    let (ra, rb) = (ca.remainder(), cb.remainder());
+    for (x, y) in ca.zip(cb) {
+        for l in 0..8 {
+            acc[l] += x[l] * y[l];
+        }
+    }
+    let mut tail = 0.0;
+    for (x, y) in ra.iter().zip(rb) {
+        tail += x * y;
+    }
+    ((acc[0] + acc[4]) + (acc[1] + acc[5])) + ((acc[2] + acc[6]) + (acc[3] + acc[7])) + tail
 }
 
 /// Result of a conjugate-gradient solve.

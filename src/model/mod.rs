@@ -23,7 +23,9 @@
 //!   starts; items are ranked by how early (at which `γ`) the repair moves their label mass.
 //! * **Pool summary** ([`summary`]): the accepted pool enters through a second-order model of its mean loss
 //!   around its optimum (gradient and Hessian), so scoring a batch costs the same whatever the pool size;
-//!   an exact mode re-solves over the pool's items to validate it.
+//!   a reservoir of pool items corrects the model beyond second order when a batch is a large share of the
+//!   pool (exactly, while the pool fits in the reservoir); an exact mode re-solves over the pool's items to
+//!   validate it.
 //!
 //! A flag is a suspicion for human review, not proof.
 
@@ -43,7 +45,7 @@ pub use learner::{Learner, TrainReport};
 pub use repair::{
     assess, Assessment, Convergence, ItemScore, PoolInput, Timings, TrustedInput, TrustedItemReport,
 };
-pub use summary::PoolSummary;
+pub use summary::{PoolSummary, PoolTerm};
 
 /// Which feature map the learner uses on top of the standardised features.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
@@ -94,9 +96,15 @@ pub struct ModelSettings {
     pub relinearisations: usize,
     /// Slack (nats) added to the trusted-loss target before a repair counts as sufficient.
     pub target_slack: f64,
-    /// Weight of the repair-path signal in the combined suspicion (the rest is the given label's loss
-    /// under a reference model that has not seen the item).
+    /// Weight of the repair-path signal in the combined suspicion while the reference model is cross-fitted
+    /// (pool smaller than `min_reference_pool`); the rest is the given label's disagreement with a
+    /// reference model that has not seen the item.
     pub repair_weight: f64,
+    /// Weight of the repair's signal once the pool model is the reference. The signal is then the label
+    /// mass the repair moves at the target crossing (the items the post-condition needs relabelled),
+    /// rather than the path score: a pool of accepted items, which the batch cannot have influenced, orders
+    /// the other items better than the path does.
+    pub pool_reference_repair_weight: f64,
     /// Folds used to cross-fit the reference model when the pool is too small to serve as one.
     pub cv_folds: usize,
     /// Pools with fewer items than this are not used alone as the reference model.
@@ -105,6 +113,14 @@ pub struct ModelSettings {
     pub time_budget_ms: u64,
     /// Items whose suspicion reaches this are flagged: their proposed label becomes the best alternative class.
     pub flag_threshold: f64,
+    /// Capacity of the pool summary's reservoir, a uniform sample of pool items (0 turns it off). While the
+    /// pool has at most this many items the summary is exact; beyond, the sample corrects the quadratic
+    /// model of the pool's loss (see [`PoolSummary::term`]). Memory: `8·p` bytes per item.
+    pub pool_reservoir: usize,
+    /// The reservoir enters the training objective only when the batch has at least this share of the
+    /// pool's size (`n_B ≥ share · n_P`); smaller batches move the model too little for the quadratic
+    /// model to be off, and are scored at a cost that does not depend on the pool size.
+    pub reservoir_min_share: f64,
 }
 
 impl Default for ModelSettings {
@@ -120,14 +136,17 @@ impl Default for ModelSettings {
             dense_max_params: 2048,
             path_steps: 12,
             path_min_ratio: 1e-2,
-            repair_iters: 10,
+            repair_iters: 4,
             relinearisations: 1,
             target_slack: 0.0,
             repair_weight: 0.2,
+            pool_reference_repair_weight: 0.2,
             cv_folds: 5,
             min_reference_pool: 200,
             time_budget_ms: 30_000,
             flag_threshold: 0.5,
+            pool_reservoir: 4096,
+            reservoir_min_share: 0.02,
         }
     }
 }
@@ -205,11 +224,20 @@ impl ModelSettings {
         if !(0.0..=1.0).contains(&self.repair_weight) {
             return bad("repair_weight", "must be in [0, 1]");
         }
+        if !(0.0..=1.0).contains(&self.pool_reference_repair_weight) {
+            return bad("pool_reference_repair_weight", "must be in [0, 1]");
+        }
         if self.cv_folds < 2 {
             return bad("cv_folds", "must be ≥ 2");
         }
         if !(0.0..=1.0).contains(&self.flag_threshold) {
             return bad("flag_threshold", "must be in [0, 1]");
+        }
+        if self.pool_reservoir > 1 << 20 {
+            return bad("pool_reservoir", "must be ≤ 1048576 items");
+        }
+        if !self.reservoir_min_share.is_finite() || self.reservoir_min_share < 0.0 {
+            return bad("reservoir_min_share", "must be a finite number ≥ 0");
         }
         if let FeatureMapKind::RandomFourier { dim, bandwidth } = self.feature_map {
             if dim == 0 || dim > 4096 || !bandwidth.is_finite() || bandwidth < 0.0 {

@@ -3,6 +3,7 @@
 //! Derivations are written beside the code that computes them below.
 
 use std::ops::Range;
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis};
@@ -12,10 +13,13 @@ use rand_chacha::ChaCha8Rng;
 use serde::{Deserialize, Serialize};
 
 use super::learner::{
-    one_hot, predict_proba, solve, solve_factored, trusted_loss, vstack, weights_view, Objective,
+    logits, one_hot, predict_proba, solve, solve_factored, train_chord, trusted_loss, vstack,
+    weights_view, Objective,
 };
 use super::linalg::{conjugate_gradient, project_simplex, Cholesky};
-use super::{check_labels, FeatureMap, ModelError, ModelSettings, PoolSummary, Standardizer};
+use super::{
+    check_labels, FeatureMap, ModelError, ModelSettings, PoolSummary, PoolTerm, Standardizer,
+};
 
 /// How the accepted pool enters the assessment.
 #[derive(Debug, Clone, Copy)]
@@ -171,6 +175,17 @@ pub struct Assessment {
     pub reference: String,
     /// Trusted-set size and pool size used.
     pub sizes: Sizes,
+    /// The flagged share the batch would have if every item's label were drawn from its reference
+    /// distribution `p_ref` (a batch labelled the way the reference model expects; the repair then has
+    /// nothing to move): `m₀ = (1/n) Σ_i q_i` with `q_i = Σ_c p_ref,ic · 1[(1−w)(1 − p_ref,ic) ≥ τ]`, `τ` the
+    /// flag threshold. Where the learner separates the classes poorly even a clean batch has many items the
+    /// reference model doubts, and this is the share to expect; the policy compares the observed share
+    /// with it at cold start.
+    #[serde(default)]
+    pub expected_flagged_share: f64,
+    /// Standard deviation of that share (Poisson-binomial): `√(Σ_i q_i (1 − q_i)) / n`.
+    #[serde(default)]
+    pub expected_flagged_sd: f64,
 }
 
 /// Sizes of the inputs of an assessment.
@@ -199,18 +214,20 @@ impl Assessment {
     }
 }
 
-/// The training problem over pool ∪ batch: mapped features with pool rows (exact mode) first and batch rows
-/// last, the normaliser `N = n_P + n_B`, and the pool's quadratic model (incremental mode).
-struct Inner<'a> {
+/// The training problem over pool ∪ batch: mapped features with the pool's rows (the pool's items in exact
+/// mode, the summary's reservoir when its term uses it) first and batch rows last, their weights, the
+/// normaliser `N = n_P + n_B`, and the pool's quadratic model (incremental mode).
+struct Inner {
     phi: Array2<f64>,
     y_pool: Option<Array2<f64>>,
+    weight: Option<Array1<f64>>,
     batch: Range<usize>,
     norm: f64,
     l2: f64,
-    summary: Option<(&'a PoolSummary, Array1<f64>)>,
+    prior: Option<PoolTerm>,
 }
 
-impl Inner<'_> {
+impl Inner {
     fn labels(&self, y_batch: ArrayView2<'_, f64>) -> Array2<f64> {
         match &self.y_pool {
             Some(yp) => vstack(yp.view(), y_batch),
@@ -222,10 +239,10 @@ impl Inner<'_> {
         Objective {
             phi: self.phi.view(),
             y: y_all.view(),
-            weight: None,
+            weight: self.weight.as_ref().map(|w| w.view()),
             norm: self.norm,
             l2: self.l2,
-            prior: self.summary.as_ref().map(|(s, c)| s.prior(c, self.norm)),
+            prior: self.prior.as_ref().map(|t| t.quadratic(self.norm)),
         }
     }
 
@@ -234,9 +251,18 @@ impl Inner<'_> {
     }
 }
 
+/// The pool as it enters the training problems of one assessment: rows with a common weight, and the
+/// summary's quadratic term (incremental mode).
+struct PoolRows {
+    phi: Option<Array2<f64>>,
+    y: Option<Array2<f64>>,
+    row_weight: f64,
+    term: Option<PoolTerm>,
+}
+
 /// `H⁻¹` at one point of the path: a dense Cholesky factor, or CG on Hessian-vector products.
 enum HessianSolver {
-    Dense(Cholesky),
+    Dense(Arc<Cholesky>),
     Cg { prob: Array2<f64> },
 }
 
@@ -254,9 +280,9 @@ struct Linearisation {
 }
 
 /// What the repair loop needs from the assessment.
-struct Ctx<'a, 'p> {
+struct Ctx<'a> {
     settings: &'a ModelSettings,
-    inner: &'a Inner<'p>,
+    inner: &'a Inner,
     phi_t: &'a Array2<f64>,
     y_t: &'a [usize],
     c_t: Array1<f64>,
@@ -264,7 +290,7 @@ struct Ctx<'a, 'p> {
     conv: std::cell::RefCell<super::repair::Convergence>,
 }
 
-impl Ctx<'_, '_> {
+impl Ctx<'_> {
     fn solve_h(
         &self,
         lin: &Linearisation,
@@ -295,15 +321,42 @@ impl Ctx<'_, '_> {
     }
 
     /// Re-solve the inner problem exactly at `y_batch` (warm start `init`) and build `H⁻¹` there.
+    ///
+    /// With `chord = Some(H̃)` the solve runs the chord method on that fixed factor ([`train_chord`]): the
+    /// anchor `θ*(Y)` is still exact (to the inner tolerance) but no Hessian is assembled while the method
+    /// converges well. With `keep` the new linearisation also keeps `H̃` for `dθ*/dY` (a re-anchoring along
+    /// the path: the Hessian at the earlier optimum, which saves an assembly and a factorisation — the
+    /// dominant cost of an assessment — per call); without it the Hessian is assembled and factored at the
+    /// new optimum. The chord method hands over to full Newton when it converges slowly, and Newton's
+    /// factor is then used.
     fn linearise(
         &self,
         y_batch: &Array2<f64>,
         init: Array1<f64>,
         deadline: Instant,
+        chord: Option<Arc<Cholesky>>,
+        keep: bool,
     ) -> Linearisation {
         let y_all = self.inner.labels(y_batch.view());
         let obj = self.inner.objective(&y_all);
-        let (theta, rep, factor) = solve_factored(self.settings, &obj, init, deadline);
+        let (theta, rep, factor, kept) = match &chord {
+            Some(c) => {
+                let (t, r, f) = train_chord(
+                    &obj,
+                    init,
+                    c,
+                    self.settings.inner_tol,
+                    self.settings.inner_max_iters,
+                    deadline,
+                );
+                let kept = (keep && f.is_none()).then(|| Arc::clone(c));
+                (t, r, f, kept)
+            }
+            None => {
+                let (t, r, f) = solve_factored(self.settings, &obj, init, deadline);
+                (t, r, f, None)
+            }
+        };
         {
             let mut c = self.conv.borrow_mut();
             c.inner_iterations += rep.iterations;
@@ -315,31 +368,45 @@ impl Ctx<'_, '_> {
                 ));
             }
         }
-        let (_, _, prob) = obj.value_grad(&theta);
         let m = theta.len();
         let dense_ok = m <= self.settings.dense_max_params;
         // Newton's last factor is H at the iterate one step before θ (equal to second order at a converged
         // solve): reuse it rather than assembling the Hessian again.
-        let solver = match (dense_ok, factor) {
-            (true, Some(c)) if rep.converged => HessianSolver::Dense(c),
-            (true, _) => match Cholesky::factor(obj.hessian(prob.view())) {
-                Some(c) => {
-                    self.conv.borrow_mut().linear_iterations += 1;
-                    HessianSolver::Dense(c)
+        let solver = match (dense_ok, kept, factor) {
+            (true, Some(c), _) => HessianSolver::Dense(c),
+            (true, None, Some(c)) if rep.converged => HessianSolver::Dense(Arc::new(c)),
+            (true, _, _) => {
+                let (_, _, prob) = obj.value_grad(&theta);
+                match Cholesky::factor(obj.hessian(prob.view())) {
+                    Some(c) => {
+                        self.conv.borrow_mut().linear_iterations += 1;
+                        HessianSolver::Dense(Arc::new(c))
+                    }
+                    None => {
+                        self.conv.borrow_mut().notes.push(
+                            "Hessian factorisation failed; fell back to conjugate gradients".into(),
+                        );
+                        HessianSolver::Cg { prob }
+                    }
                 }
-                None => {
-                    self.conv.borrow_mut().notes.push(
-                        "Hessian factorisation failed; fell back to conjugate gradients".into(),
-                    );
-                    HessianSolver::Cg { prob }
-                }
-            },
-            (false, _) => HessianSolver::Cg { prob },
+            }
+            (false, _, _) => {
+                let (_, _, prob) = obj.value_grad(&theta);
+                HessianSolver::Cg { prob }
+            }
         };
         Linearisation {
             y_anchor: y_batch.clone(),
             theta,
             solver,
+        }
+    }
+
+    /// The dense Hessian factor of a linearisation, for the chord method.
+    fn factor_of(lin: &Linearisation) -> Option<Arc<Cholesky>> {
+        match &lin.solver {
+            HessianSolver::Dense(c) => Some(Arc::clone(c)),
+            HessianSolver::Cg { .. } => None,
         }
     }
 
@@ -391,7 +458,7 @@ impl Ctx<'_, '_> {
             trusted_loss(self.phi_t.view(), self.y_t, self.c_t.view(), theta, self.k);
         let q = self.solve_h(lin, &g_theta, warm.take());
         let phi_b = self.inner.phi_batch();
-        let g = phi_b.dot(&weights_view(&q, phi_b.ncols(), self.k)) / self.inner.norm;
+        let g = logits(phi_b, &q, self.k) / self.inner.norm;
         *warm = Some(q);
         (phi_val, g)
     }
@@ -480,9 +547,11 @@ fn folds(y: &[usize], k: usize, n_folds: usize, seed: u64) -> Vec<usize> {
 ///    re-solving the learner exactly (re-linearising) a few times along the way. `γ_max = n_B max_i max_k
 ///    (G_iŷ − G_ik)` is where the first label starts to move (KKT at `Y = Ŷ`).
 /// 4. Repair cost: the moved mass where the path first meets `Φ ≤ Φ_tgt` (interpolated between steps).
-/// 5. Per item: `path_score` = moved mass averaged over the path; suspicion = `w·path_score + (1−w)·(1 −
-///    p_ref(ŷ))`; proposed label = the best alternative under `w·Y_deep + (1−w)·p_ref` when the suspicion
-///    reaches `flag_threshold`, else the given label.
+/// 5. Per item: `path_score` = moved mass averaged over the path; suspicion = `w·s_i + (1−w)·(1 −
+///    p_ref(ŷ))` with `s_i = path_score` and `w = repair_weight` under a cross-fitted reference, and
+///    `s_i` = the mass the repair moves at the target crossing and `w = pool_reference_repair_weight`
+///    when the pool is the reference; proposed label = the best alternative under `w·Y_deep + (1−w)·p_ref`
+///    when the suspicion reaches `flag_threshold`, else the given label.
 pub fn assess(
     settings: &ModelSettings,
     standardizer: &Standardizer,
@@ -557,8 +626,17 @@ pub fn assess(
 
     // ---- 1. the pool alone: θ_P, Φ_pool --------------------------------------------------------------
     let t_ref = Instant::now();
-    let (phi_pool, y_pool, n_p, theta_p) = match pool {
-        PoolInput::Empty => (None, None, 0u64, Array1::zeros(m)),
+    let (pool_rows, n_p, theta_p) = match pool {
+        PoolInput::Empty => (
+            PoolRows {
+                phi: None,
+                y: None,
+                row_weight: 1.0,
+                term: None,
+            },
+            0u64,
+            Array1::zeros(m),
+        ),
         PoolInput::Exact { x, y } => {
             check_labels(y, k)?;
             if x.nrows() != y.len() {
@@ -588,9 +666,44 @@ pub fn assess(
                 }
                 t
             };
-            (Some(phi_p), Some(yp), y.len() as u64, theta_p)
+            (
+                PoolRows {
+                    phi: Some(phi_p),
+                    y: Some(yp),
+                    row_weight: 1.0,
+                    term: None,
+                },
+                y.len() as u64,
+                theta_p,
+            )
         }
-        PoolInput::Summary(s) => (None, None, s.n, s.theta()),
+        PoolInput::Summary(s) if s.n == 0 => (
+            PoolRows {
+                phi: None,
+                y: None,
+                row_weight: 1.0,
+                term: None,
+            },
+            0,
+            s.theta(),
+        ),
+        PoolInput::Summary(s) => {
+            let mut term = s.term(settings, n_b);
+            let (phi, y, row_weight) = match term.rows.take() {
+                Some((phi, y, w)) => (Some(phi), Some(y), w),
+                None => (None, None, 1.0),
+            };
+            (
+                PoolRows {
+                    phi,
+                    y,
+                    row_weight,
+                    term: Some(term),
+                },
+                s.n,
+                s.theta(),
+            )
+        }
     };
     let (phi_pool_loss, _, prob_t_pool) =
         trusted_loss(phi_t.view(), trusted.y, trusted.weight, &theta_p, k);
@@ -615,24 +728,11 @@ pub fn assess(
 
     // Reference probabilities for the batch items from a model that has not seen them.
     let norm = n_p as f64 + n_b as f64;
-    let summary_ctx = match pool {
-        PoolInput::Summary(s) if s.n > 0 => Some((s, theta_p.clone())),
-        _ => None,
-    };
     let (p_ref, reference) = if big_pool {
         (predict_proba(phi_b.view(), &theta_p, k), "pool")
     } else {
         let pr = cross_fit(
-            settings,
-            &phi_b,
-            &y_hat,
-            phi_pool.as_ref(),
-            y_pool.as_ref(),
-            summary_ctx.as_ref(),
-            &phi_t,
-            trusted,
-            &theta_p,
-            deadline,
+            settings, &phi_b, &y_hat, &pool_rows, n_p as f64, &phi_t, trusted, &theta_p, deadline,
             &mut conv,
         );
         (pr, "cross_fit")
@@ -641,20 +741,30 @@ pub fn assess(
 
     // ---- 2. pool ∪ batch as delivered --------------------------------------------------------------------
     let t_train = Instant::now();
-    let (phi_all, batch_rows) = match &phi_pool {
-        Some(pp) => (
-            vstack(pp.view(), phi_b.view()),
-            pp.nrows()..pp.nrows() + n_b,
-        ),
-        None => (phi_b.clone(), 0..n_b),
+    let (phi_all, batch_rows, weight) = match &pool_rows.phi {
+        Some(pp) => {
+            // Exact mode's pool rows weigh 1 each (no weights needed); a reservoir's stand for n_P/|R|.
+            let weight = (pool_rows.row_weight != 1.0).then(|| {
+                let mut w = vec![pool_rows.row_weight; pp.nrows()];
+                w.resize(pp.nrows() + n_b, 1.0);
+                Array1::from(w)
+            });
+            (
+                vstack(pp.view(), phi_b.view()),
+                pp.nrows()..pp.nrows() + n_b,
+                weight,
+            )
+        }
+        None => (phi_b.clone(), 0..n_b, None),
     };
     let inner = Inner {
         phi: phi_all,
-        y_pool,
+        y_pool: pool_rows.y.clone(),
+        weight,
         batch: batch_rows,
         norm,
         l2: settings.l2,
-        summary: summary_ctx,
+        prior: pool_rows.term.clone(),
     };
     let ctx = Ctx {
         settings,
@@ -665,6 +775,14 @@ pub fn assess(
         k,
         conv: std::cell::RefCell::new(conv),
     };
+    // Training on pool ∪ batch starts at θ_P; with a pool summary the chord method on `H_P + R` (the pool's
+    // mean Hessian plus the ridge, factored once per summary) gets there without assembling a Hessian, and
+    // the Hessian is assembled once, at θ̂, for the linearisation.
+    let pool_factor = match pool {
+        PoolInput::Summary(s) if m <= settings.dense_max_params => s.curvature_factor(settings.l2),
+        _ => None,
+    };
+    let mut lin = ctx.linearise(&y_hat, theta_p.clone(), deadline, pool_factor, false);
     // While the pool is too small to be the reference, the batch relabelled by the cross-fitted reference
     // (its most likely class for every item) is a second yardstick: what the batch would give the trusted
     // items if its labels agreed with everything else we know. Hard labels, not the soft `p_ref`: a model
@@ -677,11 +795,16 @@ pub fn assess(
             .map(|r| argmax(r.iter().copied()))
             .collect();
         let y_cons = one_hot(&lab, k);
-        let consensus = ctx.linearise(&y_cons, theta_p.clone(), deadline);
+        let consensus = ctx.linearise(
+            &y_cons,
+            lin.theta.clone(),
+            deadline,
+            Ctx::factor_of(&lin),
+            true,
+        );
         let phi_consensus = ctx.trusted_value(&consensus.theta) + settings.target_slack;
         target = target.min(phi_consensus);
     }
-    let mut lin = ctx.linearise(&y_hat, theta_p.clone(), deadline);
     let theta_hat = lin.theta.clone();
     let (phi_with, _, prob_t_with) =
         trusted_loss(phi_t.view(), trusted.y, trusted.weight, &theta_hat, k);
@@ -729,7 +852,7 @@ pub fn assess(
             }
             if relin_at.contains(&l) && l > 0 {
                 let init = ctx.theta_at(&lin, &y, &mut warm_d);
-                lin = ctx.linearise(&y, init, deadline);
+                lin = ctx.linearise(&y, init, deadline, Ctx::factor_of(&lin), true);
                 warm_d = None;
                 warm_q = None;
             }
@@ -772,7 +895,13 @@ pub fn assess(
     let mut crossing = path_losses.iter().position(|&v| v <= target);
     if let Some(l) = crossing {
         let y_l = path_labels[l].clone();
-        let exact = ctx.linearise(&y_l, thetas[l].clone(), deadline);
+        let exact = ctx.linearise(
+            &y_l,
+            thetas[l].clone(),
+            deadline,
+            Ctx::factor_of(&lin),
+            true,
+        );
         let exact_loss = ctx.trusted_value(&exact.theta);
         path_losses[l] = exact_loss;
         thetas[l] = exact.theta;
@@ -848,7 +977,11 @@ pub fn assess(
     timings.repair = t_rep.elapsed();
 
     // ---- 5. items ---------------------------------------------------------------------------------------
-    let w = settings.repair_weight;
+    let w = if big_pool {
+        settings.pool_reference_repair_weight
+    } else {
+        settings.repair_weight
+    };
     // The path score averages over the main path only (the extension, when there is one, is a search for
     // the target, not part of the ranking).
     let main_path = &moved_path[..moved_path.len().min(steps)];
@@ -868,7 +1001,12 @@ pub fn assess(
             };
             let path_score = 0.5 * moved_avg + 0.5 * entry_score;
             let disagreement = (1.0 - p_ref[[i, given]]).clamp(0.0, 1.0);
-            let suspicion = (w * path_score + (1.0 - w) * disagreement).clamp(0.0, 1.0);
+            // The repair's signal: under a cross-fitted reference, the path score (the whole path orders the
+            // items); under the pool reference, the label mass the repair moves at the target crossing
+            // (only the items the post-condition needs relabelled), since the pool model already orders
+            // the rest better than the path does (`labelweir bench engine` shows both).
+            let signal = if big_pool { repair_mass[i] } else { path_score };
+            let suspicion = (w * signal + (1.0 - w) * disagreement).clamp(0.0, 1.0);
             let pi: Vec<f64> = (0..k)
                 .map(|c| w * y[[i, c]] + (1.0 - w) * p_ref[[i, c]])
                 .collect();
@@ -902,6 +1040,21 @@ pub fn assess(
             }
         })
         .collect();
+
+    // The flagged share to expect from a batch labelled the way the reference model expects (see
+    // `Assessment::expected_flagged_share`).
+    let q: Vec<f64> = p_ref
+        .rows()
+        .into_iter()
+        .map(|r| {
+            r.iter()
+                .filter(|&&pc| (1.0 - w) * (1.0 - pc) >= settings.flag_threshold)
+                .sum::<f64>()
+                .clamp(0.0, 1.0)
+        })
+        .collect();
+    let expected_flagged_share = q.iter().sum::<f64>() / n_b as f64;
+    let expected_flagged_sd = q.iter().map(|v| v * (1.0 - v)).sum::<f64>().sqrt() / n_b as f64;
 
     // Trusted items the batch as delivered gets wrong.
     let prob_t_rep = predict_proba(phi_t.view(), &theta_rep, k);
@@ -943,6 +1096,8 @@ pub fn assess(
             batch: n_b,
             params: m,
         },
+        expected_flagged_share,
+        expected_flagged_sd,
     })
 }
 
@@ -964,7 +1119,7 @@ fn argmax(it: impl Iterator<Item = f64>) -> usize {
 /// `∇_Y C = −e_ŷ / n_B`, so the penalty pulls mass back toward the given label.
 #[allow(clippy::too_many_arguments)]
 fn projected_gradient(
-    ctx: &Ctx<'_, '_>,
+    ctx: &Ctx<'_>,
     lin: &Linearisation,
     y: &mut Array2<f64>,
     given: &[usize],
@@ -1134,9 +1289,8 @@ fn cross_fit(
     settings: &ModelSettings,
     phi_b: &Array2<f64>,
     y_hat: &Array2<f64>,
-    phi_pool: Option<&Array2<f64>>,
-    y_pool: Option<&Array2<f64>>,
-    summary: Option<&(&PoolSummary, Array1<f64>)>,
+    pool: &PoolRows,
+    n_p: f64,
     phi_t: &Array2<f64>,
     trusted: TrustedInput<'_>,
     theta_p: &Array1<f64>,
@@ -1164,22 +1318,24 @@ fn cross_fit(
         let mut yy = vstack(y_hat.select(Axis(0), &train).view(), y_t.view());
         let mut wts: Vec<f64> = vec![1.0; train.len()];
         wts.extend(trusted.weight.iter());
-        if let (Some(pp), Some(yp)) = (phi_pool, y_pool) {
+        // The batch folds and trusted items count as themselves; the pool counts as its n_P items whether
+        // it enters as rows (exact mode, or the reservoir), as the quadratic, or both.
+        let n_sum = wts.iter().sum::<f64>() + n_p;
+        if let (Some(pp), Some(yp)) = (&pool.phi, &pool.y) {
             phi = vstack(pp.view(), phi.view());
             yy = vstack(yp.view(), yy.view());
-            let mut w2 = vec![1.0; pp.nrows()];
+            let mut w2 = vec![pool.row_weight; pp.nrows()];
             w2.extend(wts);
             wts = w2;
         }
         let wts = Array1::from(wts);
-        let n_sum = wts.sum() + summary.map_or(0.0, |(s, _)| s.n as f64);
         let obj = Objective {
             phi: phi.view(),
             y: yy.view(),
             weight: Some(wts.view()),
             norm: n_sum,
             l2: settings.l2,
-            prior: summary.map(|(s, c)| s.prior(c, n_sum)),
+            prior: pool.term.as_ref().map(|t| t.quadratic(n_sum)),
         };
         let (theta, rep) = solve(settings, &obj, theta_p.clone(), deadline);
         conv.inner_iterations += rep.iterations;

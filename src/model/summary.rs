@@ -1,16 +1,20 @@
 //! The pool summary: a second-order model of the accepted pool's loss around its optimum.
 //!
 //! Memory: `p·K` coefficients, a `p·K` gradient and a dense `(p·K)²` Hessian — for 32 features, an
-//! intercept and 8 classes that is 264² ≈ 70 000 doubles ≈ 0.56 MB, whatever the pool size.
+//! intercept and 8 classes that is 264² ≈ 70 000 doubles ≈ 0.56 MB — plus the reservoir of at most
+//! `pool_reservoir` items (`p` doubles each: 4,096 × 33 × 8 B ≈ 1.1 MB at the default), whatever the pool
+//! size.
 
+use std::sync::{Arc, OnceLock};
 use std::time::Instant;
 
 use ndarray::{Array1, Array2, ArrayView2};
 use serde::{Deserialize, Serialize};
 
 use super::learner::{
-    flatten_pk, one_hot, solve, weights_view, Objective, Quadratic, INTERCEPT_RIDGE,
+    flatten_pk, one_hot, solve, vstack, weights_view, Objective, Quadratic, INTERCEPT_RIDGE,
 };
+use super::linalg::Cholesky;
 use super::{check_labels, FeatureMap, ModelError, ModelSettings, TrainReport};
 
 /// Second-order summary of the pool's mean cross-entropy around the pool model `W_P`:
@@ -39,6 +43,113 @@ pub struct PoolSummary {
     pub hess: Array2<f64>,
     /// Pool size at the last exact refresh.
     pub exact_at_n: u64,
+    /// Mapped features `φ` of the reservoir: a uniform random sample of at most
+    /// [`ModelSettings::pool_reservoir`] pool items (Vitter, "Random Sampling with a Reservoir", ACM TOMS
+    /// 1985, Algorithm R), one row per item. While the pool is no larger than the reservoir it holds every
+    /// pool item and the summary is exact.
+    #[serde(default)]
+    pub reservoir_phi: Array2<f64>,
+    /// Labels of the reservoir's items.
+    #[serde(default)]
+    pub reservoir_y: Vec<usize>,
+    /// Cholesky factor of `H_P + R` for the chord method (see [`PoolSummary::curvature_factor`]); a cache,
+    /// never saved.
+    #[serde(skip)]
+    curvature: Cache<Option<Arc<Cholesky>>>,
+    /// The reservoir's own mean loss, gradient and Hessian at `W_P` (see [`PoolSummary::term`]); a cache,
+    /// never saved.
+    #[serde(skip)]
+    expansion: Cache<Arc<Expansion>>,
+}
+
+/// A mean loss with its gradient and Hessian at one point: `(ℓ̄, ∇ℓ̄, ∇²ℓ̄)`.
+type Expansion = (f64, Array1<f64>, Array2<f64>);
+
+/// The pool's part of a training objective over pool ∪ batch, as [`PoolSummary::term`] builds it.
+///
+/// The objective's data term is `(1/N) [Σ_B ℓ_i + w Σ_R ℓ_r] + (n_P/N) Q(θ)`, with `N = n_P + n_B`, the
+/// reservoir rows `R` (if any) each standing for `w = n_P/|R|` pool items, and `Q` the quadratic
+/// `gᵀ(θ − θ_P) + ½ (θ − θ_P)ᵀ H (θ − θ_P)`.
+#[derive(Debug, Clone)]
+pub struct PoolTerm {
+    /// `n_P`.
+    pub n: f64,
+    /// Reservoir rows (mapped features), one-hot labels, and the weight `w` of each row; `None` when the
+    /// quadratic alone stands for the pool.
+    pub rows: Option<(Array2<f64>, Array2<f64>, f64)>,
+    /// `θ_P`.
+    pub center: Array1<f64>,
+    /// `g` of the quadratic.
+    pub grad: Array1<f64>,
+    /// `H` of the quadratic.
+    pub hess: Array2<f64>,
+}
+
+impl PoolTerm {
+    /// The quadratic as an objective term for data normaliser `norm`.
+    pub fn quadratic(&self, norm: f64) -> Quadratic<'_> {
+        Quadratic {
+            scale: self.n / norm,
+            center: self.center.view(),
+            grad: self.grad.view(),
+            hess: self.hess.view(),
+        }
+    }
+
+    /// Sum of the reservoir rows' weights (`n_P` when there are rows, else 0).
+    pub fn row_weight_sum(&self) -> f64 {
+        self.rows
+            .as_ref()
+            .map_or(0.0, |(phi, _, w)| phi.nrows() as f64 * w)
+    }
+}
+
+/// A lazily computed value keyed by two fingerprints of what it was computed from, so that a changed
+/// setting or an edited summary is never served a stale value. Not part of the summary's identity.
+struct Cache<T>(OnceLock<(u64, u64, T)>);
+
+impl<T> Default for Cache<T> {
+    fn default() -> Self {
+        Self(OnceLock::new())
+    }
+}
+
+impl<T: Clone> Cache<T> {
+    fn get_or(&self, key: (u64, u64), compute: impl Fn() -> T) -> T {
+        let cached = self.0.get_or_init(|| (key.0, key.1, compute()));
+        if (cached.0, cached.1) == key {
+            cached.2.clone()
+        } else {
+            compute()
+        }
+    }
+}
+
+impl<T: Clone> Clone for Cache<T> {
+    fn clone(&self) -> Self {
+        let c = Self::default();
+        if let Some(v) = self.0.get() {
+            let _ = c.0.set(v.clone());
+        }
+        c
+    }
+}
+
+impl<T> PartialEq for Cache<T> {
+    /// A cache never makes two summaries differ.
+    fn eq(&self, _: &Self) -> bool {
+        true
+    }
+}
+
+impl<T> std::fmt::Debug for Cache<T> {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(if self.0.get().is_some() {
+            "Cache(filled)"
+        } else {
+            "Cache(empty)"
+        })
+    }
 }
 
 impl PoolSummary {
@@ -56,6 +167,10 @@ impl PoolSummary {
             grad: Array1::zeros(m),
             hess: Array2::zeros((m, m)),
             exact_at_n: 0,
+            reservoir_phi: Array2::zeros((0, p)),
+            reservoir_y: Vec::new(),
+            curvature: Cache::default(),
+            expansion: Cache::default(),
         }
     }
 
@@ -87,6 +202,7 @@ impl PoolSummary {
             ));
         }
         let phi = out.feature_map.apply(x)?;
+        out.offer(phi.view(), y, settings.pool_reservoir, settings.seed);
         let yy = one_hot(y, n_classes);
         let obj = Objective {
             phi: phi.view(),
@@ -163,14 +279,28 @@ impl PoolSummary {
         let n_b = y.len() as f64;
         let norm = n_p + n_b;
         let theta_p = self.theta();
+        let term = (self.n > 0).then(|| self.term(settings, y.len()));
         let (theta, report) = {
+            // Rows: the reservoir's (weighted), when the term uses it, then the batch's.
+            let (phi_all, y_all, weight) = match term.as_ref().and_then(|t| t.rows.as_ref()) {
+                Some((rp, ry, w)) => {
+                    let mut wt = vec![*w; rp.nrows()];
+                    wt.resize(rp.nrows() + y.len(), 1.0);
+                    (
+                        vstack(rp.view(), phi.view()),
+                        vstack(ry.view(), yy.view()),
+                        Some(Array1::from(wt)),
+                    )
+                }
+                None => (phi.clone(), yy.clone(), None),
+            };
             let obj = Objective {
-                phi: phi.view(),
-                y: yy.view(),
-                weight: None,
+                phi: phi_all.view(),
+                y: y_all.view(),
+                weight: weight.as_ref().map(|w| w.view()),
                 norm,
                 l2: settings.l2,
-                prior: (self.n > 0).then(|| self.prior(&theta_p, norm)),
+                prior: term.as_ref().map(|t| t.quadratic(norm)),
             };
             solve(
                 settings,
@@ -190,20 +320,188 @@ impl PoolSummary {
         // Batch part alone (sums over the batch, divided by `norm`): the objective without prior and penalty.
         let (fb, gb, prob) = batch_obj.value_grad(&theta);
         let (pen_f, pen_g) = penalty(&theta, p, settings.l2);
-        let (fb, gb) = (fb - pen_f, gb - pen_g);
-        // Pool part carried through its quadratic model: ℓ̄_P(θ) ≈ ℓ_P + g_Pᵀ d + ½ dᵀ H_P d.
+        let (fb, gb) = (fb - pen_f, gb - &pen_g);
+        // Pool part carried through its quadratic model: ℓ̄_P(θ) ≈ ℓ_P + g_Pᵀ d + ½ dᵀ H_P d, plus, when the
+        // term used the reservoir, its estimate of the remainder beyond second order:
+        // [ℓ̄_R(θ) − q_R(θ)] for the loss, [∇ℓ̄_R(θ) − g_R − H_R d] for the gradient, [∇²ℓ̄_R(θ) − H_R] for
+        // the Hessian.
         let d = &theta - &theta_p;
         let hd = self.hess.dot(&d);
-        let pool_loss = self.loss + self.grad.dot(&d) + 0.5 * d.dot(&hd);
-        let pool_grad = &self.grad + &hd;
+        let mut pool_loss = self.loss + self.grad.dot(&d) + 0.5 * d.dot(&hd);
+        let mut pool_grad = &self.grad + &hd;
+        let mut pool_hess = self.hess.clone();
+        if term.as_ref().is_some_and(|t| t.rows.is_some()) {
+            let e = self.reservoir_expansion(settings.l2);
+            let ry = one_hot(&self.reservoir_y, k);
+            let robj = Objective {
+                phi: self.reservoir_phi.view(),
+                y: ry.view(),
+                weight: None,
+                norm: self.reservoir_y.len() as f64,
+                l2: settings.l2,
+                prior: None,
+            };
+            let (fr, gr, pr) = robj.value_grad(&theta);
+            let (fr, gr) = (fr - pen_f, gr - pen_g);
+            let hrd = e.2.dot(&d);
+            pool_loss += fr - (e.0 + e.1.dot(&d) + 0.5 * d.dot(&hrd));
+            pool_grad = pool_grad + gr - &e.1 - hrd;
+            pool_hess = pool_hess + robj.data_hessian(pr.view()) - &e.2;
+        }
         let w_p = n_p / norm;
         self.loss = w_p * pool_loss + fb;
         self.grad = pool_grad * w_p + gb;
         let hb = batch_obj.data_hessian(prob.view());
-        self.hess = &self.hess * w_p + hb;
+        self.hess = pool_hess * w_p + hb;
         self.w = weights_view(&theta, p, k).to_owned();
+        self.offer(phi.view(), y, settings.pool_reservoir, settings.seed);
         self.n += y.len() as u64;
+        self.curvature = Cache::default();
+        self.expansion = Cache::default();
+        self.refresh_from_reservoir(settings);
         Ok(report)
+    }
+
+    /// Cholesky factor of `H_P + R`, the pool's mean Hessian plus the learner's ridge
+    /// (`λ` on weights, the tiny intercept ridge on intercepts); `None` for an empty pool or when the
+    /// factorisation fails.
+    ///
+    /// Why this matrix: the Hessian of the incremental training objective at `θ` is
+    /// `(n_P/N) H_P + (1/N) Σ_B ∇²ℓ_i(θ) + R`, and a batch drawn like the pool has a mean Hessian close to
+    /// `H_P`, so `H_P + R` is a good fixed matrix for the chord method ([`super::learner::train_chord`])
+    /// whatever the batch — it does not depend on the batch or on `N`, and is computed once per summary.
+    pub fn curvature_factor(&self, l2: f64) -> Option<Arc<Cholesky>> {
+        if self.n == 0 {
+            return None;
+        }
+        let trace: f64 = self.hess.diag().sum();
+        self.curvature.get_or((l2.to_bits(), trace.to_bits()), || {
+            let p = self.feature_map.output_dim();
+            let mut h = self.hess.clone();
+            for idx in 0..h.nrows() {
+                h[[idx, idx]] += if idx % p == p - 1 {
+                    INTERCEPT_RIDGE
+                } else {
+                    l2
+                };
+            }
+            Cholesky::factor(h).map(Arc::new)
+        })
+    }
+
+    /// Whether the reservoir holds every pool item (then the summary's pool term is exact).
+    pub fn reservoir_is_whole_pool(&self) -> bool {
+        self.n > 0 && self.reservoir_y.len() as u64 == self.n
+    }
+
+    /// The reservoir's mean cross-entropy, gradient and Hessian at `θ_P` (cached per summary state).
+    fn reservoir_expansion(&self, l2: f64) -> Arc<Expansion> {
+        let key = (self.n, self.loss.to_bits() ^ l2.to_bits());
+        self.expansion.get_or(key, || {
+            let k = self.n_classes;
+            let y = one_hot(&self.reservoir_y, k);
+            let obj = Objective {
+                phi: self.reservoir_phi.view(),
+                y: y.view(),
+                weight: None,
+                norm: self.reservoir_y.len().max(1) as f64,
+                l2,
+                prior: None,
+            };
+            let theta = self.theta();
+            let (f, g, prob) = obj.value_grad(&theta);
+            let (pen_f, pen_g) = penalty(&theta, self.reservoir_phi.ncols(), l2);
+            Arc::new((f - pen_f, g - pen_g, obj.data_hessian(prob.view())))
+        })
+    }
+
+    /// The pool's part of the training objective for a batch of `batch_len` items.
+    ///
+    /// * The quadratic alone (`g = g_P`, `H = H_P`) when the batch is small next to the pool
+    ///   (`n_B < reservoir_min_share · n_P`): the optimum then moves so little that the second-order model
+    ///   is accurate, and scoring costs the same whatever the pool size.
+    /// * Otherwise the reservoir as a control variate for the terms beyond second order: its rows enter
+    ///   with weight `n_P/|R|` and the quadratic becomes `g = g_P − g_R`, `H = H_P − H_R` (`g_R`, `H_R` the
+    ///   reservoir's own mean gradient and Hessian at `θ_P`), so that
+    ///   `ℓ̄_P(θ) ≈ q_P(θ) + [ℓ̄_R(θ) − q_R(θ)]`: the exact pool loss when the reservoir is the whole pool,
+    ///   an unbiased estimate of the higher-order remainder when it is a uniform sample (a control variate:
+    ///   the sampled quantity is the remainder, not the loss). A batch that is a large share of the pool
+    ///   moves the model far enough for the remainder to matter: the loss of confidently fitted items rises
+    ///   faster than its quadratic model.
+    pub fn term(&self, settings: &ModelSettings, batch_len: usize) -> PoolTerm {
+        let n = self.n as f64;
+        let use_reservoir = !self.reservoir_y.is_empty()
+            && self.reservoir_phi.nrows() == self.reservoir_y.len()
+            && (batch_len as f64) >= settings.reservoir_min_share * n;
+        if !use_reservoir {
+            return PoolTerm {
+                n,
+                rows: None,
+                center: self.theta(),
+                grad: self.grad.clone(),
+                hess: self.hess.clone(),
+            };
+        }
+        let e = self.reservoir_expansion(settings.l2);
+        let r = self.reservoir_y.len() as f64;
+        PoolTerm {
+            n,
+            rows: Some((
+                self.reservoir_phi.clone(),
+                one_hot(&self.reservoir_y, self.n_classes),
+                n / r,
+            )),
+            center: self.theta(),
+            grad: &self.grad - &e.1,
+            hess: &self.hess - &e.2,
+        }
+    }
+
+    /// Offer items to the reservoir (Algorithm R): item number `t` (0-based over the pool's history) is
+    /// kept with probability `capacity / (t + 1)`, replacing a uniformly chosen slot, so that the reservoir
+    /// is at every moment a uniform sample of the pool. Deterministic for a given seed and history.
+    fn offer(&mut self, phi: ArrayView2<'_, f64>, y: &[usize], capacity: usize, seed: u64) {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(
+            seed ^ self.n.wrapping_mul(0x9E37_79B9_7F4A_7C15),
+        );
+        if self.reservoir_phi.ncols() != phi.ncols() {
+            self.reservoir_phi = Array2::zeros((0, phi.ncols()));
+            self.reservoir_y.clear();
+        }
+        let mut rows: Vec<f64> = self.reservoir_phi.iter().copied().collect();
+        let p = phi.ncols();
+        for (j, (row, &label)) in phi.rows().into_iter().zip(y).enumerate() {
+            let t = self.n + j as u64;
+            if self.reservoir_y.len() < capacity {
+                rows.extend(row.iter());
+                self.reservoir_y.push(label);
+            } else if capacity > 0 {
+                let u = rng.random_range(0..=t);
+                if u < capacity as u64 {
+                    let u = u as usize;
+                    rows[u * p..(u + 1) * p]
+                        .iter_mut()
+                        .zip(row.iter())
+                        .for_each(|(d, &v)| *d = v);
+                    self.reservoir_y[u] = label;
+                }
+            }
+        }
+        self.reservoir_phi =
+            Array2::from_shape_vec((self.reservoir_y.len(), p), rows).expect("rows of p features");
+    }
+
+    /// When the reservoir holds the whole pool, replace the carried loss, gradient and Hessian by their
+    /// exact values over the pool's items at `θ_P` (an exact refresh for free while the pool is small).
+    fn refresh_from_reservoir(&mut self, settings: &ModelSettings) {
+        if self.reservoir_is_whole_pool() {
+            let e = self.reservoir_expansion(settings.l2);
+            self.loss = e.0;
+            self.grad = e.1.clone();
+            self.hess = e.2.clone();
+            self.curvature = Cache::default();
+        }
     }
 
     /// Number of items summarised.
@@ -217,8 +515,16 @@ impl PoolSummary {
     }
 
     /// Bytes held by the summary's arrays.
+    ///
+    /// The quadratic model is `p·K + p·K + (p·K)²` doubles; the reservoir `|R|·p` doubles plus its labels;
+    /// while the reservoir is in use, the caches hold one more `(p·K)²` Hessian and its Cholesky factor.
     pub fn memory_bytes(&self) -> usize {
-        8 * (self.w.len() + self.grad.len() + self.hess.len() + self.feature_map.omega.len())
+        8 * (self.w.len()
+            + self.grad.len()
+            + self.hess.len()
+            + self.feature_map.omega.len()
+            + self.reservoir_phi.len())
+            + std::mem::size_of::<usize>() * self.reservoir_y.len()
     }
 }
 

@@ -286,24 +286,140 @@ fn summary_mode_agrees_with_exact_mode() {
     );
 }
 
-#[test]
-fn absorbing_batches_tracks_the_exact_summary() {
+/// Absorb `x, y` into an empty summary in three batches, and fit the same items at once.
+fn absorbed_and_fitted(settings: &ModelSettings) -> (PoolSummary, PoolSummary) {
     let k = 3;
     let (x, y) = blobs(900, 3, k, 30);
-    let settings = ModelSettings::default();
     let stdz = Standardizer::fit(&[x.view()]).unwrap();
     let fm = FeatureMap::new(stdz, settings.feature_map, settings.seed).unwrap();
     let mut inc = PoolSummary::empty(fm.clone(), k);
     for c in 0..3 {
         let r = c * 300..(c + 1) * 300;
-        inc.absorb(&settings, x.slice(ndarray::s![r.clone(), ..]), &y[r])
+        inc.absorb(settings, x.slice(ndarray::s![r.clone(), ..]), &y[r])
             .unwrap();
     }
-    let (exact, _) = PoolSummary::fit(&settings, fm, k, x.view(), &y).unwrap();
+    let (exact, _) = PoolSummary::fit(settings, fm, k, x.view(), &y).unwrap();
     assert_eq!(inc.len(), 900);
-    let diff = (&inc.w - &exact.w)
-        .mapv(f64::abs)
-        .fold(0.0f64, |a, &b| a.max(b));
-    let scale = exact.w.mapv(f64::abs).fold(0.0f64, |a, &b| a.max(b));
+    (inc, exact)
+}
+
+fn max_abs<D: ndarray::Dimension>(a: &ndarray::Array<f64, D>) -> f64 {
+    a.iter().fold(0.0f64, |m, &v| m.max(v.abs()))
+}
+
+#[test]
+fn absorbing_batches_tracks_the_exact_summary() {
+    // Quadratic model alone (no reservoir): the carried Hessian drifts, the optimum stays close.
+    let settings = ModelSettings {
+        pool_reservoir: 0,
+        ..ModelSettings::default()
+    };
+    let (inc, exact) = absorbed_and_fitted(&settings);
+    let diff = max_abs(&(&inc.w - &exact.w));
+    let scale = max_abs(&exact.w);
     assert!(diff <= 0.05 * scale, "max |ΔW| {diff} vs scale {scale}");
+    assert!(inc.reservoir_y.is_empty());
+}
+
+#[test]
+fn absorbing_is_exact_while_the_pool_fits_in_the_reservoir() {
+    // With the reservoir holding every item, each absorb solves the exact objective and refreshes the
+    // gradient and Hessian from the items: the summary equals a fit on all items up to solver tolerance.
+    let settings = ModelSettings::default();
+    let (inc, exact) = absorbed_and_fitted(&settings);
+    assert!(inc.reservoir_is_whole_pool());
+    assert!(max_abs(&(&inc.w - &exact.w)) <= 1e-5 * max_abs(&exact.w));
+    assert!(max_abs(&(&inc.hess - &exact.hess)) <= 1e-5 * max_abs(&exact.hess));
+    assert!(max_abs(&(&inc.grad - &exact.grad)) <= 1e-6);
+    assert!(
+        (inc.loss - exact.loss).abs() <= 1e-7,
+        "loss {} vs {}",
+        inc.loss,
+        exact.loss
+    );
+}
+
+#[test]
+fn reservoir_is_a_uniform_sample_of_the_pool() {
+    // Algorithm R (Vitter, "Random Sampling with a Reservoir", ACM TOMS 1985): after n items, each item is
+    // in a reservoir of capacity r with probability r/n, wherever it came in the stream. 500 items reach
+    // the summary as a fit of 100 and four absorbed batches of 100; capacity 50, so every item's inclusion
+    // probability is 0.1. Over 300 seeds, the mean inclusion rate of the first 100 items (the ones that
+    // filled the reservoir) and of the last 100 must both be 0.1 (σ of each mean ≈ 0.0017; the bound is
+    // ±0.02). A reservoir that kept the first items, or favoured late ones, fails by a wide margin.
+    let k = 2;
+    let n = 500;
+    let x = Array2::from_shape_fn((n, 1), |(i, _)| i as f64);
+    let y: Vec<usize> = (0..n).map(|i| i % k).collect();
+    let mut hits = vec![0usize; n];
+    let seeds = 300;
+    for seed in 0..seeds {
+        let settings = ModelSettings {
+            pool_reservoir: 50,
+            seed,
+            inner_max_iters: 5,
+            ..ModelSettings::default()
+        };
+        let stdz = Standardizer::fit(&[x.view()]).unwrap();
+        let fm = FeatureMap::new(stdz, settings.feature_map, settings.seed).unwrap();
+        let first = x.slice(ndarray::s![0..100, ..]);
+        let (mut s, _) = PoolSummary::fit(&settings, fm.clone(), k, first, &y[..100]).unwrap();
+        for b in 1..5 {
+            let r = b * 100..(b + 1) * 100;
+            s.absorb(&settings, x.slice(ndarray::s![r.clone(), ..]), &y[r])
+                .unwrap();
+        }
+        assert_eq!(s.reservoir_y.len(), 50);
+        // Identify items by their mapped feature (the standardised index, a strictly increasing map).
+        let phi = fm.apply(x.view()).unwrap();
+        for row in s.reservoir_phi.rows() {
+            let i = (0..n)
+                .find(|&i| phi[[i, 0]] == row[0])
+                .expect("a reservoir row is a pool item");
+            hits[i] += 1;
+        }
+    }
+    let rate = |r: std::ops::Range<usize>| {
+        let len = r.len() as f64;
+        r.map(|i| hits[i] as f64).sum::<f64>() / (len * seeds as f64)
+    };
+    let (early, late) = (rate(0..100), rate(400..500));
+    assert!(
+        (early - 0.1).abs() < 0.02,
+        "first 100 items kept at rate {early}"
+    );
+    assert!(
+        (late - 0.1).abs() < 0.02,
+        "last 100 items kept at rate {late}"
+    );
+}
+
+#[test]
+fn chord_method_reaches_newtons_optimum() {
+    // The chord method on a fixed factor (here the Hessian at θ = 0) must land on Newton's optimum.
+    use super::learner::{train_chord, train_newton};
+    use super::linalg::Cholesky;
+    let k = 3;
+    let (x, y) = blobs(400, 4, k, 41);
+    let stdz = Standardizer::fit(&[x.view()]).unwrap();
+    let fm = FeatureMap::new(stdz, FeatureMapKind::Linear, 1).unwrap();
+    let phi = fm.apply(x.view()).unwrap();
+    let yy = one_hot(&y, k);
+    let obj = Objective {
+        phi: phi.view(),
+        y: yy.view(),
+        weight: None,
+        norm: 400.0,
+        l2: 1e-2,
+        prior: None,
+    };
+    let m = phi.ncols() * k;
+    let far = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    let (theta_n, rep_n) = train_newton(&obj, Array1::zeros(m), 1e-9, 100, far);
+    let (_, _, prob0) = obj.value_grad(&Array1::zeros(m));
+    let factor = Cholesky::factor(obj.hessian(prob0.view())).unwrap();
+    let (theta_c, rep_c, _) = train_chord(&obj, Array1::zeros(m), &factor, 1e-9, 500, far);
+    assert!(rep_n.converged && rep_c.converged, "{rep_n:?} {rep_c:?}");
+    let diff = max_abs(&(&theta_n - &theta_c));
+    assert!(diff < 1e-6, "chord vs Newton: max |Δθ| {diff}");
 }

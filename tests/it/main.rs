@@ -6,6 +6,7 @@
 //! - `assess_cli` — the `labelweir assess` contract: output, exit codes, bad input.
 //! - `daemon`     — the watching daemon end to end: verdicts, folders, notices, audit, pool, hostile input.
 //! - `crash`      — SIGKILL at random moments, restart, invariants.
+//! - `policy`     — the verdict policy on the engine's output at a large pool (flagged share).
 //! - `review`     — quarantine review, trusted-set upkeep, notices, audit through the binary.
 //! - `alerting`   — alert rules, dashboard and service unit checked with the real tools.
 
@@ -14,5 +15,6 @@ mod assess_cli;
 mod crash;
 mod daemon;
 mod engine;
+mod policy;
 mod review;
 mod util;
