@@ -759,12 +759,12 @@ pub fn assess(
     };
     let inner = Inner {
         phi: phi_all,
-        y_pool: pool_rows.y.clone(),
+        y_pool: pool_rows.y,
         weight,
         batch: batch_rows,
         norm,
         l2: settings.l2,
-        prior: pool_rows.term.clone(),
+        prior: pool_rows.term,
     };
     let ctx = Ctx {
         settings,

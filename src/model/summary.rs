@@ -235,17 +235,6 @@ impl PoolSummary {
         flatten_pk(self.w.view())
     }
 
-    /// The pool term for a training objective whose data normaliser is `norm` (`≥ n_P`): the quadratic
-    /// model with weight `n_P / norm`.
-    pub fn prior<'a>(&'a self, center: &'a Array1<f64>, norm: f64) -> Quadratic<'a> {
-        Quadratic {
-            scale: self.n as f64 / norm,
-            center: center.view(),
-            grad: self.grad.view(),
-            hess: self.hess.view(),
-        }
-    }
-
     /// Absorb an accepted batch: re-solve over (summary ⊕ batch), then
     /// `g ← [n_P (g_P + H_P ΔW) + Σ_B ∇ℓ_i] / (n_P + n_B)`, `H ← [n_P H_P + Σ_B ∇²ℓ_i] / (n_P + n_B)`,
     /// all at the new optimum (the pool's Hessian is carried, not re-evaluated: the exact refresh corrects

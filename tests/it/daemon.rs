@@ -782,6 +782,24 @@ fn a_burst_of_1000_small_batches_is_fully_processed() {
         .is_none());
 }
 
+/// With the daemon running: deliver a clean 200-item batch, then a 150-item batch with 30 % region flips
+/// (data seeds `seed` and `seed + 1`), wait for both verdicts, and return the quarantine folder's files and
+/// the held batch's id.
+fn clean_then_poisoned(ws: &Ws, seed: u64) -> (Vec<String>, String) {
+    ws.deliver("v1", "clean.csv", &clean_batch("c", 200, seed).csv());
+    ws.wait_settled(1, T);
+    ws.deliver(
+        "v1",
+        "bad.csv",
+        &region_flipped_batch("p", 150, seed + 1, 0.3).csv(),
+    );
+    ws.wait_settled(2, T);
+    let q = ws.files_in("quarantine");
+    assert_eq!(q.len(), 1, "the poisoned batch is held");
+    let id = q[0].split('.').next().unwrap().to_string();
+    (q, id)
+}
+
 /// The pool summary follows pool changes made while the daemon was stopped: a release is absorbed at the
 /// next start (watermark), a withdrawal makes it rebuild exactly (pool epoch).
 #[test]
@@ -789,18 +807,8 @@ fn pool_summary_catches_up_with_offline_pool_changes() {
     use labelweir::store::{AuditRecord, BatchState, PoolChange, PoolEntry};
     let ws = Ws::new(&["v1"]);
     let d = Daemon::start(&ws);
-    ws.deliver("v1", "clean.csv", &clean_batch("c", 200, 81).csv());
-    ws.wait_settled(1, T);
-    ws.deliver(
-        "v1",
-        "bad.csv",
-        &region_flipped_batch("p", 150, 82, 0.3).csv(),
-    );
-    ws.wait_settled(2, T);
+    let (q, id) = clean_then_poisoned(&ws, 81);
     assert!(d.stop().success());
-    let q = ws.files_in("quarantine");
-    assert_eq!(q.len(), 1, "the poisoned batch is held");
-    let id = q[0].split('.').next().unwrap().to_string();
     let pool_gauge = |d: &Daemon| -> u64 {
         let (_, text) = http_get(d.addr, "/metrics").unwrap();
         text.lines()
@@ -875,17 +883,7 @@ fn pool_summary_catches_up_with_offline_pool_changes() {
 fn a_live_release_updates_pool_and_metrics() {
     let ws = Ws::new(&["v1"]);
     let d = Daemon::start(&ws);
-    ws.deliver("v1", "clean.csv", &clean_batch("c", 200, 91).csv());
-    ws.wait_settled(1, T);
-    ws.deliver(
-        "v1",
-        "bad.csv",
-        &region_flipped_batch("p", 150, 92, 0.3).csv(),
-    );
-    ws.wait_settled(2, T);
-    let q = ws.files_in("quarantine");
-    assert_eq!(q.len(), 1);
-    let id = q[0].split('.').next().unwrap().to_string();
+    let (_, id) = clean_then_poisoned(&ws, 91);
     let dir = ws.dir.display().to_string();
     // The file reaches quarantine/ a moment before its terminal state is recorded (filing order: file,
     // report, notice, state); a release in that window is refused as "decided", so retry briefly.
