@@ -411,6 +411,10 @@ pub fn report_json(r: &Report) -> Value {
             "share": a.expected_flagged_share,
             "sd": a.expected_flagged_sd,
         },
+        "expected_damage": {
+            "damage": a.expected_damage,
+            "sd": a.expected_damage_sd,
+        },
         "target_reached": a.target_reached,
         "trusted_loss": {
             "pool": a.trusted_loss_pool,

@@ -134,7 +134,7 @@ pub struct Timings {
 }
 
 /// What the engine says about one batch.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
 pub struct Assessment {
     /// Fraction of the batch's label mass that must move so that the model trained on pool ∪ repaired batch
     /// fits the trusted items at least as well as the target (see [`Assessment::trusted_loss_target`]).
@@ -186,6 +186,19 @@ pub struct Assessment {
     /// Standard deviation of that share (Poisson-binomial): `√(Σ_i q_i (1 − q_i)) / n`.
     #[serde(default)]
     pub expected_flagged_sd: f64,
+    /// The damage to expect if every item's label were drawn from its reference distribution `p_ref`:
+    /// `E ≈ damage + Σ_i ⟨G_i, p_ref,i − y_i⟩ + E[r]` with `G = ∂Φ/∂Y` the label hypergradient at the
+    /// delivered labels (the implicit-function-theorem gradient the repair path starts from) and `r ≥ 0`
+    /// the second-order remainder of the trusted loss, estimated from a few seeded label draws through the
+    /// same linearisation (see `expected_damage` in this module's source). Where the learner separates the
+    /// classes poorly a clean batch's damage is noisy — another sample of plausible labels moves the trusted
+    /// loss by this much — and the policy compares the observed damage with `E + z·sd` at cold start.
+    /// Checked against brute-force relabelling and retraining in `tests/it/engine.rs`.
+    #[serde(default)]
+    pub expected_damage: f64,
+    /// Standard deviation of that damage (labels drawn independently).
+    #[serde(default)]
+    pub expected_damage_sd: f64,
 }
 
 /// Sizes of the inputs of an assessment.
@@ -468,6 +481,92 @@ impl Ctx<'_> {
     }
 }
 
+/// Label draws behind the second-order part of [`Assessment::expected_damage`].
+const EXPECTED_DAMAGE_DRAWS: usize = 16;
+
+/// The damage to expect from the batch labelled the way the reference model expects, and its standard
+/// deviation (see [`Assessment::expected_damage`]).
+///
+/// Labels `Y′_i ~ Categorical(p_ref,i)`, independently. The trained model moves linearly with the labels
+/// (the linearisation the repair path uses, `θ′ = θ̂ + J (Y′ − Y)`, `J = H⁻¹ Φ_Bᵀ / N`), and the trusted loss
+/// is expanded around `θ̂`:
+///
+///   `Φ(θ′) = Φ(θ̂) + ⟨G, Y′ − Y⟩ + r(Y′)`,  `G = Jᵀ ∇Φ(θ̂)` (the label hypergradient),
+///
+/// with `r ≥ 0` the remainder (the trusted loss is convex in `θ`). The linear term has closed-form moments,
+///
+///   `E⟨G, Y′ − Y⟩ = Σ_i ⟨G_i, p_ref,i − y_i⟩`,  `Var = Σ_i ( Σ_c p_ic G_ic² − (Σ_c p_ic G_ic)² )`,
+///
+/// and the remainder (Jensen's gap: the label noise spreads `θ′`, which raises the mean trusted loss) is
+/// estimated from [`EXPECTED_DAMAGE_DRAWS`] seeded draws, each one linear solve with the factor already
+/// in hand and one evaluation of `Φ`; the linear term serves as a control variate for it, so the draws
+/// estimate only the small second-order part.
+#[allow(clippy::too_many_arguments)]
+fn expected_damage(
+    ctx: &Ctx<'_>,
+    lin: &Linearisation,
+    g: &Array2<f64>,
+    p_ref: &Array2<f64>,
+    batch_y: &[usize],
+    damage: f64,
+    phi_with: f64,
+    seed: u64,
+) -> (f64, f64) {
+    let (mut shift, mut var) = (0.0, 0.0);
+    for (i, (p, gi)) in p_ref.rows().into_iter().zip(g.rows()).enumerate() {
+        let mean: f64 = p.iter().zip(gi.iter()).map(|(pc, gc)| pc * gc).sum();
+        let second: f64 = p.iter().zip(gi.iter()).map(|(pc, gc)| pc * gc * gc).sum();
+        shift += mean - gi[batch_y[i]];
+        var += (second - mean * mean).max(0.0);
+    }
+    let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x4441_4d47);
+    let k = p_ref.ncols();
+    let mut lin_terms = Vec::with_capacity(EXPECTED_DAMAGE_DRAWS);
+    let mut remainders = Vec::with_capacity(EXPECTED_DAMAGE_DRAWS);
+    let mut warm = None;
+    for _ in 0..EXPECTED_DAMAGE_DRAWS {
+        let mut y = Array2::zeros((batch_y.len(), k));
+        let mut linear = 0.0;
+        for (i, p) in p_ref.rows().into_iter().enumerate() {
+            let u: f64 = rand::Rng::random(&mut rng);
+            let mut acc = 0.0;
+            let c = p
+                .iter()
+                .position(|&pc| {
+                    acc += pc;
+                    u < acc
+                })
+                .unwrap_or(k - 1);
+            y[[i, c]] = 1.0;
+            linear += g[[i, c]] - g[[i, batch_y[i]]];
+        }
+        let theta = ctx.theta_at(lin, &y, &mut warm);
+        let phi = ctx.trusted_value(&theta);
+        lin_terms.push(linear);
+        remainders.push(phi - phi_with - linear);
+    }
+    let n = EXPECTED_DAMAGE_DRAWS as f64;
+    let r_mean = remainders.iter().sum::<f64>() / n;
+    let l_mean = lin_terms.iter().sum::<f64>() / n;
+    let r_var = remainders.iter().map(|r| (r - r_mean).powi(2)).sum::<f64>() / (n - 1.0);
+    let cov = remainders
+        .iter()
+        .zip(&lin_terms)
+        .map(|(r, l)| (r - r_mean) * (l - l_mean))
+        .sum::<f64>()
+        / (n - 1.0);
+    let mean = damage + shift + r_mean;
+    let sd = (var + r_var + 2.0 * cov)
+        .max(var.min(r_var))
+        .max(0.0)
+        .sqrt();
+    if mean.is_finite() && sd.is_finite() {
+        (mean, sd)
+    } else {
+        (damage + shift, var.sqrt())
+    }
+}
+
 /// Moved mass per item, `m_i = 1 − Y_i[ŷ_i]`.
 fn moved(y: &Array2<f64>, given: &[usize]) -> Vec<f64> {
     given
@@ -707,7 +806,11 @@ pub fn assess(
     };
     let (phi_pool_loss, _, prob_t_pool) =
         trusted_loss(phi_t.view(), trusted.y, trusted.weight, &theta_p, k);
-    let big_pool = n_p >= settings.min_reference_pool as u64 && n_p > 0;
+    // The pool is the reference once it holds `min_reference_pool` items, or sooner when it already holds
+    // `reference_items_per_param` items per learner parameter (a small learner on a small pool).
+    let big_pool = n_p > 0
+        && (n_p >= settings.min_reference_pool as u64
+            || n_p as f64 >= settings.reference_items_per_param * m as f64);
 
     // Cross-validated trusted loss (only needed while the pool is too small to be the reference).
     let mut ref_pred_t: Vec<usize> = prob_t_pool
@@ -816,6 +919,16 @@ pub fn assess(
     let mut warm_d: Option<Array1<f64>> = None;
     let mut warm_q: Option<Array1<f64>> = None;
     let (_, g0) = ctx.loss_and_hypergradient(&lin, &theta_hat, &mut warm_q);
+    let (expected_damage, expected_damage_sd) = expected_damage(
+        &ctx,
+        &lin,
+        &g0,
+        &p_ref,
+        batch_y,
+        damage,
+        phi_with,
+        settings.seed,
+    );
     // γ at which item i's label starts to move (first order, KKT at Y = Ŷ): n_B max_k (G_iŷ − G_ik)⁺.
     let entry: Vec<f64> = (0..n_b)
         .map(|i| {
@@ -1098,6 +1211,8 @@ pub fn assess(
         },
         expected_flagged_share,
         expected_flagged_sd,
+        expected_damage,
+        expected_damage_sd,
     })
 }
 
