@@ -165,14 +165,22 @@ pub fn check_against_meta(config: &Config, meta: &WorkspaceMeta) -> Result<(), D
     Ok(())
 }
 
-/// Reconcile the store with `processing/` after a start: file batches left `Decided`, forget claims
-/// whose rename never happened, and return the `Claimed` batches whose files wait in `processing/`.
+/// Reconcile the store with the folders after a start: file batches left `Decided`, finish review
+/// decisions a crash interrupted (file moves, pending vendor notices), forget claims whose rename never
+/// happened, and return the `Claimed` batches whose files wait in `processing/`.
 pub fn reconcile(
     ws: &Workspace,
     config: &Config,
     store: &Store,
     metrics: Option<&Metrics>,
 ) -> Result<Vec<BatchRecord>, DaemonError> {
+    match crate::review::finish_pending(ws, config, store) {
+        Ok(0) => {}
+        Ok(n) => tracing::info!(done = n, "recovery: finished interrupted review decisions"),
+        Err(e) => {
+            tracing::warn!(error = %e, "recovery: finishing interrupted review decisions failed; the next review command retries")
+        }
+    }
     for rec in store.batches_in(&[BatchState::Decided])? {
         tracing::info!(batch_id = %rec.id, vendor = %rec.vendor, "recovery: filing a decided batch");
         crate::actions::settle(ws, config, store, metrics, &rec, None)

@@ -21,8 +21,9 @@
 //! inside the transaction, so of two reviewers deciding the same batch at once the second is refused
 //! ([`ReviewError::Refused`]) and nothing is released twice. Side effects follow the flushed transition:
 //! the file moves out of `quarantine/` (release → `accepted/`, reject and withdraw → `rejected/`, with its
-//! report), then the vendor notice is written (and recorded in the audit trail). If the process dies in
-//! between, the next review command finishes the move ([`finish_moves`]).
+//! report), then the vendor notice is written (and recorded in the audit trail). The notice is stored with
+//! the decision, in the same transaction (an outbox), so if the process dies in between, the next review
+//! command or daemon start finishes the move and sends the notice ([`finish_pending`]).
 //!
 //! # Trusted set
 //!
@@ -1332,13 +1333,40 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     } else {
         PoolChange::None
     };
+    // The vendor notice is recorded with the decision (an outbox: see `finish_pending`).
+    let items: Vec<NoticeItem> = excluded_ids
+        .iter()
+        .map(|id| NoticeItem {
+            id: id.clone(),
+            reasons: vec![item_codes::EXCLUDED_BY_REVIEWER.into()],
+            proposed_label: None,
+            suspicion: None,
+        })
+        .chain(relabeled.iter().map(|(id, _, to)| NoticeItem {
+            id: id.clone(),
+            reasons: vec![item_codes::RELABELED_BY_REVIEWER.into()],
+            proposed_label: Some(to.clone()),
+            suspicion: None,
+        }))
+        .collect();
+    let mut n = review_notice(
+        &rec,
+        NoticeVerdict::Released,
+        NoticeReason::new(
+            "released_on_review",
+            "A reviewer checked the flagged items and released the batch.",
+        ),
+    );
+    n.items_total = rec.items.map(|x| x as u64);
+    n.items_listed_total = items.len() as u64;
+    n.items = items;
     let settled = env.store.transition(
         &rec.id,
         &[BatchState::Quarantined],
         BatchState::Released,
         pool,
         vec![audit],
-        |_| {},
+        |r| r.pending_notices.push(n),
     )?;
     env.hooks.pool_changed();
     let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
@@ -1401,33 +1429,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         }
     }
     // Side effects after the flushed decision.
-    let items: Vec<NoticeItem> = excluded_ids
-        .iter()
-        .map(|id| NoticeItem {
-            id: id.clone(),
-            reasons: vec![item_codes::EXCLUDED_BY_REVIEWER.into()],
-            proposed_label: None,
-            suspicion: None,
-        })
-        .chain(relabeled.iter().map(|(id, _, to)| NoticeItem {
-            id: id.clone(),
-            reasons: vec![item_codes::RELABELED_BY_REVIEWER.into()],
-            proposed_label: Some(to.clone()),
-            suspicion: None,
-        }))
-        .collect();
-    let mut n = review_notice(
-        &settled,
-        NoticeVerdict::Released,
-        NoticeReason::new(
-            "released_on_review",
-            "A reviewer checked the flagged items and released the batch.",
-        ),
-    );
-    n.items_total = settled.items.map(|x| x as u64);
-    n.items_listed_total = items.len() as u64;
-    n.items = items;
-    finish_decision(env, &settled, &req.by, n, &mut report);
+    finish_decision(env, &settled, &req.by, &mut report);
     Ok(report)
 }
 
@@ -1486,24 +1488,15 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
         .outcome(BatchState::ReviewRejected.as_str())
         .reason(req.reason.clone())
         .detail(detail);
-    let settled = env.store.transition(
-        &rec.id,
-        &[BatchState::Quarantined],
-        BatchState::ReviewRejected,
-        PoolChange::None,
-        vec![audit],
-        |_| {},
-    )?;
-    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
     let mut n = review_notice(
-        &settled,
+        &rec,
         NoticeVerdict::Rejected,
         NoticeReason::new(
             "rejected_on_review",
             "A reviewer checked the flagged items and rejected the batch.",
         ),
     );
-    let items: Vec<NoticeItem> = settled
+    let items: Vec<NoticeItem> = rec
         .suspects
         .iter()
         .filter(|s| s.proposed_label != s.label)
@@ -1514,16 +1507,24 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
             suspicion: Some(s.suspicion),
         })
         .collect();
-    n.items_total = settled.items.map(|x| x as u64);
-    n.items_listed_total = settled
-        .scores
-        .as_ref()
-        .map_or(items.len(), |s| s.flagged_items.max(items.len()))
-        as u64;
+    n.items_total = rec.items.map(|x| x as u64);
+    n.items_listed_total =
+        rec.scores
+            .as_ref()
+            .map_or(items.len(), |s| s.flagged_items.max(items.len())) as u64;
     n.items = items;
     n.disclosure.by_reviewer = req.disclose_proposed;
     n.disclosure.proposed_labels = req.disclose_proposed;
-    finish_decision(env, &settled, &req.by, n, &mut report);
+    let settled = env.store.transition(
+        &rec.id,
+        &[BatchState::Quarantined],
+        BatchState::ReviewRejected,
+        PoolChange::None,
+        vec![audit],
+        |r| r.pending_notices.push(n),
+    )?;
+    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
+    finish_decision(env, &settled, &req.by, &mut report);
     Ok(report)
 }
 
@@ -1541,26 +1542,26 @@ pub fn withdraw(env: &ReviewEnv<'_>, req: &WithdrawRequest) -> Result<DecisionRe
         .outcome(BatchState::Withdrawn.as_str())
         .reason(req.reason.clone())
         .detail(caller_detail(env));
-    let settled = env.store.transition(
-        &rec.id,
-        &allowed,
-        BatchState::Withdrawn,
-        PoolChange::Remove,
-        vec![audit],
-        |_| {},
-    )?;
-    env.hooks.pool_changed();
-    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
     let mut n = review_notice(
-        &settled,
+        &rec,
         NoticeVerdict::Withdrawn,
         NoticeReason::new(
             "withdrawn_on_review",
             "After a re-check, a reviewer took the batch back out of the training pool.",
         ),
     );
-    n.items_total = settled.items.map(|x| x as u64);
-    finish_decision(env, &settled, &req.by, n, &mut report);
+    n.items_total = rec.items.map(|x| x as u64);
+    let settled = env.store.transition(
+        &rec.id,
+        &allowed,
+        BatchState::Withdrawn,
+        PoolChange::Remove,
+        vec![audit],
+        |r| r.pending_notices.push(n),
+    )?;
+    env.hooks.pool_changed();
+    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
+    finish_decision(env, &settled, &req.by, &mut report);
     Ok(report)
 }
 
@@ -1591,42 +1592,59 @@ fn review_notice(rec: &BatchRecord, verdict: NoticeVerdict, reason: NoticeReason
     n
 }
 
-/// Move the file, write the notice, record the notice in the audit trail. Failures become warnings: the
-/// decision itself is already recorded.
-fn finish_decision(
-    env: &ReviewEnv<'_>,
-    rec: &BatchRecord,
-    by: &str,
-    notice_: Notice,
-    report: &mut DecisionReport,
-) {
+/// Move the file, then write the notice recorded with the decision and clear it from the record (with an
+/// audit entry). Failures become warnings: the decision itself is already recorded, and the next review
+/// command or daemon start finishes what is left ([`finish_pending`]).
+fn finish_decision(env: &ReviewEnv<'_>, rec: &BatchRecord, by: &str, report: &mut DecisionReport) {
     match move_for_state(env.ws, rec) {
         Ok(p) => report.file = p,
         Err(e) => report.warnings.push(format!(
             "moving the batch file failed ({e}); the next review command retries"
         )),
     }
-    let dir = env.ws.notices(&rec.vendor);
-    match notice::write_notice(&dir, &notice_, &env.config.notices) {
-        Ok(paths) => {
-            report.notices = paths
-                .iter()
-                .filter_map(|p| p.file_name().map(|s| s.to_string_lossy().into_owned()))
-                .collect();
-            let audit = AuditRecord::new(by, "notice")
-                .batch(&rec.id, &rec.vendor)
-                .outcome(notice_.verdict.as_str())
-                .detail(serde_json::json!({ "files": report.notices }));
-            if let Err(e) = env.store.append_audit(vec![audit]) {
-                report.warnings.push(format!(
-                    "recording the notice in the audit trail failed: {e}"
-                ));
-            }
-        }
-        Err(e) => report
-            .warnings
-            .push(format!("writing the vendor notice failed: {e}")),
+    match send_pending_notice(env.ws, env.config, env.store, rec, by) {
+        Ok(files) => report.notices = files,
+        Err(e) => report.warnings.push(format!(
+            "writing the vendor notice failed ({e}); the next review command retries"
+        )),
     }
+}
+
+/// Write a record's pending vendor notices, then remove them from the record in the store together with
+/// an audit entry each naming the files ([`Store::notices_sent`]). Writing is idempotent (same file
+/// names), so a crash between the two, or two processes finishing the same decision, only writes the
+/// same files again. Returns the file names (none when nothing was pending).
+fn send_pending_notice(
+    ws: &Workspace,
+    config: &Config,
+    store: &Store,
+    rec: &BatchRecord,
+    by: &str,
+) -> Result<Vec<String>, ReviewError> {
+    if rec.pending_notices.is_empty() {
+        return Ok(Vec::new());
+    }
+    let dir = ws.notices(&rec.vendor);
+    let mut files = Vec::new();
+    let mut audits = Vec::new();
+    for pending in &rec.pending_notices {
+        let paths =
+            notice::write_notice(&dir, pending, &config.notices).map_err(io_err(dir.display()))?;
+        let these: Vec<String> = paths
+            .iter()
+            .filter_map(|p| p.file_name().map(|s| s.to_string_lossy().into_owned()))
+            .collect();
+        audits.push(
+            AuditRecord::new(by, "notice")
+                .batch(&rec.id, &rec.vendor)
+                .outcome(pending.verdict.as_str())
+                .detail(serde_json::json!({ "files": these })),
+        );
+        files.extend(these);
+    }
+    // Recorded only if still pending: whoever sent them first keeps the single audit entry.
+    store.notices_sent(&rec.id, &rec.pending_notices, &files, audits)?;
+    Ok(files)
 }
 
 /// Move a decided batch's file (and its report) out of `quarantine/` or `accepted/` into the folder its
@@ -1665,17 +1683,33 @@ fn move_for_state(ws: &Workspace, rec: &BatchRecord) -> Result<Option<PathBuf>, 
     Ok(target.exists().then_some(target))
 }
 
-/// Finish file moves that a crash interrupted after a review decision was recorded.
-pub fn finish_moves(env: &ReviewEnv<'_>) -> Result<usize, ReviewError> {
+/// Finish what a crash interrupted after a review decision was recorded: file moves and vendor notices.
+fn finish_moves(env: &ReviewEnv<'_>) -> Result<usize, ReviewError> {
+    finish_pending(env.ws, env.config, env.store)
+}
+
+/// Finish what a crash interrupted after review decisions were recorded: move each decided file into
+/// the folder its state calls for, and write each notice still pending in its record (an outbox: the
+/// notice is stored in the same transaction as the decision, so it cannot be lost). Returns how many
+/// moves and notices it did. Run by every review command and at the daemon's start.
+pub fn finish_pending(
+    ws: &Workspace,
+    config: &Config,
+    store: &Store,
+) -> Result<usize, ReviewError> {
     let mut n = 0;
-    for rec in env.store.batches_in(&[
+    for rec in store.batches_in(&[
         BatchState::Released,
         BatchState::ReviewRejected,
         BatchState::Withdrawn,
     ])? {
         let dest = folder_for_state(rec.state).unwrap_or("rejected");
-        if !env.ws.folder(dest).join(&rec.file_name).exists() {
-            move_for_state(env.ws, &rec)?;
+        if !ws.folder(dest).join(&rec.file_name).exists() {
+            move_for_state(ws, &rec)?;
+            n += 1;
+        }
+        if !rec.pending_notices.is_empty() {
+            send_pending_notice(ws, config, store, &rec, "labelweir")?;
             n += 1;
         }
     }

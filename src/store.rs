@@ -313,6 +313,11 @@ pub struct BatchRecord {
     pub pool_seq: Option<u64>,
     /// Notice files written for it (names inside `notices/<vendor>/`).
     pub notices: Vec<String>,
+    /// Review decisions' vendor notices, each stored in the same transaction as its decision and removed
+    /// once its files are written: a crash in between cannot lose one (`review::finish_pending` sends
+    /// them).
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub pending_notices: Vec<crate::notice::Notice>,
 }
 
 impl BatchRecord {
@@ -342,6 +347,7 @@ impl BatchRecord {
             broken_trusted: Vec::new(),
             pool_seq: None,
             notices: Vec::new(),
+            pending_notices: Vec::new(),
         }
     }
 }
@@ -645,7 +651,23 @@ impl std::fmt::Debug for Store {
 
 impl Store {
     /// Open (or create) the store in `dir` (a workspace's `state/` folder).
+    ///
+    /// A store that another handle is still letting go of (its background flusher holds the lock for a
+    /// moment after the last drop) is retried for up to a second before [`StoreError::Locked`].
     pub fn open(dir: &Path, settings: &StoreSettings) -> Result<Self, StoreError> {
+        let mut tries = 0;
+        loop {
+            match Self::open_once(dir, settings) {
+                Err(StoreError::Locked(_)) if tries < 10 => {
+                    tries += 1;
+                    std::thread::sleep(std::time::Duration::from_millis(100));
+                }
+                other => return other,
+            }
+        }
+    }
+
+    fn open_once(dir: &Path, settings: &StoreSettings) -> Result<Self, StoreError> {
         let flush = (settings.flush_every_ms > 0).then_some(settings.flush_every_ms);
         let db = sled::Config::new()
             .path(dir)
@@ -1023,6 +1045,57 @@ impl Store {
             Ok(record)
         })?;
         Ok(stored)
+    }
+
+    /// Record that a batch's pending vendor notices were written: remove `sent` from its pending list, add
+    /// `files` to its notice files and append `audit`, in one transaction, and only if every one of `sent`
+    /// is still pending (notices are matched by their file stem: batch id and verdict). Another process may have sent the same notices first (two review commands
+    /// finishing the same interrupted decision); then nothing is written and the result is `false`.
+    pub fn notices_sent(
+        &self,
+        batch_id: &str,
+        sent: &[crate::notice::Notice],
+        files: &[String],
+        audit: Vec<AuditRecord>,
+    ) -> Result<bool, StoreError> {
+        let mut audits = Vec::with_capacity(audit.len());
+        for a in audit {
+            audits.push(self.prepare_audit(a)?);
+        }
+        self.run_tx("notices sent", |t| {
+            let cur = t[T_BATCHES].get(batch_id.as_bytes())?.ok_or_else(|| {
+                ConflictableTransactionError::Abort(StoreError::NotFound {
+                    what: "batch",
+                    key: batch_id.to_string(),
+                })
+            })?;
+            let mut record: BatchRecord = dec("batch", batch_id.as_bytes(), &cur)
+                .map_err(ConflictableTransactionError::Abort)?;
+            // A notice is known by its file stem (batch id and verdict), which names its files.
+            let stems: Vec<String> = sent.iter().map(|n| n.file_stem()).collect();
+            let pending: Vec<String> = record
+                .pending_notices
+                .iter()
+                .map(|n| n.file_stem())
+                .collect();
+            if !stems.iter().all(|st| pending.contains(st)) {
+                return Ok(false);
+            }
+            record
+                .pending_notices
+                .retain(|n| !stems.contains(&n.file_stem()));
+            for f in files {
+                if !record.notices.contains(f) {
+                    record.notices.push(f.clone());
+                }
+            }
+            let rv = enc("batch", &record).map_err(ConflictableTransactionError::Abort)?;
+            t[T_BATCHES].insert(batch_id.as_bytes(), rv)?;
+            for (k, v) in &audits {
+                t[T_AUDIT].insert(k, v.as_slice())?;
+            }
+            Ok(true)
+        })
     }
 
     /// Highest pool sequence number handed out so far.
@@ -1413,6 +1486,62 @@ mod tests {
             ["verdict", "release"]
         );
         assert!(audit[0].seq < audit[1].seq);
+    }
+
+    #[test]
+    fn pending_notices_are_recorded_as_sent_once() {
+        use crate::notice::{BatchRef, DecidedBy, Notice, NoticeVerdict};
+        let (_d, s) = tmp_store();
+        let r = claimed(&s);
+        let notice = |v| {
+            Notice::new(
+                v,
+                DecidedBy::Reviewer,
+                BatchRef {
+                    batch_id: r.id.clone(),
+                    vendor: r.vendor.clone(),
+                    file_name: None,
+                    sha256: None,
+                    received_at: r.claimed_at,
+                    decided_at: r.claimed_at,
+                },
+            )
+        };
+        let (a, b) = (
+            notice(NoticeVerdict::Released),
+            notice(NoticeVerdict::Withdrawn),
+        );
+        let pending = vec![a.clone(), b.clone()];
+        s.transition(
+            &r.id,
+            &[BatchState::Claimed],
+            BatchState::Claimed,
+            PoolChange::None,
+            vec![],
+            |rec| rec.pending_notices = pending,
+        )
+        .unwrap();
+        let audits = || s.audit_since(0).unwrap().len();
+        let before = audits();
+        let files = vec!["x.released.json".to_string()];
+        let sent = |n: &[Notice]| {
+            s.notices_sent(&r.id, n, &files, vec![AuditRecord::new("t", "notice")])
+                .unwrap()
+        };
+        assert!(sent(std::slice::from_ref(&a)));
+        let rec = s.batch(&r.id).unwrap().unwrap();
+        // (Timestamps are stored to the millisecond: compare by file stem.)
+        let stems: Vec<String> = rec.pending_notices.iter().map(Notice::file_stem).collect();
+        assert_eq!(stems, vec![b.file_stem()]);
+        assert_eq!(rec.notices, files);
+        assert_eq!(audits(), before + 1);
+        // A second sender of the same notice finds it gone: nothing is written.
+        assert!(!sent(std::slice::from_ref(&a)));
+        assert!(!sent(&[a, b.clone()]));
+        assert_eq!(audits(), before + 1);
+        assert!(sent(&[b]));
+        assert!(s.batch(&r.id).unwrap().unwrap().pending_notices.is_empty());
+        assert_eq!(audits(), before + 2);
     }
 
     #[test]

@@ -482,7 +482,14 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     assert!(moved > 0);
     let _ = uniform;
 
-    // Reject with the proposed labels disclosed (the reviewer's choice).
+    // Reject with the proposed labels disclosed (the reviewer's choice). The notice cannot be written at
+    // first (a folder squats on its file name, as a crash between decision and notice would leave it
+    // unwritten): the decision stands, the notice waits in the store, and the next review command writes it.
+    let notice_path = ws
+        .path("notices")
+        .join("glassline")
+        .join(format!("{uid}.rejected.json"));
+    std::fs::create_dir(&notice_path).unwrap();
     let rej = ok_json(&[
         "quarantine",
         "reject",
@@ -496,6 +503,27 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
         "--json",
     ]);
     assert_eq!(rej["state"], "review_rejected");
+    assert!(
+        rej["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|w| w.as_str().unwrap().contains("vendor notice")),
+        "{rej}"
+    );
+    let notices_of = |id: &str| {
+        String::from_utf8_lossy(&lw(&["audit", &dir, "--json"]).stdout)
+            .lines()
+            .filter(|l| l.contains("\"action\":\"notice\"") && l.contains(id))
+            .count()
+    };
+    assert_eq!(notices_of(&uid), 0);
+    std::fs::remove_dir(&notice_path).unwrap();
+    assert!(lw(&["quarantine", "list", &dir]).status.success());
+    assert!(notice_path.is_file(), "the pending notice is written");
+    assert_eq!(notices_of(&uid), 1, "and recorded once in the audit trail");
+    assert!(lw(&["quarantine", "list", &dir]).status.success());
+    assert_eq!(notices_of(&uid), 1, "and not sent again");
     let n: Value = serde_json::from_slice(
         &std::fs::read(
             ws.path("notices")
