@@ -102,6 +102,16 @@ pub struct Shared {
     pub pool_items: AtomicU64,
     /// Accepted batches whose speculative absorb was adopted (the others went through [`catch_up`]).
     pub speculative_absorbs: AtomicU64,
+    /// When the scoring loop last came round (milliseconds since the Unix epoch): every 500 ms while idle,
+    /// and after each batch. The systemd watchdog pings only while this is recent.
+    pub heartbeat_ms: AtomicU64,
+}
+
+/// Milliseconds since the Unix epoch (0 if the clock is before it).
+pub fn now_ms() -> u64 {
+    std::time::SystemTime::now()
+        .duration_since(std::time::UNIX_EPOCH)
+        .map_or(0, |d| d.as_millis() as u64)
 }
 
 /// The handle the rest of the daemon (and the admin server) holds.
@@ -334,6 +344,7 @@ pub fn spawn(
     // Publish the pool and trusted-set gauges before the daemon reports ready, not whenever the new
     // thread first runs (a scrape right after `/readyz` turned 200 would otherwise see 0).
     worker.publish_pool();
+    worker.shared.heartbeat_ms.store(now_ms(), Ordering::SeqCst);
     let cap = worker.config.ingest.queue_capacity;
     let (tx, rx) = std::sync::mpsc::sync_channel::<Job>(cap);
     let handle = ScoringHandle {
@@ -432,6 +443,7 @@ impl Worker {
         let mut refreshing = false;
         self.publish_pool();
         let result = loop {
+            self.shared.heartbeat_ms.store(now_ms(), Ordering::SeqCst);
             if self.shared.cancel.load(Ordering::SeqCst) {
                 break Ok(());
             }

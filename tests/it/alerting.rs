@@ -1322,9 +1322,10 @@ fn service_unit_passes_systemd_analyze() {
         assert_eq!(get(k), [v], "{k}={v}");
     }
     assert!(get("TimeoutStopSec").len() == 1);
-    assert!(
-        get("WatchdogSec").is_empty(),
-        "the daemon sends no watchdog pings"
+    assert_eq!(
+        get("WatchdogSec"),
+        ["30s"],
+        "the daemon pings the watchdog (see daemon::tests and tests/it/daemon.rs)"
     );
 
     // /usr/bin/labelweir is not installed here: verify a copy that runs the binary under test.

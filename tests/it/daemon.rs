@@ -736,6 +736,65 @@ fn second_daemon_on_the_same_workspace_exits_74() {
 }
 
 #[test]
+fn systemd_notifications_ready_watchdog_and_stopping() {
+    // As systemd runs it with `Type=notify` and `WatchdogSec=`: NOTIFY_SOCKET names a datagram socket,
+    // WATCHDOG_USEC the interval and WATCHDOG_PID the main process (the shell's pid, kept by `exec`). The
+    // protocol is sd_notify(3)'s: newline-separated `KEY=VALUE` datagrams.
+    use std::os::unix::net::UnixDatagram;
+    let ws = Ws::new(&["v1"]);
+    let sock_path = ws.tmp.path().join("notify.sock");
+    let sock = UnixDatagram::bind(&sock_path).unwrap();
+    sock.set_read_timeout(Some(Duration::from_millis(200)))
+        .unwrap();
+    let addr = free_addr();
+    let mut child = std::process::Command::new("sh")
+        .arg("-c")
+        .arg(r#"WATCHDOG_PID=$$ exec "$0" run "$1" --listen "$2""#)
+        .arg(bin())
+        .arg(&ws.dir)
+        .arg(addr.to_string())
+        .env("NOTIFY_SOCKET", &sock_path)
+        .env("WATCHDOG_USEC", "400000")
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut seen: Vec<String> = Vec::new();
+    let mut buf = [0u8; 512];
+    let started = std::time::Instant::now();
+    // Ready, then pings every ~200 ms: wait for READY=1 and three pings after it.
+    while started.elapsed() < T {
+        if let Ok(n) = sock.recv(&mut buf) {
+            seen.extend(
+                String::from_utf8_lossy(&buf[..n])
+                    .lines()
+                    .map(str::to_string),
+            );
+        }
+        let ready_at = seen.iter().position(|l| l == "READY=1");
+        if ready_at.is_some_and(|r| seen[r..].iter().filter(|l| *l == "WATCHDOG=1").count() >= 3) {
+            break;
+        }
+    }
+    assert!(seen.iter().any(|l| l == "READY=1"), "{seen:?}");
+    assert!(
+        seen.iter().filter(|l| *l == "WATCHDOG=1").count() >= 3,
+        "{seen:?}"
+    );
+    signal(child.id(), "TERM");
+    let status = wait_with_timeout(&mut child, T);
+    assert!(status.success(), "{status:?}");
+    while let Ok(n) = sock.recv(&mut buf) {
+        seen.extend(
+            String::from_utf8_lossy(&buf[..n])
+                .lines()
+                .map(str::to_string),
+        );
+    }
+    assert!(seen.iter().any(|l| l == "STOPPING=1"), "{seen:?}");
+}
+
+#[test]
 fn a_burst_of_1000_small_batches_is_fully_processed() {
     let ws = Ws::with(
         &["v1", "v2"],

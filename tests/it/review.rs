@@ -589,7 +589,13 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     assert_eq!(lost.status.code(), Some(2), "{}", stderr(lost));
     assert!(stderr(lost).contains("refused"), "{}", stderr(lost));
 
-    // Withdraw it again (the same command works on released batches) and check the pool.
+    // Withdraw it again (the same command works on released batches) and check the pool. Its notice
+    // cannot be written yet (a folder squats on the name); the daemon's next start sends it.
+    let withdrawn_notice = ws
+        .path("notices")
+        .join("glassline")
+        .join(format!("{rid}.withdrawn.json"));
+    std::fs::create_dir(&withdrawn_notice).unwrap();
     let w = ok_json(&[
         "quarantine",
         "withdraw",
@@ -602,6 +608,7 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
         "--json",
     ]);
     assert_eq!(w["state"], "withdrawn");
+    std::fs::remove_dir(&withdrawn_notice).unwrap();
     let store = ws.store();
     assert_eq!(store.pool_items().unwrap(), 800);
     assert!(!store.pool_batches().unwrap().contains(&rid));
@@ -636,6 +643,10 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     assert_eq!(out.status.code(), Some(2));
 
     // The daemon starts again on the edited store, and its pool matches.
+    assert!(
+        !withdrawn_notice.exists(),
+        "still pending before the daemon starts"
+    );
     let d = Daemon::start(&ws);
     let t = Instant::now();
     while metric(d.addr, "labelweir_pool_items") != Some(800.0) {
@@ -647,6 +658,22 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
         std::thread::sleep(Duration::from_millis(100));
     }
     assert!(d.stop().success());
+    assert!(
+        withdrawn_notice.is_file(),
+        "the daemon's start sent the pending notice"
+    );
+    let sent = ws
+        .store()
+        .audit_since(0)
+        .unwrap()
+        .into_iter()
+        .filter(|a| {
+            a.action == "notice"
+                && a.batch_id.as_deref() == Some(rid.as_str())
+                && a.outcome.as_deref() == Some("withdrawn")
+        })
+        .count();
+    assert_eq!(sent, 1);
 }
 
 fn trusted_file(ws: &Ws, name: &str, prefix: &str, per_class: usize, seed: u64) -> String {
