@@ -186,9 +186,16 @@ async fn serve_one(ctx: Arc<DaemonContext>, stream: tokio::net::UnixStream) -> s
                     .name("labelweir-admin".into())
                     .spawn(move || {
                         let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                            // The configuration of the last successful reload, if any.
+                            let config = ctx
+                                .scoring
+                                .shared
+                                .reload
+                                .current()
+                                .unwrap_or_else(|| ctx.config.clone());
                             let env = ReviewEnv {
                                 ws: &ctx.ws,
-                                config: &ctx.config,
+                                config: &config,
                                 store: &ctx.store,
                                 meta: &ctx.meta,
                                 hooks: &ctx.scoring,

@@ -236,7 +236,70 @@ pub fn valid_vendor_name(name: &str) -> bool {
         && name != "tmp"
 }
 
+/// A configuration published by a successful SIGHUP reload; each pipeline thread picks it up at its next
+/// safe point (between batches), the admin socket at its next request.
+#[derive(Debug, Default)]
+pub struct ConfigSlot {
+    inner: std::sync::RwLock<Option<(u64, std::sync::Arc<Config>)>>,
+}
+
+impl ConfigSlot {
+    /// Publish a new configuration (generation numbers count up from 1).
+    pub fn publish(&self, config: std::sync::Arc<Config>) {
+        if let Ok(mut g) = self.inner.write() {
+            let generation = g.as_ref().map_or(1, |(n, _)| n + 1);
+            *g = Some((generation, config));
+        }
+    }
+
+    /// The configuration published after generation `*seen`, if any (and `*seen` moves to it).
+    pub fn newer(&self, seen: &mut u64) -> Option<std::sync::Arc<Config>> {
+        let g = self.inner.read().ok()?;
+        match &*g {
+            Some((n, c)) if *n > *seen => {
+                *seen = *n;
+                Some(c.clone())
+            }
+            _ => None,
+        }
+    }
+
+    /// The latest published configuration, if any.
+    pub fn current(&self) -> Option<std::sync::Arc<Config>> {
+        self.inner.read().ok()?.as_ref().map(|(_, c)| c.clone())
+    }
+}
+
 impl Config {
+    /// The settings that differ between `self` and `new` and take effect only at start, so a running
+    /// daemon cannot reload them: `vendors`, `[http]`, `[schema]`, `[store]`, `[pool]`, `[model]` (the pool
+    /// summary and the scores already recorded depend on it) and `ingest.watcher`, `ingest.poll_interval_ms`
+    /// and `ingest.queue_capacity`. `[policy]`, `[notices]`, `[trusted]` and the rest of `[ingest]` reload.
+    pub fn restart_only_changes(&self, new: &Config) -> Vec<&'static str> {
+        let mut out = Vec::new();
+        let mut check = |differs: bool, name: &'static str| {
+            if differs {
+                out.push(name);
+            }
+        };
+        check(self.vendors != new.vendors, "vendors");
+        check(self.http != new.http, "http");
+        check(self.schema != new.schema, "schema");
+        check(self.store != new.store, "store");
+        check(self.pool != new.pool, "pool");
+        check(self.model != new.model, "model");
+        check(self.ingest.watcher != new.ingest.watcher, "ingest.watcher");
+        check(
+            self.ingest.poll_interval_ms != new.ingest.poll_interval_ms,
+            "ingest.poll_interval_ms",
+        );
+        check(
+            self.ingest.queue_capacity != new.ingest.queue_capacity,
+            "ingest.queue_capacity",
+        );
+        out
+    }
+
     /// Parse TOML text without semantic validation (the shipped file has no vendors and parses this way).
     pub fn parse_str(text: &str, path: &Path) -> Result<Self, ConfigError> {
         toml::from_str(text).map_err(|e| ConfigError::Parse {
@@ -473,6 +536,51 @@ impl Workspace {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn reload_accepts_policy_and_refuses_restart_only_settings() {
+        let a = Config::default();
+        let mut b = a.clone();
+        b.policy.max_flagged_share = 0.2;
+        b.notices.markdown = !a.notices.markdown;
+        b.ingest.rescan_interval_secs = 5;
+        assert!(a.restart_only_changes(&b).is_empty());
+        b.model.l2 *= 2.0;
+        b.ingest.queue_capacity += 1;
+        b.vendors.push("new-vendor".into());
+        assert_eq!(
+            a.restart_only_changes(&b),
+            vec!["vendors", "model", "ingest.queue_capacity"]
+        );
+    }
+
+    #[test]
+    fn config_slot_hands_each_reader_every_newer_generation_once() {
+        let slot = ConfigSlot::default();
+        let mut seen = 0;
+        assert!(slot.newer(&mut seen).is_none() && slot.current().is_none());
+        let mut c = Config::default();
+        c.policy.max_flagged_share = 0.2;
+        slot.publish(std::sync::Arc::new(c.clone()));
+        assert_eq!(
+            slot.newer(&mut seen).map(|x| x.policy.max_flagged_share),
+            Some(0.2)
+        );
+        assert_eq!(seen, 1);
+        assert!(slot.newer(&mut seen).is_none(), "only once");
+        c.policy.max_flagged_share = 0.3;
+        slot.publish(std::sync::Arc::new(c));
+        let mut late = 0;
+        assert_eq!(
+            slot.newer(&mut late).map(|x| x.policy.max_flagged_share),
+            Some(0.3)
+        );
+        assert_eq!(late, 2);
+        assert_eq!(
+            slot.current().map(|x| x.policy.max_flagged_share),
+            Some(0.3)
+        );
+    }
 
     #[test]
     fn shipped_file_is_the_defaults() {

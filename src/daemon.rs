@@ -482,12 +482,13 @@ impl Ingest {
                 return Ok(());
             }
         }
-        let interval = Duration::from_secs(self.config.ingest.rescan_interval_secs);
+        let mut interval = Duration::from_secs(self.config.ingest.rescan_interval_secs);
         let vendors = self.config.vendors.clone();
         let mut next_timer = Instant::now();
         let mut reason: &'static str = "startup";
         let mut next_ready: Option<SystemTime> = None;
         let mut first = true;
+        let mut config_seen = 0;
         loop {
             let targets: Vec<String>;
             {
@@ -550,6 +551,12 @@ impl Ingest {
                 if timer {
                     next_timer = now + interval;
                 }
+            }
+            // A reloaded configuration applies from this scan (vendors cannot change at runtime; a new
+            // rescan interval from the next timer).
+            if let Some(c) = self.scoring.shared.reload.newer(&mut config_seen) {
+                self.config = c;
+                interval = Duration::from_secs(self.config.ingest.rescan_interval_secs);
             }
             if targets.len() == vendors.len() {
                 self.metrics.rescan(reason);
@@ -818,10 +825,11 @@ pub async fn run(
     // settings feed threads that are built once); a file that no longer validates is reported through
     // labelweir_config_last_reload_successful 0 and the error log, and the running config stays in use.
     let hup = {
-        let (path, metrics, running, mut rx) = (
+        let (path, metrics, started_with, shared, mut rx) = (
             ws.config_file(),
             metrics.clone(),
             config.clone(),
+            shared.clone(),
             stop_rx.clone(),
         );
         tokio::spawn(async move {
@@ -836,11 +844,26 @@ pub async fn run(
                 }
                 match Config::from_file(&path) {
                     Ok(c) => {
-                        metrics.config_loaded(true);
-                        if c != *running {
-                            tracing::warn!("configuration changed on disk; it is valid and takes effect at the next restart");
-                        } else {
+                        let running = shared
+                            .reload
+                            .current()
+                            .unwrap_or_else(|| started_with.clone());
+                        let fixed = running.restart_only_changes(&c);
+                        if c == *running {
+                            metrics.config_loaded(true);
                             tracing::info!("configuration re-read: unchanged and valid");
+                        } else if fixed.is_empty() {
+                            shared.reload.publish(Arc::new(c));
+                            metrics.config_loaded(true);
+                            tracing::info!(
+                                "configuration reloaded; it applies from the next batch"
+                            );
+                        } else {
+                            metrics.config_loaded(false);
+                            tracing::error!(
+                                settings = %fixed.join(", "),
+                                "configuration not reloaded: these settings change only at a restart; keeping the running configuration (restart to apply, or undo them and send SIGHUP again)"
+                            );
                         }
                     }
                     Err(e) => {

@@ -102,6 +102,9 @@ pub struct Shared {
     pub pool_items: AtomicU64,
     /// Accepted batches whose speculative absorb was adopted (the others went through [`catch_up`]).
     pub speculative_absorbs: AtomicU64,
+    /// A configuration published by a SIGHUP reload (the worker, the filer, the ingest thread and the
+    /// admin socket pick it up between batches).
+    pub reload: crate::config::ConfigSlot,
     /// When the scoring loop last came round (milliseconds since the Unix epoch): every 500 ms while idle,
     /// and after each batch. The systemd watchdog pings only while this is recent.
     pub heartbeat_ms: AtomicU64,
@@ -396,8 +399,12 @@ struct Filer {
 }
 
 impl Filer {
-    fn run(self, rx: Receiver<Filing>) -> Result<(), ScoringError> {
+    fn run(mut self, rx: Receiver<Filing>) -> Result<(), ScoringError> {
+        let mut config_seen = 0;
         for f in rx {
+            if let Some(c) = self.shared.reload.newer(&mut config_seen) {
+                self.config = c;
+            }
             let t = Instant::now();
             let settled = crate::actions::settle(
                 &self.ws,
@@ -442,6 +449,7 @@ impl Worker {
         let refreshed: Refreshed = Arc::new(Mutex::new(None));
         let mut refreshing = false;
         self.publish_pool();
+        let mut config_seen = 0;
         let result = loop {
             self.shared.heartbeat_ms.store(now_ms(), Ordering::SeqCst);
             if self.shared.cancel.load(Ordering::SeqCst) {
@@ -458,6 +466,10 @@ impl Worker {
                     if self.shared.cancel.load(Ordering::SeqCst) {
                         // Abandon at a safe point: the file stays in processing/ and is redone at start.
                         break Ok(());
+                    }
+                    // A reloaded configuration applies from the next batch.
+                    if let Some(c) = self.shared.reload.newer(&mut config_seen) {
+                        self.config = c;
                     }
                     if let Err(e) = self.process(job, filer) {
                         break Err(e);

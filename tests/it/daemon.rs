@@ -795,6 +795,60 @@ fn systemd_notifications_ready_watchdog_and_stopping() {
 }
 
 #[test]
+fn sighup_reloads_the_policy_and_refuses_restart_only_settings() {
+    let ws = Ws::new(&["v1"]);
+    let d = Daemon::start(&ws);
+    ws.deliver("v1", "a.csv", &clean_batch("a", 300, 31).csv());
+    ws.wait_settled(1, T);
+    assert_eq!(
+        ws.files_in("accepted").len(),
+        1,
+        "accepted under the shipped policy"
+    );
+    // An operator tightens the always-on flagged-share ceiling to 0 (any flagged item sends a batch to
+    // review) and sends SIGHUP: the next batch is judged by it.
+    ws.edit_config(&[("max_flagged_share = 0.35", "max_flagged_share = 0.0")]);
+    signal(d.pid(), "HUP");
+    d.wait_log("configuration reloaded", T);
+    ws.deliver("v1", "b.csv", &clean_batch("b", 300, 32).csv());
+    ws.wait_settled(2, T);
+    let q = ws.files_in("quarantine");
+    let id = q
+        .iter()
+        .find(|f| f.ends_with(".csv"))
+        .unwrap_or_else(|| panic!("quarantine: {q:?}"))
+        .split('.')
+        .next()
+        .unwrap()
+        .to_string();
+    let reasons: Vec<String> = ws.notice("v1", &id)["reasons"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|r| r["code"].as_str().unwrap_or_default().to_string())
+        .collect();
+    assert!(
+        reasons.iter().any(|r| r == "flagged_share_ceiling"),
+        "{reasons:?}"
+    );
+    // A setting that only a restart can change is refused, and the running configuration stays.
+    ws.edit_config(&[("l2 = 0.001", "l2 = 0.01")]);
+    signal(d.pid(), "HUP");
+    d.wait_log("configuration not reloaded", T);
+    assert!(d.log_text().contains("model"), "{}", d.log_text());
+    let t = std::time::Instant::now();
+    loop {
+        let (_, body) = http_get(d.addr, "/metrics").unwrap();
+        if body.contains("labelweir_config_last_reload_successful 0") {
+            break;
+        }
+        assert!(t.elapsed() < T, "{body}");
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    assert!(d.stop().success());
+}
+
+#[test]
 fn a_burst_of_1000_small_batches_is_fully_processed() {
     let ws = Ws::with(
         &["v1", "v2"],

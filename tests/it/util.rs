@@ -390,6 +390,24 @@ impl Daemon {
         }
     }
 
+    /// The daemon's process id.
+    pub fn pid(&self) -> u32 {
+        self.child.as_ref().map_or(0, std::process::Child::id)
+    }
+
+    /// Wait until the daemon's log contains `needle`.
+    pub fn wait_log(&self, needle: &str, timeout: Duration) {
+        let t = Instant::now();
+        while !self.log_text().contains(needle) {
+            assert!(
+                t.elapsed() < timeout,
+                "no {needle:?} in the log:\n{}",
+                self.log_text()
+            );
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+
     /// The daemon's log so far.
     pub fn log_text(&self) -> String {
         std::fs::read_to_string(&self.log).unwrap_or_default()
