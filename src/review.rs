@@ -1366,7 +1366,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         BatchState::Released,
         pool,
         vec![audit],
-        |r| r.pending_notices.push(n),
+        |r| r.pending_notices.push(n.clone()),
     )?;
     env.hooks.pool_changed();
     let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
@@ -1521,7 +1521,7 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
         BatchState::ReviewRejected,
         PoolChange::None,
         vec![audit],
-        |r| r.pending_notices.push(n),
+        |r| r.pending_notices.push(n.clone()),
     )?;
     let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
     finish_decision(env, &settled, &req.by, &mut report);
@@ -1557,7 +1557,7 @@ pub fn withdraw(env: &ReviewEnv<'_>, req: &WithdrawRequest) -> Result<DecisionRe
         BatchState::Withdrawn,
         PoolChange::Remove,
         vec![audit],
-        |r| r.pending_notices.push(n),
+        |r| r.pending_notices.push(n.clone()),
     )?;
     env.hooks.pool_changed();
     let mut report = DecisionReport::new(&settled, &req.by, &req.reason);

@@ -919,8 +919,10 @@ impl Store {
             .map(|a| Ok::<_, StoreError>((record.id.as_bytes().to_vec(), enc("assessment", a)?)))
             .transpose()?;
         let pool_add = pool.map(|p| p.encode()).transpose()?;
+        let prepared = record.clone();
         self.apply(
-            record,
+            &prepared.id,
+            &|r: &mut BatchRecord| *r = record.clone(),
             &[BatchState::Claimed],
             vec![audit],
             by_hash,
@@ -933,7 +935,9 @@ impl Store {
 
     /// Move a batch from one state to another in one flushed transaction, with its audit records and an
     /// optional pool change. Fails with [`StoreError::Conflict`] if the batch is not in one of `expect`
-    /// (so of two concurrent reviewers, the second is refused). `edit` may change any other field.
+    /// (so of two concurrent reviewers, the second is refused). `edit` may change any other field; it runs
+    /// inside the transaction on the record as stored (and again if the transaction retries), so a
+    /// concurrent change to another field is never overwritten.
     ///
     /// This is the pool-mutation path for review decisions: `release` is
     /// `transition(id, &[Quarantined], Released, PoolChange::Add(entry), ...)`; `withdraw` is
@@ -947,27 +951,23 @@ impl Store {
         to: BatchState,
         pool: PoolChange,
         audit: Vec<AuditRecord>,
-        edit: impl FnOnce(&mut BatchRecord),
+        edit: impl Fn(&mut BatchRecord),
     ) -> Result<BatchRecord, StoreError> {
-        let mut record = self.batch(batch_id)?.ok_or_else(|| StoreError::NotFound {
-            what: "batch",
-            key: batch_id.to_string(),
-        })?;
-        if !expect.contains(&record.state) {
-            return Err(conflict(&record, expect));
-        }
-        edit(&mut record);
-        record.state = to;
-        if to.is_settled() && record.settled_at.is_none() {
-            record.settled_at = Some(Utc::now());
-        }
+        let now = Utc::now();
         let (pool_add, pool_remove) = match pool {
             PoolChange::None => (None, None),
             PoolChange::Add(e) => (Some(e.encode()?), None),
             PoolChange::Remove => (None, Some(batch_id)),
         };
         self.apply(
-            record,
+            batch_id,
+            &|record: &mut BatchRecord| {
+                edit(record);
+                record.state = to;
+                if to.is_settled() && record.settled_at.is_none() {
+                    record.settled_at = Some(now);
+                }
+            },
             expect,
             audit,
             None,
@@ -981,7 +981,8 @@ impl Store {
     #[allow(clippy::too_many_arguments)]
     fn apply(
         &self,
-        record: BatchRecord,
+        id: &str,
+        edit: &dyn Fn(&mut BatchRecord),
         expect: &[BatchState],
         audit: Vec<AuditRecord>,
         by_hash: Option<(Vec<u8>, Vec<u8>)>,
@@ -994,16 +995,14 @@ impl Store {
         for a in audit {
             audits.push(self.prepare_audit(a)?);
         }
-        let id = record.id.clone();
         // The pool sequence number is read and bumped inside the transaction, so pool entries commit in
         // sequence order (two transactions adding to the pool conflict on the counter and one retries):
         // a reader that has seen sequence n has seen every entry below n.
         let stored = self.run_tx("transition", |t| {
-            let mut record = record.clone();
             let cur = t[T_BATCHES].get(id.as_bytes())?.ok_or_else(|| {
                 ConflictableTransactionError::Abort(StoreError::NotFound {
                     what: "batch",
-                    key: id.clone(),
+                    key: id.to_string(),
                 })
             })?;
             let cur: BatchRecord =
@@ -1011,6 +1010,8 @@ impl Store {
             if !expect.contains(&cur.state) {
                 return Err(ConflictableTransactionError::Abort(conflict(&cur, expect)));
             }
+            let mut record = cur;
+            edit(&mut record);
             if let Some(v) = &pool_add {
                 let seq = u64_of(t[T_META].get(META_POOL_SEQ)?) + 1;
                 t[T_META].insert(META_POOL_SEQ, &seq.to_be_bytes())?;
@@ -1518,7 +1519,7 @@ mod tests {
             BatchState::Claimed,
             PoolChange::None,
             vec![],
-            |rec| rec.pending_notices = pending,
+            |rec| rec.pending_notices = pending.clone(),
         )
         .unwrap();
         let audits = || s.audit_since(0).unwrap().len();
