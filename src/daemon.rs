@@ -101,9 +101,35 @@ fn io(what: &str) -> impl FnOnce(std::io::Error) -> DaemonError + '_ {
     move |e| DaemonError::Io(format!("{what}: {e}"))
 }
 
+/// Filesystems on which inotify does not see files written elsewhere (by other clients of a network share,
+/// or through a FUSE daemon), by their `statfs` magic number. Values of Linux's `include/uapi/linux/magic.h`
+/// as the statfs(2) manual page lists them, written here from memory; `NFS_SUPER_MAGIC` is checked against
+/// rustix's constant in a test.
+const REMOTE_FILESYSTEMS: [(u64, &str); 8] = [
+    (0x6969, "NFS"),
+    (0x517B, "SMB"),
+    (0xFF53_4D42, "CIFS"),
+    (0xFE53_4D42, "SMB2"),
+    (0x6573_5546, "FUSE"),
+    (0x0102_1997, "9p"),
+    (0x00C3_6400, "Ceph"),
+    (0x5346_414F, "AFS"),
+];
+
+/// The kind of network or FUSE filesystem holding `path`, if it is one (`None` also when `statfs` fails).
+pub fn remote_filesystem(path: &Path) -> Option<&'static str> {
+    let st = rustix::fs::statfs(path).ok()?;
+    // `f_type` is a C long; the magic numbers are 32-bit.
+    let magic = (st.f_type as u64) & 0xFFFF_FFFF;
+    REMOTE_FILESYSTEMS
+        .iter()
+        .find(|(m, _)| *m == magic)
+        .map(|(_, name)| *name)
+}
+
 /// Create missing folders (vendors may have been added to the config) and check that every folder is on
-/// one filesystem (renames between them must be atomic). Network mounts are not detected; use
-/// `ingest.watcher = "poll"` there.
+/// one filesystem (renames between them must be atomic), and that this filesystem is not a network or FUSE
+/// mount unless `ingest.watcher = "poll"` (inotify does not see remote writes there).
 pub fn prepare_folders(ws: &Workspace, config: &Config) -> Result<(), DaemonError> {
     if !ws.root.is_dir() {
         return Err(DaemonError::Config(format!(
@@ -143,6 +169,14 @@ pub fn prepare_folders(ws: &Workspace, config: &Config) -> Result<(), DaemonErro
                 )))
             }
             _ => {}
+        }
+    }
+    if config.ingest.watcher == WatcherKind::Native {
+        if let Some(kind) = remote_filesystem(&ws.inbox()) {
+            return Err(DaemonError::Config(format!(
+                "{} is on a {kind} filesystem, where inotify does not see files written by other machines or through the FUSE daemon; set [ingest] watcher = \"poll\" in labelweir.toml",
+                ws.inbox().display()
+            )));
         }
     }
     Ok(())
@@ -1523,6 +1557,19 @@ pub mod throughput {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn remote_filesystems_are_told_apart_from_local_ones() {
+        // The one magic number rustix exports, against the table written from memory.
+        assert_eq!(
+            REMOTE_FILESYSTEMS[0].0,
+            (rustix::fs::NFS_SUPER_MAGIC as u64) & 0xFFFF_FFFF
+        );
+        // The test machine's temporary folder is local (ext4, xfs, btrfs, tmpfs or overlayfs).
+        let d = tempfile::tempdir().unwrap();
+        assert_eq!(remote_filesystem(d.path()), None);
+        assert_eq!(remote_filesystem(Path::new("/no/such/folder")), None);
+    }
 
     #[test]
     fn watchdog_pings_every_half_interval_until_scoring_stalls() {
