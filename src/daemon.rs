@@ -855,8 +855,9 @@ pub async fn run(
     };
     let admin_task = tokio::spawn(crate::admin::serve(ctx, stop_rx.clone()));
 
-    // SIGHUP: re-read and validate the configuration. Changes take effect at the next start (the
-    // settings feed threads that are built once); a file that no longer validates is reported through
+    // SIGHUP: re-read and validate the configuration. A valid file whose changes are all runtime-safe
+    // (`Config::restart_only_changes`) is published to the pipeline threads, which take it between batches;
+    // an invalid file, or one that changes restart-only settings, is reported through
     // labelweir_config_last_reload_successful 0 and the error log, and the running config stays in use.
     let hup = {
         let (path, metrics, started_with, shared, mut rx) = (

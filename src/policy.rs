@@ -115,7 +115,7 @@ pub struct BatchSignals {
     #[serde(default)]
     pub expected_flagged_sd: f64,
     /// The damage to expect if the batch were labelled the way the engine's reference model expects
-    /// (`Assessment::expected_damage`, linearised), in nats, and its standard deviation. On data the learner
+    /// (`Assessment::expected_damage`), in nats, and its standard deviation. On data the learner
     /// separates poorly the cold-start damage rule asks for damage clearly above this. 0 and 0 when
     /// unknown (no effect).
     #[serde(default)]
@@ -150,6 +150,13 @@ impl BatchSignals {
             expected_damage: a.expected_damage,
             expected_damage_sd: a.expected_damage_sd,
         }
+    }
+
+    /// Whether the engine's learner separates this batch's classes poorly: labels that follow its reference
+    /// model would already flag more than `cold_start_weak_model_share` of the batch. The cold-start
+    /// flagged-share and damage limits then also ask for a clear excess over what such labels give.
+    pub fn separates_poorly(&self, settings: &PolicySettings) -> bool {
+        self.expected_flagged_share > settings.cold_start_weak_model_share
     }
 
     /// Signals of a batch the engine could not score: every field NaN, so the policy quarantines it
@@ -967,8 +974,7 @@ fn judge(
             // On data the learner separates poorly (the same test as for the flagged share), a clean
             // batch's damage is noisy: it must also clear E + z·sd, the damage to expect from labels that
             // follow the reference model.
-            let weak_model = signals
-                .is_some_and(|s| s.expected_flagged_share > settings.cold_start_weak_model_share);
+            let weak_model = signals.is_some_and(|s| s.separates_poorly(settings));
             let damage_expected = signals.map_or(f64::NEG_INFINITY, |s| {
                 s.expected_damage + settings.cold_start_damage_excess_z * s.expected_damage_sd
             });
@@ -1029,7 +1035,7 @@ fn judge(
                 // Where even labels that follow the reference model would flag more than
                 // `cold_start_weak_model_share` of the batch, the learner separates the classes poorly and
                 // the fixed limit says little: the share must also clear m₀ + z·sd.
-                let weak_model = s.expected_flagged_share > settings.cold_start_weak_model_share;
+                let weak_model = s.separates_poorly(settings);
                 let expected = s.expected_flagged_share
                     + settings.cold_start_flagged_excess_z * s.expected_flagged_sd;
                 if x > limit && (!weak_model || x > expected) {

@@ -105,16 +105,16 @@ pub struct Shared {
     /// A configuration published by a SIGHUP reload (the worker, the filer, the ingest thread and the
     /// admin socket pick it up between batches).
     pub reload: crate::config::ConfigSlot,
-    /// When the scoring loop last came round (milliseconds since the Unix epoch): every 500 ms while idle,
-    /// and after each batch. The systemd watchdog pings only while this is recent.
+    /// When the scoring loop last came round ([`now_ms`]): every 500 ms while idle, and after each batch.
+    /// The systemd watchdog pings only while this is recent.
     pub heartbeat_ms: AtomicU64,
 }
 
-/// Milliseconds since the Unix epoch (0 if the clock is before it).
+/// Milliseconds on a monotonic clock since the first call in this process (a wall-clock step, e.g. from
+/// NTP, neither fakes nor hides a stalled scoring loop).
 pub fn now_ms() -> u64 {
-    std::time::SystemTime::now()
-        .duration_since(std::time::UNIX_EPOCH)
-        .map_or(0, |d| d.as_millis() as u64)
+    static START: std::sync::OnceLock<Instant> = std::sync::OnceLock::new();
+    START.get_or_init(Instant::now).elapsed().as_millis() as u64
 }
 
 /// The handle the rest of the daemon (and the admin server) holds.

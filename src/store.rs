@@ -919,9 +919,8 @@ impl Store {
             .map(|a| Ok::<_, StoreError>((record.id.as_bytes().to_vec(), enc("assessment", a)?)))
             .transpose()?;
         let pool_add = pool.map(|p| p.encode()).transpose()?;
-        let prepared = record.clone();
         self.apply(
-            &prepared.id,
+            &record.id,
             &|r: &mut BatchRecord| *r = record.clone(),
             &[BatchState::Claimed],
             vec![audit],
@@ -1050,8 +1049,9 @@ impl Store {
 
     /// Record that a batch's pending vendor notices were written: remove `sent` from its pending list, add
     /// `files` to its notice files and append `audit`, in one transaction, and only if every one of `sent`
-    /// is still pending (notices are matched by their file stem: batch id and verdict). Another process may have sent the same notices first (two review commands
-    /// finishing the same interrupted decision); then nothing is written and the result is `false`.
+    /// is still pending (notices are matched by their file stem: batch id and verdict). Another process
+    /// may have sent the same notices first (two review commands finishing the same interrupted
+    /// decision); then nothing is written and the result is `false`.
     pub fn notices_sent(
         &self,
         batch_id: &str,

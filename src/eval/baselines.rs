@@ -181,7 +181,8 @@ pub fn fit_predict(
     learner.predict_proba(x_test)
 }
 
-fn argmax(it: impl Iterator<Item = f64>) -> usize {
+/// Index of the largest value (the first on ties; 0 for an empty iterator).
+pub(crate) fn argmax(it: impl Iterator<Item = f64>) -> usize {
     let mut best = (0, f64::NEG_INFINITY);
     for (i, v) in it.enumerate() {
         if v > best.1 {

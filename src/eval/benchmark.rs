@@ -36,7 +36,9 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
-use super::baselines::{cross_validated_loss, fit_predict, nearest_trusted, BaselineScores};
+use super::baselines::{
+    argmax, cross_validated_loss, fit_predict, nearest_trusted, BaselineScores,
+};
 use super::metrics::{
     auroc, average_precision, precision_at_recall, spearman, top_k_labels, top_k_set, TopKLabels,
 };
@@ -769,15 +771,7 @@ fn ceiling_scores(
     let proposed = prob
         .rows()
         .into_iter()
-        .map(|r| {
-            r.iter()
-                .enumerate()
-                .fold(
-                    (0, f64::NEG_INFINITY),
-                    |b, (c, &v)| if v > b.1 { (c, v) } else { b },
-                )
-                .0
-        })
+        .map(|r| argmax(r.iter().copied()))
         .collect();
     Ok((score, proposed))
 }
