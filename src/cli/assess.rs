@@ -371,9 +371,11 @@ pub fn report_json(r: &Report) -> Value {
                 "proposed_label": name(it.proposed_label),
                 "confidence": it.confidence,
                 "flagged": it.suspicion >= r.flag_threshold,
+                "repair_signal": it.repair_signal,
+                "repair_label": name(it.repair_label),
+                "learner_doubt": it.learner_doubt,
+                "repair_weight": it.repair_weight,
                 "repair_mass": it.repair_mass,
-                "path_score": it.path_score,
-                "reference_disagreement": it.reference_disagreement,
                 "flagged_at_step": it.flagged_at_step,
             })
         })
@@ -416,6 +418,15 @@ pub fn report_json(r: &Report) -> Value {
             "sd": a.expected_damage_sd,
         },
         "target_reached": a.target_reached,
+        "target_basis": a.target_basis,
+        "trusted_still_wrong": a.trusted_still_wrong,
+        "unknown": a.unknown,
+        "estimated_wrong_share": a.estimated_wrong_share,
+        "trusted_audit": a.trusted_audit,
+        "repair_path": {
+            "gammas": a.repair_path_gammas,
+            "flagged": a.repair_path_flagged,
+        },
         "trusted_loss": {
             "pool": a.trusted_loss_pool,
             "with_batch": a.trusted_loss_with_batch,

@@ -113,6 +113,46 @@ pub enum Attack {
     },
     /// The plant only: every wet-cardboard item of the batch labelled paper.
     WetCardboardAsPaper,
+    /// A labelling rule over one feature: items whose value on a (seeded) feature lies in its top `rate`
+    /// quantile of the batch are all given one class — self-consistent and learnable, the systematic-bias
+    /// setting of Zhang, Zhu & Wright 2018.
+    FeatureRule {
+        /// Share of the batch the rule covers (items already of the rule's class are left alone).
+        rate: f64,
+        /// Where the same bias already stands.
+        pool: PoolBias,
+    },
+    /// A labeler that confuses one class for another: `share` of the largest class's items get the class
+    /// whose pool centroid is nearest (class-conditional noise, the pair-flip setting of Natarajan et al.,
+    /// "Learning with Noisy Labels", NIPS 2013), with no cap on the share.
+    Confusion {
+        /// Share of the class's items confused.
+        share: f64,
+        /// Where the same bias already stands.
+        pool: PoolBias,
+    },
+}
+
+/// Whether the vendor's bias is already in the pool when its batch is scored.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum PoolBias {
+    /// The pool is clean.
+    Clean,
+    /// The same bias was accepted into the pool before (a vendor that poisoned from its first batch).
+    Biased,
+    /// No pool at all (cold start).
+    Empty,
+}
+
+impl PoolBias {
+    fn note(self) -> &'static str {
+        match self {
+            PoolBias::Clean => "",
+            PoolBias::Biased => ", same bias in the pool",
+            PoolBias::Empty => ", cold start",
+        }
+    }
 }
 
 impl Attack {
@@ -123,6 +163,14 @@ impl Attack {
             Attack::Uniform { rate } => format!("uniform flips {:.0}%", rate * 100.0),
             Attack::Targeted { rate } => format!("class-targeted {:.0}%", rate * 100.0),
             Attack::Region { rate } => format!("region flips {:.0}%", rate * 100.0),
+            Attack::FeatureRule { rate, pool } => {
+                format!("feature rule {:.0}%{}", rate * 100.0, pool.note())
+            }
+            Attack::Confusion { share, pool } => format!(
+                "class confusion {:.0}% of a class{}",
+                share * 100.0,
+                pool.note()
+            ),
             Attack::WetCardboardAsPaper => "wet cardboard → paper".into(),
         }
     }
@@ -155,8 +203,8 @@ impl MethodScore {
 /// The engine's own methods, the baselines and the ceiling, in table order.
 pub const METHODS: [&str; 6] = [
     "labelweir (suspicion)",
-    "  repair path alone",
-    "  reference model alone",
+    "  repair signal alone",
+    "  learner doubt alone",
     "nearest trusted (baseline)",
     "cross-validated loss (baseline)",
     CEILING,
@@ -207,6 +255,12 @@ pub struct CaseReport {
     /// Share of the batch's items whose true label is the pool model's most probable class, mean: a ceiling
     /// for proposals from any model of the learner's capacity trained on this pool.
     pub learner_accuracy: f64,
+    /// Share of the batch's items flagged (suspicion ≥ the flag threshold), mean over repetitions.
+    pub flagged_share: f64,
+    /// The batch's estimated share of wrong labels, mean.
+    pub estimated_wrong_share: f64,
+    /// Mean repair weight the trusted audit gave the batch's items, mean over repetitions.
+    pub mean_repair_weight: f64,
     /// Per-method ranking quality (empty for the clean batch).
     pub methods: Vec<MethodScore>,
     /// The engine minus the better baseline (by mean average precision), paired by repetition: mean and
@@ -545,6 +599,9 @@ fn apply_attack(
             let within = (rate * n as f64 / counts[a].max(1) as f64).min(0.45);
             scenario::targeted_flips(y, a, b, within, seed)
         }
+        Attack::FeatureRule { .. } | Attack::Confusion { .. } => {
+            systematic_labels(attack, split, st, k, seed, split.batch_x.view(), y)
+        }
         Attack::Region { rate } => {
             let to = ChaCha8Rng::seed_from_u64(seed ^ 0x4E61).random_range(0..k);
             scenario::region_flips(split.batch_x.view(), y, to, rate, seed)
@@ -612,13 +669,53 @@ fn run_case(
         y: &split.trusted_y,
         weight: weight.view(),
     };
+    let pool_bias = match attack {
+        Attack::FeatureRule { pool, .. } | Attack::Confusion { pool, .. } => pool,
+        _ => PoolBias::Clean,
+    };
+    // A biased pool carries the same rule (same seed) over its own items.
+    let biased_summary = if pool_bias == PoolBias::Biased {
+        let (pool_y, _) = systematic_labels(
+            attack,
+            split,
+            st,
+            k,
+            seed,
+            split.pool_x.view(),
+            &split.pool_y,
+        );
+        let (s, _) = PoolSummary::fit(
+            settings,
+            summary.feature_map.clone(),
+            k,
+            split.pool_x.view(),
+            &pool_y,
+        )
+        .map_err(model_err)?;
+        Some((s, pool_y))
+    } else {
+        None
+    };
+    // What the cross-validated-loss baseline sees as the pool: the same pool the engine sees.
+    let empty_x = Array2::<f64>::zeros((0, split.pool_x.ncols()));
+    let (base_pool_x, base_pool_y): (ArrayView2<'_, f64>, &[usize]) =
+        match (&biased_summary, pool_bias) {
+            (Some((_, y)), _) => (split.pool_x.view(), y),
+            (None, PoolBias::Empty) => (empty_x.view(), &[]),
+            _ => (split.pool_x.view(), &split.pool_y),
+        };
+    let pool_input = match pool_bias {
+        PoolBias::Clean => PoolInput::Summary(summary),
+        PoolBias::Biased => PoolInput::Summary(biased_summary.as_ref().map_or(summary, |(s, _)| s)),
+        PoolBias::Empty => PoolInput::Empty,
+    };
     let t0 = Instant::now();
     let a = assess(
         settings,
         st,
         k,
         trusted,
-        PoolInput::Summary(summary),
+        pool_input,
         split.batch_x.view(),
         &delivered,
     )
@@ -654,14 +751,14 @@ fn run_case(
         ));
         methods.push(method_score(
             METHODS[1],
-            &col(|i| i.path_score),
+            &col(|i| i.repair_signal),
             &positive,
             &proposed,
             truth,
         ));
         methods.push(method_score(
             METHODS[2],
-            &col(|i| i.reference_disagreement),
+            &col(|i| i.learner_doubt),
             &positive,
             &proposed,
             truth,
@@ -686,8 +783,8 @@ fn run_case(
             settings,
             st,
             k,
-            split.pool_x.view(),
-            &split.pool_y,
+            base_pool_x,
+            base_pool_y,
             split.batch_x.view(),
             &delivered,
             5,
@@ -835,6 +932,28 @@ fn aggregate(source: &str, attack: Attack, runs: &[Run], batch_items: usize) -> 
         }),
         engine_ms: runs.iter().map(|r| r.engine_ms).sum::<f64>() / n,
         learner_accuracy: runs.iter().map(|r| r.learner_accuracy).sum::<f64>() / n,
+        flagged_share: runs
+            .iter()
+            .map(|r| {
+                let a = &r.assessment;
+                a.items
+                    .iter()
+                    .filter(|i| i.proposed_label != i.label)
+                    .count() as f64
+                    / a.items.len().max(1) as f64
+            })
+            .sum::<f64>()
+            / n,
+        estimated_wrong_share: runs
+            .iter()
+            .map(|r| r.assessment.estimated_wrong_share)
+            .sum::<f64>()
+            / n,
+        mean_repair_weight: runs
+            .iter()
+            .map(|r| r.assessment.trusted_audit.mean_repair_weight)
+            .sum::<f64>()
+            / n,
         paired_vs_baseline: methods
             .iter()
             .enumerate()
@@ -857,7 +976,58 @@ pub fn attacks() -> Vec<Attack> {
         v.push(Attack::Targeted { rate });
         v.push(Attack::Region { rate });
     }
+    for pool in [PoolBias::Clean, PoolBias::Biased, PoolBias::Empty] {
+        v.push(Attack::FeatureRule { rate: 0.25, pool });
+        v.push(Attack::Confusion { share: 0.4, pool });
+    }
     v
+}
+
+/// The systematic attacks' labels for one set of items: `(labels, mask)`. The rule's feature, class and the
+/// confused pair are fixed by `seed` and the pool (so a batch and a biased pool share the same bias).
+fn systematic_labels(
+    attack: Attack,
+    split: &Split,
+    st: &Standardizer,
+    k: usize,
+    seed: u64,
+    x: ArrayView2<'_, f64>,
+    y: &[usize],
+) -> (Vec<usize>, Vec<bool>) {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed ^ 0x5359_5354);
+    match attack {
+        Attack::FeatureRule { rate, .. } => {
+            let f = rng.random_range(0..x.ncols().max(1));
+            let to = rng.random_range(0..k);
+            let mut col: Vec<f64> = x.column(f).to_vec();
+            col.sort_by(f64::total_cmp);
+            let cut_at = ((1.0 - rate) * col.len() as f64).floor() as usize;
+            let cut = col.get(cut_at.min(col.len().saturating_sub(1))).copied();
+            let mut out = y.to_vec();
+            let mut mask = vec![false; y.len()];
+            if let Some(cut) = cut {
+                for i in 0..y.len() {
+                    if x[[i, f]] >= cut && y[i] != to {
+                        out[i] = to;
+                        mask[i] = true;
+                    }
+                }
+            }
+            (out, mask)
+        }
+        Attack::Confusion { share, .. } => {
+            let mut counts = vec![0usize; k];
+            for &c in &split.pool_y {
+                counts[c] += 1;
+            }
+            let a = (0..k)
+                .max_by_key(|&c| (counts[c], std::cmp::Reverse(c)))
+                .unwrap_or(0);
+            let b = nearest_class(st, split.pool_x.view(), &split.pool_y, k, a);
+            scenario::targeted_flips(y, a, b, share, rng.random())
+        }
+        _ => (y.to_vec(), vec![false; y.len()]),
+    }
 }
 
 /// Run the benchmark; `progress` receives one line per finished case (for a progress display on stderr).
@@ -1308,9 +1478,12 @@ pub fn render_text(r: &BenchReport) -> String {
         }
         let _ = writeln!(
             s,
-            "-- {}: {:.1} bugs · repair cost {:.3} (target reached {}/{}) · damage {:+.4} nats · quarantined {}/{}{} · pool model's accuracy {:.3} · {:.0} ms{}",
+            "-- {}: {:.1} bugs · flagged {:.1}% (estimated wrong {:.1}%, repair weight {:.2}) · repair cost {:.3} (target reached {}/{}) · damage {:+.4} nats · quarantined {}/{}{} · pool model's accuracy {:.3} · {:.0} ms{}",
             c.attack.label(),
             c.bugs,
+            100.0 * c.flagged_share,
+            100.0 * c.estimated_wrong_share,
+            c.mean_repair_weight,
             c.repair_cost,
             c.target_reached,
             c.runs,
@@ -1519,6 +1692,9 @@ mod tests {
             converged: true,
             engine_ms: 1.0,
             learner_accuracy: 0.9,
+            flagged_share: 0.1,
+            estimated_wrong_share: 0.1,
+            mean_repair_weight: 0.2,
             paired_vs_baseline: None,
             methods: vec![
                 m(METHODS[0], engine),

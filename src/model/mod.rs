@@ -29,6 +29,7 @@
 //!
 //! A flag is a suspicion for human review, not proof.
 
+mod anchor;
 pub mod features;
 pub mod learner;
 pub mod linalg;
@@ -40,6 +41,7 @@ mod tests;
 
 use serde::{Deserialize, Serialize};
 
+pub use anchor::TrustedAudit;
 pub use features::{FeatureMap, Standardizer};
 pub use learner::{Learner, TrainReport};
 pub use repair::{
@@ -131,6 +133,19 @@ pub struct ModelSettings {
     /// pool's size (`n_B ≥ share · n_P`); smaller batches move the model too little for the quadratic
     /// model to be off, and are scored at a cost that does not depend on the pool size.
     pub reservoir_min_share: f64,
+    /// The published objective's confidence `c̄` on the trusted loss (Zhang, Zhu & Wright 2018 weight each
+    /// trusted item with a large confidence; the value here is ours, chosen with `labelweir bench engine`).
+    /// The trusted loss is a mean over the trusted items, so `c̄` is its weight against the relabelled
+    /// data's mean training loss.
+    pub trusted_confidence: f64,
+    /// Halvings of `γ` on the published objective's repair path (Algorithm 1).
+    pub anchor_steps: usize,
+    /// Trusted items nearest to a batch item that the trusted audit of the reference model looks at.
+    pub trusted_neighbours: usize,
+    /// Prior mean of a batch's share of wrong labels (the noise rate behind the suspicion).
+    pub label_noise_prior: f64,
+    /// Weight of that prior, in items: the batch's own estimate counts its items against this many.
+    pub label_noise_prior_items: f64,
 }
 
 impl Default for ModelSettings {
@@ -158,6 +173,11 @@ impl Default for ModelSettings {
             flag_threshold: 0.5,
             pool_reservoir: 4096,
             reservoir_min_share: 0.02,
+            trusted_confidence: 100.0,
+            anchor_steps: 12,
+            trusted_neighbours: 10,
+            label_noise_prior: 0.02,
+            label_noise_prior_items: 50.0,
         }
     }
 }
@@ -252,6 +272,21 @@ impl ModelSettings {
         }
         if !self.reservoir_min_share.is_finite() || self.reservoir_min_share < 0.0 {
             return bad("reservoir_min_share", "must be a finite number ≥ 0");
+        }
+        if !self.trusted_confidence.is_finite() || self.trusted_confidence < 0.0 {
+            return bad("trusted_confidence", "must be a finite number ≥ 0");
+        }
+        if self.anchor_steps == 0 || self.anchor_steps > 60 {
+            return bad("anchor_steps", "must be in 1..=60");
+        }
+        if self.trusted_neighbours == 0 {
+            return bad("trusted_neighbours", "must be ≥ 1");
+        }
+        if !(self.label_noise_prior > 0.0 && self.label_noise_prior < 0.5) {
+            return bad("label_noise_prior", "must be in (0, 0.5)");
+        }
+        if !self.label_noise_prior_items.is_finite() || self.label_noise_prior_items < 0.0 {
+            return bad("label_noise_prior_items", "must be a finite number ≥ 0");
         }
         if let FeatureMapKind::RandomFourier { dim, bandwidth } = self.feature_map {
             if dim == 0 || dim > 4096 || !bandwidth.is_finite() || bandwidth < 0.0 {

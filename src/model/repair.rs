@@ -49,13 +49,17 @@ pub struct TrustedInput<'a> {
 }
 
 /// One batch item's score.
+///
+/// A flag is a suspicion for human review, not proof.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct ItemScore {
     /// Row of the item in the batch as given.
     pub index: usize,
     /// Given label (class index).
     pub label: usize,
-    /// Combined suspicion in `[0, 1]`: higher means more likely mislabeled. A suspicion, not proof.
+    /// Combined suspicion in `[0, 1]`, higher means more likely mislabeled: `w·repair_signal + (1 − w)·
+    /// learner_doubt` with `w` = [`ItemScore::repair_weight`], which the trusted audit raises where the
+    /// reference model is unsound. Items at or above `flag_threshold` are flagged. A suspicion, not proof.
     pub suspicion: f64,
     /// Proposed label (class index); equals `label` when the engine sees no reason to change it.
     pub proposed_label: usize,
@@ -66,17 +70,33 @@ pub struct ItemScore {
     /// whether or not the suspicion reaches the flag threshold.
     #[serde(default)]
     pub alternative_label: usize,
-    /// `P(alternative | the given label is wrong)` under the engine's blend of repaired labels and the
-    /// reference model.
+    /// `P(alternative | the given label is wrong)` under the blend.
     #[serde(default)]
     pub alternative_share: f64,
-    /// Label mass the repair moves away from the given label at the repair-cost point of the path.
+    /// Label mass the minimal repair (the cheapest relabelling that meets the trusted-loss target) moves
+    /// away from the given label.
     pub repair_mass: f64,
-    /// Repair-path signal in `[0, 1]`: moved mass averaged over the whole penalty path (early movers ≈ 1).
-    pub path_score: f64,
-    /// `1 − p_ref(given label)` under a reference model that has not seen this item.
-    pub reference_disagreement: f64,
-    /// Index of the path step at which this item's moved mass first exceeded one half, if it did.
+    /// The repair signal in `[0, 1]`, from the published objective's path alone (trusted loss,
+    /// self-consistency, moved mass; halving γ): items flagged at an earlier step score higher, ties broken
+    /// by the mass moved (see [`crate::model`]'s `anchor` module docs).
+    #[serde(alias = "path_score")]
+    pub repair_signal: f64,
+    /// The class the repair path moved this item's label mass to (its largest other class).
+    #[serde(default)]
+    pub repair_label: usize,
+    /// The learner's doubt: `1 − p_ref(given label)` under a reference model that has not seen this item.
+    #[serde(alias = "reference_disagreement")]
+    pub learner_doubt: f64,
+    /// Weight of the repair evidence in this item's blend, set by the trusted audit of the reference model
+    /// near the item (the base weight where the reference model is sound on the nearby trusted items).
+    #[serde(default)]
+    pub repair_weight: f64,
+    /// The probability that the given label is wrong under the reference model and the batch's estimated
+    /// noise rate ([`Assessment::estimated_wrong_share`]; a class-symmetric noise model). Reported for
+    /// review; the flag follows the suspicion.
+    #[serde(default)]
+    pub wrong_probability: f64,
+    /// Step of the repair path at which this item's relaxed label first left its given class, if it did.
     pub flagged_at_step: Option<usize>,
 }
 
@@ -138,13 +158,40 @@ pub struct Timings {
 pub struct Assessment {
     /// Fraction of the batch's label mass that must move so that the model trained on pool ∪ repaired batch
     /// fits the trusted items at least as well as the target (see [`Assessment::trusted_loss_target`]).
-    /// In `[0, 1]`. When even the deepest repair on the path does not reach the target, this is 1 (the
-    /// mass that must move exceeds everything the path explored; [`Assessment::path_costs`] holds what the
-    /// deepest point moved) and [`Assessment::target_reached`] is false.
+    /// In `[0, 1]`. When even the deepest repair on the path does not reach the target, this is the cost
+    /// the path reached, [`Assessment::target_reached`] is false and [`Assessment::trusted_still_wrong`]
+    /// counts the trusted items still misclassified there. Unknown (`NaN`, `null` in JSON; the reason in
+    /// [`Assessment::unknown`]) when the time budget cut the computation short.
+    #[serde(deserialize_with = "nullable_f64")]
     pub repair_cost: f64,
     /// Whether the path reached the target.
     pub target_reached: bool,
+    /// Trusted items the model trained with the repaired batch (at the repair-cost point, or the deepest
+    /// point when the target was not reached) still misclassifies.
+    #[serde(default)]
+    pub trusted_still_wrong: usize,
+    /// Which yardstick set the target: `"pool"` (the pool model's trusted loss, when it beats the trusted
+    /// set's own cross-validated loss), `"trusted_cross_validation"` or `"consensus_relabelling"`.
+    #[serde(default)]
+    pub target_basis: String,
+    /// Batch-level numbers that are unknown because a computation did not finish, each with its reason.
+    #[serde(default)]
+    pub unknown: Vec<String>,
+    /// What the trusted set says about the reference model, and the repair weights it set.
+    #[serde(default)]
+    pub trusted_audit: super::anchor::TrustedAudit,
+    /// The batch's estimated share of wrong labels (the noise rate `ε` behind every item's suspicion).
+    #[serde(default)]
+    pub estimated_wrong_share: f64,
+    /// `γ` of each step of the published objective's repair path.
+    #[serde(default)]
+    pub repair_path_gammas: Vec<f64>,
+    /// Items the repair path had flagged by the end of each step.
+    #[serde(default)]
+    pub repair_path_flagged: Vec<usize>,
     /// Change in trusted loss caused by adding the batch as delivered: `Φ(W*(P ∪ B)) − Φ(W*(P))` (nats).
+    /// Unknown (`NaN`, `null` in JSON) when the time budget ran out before that model converged.
+    #[serde(deserialize_with = "nullable_f64")]
     pub damage: f64,
     /// `Φ` of the model trained on the pool alone (or of the empty model when there is no pool).
     pub trusted_loss_pool: f64,
@@ -201,6 +248,11 @@ pub struct Assessment {
     pub expected_damage_sd: f64,
 }
 
+/// Reads a number that may be `null` (an unknown value, serialised from `NaN`) as `NaN`.
+fn nullable_f64<'de, D: serde::Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
+    Ok(Option::<f64>::deserialize(d)?.unwrap_or(f64::NAN))
+}
+
 /// Sizes of the inputs of an assessment.
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
 pub struct Sizes {
@@ -230,25 +282,25 @@ impl Assessment {
 /// The training problem over pool ∪ batch: mapped features with the pool's rows (the pool's items in exact
 /// mode, the summary's reservoir when its term uses it) first and batch rows last, their weights, the
 /// normaliser `N = n_P + n_B`, and the pool's quadratic model (incremental mode).
-struct Inner {
+pub(super) struct Inner {
     phi: Array2<f64>,
     y_pool: Option<Array2<f64>>,
     weight: Option<Array1<f64>>,
     batch: Range<usize>,
-    norm: f64,
+    pub(super) norm: f64,
     l2: f64,
     prior: Option<PoolTerm>,
 }
 
 impl Inner {
-    fn labels(&self, y_batch: ArrayView2<'_, f64>) -> Array2<f64> {
+    pub(super) fn labels(&self, y_batch: ArrayView2<'_, f64>) -> Array2<f64> {
         match &self.y_pool {
             Some(yp) => vstack(yp.view(), y_batch),
             None => y_batch.to_owned(),
         }
     }
 
-    fn objective<'b>(&'b self, y_all: &'b Array2<f64>) -> Objective<'b> {
+    pub(super) fn objective<'b>(&'b self, y_all: &'b Array2<f64>) -> Objective<'b> {
         Objective {
             phi: self.phi.view(),
             y: y_all.view(),
@@ -259,8 +311,13 @@ impl Inner {
         }
     }
 
-    fn phi_batch(&self) -> ArrayView2<'_, f64> {
+    pub(super) fn phi_batch(&self) -> ArrayView2<'_, f64> {
         self.phi.slice(s![self.batch.clone(), ..])
+    }
+
+    /// Rows of the batch in the training set.
+    pub(super) fn batch_rows(&self) -> Range<usize> {
+        self.batch.clone()
     }
 }
 
@@ -274,7 +331,7 @@ struct PoolRows {
 }
 
 /// `H⁻¹` at one point of the path: a dense Cholesky factor, or CG on Hessian-vector products.
-enum HessianSolver {
+pub(super) enum HessianSolver {
     Dense(Arc<Cholesky>),
     Cg { prob: Array2<f64> },
 }
@@ -286,25 +343,25 @@ enum HessianSolver {
 /// `θ*(Y) ≈ θ_a + H⁻¹ vec(Φ_Bᵀ (Y − Y_a)) / N` and, for the trusted loss,
 /// `∂Φ/∂Y_ik = φ_iᵀ q_k / N` with `H q = ∇_θ Φ` — one solve for all `n_B·K` labels, since `H` does not depend
 /// on the labels (only on `θ`).
-struct Linearisation {
-    y_anchor: Array2<f64>,
-    theta: Array1<f64>,
+pub(super) struct Linearisation {
+    pub(super) y_anchor: Array2<f64>,
+    pub(super) theta: Array1<f64>,
     solver: HessianSolver,
 }
 
 /// What the repair loop needs from the assessment.
-struct Ctx<'a> {
-    settings: &'a ModelSettings,
-    inner: &'a Inner,
-    phi_t: &'a Array2<f64>,
-    y_t: &'a [usize],
-    c_t: Array1<f64>,
-    k: usize,
-    conv: std::cell::RefCell<super::repair::Convergence>,
+pub(super) struct Ctx<'a> {
+    pub(super) settings: &'a ModelSettings,
+    pub(super) inner: &'a Inner,
+    pub(super) phi_t: &'a Array2<f64>,
+    pub(super) y_t: &'a [usize],
+    pub(super) c_t: Array1<f64>,
+    pub(super) k: usize,
+    pub(super) conv: std::cell::RefCell<super::repair::Convergence>,
 }
 
 impl Ctx<'_> {
-    fn solve_h(
+    pub(super) fn solve_h(
         &self,
         lin: &Linearisation,
         rhs: &Array1<f64>,
@@ -342,7 +399,7 @@ impl Ctx<'_> {
     /// dominant cost of an assessment — per call); without it the Hessian is assembled and factored at the
     /// new optimum. The chord method hands over to full Newton when it converges slowly, and Newton's
     /// factor is then used.
-    fn linearise(
+    pub(super) fn linearise(
         &self,
         y_batch: &Array2<f64>,
         init: Array1<f64>,
@@ -416,7 +473,7 @@ impl Ctx<'_> {
     }
 
     /// The dense Hessian factor of a linearisation, for the chord method.
-    fn factor_of(lin: &Linearisation) -> Option<Arc<Cholesky>> {
+    pub(super) fn factor_of(lin: &Linearisation) -> Option<Arc<Cholesky>> {
         match &lin.solver {
             HessianSolver::Dense(c) => Some(Arc::clone(c)),
             HessianSolver::Cg { .. } => None,
@@ -424,7 +481,7 @@ impl Ctx<'_> {
     }
 
     /// `θ_lin(Y) = θ_a + H⁻¹ vec(Φ_Bᵀ (Y − Y_a)) / N`, using only the rows that moved.
-    fn theta_at(
+    pub(super) fn theta_at(
         &self,
         lin: &Linearisation,
         y: &Array2<f64>,
@@ -476,7 +533,7 @@ impl Ctx<'_> {
         (phi_val, g)
     }
 
-    fn trusted_value(&self, theta: &Array1<f64>) -> f64 {
+    pub(super) fn trusted_value(&self, theta: &Array1<f64>) -> f64 {
         trusted_loss(self.phi_t.view(), self.y_t, self.c_t.view(), theta, self.k).0
     }
 }
@@ -824,14 +881,19 @@ pub fn assess(
         .into_iter()
         .map(|r| argmax(r.iter().copied()))
         .collect();
+    // The target never rests on the pool alone: the trusted set's own cross-validated loss (what the
+    // trusted items promise about each other, which no vendor can touch) is always computed, and the
+    // target is the better of the two. A contaminated pool raises `Φ_pool`, so it can never make the bar
+    // laxer than the trusted items alone set it; a clean pool that predicts the trusted items better
+    // tightens it.
     let mut target = phi_pool_loss;
-    if !big_pool {
-        let (cv_loss, cv_pred) =
-            trusted_cross_validation(settings, &phi_t, trusted, k, deadline, &mut conv);
-        if cv_loss < target || n_p == 0 {
-            target = target.min(cv_loss);
-            ref_pred_t = cv_pred;
-        }
+    let mut target_basis = "pool";
+    let (cv_loss, cv_pred) =
+        trusted_cross_validation(settings, &phi_t, trusted, k, deadline, &mut conv);
+    if cv_loss < target || n_p == 0 {
+        target = target.min(cv_loss);
+        ref_pred_t = cv_pred;
+        target_basis = "trusted_cross_validation";
     }
     target += settings.target_slack;
 
@@ -912,12 +974,25 @@ pub fn assess(
             true,
         );
         let phi_consensus = ctx.trusted_value(&consensus.theta) + settings.target_slack;
-        target = target.min(phi_consensus);
+        if phi_consensus < target {
+            target = phi_consensus;
+            target_basis = "consensus_relabelling";
+        }
     }
     let theta_hat = lin.theta.clone();
     let (phi_with, _, prob_t_with) =
         trusted_loss(phi_t.view(), trusted.y, trusted.weight, &theta_hat, k);
-    let damage = phi_with - phi_pool_loss;
+    let mut damage = phi_with - phi_pool_loss;
+    // An unfinished computation reads as unknown (NaN, `null` in JSON), with its reason: never as a
+    // number the policy could take at face value.
+    let mut unknown: Vec<String> = Vec::new();
+    if Instant::now() >= deadline && !ctx.conv.borrow().inner_converged {
+        unknown.push(format!(
+            "damage: the time budget of {} ms ran out before the model trained with the batch converged",
+            settings.time_budget_ms
+        ));
+        damage = f64::NAN;
+    }
     timings.train = t_train.elapsed();
 
     // ---- 3. the penalty path -----------------------------------------------------------------------------
@@ -935,6 +1010,40 @@ pub fn assess(
         phi_with,
         settings.seed,
         deadline,
+    );
+    // The published objective's repair path (trusted loss weighted by `trusted_confidence`, the relabelled
+    // data's self-consistency, moved mass; halving γ), from the delivered labels: the repair signal.
+    let anchored = super::anchor::anchored_path(
+        &ctx,
+        &lin,
+        batch_y,
+        settings.anchor_steps,
+        settings.repair_iters.max(4),
+        deadline,
+    );
+    // The trusted audit of the reference model: the pool model when it is the reference, else the model
+    // trained on pool ∪ batch as delivered (the cross-fit's folds have seen the trusted items).
+    let (theta_audit, audited) = if big_pool {
+        (&theta_p, "pool")
+    } else {
+        (&theta_hat, "pool_and_batch")
+    };
+    let base_weight = if big_pool {
+        settings.pool_reference_repair_weight
+    } else {
+        settings.repair_weight
+    };
+    let (repair_weights, _, trusted_audit) = super::anchor::trusted_audit(
+        phi_t.view(),
+        trusted.y,
+        trusted.weight,
+        theta_audit,
+        phi_b.view(),
+        batch_y,
+        k,
+        base_weight,
+        settings.trusted_neighbours,
+        audited,
     );
     // γ at which item i's label starts to move (first order, KKT at Y = Ŷ): n_B max_k (G_iŷ − G_ik)⁺.
     let entry: Vec<f64> = (0..n_b)
@@ -1034,6 +1143,7 @@ pub fn assess(
         }
     }
     let mut conv = ctx.conv.into_inner();
+    let budget_exhausted = budget_exhausted || anchored.budget_exhausted;
     conv.budget_exhausted = budget_exhausted;
     if budget_exhausted {
         conv.notes.push(format!(
@@ -1074,13 +1184,20 @@ pub fn assess(
             thetas[l].clone(),
         )
     } else {
-        // Not even the deepest repair on the path reaches the target: the mass that must move is more than
-        // the path explored, and the honest bound is the whole batch (1). `path_costs` keeps what the
-        // deepest point moved.
+        // Not even the deepest repair on the path reaches the target: report the cost the path reached,
+        // `target_reached: false` and the trusted items still wrong there — never a stand-in. When the
+        // time budget cut the path short, the cost is unknown.
         let last = path_costs.len().saturating_sub(1);
         match path_costs.last() {
+            Some(&c) if !budget_exhausted => (
+                c,
+                false,
+                path_losses[last],
+                moved_path[last].clone(),
+                thetas[last].clone(),
+            ),
             Some(_) => (
-                1.0,
+                f64::NAN,
                 false,
                 path_losses[last],
                 moved_path[last].clone(),
@@ -1088,49 +1205,65 @@ pub fn assess(
             ),
             // No path: either no label change lowers the trusted loss (γ_max = 0; the batch's harm is not in
             // its labels, and `damage` says how much there is) or the budget ran out before the first step.
-            None => {
-                let c = if gamma_max > 0.0 { 1.0 } else { 0.0 };
-                (c, false, phi_with, zero.clone(), theta_hat.clone())
-            }
+            None if gamma_max > 0.0 => (f64::NAN, false, phi_with, zero.clone(), theta_hat.clone()),
+            None => (0.0, false, phi_with, zero.clone(), theta_hat.clone()),
         }
     };
+    if repair_cost.is_nan() {
+        unknown.push(format!(
+            "repair_cost: the time budget of {} ms ran out before the repair path reached its target",
+            settings.time_budget_ms
+        ));
+    }
     timings.repair = t_rep.elapsed();
 
     // ---- 5. items ---------------------------------------------------------------------------------------
-    let w = if big_pool {
-        settings.pool_reference_repair_weight
-    } else {
-        settings.repair_weight
+    // The suspicion fuses the repair signal (the published objective's path) with the learner's doubt, item
+    // by item, with the weight the trusted audit gives the repair there: the configured base weight where
+    // the reference model is sound on the nearby trusted items and of the item's class, more where it is
+    // not. The best alternative class comes from the blend q_j = w_j ρ_j + (1 − w_j) p_ref,j of the repair's
+    // path-averaged relaxed label and the reference prediction.
+    let blend: Array2<f64> = {
+        let mut q = p_ref.clone();
+        for (j, mut row) in q.rows_mut().into_iter().enumerate() {
+            let w = repair_weights[j];
+            for c in 0..k {
+                row[c] = w * anchored.mean_labels[[j, c]] + (1.0 - w) * row[c];
+            }
+        }
+        q
     };
-    // The path score averages over the main path only (the extension, when there is one, is a search for
-    // the target, not part of the ranking).
-    let main_path = &moved_path[..moved_path.len().min(steps)];
-    let n_steps = main_path.len().max(1) as f64;
+    // The batch's estimated share of wrong labels: EM on the reference model's probability of each given
+    // label under a class-symmetric noise model (see `super::anchor`), and each item's posterior there.
+    let q_given: Vec<f64> = (0..n_b).map(|j| p_ref[[j, batch_y[j]]]).collect();
+    let (noise_rate, p_wrong) = super::anchor::noise_rate_em(
+        &q_given,
+        k,
+        settings.label_noise_prior,
+        settings.label_noise_prior_items,
+    );
     let items = (0..n_b)
         .map(|i| {
             let given = batch_y[i];
-            // Path score: half the moved mass averaged over the path, half the item's first-order entry point
-            // on the same log-γ scale (1 for the first item to move, 0 at or below the path's last γ), so
-            // items the path never moves are still ordered by how close they came.
-            let moved_avg = main_path.iter().map(|mv| mv[i]).sum::<f64>() / n_steps;
-            let entry_score = if entry[i] > 0.0 && gamma_max > 0.0 {
-                (1.0 - (gamma_max / entry[i]).ln() / (1.0 / settings.path_min_ratio).ln())
-                    .clamp(0.0, 1.0)
-            } else {
-                0.0
-            };
-            let path_score = 0.5 * moved_avg + 0.5 * entry_score;
             let disagreement = (1.0 - p_ref[[i, given]]).clamp(0.0, 1.0);
-            // The repair's signal: under a cross-fitted reference, the path score (the whole path orders the
-            // items); under the pool reference, the label mass the repair moves at the target crossing
-            // (only the items the post-condition needs relabelled), since the pool model already orders
-            // the rest better than the path does (`labelweir bench engine` shows both).
-            let signal = if big_pool { repair_mass[i] } else { path_score };
-            let suspicion = (w * signal + (1.0 - w) * disagreement).clamp(0.0, 1.0);
-            let pi: Vec<f64> = (0..k)
-                .map(|c| w * y[[i, c]] + (1.0 - w) * p_ref[[i, c]])
-                .collect();
-            // Best alternative class under π = w·Y_deep + (1−w)·p_ref, and its share of the non-given mass:
+            // Where the audit finds the reference sound (w = base), the repair's share is the signal that
+            // serves best there: under the pool reference the mass the minimal repair moves at the target
+            // crossing (the items the post-condition needs relabelled; the pool model orders the rest better
+            // than any path does), under a cross-fit the published path's rank. What the audit adds above
+            // the base goes to the published path's rank, which leans on the trusted set where the reference
+            // model has learned a bias.
+            let w = repair_weights[i];
+            let base_signal = if big_pool {
+                repair_mass[i]
+            } else {
+                anchored.score[i]
+            };
+            let suspicion = (base_weight * base_signal
+                + (w - base_weight).max(0.0) * anchored.score[i]
+                + (1.0 - w) * disagreement)
+                .clamp(0.0, 1.0);
+            let pi = blend.row(i);
+            // Best alternative class under the blend, and its share of the non-given mass:
             // P(alternative | the given label is wrong). The proposed label is the alternative once the
             // suspicion reaches `flag_threshold`, otherwise the given label.
             let alt = argmax((0..k).map(|c| if c == given { f64::NEG_INFINITY } else { pi[c] }));
@@ -1145,6 +1278,14 @@ pub fn assess(
             } else {
                 (given, 1.0 - suspicion)
             };
+            let rho = anchored.mean_labels.row(i);
+            let repair_label = argmax((0..k).map(|c| {
+                if c == given {
+                    f64::NEG_INFINITY
+                } else {
+                    rho[c]
+                }
+            }));
             ItemScore {
                 index: i,
                 label: given,
@@ -1154,19 +1295,24 @@ pub fn assess(
                 alternative_label: alt,
                 alternative_share: share.clamp(0.0, 1.0),
                 repair_mass: repair_mass[i],
-                path_score,
-                reference_disagreement: disagreement,
-                flagged_at_step: moved_path.iter().position(|mv| mv[i] > 0.5),
+                repair_signal: anchored.score[i],
+                repair_label,
+                learner_doubt: disagreement,
+                repair_weight: w,
+                wrong_probability: p_wrong[i],
+                flagged_at_step: anchored.first_flagged[i],
             }
         })
         .collect();
 
     // The flagged share to expect from a batch labelled the way the reference model expects (see
-    // `Assessment::expected_flagged_share`).
+    // `Assessment::expected_flagged_share`), at each item's own weight.
     let q: Vec<f64> = p_ref
         .rows()
         .into_iter()
-        .map(|r| {
+        .enumerate()
+        .map(|(j, r)| {
+            let w = repair_weights[j];
             r.iter()
                 .filter(|&&pc| (1.0 - w) * (1.0 - pc) >= settings.flag_threshold)
                 .sum::<f64>()
@@ -1193,9 +1339,23 @@ pub fn assess(
         })
         .collect();
 
+    let trusted_still_wrong = (0..trusted.y.len())
+        .filter(|&t| argmax(prob_t_rep.row(t).iter().copied()) != trusted.y[t])
+        .count();
     timings.total = started.elapsed();
     Ok(Assessment {
-        repair_cost: repair_cost.clamp(0.0, 1.0),
+        repair_cost: if repair_cost.is_nan() {
+            f64::NAN
+        } else {
+            repair_cost.clamp(0.0, 1.0)
+        },
+        trusted_still_wrong,
+        target_basis: target_basis.into(),
+        unknown,
+        trusted_audit,
+        estimated_wrong_share: noise_rate,
+        repair_path_gammas: anchored.gammas,
+        repair_path_flagged: anchored.flagged_per_step,
         target_reached,
         damage,
         trusted_loss_pool: phi_pool_loss,
@@ -1223,7 +1383,7 @@ pub fn assess(
     })
 }
 
-fn argmax(it: impl Iterator<Item = f64>) -> usize {
+pub(super) fn argmax(it: impl Iterator<Item = f64>) -> usize {
     let mut best = (0, f64::NEG_INFINITY);
     for (i, v) in it.enumerate() {
         if v > best.1 {
@@ -1314,7 +1474,7 @@ fn projected_gradient(
 /// `Π_Δ(Y − η G)` row by row. A row sitting at its given label's vertex `e_g` stays there exactly when
 /// `v_g − max_{c≠g} v_c ≥ 1` for `v = e_g − η g_i` (then `τ = v_g − 1` clips every other entry), which
 /// skips the sort for the many rows the repair leaves alone.
-fn step_and_project(
+pub(super) fn step_and_project(
     y: &Array2<f64>,
     grad: &Array2<f64>,
     given: &[usize],

@@ -504,8 +504,9 @@ fn hostile_numbers_give_finite_output_not_a_crash() {
             "suspicion",
             "confidence",
             "repair_mass",
-            "path_score",
-            "reference_disagreement",
+            "repair_signal",
+            "learner_doubt",
+            "repair_weight",
         ] {
             let v = num(&it[key]);
             assert!((0.0..=1.0).contains(&v), "{key} = {v}");

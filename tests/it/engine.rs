@@ -815,8 +815,10 @@ fn assert_sane(a: &Assessment, n: usize, k: usize, what: &str) {
             ("suspicion", it.suspicion),
             ("confidence", it.confidence),
             ("repair_mass", it.repair_mass),
-            ("path_score", it.path_score),
-            ("reference_disagreement", it.reference_disagreement),
+            ("repair_signal", it.repair_signal),
+            ("learner_doubt", it.learner_doubt),
+            ("repair_weight", it.repair_weight),
+            ("wrong_probability", it.wrong_probability),
         ] {
             assert!(
                 (0.0..=1.0).contains(&v),
@@ -1055,7 +1057,7 @@ fn mode_agreement(
         let col = |a: &Assessment| {
             a.items
                 .iter()
-                .map(|i| i.reference_disagreement)
+                .map(|i| i.learner_doubt)
                 .collect::<Vec<f64>>()
         };
         let rho_ref = spearman(&col(&inc), &col(&ex)).unwrap_or(0.0);
@@ -1151,8 +1153,9 @@ fn bench_engine_quick_json_reports_every_attack_and_baseline() {
     for source in ["iris", "winequality", "recycling plant"] {
         let mine: Vec<&serde_json::Value> =
             cases.iter().filter(|c| c["source"] == source).collect();
-        // clean + 3 attacks × 3 rates (+ wet cardboard on the plant)
-        let expected = if source == "recycling plant" { 11 } else { 10 };
+        // clean + 3 attacks × 3 rates + 2 systematic attacks × 3 pool conditions (+ wet cardboard on the
+        // plant)
+        let expected = if source == "recycling plant" { 17 } else { 16 };
         assert_eq!(mine.len(), expected, "{source}");
         for c in mine {
             let cost = c["repair_cost"].as_f64().expect("repair cost");
