@@ -17,6 +17,24 @@ pub fn bin() -> &'static str {
     env!("CARGO_BIN_EXE_labelweir")
 }
 
+/// An outside program found by the build script (`build.rs`), given as `env!("LABELWEIR_TOOL_<VAR>")`.
+///
+/// A test that calls this carries `#[cfg_attr(all(not(has_<tool>), not(labelweir_ci)), ignore = "...")]`, so
+/// it runs only where the program was found, or under CI, where a missing program fails it here.
+pub fn tool(found: &str, name: &str) -> PathBuf {
+    assert!(
+        !found.is_empty(),
+        "{name} not found at build time; under CI it is required (`bash .ci/run` installs it; see build.rs)"
+    );
+    let p = PathBuf::from(found);
+    assert!(
+        p.is_file(),
+        "{name} was found at build time as {} but is gone; `touch build.rs` and rebuild",
+        p.display()
+    );
+    p
+}
+
 /// Run the binary to completion.
 pub fn run_bin(args: &[&str]) -> std::process::Output {
     Command::new(bin())
