@@ -391,24 +391,42 @@ fn files_still_being_written_are_left_alone() {
         std::thread::sleep(Duration::from_millis(700));
         f.write_all(b).unwrap();
     }
-    // Wait for the slow file's verdict, then give the temporary names well over a quiet period and two
-    // rescans to be (wrongly) picked up.
     ws.wait_settled(1, T);
-    std::thread::sleep(Duration::from_millis(3500));
+    // Instead of a fixed window, wait on events that would have carried a temporary name through: a
+    // sentinel delivered after the temporary names (same quiet period, same single claim → score → file
+    // order, so a temporary name taken up would be filed before it), then two further timer rescans (the
+    // counter is raised as a rescan starts, so the second one proves a whole rescan ran after the sentinel).
+    // Shown to fail by a planted defect (`ingest::is_ignored_name` without the `.part` suffix: big.csv.part
+    // is filed before the sentinel and the count below is 3).
+    ws.deliver("v1", "sentinel.csv", &clean_batch("s", 200, 52).csv());
+    ws.wait_settled(2, T);
+    let timer_rescans = || -> u64 {
+        let (_, text) = http_get(d.addr, "/metrics").unwrap();
+        text.lines()
+            .find_map(|l| l.strip_prefix("labelweir_watcher_rescans_total{reason=\"timer\"} "))
+            .and_then(|v| v.trim().parse().ok())
+            .unwrap_or_else(|| panic!("no timer rescan counter in:\n{text}"))
+    };
+    let r0 = timer_rescans();
+    let t = std::time::Instant::now();
+    while timer_rescans() < r0 + 2 {
+        assert!(t.elapsed() < T, "no timer rescans after {T:?}");
+        std::thread::sleep(Duration::from_millis(100));
+    }
     assert_eq!(
         ws.settled(),
-        1,
-        "only the slowly written file, once complete"
+        2,
+        "only the slowly written file, once complete, and the sentinel"
     );
     assert!(inbox.join("big.csv.part").exists() && inbox.join(".hidden.csv").exists());
     assert!(inbox.join("tmp").join("staged.csv").exists());
     // 3. The rename completes the delivery.
     std::fs::rename(inbox.join("big.csv.part"), inbox.join("big.csv")).unwrap();
-    ws.wait_settled(2, T);
+    ws.wait_settled(3, T);
     assert!(d.stop().success());
     let store = ws.store();
     let recs = store.batches().unwrap();
-    assert_eq!(recs.len(), 2);
+    assert_eq!(recs.len(), 3);
     let slow = recs.iter().find(|r| r.original_name == "slow.csv").unwrap();
     assert_eq!(
         slow.items,
