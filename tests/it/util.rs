@@ -104,7 +104,7 @@ pub fn clean_batch(prefix: &str, n: usize, seed: u64) -> Batch {
 }
 
 /// A batch whose items in one region of feature space are flipped to one class (systematic-bias
-/// setting of Zhang, Zhu & Wright 2018; recipe in /work/shared/check-values.md "Attack recipes").
+/// setting of Zhang, Zhu & Wright 2018; recipe in tests/reference/check-values.md §3).
 pub fn region_flipped_batch(prefix: &str, n: usize, seed: u64, rate: f64) -> Batch {
     let (x, y) = plant().sample(n, seed);
     let (labels, flipped) = scenario::region_flips(x.view(), &y, 0, rate, seed + 1);
