@@ -279,13 +279,19 @@ impl Ws {
         .unwrap()
     }
 
-    /// The JSON notice for a batch id.
+    /// The JSON notice for a batch id. Filing writes the notice after it moves the batch file, so a test that
+    /// saw the file settle may be a moment early: wait (up to 30 s) for the notice to appear. It is written
+    /// atomically, so once there it is whole.
     pub fn notice(&self, vendor: &str, batch_id: &str) -> serde_json::Value {
         let p = self
             .dir
             .join("notices")
             .join(vendor)
             .join(format!("{batch_id}.json"));
+        let t = Instant::now();
+        while !p.exists() && t.elapsed() < Duration::from_secs(30) {
+            std::thread::sleep(Duration::from_millis(50));
+        }
         serde_json::from_slice(
             &std::fs::read(&p).unwrap_or_else(|e| panic!("{}: {e}", p.display())),
         )
