@@ -1,19 +1,24 @@
 //! Finds the outside programs that some integration tests run, so that a test whose program is missing shows
 //! as *ignored* (with the reason) in the test summary instead of passing without having checked anything.
 //!
-//! | program            | looked up in                      | cfg set when found        | tests (tests/it/)        |
-//! |--------------------|-----------------------------------|---------------------------|--------------------------|
-//! | `promtool`         | env `PROMTOOL`, then `PATH`        | `has_promtool`            | alerting, daemon         |
-//! | `prometheus`       | env `PROMETHEUS`, then `PATH`      | `has_prometheus`          | alerting                 |
-//! | `systemd-analyze`  | env `SYSTEMD_ANALYZE`, then `PATH` | `has_systemd_analyze`     | alerting                 |
-//! | `systemd-tmpfiles` | env `SYSTEMD_TMPFILES`, then `PATH`| `has_systemd_tmpfiles`    | alerting                 |
+//! | program            | env variable       | cfg set when found     | tests (tests/it/) |
+//! |--------------------|--------------------|------------------------|-------------------|
+//! | `promtool`         | `PROMTOOL`         | `has_promtool`         | alerting, daemon  |
+//! | `prometheus`       | `PROMETHEUS`       | `has_prometheus`       | alerting          |
+//! | `systemd-analyze`  | `SYSTEMD_ANALYZE`  | `has_systemd_analyze`  | alerting          |
+//! | `systemd-tmpfiles` | `SYSTEMD_TMPFILES` | `has_systemd_tmpfiles` | alerting          |
+//!
+//! Each is looked up in its env variable (which must then name an executable file), then in
+//! `.ci/root/usr/bin`, then on `PATH`.
 //!
 //! The path found is passed to the tests as the compile-time env `LABELWEIR_TOOL_<ENV NAME>` (empty when
 //! missing). Under CI (env `CI` = `true`, `1` or `yes`) the cfg `labelweir_ci` is set and no such test is
 //! ignored: a missing program makes the test fail. `.ci/run` installs all four and exports their paths.
 //!
-//! The script runs again when any of these variables (or `PATH`, or `CI`) changes; after installing a program
-//! on an unchanged `PATH`, `touch build.rs` (or set the variable) so that the tests see it.
+//! `.ci/root/usr/bin` is where `.ci/run` unpacks Debian's prometheus package, so a developer who ran it once
+//! has those tests too. The script runs again when any of these variables (or `PATH`, or `CI`) changes, or
+//! anything under `.ci/`; after installing a program elsewhere on an unchanged `PATH`, `touch build.rs` (or set
+//! the variable) so that the tests see it.
 
 use std::path::{Path, PathBuf};
 
@@ -33,6 +38,7 @@ fn main() {
     println!("cargo::rerun-if-changed=build.rs");
     println!("cargo::rerun-if-env-changed=PATH");
     println!("cargo::rerun-if-env-changed=CI");
+    println!("cargo::rerun-if-changed=.ci");
     println!("cargo::rustc-check-cfg=cfg(labelweir_ci)");
     if on_ci() {
         println!("cargo::rustc-cfg=labelweir_ci");
@@ -66,7 +72,8 @@ fn on_ci() -> bool {
     })
 }
 
-/// The program named by env `var` (which must then exist), else the first executable `name` on `PATH`.
+/// The program named by env `var` (which must then exist), else `.ci/root/usr/bin/<name>` (the unpacked
+/// Debian packages of `.ci/run`), else the first executable `name` on `PATH`.
 fn find(name: &str, var: &str) -> Option<PathBuf> {
     if let Some(p) = std::env::var_os(var).filter(|v| !v.is_empty()) {
         let p = PathBuf::from(p);
@@ -76,6 +83,11 @@ fn find(name: &str, var: &str) -> Option<PathBuf> {
             p.display()
         );
         return Some(p);
+    }
+    let root = PathBuf::from(std::env::var_os("CARGO_MANIFEST_DIR")?);
+    let unpacked = root.join(".ci/root/usr/bin").join(name);
+    if is_executable(&unpacked) {
+        return Some(unpacked);
     }
     let path = std::env::var_os("PATH")?;
     std::env::split_paths(&path)

@@ -6,7 +6,7 @@
 //! Tools: promtool and prometheus come from Debian's `prometheus` package (2.42), which `.ci/run` unpacks into
 //! `.ci/root`; `systemd-analyze` and `systemd-tmpfiles` from Debian's `systemd` package. The build script
 //! (`build.rs`) looks each up (env `PROMTOOL`, `PROMETHEUS`, `SYSTEMD_ANALYZE`, `SYSTEMD_TMPFILES`, then
-//! `PATH`); a test whose program is missing is *ignored* with the reason, so the summary shows it, except
+//! `.ci/root/usr/bin`, then `PATH`); a test whose program is missing is *ignored* with the reason, so the summary shows it, except
 //! under CI (env `CI=true`), where it runs and fails.
 //!
 //! The HTTP client is a plain HTTP/1.0 GET over `std::net::TcpStream` (HTTP/1.0 so that no server answers
