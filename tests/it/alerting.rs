@@ -4,10 +4,10 @@
 //! daemon that has just quarantined a batch, and the systemd unit through `systemd-analyze`.
 //!
 //! Tools: promtool and prometheus come from Debian's `prometheus` package (2.42), which `.ci/run` unpacks into
-//! `.ci/root`. They are looked up in env `PROMTOOL` / `PROMETHEUS`, then `.ci/root/usr/bin`, `.ci/bin`, then
-//! `PATH`. Where they are missing a test prints a skip message and returns, except under CI (env `CI` set),
-//! where a missing tool is a failure. `systemd-analyze` is optional everywhere (the issue asks for the unit
-//! check "where systemd is present").
+//! `.ci/root`; `systemd-analyze` and `systemd-tmpfiles` from Debian's `systemd` package. The build script
+//! (`build.rs`) looks each up (env `PROMTOOL`, `PROMETHEUS`, `SYSTEMD_ANALYZE`, `SYSTEMD_TMPFILES`, then
+//! `.ci/root/usr/bin`, then `PATH`); a test whose program is missing is *ignored* with the reason, so the summary shows it, except
+//! under CI (env `CI=true`), where it runs and fails.
 //!
 //! The HTTP client is a plain HTTP/1.0 GET over `std::net::TcpStream` (HTTP/1.0 so that no server answers
 //! with chunked encoding); every server binds 127.0.0.1.
@@ -19,6 +19,7 @@ use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Output, Stdio};
 use std::time::{Duration, Instant};
 
+use crate::util::tool;
 use labelweir::scenario::{self, Plant};
 use serde_json::Value as Json;
 use serde_yaml_ng::Value as Yaml;
@@ -54,54 +55,6 @@ fn read(rel: &str) -> String {
 
 fn yaml(rel: &str) -> Yaml {
     serde_yaml_ng::from_str(&read(rel)).unwrap_or_else(|e| panic!("{rel} is not valid YAML: {e}"))
-}
-
-fn on_ci() -> bool {
-    std::env::var("CI")
-        .map(|v| !v.is_empty() && v != "false" && v != "0")
-        .unwrap_or(false)
-}
-
-/// Find a tool: env var, then `.ci/root/usr/bin`, `.ci/bin`, then `PATH`.
-fn find_tool(name: &str, env_var: &str) -> Option<PathBuf> {
-    if let Some(p) = std::env::var_os(env_var).filter(|v| !v.is_empty()) {
-        let p = PathBuf::from(p);
-        assert!(p.is_file(), "{env_var}={} does not exist", p.display());
-        return Some(p);
-    }
-    let local = [
-        repo().join(".ci/root/usr/bin").join(name),
-        repo().join(".ci/bin").join(name),
-    ];
-    if let Some(p) = local.into_iter().find(|p| p.is_file()) {
-        return Some(p);
-    }
-    find_in_path(name)
-}
-
-fn find_in_path(name: &str) -> Option<PathBuf> {
-    std::env::var_os("PATH").and_then(|path| {
-        std::env::split_paths(&path)
-            .map(|d| d.join(name))
-            .find(|p| p.is_file())
-    })
-}
-
-/// A tool from Debian's prometheus package, or `None` (after a skip message) outside CI.
-fn prometheus_tool(name: &str, env_var: &str, test: &str) -> Option<PathBuf> {
-    let found = find_tool(name, env_var);
-    if found.is_none() {
-        assert!(
-            !on_ci(),
-            "{name} not found (env {env_var}, .ci/root/usr/bin, .ci/bin, PATH); .ci/run unpacks it from \
-             Debian's prometheus package"
-        );
-        eprintln!(
-            "SKIP {test}: {name} not found. Run `bash .ci/run` (or `apt-get download prometheus && dpkg-deb -x \
-             prometheus_*.deb .ci/root`) or set {env_var}."
-        );
-    }
-    found
 }
 
 fn run(cmd: &mut Command) -> Output {
@@ -577,11 +530,12 @@ impl Daemon {
 // ------------------------------------------------------------------------------------------------ rules
 
 #[test]
+#[cfg_attr(
+    all(not(has_promtool), not(labelweir_ci)),
+    ignore = "needs promtool (Debian package prometheus: `bash .ci/run` unpacks it; or set PROMTOOL)"
+)]
 fn alert_rules_pass_promtool_check() {
-    let Some(promtool) = prometheus_tool("promtool", "PROMTOOL", "alert_rules_pass_promtool_check")
-    else {
-        return;
-    };
+    let promtool = tool(env!("LABELWEIR_TOOL_PROMTOOL"), "promtool");
     let out = run_ok(
         Command::new(promtool)
             .arg("check")
@@ -593,14 +547,12 @@ fn alert_rules_pass_promtool_check() {
 }
 
 #[test]
+#[cfg_attr(
+    all(not(has_promtool), not(labelweir_ci)),
+    ignore = "needs promtool (Debian package prometheus: `bash .ci/run` unpacks it; or set PROMTOOL)"
+)]
 fn alert_rule_unit_tests_pass_promtool() {
-    let Some(promtool) = prometheus_tool(
-        "promtool",
-        "PROMTOOL",
-        "alert_rule_unit_tests_pass_promtool",
-    ) else {
-        return;
-    };
+    let promtool = tool(env!("LABELWEIR_TOOL_PROMTOOL"), "promtool");
     let out = run_ok(
         Command::new(promtool)
             .current_dir(repo().join("dashboards"))
@@ -892,11 +844,12 @@ fn dashboard_structure_suits_file_provisioning() {
 }
 
 #[test]
+#[cfg_attr(
+    all(not(has_promtool), not(labelweir_ci)),
+    ignore = "needs promtool (Debian package prometheus: `bash .ci/run` unpacks it; or set PROMTOOL)"
+)]
 fn dashboard_queries_pass_promtool() {
-    let Some(promtool) = prometheus_tool("promtool", "PROMTOOL", "dashboard_queries_pass_promtool")
-    else {
-        return;
-    };
+    let promtool = tool(env!("LABELWEIR_TOOL_PROMTOOL"), "promtool");
     let exprs = dashboard_exprs(&dashboard());
     assert!(exprs.len() > 20, "found {} queries", exprs.len());
     // Wrap every query as a recording rule; promtool parses each expression.
@@ -1028,11 +981,12 @@ fn every_metric_in_rules_and_dashboard_exists_in_a_real_scrape() {
 /// just quarantined a poisoned batch, with the shipped alert rules loaded; the expected series and the repair
 /// cost alert come back through Prometheus's HTTP query API.
 #[test]
+#[cfg_attr(
+    all(not(has_prometheus), not(labelweir_ci)),
+    ignore = "needs the Prometheus server (Debian package prometheus: `bash .ci/run` unpacks it; or set PROMETHEUS)"
+)]
 fn prometheus_scrapes_a_daemon_that_quarantined_a_batch() {
-    let test = "prometheus_scrapes_a_daemon_that_quarantined_a_batch";
-    let Some(prometheus) = prometheus_tool("prometheus", "PROMETHEUS", test) else {
-        return;
-    };
+    let prometheus = tool(env!("LABELWEIR_TOOL_PROMETHEUS"), "prometheus");
     let tmp = tempfile::TempDir::new().expect("tempdir");
     let mut daemon = Daemon::start(tmp.path());
     // Two clean batches first, so that the pool is large enough to be the reference model and the vendor has
@@ -1276,20 +1230,13 @@ fn prometheus_scrapes_a_daemon_that_quarantined_a_batch() {
 
 // ------------------------------------------------------------------------------------------------ systemd
 
-fn systemd_tool(name: &str, test: &str) -> Option<PathBuf> {
-    let found = find_in_path(name);
-    if found.is_none() {
-        eprintln!("SKIP {test}: {name} not installed (systemd is not present here)");
-    }
-    found
-}
-
 #[test]
+#[cfg_attr(
+    all(not(has_systemd_analyze), not(labelweir_ci)),
+    ignore = "needs systemd-analyze (Debian package systemd; `bash .ci/run` installs it; or set SYSTEMD_ANALYZE)"
+)]
 fn service_unit_passes_systemd_analyze() {
-    let test = "service_unit_passes_systemd_analyze";
-    let Some(analyze) = systemd_tool("systemd-analyze", test) else {
-        return;
-    };
+    let analyze = tool(env!("LABELWEIR_TOOL_SYSTEMD_ANALYZE"), "systemd-analyze");
     let unit = read("config/labelweir.service");
     // Directives the issue and the daemon's contract require.
     let directives: Vec<(&str, &str)> = unit
@@ -1381,11 +1328,12 @@ fn service_unit_passes_systemd_analyze() {
 /// daemon folders private. Applied under a temporary root, with users and groups mapped to root (the
 /// `labelweir*` accounts do not exist on a test machine).
 #[test]
+#[cfg_attr(
+    all(not(has_systemd_tmpfiles), not(labelweir_ci)),
+    ignore = "needs systemd-tmpfiles (Debian package systemd; `bash .ci/run` installs it; or set SYSTEMD_TMPFILES)"
+)]
 fn tmpfiles_snippet_creates_the_documented_modes() {
-    let test = "tmpfiles_snippet_creates_the_documented_modes";
-    let Some(tmpfiles) = systemd_tool("systemd-tmpfiles", test) else {
-        return;
-    };
+    let tmpfiles = tool(env!("LABELWEIR_TOOL_SYSTEMD_TMPFILES"), "systemd-tmpfiles");
     let text = read("config/labelweir.tmpfiles.conf");
     let mut mapped = String::new();
     let mut expected = Vec::new();

@@ -95,7 +95,17 @@ fn clean_batch_exits_0_and_the_json_keeps_the_contract() {
         cost < 0.02,
         "a clean batch should cost about nothing to repair: {cost}"
     );
-    assert!(num(&doc["damage"]).is_finite());
+    // The damage is what the report says it is, the change of the trusted set's loss caused by the batch
+    // (shown to fail by a planted defect: `damage` printed with the wrong sign), and an
+    // accepted batch at cold start is inside the default cold-start limit of 0.05 nats.
+    let damage = num(&doc["damage"]);
+    let with_batch = num(&doc["trusted_loss"]["with_batch"]);
+    let pool = num(&doc["trusted_loss"]["pool"]);
+    assert!(
+        (damage - (with_batch - pool)).abs() < 1e-9,
+        "damage {damage} vs trusted loss {with_batch} - {pool}"
+    );
+    assert!(damage <= 0.05, "an accepted batch's damage {damage}");
     assert!(doc["note"].as_str().unwrap().contains("not proof"));
     // One entry per batch row, each with the contract's keys, ids and labels as in the file.
     let file = labelweir::data::read_table(
@@ -414,27 +424,26 @@ fn config_policy_and_model_sections_are_used() {
     assert!((num(&doc["flag_threshold"]) - 0.9).abs() < 1e-12);
 }
 
+/// Both modes give the same verdict on a clean batch (accept) and on a region-flipped one (quarantine),
+/// rank the suspects alike, and say which mode ran. Shown to fail by a planted defect (the `--mode exact`
+/// run given the other batch: the verdicts differ).
+///
+/// The uniform-flip fixture is not used: it sits near the cold-start damage limit and the modes' damage on
+/// it differs (measured 0.10 vs 0.05 nats), so its verdict may legitimately differ between the modes; that
+/// gap is the engine's to close (written down for the engine's owner).
 #[test]
 fn exact_and_incremental_modes_agree_and_say_which_ran() {
-    let run = |mode: &str| {
+    let run = |batch: &str, mode: &str| {
         assess_json(&[
             "--trusted",
             &fx("trusted.csv"),
             "--pool",
             &fx("pool.csv"),
-            &fx("batch-uniform-flip.csv"),
+            &fx(batch),
             "--mode",
             mode,
         ])
     };
-    let (c1, inc) = run("incremental");
-    let (c2, exact) = run("exact");
-    // Not compared: the verdicts. This batch sits near the cold-start damage limit, and the modes' damage
-    // differs (measured 0.10 vs 0.05 nats, reported to the engine's owner), so the exit codes may too.
-    assert!([0, 1].contains(&c1) && [0, 1].contains(&c2), "{c1} {c2}");
-    assert_eq!(exact["inputs"]["mode"], "exact");
-    assert!(exact["pool_summary"].is_null());
-    assert!(inc["pool_summary"].is_object());
     let by_id = |d: &Value| -> HashMap<String, f64> {
         items(d)
             .iter()
@@ -446,14 +455,35 @@ fn exact_and_incremental_modes_agree_and_say_which_ran() {
             })
             .collect()
     };
-    let (a, b) = (by_id(&inc), by_id(&exact));
-    let ids: Vec<&String> = a.keys().collect();
-    let sa: Vec<f64> = ids.iter().map(|i| a[*i]).collect();
-    let sb: Vec<f64> = ids.iter().map(|i| b[*i]).collect();
-    // The engine's own tests hold the modes to Spearman ≥ 0.99 on benchmark cases; here we only check that
-    // the command wires both modes to the same problem.
-    let rho = spearman(&sa, &sb).unwrap();
-    assert!(rho > 0.95, "Spearman {rho}");
+    for (batch, code, verdict) in [
+        ("batch-clean.csv", 0, "accept"),
+        ("batch-region-flip.csv", 1, "quarantine"),
+    ] {
+        let (c1, inc) = run(batch, "incremental");
+        let (c2, exact) = run(batch, "exact");
+        assert_eq!(inc["inputs"]["mode"], "incremental");
+        assert_eq!(exact["inputs"]["mode"], "exact");
+        assert!(exact["pool_summary"].is_null());
+        assert!(inc["pool_summary"].is_object());
+        assert_eq!(
+            (c1, c2),
+            (code, code),
+            "{batch}: incremental {:#}, exact {:#}",
+            inc["reasons"],
+            exact["reasons"]
+        );
+        assert_eq!(inc["verdict"], verdict, "{batch}");
+        assert_eq!(exact["verdict"], verdict, "{batch}");
+        // The engine's own tests hold the modes to Spearman ≥ 0.99 on benchmark cases; here the command must
+        // wire both modes to the same problem.
+        let (a, b) = (by_id(&inc), by_id(&exact));
+        assert_eq!(a.len(), b.len());
+        let ids: Vec<&String> = a.keys().collect();
+        let sa: Vec<f64> = ids.iter().map(|i| a[*i]).collect();
+        let sb: Vec<f64> = ids.iter().map(|i| b[*i]).collect();
+        let rho = spearman(&sa, &sb).unwrap();
+        assert!(rho > 0.95, "{batch}: Spearman {rho}");
+    }
 }
 
 #[test]
@@ -496,8 +526,16 @@ fn hostile_numbers_give_finite_output_not_a_crash() {
     ]);
     assert!(code == 0 || code == 1, "exit {code}: {err}");
     let doc: Value = serde_json::from_str(&out).unwrap();
-    assert!(num(&doc["repair_cost"]).is_finite());
-    assert!(num(&doc["damage"]).is_finite());
+    // serde_json prints a NaN or an infinity as null, and `num` fails on null: these are the finiteness
+    // checks. The repair cost is a share of the label mass; the damage is still the trusted loss's change.
+    let cost = num(&doc["repair_cost"]);
+    assert!((0.0..=1.0).contains(&cost), "repair cost {cost}");
+    let damage = num(&doc["damage"]);
+    let change = num(&doc["trusted_loss"]["with_batch"]) - num(&doc["trusted_loss"]["pool"]);
+    assert!(
+        (damage - change).abs() < 1e-9,
+        "damage {damage} vs {change}"
+    );
     for it in items(&doc) {
         // `num` fails on null, which is what serde_json prints for a NaN.
         for key in [

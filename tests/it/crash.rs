@@ -3,7 +3,7 @@
 //! must satisfy: no file lost, none processed twice, every verdict in the audit trail matches the folder
 //! its file is in, and the pool holds exactly the accepted batches.
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 use std::time::{Duration, Instant};
 
 use rand::{Rng, SeedableRng};
@@ -21,8 +21,19 @@ fn sigkill_at_random_moments_loses_nothing_and_repeats_nothing() {
     let rounds = 24;
     let mut dropped: Vec<(String, String)> = Vec::new(); // (vendor, name)
     let started = Instant::now();
+    let mut kills_mid_batch = 0;
+    // Claimed, not yet filed batches (generated names in processing/).
+    let processing = || -> HashSet<String> {
+        std::fs::read_dir(ws.path("processing"))
+            .unwrap()
+            .flatten()
+            .map(|e| e.file_name().to_string_lossy().into_owned())
+            .filter(|n| !n.starts_with('.'))
+            .collect()
+    };
     for round in 0..rounds {
         // Files arrive before and while the daemon runs; some are poisoned, some malformed, some repeated.
+        let in_processing_before = processing();
         let d = Daemon::spawn(&ws.dir, &ws.tmp.path().join(format!("crash-{round}.log")));
         let deadline = Instant::now() + Duration::from_millis(rng.random_range(150..1500));
         let mut k = 0;
@@ -41,6 +52,9 @@ fn sigkill_at_random_moments_loses_nothing_and_repeats_nothing() {
             std::thread::sleep(Duration::from_millis(rng.random_range(10..120)));
         }
         d.kill();
+        // Work in flight at the kill: a file this round claimed into processing/ and had not filed.
+        let in_flight = processing().difference(&in_processing_before).count() > 0;
+        kills_mid_batch += usize::from(in_flight);
         assert!(
             started.elapsed() < Duration::from_secs(600),
             "crash test ran too long"
@@ -138,5 +152,13 @@ fn sigkill_at_random_moments_loses_nothing_and_repeats_nothing() {
         .map(|r| r.items.unwrap() as u64)
         .sum();
     assert_eq!(store.pool_items().unwrap(), pool_items);
-    assert!(rounds >= 20);
+    // The invariants above are only worth something if kills hit batches between claim and filing (the
+    // recovery paths); a test whose kills all land while the daemon is idle checks nothing. Shown to fail
+    // by a planted defect in this test (waiting for every delivered file to settle before each kill: 0 of
+    // 24 kills mid-batch).
+    println!("{kills_mid_batch} of {rounds} kills left a batch between claim and filing");
+    assert!(
+        kills_mid_batch >= rounds / 4,
+        "only {kills_mid_batch} of {rounds} kills hit a batch in flight"
+    );
 }

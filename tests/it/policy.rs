@@ -160,3 +160,75 @@ fn flipped_batch_at_a_100k_pool_is_quarantined_in_cold_start_and_with_history() 
     let fb = d.flagged_share_baseline.expect("judged");
     assert!(fb.modified_z > ps.modified_z_limit);
 }
+
+/// Run lengths of the shipped drift rule, the production recursion [`labelweir::policy::cusum_step`] with the
+/// default `k` and `h` and the verdict's signal rule `S > h`, by Monte Carlo on standard normal values,
+/// against two outside sources (tests/reference/check-values.md §1.1):
+///
+/// * Montgomery, *Introduction to Statistical Quality Control*, CUSUM chapter, table "ARL performance of the
+///   tabular CUSUM with k = 1/2 and h = 4 or h = 5" (values from memory): two-sided in-control ARL 465
+///   (h = 5) and 168 (h = 4), so one-sided 930 and 336 by `1/ARL = 1/ARL⁺ + 1/ARL⁻`; 10.4 and 8.38 at a
+///   1σ shift (where the lower side practically never signals first);
+/// * Siegmund's approximation (Siegmund, *Sequential Analysis*, 1985; in Montgomery, same chapter),
+///   computed here from its formula.
+///
+/// This is outside the code's own `cusum_arl` (a Brook–Evans Markov chain: values computed with it are no
+/// check of it). Tolerance: 4 Monte Carlo standard errors plus 1.5 % (the table's rounding and Siegmund's
+/// approximation error, about 1 % here); measured: 939 ± 15, 10.35, 333 ± 5, 8.35. Shown to fail on a
+/// planted defect in `cusum_step` (`k` halved): in-control ARL 145 ± 2 against the table's 930.
+#[test]
+fn default_cusum_design_has_the_published_run_lengths() {
+    use labelweir::policy::cusum_step;
+    use rand::SeedableRng;
+    use rand_distr::{Distribution, StandardNormal};
+
+    let settings = PolicySettings::default();
+    assert_eq!(
+        (settings.cusum_k, settings.cusum_h),
+        (0.5, 5.0),
+        "the table's design; change the values below with the defaults"
+    );
+    // Mean and standard error of the run length (number of values up to and including the first S > h).
+    let run_length = |k: f64, h: f64, shift: f64, runs: usize, seed: u64| -> (f64, f64) {
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+        let mut lengths = Vec::with_capacity(runs);
+        for _ in 0..runs {
+            let (mut s, mut n) = (0.0, 0u64);
+            loop {
+                n += 1;
+                let z: f64 = StandardNormal.sample(&mut rng);
+                s = cusum_step(s, z + shift, k);
+                if s > h {
+                    break;
+                }
+            }
+            lengths.push(n as f64);
+        }
+        let mean = lengths.iter().sum::<f64>() / runs as f64;
+        let var = lengths.iter().map(|l| (l - mean).powi(2)).sum::<f64>() / (runs - 1) as f64;
+        (mean, (var / runs as f64).sqrt())
+    };
+    // Siegmund: ARL ≈ (e^{−2Δb} + 2Δb − 1)/(2Δ²), Δ = δ − k, b = h + 1.166.
+    let siegmund = |k: f64, h: f64, shift: f64| {
+        let (d, b) = (shift - k, h + 1.166);
+        ((-2.0 * d * b).exp() + 2.0 * d * b - 1.0) / (2.0 * d * d)
+    };
+    let (k, h5) = (settings.cusum_k, settings.cusum_h);
+    // (h, shift, Montgomery's table value for the one-sided chart, runs)
+    for (h, shift, table, runs) in [
+        (h5, 0.0, 2.0 * 465.0, 4000),
+        (h5, 1.0, 10.4, 20_000),
+        (4.0, 0.0, 2.0 * 168.0, 4000),
+        (4.0, 1.0, 8.38, 20_000),
+    ] {
+        let (mean, se) = run_length(k, h, shift, runs, 0x5EED + (h * 10.0 + shift) as u64);
+        let approx = siegmund(k, h, shift);
+        println!("h = {h}, shift {shift}: Monte Carlo {mean:.2} ± {se:.2}, table {table}, Siegmund {approx:.2}");
+        for (what, value) in [("Montgomery's table", table), ("Siegmund", approx)] {
+            assert!(
+                (mean - value).abs() <= 4.0 * se + 0.015 * value,
+                "h = {h}, shift {shift}: Monte Carlo ARL {mean:.2} ± {se:.2} vs {what} {value:.2}"
+            );
+        }
+    }
+}

@@ -17,6 +17,24 @@ pub fn bin() -> &'static str {
     env!("CARGO_BIN_EXE_labelweir")
 }
 
+/// An outside program found by the build script (`build.rs`), given as `env!("LABELWEIR_TOOL_<VAR>")`.
+///
+/// A test that calls this carries `#[cfg_attr(all(not(has_<tool>), not(labelweir_ci)), ignore = "...")]`, so
+/// it runs only where the program was found, or under CI, where a missing program fails it here.
+pub fn tool(found: &str, name: &str) -> PathBuf {
+    assert!(
+        !found.is_empty(),
+        "{name} not found at build time; under CI it is required (`bash .ci/run` installs it; see build.rs)"
+    );
+    let p = PathBuf::from(found);
+    assert!(
+        p.is_file(),
+        "{name} was found at build time as {} but is gone; `touch build.rs` and rebuild",
+        p.display()
+    );
+    p
+}
+
 /// Run the binary to completion.
 pub fn run_bin(args: &[&str]) -> std::process::Output {
     Command::new(bin())
@@ -86,7 +104,7 @@ pub fn clean_batch(prefix: &str, n: usize, seed: u64) -> Batch {
 }
 
 /// A batch whose items in one region of feature space are flipped to one class (systematic-bias
-/// setting of Zhang, Zhu & Wright 2018; recipe in /work/shared/check-values.md "Attack recipes").
+/// setting of Zhang, Zhu & Wright 2018; recipe in tests/reference/check-values.md §3).
 pub fn region_flipped_batch(prefix: &str, n: usize, seed: u64, rate: f64) -> Batch {
     let (x, y) = plant().sample(n, seed);
     let (labels, flipped) = scenario::region_flips(x.view(), &y, 0, rate, seed + 1);
@@ -261,13 +279,19 @@ impl Ws {
         .unwrap()
     }
 
-    /// The JSON notice for a batch id.
+    /// The JSON notice for a batch id. Filing writes the notice after it moves the batch file, so a test that
+    /// saw the file settle may be a moment early: wait (up to 30 s) for the notice to appear. It is written
+    /// atomically, so once there it is whole.
     pub fn notice(&self, vendor: &str, batch_id: &str) -> serde_json::Value {
         let p = self
             .dir
             .join("notices")
             .join(vendor)
             .join(format!("{batch_id}.json"));
+        let t = Instant::now();
+        while !p.exists() && t.elapsed() < Duration::from_secs(30) {
+            std::thread::sleep(Duration::from_millis(50));
+        }
         serde_json::from_slice(
             &std::fs::read(&p).unwrap_or_else(|e| panic!("{}: {e}", p.display())),
         )
