@@ -201,10 +201,11 @@ impl MethodScore {
 }
 
 /// The engine's own methods, the baselines and the ceiling, in table order.
-pub const METHODS: [&str; 6] = [
+pub const METHODS: [&str; 7] = [
     "labelweir (suspicion)",
     "  repair signal alone",
     "  learner doubt alone",
+    "  trusted-anchored doubt alone",
     "nearest trusted (baseline)",
     "cross-validated loss (baseline)",
     CEILING,
@@ -763,6 +764,13 @@ fn run_case(
             &proposed,
             truth,
         ));
+        methods.push(method_score(
+            METHODS[3],
+            &col(|i| i.anchored_doubt),
+            &positive,
+            &proposed,
+            truth,
+        ));
         let nt: BaselineScores = nearest_trusted(
             st,
             k,
@@ -773,7 +781,7 @@ fn run_case(
         )
         .map_err(model_err)?;
         methods.push(method_score(
-            METHODS[3],
+            METHODS[4],
             &nt.score,
             &positive,
             &nt.proposed,
@@ -792,7 +800,7 @@ fn run_case(
         )
         .map_err(model_err)?;
         methods.push(method_score(
-            METHODS[4],
+            METHODS[5],
             &cv.score,
             &positive,
             &cv.proposed,
@@ -1700,8 +1708,9 @@ mod tests {
                 m(METHODS[0], engine),
                 m(METHODS[1], engine),
                 m(METHODS[2], engine),
-                m(METHODS[3], baselines[0]),
-                m(METHODS[4], baselines[1]),
+                m(METHODS[3], engine),
+                m(METHODS[4], baselines[0]),
+                m(METHODS[5], baselines[1]),
                 m(CEILING, (1.0, 1.0)),
             ],
         }

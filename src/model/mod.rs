@@ -138,6 +138,10 @@ pub struct ModelSettings {
     /// The trusted loss is a mean over the trusted items, so `c̄` is its weight against the relabelled
     /// data's mean training loss.
     pub trusted_confidence: f64,
+    /// Weight `c̄_A` of the trusted items' mean loss in the trusted-anchored model (fitted jointly to the
+    /// trusted items and pool ∪ batch as delivered); the share of the trusted items in its objective is
+    /// `c̄_A / (1 + c̄_A)`.
+    pub anchor_confidence: f64,
     /// Halvings of `γ` on the published objective's repair path (Algorithm 1).
     pub anchor_steps: usize,
     /// Trusted items nearest to a batch item that the trusted audit of the reference model looks at.
@@ -174,6 +178,7 @@ impl Default for ModelSettings {
             pool_reservoir: 4096,
             reservoir_min_share: 0.02,
             trusted_confidence: 100.0,
+            anchor_confidence: 3.0,
             anchor_steps: 12,
             trusted_neighbours: 10,
             label_noise_prior: 0.02,
@@ -275,6 +280,9 @@ impl ModelSettings {
         }
         if !self.trusted_confidence.is_finite() || self.trusted_confidence < 0.0 {
             return bad("trusted_confidence", "must be a finite number ≥ 0");
+        }
+        if !self.anchor_confidence.is_finite() || self.anchor_confidence < 0.0 {
+            return bad("anchor_confidence", "must be a finite number ≥ 0");
         }
         if self.anchor_steps == 0 || self.anchor_steps > 60 {
             return bad("anchor_steps", "must be in 1..=60");

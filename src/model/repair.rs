@@ -87,6 +87,10 @@ pub struct ItemScore {
     /// The learner's doubt: `1 − p_ref(given label)` under a reference model that has not seen this item.
     #[serde(alias = "reference_disagreement")]
     pub learner_doubt: f64,
+    /// The trusted-anchored doubt: `1 − p_A(given label)` under the learner fitted jointly to the trusted
+    /// items (weighted `anchor_confidence`) and to pool ∪ batch as delivered.
+    #[serde(default)]
+    pub anchored_doubt: f64,
     /// Weight of the repair evidence in this item's blend, set by the trusted audit of the reference model
     /// near the item (the base weight where the reference model is sound on the nearby trusted items).
     #[serde(default)]
@@ -318,6 +322,34 @@ impl Inner {
     /// Rows of the batch in the training set.
     pub(super) fn batch_rows(&self) -> Range<usize> {
         self.batch.clone()
+    }
+
+    /// The training set with the trusted items appended: mapped rows, labels and row weights, each trusted
+    /// item `t` weighted `c̄ · N · c_t / Σ c` so that the trusted items' mean loss enters the objective `c̄`
+    /// times (`N` the inner normaliser).
+    pub(super) fn with_trusted(
+        &self,
+        y_batch: ArrayView2<'_, f64>,
+        phi_t: ArrayView2<'_, f64>,
+        y_t: &[usize],
+        c_t: ArrayView1<'_, f64>,
+        c_bar: f64,
+    ) -> (Array2<f64>, Array2<f64>, Array1<f64>) {
+        let k = y_batch.ncols();
+        let phi = vstack(self.phi.view(), phi_t);
+        let y = vstack(self.labels(y_batch).view(), one_hot(y_t, k).view());
+        let total = c_t.sum().max(f64::MIN_POSITIVE);
+        let mut w: Vec<f64> = match &self.weight {
+            Some(w) => w.to_vec(),
+            None => vec![1.0; self.phi.nrows()],
+        };
+        w.extend(c_t.iter().map(|c| c_bar * self.norm * c / total));
+        (phi, y, Array1::from(w))
+    }
+
+    /// The pool summary's quadratic term for the inner normaliser, if the pool enters that way.
+    pub(super) fn prior_quadratic(&self) -> Option<super::learner::Quadratic<'_>> {
+        self.prior.as_ref().map(|t| t.quadratic(self.norm))
     }
 }
 
@@ -1021,6 +1053,16 @@ pub fn assess(
         settings.repair_iters.max(4),
         deadline,
     );
+    // The trusted-anchored model (trusted items weighted `anchor_confidence` beside pool ∪ batch as
+    // delivered) and its doubt about each given label.
+    let theta_anchor = super::anchor::anchored_model(
+        &ctx,
+        &y_hat,
+        theta_hat.clone(),
+        settings.anchor_confidence,
+        deadline,
+    );
+    let p_anchor = predict_proba(phi_b.view(), &theta_anchor, k);
     // The trusted audit of the reference model: the pool model when it is the reference, else the model
     // trained on pool ∪ batch as delivered (the cross-fit's folds have seen the trusted items).
     let (theta_audit, audited) = if big_pool {
@@ -1258,8 +1300,9 @@ pub fn assess(
             } else {
                 anchored.score[i]
             };
+            let anchored_doubt = (1.0 - p_anchor[[i, given]]).clamp(0.0, 1.0);
             let suspicion = (base_weight * base_signal
-                + (w - base_weight).max(0.0) * anchored.score[i]
+                + (w - base_weight).max(0.0) * anchored_doubt
                 + (1.0 - w) * disagreement)
                 .clamp(0.0, 1.0);
             let pi = blend.row(i);
@@ -1298,6 +1341,7 @@ pub fn assess(
                 repair_signal: anchored.score[i],
                 repair_label,
                 learner_doubt: disagreement,
+                anchored_doubt,
                 repair_weight: w,
                 wrong_probability: p_wrong[i],
                 flagged_at_step: anchored.first_flagged[i],
@@ -1632,4 +1676,52 @@ fn cross_fit(
         }
     }
     out
+}
+
+#[cfg(test)]
+impl Inner {
+    /// Exact mode with unit weights: pool rows first (labels `y_pool`), then the batch rows.
+    pub(super) fn for_test(
+        phi: Array2<f64>,
+        y_pool: Option<Array2<f64>>,
+        batch: Range<usize>,
+        l2: f64,
+    ) -> Self {
+        let norm = phi.nrows() as f64;
+        Self {
+            phi,
+            y_pool,
+            weight: None,
+            batch,
+            norm,
+            l2,
+            prior: None,
+        }
+    }
+}
+
+#[cfg(test)]
+impl<'a> Ctx<'a> {
+    /// A context over `inner` for the trusted items `(phi_t, y_t)` with unit confidence.
+    pub(super) fn for_test(
+        settings: &'a ModelSettings,
+        inner: &'a Inner,
+        phi_t: &'a Array2<f64>,
+        y_t: &'a [usize],
+        k: usize,
+    ) -> Self {
+        Self {
+            settings,
+            inner,
+            phi_t,
+            y_t,
+            c_t: Array1::ones(y_t.len()),
+            k,
+            conv: std::cell::RefCell::new(Convergence {
+                inner_converged: true,
+                linear_converged: true,
+                ..Convergence::default()
+            }),
+        }
+    }
 }
