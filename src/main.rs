@@ -3,7 +3,9 @@
 use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
-use labelweir::cli::{self, exit, Failure};
+mod cli;
+
+use cli::{exit, Failure};
 
 /// labelweir: guards a training pool against poisoned and systematically wrong vendor labels.
 ///

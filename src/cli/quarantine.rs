@@ -9,14 +9,15 @@ use std::time::{Duration, Instant};
 use anyhow::Context;
 
 use super::{exit, Failure};
-use crate::admin;
-use crate::config::{Config, Workspace};
-use crate::data::sanitize;
-use crate::review::{
+use labelweir::admin;
+use labelweir::config::Config;
+use labelweir::review::{
     self, Caller, DecisionReport, NoHooks, QueueEntry, RejectRequest, ReleaseRequest, Request,
     ReviewEnv, ReviewError, ShowReport, WithdrawRequest,
 };
-use crate::store::{Store, StoreError};
+use labelweir::store::{Store, StoreError};
+use labelweir::text::sanitize;
+use labelweir::workspace::Workspace;
 
 /// Review quarantined batches: list them, show why one was held, release or reject it, or withdraw an
 /// accepted batch from the pool. Works while the daemon runs (through its admin socket, DIR/admin.sock)
@@ -242,7 +243,7 @@ fn write_page(path: &Path, html: &str) -> std::io::Result<()> {
         .file_name()
         .map(|s| s.to_string_lossy().into_owned())
         .unwrap_or_else(|| "labelweir-review.html".into());
-    crate::notice::write_atomic(&dir, &name, html.as_bytes()).map(|_| ())
+    labelweir::fsx::write_atomic(&dir, &name, html.as_bytes(), None).map(|_| ())
 }
 
 /// Pretty-print JSON to stdout.
@@ -253,7 +254,7 @@ pub fn print_json(v: &serde_json::Value) -> anyhow::Result<()> {
 
 /// Turn a review error into a [`Failure`] with its exit code.
 pub fn review_failure(e: ReviewError) -> anyhow::Error {
-    Failure::new(e.exit_code(), e.to_string()).into()
+    Failure::new(super::review_exit(&e), e.to_string()).into()
 }
 
 fn own_uid() -> Option<u32> {

@@ -40,7 +40,7 @@ use chrono::{DateTime, Duration as ChronoDuration, SecondsFormat, Utc};
 use ndarray::{Array1, Array2, ArrayView2, Axis};
 use serde::{Deserialize, Serialize};
 
-use crate::config::{Config, Workspace};
+use crate::config::{Config, TrustedSettings};
 use crate::data::{self, Classes, Format, Table};
 use crate::model::{self, PoolInput, TrustedInput};
 use crate::notice::{
@@ -51,39 +51,8 @@ use crate::store::{
     AuditRecord, BatchRecord, BatchState, PoolChange, PoolEntry, Store, StoreError, TrustedItem,
     WorkspaceMeta, RECORD_VERSION,
 };
-
-/// The `[trusted]` section of the configuration: the trusted set's rolling window, balance checks, and the
-/// re-check of recently accepted batches after the set changes.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(default, deny_unknown_fields)]
-pub struct TrustedSettings {
-    /// Keep at most this many trusted items per class; when exceeded the oldest (by verification time)
-    /// leave the set. Items; 0 = no limit. Default 0.
-    pub max_items_per_class: usize,
-    /// Trusted items verified longer ago than this leave the set (but never below
-    /// `min_items_per_class` for their class). Days; 0 = no age limit. Default 0.
-    pub max_age_days: u32,
-    /// A class with fewer trusted items than this cannot be judged reliably: `trusted` commands and the
-    /// daemon warn. Items; default 5.
-    pub min_items_per_class: usize,
-    /// After the trusted set changes, re-score at most this many of the most recently accepted batches.
-    /// Batches; 0 disables the re-check. Default 20.
-    pub rescore_lookback_batches: usize,
-    /// ... and only those accepted within this many days. Days; 0 = no age limit. Default 7.
-    pub rescore_lookback_days: u32,
-}
-
-impl Default for TrustedSettings {
-    fn default() -> Self {
-        Self {
-            max_items_per_class: 0,
-            max_age_days: 0,
-            min_items_per_class: 5,
-            rescore_lookback_batches: 20,
-            rescore_lookback_days: 7,
-        }
-    }
-}
+use crate::text::html_escape;
+use crate::workspace::Workspace;
 
 /// Pools up to this many items are re-scored exactly (pool minus the batch); larger ones through the
 /// saved pool summary (which still contains the batch: the re-check is then conservative).
@@ -109,12 +78,25 @@ pub enum ReviewError {
     /// Bad arguments or a bad input file.
     #[error("{0}")]
     Invalid(String),
-    /// The store failed.
-    #[error("store: {0}")]
-    Store(String),
-    /// A filesystem operation failed.
-    #[error("{0}")]
-    Io(String),
+    /// The store failed. The cause is kept when the store was opened in this process (not across the
+    /// admin socket, where only the message travels).
+    #[error("store: {message}")]
+    Store {
+        /// What failed.
+        message: String,
+        /// The cause.
+        #[source]
+        source: Option<StoreError>,
+    },
+    /// A filesystem operation failed (the cause kept as for [`ReviewError::Store`]).
+    #[error("{message}")]
+    Io {
+        /// What failed.
+        message: String,
+        /// The cause.
+        #[source]
+        source: Option<std::io::Error>,
+    },
     /// The engine could not score.
     #[error("engine: {0}")]
     Model(String),
@@ -127,8 +109,8 @@ impl ReviewError {
             Self::NotFound(_) => "not_found",
             Self::Refused(_) => "refused",
             Self::Invalid(_) => "invalid",
-            Self::Store(_) => "store",
-            Self::Io(_) => "io",
+            Self::Store { .. } => "store",
+            Self::Io { .. } => "io",
             Self::Model(_) => "model",
         }
     }
@@ -139,20 +121,15 @@ impl ReviewError {
             "not_found" => Self::NotFound(message),
             "refused" => Self::Refused(message),
             "invalid" => Self::Invalid(message),
-            "store" => Self::Store(message),
-            "io" => Self::Io(message),
+            "store" => Self::Store {
+                message,
+                source: None,
+            },
+            "io" => Self::Io {
+                message,
+                source: None,
+            },
             _ => Self::Model(message),
-        }
-    }
-
-    /// The process exit code: 2 for bad input, unknown batches and refused decisions, 74 for store and
-    /// I/O errors, 70 for engine failures.
-    pub fn exit_code(&self) -> u8 {
-        use crate::cli::exit;
-        match self {
-            Self::NotFound(_) | Self::Refused(_) | Self::Invalid(_) => exit::INPUT,
-            Self::Store(_) | Self::Io(_) => exit::IO,
-            Self::Model(_) => exit::INTERNAL,
         }
     }
 }
@@ -162,13 +139,19 @@ impl From<StoreError> for ReviewError {
         match e {
             StoreError::Conflict { .. } => Self::Refused(e.to_string()),
             StoreError::NotFound { .. } => Self::NotFound(e.to_string()),
-            other => Self::Store(other.to_string()),
+            other => Self::Store {
+                message: other.to_string(),
+                source: Some(other),
+            },
         }
     }
 }
 
 fn io_err(what: impl std::fmt::Display) -> impl FnOnce(std::io::Error) -> ReviewError {
-    move |e| ReviewError::Io(format!("{what}: {e}"))
+    move |e| ReviewError::Io {
+        message: format!("{what}: {e}"),
+        source: Some(e),
+    }
 }
 
 /// What a running daemon does when a review operation changes the pool or the trusted set.
@@ -346,7 +329,10 @@ pub struct TrustedExport {
 /// Run one request. The result is the operation's report as JSON.
 pub fn handle(env: &ReviewEnv<'_>, req: Request) -> Result<serde_json::Value, ReviewError> {
     fn json<T: Serialize>(v: T) -> Result<serde_json::Value, ReviewError> {
-        serde_json::to_value(v).map_err(|e| ReviewError::Io(format!("encode: {e}")))
+        serde_json::to_value(v).map_err(|e| ReviewError::Io {
+            message: format!("encode: {e}"),
+            source: None,
+        })
     }
     match req {
         Request::Ping => json(serde_json::json!({ "pong": true })),
@@ -669,7 +655,7 @@ pub fn show(env: &ReviewEnv<'_>, batch: &str) -> Result<ShowReport, ReviewError>
 fn get_batch(store: &Store, batch: &str) -> Result<BatchRecord, ReviewError> {
     store
         .batch(batch)?
-        .ok_or_else(|| ReviewError::NotFound(format!("no batch {}", data::sanitize(batch))))
+        .ok_or_else(|| ReviewError::NotFound(format!("no batch {}", crate::text::sanitize(batch))))
 }
 
 /// The folder a batch's file is in for its state (`None` when it has none).
@@ -851,23 +837,6 @@ fn build_projection(
 // ------------------------------------------------------------------------------------------------
 // HTML page
 // ------------------------------------------------------------------------------------------------
-
-/// Escape text for HTML element content and quoted attribute values; vendor strings are sanitised first.
-pub fn html_escape(s: &str) -> String {
-    let clean = notice::sanitize_text(s, 200);
-    let mut out = String::with_capacity(clean.len());
-    for c in clean.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&#39;"),
-            _ => out.push(c),
-        }
-    }
-    out
-}
 
 /// Colour for a suspicion in `[0, 1]`: a linear blend from blue (`#2166ac`, low) to red (`#b2182b`,
 /// high); grey when unknown.
@@ -1246,7 +1215,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
             ReviewError::Invalid(format!(
                 "batch {} has no item {}",
                 rec.id,
-                data::sanitize(id)
+                crate::text::sanitize(id)
             ))
         })
     };
@@ -1262,13 +1231,13 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         if excluded.contains(&i) {
             return Err(ReviewError::Invalid(format!(
                 "item {} is both excluded and relabeled",
-                data::sanitize(id)
+                crate::text::sanitize(id)
             )));
         }
         if classes.index_of(label).is_none() {
             return Err(ReviewError::Invalid(format!(
                 "unknown class {} (classes: {})",
-                data::sanitize(label),
+                crate::text::sanitize(label),
                 env.meta.classes.join(", ")
             )));
         }
@@ -1294,7 +1263,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         if excluded.contains(&i) {
             return Err(ReviewError::Invalid(format!(
                 "item {} is excluded and cannot be promoted",
-                data::sanitize(id)
+                crate::text::sanitize(id)
             )));
         }
         promote.push(i);
@@ -1402,7 +1371,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
                 if dup {
                     report.warnings.push(format!(
                         "item {} not promoted: the trusted set already has an item with that id",
-                        data::sanitize(&t.id)
+                        crate::text::sanitize(&t.id)
                     ));
                 }
                 !dup
@@ -1655,7 +1624,7 @@ fn move_for_state(ws: &Workspace, rec: &BatchRecord) -> Result<Option<PathBuf>, 
     };
     let dest_dir = ws.folder(dest);
     let target = dest_dir.join(&rec.file_name);
-    let report_name = crate::actions::report_name(rec);
+    let report_name = crate::pipeline::file::report_name(rec);
     for src in ["quarantine", "accepted"] {
         if src == dest {
             continue;
@@ -1676,8 +1645,8 @@ fn move_for_state(ws: &Workspace, rec: &BatchRecord) -> Result<Option<PathBuf>, 
             }
         }
         if moved {
-            notice::sync_dir(&dest_dir).map_err(io_err(dest_dir.display()))?;
-            notice::sync_dir(&src_dir).map_err(io_err(src_dir.display()))?;
+            crate::fsx::sync_dir(&dest_dir).map_err(io_err(dest_dir.display()))?;
+            crate::fsx::sync_dir(&src_dir).map_err(io_err(src_dir.display()))?;
         }
     }
     Ok(target.exists().then_some(target))
@@ -1764,7 +1733,7 @@ pub fn balance(classes: &[String], items: &[TrustedItem], settings: &TrustedSett
         if *n < settings.min_items_per_class {
             warnings.push(format!(
                 "class {} has {n} trusted item(s), fewer than min_items_per_class = {}: batches cannot be judged reliably on this class",
-                data::sanitize(c),
+                crate::text::sanitize(c),
                 settings.min_items_per_class
             ));
         }
@@ -1884,13 +1853,13 @@ pub fn trusted_add(
     let format = Format::from_path(Path::new(&req.file_name)).ok_or_else(|| {
         ReviewError::Invalid(format!(
             "{}: expected a .csv or .jsonl file",
-            data::sanitize(&req.file_name)
+            crate::text::sanitize(&req.file_name)
         ))
     })?;
     let table = data::parse_table(
         req.content.as_bytes(),
         format,
-        &data::sanitize(&req.file_name),
+        &crate::text::sanitize(&req.file_name),
         &env.config.table_options(),
         Some(&env.meta.features),
     )
@@ -1907,7 +1876,7 @@ pub fn trusted_add(
             if !req.replace {
                 return Err(ReviewError::Invalid(format!(
                     "the trusted set already has an item {} (use --replace to replace it)",
-                    data::sanitize(id)
+                    crate::text::sanitize(id)
                 )));
             }
             replaced.push(id.clone());
@@ -1941,7 +1910,7 @@ pub fn trusted_add(
         .filter(|id| !replaced.contains(id))
         .collect();
     let mut detail = caller_detail(env);
-    detail["file"] = serde_json::json!(data::sanitize(&req.file_name));
+    detail["file"] = serde_json::json!(crate::text::sanitize(&req.file_name));
     detail["source"] = serde_json::json!(req.source);
     detail["added"] = serde_json::json!(capped(&added));
     detail["replaced"] = serde_json::json!(capped(&replaced));
@@ -1989,7 +1958,7 @@ pub fn trusted_remove(
         if !ids.contains(id.as_str()) {
             return Err(ReviewError::NotFound(format!(
                 "no trusted item {}",
-                data::sanitize(id)
+                crate::text::sanitize(id)
             )));
         }
     }
@@ -2003,7 +1972,7 @@ pub fn trusted_remove(
     if let Some((c, _)) = bal.per_class.iter().find(|(_, n)| *n == 0) {
         return Err(ReviewError::Refused(format!(
             "removing these items would leave class {} without trusted items",
-            data::sanitize(c)
+            crate::text::sanitize(c)
         )));
     }
     let mut detail = caller_detail(env);
@@ -2089,7 +2058,7 @@ pub fn rescan(env: &ReviewEnv<'_>, by: &str) -> Result<RescanReport, ReviewError
         report.pool_mode = "none (no recently accepted batches)".into();
         return Ok(report);
     }
-    let trusted = crate::scoring::TrustedArrays::load(env.store, env.meta)?;
+    let trusted = crate::pipeline::score::TrustedArrays::load(env.store, env.meta)?;
     let pool_items = env.store.pool_items()?;
     let exact = pool_items <= RESCORE_EXACT_POOL_MAX;
     // Every pool entry (the re-checked batches' own items come from here too).
@@ -2322,12 +2291,6 @@ mod tests {
     }
 
     #[test]
-    fn html_escape_neutralises_markup_and_controls() {
-        let s = html_escape("<img src=x onerror=alert(1)>\u{202E}&\"'");
-        assert_eq!(s, "&lt;img src=x onerror=alert(1)&gt;&amp;&quot;&#39;");
-    }
-
-    #[test]
     fn the_page_escapes_vendor_strings_and_loads_nothing() {
         let mut rec = BatchRecord::claimed(
             "b00000001".into(),
@@ -2410,13 +2373,19 @@ mod tests {
             ReviewError::NotFound("a".into()),
             ReviewError::Refused("b".into()),
             ReviewError::Invalid("c".into()),
-            ReviewError::Store("d".into()),
-            ReviewError::Io("e".into()),
+            ReviewError::Store {
+                message: "d".into(),
+                source: None,
+            },
+            ReviewError::Io {
+                message: "e".into(),
+                source: None,
+            },
             ReviewError::Model("f".into()),
         ] {
             let back = ReviewError::from_kind(e.kind(), "m".into());
             assert_eq!(back.kind(), e.kind());
-            assert_eq!(back.exit_code(), e.exit_code());
+            assert_eq!(std::mem::discriminant(&back), std::mem::discriminant(&e));
         }
     }
 }

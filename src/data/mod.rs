@@ -31,7 +31,7 @@
 //! 1-based file line where the row starts ([`DataError::line`]), which is exact in both formats.
 //!
 //! Ids and labels must not contain control characters (they end up in notices, logs and terminals);
-//! [`sanitize`] is still applied wherever a vendor string is printed.
+//! [`crate::text::sanitize`] is still applied wherever a vendor string is printed.
 
 use std::collections::{HashMap, HashSet};
 use std::fmt;
@@ -39,6 +39,8 @@ use std::io::{Read, Write};
 use std::path::Path;
 
 use ndarray::{Array2, ArrayView2};
+
+use crate::text::{is_unsafe_char, quote_for_message};
 
 /// Input format of a labeled table.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
@@ -456,47 +458,6 @@ impl fmt::Display for DataError {
 // `DataError` has a field named `source` (the file), which thiserror would take for the error's cause, so
 // `Error` is implemented by hand: the error has no underlying cause.
 impl std::error::Error for DataError {}
-
-/// A vendor string made safe to print in a terminal, a log line or a table: control characters and
-/// bidirectional-override characters are removed, and very long strings are shortened to 120 characters
-/// with an ellipsis.
-pub fn sanitize(s: &str) -> String {
-    const MAX: usize = 120;
-    let mut out = String::new();
-    for (n, c) in s.chars().filter(|c| !is_unsafe_char(*c)).enumerate() {
-        if n == MAX {
-            out.push('…');
-            break;
-        }
-        out.push(c);
-    }
-    out
-}
-
-/// Characters never printed from vendor strings: C0/C1 controls and the Unicode bidirectional controls.
-fn is_unsafe_char(c: char) -> bool {
-    c.is_control()
-        || matches!(c, '\u{200E}' | '\u{200F}' | '\u{202A}'..='\u{202E}' | '\u{2066}'..='\u{2069}')
-}
-
-/// A value quoted inside an error message: escaped (control characters become `\u{..}` escapes, so the
-/// message shows exactly what is wrong) and shortened.
-fn quote_for_message(s: &str) -> String {
-    const MAX: usize = 80;
-    let mut out = String::new();
-    for (n, c) in s.chars().enumerate() {
-        if n == MAX {
-            out.push('…');
-            break;
-        }
-        if is_unsafe_char(c) || c == '"' || c == '\\' {
-            out.extend(c.escape_default());
-        } else {
-            out.push(c);
-        }
-    }
-    out
-}
 
 /// Read and parse a table from a file; the format comes from the extension (`.csv`, `.jsonl`), and
 /// [`DataError::source`] is the path as given.
@@ -1398,12 +1359,6 @@ mod tests {
         let c = Classes::from_labels(&["pp", "glass", "pp", "aluminium"]);
         assert_eq!(c.names(), ["aluminium", "glass", "pp"]);
         assert_eq!((c.index_of("glass"), c.index_of("paper")), (Some(1), None));
-    }
-
-    #[test]
-    fn sanitize_strips_controls_and_bidi_overrides() {
-        assert_eq!(sanitize("a\u{1b}[2Jb\u{202E}c\nd"), "a[2Jbcd");
-        assert_eq!(sanitize(&"x".repeat(500)).chars().count(), 121);
     }
 
     /// Strategy: a valid table (ids unique, labels plain, features finite).
