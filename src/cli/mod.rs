@@ -13,6 +13,7 @@ pub mod init;
 pub mod quarantine;
 pub mod run;
 pub mod trusted;
+pub mod vendor;
 
 /// An error that carries the exit code the process should end with.
 #[derive(Debug, thiserror::Error)]

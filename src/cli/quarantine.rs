@@ -56,7 +56,8 @@ struct ShowArgs {
     dir: PathBuf,
     /// Batch id (from `quarantine list`).
     batch: String,
-    /// Where to write the HTML page. Default: ./labelweir-review-<BATCH>.html.
+    /// Where to write the HTML page. Default: beside the batch's report in the workspace,
+    /// `DIR/<folder>/<BATCH>.review.html` (it moves with the batch when a reviewer decides).
     #[arg(long)]
     html: Option<PathBuf>,
     /// Do not write the HTML page.
@@ -165,9 +166,21 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             let page = if a.no_html {
                 None
             } else {
-                let path = a.html.clone().unwrap_or_else(|| {
-                    PathBuf::from(format!("labelweir-review-{}.html", safe_stem(&a.batch)))
-                });
+                let path = match &a.html {
+                    Some(p) => p.clone(),
+                    None => review::page_path(&Workspace::new(&a.dir), &report.batch).ok_or_else(
+                        || {
+                            Failure::new(
+                                exit::INPUT,
+                                format!(
+                                    "batch {} has no folder yet (state {}); give --html PATH",
+                                    sanitize(&report.batch.id),
+                                    report.batch.state
+                                ),
+                            )
+                        },
+                    )?,
+                };
                 write_page(&path, &review::render_html(&report))
                     .with_context(|| format!("write {}", path.display()))
                     .map_err(|e| Failure::new(exit::IO, format!("{e:#}")))?;
@@ -225,13 +238,6 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         }
     }
     Ok(exit::OK)
-}
-
-fn safe_stem(s: &str) -> String {
-    s.chars()
-        .filter(|c| c.is_ascii_alphanumeric() || *c == '-' || *c == '_')
-        .take(64)
-        .collect()
 }
 
 fn write_page(path: &Path, html: &str) -> std::io::Result<()> {

@@ -104,7 +104,7 @@ pub(crate) fn refresh_gauges(ws: &Workspace, store: &Store, metrics: &Metrics) {
     if let Ok(rd) = std::fs::read_dir(ws.folder("quarantine")) {
         for e in rd.flatten() {
             let name = e.file_name().to_string_lossy().into_owned();
-            if name.starts_with('.') || name.ends_with(".json") {
+            if name.starts_with('.') || name.ends_with(".json") || name.ends_with(".html") {
                 continue;
             }
             if let Ok(m) = e.metadata() {

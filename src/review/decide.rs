@@ -608,13 +608,19 @@ pub(super) fn move_for_state(
     let dest_dir = ws.folder(dest);
     let target = dest_dir.join(&rec.file_name);
     let report_name = crate::pipeline::file::report_name(rec);
+    let page_name = page_name(&rec.id);
     for src in ["quarantine", "accepted"] {
         if src == dest {
             continue;
         }
         let src_dir = ws.folder(src);
         let mut moved = false;
-        for name in [rec.file_name.as_str(), report_name.as_str()] {
+        // The review page `quarantine show` wrote beside the report travels with it.
+        for name in [
+            rec.file_name.as_str(),
+            report_name.as_str(),
+            page_name.as_str(),
+        ] {
             let from = src_dir.join(name);
             if std::fs::symlink_metadata(&from).is_ok() {
                 let to = dest_dir.join(name);

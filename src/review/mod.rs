@@ -55,6 +55,7 @@ use crate::text::html_escape;
 use crate::workspace::Workspace;
 
 mod decide;
+mod drift;
 mod page;
 mod projection;
 mod rescan;
@@ -62,6 +63,7 @@ mod show;
 mod trusted;
 
 pub use decide::*;
+pub use drift::*;
 pub use page::*;
 pub use projection::*;
 pub use rescan::*;
@@ -315,6 +317,8 @@ pub enum Request {
     TrustedRemove(TrustedRemoveRequest),
     /// Every trusted item (with features) for export.
     TrustedExport,
+    /// Reset a vendor's drift statistic.
+    DriftReset(DriftResetRequest),
     /// Re-score recently accepted batches against the current trusted set.
     Rescan {
         /// Who asked.
@@ -362,6 +366,7 @@ pub fn handle(env: &ReviewEnv<'_>, req: Request) -> Result<serde_json::Value, Re
             features: env.meta.features.clone(),
             items: env.store.trusted_items()?,
         }),
+        Request::DriftReset(r) => json(drift_reset(env, &r)?),
         Request::Rescan { by } => json(rescan(env, &by)?),
         Request::Audit {
             since,

@@ -24,6 +24,17 @@ pub(super) fn suspicion_colour(s: Option<f64>) -> String {
     }
 }
 
+/// The review page's file name, beside the batch's report: `<batch id>.review.html`.
+pub fn page_name(batch_id: &str) -> String {
+    format!("{batch_id}.review.html")
+}
+
+/// Where `quarantine show` writes a batch's review page by default: beside its report, in the folder of
+/// its state (`None` for a batch that has no folder yet).
+pub fn page_path(ws: &Workspace, batch: &BatchRecord) -> Option<PathBuf> {
+    folder_for_state(batch.state).map(|f| ws.folder(f).join(page_name(&batch.id)))
+}
+
 /// The self-contained review page: no scripts, no network (a Content-Security-Policy of
 /// `default-src 'none'` forbids both), styles inline, the projection as inline SVG. Well-formed XML
 /// (XHTML syntax), so that tests can parse it.
