@@ -1,5 +1,5 @@
 //! The watching daemon, the composition root: it opens the workspace ([`startup`]), starts the pipeline
-//! threads ([`crate::pipeline`]), the HTTP server, the admin socket ([`crate::admin::server`]), SIGHUP
+//! threads (`pipeline`), the HTTP server, the admin socket ([`crate::admin::server`]), SIGHUP
 //! reloads ([`reload`]) and housekeeping ([`housekeeping`]), feeds systemd's [`watchdog`], and stops them
 //! in order.
 //!
@@ -12,7 +12,7 @@
 //! * the **ingest** thread (`labelweir-ingest`) waits for dirty marks, the rescan timer or a quiet-period
 //!   deadline, lists folders, claims, reads, hashes and parses files, and sends jobs into
 //! * the **bounded channel** (`ingest.queue_capacity`) to the **scoring** thread (`labelweir-scoring`,
-//!   see [`crate::pipeline`]), which scores, decides and persists each batch in turn, and hands it to the
+//!   see `pipeline::score`), which scores, decides and persists each batch in turn, and hands it to the
 //!   **filing** thread (`labelweir-filing`) that moves the file and writes the notice;
 //! * an occasional **refresh** thread rebuilds the pool summary exactly.
 //!

@@ -66,7 +66,7 @@ pub struct Report {
     pub warmup: usize,
     /// What scoring alone would allow: items per batch / mean `score` seconds.
     pub scoring_bound_items_per_second: f64,
-    /// Mean seconds per batch for each stage ([`crate::metrics::STAGES`]).
+    /// Mean seconds per batch for each stage (the `stage` label values of `labelweir_batch_stage_duration_seconds`).
     pub stage_mean_seconds: Vec<(String, f64)>,
     /// CPU milliseconds per batch between the drop and the last verdict: `("process", total)`, then
     /// per thread (`scoring`, `ingest`, `filing`, `runtime`, `store`), then `other` (the rest,
