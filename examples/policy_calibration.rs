@@ -10,7 +10,7 @@
 //! against an empty or small pool).
 //!
 //! The defaults of `[policy]` were chosen from this output (the numbers are quoted beside them in
-//! `src/policy.rs`). Measured, never asserted: a test that depends on these numbers would pin the engine.
+//! `src/policy/mod.rs`). Measured, never asserted: a test that depends on these numbers would pin the engine.
 
 use labelweir::model::{
     self, FeatureMap, ModelSettings, PoolInput, PoolSummary, Standardizer, TrustedInput,

@@ -4,7 +4,7 @@
 //! notice) and the latency per stage. Measured, never asserted.
 
 fn main() {
-    let mut o = labelweir::daemon::throughput::Options::default();
+    let mut o = labelweir::eval::throughput::Options::default();
     let args: Vec<usize> = std::env::args()
         .skip(1)
         .filter_map(|a| a.parse().ok())
@@ -18,11 +18,11 @@ fn main() {
     if let Some(p) = args.get(2) {
         o.pool = *p;
     }
-    match labelweir::daemon::throughput::run(&o) {
+    match labelweir::eval::throughput::run(&o) {
         Ok(r) => print!("{r}"),
         Err(e) => {
             eprintln!("throughput: {e}");
-            std::process::exit(e.exit_code() as i32);
+            std::process::exit(1);
         }
     }
 }

@@ -15,7 +15,6 @@ use serde::{Deserialize, Serialize};
 use crate::model::ModelSettings;
 use crate::notice::NoticeSettings;
 use crate::policy::PolicySettings;
-use crate::review::TrustedSettings;
 
 /// The shipped, documented default configuration file (also the template `labelweir init` writes).
 pub const SHIPPED_CONFIG: &str = include_str!("../config/labelweir.toml");
@@ -183,6 +182,39 @@ impl Default for PoolSettings {
         Self {
             exact_refresh_interval_secs: 3600,
             summary_save_interval_secs: 60,
+        }
+    }
+}
+
+/// The `[trusted]` section of the configuration: the trusted set's rolling window, balance checks, and the
+/// re-check of recently accepted batches after the set changes.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct TrustedSettings {
+    /// Keep at most this many trusted items per class; when exceeded the oldest (by verification time)
+    /// leave the set. Items; 0 = no limit. Default 0.
+    pub max_items_per_class: usize,
+    /// Trusted items verified longer ago than this leave the set (but never below
+    /// `min_items_per_class` for their class). Days; 0 = no age limit. Default 0.
+    pub max_age_days: u32,
+    /// A class with fewer trusted items than this cannot be judged reliably: `trusted` commands and the
+    /// daemon warn. Items; default 5.
+    pub min_items_per_class: usize,
+    /// After the trusted set changes, re-score at most this many of the most recently accepted batches.
+    /// Batches; 0 disables the re-check. Default 20.
+    pub rescore_lookback_batches: usize,
+    /// ... and only those accepted within this many days. Days; 0 = no age limit. Default 7.
+    pub rescore_lookback_days: u32,
+}
+
+impl Default for TrustedSettings {
+    fn default() -> Self {
+        Self {
+            max_items_per_class: 0,
+            max_age_days: 0,
+            min_items_per_class: 5,
+            rescore_lookback_batches: 20,
+            rescore_lookback_days: 7,
         }
     }
 }
@@ -466,71 +498,6 @@ pub fn render_with_vendors(vendors: &[String]) -> String {
         }
     }
     out
-}
-
-/// The folders of a workspace (`DIR`): `labelweir.toml`, `inbox/<vendor>/`, the daemon-private
-/// `processing/`, `accepted/`, `quarantine/`, `rejected/`, `notices/<vendor>/`, and the store in `state/`.
-#[derive(Debug, Clone, PartialEq, Eq)]
-pub struct Workspace {
-    /// The workspace root.
-    pub root: PathBuf,
-}
-
-impl Workspace {
-    /// Folders the daemon owns, created by `init`.
-    pub const PRIVATE_FOLDERS: [&'static str; 6] = [
-        "processing",
-        "accepted",
-        "quarantine",
-        "rejected",
-        "notices",
-        "state",
-    ];
-
-    /// A workspace rooted at `root`.
-    pub fn new(root: impl Into<PathBuf>) -> Self {
-        Self { root: root.into() }
-    }
-
-    /// `DIR/labelweir.toml`.
-    pub fn config_file(&self) -> PathBuf {
-        self.root.join(CONFIG_FILE)
-    }
-
-    /// `DIR/inbox`.
-    pub fn inbox(&self) -> PathBuf {
-        self.root.join("inbox")
-    }
-
-    /// `DIR/inbox/<vendor>`.
-    pub fn vendor_inbox(&self, vendor: &str) -> PathBuf {
-        self.inbox().join(vendor)
-    }
-
-    /// `DIR/processing`.
-    pub fn processing(&self) -> PathBuf {
-        self.root.join("processing")
-    }
-
-    /// `DIR/accepted`, `DIR/quarantine` or `DIR/rejected` (by name, as in `store::Outcome::folder`).
-    pub fn folder(&self, name: &str) -> PathBuf {
-        self.root.join(name)
-    }
-
-    /// `DIR/notices/<vendor>`.
-    pub fn notices(&self, vendor: &str) -> PathBuf {
-        self.root.join("notices").join(vendor)
-    }
-
-    /// `DIR/state` (the sled store).
-    pub fn state(&self) -> PathBuf {
-        self.root.join("state")
-    }
-
-    /// `DIR/admin.sock` (the review commands' channel to a running daemon).
-    pub fn admin_socket(&self) -> PathBuf {
-        self.root.join("admin.sock")
-    }
 }
 
 #[cfg(test)]

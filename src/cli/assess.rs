@@ -14,13 +14,14 @@ use ndarray::{Array1, Array2, ArrayView2, Axis};
 use serde_json::{json, Value};
 
 use super::{exit, Failure};
-use crate::config::Config;
-use crate::data::{self, sanitize, Classes, Table, TableOptions};
-use crate::model::{
+use labelweir::config::Config;
+use labelweir::data::{self, Classes, Table, TableOptions};
+use labelweir::model::{
     self, Assessment, FeatureMap, ModelSettings, PoolInput, PoolSummary, Standardizer, TrainReport,
     TrustedInput,
 };
-use crate::policy::{self, Decision, PolicySettings, VendorHistory};
+use labelweir::policy::{self, Decision, PolicySettings, VendorHistory};
+use labelweir::text::sanitize;
 
 /// The one line every output carries.
 pub const CAUTION: &str = "A flag is a suspicion for human review, not proof: a high suspicion means the \

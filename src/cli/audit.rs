@@ -7,9 +7,9 @@ use chrono::{DateTime, NaiveDate, Utc};
 
 use super::quarantine::dispatch;
 use super::{exit, Failure};
-use crate::data::sanitize;
-use crate::review::Request;
-use crate::store::AuditRecord;
+use labelweir::review::Request;
+use labelweir::store::AuditRecord;
+use labelweir::text::sanitize;
 
 /// Print the audit trail: verdicts, reviews (with reviewer and reason), trusted-set changes, notices.
 /// `--json` writes JSON Lines (one record per line), the export format.

@@ -4,15 +4,15 @@
 //! quality from the `linfa-datasets` crate) and of the fictional recycling plant, scores them with the
 //! engine and with two simple baselines, and prints ranking quality, repair costs, the incremental-vs-exact
 //! agreement, scoring time against pools of 10k–1M items, and the targets met or missed. See
-//! [`labelweir::eval::benchmark`](crate::eval::benchmark) for the protocol.
+//! [`labelweir::eval::benchmark`](labelweir::eval::benchmark) for the protocol.
 
 use std::io::Write;
 
 use anyhow::Context;
 
 use super::{exit, Failure};
-use crate::eval::benchmark::{self, BenchOptions};
-use crate::model::ModelSettings;
+use labelweir::eval::benchmark::{self, BenchOptions};
+use labelweir::model::ModelSettings;
 
 /// Measure labelweir: detection quality under planted label attacks, and speed.
 ///
@@ -79,7 +79,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
     match args.what {
         What::Engine(a) => engine(a),
         What::Daemon(d) => {
-            let mut o = crate::daemon::throughput::Options::default();
+            let mut o = labelweir::eval::throughput::Options::default();
             if let Some(b) = d.batches {
                 o.batches = b;
             }
@@ -92,12 +92,22 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             if let Some(path) = &d.config {
                 o.model = Some(model_settings(path)?);
             }
-            match crate::daemon::throughput::run(&o) {
+            match labelweir::eval::throughput::run(&o) {
                 Ok(r) => {
                     print!("{r}");
                     Ok(exit::OK)
                 }
-                Err(e) => Err(Failure::new(e.exit_code(), format!("bench daemon: {e}")).into()),
+                Err(e) => {
+                    use labelweir::eval::throughput::ThroughputError;
+                    let code = match &e {
+                        ThroughputError::Daemon(d) => super::daemon_exit(d),
+                        ThroughputError::Workspace(w) => super::workspace_exit(w),
+                        ThroughputError::Config(_) => exit::CONFIG,
+                        ThroughputError::Io { .. } | ThroughputError::Store(_) => exit::IO,
+                        _ => exit::INTERNAL,
+                    };
+                    Err(Failure::new(code, format!("bench daemon: {e}")).into())
+                }
             }
         }
     }

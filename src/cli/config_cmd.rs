@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use super::{exit, Failure};
-use crate::config::Config;
+use labelweir::config::Config;
 
 /// Work with a workspace's configuration file (DIR/labelweir.toml).
 #[derive(Debug, clap::Args)]
@@ -28,7 +28,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             Ok(c) => {
                 println!(
                     "{}: valid ({} vendor(s): {})",
-                    dir.join(crate::config::CONFIG_FILE).display(),
+                    dir.join(labelweir::config::CONFIG_FILE).display(),
                     c.vendors.len(),
                     c.vendors.join(", ")
                 );

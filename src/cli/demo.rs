@@ -10,10 +10,11 @@ use std::time::Duration;
 use anyhow::Context;
 
 use super::{exit, Failure};
-use crate::config::{Config, Workspace};
-use crate::daemon::{self, RunOptions};
-use crate::scenario::{self, Plant};
-use crate::store::{BatchRecord, Outcome};
+use labelweir::config::Config;
+use labelweir::daemon::{self, RunOptions};
+use labelweir::scenario::{self, Plant};
+use labelweir::store::{BatchRecord, Outcome};
+use labelweir::workspace::Workspace;
 
 /// Run a demonstration: a fictional recycling plant's sorting model, three contracted labeling vendors, and
 /// the daemon judging their batches live.
@@ -50,7 +51,7 @@ struct Drop {
 
 fn csv(prefix: &str, x: &ndarray::Array2<f64>, y: &[usize]) -> anyhow::Result<Vec<u8>> {
     let mut out = Vec::new();
-    crate::data::write_csv(
+    labelweir::data::write_csv(
         &mut out,
         ("id", "label"),
         &scenario::item_ids(prefix, y.len()),
@@ -180,7 +181,8 @@ fn setup(dir: &Path) -> anyhow::Result<()> {
     std::fs::write(&trusted, csv("trusted", &x, &y)?)?;
     let ws_dir = dir.join("workspace");
     let vendors: Vec<String> = VENDORS.iter().map(|s| s.to_string()).collect();
-    super::init::create_workspace(&ws_dir, &trusted, &vendors, "demo-expert")?;
+    labelweir::workspace::create_workspace(&ws_dir, &trusted, &vendors, "demo-expert")
+        .map_err(super::workspace_failure)?;
     // Demo pacing: react within a fraction of a second.
     let cfg_path = Workspace::new(&ws_dir).config_file();
     let text = std::fs::read_to_string(&cfg_path)?
@@ -212,7 +214,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         .build()?;
     let done = Arc::new(AtomicUsize::new(0));
     let idle = Arc::new(tokio::sync::Notify::new());
-    let observer: crate::scoring::Observer = {
+    let observer: labelweir::Observer = {
         let (done, idle) = (done.clone(), idle.clone());
         Arc::new(move |r: &BatchRecord| {
             print_verdict(r);
@@ -267,7 +269,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         on_ready: Some(on_ready),
     };
     rt.block_on(daemon::run(Workspace::new(&ws_dir), config, opts, shutdown))
-        .map_err(|e| Failure::new(e.exit_code(), e.to_string()))?;
+        .map_err(|e| Failure::new(super::daemon_exit(&e), e.to_string()))?;
     println!(
         "\nfolders: {}/accepted, quarantine (read-only copies + reports), rejected; vendor notices in notices/<vendor>/",
         ws_dir.display()

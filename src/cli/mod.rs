@@ -13,6 +13,7 @@ pub mod init;
 pub mod quarantine;
 pub mod run;
 pub mod trusted;
+pub mod vendor;
 
 /// An error that carries the exit code the process should end with.
 #[derive(Debug, thiserror::Error)]
@@ -32,6 +33,42 @@ impl Failure {
             message: message.into(),
         }
     }
+}
+
+/// The exit code for a daemon failure: 78 configuration, 74 I/O or storage, 70 internal.
+pub fn daemon_exit(e: &labelweir::daemon::DaemonError) -> u8 {
+    use labelweir::daemon::ErrorKind;
+    match e.kind() {
+        ErrorKind::Config => exit::CONFIG,
+        ErrorKind::Io => exit::IO,
+        ErrorKind::Internal => exit::INTERNAL,
+    }
+}
+
+/// The exit code for a review failure: 2 for bad input, unknown batches and refused decisions, 74 for
+/// store and I/O errors, 70 for engine failures.
+pub fn review_exit(e: &labelweir::review::ReviewError) -> u8 {
+    use labelweir::review::ReviewError;
+    match e {
+        ReviewError::NotFound(_) | ReviewError::Refused(_) | ReviewError::Invalid(_) => exit::INPUT,
+        ReviewError::Store { .. } | ReviewError::Io { .. } => exit::IO,
+        _ => exit::INTERNAL,
+    }
+}
+
+/// The exit code for a failure to create or prepare a workspace: 2 bad input, 78 configuration, 74 I/O.
+pub fn workspace_exit(e: &labelweir::workspace::WorkspaceError) -> u8 {
+    use labelweir::workspace::WorkspaceError;
+    match e {
+        WorkspaceError::Input(_) => exit::INPUT,
+        WorkspaceError::Config(_) => exit::CONFIG,
+        _ => exit::IO,
+    }
+}
+
+/// A workspace failure as the process's error.
+pub fn workspace_failure(e: labelweir::workspace::WorkspaceError) -> anyhow::Error {
+    Failure::new(workspace_exit(&e), e.to_string()).into()
 }
 
 /// Exit codes shared by the subcommands (documented in the README).

@@ -9,14 +9,15 @@ use std::time::{Duration, Instant};
 use anyhow::Context;
 
 use super::{exit, Failure};
-use crate::admin;
-use crate::config::{Config, Workspace};
-use crate::data::sanitize;
-use crate::review::{
+use labelweir::admin;
+use labelweir::config::Config;
+use labelweir::review::{
     self, Caller, DecisionReport, NoHooks, QueueEntry, RejectRequest, ReleaseRequest, Request,
     ReviewEnv, ReviewError, ShowReport, WithdrawRequest,
 };
-use crate::store::{Store, StoreError};
+use labelweir::store::{Store, StoreError};
+use labelweir::text::sanitize;
+use labelweir::workspace::Workspace;
 
 /// Review quarantined batches: list them, show why one was held, release or reject it, or withdraw an
 /// accepted batch from the pool. Works while the daemon runs (through its admin socket, DIR/admin.sock)
@@ -55,7 +56,8 @@ struct ShowArgs {
     dir: PathBuf,
     /// Batch id (from `quarantine list`).
     batch: String,
-    /// Where to write the HTML page. Default: ./labelweir-review-<BATCH>.html.
+    /// Where to write the HTML page. Default: beside the batch's report in the workspace,
+    /// `DIR/<folder>/<BATCH>.review.html` (it moves with the batch when a reviewer decides).
     #[arg(long)]
     html: Option<PathBuf>,
     /// Do not write the HTML page.
@@ -164,9 +166,21 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             let page = if a.no_html {
                 None
             } else {
-                let path = a.html.clone().unwrap_or_else(|| {
-                    PathBuf::from(format!("labelweir-review-{}.html", safe_stem(&a.batch)))
-                });
+                let path = match &a.html {
+                    Some(p) => p.clone(),
+                    None => review::page_path(&Workspace::new(&a.dir), &report.batch).ok_or_else(
+                        || {
+                            Failure::new(
+                                exit::INPUT,
+                                format!(
+                                    "batch {} has no folder yet (state {}); give --html PATH",
+                                    sanitize(&report.batch.id),
+                                    report.batch.state
+                                ),
+                            )
+                        },
+                    )?,
+                };
                 write_page(&path, &review::render_html(&report))
                     .with_context(|| format!("write {}", path.display()))
                     .map_err(|e| Failure::new(exit::IO, format!("{e:#}")))?;
@@ -226,13 +240,6 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
     Ok(exit::OK)
 }
 
-fn safe_stem(s: &str) -> String {
-    s.chars()
-        .filter(|c| c.is_ascii_alphanumeric() || *c == '-' || *c == '_')
-        .take(64)
-        .collect()
-}
-
 fn write_page(path: &Path, html: &str) -> std::io::Result<()> {
     let dir = match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
@@ -242,7 +249,7 @@ fn write_page(path: &Path, html: &str) -> std::io::Result<()> {
         .file_name()
         .map(|s| s.to_string_lossy().into_owned())
         .unwrap_or_else(|| "labelweir-review.html".into());
-    crate::notice::write_atomic(&dir, &name, html.as_bytes()).map(|_| ())
+    labelweir::fsx::write_atomic(&dir, &name, html.as_bytes(), None).map(|_| ())
 }
 
 /// Pretty-print JSON to stdout.
@@ -253,7 +260,7 @@ pub fn print_json(v: &serde_json::Value) -> anyhow::Result<()> {
 
 /// Turn a review error into a [`Failure`] with its exit code.
 pub fn review_failure(e: ReviewError) -> anyhow::Error {
-    Failure::new(e.exit_code(), e.to_string()).into()
+    Failure::new(super::review_exit(&e), e.to_string()).into()
 }
 
 fn own_uid() -> Option<u32> {

@@ -4,8 +4,9 @@ use std::net::SocketAddr;
 use std::path::PathBuf;
 
 use super::{exit, Failure};
-use crate::config::{Config, Workspace};
-use crate::daemon::{self, RunOptions};
+use labelweir::config::Config;
+use labelweir::daemon::{self, RunOptions};
+use labelweir::workspace::Workspace;
 
 /// Run the daemon on a workspace in the foreground until SIGINT or SIGTERM.
 ///
@@ -68,7 +69,7 @@ pub fn run_daemon(dir: PathBuf, config: Config, opts: RunOptions) -> anyhow::Res
         .map_err(|e| Failure::new(exit::INTERNAL, format!("cannot start the runtime: {e}")))?;
     let ws = Workspace::new(dir);
     rt.block_on(daemon::run(ws, config, opts, signals()))
-        .map_err(|e| Failure::new(e.exit_code(), e.to_string()))?;
+        .map_err(|e| Failure::new(super::daemon_exit(&e), e.to_string()))?;
     Ok(exit::OK)
 }
 

@@ -5,12 +5,12 @@ use std::path::PathBuf;
 
 use super::quarantine::{dispatch, print_json};
 use super::{exit, Failure};
-use crate::data::sanitize;
-use crate::review::{
+use labelweir::review::{
     Request, RescanReport, TrustedAddRequest, TrustedChange, TrustedExport, TrustedRemoveRequest,
     TrustedReport,
 };
-use crate::store::TrustedItem;
+use labelweir::store::TrustedItem;
+use labelweir::text::sanitize;
 
 /// Keep the trusted set (expert-verified items every batch is judged against). Every item keeps who
 /// verified it, when, and from what source; nothing a vendor delivers can change it. After a change the
@@ -172,7 +172,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         Command::Export(a) => {
             let v = dispatch(&a.dir, Request::TrustedExport)?;
             let export: TrustedExport = serde_json::from_value(v)?;
-            let config = crate::config::Config::from_workspace(&a.dir)
+            let config = labelweir::config::Config::from_workspace(&a.dir)
                 .map_err(|e| Failure::new(exit::CONFIG, e.to_string()))?;
             let bytes = if a.format == "jsonl" {
                 let mut out = Vec::new();
@@ -215,7 +215,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
 
 /// The trusted items as CSV in the workspace's columns, faithful for re-import with `trusted add` (not
 /// neutralised for spreadsheets: ids are written exactly as stored).
-fn export_csv(e: &TrustedExport, config: &crate::config::Config) -> anyhow::Result<Vec<u8>> {
+fn export_csv(e: &TrustedExport, config: &labelweir::config::Config) -> anyhow::Result<Vec<u8>> {
     let d = e.features.len();
     let rows: Vec<&TrustedItem> = e.items.iter().filter(|t| t.features.len() == d).collect();
     let ids: Vec<String> = rows.iter().map(|t| t.id.clone()).collect();
@@ -227,7 +227,7 @@ fn export_csv(e: &TrustedExport, config: &crate::config::Config) -> anyhow::Resu
             .collect(),
     )?;
     let mut out = Vec::new();
-    crate::data::write_csv(
+    labelweir::data::write_csv(
         &mut out,
         (&config.schema.id_column, &config.schema.label_column),
         &ids,
@@ -238,7 +238,7 @@ fn export_csv(e: &TrustedExport, config: &crate::config::Config) -> anyhow::Resu
     Ok(out)
 }
 
-fn print_balance(b: &crate::review::Balance) {
+fn print_balance(b: &labelweir::review::Balance) {
     let parts: Vec<String> = b
         .per_class
         .iter()

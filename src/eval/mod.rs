@@ -14,3 +14,4 @@
 pub mod baselines;
 pub mod benchmark;
 pub mod metrics;
+pub mod throughput;

@@ -20,21 +20,26 @@
 //! Every step is idempotent, so the daemon redoes [`settle`] for batches it finds `Decided` at startup.
 
 use std::fs;
-use std::io::Write;
 use std::os::unix::fs::PermissionsExt;
 use std::path::{Path, PathBuf};
 
 use chrono::Utc;
+use std::sync::atomic::Ordering;
+use std::sync::mpsc::Receiver;
+use std::sync::Arc;
+use std::time::Instant;
 
-use crate::config::{Config, Workspace};
+use super::{Filing, Observer, Shared};
+use crate::config::Config;
 use crate::metrics::Metrics;
 use crate::notice::{self, BatchRef, Notice, NoticeItem, NoticeReason};
 use crate::store::{AuditRecord, BatchRecord, BatchState, Outcome, PoolChange, Store, StoreError};
+use crate::workspace::Workspace;
 
 /// Errors while filing a batch (daemon-side; never about the input).
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
-pub enum ActionError {
+pub enum FileError {
     /// Filesystem error on a daemon folder.
     #[error("{op} {path}: {source}")]
     Io {
@@ -48,72 +53,14 @@ pub enum ActionError {
     /// Store error.
     #[error(transparent)]
     Store(#[from] StoreError),
+    /// The filing thread panicked (a bug).
+    #[error("the filing thread panicked")]
+    Panicked,
 }
 
-fn io_err(op: &'static str, path: &Path) -> impl FnOnce(std::io::Error) -> ActionError {
+fn io_err(op: &'static str, path: &Path) -> impl FnOnce(std::io::Error) -> FileError {
     let path = path.to_path_buf();
-    move |source| ActionError::Io { op, path, source }
-}
-
-/// Write `bytes` to `dir/name` atomically with the given mode: temporary file, fsync, rename, fsync dir.
-pub fn write_atomic_mode(
-    dir: &Path,
-    name: &str,
-    bytes: &[u8],
-    mode: u32,
-) -> std::io::Result<PathBuf> {
-    let mut written = write_atomic_mode_all(dir, &[(name, bytes)], mode)?;
-    Ok(written.remove(0))
-}
-
-/// Write several files into `dir` with the given mode, each atomically, with **one** fsync of the folder:
-/// each goes to a temporary name and is fsynced, then each is renamed over its final name, then the folder
-/// is fsynced once (which makes every rename in it durable). Returns the final paths.
-pub fn write_atomic_mode_all(
-    dir: &Path,
-    files: &[(&str, &[u8])],
-    mode: u32,
-) -> std::io::Result<Vec<PathBuf>> {
-    let tmp_of = |name: &str| dir.join(format!(".{name}.tmp-{}", std::process::id()));
-    for (name, bytes) in files {
-        let tmp = tmp_of(name);
-        // A read-only leftover from an interrupted attempt cannot be opened for writing: remove it first.
-        let _ = fs::remove_file(&tmp);
-        let written = fs::OpenOptions::new()
-            .write(true)
-            .create(true)
-            .truncate(true)
-            .open(&tmp)
-            .and_then(|mut f| {
-                f.write_all(bytes)?;
-                f.set_permissions(fs::Permissions::from_mode(mode))?;
-                f.sync_all()
-            });
-        if let Err(e) = written {
-            let _ = fs::remove_file(&tmp);
-            return Err(e);
-        }
-    }
-    let mut out = Vec::with_capacity(files.len());
-    for (i, (name, _)) in files.iter().enumerate() {
-        let final_path = dir.join(name);
-        if let Err(e) = fs::rename(tmp_of(name), &final_path) {
-            for (name, _) in &files[i..] {
-                let _ = fs::remove_file(tmp_of(name));
-            }
-            return Err(e);
-        }
-        out.push(final_path);
-    }
-    crate::ingest::sync_dir(dir)?;
-    Ok(out)
-}
-
-/// Where a batch's file lives once settled: `<folder>/<file_name>`.
-pub fn settled_path(ws: &Workspace, record: &BatchRecord) -> Option<PathBuf> {
-    record
-        .outcome
-        .map(|o| ws.folder(o.folder()).join(&record.file_name))
+    move |source| FileError::Io { op, path, source }
 }
 
 /// The report written beside quarantined and rejected files.
@@ -131,7 +78,7 @@ fn file_into_folder(
     outcome: Outcome,
     bytes: Option<&[u8]>,
     report: Option<&[u8]>,
-) -> Result<(), ActionError> {
+) -> Result<(), FileError> {
     let src_dir = ws.processing();
     let src = src_dir.join(&record.file_name);
     let dst_dir = ws.folder(outcome.folder());
@@ -178,9 +125,10 @@ fn file_into_folder(
     }
     // One fsync of the terminal folder covers the renamed entry, the copied bytes and the report.
     if !writes.is_empty() {
-        write_atomic_mode_all(&dst_dir, &writes, mode).map_err(io_err("write", &dst_dir))?;
+        crate::fsx::write_atomic_all(&dst_dir, &writes, Some(mode))
+            .map_err(io_err("write", &dst_dir))?;
     } else if touched_src_dir {
-        crate::ingest::sync_dir(&dst_dir).map_err(io_err("fsync", &dst_dir))?;
+        crate::fsx::sync_dir(&dst_dir).map_err(io_err("fsync", &dst_dir))?;
     }
     if remove_dir {
         fs::remove_dir_all(&src).map_err(io_err("remove", &src))?;
@@ -188,7 +136,7 @@ fn file_into_folder(
         fs::remove_file(&src).map_err(io_err("remove", &src))?;
     }
     if touched_src_dir {
-        crate::ingest::sync_dir(&src_dir).map_err(io_err("fsync", &src_dir))?;
+        crate::fsx::sync_dir(&src_dir).map_err(io_err("fsync", &src_dir))?;
     }
     Ok(())
 }
@@ -260,7 +208,7 @@ pub fn settle(
     metrics: Option<&Metrics>,
     record: &BatchRecord,
     bytes: Option<&[u8]>,
-) -> Result<BatchRecord, ActionError> {
+) -> Result<BatchRecord, FileError> {
     if record.state != BatchState::Decided {
         return Ok(record.clone());
     }
@@ -318,4 +266,55 @@ pub fn settle(
         |r| r.notices = written.clone(),
     )?;
     Ok(settled)
+}
+/// The filing thread: [`settle`], then metrics, log line and observer.
+pub(crate) struct Filer {
+    pub(crate) ws: Workspace,
+    pub(crate) config: Arc<Config>,
+    pub(crate) store: Store,
+    pub(crate) metrics: Arc<Metrics>,
+    pub(crate) observer: Option<Observer>,
+    pub(crate) shared: Arc<Shared>,
+}
+
+impl Filer {
+    pub(crate) fn run(mut self, rx: Receiver<Filing>) -> Result<(), FileError> {
+        let mut config_seen = 0;
+        for f in rx {
+            if let Some(c) = self.shared.reload.newer(&mut config_seen) {
+                self.config = c;
+            }
+            let t = Instant::now();
+            let settled = settle(
+                &self.ws,
+                &self.config,
+                &self.store,
+                Some(&self.metrics),
+                &f.record,
+                f.bytes.as_deref(),
+            )?;
+            self.metrics.stage("notice", t.elapsed());
+            let outcome = settled.outcome.map_or("rejected", |o| o.as_str());
+            self.metrics.batch_outcome(
+                &settled.vendor,
+                outcome,
+                settled.items.unwrap_or(0) as u64,
+                settled.bytes.unwrap_or(0),
+                chrono::Utc::now().timestamp_millis() as f64 / 1000.0,
+            );
+            self.shared.settled.fetch_add(1, Ordering::SeqCst);
+            tracing::info!(
+                batch_id = %settled.id,
+                vendor = %settled.vendor,
+                sha256 = settled.sha256.as_deref().unwrap_or(""),
+                outcome,
+                stage = "notice",
+                "batch settled"
+            );
+            if let Some(obs) = &self.observer {
+                obs(&settled);
+            }
+        }
+        Ok(())
+    }
 }

@@ -28,19 +28,27 @@
 //! Any failure in 2–4 that is about the input becomes a [`RejectReason`]; the daemon never crashes on
 //! input. Nothing here writes to the trusted set, and no path is built from vendor data.
 
+use std::collections::HashSet;
 use std::ffi::OsStr;
 use std::fs::File;
 use std::io::Read;
 use std::os::unix::ffi::OsStrExt;
 use std::path::Path;
-use std::time::{Duration, SystemTime};
+use std::sync::atomic::Ordering;
+use std::sync::Arc;
+use std::time::{Duration, Instant, SystemTime};
 
 use rustix::fs::{Mode, OFlags, RenameFlags};
 use sha2::{Digest, Sha256};
 
-use crate::config::{Config, Workspace};
+use super::{IngestCtl, Job, JobInput, ScoringHandle};
+use crate::config::Config;
 use crate::data::{self, Classes, Format, Table};
-use crate::store::{BatchRecord, RejectReason, Store, StoreError};
+use crate::http::Readiness;
+use crate::metrics::Metrics;
+use crate::store::{BatchRecord, RejectReason, Store, StoreError, WorkspaceMeta};
+use crate::text::{escape_name, is_unsafe_char};
+use crate::workspace::{free_bytes, Workspace};
 
 /// Suffixes of temporary upload names (ignored).
 pub const TEMP_SUFFIXES: [&str; 3] = [".part", ".filepart", ".tmp"];
@@ -159,39 +167,13 @@ pub fn scan_vendor(
     Ok(scan)
 }
 
-/// A vendor-supplied name made printable: invalid UTF-8 bytes as `\xNN`, control, bidi and other
-/// format characters as `\u{...}`, cut to 255 characters.
-pub fn escape_name(name: &OsStr) -> String {
-    let mut out = String::new();
-    for chunk in name.as_bytes().utf8_chunks() {
-        for c in chunk.valid().chars() {
-            if c.is_control() || is_bidi_or_format(c) || c == '\\' {
-                out.push_str(&c.escape_unicode().to_string());
-            } else {
-                out.push(c);
-            }
-        }
-        for b in chunk.invalid() {
-            out.push_str(&format!("\\x{b:02x}"));
-        }
-    }
-    if out.chars().count() > 255 {
-        out = out.chars().take(255).collect::<String>() + "…";
-    }
-    out
-}
-
-fn is_bidi_or_format(c: char) -> bool {
-    matches!(c, '\u{200b}'..='\u{200f}' | '\u{202a}'..='\u{202e}' | '\u{2066}'..='\u{2069}' | '\u{feff}' | '\u{061c}')
-}
-
 /// Why a name is unsafe, if it is: not UTF-8, control or bidi characters, backslashes (a name that
 /// reads as a path elsewhere), or longer than 200 bytes.
 pub fn unsafe_name(name: &OsStr) -> Option<&'static str> {
     let Some(s) = name.to_str() else {
         return Some("the file name is not valid UTF-8");
     };
-    if s.chars().any(|c| c.is_control() || is_bidi_or_format(c)) {
+    if s.chars().any(is_unsafe_char) {
         return Some("the file name contains control or bidirectional-override characters");
     }
     if s.contains('\\') || s.contains("..") {
@@ -216,8 +198,6 @@ pub fn format_of(name: &OsStr) -> Option<Format> {
 pub struct Claimed {
     /// Its record (state `Claimed`).
     pub record: BatchRecord,
-    /// What it looked like when listed.
-    pub kind: EntryKind,
 }
 
 /// Errors that stop claiming (not input problems).
@@ -237,11 +217,9 @@ pub enum IngestError {
     /// Store error.
     #[error(transparent)]
     Store(#[from] StoreError),
-}
-
-/// fsync a directory (makes renames inside it durable).
-pub fn sync_dir(dir: &Path) -> std::io::Result<()> {
-    File::open(dir)?.sync_all()
+    /// The wake-up lock was poisoned by a panic (a bug).
+    #[error("ingest lock poisoned")]
+    Poisoned,
 }
 
 /// Claim a candidate: record it, then rename it into `processing/` without replacing anything.
@@ -293,10 +271,7 @@ pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Clai
     }
     to_dir.sync_all().map_err(io("fsync", &to))?;
     from_dir.sync_all().map_err(io("fsync", &from))?;
-    Ok(Some(Claimed {
-        record,
-        kind: c.kind,
-    }))
+    Ok(Some(Claimed { record }))
 }
 
 /// The bytes of a claimed file, read through one descriptor.
@@ -473,8 +448,7 @@ pub fn prepare(
     features: &[String],
     classes: &Classes,
     record: &BatchRecord,
-) -> Option<crate::scoring::JobInput> {
-    use crate::scoring::JobInput;
+) -> Option<JobInput> {
     let path = ws.processing().join(&record.file_name);
     let read = match read_claimed(&path, config.ingest.max_file_bytes) {
         Ok(r) => r,
@@ -521,6 +495,256 @@ pub fn prepare(
     })
 }
 
+/// The ingest thread (`labelweir-ingest`): waits for marks on its [`IngestCtl`], the rescan timer or a
+/// quiet-period deadline; lists vendor folders, claims ready files, reads and parses them, and submits each
+/// as a [`Job`] to the scoring worker.
+pub struct Ingest {
+    pub(crate) ws: Workspace,
+    pub(crate) config: Arc<Config>,
+    pub(crate) store: Store,
+    pub(crate) meta: WorkspaceMeta,
+    pub(crate) classes: Classes,
+    pub(crate) metrics: Arc<Metrics>,
+    pub(crate) ready: Arc<Readiness>,
+    pub(crate) scoring: ScoringHandle,
+    pub(crate) ctl: Arc<IngestCtl>,
+    pub(crate) seen: HashSet<(String, std::ffi::OsString)>,
+}
+
+enum Flow {
+    Continue,
+    Stop,
+}
+
+impl Ingest {
+    fn stopping(&self) -> bool {
+        self.ctl.wake.lock().map(|w| w.stop).unwrap_or(true)
+    }
+
+    fn submit(&self, record: BatchRecord, input: JobInput) -> Flow {
+        match self.scoring.submit(Job { record, input }) {
+            Ok(()) => {
+                self.metrics
+                    .queue_depth(self.scoring.shared.queue_depth.load(Ordering::SeqCst));
+                Flow::Continue
+            }
+            Err(_) => Flow::Stop, // the worker stopped: the claim stays in processing/ for the next start
+        }
+    }
+
+    fn process_claimed(&self, record: BatchRecord) -> Result<Flow, IngestError> {
+        let t = Instant::now();
+        let input = prepare(
+            &self.ws,
+            &self.config,
+            &self.meta.features,
+            &self.classes,
+            &record,
+        );
+        self.metrics.stage("parse", t.elapsed());
+        match input {
+            Some(input) => Ok(self.submit(record, input)),
+            None => {
+                self.store.forget_claim(&record.id)?;
+                Ok(Flow::Continue)
+            }
+        }
+    }
+
+    fn disk_ok(&self) -> bool {
+        let min = self.config.ingest.min_free_bytes;
+        let mut ok = true;
+        for (mount, p) in [("inbox", self.ws.inbox()), ("state", self.ws.state())] {
+            if let Some(free) = free_bytes(&p) {
+                self.metrics.free_bytes(mount, free);
+                ok &= free >= min;
+            }
+        }
+        self.ready.disk.store(ok, Ordering::SeqCst);
+        ok
+    }
+
+    fn scan_unknown(&self) {
+        let known: HashSet<&str> = self.config.vendors.iter().map(|s| s.as_str()).collect();
+        let mut unknown = 0;
+        if let Ok(rd) = std::fs::read_dir(self.ws.inbox()) {
+            for e in rd.flatten() {
+                let name = e.file_name();
+                if !known.contains(name.to_string_lossy().as_ref()) {
+                    unknown += 1;
+                    tracing::warn!(entry = %escape_name(&name), "inbox/ entry is not a configured vendor; ignored");
+                }
+            }
+        }
+        self.metrics.unknown_inbox_folders(unknown);
+    }
+
+    /// Scan one vendor and take its ready files. Returns when the next waiting file becomes ready.
+    fn scan_and_take(&mut self, vendor: &str) -> Result<(Flow, Option<SystemTime>), IngestError> {
+        let quiet = Duration::from_millis(self.config.ingest.quiet_period_ms);
+        let dir = self.ws.vendor_inbox(vendor);
+        let scan = match scan_vendor(&dir, vendor, quiet, SystemTime::now()) {
+            Ok(s) => s,
+            Err(e) => {
+                tracing::error!(vendor, error = %e, "cannot list vendor folder");
+                self.metrics.error("claim", "list");
+                return Ok((Flow::Continue, None));
+            }
+        };
+        self.metrics
+            .inbox_backlog(vendor, scan.backlog as i64, scan.oldest_age.as_secs_f64());
+        for c in &scan.ready {
+            let key = (vendor.to_string(), c.name.clone());
+            if self.seen.insert(key) {
+                self.metrics.file_discovered(vendor);
+            }
+        }
+        if !scan.ready.is_empty() && !self.disk_ok() {
+            tracing::warn!("free space below ingest.min_free_bytes; not claiming");
+            return Ok((
+                Flow::Continue,
+                Some(SystemTime::now() + Duration::from_secs(5)),
+            ));
+        }
+        for c in scan.ready {
+            if self.stopping() {
+                return Ok((Flow::Stop, None));
+            }
+            self.seen.remove(&(vendor.to_string(), c.name.clone()));
+            let t = Instant::now();
+            let claimed = match claim(&self.ws, &self.store, &c) {
+                Ok(Some(c)) => c,
+                Ok(None) => continue,
+                Err(IngestError::Store(e)) => return Err(e.into()),
+                Err(e) => {
+                    tracing::error!(vendor, error = %e, "claim failed");
+                    self.metrics.error("claim", "rename");
+                    continue;
+                }
+            };
+            self.metrics.stage("claim", t.elapsed());
+            tracing::info!(batch_id = %claimed.record.id, vendor, original_name = %claimed.record.original_name, stage = "claim", "claimed");
+            if let Flow::Stop = self.process_claimed(claimed.record)? {
+                return Ok((Flow::Stop, None));
+            }
+        }
+        Ok((Flow::Continue, scan.next_ready))
+    }
+
+    /// Run until asked to stop: first the batches recovered from `processing/`, then the scan loop.
+    pub fn run(mut self, recovered: Vec<BatchRecord>) -> Result<(), IngestError> {
+        // The first full listing (backlog gauges, unknown folders, disk) makes the daemon ready; taking the
+        // backlog, which may be long, happens after.
+        let quiet = Duration::from_millis(self.config.ingest.quiet_period_ms);
+        for v in &self.config.vendors {
+            if let Ok(scan) = scan_vendor(&self.ws.vendor_inbox(v), v, quiet, SystemTime::now()) {
+                self.metrics
+                    .inbox_backlog(v, scan.backlog as i64, scan.oldest_age.as_secs_f64());
+            }
+        }
+        self.scan_unknown();
+        self.disk_ok();
+        self.ready.first_rescan.store(true, Ordering::SeqCst);
+        for rec in recovered {
+            tracing::info!(batch_id = %rec.id, vendor = %rec.vendor, "recovery: re-processing a claimed batch");
+            if let Flow::Stop = self.process_claimed(rec)? {
+                return Ok(());
+            }
+        }
+        let mut interval = Duration::from_secs(self.config.ingest.rescan_interval_secs);
+        let vendors = self.config.vendors.clone();
+        let mut next_timer = Instant::now();
+        let mut reason: &'static str = "startup";
+        let mut next_ready: Option<SystemTime> = None;
+        let mut first = true;
+        let mut config_seen = 0;
+        loop {
+            let targets: Vec<String>;
+            {
+                let mut w = self.ctl.wake.lock().map_err(|_| IngestError::Poisoned)?;
+                loop {
+                    if w.stop {
+                        return Ok(());
+                    }
+                    let now = Instant::now();
+                    if first || now >= next_timer {
+                        break;
+                    }
+                    if w.all.is_some() || !w.dirty.is_empty() {
+                        break;
+                    }
+                    if let Some(t) = next_ready {
+                        if SystemTime::now() >= t {
+                            break;
+                        }
+                    }
+                    let mut wait = next_timer.saturating_duration_since(now);
+                    if let Some(t) = next_ready {
+                        wait = wait.min(
+                            t.duration_since(SystemTime::now())
+                                .unwrap_or(Duration::ZERO)
+                                + Duration::from_millis(5),
+                        );
+                    }
+                    let (g, _) = self
+                        .ctl
+                        .cv
+                        .wait_timeout(w, wait)
+                        .map_err(|_| IngestError::Poisoned)?;
+                    w = g;
+                }
+                let now = Instant::now();
+                let timer = first || now >= next_timer;
+                let due = next_ready.is_some_and(|t| SystemTime::now() >= t);
+                if timer || w.all.is_some() || due {
+                    if !first && timer {
+                        reason = "timer";
+                    }
+                    if let Some(r) = w.all.take() {
+                        if !timer {
+                            reason = r;
+                        }
+                    } else if !timer && due {
+                        reason = "event";
+                    }
+                    w.dirty.clear();
+                    targets = vendors.clone();
+                } else {
+                    reason = "event";
+                    targets = std::mem::take(&mut w.dirty).into_iter().collect();
+                }
+                if timer {
+                    next_timer = now + interval;
+                }
+            }
+            // A reloaded configuration applies from this scan (vendors cannot change at runtime; a new
+            // rescan interval from the next timer).
+            if let Some(c) = self.scoring.shared.reload.newer(&mut config_seen) {
+                self.config = c;
+                interval = Duration::from_secs(self.config.ingest.rescan_interval_secs);
+            }
+            if targets.len() == vendors.len() {
+                self.metrics.rescan(reason);
+                self.scan_unknown();
+                self.disk_ok();
+            } else {
+                self.metrics.rescan("event");
+            }
+            next_ready = None;
+            for v in &targets {
+                let (flow, nr) = self.scan_and_take(v)?;
+                if let Flow::Stop = flow {
+                    return Ok(());
+                }
+                if let Some(t) = nr {
+                    next_ready = Some(next_ready.map_or(t, |x: SystemTime| x.min(t)));
+                }
+            }
+            first = false;
+        }
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -534,11 +758,11 @@ mod tests {
         fn escaping_any_name_is_printable(bytes in proptest::collection::vec(proptest::num::u8::ANY, 1..80)) {
             let name = OsString::from_vec(bytes.clone());
             let e = escape_name(&name);
-            proptest::prop_assert!(!e.chars().any(|c| c.is_control() || is_bidi_or_format(c)));
+            proptest::prop_assert!(!e.chars().any(is_unsafe_char));
             let s = String::from_utf8(bytes);
             let risky = match &s {
                 Err(_) => true,
-                Ok(s) => s.chars().any(|c| c.is_control() || is_bidi_or_format(c) || c == '\\'),
+                Ok(s) => s.chars().any(|c| is_unsafe_char(c) || c == '\\'),
             };
             if risky {
                 proptest::prop_assert!(unsafe_name(&name).is_some());

@@ -1,166 +1,23 @@
-//! The scoring worker: the only place where CPU-heavy work runs, on a dedicated `std::thread` fed by a
-//! bounded channel (never on the async runtime's threads).
-//!
-//! The ingest thread sends parsed (or rejected) batches as [`Job`]s; when the channel is full, `send`
-//! blocks and claiming pauses (backpressure). For each job the worker, in order:
-//!
-//! 1. checks the idempotency key (vendor + SHA-256) — a re-delivery is a `duplicate`;
-//! 2. **score**: runs the label-repair engine ([`crate::model::assess`], Zhang, Zhu & Wright, "Training Set
-//!    Debugging Using Trusted Items", AAAI 2018) in incremental mode against the in-memory pool summary and
-//!    the trusted set; a panic or error in the engine is caught and the batch is quarantined with reason
-//!    `score_invalid` (held for a person, never silently accepted);
-//! 3. **decide**: [`crate::policy::decide`] against the vendor's history;
-//! 4. **persist**: one flushed store transaction with the verdict, audit record, idempotency key, new
-//!    history and (accepted) the items in the pool; then **absorb**: the pool summary takes in the
-//!    accepted batch before the next batch is scored (batches are scored strictly in arrival order, each
-//!    against a summary that holds every batch accepted before it). The absorb itself is computed
-//!    *speculatively*: while the engine scores batch `i` on this thread, a short-lived
-//!    `labelweir-absorb` thread absorbs batch `i` into a copy of the same summary; an accepting verdict
-//!    adopts the copy (the same computation on the same numbers as absorbing the stored pool entry), any
-//!    other verdict drops it. So on two cores the absorb costs the scoring thread only the wait, if the
-//!    copy is not ready when scoring ends;
-//! 5. **notice**: hands the decided batch to the filing thread (`labelweir-filing`, bounded channel),
-//!    where [`crate::actions::settle`] files it and writes the vendor notice while the worker scores the
-//!    next batch. The verdict is already durable at hand-over; a filing interrupted by a crash is redone
-//!    at the next start.
-//!
-//! Between jobs (and every half second when idle) it picks up pool changes made by reviewers
-//! ([`ScoringHandle::pool_changed`]), trusted-set changes ([`ScoringHandle::trusted_changed`]), the result
-//! of a background exact refresh of the pool summary, and saves the summary periodically. On shutdown it
-//! finishes the job in hand, leaves queued jobs in `processing/` (the next start re-processes them), saves
-//! the summary, and returns.
+//! The scoring stage: the worker on thread `labelweir-scoring` (engine, policy, the verdict's store
+//! transaction, the pool summary kept in step with the pool), the pool summary's loading and exact
+//! rebuilds, and the trusted set as arrays.
 
 use std::panic::{catch_unwind, AssertUnwindSafe};
-use std::sync::atomic::{AtomicBool, AtomicU64, AtomicUsize, Ordering};
+use std::sync::atomic::Ordering;
 use std::sync::mpsc::{Receiver, RecvTimeoutError, SyncSender};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use ndarray::{Array1, Array2};
 
-use crate::config::{Config, Workspace};
+use super::verdict;
+use super::{now_ms, Filing, Job, JobInput, Observer, ScoringError, Shared};
+use crate::config::Config;
 use crate::data::Table;
 use crate::metrics::Metrics;
-use crate::model::{self, Assessment, PoolInput, PoolSummary, TrustedInput};
-use crate::policy::{self, Decision, Reason, ReasonCode, Verdict};
-use crate::store::{
-    AuditRecord, BatchRecord, BatchScores, Outcome, PoolEntry, RejectReason, SavedSummary, Store,
-    StoreError, Suspect, WorkspaceMeta, RECORD_VERSION,
-};
-
-/// Called after every settled batch (the demo prints verdicts through it).
-pub type Observer = Arc<dyn Fn(&BatchRecord) + Send + Sync>;
-
-/// What the ingest thread hands to the worker.
-#[derive(Debug)]
-pub enum JobInput {
-    /// Read and parsed.
-    Parsed {
-        /// The bytes that were hashed and parsed.
-        bytes: Vec<u8>,
-        /// Their SHA-256.
-        sha256: String,
-        /// The table.
-        table: Table,
-        /// Class index per item.
-        labels: Vec<usize>,
-    },
-    /// Not a usable batch.
-    Rejected {
-        /// Why.
-        reason: RejectReason,
-        /// The bytes, if they were read.
-        bytes: Option<Vec<u8>>,
-        /// Their SHA-256, if read.
-        sha256: Option<String>,
-    },
-}
-
-/// One claimed batch on its way to a verdict.
-#[derive(Debug)]
-pub struct Job {
-    /// Its record (state `Claimed`).
-    pub record: BatchRecord,
-    /// What ingest found.
-    pub input: JobInput,
-}
-
-/// Flags and counters shared between the worker and the rest of the daemon.
-#[derive(Debug, Default)]
-pub struct Shared {
-    /// Stop after the job in hand.
-    pub cancel: AtomicBool,
-    /// A reviewer changed the pool.
-    pub pool_changed: AtomicBool,
-    /// A reviewer changed the trusted set.
-    pub trusted_changed: AtomicBool,
-    /// Jobs waiting in the channel.
-    pub queue_depth: AtomicUsize,
-    /// Batches settled since start.
-    pub settled: AtomicU64,
-    /// Items in the pool summary.
-    pub pool_items: AtomicU64,
-    /// Accepted batches whose speculative absorb was adopted (the others went through [`catch_up`]).
-    pub speculative_absorbs: AtomicU64,
-    /// A configuration published by a SIGHUP reload (the worker, the filer, the ingest thread and the
-    /// admin socket pick it up between batches).
-    pub reload: crate::config::ConfigSlot,
-    /// When the scoring loop last came round ([`now_ms`]): every 500 ms while idle, and after each batch.
-    /// The systemd watchdog pings only while this is recent.
-    pub heartbeat_ms: AtomicU64,
-}
-
-/// Milliseconds on a monotonic clock since the first call in this process (a wall-clock step, e.g. from
-/// NTP, neither fakes nor hides a stalled scoring loop).
-pub fn now_ms() -> u64 {
-    static START: std::sync::OnceLock<Instant> = std::sync::OnceLock::new();
-    START.get_or_init(Instant::now).elapsed().as_millis() as u64
-}
-
-/// The handle the rest of the daemon (and the admin server) holds.
-#[derive(Clone, Debug)]
-pub struct ScoringHandle {
-    tx: SyncSender<Job>,
-    /// Shared flags.
-    pub shared: Arc<Shared>,
-}
-
-impl ScoringHandle {
-    /// Queue a job, blocking while the channel is full. Gives the job back if the worker has stopped.
-    pub fn submit(&self, job: Job) -> Result<(), Box<Job>> {
-        self.shared.queue_depth.fetch_add(1, Ordering::SeqCst);
-        self.tx.send(job).map_err(|e| {
-            self.shared.queue_depth.fetch_sub(1, Ordering::SeqCst);
-            Box::new(e.0)
-        })
-    }
-
-    /// Tell the worker the pool changed outside it (a release or withdrawal went through
-    /// `Store::transition`); it absorbs new entries, or rebuilds exactly after a removal.
-    pub fn pool_changed(&self) {
-        self.shared.pool_changed.store(true, Ordering::SeqCst);
-    }
-
-    /// Tell the worker the trusted set changed; it reloads it before the next batch.
-    pub fn trusted_changed(&self) {
-        self.shared.trusted_changed.store(true, Ordering::SeqCst);
-    }
-}
-
-/// Errors that stop the worker (store failures; input problems never do).
-#[derive(Debug, thiserror::Error)]
-#[non_exhaustive]
-pub enum ScoringError {
-    /// Store error.
-    #[error(transparent)]
-    Store(#[from] StoreError),
-    /// Filing error.
-    #[error(transparent)]
-    Action(#[from] crate::actions::ActionError),
-    /// The engine rejected the workspace's own data (trusted set, pool).
-    #[error("engine: {0}")]
-    Model(String),
-}
+use crate::model::{self, PoolInput, PoolSummary, TrustedInput};
+use crate::store::{BatchRecord, SavedSummary, Store, StoreError, WorkspaceMeta, RECORD_VERSION};
+use crate::workspace::Workspace;
 
 /// The trusted set as arrays.
 #[derive(Debug, Clone)]
@@ -337,113 +194,14 @@ pub struct Worker {
     pub shared: Arc<Shared>,
 }
 
-/// Start the worker thread. Returns its handle and the thread (which returns the final pool state).
-pub fn spawn(
-    mut worker: Worker,
-) -> std::io::Result<(
-    ScoringHandle,
-    std::thread::JoinHandle<Result<(), ScoringError>>,
-)> {
-    // Publish the pool and trusted-set gauges before the daemon reports ready, not whenever the new
-    // thread first runs (a scrape right after `/readyz` turned 200 would otherwise see 0).
-    worker.publish_pool();
-    worker.shared.heartbeat_ms.store(now_ms(), Ordering::SeqCst);
-    let cap = worker.config.ingest.queue_capacity;
-    let (tx, rx) = std::sync::mpsc::sync_channel::<Job>(cap);
-    let handle = ScoringHandle {
-        tx,
-        shared: worker.shared.clone(),
-    };
-    // Filing (moving the file, the report, the notice: mostly waiting on fsync) runs on its own thread so
-    // it overlaps the next batch's scoring. The verdict is already durable when a batch is handed over.
-    let (ftx, frx) = std::sync::mpsc::sync_channel::<Filing>(8);
-    let filer = Filer {
-        ws: worker.ws.clone(),
-        config: worker.config.clone(),
-        store: worker.store.clone(),
-        metrics: worker.metrics.clone(),
-        observer: worker.observer.clone(),
-        shared: worker.shared.clone(),
-    };
-    let filer_thread = std::thread::Builder::new()
-        .name("labelweir-filing".into())
-        .spawn(move || filer.run(frx))?;
-    let thread = std::thread::Builder::new()
-        .name("labelweir-scoring".into())
-        .spawn(move || {
-            let r = worker.run(rx, &ftx);
-            // Closing the channel lets the filer drain what it holds and stop.
-            drop(ftx);
-            let f = filer_thread
-                .join()
-                .unwrap_or_else(|_| Err(ScoringError::Model("the filing thread panicked".into())));
-            r.and(f)
-        })?;
-    Ok((handle, thread))
-}
-
-/// A decided batch on its way to its folder.
-struct Filing {
-    record: BatchRecord,
-    bytes: Option<Vec<u8>>,
-}
-
-/// The filing thread: [`crate::actions::settle`], then metrics, log line and observer.
-struct Filer {
-    ws: Workspace,
-    config: Arc<Config>,
-    store: Store,
-    metrics: Arc<Metrics>,
-    observer: Option<Observer>,
-    shared: Arc<Shared>,
-}
-
-impl Filer {
-    fn run(mut self, rx: Receiver<Filing>) -> Result<(), ScoringError> {
-        let mut config_seen = 0;
-        for f in rx {
-            if let Some(c) = self.shared.reload.newer(&mut config_seen) {
-                self.config = c;
-            }
-            let t = Instant::now();
-            let settled = crate::actions::settle(
-                &self.ws,
-                &self.config,
-                &self.store,
-                Some(&self.metrics),
-                &f.record,
-                f.bytes.as_deref(),
-            )?;
-            self.metrics.stage("notice", t.elapsed());
-            let outcome = settled.outcome.map_or("rejected", |o| o.as_str());
-            self.metrics.batch_outcome(
-                &settled.vendor,
-                outcome,
-                settled.items.unwrap_or(0) as u64,
-                settled.bytes.unwrap_or(0),
-                chrono::Utc::now().timestamp_millis() as f64 / 1000.0,
-            );
-            self.shared.settled.fetch_add(1, Ordering::SeqCst);
-            tracing::info!(
-                batch_id = %settled.id,
-                vendor = %settled.vendor,
-                sha256 = settled.sha256.as_deref().unwrap_or(""),
-                outcome,
-                stage = "notice",
-                "batch settled"
-            );
-            if let Some(obs) = &self.observer {
-                obs(&settled);
-            }
-        }
-        Ok(())
-    }
-}
-
 type Refreshed = Arc<Mutex<Option<Result<PoolState, String>>>>;
 
 impl Worker {
-    fn run(&mut self, rx: Receiver<Job>, filer: &SyncSender<Filing>) -> Result<(), ScoringError> {
+    pub(crate) fn run(
+        &mut self,
+        rx: Receiver<Job>,
+        filer: &SyncSender<Filing>,
+    ) -> Result<(), ScoringError> {
         let mut last_save = Instant::now();
         let mut last_refresh = Instant::now();
         let refreshed: Refreshed = Arc::new(Mutex::new(None));
@@ -495,7 +253,7 @@ impl Worker {
         result
     }
 
-    fn publish_pool(&self) {
+    pub(crate) fn publish_pool(&self) {
         let n = self.pool.summary.len();
         self.shared.pool_items.store(n, Ordering::SeqCst);
         self.metrics.pool_items(n);
@@ -605,21 +363,9 @@ impl Worker {
                 bytes,
                 sha256,
             } => {
-                let t = Instant::now();
-                record.outcome = Some(Outcome::Rejected);
-                record.bytes = bytes.as_ref().map(|b| b.len() as u64);
-                record.sha256 = sha256;
-                let audit = AuditRecord::new("daemon", "verdict")
-                    .batch(&record.id, &record.vendor)
-                    .outcome(Outcome::Rejected.as_str())
-                    .reason(reason.code.clone())
-                    .detail(serde_json::json!({ "detail": reason.detail, "row": reason.row, "column": reason.column, "original_name": record.original_name }));
-                record.reject = Some(reason);
-                let rec = self
-                    .store
-                    .record_verdict(&record, audit, false, None, None, None)?;
-                self.metrics.stage("persist", t.elapsed());
-                self.file(rec, bytes)
+                let v = verdict::rejected(record, reason, bytes.as_ref().map(Vec::len), sha256);
+                let (rec, _) = self.persist(v)?;
+                Filing { record: rec, bytes }
             }
             JobInput::Parsed {
                 bytes,
@@ -627,25 +373,17 @@ impl Worker {
                 table,
                 labels,
             } => {
-                record.sha256 = Some(sha256.clone());
                 record.bytes = Some(bytes.len() as u64);
                 record.items = Some(table.len());
-                if let Some(first) = self.store.batch_by_hash(&record.vendor, &sha256)? {
-                    let t = Instant::now();
-                    record.outcome = Some(Outcome::Duplicate);
-                    record.duplicate_of = Some(first.clone());
-                    let audit = AuditRecord::new("daemon", "verdict")
-                        .batch(&record.id, &record.vendor)
-                        .outcome(Outcome::Duplicate.as_str())
-                        .reason("duplicate")
-                        .detail(serde_json::json!({ "duplicate_of": first, "sha256": sha256 }));
-                    let rec = self
-                        .store
-                        .record_verdict(&record, audit, false, None, None, None)?;
-                    self.metrics.stage("persist", t.elapsed());
-                    self.file(rec, Some(bytes))
-                } else {
-                    self.score_and_decide(record, bytes, table, labels)?
+                let first = self.store.batch_by_hash(&record.vendor, &sha256)?;
+                record.sha256 = Some(sha256);
+                let rec = match first {
+                    Some(first) => self.persist(verdict::duplicate(record, first))?.0,
+                    None => self.score_and_decide(record, &table, &labels)?,
+                };
+                Filing {
+                    record: rec,
+                    bytes: Some(bytes),
                 }
             }
         };
@@ -654,30 +392,92 @@ impl Worker {
             .map_err(|_| ScoringError::Model("the filing thread stopped".into()))
     }
 
-    fn file(&mut self, record: BatchRecord, bytes: Option<Vec<u8>>) -> Filing {
-        Filing { record, bytes }
+    /// Record a verdict in one flushed store transaction (`persist` stage).
+    fn persist(&self, v: verdict::Verdict) -> Result<(BatchRecord, bool), ScoringError> {
+        let t = Instant::now();
+        let accepted = v.accepted();
+        let rec = self.store.record_verdict(
+            &v.record,
+            v.audit,
+            v.index_hash,
+            v.history.as_ref(),
+            v.assessment.as_ref(),
+            v.pool,
+        )?;
+        self.metrics.stage("persist", t.elapsed());
+        Ok((rec, accepted))
     }
 
+    /// Score (with the speculative absorb beside it), decide, persist, and bring the pool summary up to
+    /// date for an accepted batch.
     fn score_and_decide(
         &mut self,
-        mut record: BatchRecord,
-        bytes: Vec<u8>,
-        table: Table,
-        labels: Vec<usize>,
-    ) -> Result<Filing, ScoringError> {
+        record: BatchRecord,
+        table: &Table,
+        labels: &[usize],
+    ) -> Result<BatchRecord, ScoringError> {
+        // The summary this batch is scored against; a speculative absorb starts from it too.
+        let base = (self.pool.through_seq, self.pool.epoch);
+        let (scored, score_elapsed, speculative, absorb_wait) = self.score(table, labels);
+        self.metrics.stage("score", score_elapsed);
+        if let Err(msg) = &scored {
+            self.metrics.error("score", "engine");
+            tracing::error!(batch_id = %record.id, vendor = %record.vendor, error = %msg, "scoring failed; quarantining");
+        }
+        let t_decide = Instant::now();
+        let history = self.store.vendor_history(&record.vendor)?;
+        let decision = verdict::decide(&self.config, &history, &scored);
+        self.metrics.stage("decide", t_decide.elapsed());
+        if let Ok(a) = &scored {
+            self.metrics.batch_scored(
+                &record.vendor,
+                a.repair_cost,
+                Some(decision.baseline.median),
+            );
+        }
+        let v = verdict::scored(
+            &self.config,
+            record,
+            verdict::ScoredBatch {
+                table,
+                labels,
+                scored,
+                score_seconds: score_elapsed.as_secs_f64(),
+                classes: &self.meta.classes,
+                trusted_ids: &self.trusted.ids,
+            },
+            decision,
+            history,
+        );
+        let (rec, accepted) = self.persist(v)?;
+        if accepted {
+            let t_absorb = Instant::now();
+            self.absorb_accepted(rec.pool_seq, base, speculative);
+            self.metrics
+                .stage("absorb", absorb_wait + t_absorb.elapsed());
+        }
+        Ok(rec)
+    }
+
+    /// Run the engine on the batch against the pool summary; meanwhile a second thread absorbs the same
+    /// batch into a copy of that summary (the update the batch needs if it is accepted; it does not
+    /// depend on the score), adopted after an accepting verdict and dropped otherwise (see
+    /// `absorb_accepted` for when a copy may stand in for the stored entry). A panic or error in the
+    /// engine becomes an `Err` message. Returns the answer, the scoring time, the copy, and the time spent
+    /// waiting for the copy after scoring.
+    fn score(
+        &self,
+        table: &Table,
+        labels: &[usize],
+    ) -> (verdict::Scored, Duration, Option<PoolSummary>, Duration) {
         let k = self.meta.classes.len();
         let t_score = Instant::now();
-        // The summary this batch is scored against; a speculative absorb (below) starts from it too.
-        let base = (self.pool.through_seq, self.pool.epoch);
-        let (assessed, score_elapsed, speculative) = std::thread::scope(|s| {
-            // Speculative absorb: while the engine scores the batch against the pool summary, a second
-            // thread absorbs the same batch into a copy of that summary (the update the batch needs if it
-            // is accepted; it does not depend on the score). Adopted after an accepting verdict, dropped
-            // otherwise. See `absorb_accepted` for when a copy may stand in for the stored entry.
-            let spec = (base.1 != u64::MAX)
+        let base_epoch = self.pool.epoch;
+        std::thread::scope(|s| {
+            let spec = (base_epoch != u64::MAX)
                 .then(|| {
                     let (summary, settings) = (&self.pool.summary, &self.config.model);
-                    let (x, y) = (table.features.view(), labels.as_slice());
+                    let (x, y) = (table.features.view(), labels);
                     std::thread::Builder::new()
                         .name("labelweir-absorb".into())
                         .spawn_scoped(s, move || {
@@ -702,142 +502,22 @@ impl Worker {
                     },
                     PoolInput::Summary(&self.pool.summary),
                     table.features.view(),
-                    &labels,
+                    labels,
                 )
             }));
             let score_elapsed = t_score.elapsed();
             // Waiting here for the speculative absorb counts as `absorb` time.
             let t_wait = Instant::now();
             let speculative = spec.and_then(|h| h.join().ok().flatten());
-            (assessed, score_elapsed, (speculative, t_wait.elapsed()))
-        });
-        let (speculative, absorb_wait) = speculative;
-        let score_seconds = score_elapsed.as_secs_f64();
-        self.metrics.stage("score", score_elapsed);
-        let assessment: Result<Assessment, String> = match assessed {
-            Ok(Ok(a)) => Ok(a),
-            Ok(Err(e)) => Err(format!("the engine could not score the batch: {e}")),
-            Err(_) => Err("the engine failed (internal error) while scoring the batch".to_string()),
-        };
-        let t_decide = Instant::now();
-        let mut history = self.store.vendor_history(&record.vendor)?;
-        let decision: Decision = match &assessment {
-            Ok(a) => policy::decide_batch(
-                &self.config.policy,
-                &history,
-                &policy::BatchSignals::from_assessment(a, self.config.model.flag_threshold),
-            ),
-            Err(msg) => {
-                self.metrics.error("score", "engine");
-                tracing::error!(batch_id = %record.id, vendor = %record.vendor, error = %msg, "scoring failed; quarantining");
-                let mut d = policy::decide(&self.config.policy, &history, f64::NAN, f64::NAN);
-                d.verdict = Verdict::Quarantine;
-                d.reasons = vec![Reason {
-                    code: ReasonCode::ScoreInvalid,
-                    detail: msg.clone(),
-                }];
-                d
-            }
-        };
-        let accept = decision.verdict == Verdict::Accept;
-        self.metrics.stage("decide", t_decide.elapsed());
-
-        let t_persist = Instant::now();
-        let names = &self.meta.classes;
-        let class = |k: usize| names.get(k).cloned().unwrap_or_else(|| k.to_string());
-        if let Ok(a) = &assessment {
-            let flagged = a
-                .items
-                .iter()
-                .filter(|s| s.proposed_label != s.label)
-                .count();
-            record.scores = Some(BatchScores {
-                repair_cost: a.repair_cost,
-                damage: a.damage,
-                target_reached: a.target_reached,
-                converged: a.convergence.inner_converged && a.convergence.linear_converged,
-                score_seconds,
-                flagged_items: flagged,
-            });
-            let ranked = a.ranked();
-            let keep = flagged.clamp(20, 1000);
-            record.suspects = ranked
-                .iter()
-                .take(keep)
-                .map(|s| Suspect {
-                    id: table.ids.get(s.index).cloned().unwrap_or_default(),
-                    label: class(s.label),
-                    proposed_label: class(s.proposed_label),
-                    suspicion: s.suspicion,
-                    confidence: s.confidence,
-                })
-                .collect();
-            record.broken_trusted = a
-                .broken_trusted
-                .iter()
-                .filter_map(|b| self.trusted.ids.get(b.index).cloned())
-                .collect();
-            self.metrics.batch_scored(
-                &record.vendor,
-                a.repair_cost,
-                Some(decision.baseline.median),
-            );
-        }
-        record.outcome = Some(if accept {
-            Outcome::Accepted
-        } else {
-            Outcome::Quarantined
-        });
-        record.decision = Some(decision.clone());
-        let codes: Vec<&str> = decision.reasons.iter().map(|r| r.code.as_str()).collect();
-        let audit = AuditRecord::new("daemon", "verdict")
-            .batch(&record.id, &record.vendor)
-            .outcome(if accept { "accepted" } else { "quarantined" })
-            .reason(codes.join(","))
-            .detail(serde_json::json!({
-                "sha256": record.sha256,
-                "items": record.items,
-                "repair_cost": record.scores.as_ref().map(|s| s.repair_cost),
-                "damage": record.scores.as_ref().map(|s| s.damage),
-                "baseline_median": decision.baseline.median,
-                "reasons": decision.reasons,
-            }));
-        let pool = accept.then(|| PoolEntry {
-            batch_id: record.id.clone(),
-            vendor: record.vendor.clone(),
-            ids: table.ids.clone(),
-            labels: labels.clone(),
-            x: table.features.iter().copied().collect(),
-            n_features: table.features.ncols(),
-        });
-        if accept {
-            if let Ok(a) = &assessment {
-                history.record_accepted(
-                    &self.config.policy,
-                    &policy::BatchSignals::from_assessment(a, self.config.model.flag_threshold),
-                );
-            }
-        }
-        let rec = self.store.record_verdict(
-            &record,
-            audit,
-            true,
-            accept.then_some(&history),
-            if accept {
-                None
-            } else {
-                assessment.as_ref().ok()
-            },
-            pool,
-        )?;
-        self.metrics.stage("persist", t_persist.elapsed());
-        if accept {
-            let t_absorb = Instant::now();
-            self.absorb_accepted(rec.pool_seq, base, speculative);
-            self.metrics
-                .stage("absorb", absorb_wait + t_absorb.elapsed());
-        }
-        Ok(self.file(rec, Some(bytes)))
+            let scored = match assessed {
+                Ok(Ok(a)) => Ok(a),
+                Ok(Err(e)) => Err(format!("the engine could not score the batch: {e}")),
+                Err(_) => {
+                    Err("the engine failed (internal error) while scoring the batch".to_string())
+                }
+            };
+            (scored, score_elapsed, speculative, t_wait.elapsed())
+        })
     }
 
     /// Bring the pool summary up to date after this worker accepted a batch (its entry has sequence
@@ -882,7 +562,7 @@ mod tests {
     use super::*;
     use crate::data::{Classes, Format, TableOptions};
     use crate::scenario::{self, Plant};
-    use crate::store::{BatchState, PoolChange};
+    use crate::store::{BatchState, Outcome, PoolChange, PoolEntry};
 
     /// A workspace of the recycling plant with one vendor, and a worker on it (no threads started).
     fn worker(dir: &std::path::Path) -> (Worker, Plant) {
@@ -901,10 +581,10 @@ mod tests {
         let trusted = dir.join("trusted.csv");
         std::fs::write(&trusted, csv).unwrap();
         let root = dir.join("ws");
-        crate::cli::init::create_workspace(&root, &trusted, &["v".to_string()], "test").unwrap();
+        crate::workspace::create_workspace(&root, &trusted, &["v".to_string()], "test").unwrap();
         let ws = Workspace::new(&root);
         let config = Config::from_workspace(&root).unwrap();
-        crate::daemon::prepare_folders(&ws, &config).unwrap();
+        crate::workspace::prepare_folders(&ws, &config).unwrap();
         let store = Store::open_workspace(&root, &config.store).unwrap();
         let meta = store.workspace_meta().unwrap();
         let pool = load_pool(&store, &meta, &config).unwrap();

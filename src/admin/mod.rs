@@ -1,0 +1,147 @@
+//! The admin channel: how review commands reach a running daemon.
+//!
+//! sled allows one open instance of the store, and the daemon holds it while it runs. Review commands
+//! therefore send their [`Request`] to the daemon over a Unix socket in the workspace, `DIR/admin.sock`;
+//! when no daemon answers there, they open the store themselves (the binary does the choosing).
+//!
+//! * **Who may use it** is decided by the socket file's permissions: the daemon creates it with mode
+//!   `0660` (owner and group may connect; put reviewers in the daemon's group), and the workspace
+//!   folder's own permissions apply on top. The peer's user id (`SO_PEERCRED`) is recorded in the audit
+//!   trail beside the `--by` name the command gives.
+//! * **Protocol**: one request per connection, one JSON object per line each way. The request is a
+//!   [`Request`] (tagged by `op`); the response is [`Response`] — `{"ok": true, "result": ...}` or
+//!   `{"ok": false, "error": {"kind": ..., "message": ...}}`. A request line may be at most
+//!   [`MAX_REQUEST_BYTES`] long.
+//! * **Threads**: each request runs on its own short-lived thread (review operations read files, use the
+//!   store and may re-score batches), never on the runtime's worker threads; the async side only moves
+//!   bytes.
+//!
+//! [`server`] runs inside the daemon on its own [`server::Context`]; [`client`] is what review commands
+//! call. Neither knows the daemon: the daemon builds the context.
+
+use std::time::Duration;
+
+use serde::{Deserialize, Serialize};
+
+pub use crate::review::Request;
+use crate::review::ReviewError;
+
+pub mod client;
+pub mod server;
+
+pub use client::{call, call_at, daemon_answers};
+
+/// Longest request line accepted (a `trusted add` carries its file): 64 MiB.
+pub const MAX_REQUEST_BYTES: usize = 64 * 1024 * 1024;
+
+/// Permissions of the socket file: owner and group may connect.
+pub const SOCKET_MODE: u32 = 0o660;
+
+/// How long a client waits for an answer (a trusted-set change re-scores recent batches).
+pub const CLIENT_TIMEOUT: Duration = Duration::from_secs(900);
+
+/// An error on the wire.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct WireError {
+    /// [`ReviewError::kind`].
+    pub kind: String,
+    /// The message.
+    pub message: String,
+}
+
+/// One response line.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Response {
+    /// Whether the operation succeeded.
+    pub ok: bool,
+    /// Its report, when it did.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub result: Option<serde_json::Value>,
+    /// What went wrong, when it did not.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub error: Option<WireError>,
+}
+
+impl Response {
+    /// The response for an operation's result.
+    pub fn from_result(r: Result<serde_json::Value, ReviewError>) -> Self {
+        match r {
+            Ok(v) => Self {
+                ok: true,
+                result: Some(v),
+                error: None,
+            },
+            Err(e) => Self {
+                ok: false,
+                result: None,
+                error: Some(WireError {
+                    kind: e.kind().into(),
+                    message: e.to_string(),
+                }),
+            },
+        }
+    }
+}
+
+/// Errors of the admin channel itself (not of the operation).
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum AdminError {
+    /// Socket I/O.
+    #[error("admin socket {path}: {source}")]
+    Io {
+        /// The socket path.
+        path: String,
+        /// The cause.
+        #[source]
+        source: std::io::Error,
+    },
+    /// The socket's permissions do not let this user connect.
+    #[error("no permission to use the admin socket {0}: ask for membership in the daemon's group")]
+    Denied(String),
+    /// The daemon's answer could not be read.
+    #[error("admin socket: bad response: {0}")]
+    Protocol(String),
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::review;
+    use crate::workspace::Workspace;
+
+    #[test]
+    fn requests_use_a_stable_wire_format() {
+        let r = Request::Reject(review::RejectRequest {
+            batch: "b00000001".into(),
+            by: "alice".into(),
+            reason: "flipped labels".into(),
+            disclose_proposed: true,
+        });
+        let v = serde_json::to_value(&r).unwrap();
+        assert_eq!(v["op"], "reject");
+        assert_eq!(v["batch"], "b00000001");
+        let back: Request = serde_json::from_value(v).unwrap();
+        assert_eq!(back, r);
+        let v = serde_json::to_value(Request::QuarantineList).unwrap();
+        assert_eq!(v, serde_json::json!({"op": "quarantine_list"}));
+    }
+
+    #[test]
+    fn no_socket_means_no_daemon() {
+        let d = tempfile::tempdir().unwrap();
+        let ws = Workspace::new(d.path());
+        assert!(call(&ws, &Request::Ping).unwrap().is_none());
+        assert!(!daemon_answers(&ws));
+    }
+
+    #[test]
+    fn error_responses_carry_kind_and_message() {
+        let r = Response::from_result(Err(ReviewError::Refused("batch b1 is released".into())));
+        let line = serde_json::to_string(&r).unwrap();
+        let back: Response = serde_json::from_str(&line).unwrap();
+        let e = back.error.unwrap();
+        assert_eq!(e.kind, "refused");
+        assert!(e.message.contains("released"));
+    }
+}

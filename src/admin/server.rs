@@ -1,0 +1,145 @@
+//! The daemon's side of the admin socket: one request per connection, each run on its own thread.
+
+use std::os::unix::fs::{FileTypeExt, PermissionsExt};
+use std::sync::Arc;
+use std::time::Duration;
+
+use tokio::io::{AsyncBufReadExt, AsyncReadExt, AsyncWriteExt};
+use tokio::net::UnixListener;
+
+use super::{Request, Response, MAX_REQUEST_BYTES, SOCKET_MODE};
+use crate::config::Config;
+use crate::review::{self, Caller, ReviewEnv, ReviewError, ReviewHooks};
+use crate::store::{Store, WorkspaceMeta};
+use crate::workspace::Workspace;
+
+/// The current configuration: the one of the last successful reload, or the one the process started with.
+pub type CurrentConfig = Arc<dyn Fn() -> Arc<Config> + Send + Sync>;
+
+/// What the server needs from the process it runs in (the daemon builds it).
+#[derive(Clone)]
+pub struct Context {
+    /// Workspace folders.
+    pub ws: Workspace,
+    /// The store (the only open instance in this process).
+    pub store: Store,
+    /// What init fixed.
+    pub meta: WorkspaceMeta,
+    /// The configuration in use, read for each request.
+    pub config: CurrentConfig,
+    /// Told when a request changed the pool or the trusted set.
+    pub hooks: Arc<dyn ReviewHooks>,
+}
+
+/// Serve the admin socket of a running daemon until `stop` turns true. Removes a stale socket file
+/// first (the store's lock guarantees no other daemon runs on this workspace) and the socket file at the
+/// end.
+pub async fn serve(ctx: Context, mut stop: tokio::sync::watch::Receiver<bool>) {
+    let path = ctx.ws.admin_socket();
+    if let Ok(m) = std::fs::symlink_metadata(&path) {
+        if m.file_type().is_socket() {
+            let _ = std::fs::remove_file(&path);
+        } else {
+            tracing::error!(path = %path.display(), "admin socket path exists and is not a socket; review commands will work only with the daemon stopped");
+            return;
+        }
+    }
+    let listener = match UnixListener::bind(&path) {
+        Ok(l) => l,
+        Err(e) => {
+            tracing::error!(path = %path.display(), error = %e, "cannot bind the admin socket");
+            return;
+        }
+    };
+    if let Err(e) = std::fs::set_permissions(&path, std::fs::Permissions::from_mode(SOCKET_MODE)) {
+        tracing::error!(error = %e, "cannot set the admin socket's permissions; closing it");
+        let _ = std::fs::remove_file(&path);
+        return;
+    }
+    tracing::info!(path = %path.display(), "admin socket listening");
+    let ctx = Arc::new(ctx);
+    let mut stopped = std::pin::pin!(async move {
+        let _ = stop.wait_for(|s| *s).await;
+    });
+    loop {
+        tokio::select! {
+            _ = &mut stopped => break,
+            accepted = listener.accept() => match accepted {
+                Ok((stream, _)) => {
+                    let ctx = ctx.clone();
+                    tokio::spawn(async move {
+                        if let Err(e) = serve_one(ctx, stream).await {
+                            tracing::warn!(error = %e, "admin connection failed");
+                        }
+                    });
+                }
+                Err(e) => {
+                    tracing::warn!(error = %e, "admin socket accept failed");
+                    tokio::time::sleep(Duration::from_millis(100)).await;
+                }
+            }
+        }
+    }
+    let _ = std::fs::remove_file(&path);
+}
+
+async fn serve_one(ctx: Arc<Context>, stream: tokio::net::UnixStream) -> std::io::Result<()> {
+    let uid = stream.peer_cred().ok().map(|c| c.uid());
+    let (rd, mut wr) = stream.into_split();
+    let mut line = Vec::new();
+    let mut reader = tokio::io::BufReader::new(rd.take(MAX_REQUEST_BYTES as u64 + 1));
+    reader.read_until(b'\n', &mut line).await?;
+    let response = if line.len() > MAX_REQUEST_BYTES {
+        Response::from_result(Err(ReviewError::Invalid(format!(
+            "request longer than {MAX_REQUEST_BYTES} bytes"
+        ))))
+    } else {
+        match serde_json::from_slice::<Request>(&line) {
+            Err(e) => Response::from_result(Err(ReviewError::Invalid(format!("bad request: {e}")))),
+            Ok(req) => {
+                // Review work runs on its own thread, off the runtime's workers.
+                let (tx, rx) = tokio::sync::oneshot::channel();
+                let spawned = std::thread::Builder::new()
+                    .name("labelweir-admin".into())
+                    .spawn(move || {
+                        let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                            // The configuration of the last successful reload, if any.
+                            let config = (ctx.config)();
+                            let env = ReviewEnv {
+                                ws: &ctx.ws,
+                                config: &config,
+                                store: &ctx.store,
+                                meta: &ctx.meta,
+                                hooks: ctx.hooks.as_ref(),
+                                caller: Caller {
+                                    uid,
+                                    via: "admin_socket".into(),
+                                },
+                            };
+                            review::handle(&env, req)
+                        }))
+                        .unwrap_or_else(|_| {
+                            Err(ReviewError::Model(
+                                "internal error while handling the request".into(),
+                            ))
+                        });
+                        let _ = tx.send(r);
+                    });
+                match spawned {
+                    Ok(_) => Response::from_result(rx.await.unwrap_or_else(|_| {
+                        Err(ReviewError::Model("the request's thread stopped".into()))
+                    })),
+                    Err(e) => Response::from_result(Err(ReviewError::Io {
+                        message: format!("cannot start a thread: {e}"),
+                        source: Some(e),
+                    })),
+                }
+            }
+        }
+    };
+    let mut out = serde_json::to_vec(&response).unwrap_or_else(|_| b"{\"ok\":false}".to_vec());
+    out.push(b'\n');
+    wr.write_all(&out).await?;
+    wr.shutdown().await?;
+    Ok(())
+}

@@ -1,0 +1,471 @@
+//! The readers: a table builder that checks the header, ids, labels and values as they come, and the two
+//! formats (CSV, JSON Lines) feeding it.
+
+use super::*;
+
+/// Collects rows in file column order, checking ids as they come.
+pub(super) struct Builder<'a> {
+    source: &'a str,
+    opts: &'a TableOptions,
+    /// Column names in file order.
+    columns: Vec<String>,
+    id_col: usize,
+    label_col: usize,
+    /// File column index of each feature, in file order.
+    feature_cols: Vec<usize>,
+    ids: Vec<String>,
+    labels: Vec<String>,
+    values: Vec<f64>,
+    seen: HashMap<String, usize>,
+}
+
+impl<'a> Builder<'a> {
+    pub(super) fn new(source: &'a str, opts: &'a TableOptions) -> Self {
+        Self {
+            source,
+            opts,
+            columns: Vec::new(),
+            id_col: 0,
+            label_col: 0,
+            feature_cols: Vec::new(),
+            ids: Vec::new(),
+            labels: Vec::new(),
+            values: Vec::new(),
+            seen: HashMap::new(),
+        }
+    }
+
+    fn err(&self, kind: DataErrorKind) -> DataError {
+        DataError::new(self.source, kind)
+    }
+
+    /// Take the header (column names in file order) at the given file line.
+    fn header(&mut self, names: Vec<String>, line: usize) -> Result<(), DataError> {
+        let limits = &self.opts.limits;
+        if names.len() > limits.max_columns {
+            return Err(self
+                .err(DataErrorKind::TooManyColumns {
+                    limit: limits.max_columns,
+                    found: names.len(),
+                })
+                .at_line(line));
+        }
+        let mut set = HashSet::new();
+        for n in &names {
+            if n.is_empty() {
+                return Err(self.err(DataErrorKind::EmptyColumnName).at_line(line));
+            }
+            if n.len() > limits.max_field_bytes {
+                return Err(self
+                    .err(DataErrorKind::FieldTooLong {
+                        limit: limits.max_field_bytes,
+                    })
+                    .at_line(line));
+            }
+            if !set.insert(n.as_str()) {
+                return Err(self
+                    .err(DataErrorKind::DuplicateColumn { name: n.clone() })
+                    .at_line(line)
+                    .in_column(n));
+            }
+        }
+        let find = |want: &str| names.iter().position(|n| n == want);
+        let missing = |want: &str| {
+            // A header made of numbers is most likely a data row: say so.
+            let hint = if names.iter().any(|n| n.trim().parse::<f64>().is_ok()) {
+                "; the first line looks like data: the file needs a header row".to_string()
+            } else {
+                format!(
+                    "; the header has: {}",
+                    names
+                        .iter()
+                        .take(12)
+                        .map(|n| quote_for_message(n))
+                        .collect::<Vec<_>>()
+                        .join(", ")
+                )
+            };
+            self.err(DataErrorKind::MissingColumn {
+                name: want.to_owned(),
+                hint,
+            })
+            .at_line(line)
+            .in_column(want)
+        };
+        let id_col = find(&self.opts.id_column).ok_or_else(|| missing(&self.opts.id_column))?;
+        let label_col =
+            find(&self.opts.label_column).ok_or_else(|| missing(&self.opts.label_column))?;
+        if id_col == label_col {
+            return Err(self
+                .err(DataErrorKind::NoHeader {
+                    reason: "the id and label columns must be different columns".into(),
+                })
+                .at_line(line));
+        }
+        self.id_col = id_col;
+        self.label_col = label_col;
+        self.feature_cols = (0..names.len())
+            .filter(|&c| c != id_col && c != label_col)
+            .collect();
+        self.columns = names;
+        Ok(())
+    }
+
+    /// Start a data row; checks the row limit.
+    fn begin_row(&self, row: usize, line: usize) -> Result<(), DataError> {
+        if row > self.opts.limits.max_rows {
+            return Err(self
+                .err(DataErrorKind::TooManyRows {
+                    limit: self.opts.limits.max_rows,
+                })
+                .at_row(row, Some(line)));
+        }
+        Ok(())
+    }
+
+    /// Record the id and label of data row `row`.
+    fn id_label(
+        &mut self,
+        row: usize,
+        line: usize,
+        id: String,
+        label: String,
+    ) -> Result<(), DataError> {
+        let at = |e: DataError, col: &str| e.at_row(row, Some(line)).in_column(col);
+        let id_name = self.opts.id_column.clone();
+        let label_name = self.opts.label_column.clone();
+        if id.trim().is_empty() {
+            return Err(at(self.err(DataErrorKind::EmptyId), &id_name));
+        }
+        for (v, col) in [(&id, &id_name), (&label, &label_name)] {
+            if v.chars().any(is_unsafe_char) {
+                return Err(at(
+                    self.err(DataErrorKind::ControlCharacter {
+                        value: quote_for_message(v),
+                    }),
+                    col,
+                ));
+            }
+        }
+        if label.is_empty() {
+            return Err(at(self.err(DataErrorKind::EmptyCell), &label_name));
+        }
+        if let Some(&first_row) = self.seen.get(&id) {
+            return Err(at(
+                self.err(DataErrorKind::DuplicateId {
+                    id: quote_for_message(&id),
+                    first_row,
+                }),
+                &id_name,
+            ));
+        }
+        self.seen.insert(id.clone(), row);
+        self.ids.push(id);
+        self.labels.push(label);
+        Ok(())
+    }
+
+    /// Check a field's length.
+    fn field_len(&self, len: usize, row: usize, line: usize, col: usize) -> Result<(), DataError> {
+        let limit = self.opts.limits.max_field_bytes;
+        if len > limit {
+            return Err(self
+                .err(DataErrorKind::FieldTooLong { limit })
+                .at_row(row, Some(line))
+                .in_column(&self.columns[col]));
+        }
+        Ok(())
+    }
+
+    /// Build the table, reordering features to the schema.
+    pub(super) fn finish(self, schema: Option<&[String]>) -> Result<Table, DataError> {
+        let file_names: Vec<String> = self
+            .feature_cols
+            .iter()
+            .map(|&c| self.columns[c].clone())
+            .collect();
+        // Position of each output column among the file's feature columns.
+        let order: Vec<usize> = match schema {
+            None => (0..file_names.len()).collect(),
+            Some(schema) => {
+                let pos: HashMap<&str, usize> = file_names
+                    .iter()
+                    .enumerate()
+                    .map(|(i, n)| (n.as_str(), i))
+                    .collect();
+                let wanted: HashSet<&str> = schema.iter().map(String::as_str).collect();
+                if let Some(extra) = file_names.iter().find(|n| !wanted.contains(n.as_str())) {
+                    return Err(self
+                        .err(DataErrorKind::ExtraColumn {
+                            name: extra.clone(),
+                        })
+                        .at_line(1)
+                        .in_column(extra));
+                }
+                let mut order = Vec::with_capacity(schema.len());
+                for name in schema {
+                    match pos.get(name.as_str()) {
+                        Some(&i) => order.push(i),
+                        None => {
+                            return Err(self
+                                .err(DataErrorKind::MissingColumn {
+                                    name: name.clone(),
+                                    hint: " (a feature column of the trusted set)".into(),
+                                })
+                                .at_line(1)
+                                .in_column(name))
+                        }
+                    }
+                }
+                order
+            }
+        };
+        if order.is_empty() {
+            return Err(self.err(DataErrorKind::NoFeatures).at_line(1));
+        }
+        if self.ids.is_empty() {
+            return Err(self.err(DataErrorKind::NoRows));
+        }
+        let n = self.ids.len();
+        let d_file = file_names.len();
+        let features = Array2::from_shape_fn((n, order.len()), |(i, j)| {
+            self.values[i * d_file + order[j]]
+        });
+        let feature_names = order.iter().map(|&i| file_names[i].clone()).collect();
+        Ok(Table {
+            source: self.source.to_owned(),
+            ids: self.ids,
+            labels: self.labels,
+            feature_names,
+            features,
+        })
+    }
+}
+
+/// Parse one numeric cell as given in a CSV file.
+pub(super) fn parse_number(cell: &str) -> Result<f64, DataErrorKind> {
+    let t = cell.trim();
+    if t.is_empty() {
+        return Err(DataErrorKind::EmptyCell);
+    }
+    match t.parse::<f64>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        Ok(_) => Err(DataErrorKind::NonFinite {
+            value: quote_for_message(t),
+        }),
+        Err(_) => Err(DataErrorKind::NotNumeric {
+            value: quote_for_message(t),
+        }),
+    }
+}
+
+pub(super) fn parse_csv(text: &str, b: &mut Builder<'_>) -> Result<(), DataError> {
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .from_reader(text.as_bytes());
+    let mut record = csv::StringRecord::new();
+    let mut row = 0usize;
+    let mut have_header = false;
+    loop {
+        let more = reader.read_record(&mut record).map_err(|e| {
+            let line = e.position().map(|p| p.line() as usize);
+            let mut de = b.err(DataErrorKind::Csv(e.to_string()));
+            de.line = line;
+            de
+        })?;
+        if !more {
+            break;
+        }
+        let line = record.position().map(|p| p.line() as usize).unwrap_or(0);
+        // A line holding only spaces reads as one blank field: skip it like an empty line.
+        if record.len() == 1 && record[0].trim().is_empty() {
+            continue;
+        }
+        if !have_header {
+            let names = record.iter().map(|s| s.trim().to_owned()).collect();
+            b.header(names, line)?;
+            have_header = true;
+            continue;
+        }
+        row += 1;
+        b.begin_row(row, line)?;
+        if record.len() != b.columns.len() {
+            return Err(b
+                .err(DataErrorKind::Ragged {
+                    expected: b.columns.len(),
+                    found: record.len(),
+                })
+                .at_row(row, Some(line)));
+        }
+        for (c, field) in record.iter().enumerate() {
+            b.field_len(field.len(), row, line, c)?;
+        }
+        b.id_label(
+            row,
+            line,
+            record[b.id_col].to_owned(),
+            record[b.label_col].to_owned(),
+        )?;
+        for i in 0..b.feature_cols.len() {
+            let c = b.feature_cols[i];
+            let v = parse_number(&record[c])
+                .map_err(|k| b.err(k).at_row(row, Some(line)).in_column(&b.columns[c]))?;
+            b.values.push(v);
+        }
+    }
+    if !have_header {
+        return Err(b.err(DataErrorKind::Empty));
+    }
+    Ok(())
+}
+
+/// A JSON object as its key/value pairs in file order, so repeated keys are seen (serde_json's `Map` would
+/// keep only the last).
+pub(super) struct Pairs(Vec<(String, serde_json::Value)>);
+
+impl<'de> serde::Deserialize<'de> for Pairs {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct V;
+        impl<'de> serde::de::Visitor<'de> for V {
+            type Value = Pairs;
+            fn expecting(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+                f.write_str("a JSON object")
+            }
+            fn visit_map<A: serde::de::MapAccess<'de>>(self, mut m: A) -> Result<Pairs, A::Error> {
+                let mut v = Vec::new();
+                while let Some(pair) = m.next_entry::<String, serde_json::Value>()? {
+                    v.push(pair);
+                }
+                Ok(Pairs(v))
+            }
+        }
+        d.deserialize_map(V)
+    }
+}
+
+pub(super) fn json_type(v: &serde_json::Value) -> &'static str {
+    match v {
+        serde_json::Value::Null => "null",
+        serde_json::Value::Bool(_) => "a boolean",
+        serde_json::Value::Number(_) => "a number",
+        serde_json::Value::String(_) => "a string",
+        serde_json::Value::Array(_) => "an array",
+        serde_json::Value::Object(_) => "an object",
+    }
+}
+
+pub(super) fn parse_jsonl(
+    text: &str,
+    b: &mut Builder<'_>,
+    opts: &TableOptions,
+) -> Result<(), DataError> {
+    let mut row = 0usize;
+    // File column index by key; built from the first object.
+    let mut index: HashMap<String, usize> = HashMap::new();
+    for (line_no, raw) in text.split('\n').enumerate() {
+        let line = line_no + 1;
+        let raw = raw.strip_suffix('\r').unwrap_or(raw);
+        if raw.trim().is_empty() {
+            continue;
+        }
+        row += 1;
+        b.begin_row(row, line)?;
+        let at = |e: DataError| e.at_row(row, Some(line));
+        let Pairs(pairs) = serde_json::from_str::<Pairs>(raw).map_err(|e| {
+            // serde_json ends its message with " at line 1 column C" (its own line, always 1 here);
+            // keep the column only, so it cannot be confused with the file line.
+            let mut msg = e.to_string();
+            if let Some(pos) = msg.rfind(" at line ") {
+                msg.truncate(pos);
+            }
+            at(b.err(DataErrorKind::Json(format!(
+                "{msg} (at character {} of the line)",
+                e.column()
+            ))))
+        })?;
+        if row == 1 {
+            let names: Vec<String> = pairs.iter().map(|(k, _)| k.clone()).collect();
+            b.header(names, line).map_err(at)?;
+            index = b
+                .columns
+                .iter()
+                .enumerate()
+                .map(|(i, n)| (n.clone(), i))
+                .collect();
+        }
+        let ncol = b.columns.len();
+        let mut cells: Vec<Option<serde_json::Value>> = vec![None; ncol];
+        for (k, v) in pairs {
+            if k.len() > opts.limits.max_field_bytes {
+                return Err(at(b.err(DataErrorKind::FieldTooLong {
+                    limit: opts.limits.max_field_bytes,
+                })));
+            }
+            let Some(&c) = index.get(&k) else {
+                return Err(at(b.err(DataErrorKind::ExtraColumn { name: k.clone() })).in_column(&k));
+            };
+            if cells[c].is_some() {
+                return Err(
+                    at(b.err(DataErrorKind::DuplicateColumn { name: k.clone() })).in_column(&k),
+                );
+            }
+            if let serde_json::Value::String(s) = &v {
+                b.field_len(s.len(), row, line, c)?;
+            }
+            cells[c] = Some(v);
+        }
+        if let Some(c) = cells.iter().position(Option::is_none) {
+            return Err(at(b.err(DataErrorKind::MissingColumn {
+                name: b.columns[c].clone(),
+                hint: " (every line needs the same keys as the first)".into(),
+            }))
+            .in_column(&b.columns[c]));
+        }
+        let cells: Vec<serde_json::Value> = cells.into_iter().flatten().collect();
+        let id = match &cells[b.id_col] {
+            serde_json::Value::String(s) => s.clone(),
+            serde_json::Value::Number(n) if n.is_i64() || n.is_u64() => n.to_string(),
+            other => {
+                return Err(at(b.err(DataErrorKind::WrongType {
+                    expected: "a string or an integer",
+                    found: json_type(other),
+                }))
+                .in_column(&b.columns[b.id_col]))
+            }
+        };
+        let label = match &cells[b.label_col] {
+            serde_json::Value::String(s) => s.clone(),
+            other => {
+                return Err(at(b.err(DataErrorKind::WrongType {
+                    expected: "a string",
+                    found: json_type(other),
+                }))
+                .in_column(&b.columns[b.label_col]))
+            }
+        };
+        b.id_label(row, line, id, label)?;
+        for i in 0..b.feature_cols.len() {
+            let c = b.feature_cols[i];
+            let v = match &cells[c] {
+                serde_json::Value::Number(n) => match n.as_f64() {
+                    Some(v) if v.is_finite() => Ok(v),
+                    _ => Err(DataErrorKind::NonFinite {
+                        value: n.to_string(),
+                    }),
+                },
+                serde_json::Value::Null => Err(DataErrorKind::EmptyCell),
+                other => Err(DataErrorKind::WrongType {
+                    expected: "a JSON number",
+                    found: json_type(other),
+                }),
+            }
+            .map_err(|k| at(b.err(k)).in_column(&b.columns[c]))?;
+            b.values.push(v);
+        }
+    }
+    if row == 0 {
+        return Err(b.err(DataErrorKind::Empty));
+    }
+    Ok(())
+}

@@ -1,0 +1,159 @@
+//! The one atomic write and the one directory sync; every file labelweir writes for others to read (filed
+//! batches' reports, vendor notices, the configuration at init) goes through [`write_atomic_all`].
+//!
+//! The recipe (common POSIX practice; rename(2) replaces the target atomically, and fsync(2) on the
+//! folder makes the rename durable): each file goes to a temporary name in the same folder and is fsynced,
+//! then each is renamed over its final name, then the folder is fsynced **once**. A reader sees each final
+//! name absent, old, or complete and new, never partial. After a crash before the folder fsync some
+//! renames may be lost; callers redo the whole write (every filing step is idempotent).
+
+use std::fs;
+use std::io::{self, Write};
+use std::os::unix::fs::PermissionsExt;
+use std::path::{Path, PathBuf};
+
+/// fsync a directory, which makes the renames and creations inside it durable.
+pub fn sync_dir(dir: &Path) -> io::Result<()> {
+    fs::File::open(dir)?.sync_all()
+}
+
+/// The temporary name of `name` in `dir`: hidden (the daemon's listings skip dot-files) and per process.
+fn temp_path(dir: &Path, name: &str) -> PathBuf {
+    dir.join(format!(".{name}.tmp-{}", std::process::id()))
+}
+
+/// Write `bytes` to `dir/name` atomically (see the module doc), with permission bits `mode` if given
+/// (otherwise the process umask decides). Returns the final path.
+pub fn write_atomic(
+    dir: &Path,
+    name: &str,
+    bytes: &[u8],
+    mode: Option<u32>,
+) -> io::Result<PathBuf> {
+    let mut written = write_atomic_all(dir, &[(name, bytes)], mode)?;
+    Ok(written.remove(0))
+}
+
+/// Write several files into `dir`, each atomically, with one fsync of the folder for all of them (see the
+/// module doc). `mode` sets their permission bits (otherwise the umask decides). On an error the
+/// temporary files are removed and no final name is touched that was not already renamed. Returns the
+/// final paths, in order.
+pub fn write_atomic_all<N, B>(
+    dir: &Path,
+    files: &[(N, B)],
+    mode: Option<u32>,
+) -> io::Result<Vec<PathBuf>>
+where
+    N: AsRef<str>,
+    B: AsRef<[u8]>,
+{
+    let remove_temps = |from: usize, to: usize| {
+        for (name, _) in &files[from..to] {
+            let _ = fs::remove_file(temp_path(dir, name.as_ref()));
+        }
+    };
+    for (i, (name, bytes)) in files.iter().enumerate() {
+        let tmp = temp_path(dir, name.as_ref());
+        // A read-only leftover of an interrupted attempt cannot be opened for writing: remove it first.
+        let _ = fs::remove_file(&tmp);
+        let written = fs::OpenOptions::new()
+            .write(true)
+            .create(true)
+            .truncate(true)
+            .open(&tmp)
+            .and_then(|mut f| {
+                f.write_all(bytes.as_ref())?;
+                if let Some(mode) = mode {
+                    f.set_permissions(fs::Permissions::from_mode(mode))?;
+                }
+                f.sync_all()
+            });
+        if let Err(e) = written {
+            remove_temps(0, i + 1);
+            return Err(e);
+        }
+    }
+    let mut out = Vec::with_capacity(files.len());
+    for (i, (name, _)) in files.iter().enumerate() {
+        let final_path = dir.join(name.as_ref());
+        if let Err(e) = fs::rename(temp_path(dir, name.as_ref()), &final_path) {
+            remove_temps(i, files.len());
+            return Err(e);
+        }
+        out.push(final_path);
+    }
+    sync_dir(dir)?;
+    Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn names_in(dir: &Path) -> Vec<String> {
+        let mut v: Vec<String> = fs::read_dir(dir)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .collect();
+        v.sort();
+        v
+    }
+
+    #[test]
+    fn writes_replace_and_leave_no_temporary_file() {
+        let d = tempfile::tempdir().unwrap();
+        let p = write_atomic(d.path(), "a.json", b"one", None).unwrap();
+        assert_eq!(p, d.path().join("a.json"));
+        write_atomic(d.path(), "a.json", b"two", None).unwrap();
+        assert_eq!(fs::read(&p).unwrap(), b"two");
+        let paths = write_atomic_all(
+            d.path(),
+            &[
+                ("b.md".to_string(), b"bee".to_vec()),
+                ("c.csv".into(), b"sea".to_vec()),
+            ],
+            None,
+        )
+        .unwrap();
+        assert_eq!(paths, vec![d.path().join("b.md"), d.path().join("c.csv")]);
+        assert_eq!(fs::read(&paths[1]).unwrap(), b"sea");
+        assert_eq!(names_in(d.path()), ["a.json", "b.md", "c.csv"]);
+    }
+
+    #[test]
+    fn mode_is_applied_and_a_read_only_leftover_is_replaced() {
+        let d = tempfile::tempdir().unwrap();
+        // An interrupted earlier attempt left its temporary file read-only.
+        let leftover = temp_path(d.path(), "r.json");
+        fs::write(&leftover, b"stale").unwrap();
+        fs::set_permissions(&leftover, fs::Permissions::from_mode(0o440)).unwrap();
+        let p = write_atomic(d.path(), "r.json", b"fresh", Some(0o440)).unwrap();
+        assert_eq!(fs::read(&p).unwrap(), b"fresh");
+        assert_eq!(
+            fs::metadata(&p).unwrap().permissions().mode() & 0o777,
+            0o440
+        );
+        assert!(!leftover.exists());
+    }
+
+    #[test]
+    fn a_failed_write_removes_its_temporary_files() {
+        let d = tempfile::tempdir().unwrap();
+        // The second file's final name is a non-empty folder, so its rename fails after the first one.
+        fs::create_dir(d.path().join("blocked")).unwrap();
+        fs::write(d.path().join("blocked").join("x"), b"x").unwrap();
+        let r = write_atomic_all(d.path(), &[("ok", &b"1"[..]), ("blocked", &b"2"[..])], None);
+        assert!(r.is_err());
+        assert_eq!(names_in(d.path()), ["blocked", "ok"]);
+        let missing = d.path().join("missing");
+        assert!(write_atomic(&missing, "a", b"1", None).is_err());
+        assert!(!missing.exists());
+    }
+
+    #[test]
+    fn sync_dir_needs_an_existing_folder() {
+        let d = tempfile::tempdir().unwrap();
+        sync_dir(d.path()).unwrap();
+        assert!(sync_dir(&d.path().join("missing")).is_err());
+    }
+}

@@ -1,0 +1,287 @@
+//! The verdict step, pure: from what ingest found, the engine's assessment and the policy's decision it
+//! builds everything one store transaction records — the decided batch record (scores, suspects, broken
+//! trusted items, outcome), the `verdict` audit record, the vendor's new history (accepted batches only)
+//! and the pool entry (accepted batches only). No store, no files, no clock beyond what the records
+//! stamp, no metrics: the scoring worker persists what this returns.
+
+use crate::config::Config;
+use crate::data::Table;
+use crate::model::Assessment;
+use crate::policy::VendorHistory;
+use crate::policy::{self, BatchSignals, Decision, Reason, ReasonCode, Verdict as PolicyVerdict};
+use crate::store::{
+    AuditRecord, BatchRecord, BatchScores, Outcome, PoolEntry, RejectReason, Suspect,
+};
+
+/// What the engine said about a batch: its assessment, or why there is none (an engine error or panic).
+pub type Scored = Result<Assessment, String>;
+
+/// Everything one verdict transaction records (see [`crate::store::Store::record_verdict`]).
+#[derive(Debug)]
+pub struct Verdict {
+    /// The batch record with its outcome (the store sets the state and time).
+    pub record: BatchRecord,
+    /// The `verdict` audit record.
+    pub audit: AuditRecord,
+    /// Whether the `(vendor, sha256)` key is indexed (scored batches only).
+    pub index_hash: bool,
+    /// The vendor's history after an accepted batch.
+    pub history: Option<VendorHistory>,
+    /// The assessment kept for review (quarantined batches only).
+    pub assessment: Option<Assessment>,
+    /// The items entering the pool (accepted batches only).
+    pub pool: Option<PoolEntry>,
+}
+
+impl Verdict {
+    /// Whether the batch goes into the pool.
+    pub fn accepted(&self) -> bool {
+        self.record.outcome == Some(Outcome::Accepted)
+    }
+}
+
+/// A batch that is not usable input: rejected with its reason.
+pub fn rejected(
+    mut record: BatchRecord,
+    reason: RejectReason,
+    bytes: Option<usize>,
+    sha256: Option<String>,
+) -> Verdict {
+    record.outcome = Some(Outcome::Rejected);
+    record.bytes = bytes.map(|n| n as u64);
+    record.sha256 = sha256;
+    let audit = AuditRecord::new("daemon", "verdict")
+        .batch(&record.id, &record.vendor)
+        .outcome(Outcome::Rejected.as_str())
+        .reason(reason.code.clone())
+        .detail(serde_json::json!({ "detail": reason.detail, "row": reason.row, "column": reason.column, "original_name": record.original_name }));
+    record.reject = Some(reason);
+    unscored(record, audit)
+}
+
+/// A re-delivery of the bytes of batch `first` (same vendor, same SHA-256).
+pub fn duplicate(mut record: BatchRecord, first: String) -> Verdict {
+    record.outcome = Some(Outcome::Duplicate);
+    let audit = AuditRecord::new("daemon", "verdict")
+        .batch(&record.id, &record.vendor)
+        .outcome(Outcome::Duplicate.as_str())
+        .reason("duplicate")
+        .detail(serde_json::json!({ "duplicate_of": first, "sha256": record.sha256 }));
+    record.duplicate_of = Some(first);
+    unscored(record, audit)
+}
+
+fn unscored(record: BatchRecord, audit: AuditRecord) -> Verdict {
+    Verdict {
+        record,
+        audit,
+        index_hash: false,
+        history: None,
+        assessment: None,
+        pool: None,
+    }
+}
+
+/// The policy's decision on a scored batch against the vendor's history; a batch the engine could not
+/// score is quarantined with reason `score_invalid` (held for a person, never silently accepted).
+pub fn decide(config: &Config, history: &VendorHistory, scored: &Scored) -> Decision {
+    match scored {
+        Ok(a) => policy::decide_batch(
+            &config.policy,
+            history,
+            &BatchSignals::from_assessment(a, config.model.flag_threshold),
+        ),
+        Err(msg) => {
+            let mut d = policy::decide(&config.policy, history, f64::NAN, f64::NAN);
+            d.verdict = PolicyVerdict::Quarantine;
+            d.reasons = vec![Reason {
+                code: ReasonCode::ScoreInvalid,
+                detail: msg.clone(),
+            }];
+            d
+        }
+    }
+}
+
+/// What a scored batch brings to its verdict besides the record.
+pub struct ScoredBatch<'a> {
+    /// The parsed table (ids and features).
+    pub table: &'a Table,
+    /// Class index per item.
+    pub labels: &'a [usize],
+    /// The engine's answer.
+    pub scored: Scored,
+    /// Seconds the engine took.
+    pub score_seconds: f64,
+    /// The workspace's class names, by index.
+    pub classes: &'a [String],
+    /// The trusted items' ids, by index.
+    pub trusted_ids: &'a [String],
+}
+
+/// The verdict of a scored batch under `decision`; `history` is the vendor's history the decision was
+/// made against.
+pub fn scored(
+    config: &Config,
+    mut record: BatchRecord,
+    batch: ScoredBatch<'_>,
+    decision: Decision,
+    mut history: VendorHistory,
+) -> Verdict {
+    let accept = decision.verdict == PolicyVerdict::Accept;
+    if let Ok(a) = &batch.scored {
+        describe(&mut record, a, &batch);
+    }
+    record.outcome = Some(if accept {
+        Outcome::Accepted
+    } else {
+        Outcome::Quarantined
+    });
+    let codes: Vec<&str> = decision.reasons.iter().map(|r| r.code.as_str()).collect();
+    let audit = AuditRecord::new("daemon", "verdict")
+        .batch(&record.id, &record.vendor)
+        .outcome(if accept { "accepted" } else { "quarantined" })
+        .reason(codes.join(","))
+        .detail(serde_json::json!({
+            "sha256": record.sha256,
+            "items": record.items,
+            "repair_cost": record.scores.as_ref().map(|s| s.repair_cost),
+            "damage": record.scores.as_ref().map(|s| s.damage),
+            "baseline_median": decision.baseline.median,
+            "reasons": decision.reasons,
+        }));
+    record.decision = Some(decision);
+    let pool = accept.then(|| PoolEntry {
+        batch_id: record.id.clone(),
+        vendor: record.vendor.clone(),
+        ids: batch.table.ids.clone(),
+        labels: batch.labels.to_vec(),
+        x: batch.table.features.iter().copied().collect(),
+        n_features: batch.table.features.ncols(),
+    });
+    if accept {
+        if let Ok(a) = &batch.scored {
+            history.record_accepted(
+                &config.policy,
+                &BatchSignals::from_assessment(a, config.model.flag_threshold),
+            );
+        }
+    }
+    Verdict {
+        record,
+        audit,
+        index_hash: true,
+        history: accept.then_some(history),
+        assessment: if accept { None } else { batch.scored.ok() },
+        pool,
+    }
+}
+
+/// The record's scores, suspects (the most suspicious items: every flagged one, at least 20, at most
+/// 1,000) and the trusted items the batch would break.
+fn describe(record: &mut BatchRecord, a: &Assessment, batch: &ScoredBatch<'_>) {
+    let class = |k: usize| {
+        batch
+            .classes
+            .get(k)
+            .cloned()
+            .unwrap_or_else(|| k.to_string())
+    };
+    let flagged = a
+        .items
+        .iter()
+        .filter(|s| s.proposed_label != s.label)
+        .count();
+    record.scores = Some(BatchScores {
+        repair_cost: a.repair_cost,
+        damage: a.damage,
+        target_reached: a.target_reached,
+        converged: a.convergence.inner_converged && a.convergence.linear_converged,
+        score_seconds: batch.score_seconds,
+        flagged_items: flagged,
+    });
+    let keep = flagged.clamp(20, 1000);
+    record.suspects = a
+        .ranked()
+        .iter()
+        .take(keep)
+        .map(|s| Suspect {
+            id: batch.table.ids.get(s.index).cloned().unwrap_or_default(),
+            label: class(s.label),
+            proposed_label: class(s.proposed_label),
+            suspicion: s.suspicion,
+            confidence: s.confidence,
+        })
+        .collect();
+    record.broken_trusted = a
+        .broken_trusted
+        .iter()
+        .filter_map(|b| batch.trusted_ids.get(b.index).cloned())
+        .collect();
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn claimed() -> BatchRecord {
+        BatchRecord::claimed("b1".into(), "v", "x.csv".into(), "b1.csv".into())
+    }
+
+    #[test]
+    fn rejected_and_duplicate_batches_are_never_indexed_nor_pooled() {
+        let reason = RejectReason {
+            code: "bad_header".into(),
+            detail: "no id column".into(),
+            row: None,
+            column: None,
+        };
+        let v = rejected(claimed(), reason, Some(12), Some("ab".into()));
+        assert_eq!(v.record.outcome, Some(Outcome::Rejected));
+        assert_eq!(v.record.bytes, Some(12));
+        assert_eq!(v.audit.reason.as_deref(), Some("bad_header"));
+        assert!(!v.index_hash && v.pool.is_none() && v.history.is_none());
+        let mut rec = claimed();
+        rec.sha256 = Some("cd".into());
+        let v = duplicate(rec, "b0".into());
+        assert_eq!(v.record.duplicate_of.as_deref(), Some("b0"));
+        assert_eq!(v.audit.detail["sha256"], "cd");
+        assert!(!v.accepted() && !v.index_hash && v.pool.is_none());
+    }
+
+    #[test]
+    fn an_engine_failure_quarantines_as_score_invalid_and_keeps_the_history() {
+        let config = Config::default();
+        let history = VendorHistory::default();
+        let scored: Scored = Err("the engine failed".into());
+        let d = decide(&config, &history, &scored);
+        assert_eq!(d.verdict, PolicyVerdict::Quarantine);
+        assert_eq!(d.reasons[0].code, ReasonCode::ScoreInvalid);
+        let table = Table {
+            source: "t.csv".into(),
+            ids: vec!["i1".into()],
+            labels: vec!["a".into()],
+            feature_names: vec!["f".into()],
+            features: ndarray::Array2::zeros((1, 1)),
+        };
+        let v = super::scored(
+            &config,
+            claimed(),
+            ScoredBatch {
+                table: &table,
+                labels: &[0],
+                scored,
+                score_seconds: 0.1,
+                classes: &["a".into()],
+                trusted_ids: &[],
+            },
+            d,
+            history,
+        );
+        assert_eq!(v.record.outcome, Some(Outcome::Quarantined));
+        assert!(v.record.scores.is_none());
+        assert!(v.index_hash);
+        assert!(v.pool.is_none() && v.history.is_none() && v.assessment.is_none());
+        assert_eq!(v.audit.reason.as_deref(), Some("score_invalid"));
+    }
+}

@@ -1,0 +1,298 @@
+//! The policy's rules, one phase at a time: invalid scores, the absolute ceilings, the repair cost and
+//! damage against the vendor's baseline (or the cold-start limits), the flagged share likewise, and the
+//! accepting reason when no rule fired. Every rule that fires is reported.
+
+use super::{
+    Baseline, BatchSignals, Decision, PolicySettings, Reason, ReasonCode, VendorHistory, Verdict,
+};
+
+fn push(reasons: &mut Vec<Reason>, code: ReasonCode, detail: String) {
+    reasons.push(Reason { code, detail });
+}
+
+pub(super) fn judge(
+    settings: &PolicySettings,
+    history: &VendorHistory,
+    repair_cost: f64,
+    damage: f64,
+    signals: Option<&BatchSignals>,
+) -> Decision {
+    let baseline = Baseline::compute(settings, history, repair_cost);
+    let flagged = signals.map(|s| {
+        (
+            s,
+            Baseline::flagged_share(settings, history, s.flagged_share, s.items),
+        )
+    });
+    let mut reasons = Vec::new();
+    let share_invalid = flagged
+        .as_ref()
+        .is_some_and(|(s, _)| !s.flagged_share.is_finite());
+    if !repair_cost.is_finite() || !damage.is_finite() || share_invalid {
+        let detail = match &flagged {
+            Some((s, _)) => format!(
+                "repair cost {repair_cost}, damage {damage} or flagged share {} is not a finite number",
+                s.flagged_share
+            ),
+            None => format!("repair cost {repair_cost} or damage {damage} is not a finite number"),
+        };
+        push(&mut reasons, ReasonCode::ScoreInvalid, detail);
+    } else {
+        let flagged_signals = flagged.as_ref().map(|(s, _)| *s);
+        ceilings(settings, repair_cost, damage, flagged_signals, &mut reasons);
+        repair_cost_rules(
+            settings,
+            &baseline,
+            repair_cost,
+            damage,
+            signals,
+            &mut reasons,
+        );
+        if let Some((s, fb)) = &flagged {
+            flagged_share_rules(settings, s, fb, &mut reasons);
+        }
+    }
+    let verdict = if reasons.is_empty() {
+        reasons.push(accepting_reason(
+            &baseline,
+            flagged.as_ref().map(|(s, fb)| (*s, fb)),
+            repair_cost,
+            damage,
+        ));
+        Verdict::Accept
+    } else {
+        Verdict::Quarantine
+    };
+    Decision {
+        verdict,
+        reasons,
+        baseline,
+        flagged_share_baseline: flagged.map(|(_, fb)| fb),
+        signals: signals.copied(),
+    }
+}
+
+/// The absolute ceilings, which apply whatever the vendor's history.
+fn ceilings(
+    settings: &PolicySettings,
+    repair_cost: f64,
+    damage: f64,
+    flagged: Option<&BatchSignals>,
+    reasons: &mut Vec<Reason>,
+) {
+    if repair_cost > settings.max_repair_cost {
+        push(
+            reasons,
+            ReasonCode::RepairCostCeiling,
+            format!(
+                "repair cost {repair_cost:.4} exceeds the ceiling {:.4}",
+                settings.max_repair_cost
+            ),
+        );
+    }
+    if damage > settings.max_damage_nats {
+        push(
+            reasons,
+            ReasonCode::DamageCeiling,
+            format!(
+                "damage {damage:.4} nats exceeds the ceiling {:.4} nats",
+                settings.max_damage_nats
+            ),
+        );
+    }
+    if let Some(s) = flagged {
+        if s.flagged_share > settings.max_flagged_share {
+            push(
+                reasons,
+                ReasonCode::FlaggedShareCeiling,
+                format!(
+                    "{} items flagged for review (share {:.4}) exceeds the ceiling {:.4}",
+                    flagged_count(s),
+                    s.flagged_share,
+                    settings.max_flagged_share
+                ),
+            );
+        }
+    }
+}
+
+/// Repair cost and damage: the cold-start limits until the vendor has `min_history` accepted batches,
+/// then the modified z-score and the CUSUM against the vendor's own baseline.
+fn repair_cost_rules(
+    settings: &PolicySettings,
+    baseline: &Baseline,
+    repair_cost: f64,
+    damage: f64,
+    signals: Option<&BatchSignals>,
+    reasons: &mut Vec<Reason>,
+) {
+    if baseline.cold_start {
+        if repair_cost > settings.cold_start_max_repair_cost {
+            push(
+            reasons,
+                ReasonCode::ColdStartRepairCost,
+                format!(
+                    "repair cost {repair_cost:.4} exceeds the cold-start limit {:.4} ({} of {} baseline batches so far)",
+                    settings.cold_start_max_repair_cost, baseline.n_history, settings.min_history
+                ),
+            );
+        }
+        // On data the learner separates poorly (the same test as for the flagged share), a clean
+        // batch's damage is noisy: it must also clear E + z·sd, the damage to expect from labels that
+        // follow the reference model.
+        let weak_model = signals.is_some_and(|s| s.separates_poorly(settings));
+        let damage_expected = signals.map_or(f64::NEG_INFINITY, |s| {
+            s.expected_damage + settings.cold_start_damage_excess_z * s.expected_damage_sd
+        });
+        if damage > settings.cold_start_max_damage_nats && (!weak_model || damage > damage_expected)
+        {
+            push(
+            reasons,
+                ReasonCode::ColdStartDamage,
+                format!(
+                    "damage {damage:.4} nats exceeds the cold-start limit {:.4} nats{} ({} of {} baseline batches so far)",
+                    settings.cold_start_max_damage_nats,
+                    match signals {
+                        Some(s) if weak_model => format!(
+                            " and the damage {:+.4} nats to expect from labels that follow the reference model by more than {} standard deviations ({:.4} nats)",
+                            s.expected_damage, settings.cold_start_damage_excess_z, s.expected_damage_sd
+                        ),
+                        _ => String::new(),
+                    },
+                    baseline.n_history,
+                    settings.min_history
+                ),
+            );
+        }
+    } else {
+        if baseline.modified_z > settings.modified_z_limit {
+            push(
+            reasons,
+                ReasonCode::RepairCostOutlier,
+                format!(
+                    "repair cost {repair_cost:.4} against the vendor's median {:.4}: modified z-score {:.2} > {:.2}",
+                    baseline.median, baseline.modified_z, settings.modified_z_limit
+                ),
+            );
+        }
+        if baseline.cusum > settings.cusum_h {
+            push(
+            reasons,
+                ReasonCode::RepairCostDrift,
+                format!(
+                    "CUSUM of the vendor's standardised repair cost {:.2} > h = {:.2} (slow upward drift)",
+                    baseline.cusum, settings.cusum_h
+                ),
+            );
+        }
+    }
+}
+
+/// The flagged share: the cold-start limit (for a small pool its own), then the modified z-score and
+/// the CUSUM against the vendor's own flagged shares.
+fn flagged_share_rules(
+    settings: &PolicySettings,
+    s: &BatchSignals,
+    fb: &Baseline,
+    reasons: &mut Vec<Reason>,
+) {
+    let x = s.flagged_share;
+    if fb.cold_start {
+        let (limit, which) = if s.pool_items < settings.small_pool_items {
+            (
+                settings.cold_start_max_flagged_share_small_pool,
+                "cold-start limit for a small pool",
+            )
+        } else {
+            (settings.cold_start_max_flagged_share, "cold-start limit")
+        };
+        // Where even labels that follow the reference model would flag more than
+        // `cold_start_weak_model_share` of the batch, the learner separates the classes poorly and
+        // the fixed limit says little: the share must also clear m₀ + z·sd.
+        let weak_model = s.separates_poorly(settings);
+        let expected =
+            s.expected_flagged_share + settings.cold_start_flagged_excess_z * s.expected_flagged_sd;
+        if x > limit && (!weak_model || x > expected) {
+            push(
+                reasons,
+                ReasonCode::ColdStartFlaggedShare,
+                format!(
+                    "{} items flagged for review (share {x:.4}) exceeds the {which} {limit:.4}{} ({} of {} baseline batches so far)",
+                    flagged_count(s),
+                    if weak_model {
+                        format!(
+                            " and the share {:.4} to expect from labels that follow the reference model by more than {} standard deviations",
+                            s.expected_flagged_share, settings.cold_start_flagged_excess_z
+                        )
+                    } else {
+                        String::new()
+                    },
+                    fb.n_history,
+                    settings.min_history
+                ),
+            );
+        }
+    } else {
+        if fb.modified_z > settings.modified_z_limit {
+            push(
+                reasons,
+                ReasonCode::FlaggedShareOutlier,
+                format!(
+                    "{} items flagged for review (share {x:.4}) against the vendor's median share {:.4}: modified z-score {:.2} > {:.2}",
+                    flagged_count(s), fb.median, fb.modified_z, settings.modified_z_limit
+                ),
+            );
+        }
+        if fb.cusum > settings.cusum_h {
+            push(
+                reasons,
+                ReasonCode::FlaggedShareDrift,
+                format!(
+                    "CUSUM of the vendor's standardised flagged share {:.2} > h = {:.2} (slow upward drift)",
+                    fb.cusum, settings.cusum_h
+                ),
+            );
+        }
+    }
+}
+
+/// Why an accepted batch was accepted: within the cold-start limits, or within the vendor's baseline.
+fn accepting_reason(
+    baseline: &Baseline,
+    flagged: Option<(&BatchSignals, &Baseline)>,
+    repair_cost: f64,
+    damage: f64,
+) -> Reason {
+    let share = flagged.map_or(String::new(), |(s, fb)| {
+        if fb.cold_start {
+            format!(", flagged share {:.4}", s.flagged_share)
+        } else {
+            format!(
+                ", flagged share {:.4} (median {:.4}, modified z {:.2}, CUSUM {:.2})",
+                s.flagged_share, fb.median, fb.modified_z, fb.cusum
+            )
+        }
+    });
+    if baseline.cold_start {
+        Reason {
+            code: ReasonCode::WithinColdStartLimits,
+            detail: format!(
+                "repair cost {repair_cost:.4} and damage {damage:.4} nats{share} within the cold-start limits"
+            ),
+        }
+    } else {
+        Reason {
+            code: ReasonCode::WithinBaseline,
+            detail: format!(
+                "repair cost {repair_cost:.4} within the vendor's baseline (median {:.4}, modified z {:.2}, CUSUM {:.2}){share}",
+                baseline.median, baseline.modified_z, baseline.cusum
+            ),
+        }
+    }
+}
+
+/// "k of n" for a reason's text: the flagged items of a batch.
+fn flagged_count(s: &BatchSignals) -> String {
+    let k = (s.flagged_share * s.items as f64).round();
+    format!("{k:.0} of {}", s.items)
+}

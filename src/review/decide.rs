@@ -1,0 +1,675 @@
+//! Review decisions: release, reject, withdraw; their file moves and vendor notices, and finishing what a
+//! crash interrupted.
+
+use super::*;
+
+/// What a decision did.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct DecisionReport {
+    /// The batch.
+    pub batch_id: String,
+    /// Vendor.
+    pub vendor: String,
+    /// The new state.
+    pub state: BatchState,
+    /// Reviewer.
+    pub by: String,
+    /// Why.
+    pub reason: String,
+    /// Items that went into the pool (release).
+    pub items_into_pool: usize,
+    /// Items left out (release).
+    pub excluded: Vec<String>,
+    /// `(id, from, to)` label changes (release).
+    pub relabeled: Vec<(String, String, String)>,
+    /// Items added to the trusted set (release with promotion).
+    pub promoted: Vec<String>,
+    /// Where the batch file is now.
+    pub file: Option<PathBuf>,
+    /// Notice files written.
+    pub notices: Vec<String>,
+    /// Problems after the decision was recorded (the decision stands; rerun a review command to finish
+    /// moving files).
+    pub warnings: Vec<String>,
+}
+
+impl DecisionReport {
+    /// A report for a decision just recorded on `settled`, with nothing moved or written yet.
+    fn new(settled: &BatchRecord, by: &str, reason: &str) -> Self {
+        Self {
+            batch_id: settled.id.clone(),
+            vendor: settled.vendor.clone(),
+            state: settled.state,
+            by: by.to_string(),
+            reason: reason.to_string(),
+            items_into_pool: 0,
+            excluded: Vec::new(),
+            relabeled: Vec::new(),
+            promoted: Vec::new(),
+            file: None,
+            notices: Vec::new(),
+            warnings: Vec::new(),
+        }
+    }
+}
+
+pub(super) fn require_reason(reason: &str) -> Result<(), ReviewError> {
+    if reason.trim().is_empty() {
+        return Err(ReviewError::Invalid(
+            "a decision needs a reason (--reason)".into(),
+        ));
+    }
+    Ok(())
+}
+
+pub(super) fn require_by(by: &str) -> Result<(), ReviewError> {
+    if by.trim().is_empty() {
+        return Err(ReviewError::Invalid(
+            "a decision needs a reviewer (--by)".into(),
+        ));
+    }
+    Ok(())
+}
+
+pub(super) fn expect_state(
+    rec: &BatchRecord,
+    allowed: &[BatchState],
+    what: &str,
+) -> Result<(), ReviewError> {
+    if allowed.contains(&rec.state) {
+        Ok(())
+    } else {
+        Err(ReviewError::Refused(format!(
+            "batch {} is {}; only {} batches can be {what}",
+            rec.id,
+            rec.state,
+            allowed
+                .iter()
+                .map(|s| s.as_str())
+                .collect::<Vec<_>>()
+                .join(" or ")
+        )))
+    }
+}
+
+pub(super) fn caller_detail(env: &ReviewEnv<'_>) -> serde_json::Value {
+    serde_json::json!({ "os_uid": env.caller.uid, "via": env.caller.via })
+}
+
+/// Release a quarantined batch into the pool, possibly with items excluded or relabeled, and optionally
+/// promote verified items into the trusted set.
+pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionReport, ReviewError> {
+    require_reason(&req.reason)?;
+    require_by(&req.by)?;
+    // Best effort: a move a crash interrupted; each decision reports problems with its own move.
+    let _ = finish_moves(env);
+    let rec = get_batch(env.store, &req.batch)?;
+    expect_state(&rec, &[BatchState::Quarantined], "released")?;
+    let table = match read_batch_table(env, &rec) {
+        Ok(t) => t,
+        Err(e) => {
+            // Another reviewer may have just decided it and moved the file.
+            let now = get_batch(env.store, &req.batch)?;
+            expect_state(&now, &[BatchState::Quarantined], "released")?;
+            return Err(e);
+        }
+    };
+    let plan = plan_release(env, &rec, &table, req)?;
+    let entry = plan.pool_entry(env, &rec, &table);
+    let n_pool = entry.ids.len();
+    let mut detail = caller_detail(env);
+    detail["excluded"] = serde_json::json!(plan.excluded_ids);
+    detail["relabeled"] = serde_json::json!(plan.relabeled);
+    detail["accept_proposed"] = serde_json::json!(req.accept_proposed);
+    detail["items_into_pool"] = serde_json::json!(n_pool);
+    let audit = AuditRecord::new(&req.by, "release")
+        .batch(&rec.id, &rec.vendor)
+        .outcome(BatchState::Released.as_str())
+        .reason(req.reason.clone())
+        .detail(detail);
+    let pool = if n_pool > 0 {
+        PoolChange::Add(entry)
+    } else {
+        PoolChange::None
+    };
+    // The vendor notice is recorded with the decision (an outbox: see `finish_pending`).
+    let n = release_notice(&rec, &plan);
+    let settled = env.store.transition(
+        &rec.id,
+        &[BatchState::Quarantined],
+        BatchState::Released,
+        pool,
+        vec![audit],
+        |r| r.pending_notices.push(n.clone()),
+    )?;
+    env.hooks.pool_changed();
+    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
+    report.items_into_pool = n_pool;
+    report.excluded = plan.excluded_ids.clone();
+    report.relabeled = plan.relabeled.clone();
+    if !plan.promote.is_empty() {
+        promote(env, req, &rec, &table, &plan, &mut report)?;
+    }
+    // Side effects after the flushed decision.
+    finish_decision(env, &settled, &req.by, &mut report);
+    Ok(report)
+}
+
+/// A release's edits to the batch, checked against it.
+struct ReleasePlan {
+    /// The final label of every row.
+    labels: Vec<String>,
+    /// Rows left out of the pool.
+    excluded: HashSet<usize>,
+    /// Their ids, sorted.
+    excluded_ids: Vec<String>,
+    /// `(id, from, to)` for every relabeled item.
+    relabeled: Vec<(String, String, String)>,
+    /// Rows promoted into the trusted set.
+    promote: Vec<usize>,
+}
+
+impl ReleasePlan {
+    /// The pool entry: every row not excluded, with its final label.
+    fn pool_entry(&self, env: &ReviewEnv<'_>, rec: &BatchRecord, table: &Table) -> PoolEntry {
+        let classes = Classes::from_labels(&env.meta.classes);
+        let keep: Vec<usize> = (0..table.len())
+            .filter(|i| !self.excluded.contains(i))
+            .collect();
+        PoolEntry {
+            batch_id: rec.id.clone(),
+            vendor: rec.vendor.clone(),
+            ids: keep.iter().map(|&i| table.ids[i].clone()).collect(),
+            labels: keep
+                .iter()
+                .map(|&i| classes.index_of(&self.labels[i]).unwrap_or(0))
+                .collect(),
+            x: keep
+                .iter()
+                .flat_map(|&i| table.features.row(i).to_vec())
+                .collect(),
+            n_features: table.features.ncols(),
+        }
+    }
+}
+
+/// Check the release's exclusions, relabelings (explicit, then the repair's proposals when asked) and
+/// promotions against the batch.
+fn plan_release(
+    env: &ReviewEnv<'_>,
+    rec: &BatchRecord,
+    table: &Table,
+    req: &ReleaseRequest,
+) -> Result<ReleasePlan, ReviewError> {
+    let classes = Classes::from_labels(&env.meta.classes);
+    let index: HashMap<&str, usize> = table
+        .ids
+        .iter()
+        .enumerate()
+        .map(|(i, id)| (id.as_str(), i))
+        .collect();
+    let find = |id: &str| {
+        index.get(id).copied().ok_or_else(|| {
+            ReviewError::Invalid(format!(
+                "batch {} has no item {}",
+                rec.id,
+                crate::text::sanitize(id)
+            ))
+        })
+    };
+    let mut labels: Vec<String> = table.labels.clone();
+    let mut excluded = HashSet::new();
+    for id in &req.exclude {
+        excluded.insert(find(id)?);
+    }
+    let mut explicit = HashSet::new();
+    let mut relabeled = Vec::new();
+    for (id, label) in &req.relabel {
+        let i = find(id)?;
+        if excluded.contains(&i) {
+            return Err(ReviewError::Invalid(format!(
+                "item {} is both excluded and relabeled",
+                crate::text::sanitize(id)
+            )));
+        }
+        if classes.index_of(label).is_none() {
+            return Err(ReviewError::Invalid(format!(
+                "unknown class {} (classes: {})",
+                crate::text::sanitize(label),
+                env.meta.classes.join(", ")
+            )));
+        }
+        explicit.insert(i);
+        if labels[i] != *label {
+            relabeled.push((id.clone(), labels[i].clone(), label.clone()));
+            labels[i] = label.clone();
+        }
+    }
+    if req.accept_proposed {
+        let proposals = proposals_for(env, rec, table)?;
+        for (i, proposed) in proposals {
+            if excluded.contains(&i) || explicit.contains(&i) || labels[i] == proposed {
+                continue;
+            }
+            relabeled.push((table.ids[i].clone(), labels[i].clone(), proposed.clone()));
+            labels[i] = proposed;
+        }
+    }
+    let mut promote = Vec::new();
+    for id in &req.promote {
+        let i = find(id)?;
+        if excluded.contains(&i) {
+            return Err(ReviewError::Invalid(format!(
+                "item {} is excluded and cannot be promoted",
+                crate::text::sanitize(id)
+            )));
+        }
+        promote.push(i);
+    }
+    let mut excluded_ids: Vec<String> = excluded.iter().map(|&i| table.ids[i].clone()).collect();
+    excluded_ids.sort();
+    Ok(ReleasePlan {
+        labels,
+        excluded,
+        excluded_ids,
+        relabeled,
+        promote,
+    })
+}
+
+/// The vendor notice of a release: the excluded and the relabeled items.
+fn release_notice(rec: &BatchRecord, plan: &ReleasePlan) -> Notice {
+    let items: Vec<NoticeItem> = plan
+        .excluded_ids
+        .iter()
+        .map(|id| NoticeItem {
+            id: id.clone(),
+            reasons: vec![item_codes::EXCLUDED_BY_REVIEWER.into()],
+            proposed_label: None,
+            suspicion: None,
+        })
+        .chain(plan.relabeled.iter().map(|(id, _, to)| NoticeItem {
+            id: id.clone(),
+            reasons: vec![item_codes::RELABELED_BY_REVIEWER.into()],
+            proposed_label: Some(to.clone()),
+            suspicion: None,
+        }))
+        .collect();
+    let mut n = review_notice(
+        rec,
+        NoticeVerdict::Released,
+        NoticeReason::new(
+            "released_on_review",
+            "A reviewer checked the flagged items and released the batch.",
+        ),
+    );
+    n.items_total = rec.items.map(|x| x as u64);
+    n.items_listed_total = items.len() as u64;
+    n.items = items;
+    n
+}
+
+/// Promotion: the verified items join the trusted set with their final labels (ids already trusted are
+/// skipped with a warning; a failed promotion is a warning, the release stands).
+fn promote(
+    env: &ReviewEnv<'_>,
+    req: &ReleaseRequest,
+    rec: &BatchRecord,
+    table: &Table,
+    plan: &ReleasePlan,
+    report: &mut DecisionReport,
+) -> Result<(), ReviewError> {
+    let now = Utc::now();
+    let existing: HashSet<String> = env
+        .store
+        .trusted_items()?
+        .into_iter()
+        .map(|t| t.id)
+        .collect();
+    let fresh: Vec<TrustedItem> = plan
+        .promote
+        .iter()
+        .map(|&i| TrustedItem {
+            version: RECORD_VERSION,
+            id: table.ids[i].clone(),
+            label: plan.labels[i].clone(),
+            features: table.features.row(i).to_vec(),
+            weight: 1.0,
+            added_by: req.by.clone(),
+            added_at: now,
+            source: format!("review of batch {} (vendor {})", rec.id, rec.vendor),
+        })
+        .filter(|t| {
+            let dup = existing.contains(&t.id);
+            if dup {
+                report.warnings.push(format!(
+                    "item {} not promoted: the trusted set already has an item with that id",
+                    crate::text::sanitize(&t.id)
+                ));
+            }
+            !dup
+        })
+        .collect();
+    if fresh.is_empty() {
+        return Ok(());
+    }
+    let ids: Vec<String> = fresh.iter().map(|t| t.id.clone()).collect();
+    let mut detail = caller_detail(env);
+    detail["ids"] = serde_json::json!(ids);
+    detail["source"] = serde_json::json!(fresh[0].source);
+    let audit = AuditRecord::new(&req.by, "trusted_promote")
+        .batch(&rec.id, &rec.vendor)
+        .reason(req.reason.clone())
+        .detail(detail);
+    match env.store.update_trusted(&fresh, &[], vec![audit]) {
+        Ok(()) => {
+            env.hooks.trusted_changed();
+            report.promoted = ids;
+        }
+        Err(e) => report
+            .warnings
+            .push(format!("promotion to the trusted set failed: {e}")),
+    }
+    Ok(())
+}
+
+/// `(row, proposed class name)` for every item whose label the repair moved: from the full report when
+/// it was kept, else from the record's suspects.
+pub(super) fn proposals_for(
+    env: &ReviewEnv<'_>,
+    rec: &BatchRecord,
+    table: &Table,
+) -> Result<Vec<(usize, String)>, ReviewError> {
+    if let Some(a) = env.store.assessment(&rec.id)? {
+        if a.items.len() == table.len() {
+            return Ok(a
+                .items
+                .iter()
+                .filter(|s| s.proposed_label != s.label)
+                .filter_map(|s| {
+                    env.meta
+                        .classes
+                        .get(s.proposed_label)
+                        .map(|c| (s.index, c.clone()))
+                })
+                .collect());
+        }
+    }
+    let index: HashMap<&str, usize> = table
+        .ids
+        .iter()
+        .enumerate()
+        .map(|(i, id)| (id.as_str(), i))
+        .collect();
+    Ok(rec
+        .suspects
+        .iter()
+        .filter(|s| s.proposed_label != s.label)
+        .filter_map(|s| {
+            index
+                .get(s.id.as_str())
+                .map(|&i| (i, s.proposed_label.clone()))
+        })
+        .collect())
+}
+
+/// Reject a quarantined batch: it stays out of the pool and the vendor is told.
+pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport, ReviewError> {
+    require_reason(&req.reason)?;
+    require_by(&req.by)?;
+    // Best effort: a move a crash interrupted; each decision reports problems with its own move.
+    let _ = finish_moves(env);
+    let rec = get_batch(env.store, &req.batch)?;
+    expect_state(&rec, &[BatchState::Quarantined], "rejected")?;
+    let mut detail = caller_detail(env);
+    detail["disclose_proposed"] = serde_json::json!(req.disclose_proposed);
+    let audit = AuditRecord::new(&req.by, "reject")
+        .batch(&rec.id, &rec.vendor)
+        .outcome(BatchState::ReviewRejected.as_str())
+        .reason(req.reason.clone())
+        .detail(detail);
+    let mut n = review_notice(
+        &rec,
+        NoticeVerdict::Rejected,
+        NoticeReason::new(
+            "rejected_on_review",
+            "A reviewer checked the flagged items and rejected the batch.",
+        ),
+    );
+    let items: Vec<NoticeItem> = rec
+        .suspects
+        .iter()
+        .filter(|s| s.proposed_label != s.label)
+        .map(|s| NoticeItem {
+            id: s.id.clone(),
+            reasons: vec![item_codes::LABEL_SUSPECTED.into()],
+            proposed_label: Some(s.proposed_label.clone()),
+            suspicion: Some(s.suspicion),
+        })
+        .collect();
+    n.items_total = rec.items.map(|x| x as u64);
+    n.items_listed_total =
+        rec.scores
+            .as_ref()
+            .map_or(items.len(), |s| s.flagged_items.max(items.len())) as u64;
+    n.items = items;
+    n.disclosure.by_reviewer = req.disclose_proposed;
+    n.disclosure.proposed_labels = req.disclose_proposed;
+    let settled = env.store.transition(
+        &rec.id,
+        &[BatchState::Quarantined],
+        BatchState::ReviewRejected,
+        PoolChange::None,
+        vec![audit],
+        |r| r.pending_notices.push(n.clone()),
+    )?;
+    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
+    finish_decision(env, &settled, &req.by, &mut report);
+    Ok(report)
+}
+
+/// Pull an accepted or released batch back out of the pool (e.g. after a re-scan flagged it).
+pub fn withdraw(env: &ReviewEnv<'_>, req: &WithdrawRequest) -> Result<DecisionReport, ReviewError> {
+    require_reason(&req.reason)?;
+    require_by(&req.by)?;
+    // Best effort: a move a crash interrupted; each decision reports problems with its own move.
+    let _ = finish_moves(env);
+    let rec = get_batch(env.store, &req.batch)?;
+    let allowed = [BatchState::Accepted, BatchState::Released];
+    expect_state(&rec, &allowed, "withdrawn")?;
+    let audit = AuditRecord::new(&req.by, "withdraw")
+        .batch(&rec.id, &rec.vendor)
+        .outcome(BatchState::Withdrawn.as_str())
+        .reason(req.reason.clone())
+        .detail(caller_detail(env));
+    let mut n = review_notice(
+        &rec,
+        NoticeVerdict::Withdrawn,
+        NoticeReason::new(
+            "withdrawn_on_review",
+            "After a re-check, a reviewer took the batch back out of the training pool.",
+        ),
+    );
+    n.items_total = rec.items.map(|x| x as u64);
+    let settled = env.store.transition(
+        &rec.id,
+        &allowed,
+        BatchState::Withdrawn,
+        PoolChange::Remove,
+        vec![audit],
+        |r| r.pending_notices.push(n.clone()),
+    )?;
+    env.hooks.pool_changed();
+    let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
+    finish_decision(env, &settled, &req.by, &mut report);
+    Ok(report)
+}
+
+pub(super) fn review_notice(
+    rec: &BatchRecord,
+    verdict: NoticeVerdict,
+    reason: NoticeReason,
+) -> Notice {
+    let mut n = Notice::new(
+        verdict,
+        DecidedBy::Reviewer,
+        BatchRef {
+            batch_id: rec.id.clone(),
+            vendor: rec.vendor.clone(),
+            file_name: Some(rec.original_name.clone()),
+            sha256: rec.sha256.clone(),
+            received_at: rec.claimed_at,
+            decided_at: Utc::now(),
+        },
+    );
+    n.reasons.push(reason);
+    // The policy's original reasons (their numbers are removed unless scores are disclosed).
+    if let Some(d) = &rec.decision {
+        if d.verdict == Verdict::Quarantine {
+            n.reasons.extend(
+                d.reasons
+                    .iter()
+                    .map(|r| NoticeReason::new(r.code.as_str(), r.detail.clone())),
+            );
+        }
+    }
+    n
+}
+
+/// Move the file, then write the notice recorded with the decision and clear it from the record (with an
+/// audit entry). Failures become warnings: the decision itself is already recorded, and the next review
+/// command or daemon start finishes what is left ([`finish_pending`]).
+pub(super) fn finish_decision(
+    env: &ReviewEnv<'_>,
+    rec: &BatchRecord,
+    by: &str,
+    report: &mut DecisionReport,
+) {
+    match move_for_state(env.ws, rec) {
+        Ok(p) => report.file = p,
+        Err(e) => report.warnings.push(format!(
+            "moving the batch file failed ({e}); the next review command retries"
+        )),
+    }
+    match send_pending_notice(env.ws, env.config, env.store, rec, by) {
+        Ok(files) => report.notices = files,
+        Err(e) => report.warnings.push(format!(
+            "writing the vendor notice failed ({e}); the next review command retries"
+        )),
+    }
+}
+
+/// Write a record's pending vendor notices, then remove them from the record in the store together with
+/// an audit entry each naming the files ([`Store::notices_sent`]). Writing is idempotent (same file
+/// names), so a crash between the two, or two processes finishing the same decision, only writes the
+/// same files again. Returns the file names (none when nothing was pending).
+pub(super) fn send_pending_notice(
+    ws: &Workspace,
+    config: &Config,
+    store: &Store,
+    rec: &BatchRecord,
+    by: &str,
+) -> Result<Vec<String>, ReviewError> {
+    if rec.pending_notices.is_empty() {
+        return Ok(Vec::new());
+    }
+    let dir = ws.notices(&rec.vendor);
+    let mut files = Vec::new();
+    let mut audits = Vec::new();
+    for pending in &rec.pending_notices {
+        let paths =
+            notice::write_notice(&dir, pending, &config.notices).map_err(io_err(dir.display()))?;
+        let these: Vec<String> = paths
+            .iter()
+            .filter_map(|p| p.file_name().map(|s| s.to_string_lossy().into_owned()))
+            .collect();
+        audits.push(
+            AuditRecord::new(by, "notice")
+                .batch(&rec.id, &rec.vendor)
+                .outcome(pending.verdict.as_str())
+                .detail(serde_json::json!({ "files": these })),
+        );
+        files.extend(these);
+    }
+    // Recorded only if still pending: whoever sent them first keeps the single audit entry.
+    store.notices_sent(&rec.id, &rec.pending_notices, &files, audits)?;
+    Ok(files)
+}
+
+/// Move a decided batch's file (and its report) out of `quarantine/` or `accepted/` into the folder its
+/// state calls for. Idempotent; returns where the file is.
+pub(super) fn move_for_state(
+    ws: &Workspace,
+    rec: &BatchRecord,
+) -> Result<Option<PathBuf>, ReviewError> {
+    let Some(dest) = folder_for_state(rec.state) else {
+        return Ok(None);
+    };
+    let dest_dir = ws.folder(dest);
+    let target = dest_dir.join(&rec.file_name);
+    let report_name = crate::pipeline::file::report_name(rec);
+    let page_name = page_name(&rec.id);
+    for src in ["quarantine", "accepted"] {
+        if src == dest {
+            continue;
+        }
+        let src_dir = ws.folder(src);
+        let mut moved = false;
+        // The review page `quarantine show` wrote beside the report travels with it.
+        for name in [
+            rec.file_name.as_str(),
+            report_name.as_str(),
+            page_name.as_str(),
+        ] {
+            let from = src_dir.join(name);
+            if std::fs::symlink_metadata(&from).is_ok() {
+                let to = dest_dir.join(name);
+                if std::fs::symlink_metadata(&to).is_ok() {
+                    // A previous attempt already put a copy there.
+                    std::fs::remove_file(&from).map_err(io_err(from.display()))?;
+                } else {
+                    std::fs::rename(&from, &to).map_err(io_err(from.display()))?;
+                }
+                moved = true;
+            }
+        }
+        if moved {
+            crate::fsx::sync_dir(&dest_dir).map_err(io_err(dest_dir.display()))?;
+            crate::fsx::sync_dir(&src_dir).map_err(io_err(src_dir.display()))?;
+        }
+    }
+    Ok(target.exists().then_some(target))
+}
+
+/// Finish what a crash interrupted after a review decision was recorded: file moves and vendor notices.
+pub(super) fn finish_moves(env: &ReviewEnv<'_>) -> Result<usize, ReviewError> {
+    finish_pending(env.ws, env.config, env.store)
+}
+
+/// Finish what a crash interrupted after review decisions were recorded: move each decided file into
+/// the folder its state calls for, and write each notice still pending in its record (an outbox: the
+/// notice is stored in the same transaction as the decision, so it cannot be lost). Returns how many
+/// moves and notices it did. Run by every review command and at the daemon's start.
+pub fn finish_pending(
+    ws: &Workspace,
+    config: &Config,
+    store: &Store,
+) -> Result<usize, ReviewError> {
+    let mut n = 0;
+    for rec in store.batches_in(&[
+        BatchState::Released,
+        BatchState::ReviewRejected,
+        BatchState::Withdrawn,
+    ])? {
+        let dest = folder_for_state(rec.state).unwrap_or("rejected");
+        if !ws.folder(dest).join(&rec.file_name).exists() {
+            move_for_state(ws, &rec)?;
+            n += 1;
+        }
+        if !rec.pending_notices.is_empty() {
+            send_pending_notice(ws, config, store, &rec, "labelweir")?;
+            n += 1;
+        }
+    }
+    Ok(n)
+}

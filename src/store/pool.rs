@@ -1,0 +1,143 @@
+//! The store's pool side: the accepted items, the saved pool summary and its epoch, and each vendor's
+//! history.
+
+use super::*;
+
+impl Store {
+    /// Pool entries with sequence number greater than `after`, in order, with their sequence numbers.
+    pub fn pool_entries_after(&self, after: u64) -> Result<Vec<(u64, PoolEntry)>, StoreError> {
+        self.trees[T_POOL]
+            .range((after + 1).to_be_bytes()..)
+            .map(|kv| {
+                let (k, v) = kv.map_err(StoreError::sled("scan pool"))?;
+                let seq = u64_of(Some(k));
+                Ok((seq, PoolEntry::decode(&seq.to_string(), &v)?))
+            })
+            .collect()
+    }
+
+    /// Sequence numbers of the pool entries after `after`, in order (keys only; nothing is decoded).
+    pub fn pool_seqs_after(&self, after: u64) -> Result<Vec<u64>, StoreError> {
+        self.trees[T_POOL]
+            .range((after + 1).to_be_bytes()..)
+            .keys()
+            .map(|k| Ok(u64_of(Some(k.map_err(StoreError::sled("scan pool"))?))))
+            .collect()
+    }
+
+    /// The whole pool as one `(x, y)` pair (for an exact refresh), plus the highest sequence included.
+    pub fn pool_matrix(
+        &self,
+        n_features: usize,
+    ) -> Result<(ndarray::Array2<f64>, Vec<usize>, u64), StoreError> {
+        let mut x = Vec::new();
+        let mut y = Vec::new();
+        let mut last = 0;
+        for kv in self.trees[T_POOL].iter() {
+            let (k, v) = kv.map_err(StoreError::sled("scan pool"))?;
+            let seq = u64_of(Some(k));
+            let e = PoolEntry::decode(&seq.to_string(), &v)?;
+            if e.n_features != n_features {
+                return Err(StoreError::Corrupt {
+                    what: "pool",
+                    key: seq.to_string(),
+                    message: format!("{} features, expected {n_features}", e.n_features),
+                });
+            }
+            x.extend_from_slice(&e.x);
+            y.extend_from_slice(&e.labels);
+            last = seq;
+        }
+        let n = y.len();
+        let x = ndarray::Array2::from_shape_vec((n, n_features), x).map_err(|e| {
+            StoreError::Corrupt {
+                what: "pool",
+                key: "*".into(),
+                message: e.to_string(),
+            }
+        })?;
+        Ok((x, y, last))
+    }
+
+    /// Number of items in the pool.
+    pub fn pool_items(&self) -> Result<u64, StoreError> {
+        let mut n = 0u64;
+        for kv in self.trees[T_POOL].iter() {
+            let (k, v) = kv.map_err(StoreError::sled("scan pool"))?;
+            n += PoolEntry::decode(&u64_of(Some(k)).to_string(), &v)?
+                .ids
+                .len() as u64;
+        }
+        Ok(n)
+    }
+
+    /// Batch ids whose items are in the pool, in pool order.
+    pub fn pool_batches(&self) -> Result<Vec<String>, StoreError> {
+        let mut v: Vec<(u64, String)> = self.trees[T_POOL_INDEX]
+            .iter()
+            .map(|kv| {
+                let (k, s) = kv.map_err(StoreError::sled("scan pool index"))?;
+                Ok((u64_of(Some(s)), String::from_utf8_lossy(&k).into_owned()))
+            })
+            .collect::<Result<_, StoreError>>()?;
+        v.sort();
+        Ok(v.into_iter().map(|(_, b)| b).collect())
+    }
+
+    /// The pool epoch: bumped whenever items leave the pool.
+    pub fn pool_epoch(&self) -> Result<u64, StoreError> {
+        Ok(u64_of(
+            self.trees[T_META]
+                .get(META_EPOCH)
+                .map_err(StoreError::sled("read epoch"))?,
+        ))
+    }
+
+    /// The saved pool summary, if any.
+    pub fn saved_summary(&self) -> Result<Option<SavedSummary>, StoreError> {
+        self.summary
+            .get(SUMMARY_KEY)
+            .map_err(StoreError::sled("read summary"))?
+            .map(|v| dec("summary", SUMMARY_KEY, &v))
+            .transpose()
+    }
+
+    /// Save the pool summary (flushed).
+    pub fn save_summary(&self, s: &SavedSummary) -> Result<(), StoreError> {
+        let v = enc("summary", s)?;
+        self.summary
+            .insert(SUMMARY_KEY, v)
+            .map_err(StoreError::sled("write summary"))?;
+        self.summary.flush().map_err(StoreError::sled("flush"))?;
+        Ok(())
+    }
+
+    // ----- vendor history -----
+
+    /// A vendor's history (empty if none yet).
+    pub fn vendor_history(&self, vendor: &str) -> Result<VendorHistory, StoreError> {
+        Ok(self.trees[T_HISTORY]
+            .get(vendor.as_bytes())
+            .map_err(StoreError::sled("read history"))?
+            .map(|v| dec("history", vendor.as_bytes(), &v))
+            .transpose()?
+            .unwrap_or_default())
+    }
+
+    /// Replace a vendor's history (flushed), e.g. after a reviewer resets its drift statistic.
+    pub fn set_vendor_history(
+        &self,
+        vendor: &str,
+        h: &VendorHistory,
+        audit: AuditRecord,
+    ) -> Result<(), StoreError> {
+        let v = enc("history", h)?;
+        let a = self.prepare_audit(audit)?;
+        let vendor = vendor.to_string();
+        self.run_tx("write history", |t| {
+            t[T_HISTORY].insert(vendor.as_bytes(), v.as_slice())?;
+            t[T_AUDIT].insert(&a.0, a.1.as_slice())?;
+            Ok(())
+        })
+    }
+}

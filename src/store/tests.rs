@@ -1,0 +1,187 @@
+//! Unit tests of the store: transitions, pending notices, ids, the lock.
+use super::*;
+
+fn tmp_store() -> (tempfile::TempDir, Store) {
+    let d = tempfile::tempdir().unwrap();
+    let s = Store::open(&d.path().join("state"), &StoreSettings::default()).unwrap();
+    (d, s)
+}
+
+fn claimed(s: &Store) -> BatchRecord {
+    let id = s.new_batch_id().unwrap();
+    let r = BatchRecord::claimed(id.clone(), "v1", "x.csv".into(), format!("{id}.csv"));
+    s.record_claim(&r).unwrap();
+    r
+}
+
+#[test]
+fn verdict_then_second_transition_conflicts() {
+    let (_d, s) = tmp_store();
+    let mut r = claimed(&s);
+    r.sha256 = Some("ab".into());
+    r.outcome = Some(Outcome::Quarantined);
+    let r = s
+        .record_verdict(
+            &r,
+            AuditRecord::new("daemon", "verdict"),
+            true,
+            None,
+            None,
+            None,
+        )
+        .unwrap();
+    assert_eq!(r.state, BatchState::Decided);
+    assert_eq!(
+        s.batch_by_hash("v1", "ab").unwrap().as_deref(),
+        Some(r.id.as_str())
+    );
+    // Recording a second verdict on a decided batch is refused.
+    assert!(matches!(
+        s.record_verdict(
+            &r,
+            AuditRecord::new("daemon", "verdict"),
+            true,
+            None,
+            None,
+            None
+        ),
+        Err(StoreError::Conflict { .. })
+    ));
+    s.transition(
+        &r.id,
+        &[BatchState::Decided],
+        BatchState::Quarantined,
+        PoolChange::None,
+        vec![],
+        |_| {},
+    )
+    .unwrap();
+    let entry = PoolEntry {
+        batch_id: r.id.clone(),
+        vendor: "v1".into(),
+        ids: vec!["a".into(), "b".into()],
+        labels: vec![0, 1],
+        x: vec![1.0, 2.0, 3.0, 4.0],
+        n_features: 2,
+    };
+    let rel = s
+        .transition(
+            &r.id,
+            &[BatchState::Quarantined],
+            BatchState::Released,
+            PoolChange::Add(entry.clone()),
+            vec![AuditRecord::new("alice", "release")],
+            |_| {},
+        )
+        .unwrap();
+    assert!(rel.pool_seq.is_some());
+    // A second reviewer's release is refused cleanly.
+    let again = s.transition(
+        &r.id,
+        &[BatchState::Quarantined],
+        BatchState::Released,
+        PoolChange::Add(entry.clone()),
+        vec![],
+        |_| {},
+    );
+    assert!(matches!(again, Err(StoreError::Conflict { .. })));
+    let (x, y, last) = s.pool_matrix(2).unwrap();
+    assert_eq!((x.nrows(), y, last), (2, vec![0, 1], rel.pool_seq.unwrap()));
+    assert_eq!(s.pool_entries_after(0).unwrap()[0].1, entry);
+    assert_eq!(s.pool_epoch().unwrap(), 0);
+    s.transition(
+        &r.id,
+        &[BatchState::Released],
+        BatchState::Withdrawn,
+        PoolChange::Remove,
+        vec![],
+        |_| {},
+    )
+    .unwrap();
+    assert_eq!(s.pool_items().unwrap(), 0);
+    assert_eq!(s.pool_epoch().unwrap(), 1);
+    let audit = s.audit_since(0).unwrap();
+    assert_eq!(
+        audit.iter().map(|a| a.action.as_str()).collect::<Vec<_>>(),
+        ["verdict", "release"]
+    );
+    assert!(audit[0].seq < audit[1].seq);
+}
+
+#[test]
+fn pending_notices_are_recorded_as_sent_once() {
+    use crate::notice::{BatchRef, DecidedBy, Notice, NoticeVerdict};
+    let (_d, s) = tmp_store();
+    let r = claimed(&s);
+    let notice = |v| {
+        Notice::new(
+            v,
+            DecidedBy::Reviewer,
+            BatchRef {
+                batch_id: r.id.clone(),
+                vendor: r.vendor.clone(),
+                file_name: None,
+                sha256: None,
+                received_at: r.claimed_at,
+                decided_at: r.claimed_at,
+            },
+        )
+    };
+    let (a, b) = (
+        notice(NoticeVerdict::Released),
+        notice(NoticeVerdict::Withdrawn),
+    );
+    let pending = vec![a.clone(), b.clone()];
+    s.transition(
+        &r.id,
+        &[BatchState::Claimed],
+        BatchState::Claimed,
+        PoolChange::None,
+        vec![],
+        |rec| rec.pending_notices = pending.clone(),
+    )
+    .unwrap();
+    let audits = || s.audit_since(0).unwrap().len();
+    let before = audits();
+    let files = vec!["x.released.json".to_string()];
+    let sent = |n: &[Notice]| {
+        s.notices_sent(&r.id, n, &files, vec![AuditRecord::new("t", "notice")])
+            .unwrap()
+    };
+    assert!(sent(std::slice::from_ref(&a)));
+    let rec = s.batch(&r.id).unwrap().unwrap();
+    // (Timestamps are stored to the millisecond: compare by file stem.)
+    let stems: Vec<String> = rec.pending_notices.iter().map(Notice::file_stem).collect();
+    assert_eq!(stems, vec![b.file_stem()]);
+    assert_eq!(rec.notices, files);
+    assert_eq!(audits(), before + 1);
+    // A second sender of the same notice finds it gone: nothing is written.
+    assert!(!sent(std::slice::from_ref(&a)));
+    assert!(!sent(&[a, b.clone()]));
+    assert_eq!(audits(), before + 1);
+    assert!(sent(&[b]));
+    assert!(s.batch(&r.id).unwrap().unwrap().pending_notices.is_empty());
+    assert_eq!(audits(), before + 2);
+}
+
+#[test]
+fn ids_are_unique_across_reopen() {
+    let d = tempfile::tempdir().unwrap();
+    let p = d.path().join("state");
+    let a = {
+        let s = Store::open(&p, &StoreSettings::default()).unwrap();
+        let r = claimed(&s);
+        r.id
+    };
+    let s = Store::open(&p, &StoreSettings::default()).unwrap();
+    let b = claimed(&s);
+    assert!(b.id > a, "{} vs {a}", b.id);
+    assert!(s.batch(&a).unwrap().is_some());
+}
+
+#[test]
+fn second_open_is_refused_as_locked() {
+    let (d, _s) = tmp_store();
+    let e = Store::open(&d.path().join("state"), &StoreSettings::default()).unwrap_err();
+    assert!(matches!(e, StoreError::Locked(_)), "{e}");
+}

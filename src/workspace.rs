@@ -1,0 +1,302 @@
+//! A workspace's folders: their paths, their creation and checks, and creating a new workspace (what
+//! `labelweir init` does).
+
+use std::os::unix::fs::MetadataExt;
+use std::path::{Path, PathBuf};
+
+use chrono::Utc;
+
+use crate::config::{self, Config, WatcherKind, CONFIG_FILE};
+use crate::data::{self, Classes, TableOptions};
+use crate::model::{FeatureMap, Standardizer};
+use crate::store::{AuditRecord, Store, StoreError, TrustedItem, WorkspaceMeta, RECORD_VERSION};
+
+/// Why a workspace could not be created or prepared; the binary picks an exit code per kind.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum WorkspaceError {
+    /// Bad input: the trusted file, the vendor names, or a folder that already holds a workspace.
+    #[error("{0}")]
+    Input(String),
+    /// The layout or the configuration is unusable (folders on two filesystems, a link where a folder
+    /// belongs, inotify on a network filesystem, a feature map that cannot be built).
+    #[error("configuration: {0}")]
+    Config(String),
+    /// Filesystem error.
+    #[error("{what}: {source}")]
+    Io {
+        /// What was being done, on which path.
+        what: String,
+        /// The cause.
+        #[source]
+        source: std::io::Error,
+    },
+    /// Store error.
+    #[error(transparent)]
+    Store(#[from] StoreError),
+}
+
+fn io(what: impl std::fmt::Display) -> impl FnOnce(std::io::Error) -> WorkspaceError {
+    let what = what.to_string();
+    move |source| WorkspaceError::Io { what, source }
+}
+
+/// The folders of a workspace (`DIR`): `labelweir.toml`, `inbox/<vendor>/`, the daemon-private
+/// `processing/`, `accepted/`, `quarantine/`, `rejected/`, `notices/<vendor>/`, and the store in `state/`.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Workspace {
+    /// The workspace root.
+    pub root: PathBuf,
+}
+
+impl Workspace {
+    /// Folders the daemon owns, created by `init`.
+    pub const PRIVATE_FOLDERS: [&'static str; 6] = [
+        "processing",
+        "accepted",
+        "quarantine",
+        "rejected",
+        "notices",
+        "state",
+    ];
+
+    /// A workspace rooted at `root`.
+    pub fn new(root: impl Into<PathBuf>) -> Self {
+        Self { root: root.into() }
+    }
+
+    /// `DIR/labelweir.toml`.
+    pub fn config_file(&self) -> PathBuf {
+        self.root.join(CONFIG_FILE)
+    }
+
+    /// `DIR/inbox`.
+    pub fn inbox(&self) -> PathBuf {
+        self.root.join("inbox")
+    }
+
+    /// `DIR/inbox/<vendor>`.
+    pub fn vendor_inbox(&self, vendor: &str) -> PathBuf {
+        self.inbox().join(vendor)
+    }
+
+    /// `DIR/processing`.
+    pub fn processing(&self) -> PathBuf {
+        self.root.join("processing")
+    }
+
+    /// `DIR/accepted`, `DIR/quarantine` or `DIR/rejected` (by name, as in `store::Outcome::folder`).
+    pub fn folder(&self, name: &str) -> PathBuf {
+        self.root.join(name)
+    }
+
+    /// `DIR/notices/<vendor>`.
+    pub fn notices(&self, vendor: &str) -> PathBuf {
+        self.root.join("notices").join(vendor)
+    }
+
+    /// `DIR/state` (the sled store).
+    pub fn state(&self) -> PathBuf {
+        self.root.join("state")
+    }
+
+    /// `DIR/admin.sock` (the review commands' channel to a running daemon).
+    pub fn admin_socket(&self) -> PathBuf {
+        self.root.join("admin.sock")
+    }
+}
+
+/// Filesystems on which inotify does not see files written elsewhere (by other clients of a network share,
+/// or through a FUSE daemon), by their `statfs` magic number. Values of Linux's `include/uapi/linux/magic.h`
+/// as the statfs(2) manual page lists them, written here from memory; `NFS_SUPER_MAGIC` is checked against
+/// rustix's constant in a test.
+const REMOTE_FILESYSTEMS: [(u64, &str); 8] = [
+    (0x6969, "NFS"),
+    (0x517B, "SMB"),
+    (0xFF53_4D42, "CIFS"),
+    (0xFE53_4D42, "SMB2"),
+    (0x6573_5546, "FUSE"),
+    (0x0102_1997, "9p"),
+    (0x00C3_6400, "Ceph"),
+    (0x5346_414F, "AFS"),
+];
+
+/// The kind of network or FUSE filesystem holding `path`, if it is one (`None` also when `statfs` fails).
+pub fn remote_filesystem(path: &Path) -> Option<&'static str> {
+    let st = rustix::fs::statfs(path).ok()?;
+    // `f_type` is a C long; the magic numbers are 32-bit.
+    let magic = (st.f_type as u64) & 0xFFFF_FFFF;
+    REMOTE_FILESYSTEMS
+        .iter()
+        .find(|(m, _)| *m == magic)
+        .map(|(_, name)| *name)
+}
+
+/// Create missing folders (vendors may have been added to the config) and check that every folder is on
+/// one filesystem (renames between them must be atomic), and that this filesystem is not a network or FUSE
+/// mount unless `ingest.watcher = "poll"` (inotify does not see remote writes there).
+pub fn prepare_folders(ws: &Workspace, config: &Config) -> Result<(), WorkspaceError> {
+    if !ws.root.is_dir() {
+        return Err(WorkspaceError::Config(format!(
+            "{} is not a workspace folder",
+            ws.root.display()
+        )));
+    }
+    let mut dirs = vec![
+        ws.inbox(),
+        ws.processing(),
+        ws.folder("accepted"),
+        ws.folder("quarantine"),
+        ws.folder("rejected"),
+        ws.root.join("notices"),
+        ws.state(),
+    ];
+    for v in &config.vendors {
+        dirs.push(ws.vendor_inbox(v));
+        dirs.push(ws.notices(v));
+    }
+    let mut dev = None;
+    for d in &dirs {
+        std::fs::create_dir_all(d).map_err(io(d.display()))?;
+        let m = std::fs::symlink_metadata(d).map_err(io(d.display()))?;
+        if !m.is_dir() {
+            return Err(WorkspaceError::Config(format!(
+                "{} must be a directory, not a link",
+                d.display()
+            )));
+        }
+        match dev {
+            None => dev = Some(m.dev()),
+            Some(x) if x != m.dev() => {
+                return Err(WorkspaceError::Config(format!(
+                    "{} is on another filesystem than the rest of the workspace; inbox, processing, accepted, quarantine, rejected, notices and state must share one filesystem",
+                    d.display()
+                )))
+            }
+            _ => {}
+        }
+    }
+    if config.ingest.watcher == WatcherKind::Native {
+        if let Some(kind) = remote_filesystem(&ws.inbox()) {
+            return Err(WorkspaceError::Config(format!(
+                "{} is on a {kind} filesystem, where inotify does not see files written by other machines or through the FUSE daemon; set [ingest] watcher = \"poll\" in labelweir.toml",
+                ws.inbox().display()
+            )));
+        }
+    }
+    Ok(())
+}
+
+/// Free bytes available to the daemon on the filesystem holding `path`.
+pub fn free_bytes(path: &Path) -> Option<u64> {
+    rustix::fs::statvfs(path)
+        .ok()
+        .map(|s| s.f_bavail.saturating_mul(s.f_frsize))
+}
+
+/// Create a workspace in `dir`: the configuration file (the shipped defaults with `vendors`), a drop folder
+/// per vendor, the daemon's folders, and the store seeded with the trusted set read from `trusted` (its
+/// feature columns become the schema, its labels the classes; features are standardised on it), verified
+/// by `by`. Returns the number of trusted items stored.
+pub fn create_workspace(
+    dir: &std::path::Path,
+    trusted: &std::path::Path,
+    vendors: &[String],
+    by: &str,
+) -> Result<usize, WorkspaceError> {
+    let cfg_text = config::render_with_vendors(vendors);
+    let cfg = Config::parse_str(&cfg_text, &dir.join(CONFIG_FILE))
+        .and_then(|c| c.validate().map(|_| c))
+        .map_err(|e| WorkspaceError::Input(e.to_string()))?;
+    let ws = Workspace::new(dir);
+    if ws.config_file().exists() || ws.state().exists() {
+        return Err(WorkspaceError::Input(format!(
+            "{} already holds a workspace",
+            dir.display()
+        )));
+    }
+    let opts = TableOptions {
+        id_column: cfg.schema.id_column.clone(),
+        label_column: cfg.schema.label_column.clone(),
+        ..TableOptions::default()
+    };
+    let table =
+        data::read_table(trusted, &opts, None).map_err(|e| WorkspaceError::Input(e.to_string()))?;
+    let classes = Classes::from_labels(&table.labels);
+    if classes.len() < 2 {
+        return Err(WorkspaceError::Input(
+            "the trusted set needs items of at least two classes".into(),
+        ));
+    }
+    let standardizer = Standardizer::fit(&[table.features.view()])
+        .map_err(|e| WorkspaceError::Input(e.to_string()))?;
+    let feature_map = FeatureMap::new(standardizer, cfg.model.feature_map, cfg.model.seed)
+        .map_err(|e| WorkspaceError::Config(e.to_string()))?;
+    let meta = WorkspaceMeta {
+        version: RECORD_VERSION,
+        classes: classes.names().to_vec(),
+        features: table.feature_names.clone(),
+        feature_map,
+        feature_map_setting: serde_json::to_value(cfg.model.feature_map)
+            .map_err(|e| WorkspaceError::Config(e.to_string()))?,
+        created_at: Utc::now(),
+    };
+    let now = Utc::now();
+    let source = trusted
+        .file_name()
+        .map(crate::text::escape_name)
+        .unwrap_or_default();
+    let items: Vec<TrustedItem> = (0..table.len())
+        .map(|i| TrustedItem {
+            version: RECORD_VERSION,
+            id: table.ids[i].clone(),
+            label: table.labels[i].clone(),
+            features: table.features.row(i).to_vec(),
+            weight: 1.0,
+            added_by: by.to_string(),
+            added_at: now,
+            source: source.clone(),
+        })
+        .collect();
+    std::fs::create_dir_all(dir).map_err(io(format!("create {}", dir.display())))?;
+    prepare_folders(&ws, &cfg)?;
+    use std::os::unix::fs::PermissionsExt;
+    for (d, mode) in [
+        ("processing", 0o750),
+        ("quarantine", 0o750),
+        ("state", 0o700),
+    ] {
+        std::fs::set_permissions(ws.folder(d), std::fs::Permissions::from_mode(mode))
+            .map_err(io(format!("chmod {d}")))?;
+    }
+    crate::fsx::write_atomic(dir, CONFIG_FILE, cfg_text.as_bytes(), Some(0o640))
+        .map_err(io(format!("write {}", ws.config_file().display())))?;
+    let store = Store::open(&ws.state(), &cfg.store)?;
+    let audit = AuditRecord::new(by, "init").detail(serde_json::json!({
+        "vendors": vendors,
+        "trusted_items": items.len(),
+        "trusted_source": source,
+        "classes": meta.classes,
+        "features": meta.features.len(),
+    }));
+    store.initialise(&meta, &items, audit)?;
+    Ok(items.len())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn remote_filesystems_are_told_apart_from_local_ones() {
+        // The one magic number rustix exports, against the table written from memory.
+        assert_eq!(
+            REMOTE_FILESYSTEMS[0].0,
+            (rustix::fs::NFS_SUPER_MAGIC as u64) & 0xFFFF_FFFF
+        );
+        // The test machine's temporary folder is local (ext4, xfs, btrfs, tmpfs or overlayfs).
+        let d = tempfile::tempdir().unwrap();
+        assert_eq!(remote_filesystem(d.path()), None);
+        assert_eq!(remote_filesystem(Path::new("/no/such/folder")), None);
+    }
+}
