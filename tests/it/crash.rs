@@ -51,6 +51,16 @@ fn sigkill_at_random_moments_loses_nothing_and_repeats_nothing() {
             k += 1;
             std::thread::sleep(Duration::from_millis(rng.random_range(10..120)));
         }
+        // Every other round waits until a batch of this round is claimed (polling processing/) and kills
+        // then, so that the recovery paths run whatever the machine's load; the other rounds kill blind.
+        if round % 2 == 1 {
+            let watch = Instant::now();
+            while watch.elapsed() < Duration::from_secs(20)
+                && processing().difference(&in_processing_before).count() == 0
+            {
+                std::thread::sleep(Duration::from_millis(1));
+            }
+        }
         d.kill();
         // Work in flight at the kill: a file this round claimed into processing/ and had not filed.
         let in_flight = processing().difference(&in_processing_before).count() > 0;
