@@ -10,6 +10,7 @@ pub mod bench;
 pub mod config_cmd;
 pub mod demo;
 pub mod init;
+pub mod pool;
 pub mod quarantine;
 pub mod run;
 pub mod trusted;

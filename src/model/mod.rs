@@ -35,6 +35,7 @@ pub mod learner;
 pub mod linalg;
 pub mod repair;
 pub mod summary;
+pub mod sweep;
 
 #[cfg(test)]
 mod tests;
@@ -48,6 +49,7 @@ pub use repair::{
     assess, Assessment, Convergence, ItemScore, PoolInput, Timings, TrustedInput, TrustedItemReport,
 };
 pub use summary::{PoolSummary, PoolTerm};
+pub use sweep::{SweepItem, SweepScorer};
 
 /// Which feature map the learner uses on top of the standardised features.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]

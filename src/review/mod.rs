@@ -59,6 +59,7 @@ mod drift;
 mod page;
 mod projection;
 mod rescan;
+mod sweep;
 mod show;
 mod trusted;
 
@@ -67,6 +68,7 @@ pub use drift::*;
 pub use page::*;
 pub use projection::*;
 pub use rescan::*;
+pub use sweep::*;
 pub use show::*;
 pub use trusted::*;
 
@@ -319,6 +321,8 @@ pub enum Request {
     TrustedExport,
     /// Reset a vendor's drift statistic.
     DriftReset(DriftResetRequest),
+    /// Debug every accepted item against the current trusted set.
+    PoolSweep(SweepRequest),
     /// Re-score recently accepted batches against the current trusted set.
     Rescan {
         /// Who asked.
@@ -368,6 +372,7 @@ pub fn handle(env: &ReviewEnv<'_>, req: Request) -> Result<serde_json::Value, Re
         }),
         Request::DriftReset(r) => json(drift_reset(env, &r)?),
         Request::Rescan { by } => json(rescan(env, &by)?),
+        Request::PoolSweep(r) => json(pool_sweep(env, &r)?),
         Request::Audit {
             since,
             vendor,

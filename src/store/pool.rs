@@ -16,6 +16,20 @@ impl Store {
             .collect()
     }
 
+    /// Visit every pool entry in sequence order, one decoded entry at a time (memory follows the largest
+    /// entry, not the pool); the first error from `f` stops the walk and is returned.
+    pub fn for_each_pool_entry<E: From<StoreError>>(
+        &self,
+        mut f: impl FnMut(u64, PoolEntry) -> Result<(), E>,
+    ) -> Result<(), E> {
+        for kv in self.trees[T_POOL].iter() {
+            let (k, v) = kv.map_err(StoreError::sled("scan pool"))?;
+            let seq = u64_of(Some(k));
+            f(seq, PoolEntry::decode(&seq.to_string(), &v)?)?;
+        }
+        Ok(())
+    }
+
     /// Sequence numbers of the pool entries after `after`, in order (keys only; nothing is decoded).
     pub fn pool_seqs_after(&self, after: u64) -> Result<Vec<u64>, StoreError> {
         self.trees[T_POOL]

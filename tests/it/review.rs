@@ -10,7 +10,7 @@
 //! every test through `validate_notices`, plus `schema_validator_rejects_bad_notices` and the OWASP
 //! cases in `src/notice.rs`; (5) `check_page` inside (1).
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 use std::path::Path;
 use std::process::Output;
 use std::time::{Duration, Instant};
@@ -1017,6 +1017,135 @@ fn trusted_correction_rescan_flags_an_accepted_batch_and_withdraw_pulls_it() {
         .join("north-sort")
         .join(format!("{sid}.withdrawn.json"))
         .exists());
+}
+
+#[test]
+fn pool_sweep_lists_a_bias_accepted_from_day_one_once_the_trusted_set_is_right() {
+    // As above, the lab's first trusted set shares a vendor's systematic error, so the vendor's biased
+    // batch is accepted on its first delivery, beside a clean batch from another vendor. After the lab
+    // corrects its trusted items, `pool sweep` — live through the daemon and on the stopped store — puts
+    // the biased batch first among the batches worth withdrawing, finds its relabelled items, and leaves
+    // the clean batch alone.
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path().join("ws");
+    let (cardboard, glass, paper, pet, pp, steel) = (1, 2, 4, 5, 6, 7);
+    let (tx, ty) = plant().sample_per_class(20, 777);
+    let ids = scenario::item_ids("lab", ty.len());
+    let (wrong, _) = systematic(&tx, &ty, pet, pp);
+    let (wrong, _) = systematic(&tx, &wrong, glass, steel);
+    let (wrong, _) = systematic(&tx, &wrong, paper, cardboard);
+    let write = |name: &str, labels: &[usize]| {
+        let b = Batch {
+            ids: ids.clone(),
+            labels: labels.to_vec(),
+            x: tx.clone(),
+            flipped: vec![false; labels.len()],
+        };
+        let p = tmp.path().join(name);
+        std::fs::write(&p, b.csv()).unwrap();
+        p.display().to_string()
+    };
+    let first = write("trusted-v1.csv", &wrong);
+    let fixed = write("trusted-v2.csv", &ty);
+    let dir_s = dir.display().to_string();
+    let out = lw(&[
+        "init", &dir_s, "--trusted", &first, "--vendor", "north-sort", "--vendor", "east-bale", "--by",
+        "lab",
+    ]);
+    assert!(out.status.success(), "{}", stderr(&out));
+    let ws = Ws { tmp, dir };
+    ws.edit_config(&[
+        ("quiet_period_ms = 2000", "quiet_period_ms = 150"),
+        ("rescan_interval_secs = 60", "rescan_interval_secs = 1"),
+        ("min_free_bytes = 67108864", "min_free_bytes = 1"),
+    ]);
+    let d = Daemon::start(&ws);
+    let (x, y) = plant().sample_per_class(50, 32);
+    let (labels, m1) = systematic(&x, &y, pet, pp);
+    let (labels, m2) = systematic(&x, &labels, glass, steel);
+    let (labels, m3) = systematic(&x, &labels, paper, cardboard);
+    let mask: Vec<bool> = (0..labels.len()).map(|i| m1[i] || m2[i] || m3[i]).collect();
+    let sys_ids = scenario::item_ids("s1", 400);
+    let planted: HashSet<String> = sys_ids
+        .iter()
+        .zip(&mask)
+        .filter(|(_, m)| **m)
+        .map(|(id, _)| id.clone())
+        .collect();
+    let sys = Batch {
+        ids: sys_ids,
+        labels,
+        x,
+        flipped: mask,
+    };
+    ws.deliver("north-sort", "s1.csv", &sys.csv());
+    ws.wait_settled(1, T);
+    ws.deliver("east-bale", "c1.csv", &clean_batch("c1", 400, 33).csv());
+    ws.wait_settled(2, T);
+    wait_filed(&dir_s, 2);
+    let accepted: Vec<String> = ws
+        .files_in("accepted")
+        .iter()
+        .map(|f| f.split('.').next().unwrap().to_string())
+        .collect();
+    let name_of = |id: &str| {
+        ok_json(&["quarantine", "show", &dir_s, id, "--json", "--no-html"])["batch"]["original_name"]
+            .as_str()
+            .unwrap()
+            .to_string()
+    };
+    let sid = accepted.iter().find(|id| name_of(id) == "s1.csv");
+    let cid = accepted.iter().find(|id| name_of(id) == "c1.csv");
+    let (Some(sid), Some(cid)) = (sid.cloned(), cid.cloned()) else {
+        panic!("both batches should be accepted; accepted {accepted:?}");
+    };
+    let out = lw(&[
+        "trusted", "add", &dir_s, &fixed, "--replace", "--by", "lab", "--source", "corrected", "--json",
+    ]);
+    assert!(out.status.success(), "{}", stderr(&out));
+    let check = |out: &Output| {
+        assert_eq!(out.status.code(), Some(1), "{}", stderr(out));
+        let r: Value = serde_json::from_slice(&out.stdout).unwrap();
+        assert_eq!(r["items"], 800, "{r}");
+        let withdraw: Vec<&str> = r["withdraw"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|v| v.as_str().unwrap())
+            .collect();
+        assert_eq!(withdraw, vec![sid.as_str()], "{r}");
+        let batches = r["batches"].as_array().unwrap();
+        assert_eq!(batches[0]["batch_id"], sid.as_str());
+        let clean = batches.iter().find(|b| b["batch_id"] == cid.as_str()).unwrap();
+        assert_eq!(clean["withdraw_candidate"], false);
+        // Most of the biased batch's suspects are the planted items, and the clean batch has few.
+        let top = batches[0]["top"].as_array().unwrap();
+        assert!(
+            top.iter().all(|s| planted.contains(s["id"].as_str().unwrap())),
+            "{top:?}"
+        );
+        let s_susp = batches[0]["suspects"].as_u64().unwrap() as f64;
+        assert!(s_susp >= 0.5 * planted.len() as f64, "{}", batches[0]);
+        assert!(
+            clean["suspect_share"].as_f64().unwrap() < 0.1,
+            "{clean}"
+        );
+        assert!(r["note"].as_str().unwrap().contains("not proof"));
+    };
+    // Live, through the daemon's admin socket.
+    check(&lw(&["pool", "sweep", &dir_s, "--json", "--top", "5"]));
+    assert!(d.stop().success());
+    // On the stopped store; the text view names the batch and the command to act.
+    check(&lw(&["pool", "sweep", &dir_s, "--json", "--top", "5"]));
+    let text = lw(&["pool", "sweep", &dir_s]);
+    let text = String::from_utf8_lossy(&text.stdout).into_owned();
+    assert!(text.contains(&format!("worth withdrawing: {sid}")), "{text}");
+    let store = ws.store();
+    let audits = store.audit_since(0).unwrap();
+    assert_eq!(
+        audits.iter().filter(|a| a.action == "pool_sweep").count(),
+        3
+    );
 }
 
 // ------------------------------------------------------------------------------------------------
