@@ -232,3 +232,97 @@ fn default_cusum_design_has_the_published_run_lengths() {
         }
     }
 }
+
+/// A vendor's history through the public API: cold start ends after exactly `min_history` accepted batches;
+/// the CUSUM starts there (at `h/2` with the head start, at 0 without) and never during cold start; a
+/// high cost after cold start raises the CUSUM and is held aside instead of joining the baseline; the
+/// baseline and the held-aside values are each capped at `history_window`. Found by mutation testing
+/// (`.ci/mutants policy`): the library's tests missed `<` → `<=` and `>=` → `<` at the cold-start boundary
+/// and `>` → `==` / `>=` in the two caps of `record_value`.
+#[test]
+fn vendor_history_leaves_cold_start_after_min_history_and_holds_high_costs_aside() {
+    let cost = |c: f64| BatchSignals {
+        repair_cost: c,
+        damage: 0.0,
+        flagged_share: f64::NAN, // the repair cost only
+        mean_suspicion: 0.0,
+        items: 100,
+        pool_items: 0,
+        expected_flagged_share: 0.0,
+        expected_flagged_sd: 0.0,
+        expected_damage: 0.0,
+        expected_damage_sd: 0.0,
+    };
+    let clean = [0.10, 0.11, 0.09, 0.10, 0.12, 0.08, 0.10, 0.11];
+    for head_start in [false, true] {
+        let s = PolicySettings {
+            cusum_head_start: head_start,
+            ..PolicySettings::default()
+        };
+        assert_eq!(
+            s.min_history,
+            clean.len(),
+            "the defaults this test is written for"
+        );
+        let mut h = VendorHistory::default();
+        for (i, c) in clean.iter().enumerate() {
+            assert!(h.is_cold(&s), "cold before batch {}", i + 1);
+            assert_eq!(h.cusum, 0.0, "no CUSUM during cold start (batch {})", i + 1);
+            h.record_accepted(&s, &cost(*c));
+        }
+        assert!(!h.is_cold(&s), "warm after exactly min_history batches");
+        assert_eq!(h.accepted_costs.len(), clean.len());
+        let start = if head_start { s.cusum_h / 2.0 } else { 0.0 };
+        assert_eq!(h.cusum, start, "head start {head_start}");
+        // A high cost after cold start: judged against the baseline, held aside, CUSUM raised.
+        h.record_accepted(&s, &cost(0.5));
+        assert!(h.cusum > start, "CUSUM {} after a high cost", h.cusum);
+        assert_eq!(
+            h.accepted_costs.len(),
+            clean.len(),
+            "the baseline is unchanged"
+        );
+        assert_eq!(h.pending_costs, [0.5], "the high cost is held aside");
+    }
+    // The baseline and the held-aside values keep at most `history_window` each, the newest.
+    let s = PolicySettings {
+        min_history: 3,
+        history_window: 4,
+        ..PolicySettings::default()
+    };
+    let mut h = VendorHistory::default();
+    // After cold start each is at or below the baseline median: the CUSUM stays 0, every value joins the
+    // baseline.
+    let steady = [0.10, 0.11, 0.09, 0.10, 0.09, 0.09];
+    for c in steady {
+        h.record_accepted(&s, &cost(c));
+    }
+    assert_eq!(h.cusum, 0.0, "steady costs raise no CUSUM");
+    assert_eq!(h.accepted_costs, &steady[steady.len() - 4..]);
+    let mut h = VendorHistory::default();
+    for c in [0.10, 0.11, 0.09] {
+        h.record_accepted(&s, &cost(c));
+    }
+    let high = [0.5, 0.55, 0.6, 0.65, 0.7, 0.75];
+    for c in high {
+        h.record_accepted(&s, &cost(c));
+    }
+    assert!(h.cusum > 0.0);
+    assert_eq!(h.accepted_costs, [0.10, 0.11, 0.09]);
+    assert_eq!(h.pending_costs, &high[high.len() - 4..]);
+}
+
+/// The median the baselines use, on odd and even samples with distinct middle values (the usual definition:
+/// the middle value, or the mean of the two middle values; common practice, no one source). The library's
+/// worked examples all had equal middle values, so mutation testing (`.ci/mutants policy`) found `n % 2`
+/// replaced by `n / 2` or `n + 2` in `policy::median` unnoticed; each gives another value here.
+#[test]
+fn median_of_odd_and_even_samples() {
+    use labelweir::policy::median;
+    assert_eq!(median(&[3.0]), 3.0);
+    assert_eq!(median(&[10.0, 1.0, 2.0]), 2.0);
+    assert_eq!(median(&[100.0, 4.0, 1.0, 3.0, 2.0]), 3.0);
+    assert_eq!(median(&[5.0, 1.0]), 3.0);
+    assert_eq!(median(&[10.0, 1.0, 3.0, 2.0]), 2.5);
+    assert_eq!(median(&[]), 0.0);
+}
