@@ -650,7 +650,7 @@ pub(super) fn finish_moves(env: &ReviewEnv<'_>) -> Result<usize, ReviewError> {
 /// the folder its state calls for, and write each notice still pending in its record (an outbox: the
 /// notice is stored in the same transaction as the decision, so it cannot be lost). Returns how many
 /// moves and notices it did. Run by every review command and at the daemon's start.
-pub fn finish_pending(
+pub(crate) fn finish_pending(
     ws: &Workspace,
     config: &Config,
     store: &Store,

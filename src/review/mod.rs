@@ -23,7 +23,7 @@
 //! the file moves out of `quarantine/` (release → `accepted/`, reject and withdraw → `rejected/`, with its
 //! report), then the vendor notice is written (and recorded in the audit trail). The notice is stored with
 //! the decision, in the same transaction (an outbox), so if the process dies in between, the next review
-//! command or daemon start finishes the move and sends the notice ([`finish_pending`]).
+//! command or daemon start finishes the move and sends the notice (`finish_pending`).
 //!
 //! # Trusted set
 //!
@@ -65,17 +65,17 @@ mod trusted;
 pub use decide::*;
 pub use drift::*;
 pub use page::*;
-pub use projection::*;
+use projection::*;
 pub use rescan::*;
 pub use show::*;
 pub use trusted::*;
 
 /// Pools up to this many items are re-scored exactly (pool minus the batch); larger ones through the
 /// saved pool summary (which still contains the batch: the re-check is then conservative).
-pub const RESCORE_EXACT_POOL_MAX: u64 = 50_000;
+pub(crate) const RESCORE_EXACT_POOL_MAX: u64 = 50_000;
 
 /// Most points drawn per group in the HTML projection.
-pub const PROJECTION_MAX_POINTS: usize = 4000;
+pub(crate) const PROJECTION_MAX_POINTS: usize = 4000;
 
 // ------------------------------------------------------------------------------------------------
 // Errors and environment
@@ -132,7 +132,7 @@ impl ReviewError {
     }
 
     /// Rebuild from a kind and message (the admin client's side).
-    pub fn from_kind(kind: &str, message: String) -> Self {
+    pub(crate) fn from_kind(kind: &str, message: String) -> Self {
         match kind {
             "not_found" => Self::NotFound(message),
             "refused" => Self::Refused(message),

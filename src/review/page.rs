@@ -25,7 +25,7 @@ pub(super) fn suspicion_colour(s: Option<f64>) -> String {
 }
 
 /// The review page's file name, beside the batch's report: `<batch id>.review.html`.
-pub fn page_name(batch_id: &str) -> String {
+pub(crate) fn page_name(batch_id: &str) -> String {
     format!("{batch_id}.review.html")
 }
 

@@ -12,7 +12,7 @@ use super::*;
 /// Gram–Schmidt). `λ_i = v_iᵀ C v_i`; the explained share is `λ_i / tr C` with `tr C = Σ_ij z̄_ij² / n`.
 ///
 /// Returns `(axes as a d × 2 matrix, [λ₁, λ₂], tr C, column means)`.
-pub fn principal_axes(z: ArrayView2<'_, f64>) -> (Array2<f64>, [f64; 2], f64, Array1<f64>) {
+pub(crate) fn principal_axes(z: ArrayView2<'_, f64>) -> (Array2<f64>, [f64; 2], f64, Array1<f64>) {
     let (n, d) = z.dim();
     let mean = if n > 0 {
         z.mean_axis(Axis(0)).unwrap_or_else(|| Array1::zeros(d))

@@ -39,7 +39,7 @@ pub struct RescanReport {
 /// Re-score the most recently accepted batches (`[trusted] rescore_lookback_batches` /
 /// `rescore_lookback_days`) against the current trusted set and report those the policy would now
 /// quarantine. Each batch is scored against the pool *without* its own items when the pool has at most
-/// [`RESCORE_EXACT_POOL_MAX`] items (exact mode), else against the saved pool summary. Nothing is
+/// 50,000 items (exact mode), else against the saved pool summary. Nothing is
 /// changed: withdrawing a batch is a reviewer's decision.
 pub fn rescan(env: &ReviewEnv<'_>, by: &str) -> Result<RescanReport, ReviewError> {
     let s = &env.config.trusted;

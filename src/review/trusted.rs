@@ -70,7 +70,7 @@ pub fn balance(classes: &[String], items: &[TrustedItem], settings: &TrustedSett
 /// * with `max_age_days > 0`, items verified more than that many days before `now`, while the class
 ///   keeps more than `min_items_per_class` items;
 /// * with `max_items_per_class > 0`, the oldest items beyond that many per class.
-pub fn window_removals(
+pub(crate) fn window_removals(
     items: &[TrustedItem],
     settings: &TrustedSettings,
     now: DateTime<Utc>,
