@@ -29,29 +29,15 @@
 //!
 //! Only these functions write trusted items (through [`Store::update_trusted`]); nothing on the ingest
 //! path can. Each item keeps its provenance (who verified it, when, from what source). After every change
-//! the rolling window ([`TrustedSettings`]) is applied, class balance is checked, and the most recently
+//! the rolling window ([`crate::config::TrustedSettings`]) is applied, class balance is checked, and the most recently
 //! accepted batches are re-scored against the new set ([`rescan`]); batches that would now be
 //! quarantined are reported with the command that pulls them out of the pool (`quarantine withdraw`).
 
-use std::collections::{BTreeMap, HashMap, HashSet};
-use std::path::{Path, PathBuf};
-
-use chrono::{DateTime, Duration as ChronoDuration, SecondsFormat, Utc};
-use ndarray::{Array1, Array2, ArrayView2, Axis};
+use chrono::{DateTime, Utc};
 use serde::{Deserialize, Serialize};
 
-use crate::config::{Config, TrustedSettings};
-use crate::data::{self, Classes, Format, Table};
-use crate::model::{self, PoolInput, TrustedInput};
-use crate::notice::{
-    self, item_codes, BatchRef, DecidedBy, Notice, NoticeItem, NoticeReason, NoticeVerdict,
-};
-use crate::policy::{self, Baseline, Reason, Verdict};
-use crate::store::{
-    AuditRecord, BatchRecord, BatchState, PoolChange, PoolEntry, Store, StoreError, TrustedItem,
-    WorkspaceMeta, RECORD_VERSION,
-};
-use crate::text::html_escape;
+use crate::config::Config;
+use crate::store::{AuditRecord, Store, StoreError, TrustedItem, WorkspaceMeta};
 use crate::workspace::Workspace;
 
 mod decide;
@@ -401,7 +387,12 @@ pub fn audit(
 mod tests {
     use super::*;
     use approx::assert_relative_eq;
-    use chrono::TimeZone;
+    use chrono::{Duration as ChronoDuration, TimeZone};
+    use ndarray::{Array2, Axis};
+
+    use crate::config::TrustedSettings;
+    use crate::notice;
+    use crate::store::{BatchRecord, BatchState};
 
     fn item(id: &str, label: &str, days_ago: i64, now: DateTime<Utc>) -> TrustedItem {
         TrustedItem {

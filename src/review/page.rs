@@ -1,6 +1,14 @@
 //! The self-contained review page: HTML with an inline SVG projection, no scripts, nothing loaded.
 
-use super::*;
+use std::path::PathBuf;
+
+use chrono::SecondsFormat;
+
+use crate::store::BatchRecord;
+use crate::text::html_escape;
+use crate::workspace::Workspace;
+
+use super::{folder_for_state, Projection, ShowReport};
 
 /// Colour for a suspicion in `[0, 1]`: a linear blend from blue (`#2166ac`, low) to red (`#b2182b`,
 /// high); grey when unknown.

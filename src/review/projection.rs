@@ -1,7 +1,14 @@
 //! The 2-D projection of a batch beside the trusted items on the review page (principal axes by power
 //! iteration).
 
-use super::*;
+use std::collections::HashMap;
+
+use ndarray::{Array1, Array2, ArrayView2, Axis};
+
+use crate::data::Table;
+use crate::store::{TrustedItem, WorkspaceMeta};
+
+use super::{ProjectedPoint, Projection, ReviewError, PROJECTION_MAX_POINTS};
 
 /// The two leading principal axes of the rows of `z` (standardised features), by power iteration.
 ///

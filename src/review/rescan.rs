@@ -1,6 +1,16 @@
 //! Re-scoring the most recently accepted batches after the trusted set changed.
 
-use super::*;
+use chrono::{DateTime, Duration as ChronoDuration, Utc};
+use ndarray::Array2;
+use serde::{Deserialize, Serialize};
+
+use crate::model;
+use crate::model::{PoolInput, TrustedInput};
+use crate::policy;
+use crate::policy::Verdict;
+use crate::store::{AuditRecord, BatchState};
+
+use super::{ReviewEnv, ReviewError, RESCORE_EXACT_POOL_MAX};
 
 /// One re-checked batch.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
