@@ -258,7 +258,7 @@ fn invalid(key: &str, message: impl Into<String>) -> ConfigError {
 
 /// Whether a vendor name is acceptable as a folder name and a metric label value:
 /// 1–64 characters from `a-z 0-9 _ -`, starting with a letter or digit, and not `tmp`.
-pub fn valid_vendor_name(name: &str) -> bool {
+pub(crate) fn valid_vendor_name(name: &str) -> bool {
     let b = name.as_bytes();
     !b.is_empty()
         && b.len() <= 64
@@ -307,7 +307,7 @@ impl Config {
     /// daemon cannot reload them: `vendors`, `[http]`, `[schema]`, `[store]`, `[pool]`, `[model]` (the pool
     /// summary and the scores already recorded depend on it) and `ingest.watcher`, `ingest.poll_interval_ms`
     /// and `ingest.queue_capacity`. `[policy]`, `[notices]`, `[trusted]` and the rest of `[ingest]` reload.
-    pub fn restart_only_changes(&self, new: &Config) -> Vec<&'static str> {
+    pub(crate) fn restart_only_changes(&self, new: &Config) -> Vec<&'static str> {
         let mut out = Vec::new();
         let mut check = |differs: bool, name: &'static str| {
             if differs {
@@ -446,7 +446,7 @@ impl Config {
     }
 
     /// The metrics listen address.
-    pub fn listen_addr(&self) -> Result<SocketAddr, ConfigError> {
+    pub(crate) fn listen_addr(&self) -> Result<SocketAddr, ConfigError> {
         self.http.listen.parse().map_err(|_| {
             invalid(
                 "http.listen",
@@ -480,7 +480,7 @@ impl Config {
 
 /// The shipped configuration text with the `vendors = [...]` line set to the given vendors (what
 /// `labelweir init` writes).
-pub fn render_with_vendors(vendors: &[String]) -> String {
+pub(crate) fn render_with_vendors(vendors: &[String]) -> String {
     let list = vendors
         .iter()
         .map(|v| format!("{v:?}"))

@@ -18,7 +18,7 @@ pub fn call(
 }
 
 /// [`call`] on an explicit socket path.
-pub fn call_at(
+pub(crate) fn call_at(
     path: &Path,
     req: &Request,
 ) -> Result<Option<Result<serde_json::Value, ReviewError>>, AdminError> {

@@ -11,7 +11,7 @@
 //! * **Protocol**: one request per connection, one JSON object per line each way. The request is a
 //!   [`Request`] (tagged by `op`); the response is [`Response`] — `{"ok": true, "result": ...}` or
 //!   `{"ok": false, "error": {"kind": ..., "message": ...}}`. A request line may be at most
-//!   [`MAX_REQUEST_BYTES`] long.
+//!   64 MiB long.
 //! * **Threads**: each request runs on its own short-lived thread (review operations read files, use the
 //!   store and may re-score batches), never on the runtime's worker threads; the async side only moves
 //!   bytes.
@@ -29,16 +29,16 @@ use crate::review::ReviewError;
 pub mod client;
 pub mod server;
 
-pub use client::{call, call_at, daemon_answers};
+pub use client::{call, daemon_answers};
 
 /// Longest request line accepted (a `trusted add` carries its file): 64 MiB.
-pub const MAX_REQUEST_BYTES: usize = 64 * 1024 * 1024;
+pub(crate) const MAX_REQUEST_BYTES: usize = 64 * 1024 * 1024;
 
 /// Permissions of the socket file: owner and group may connect.
-pub const SOCKET_MODE: u32 = 0o660;
+pub(crate) const SOCKET_MODE: u32 = 0o660;
 
 /// How long a client waits for an answer (a trusted-set change re-scores recent batches).
-pub const CLIENT_TIMEOUT: Duration = Duration::from_secs(900);
+pub(crate) const CLIENT_TIMEOUT: Duration = Duration::from_secs(900);
 
 /// An error on the wire.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -64,7 +64,7 @@ pub struct Response {
 
 impl Response {
     /// The response for an operation's result.
-    pub fn from_result(r: Result<serde_json::Value, ReviewError>) -> Self {
+    pub(crate) fn from_result(r: Result<serde_json::Value, ReviewError>) -> Self {
         match r {
             Ok(v) => Self {
                 ok: true,

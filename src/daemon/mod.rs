@@ -1,6 +1,6 @@
-//! The watching daemon, the composition root: it opens the workspace ([`startup`]), starts the pipeline
+//! The watching daemon, the composition root: it opens the workspace (`startup`), starts the pipeline
 //! threads (`pipeline`), the HTTP server, the admin socket ([`crate::admin::server`]), SIGHUP
-//! reloads ([`reload`]) and housekeeping ([`housekeeping`]), feeds systemd's [`watchdog`], and stops them
+//! reloads (`reload`) and housekeeping (`housekeeping`), feeds systemd's `watchdog`, and stops them
 //! in order.
 //!
 //! [`run`] runs until its `shutdown` future resolves (the CLI passes "first SIGINT or SIGTERM"; tests pass a
@@ -44,12 +44,12 @@ use crate::review::ReviewHooks;
 use crate::store::{Store, StoreError, WorkspaceMeta};
 use crate::workspace::{Workspace, WorkspaceError};
 
-pub mod housekeeping;
-pub mod reload;
-pub mod startup;
-pub mod watchdog;
+mod housekeeping;
+mod reload;
+mod startup;
+mod watchdog;
 
-pub use watchdog::{Ping, Watchdog};
+use watchdog::{Ping, Watchdog};
 
 /// Why the daemon stopped with an error. The binary picks the exit code from [`DaemonError::kind`].
 #[derive(Debug, thiserror::Error)]

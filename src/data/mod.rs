@@ -33,14 +33,13 @@
 //! Ids and labels must not contain control characters (they end up in notices, logs and terminals);
 //! [`crate::text::sanitize`] is still applied wherever a vendor string is printed.
 
-use std::collections::{HashMap, HashSet};
 use std::fmt;
-use std::io::{Read, Write};
+use std::io::Read;
 use std::path::Path;
 
-use ndarray::{Array2, ArrayView2};
+use ndarray::Array2;
 
-use crate::text::{is_unsafe_char, quote_for_message};
+use crate::text::quote_for_message;
 
 mod parse;
 mod write;

@@ -1,7 +1,14 @@
 //! The readers: a table builder that checks the header, ids, labels and values as they come, and the two
 //! formats (CSV, JSON Lines) feeding it.
 
-use super::*;
+use std::collections::{HashMap, HashSet};
+use std::fmt;
+
+use ndarray::Array2;
+
+use crate::text::{is_unsafe_char, quote_for_message};
+
+use super::{DataError, DataErrorKind, Table, TableOptions};
 
 /// Collects rows in file column order, checking ids as they come.
 pub(super) struct Builder<'a> {

@@ -1,6 +1,8 @@
 //! The writers: a table as CSV or JSON Lines (the demo, the fixtures, `trusted export`).
 
-use super::*;
+use std::io::Write;
+
+use ndarray::ArrayView2;
 
 /// Shortest text that parses back to exactly `v` (Rust's `Debug` for `f64` round-trips and switches to
 /// exponent notation for very large and very small magnitudes; the text is valid CSV and JSON).

@@ -1,7 +1,28 @@
 //! Review decisions: release, reject, withdraw; their file moves and vendor notices, and finishing what a
 //! crash interrupted.
 
-use super::*;
+use std::collections::{HashMap, HashSet};
+use std::path::PathBuf;
+
+use chrono::Utc;
+use serde::{Deserialize, Serialize};
+
+use crate::config::Config;
+use crate::data::{Classes, Table};
+use crate::notice;
+use crate::notice::{
+    item_codes, BatchRef, DecidedBy, Notice, NoticeItem, NoticeReason, NoticeVerdict,
+};
+use crate::policy::Verdict;
+use crate::store::{
+    AuditRecord, BatchRecord, BatchState, PoolChange, PoolEntry, Store, TrustedItem, RECORD_VERSION,
+};
+use crate::workspace::Workspace;
+
+use super::{
+    folder_for_state, get_batch, io_err, page_name, read_batch_table, RejectRequest,
+    ReleaseRequest, ReviewEnv, ReviewError, WithdrawRequest,
+};
 
 /// What a decision did.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -650,7 +671,7 @@ pub(super) fn finish_moves(env: &ReviewEnv<'_>) -> Result<usize, ReviewError> {
 /// the folder its state calls for, and write each notice still pending in its record (an outbox: the
 /// notice is stored in the same transaction as the decision, so it cannot be lost). Returns how many
 /// moves and notices it did. Run by every review command and at the daemon's start.
-pub fn finish_pending(
+pub(crate) fn finish_pending(
     ws: &Workspace,
     config: &Config,
     store: &Store,

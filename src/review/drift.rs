@@ -7,7 +7,11 @@
 //! history it read before the reset; the report names the statistics as they were reset, and a second
 //! reset is harmless.
 
-use super::*;
+use serde::{Deserialize, Serialize};
+
+use crate::store::AuditRecord;
+
+use super::{caller_detail, require_by, require_reason, ReviewEnv, ReviewError};
 
 /// `vendor reset-drift`: who resets which vendor's drift statistic, and why.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -76,8 +80,12 @@ pub fn drift_reset(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::config::Config;
     use crate::policy::VendorHistory;
+    use crate::review::{handle, page_path, Caller, NoHooks, Request};
     use crate::scenario::{self, Plant};
+    use crate::store::{BatchRecord, BatchState, Store, WorkspaceMeta};
+    use crate::workspace::Workspace;
 
     /// A workspace of the recycling plant with vendor `v` (store open, daemon stopped).
     fn workspace(dir: &std::path::Path) -> (Workspace, Config, Store, WorkspaceMeta) {

@@ -23,35 +23,21 @@
 //! the file moves out of `quarantine/` (release → `accepted/`, reject and withdraw → `rejected/`, with its
 //! report), then the vendor notice is written (and recorded in the audit trail). The notice is stored with
 //! the decision, in the same transaction (an outbox), so if the process dies in between, the next review
-//! command or daemon start finishes the move and sends the notice ([`finish_pending`]).
+//! command or daemon start finishes the move and sends the notice (`finish_pending`).
 //!
 //! # Trusted set
 //!
 //! Only these functions write trusted items (through [`Store::update_trusted`]); nothing on the ingest
 //! path can. Each item keeps its provenance (who verified it, when, from what source). After every change
-//! the rolling window ([`TrustedSettings`]) is applied, class balance is checked, and the most recently
+//! the rolling window ([`crate::config::TrustedSettings`]) is applied, class balance is checked, and the most recently
 //! accepted batches are re-scored against the new set ([`rescan`]); batches that would now be
 //! quarantined are reported with the command that pulls them out of the pool (`quarantine withdraw`).
 
-use std::collections::{BTreeMap, HashMap, HashSet};
-use std::path::{Path, PathBuf};
-
-use chrono::{DateTime, Duration as ChronoDuration, SecondsFormat, Utc};
-use ndarray::{Array1, Array2, ArrayView2, Axis};
+use chrono::{DateTime, Utc};
 use serde::{Deserialize, Serialize};
 
-use crate::config::{Config, TrustedSettings};
-use crate::data::{self, Classes, Format, Table};
-use crate::model::{self, PoolInput, TrustedInput};
-use crate::notice::{
-    self, item_codes, BatchRef, DecidedBy, Notice, NoticeItem, NoticeReason, NoticeVerdict,
-};
-use crate::policy::{self, Baseline, Reason, Verdict};
-use crate::store::{
-    AuditRecord, BatchRecord, BatchState, PoolChange, PoolEntry, Store, StoreError, TrustedItem,
-    WorkspaceMeta, RECORD_VERSION,
-};
-use crate::text::html_escape;
+use crate::config::Config;
+use crate::store::{AuditRecord, Store, StoreError, TrustedItem, WorkspaceMeta};
 use crate::workspace::Workspace;
 
 mod decide;
@@ -66,7 +52,7 @@ mod trusted;
 pub use decide::*;
 pub use drift::*;
 pub use page::*;
-pub use projection::*;
+use projection::*;
 pub use rescan::*;
 pub use sweep::*;
 pub use show::*;
@@ -74,10 +60,10 @@ pub use trusted::*;
 
 /// Pools up to this many items are re-scored exactly (pool minus the batch); larger ones through the
 /// saved pool summary (which still contains the batch: the re-check is then conservative).
-pub const RESCORE_EXACT_POOL_MAX: u64 = 50_000;
+pub(crate) const RESCORE_EXACT_POOL_MAX: u64 = 50_000;
 
 /// Most points drawn per group in the HTML projection.
-pub const PROJECTION_MAX_POINTS: usize = 4000;
+pub(crate) const PROJECTION_MAX_POINTS: usize = 4000;
 
 // ------------------------------------------------------------------------------------------------
 // Errors and environment
@@ -134,7 +120,7 @@ impl ReviewError {
     }
 
     /// Rebuild from a kind and message (the admin client's side).
-    pub fn from_kind(kind: &str, message: String) -> Self {
+    pub(crate) fn from_kind(kind: &str, message: String) -> Self {
         match kind {
             "not_found" => Self::NotFound(message),
             "refused" => Self::Refused(message),
@@ -406,7 +392,12 @@ pub fn audit(
 mod tests {
     use super::*;
     use approx::assert_relative_eq;
-    use chrono::TimeZone;
+    use chrono::{Duration as ChronoDuration, TimeZone};
+    use ndarray::{Array2, Axis};
+
+    use crate::config::TrustedSettings;
+    use crate::notice;
+    use crate::store::{BatchRecord, BatchState};
 
     fn item(id: &str, label: &str, days_ago: i64, now: DateTime<Utc>) -> TrustedItem {
         TrustedItem {

@@ -1,6 +1,14 @@
 //! The self-contained review page: HTML with an inline SVG projection, no scripts, nothing loaded.
 
-use super::*;
+use std::path::PathBuf;
+
+use chrono::SecondsFormat;
+
+use crate::store::BatchRecord;
+use crate::text::html_escape;
+use crate::workspace::Workspace;
+
+use super::{folder_for_state, Projection, ShowReport};
 
 /// Colour for a suspicion in `[0, 1]`: a linear blend from blue (`#2166ac`, low) to red (`#b2182b`,
 /// high); grey when unknown.
@@ -25,7 +33,7 @@ pub(super) fn suspicion_colour(s: Option<f64>) -> String {
 }
 
 /// The review page's file name, beside the batch's report: `<batch id>.review.html`.
-pub fn page_name(batch_id: &str) -> String {
+pub(crate) fn page_name(batch_id: &str) -> String {
     format!("{batch_id}.review.html")
 }
 

@@ -1,7 +1,14 @@
 //! The 2-D projection of a batch beside the trusted items on the review page (principal axes by power
 //! iteration).
 
-use super::*;
+use std::collections::HashMap;
+
+use ndarray::{Array1, Array2, ArrayView2, Axis};
+
+use crate::data::Table;
+use crate::store::{TrustedItem, WorkspaceMeta};
+
+use super::{ProjectedPoint, Projection, ReviewError, PROJECTION_MAX_POINTS};
 
 /// The two leading principal axes of the rows of `z` (standardised features), by power iteration.
 ///
@@ -12,7 +19,7 @@ use super::*;
 /// Gram–Schmidt). `λ_i = v_iᵀ C v_i`; the explained share is `λ_i / tr C` with `tr C = Σ_ij z̄_ij² / n`.
 ///
 /// Returns `(axes as a d × 2 matrix, [λ₁, λ₂], tr C, column means)`.
-pub fn principal_axes(z: ArrayView2<'_, f64>) -> (Array2<f64>, [f64; 2], f64, Array1<f64>) {
+pub(crate) fn principal_axes(z: ArrayView2<'_, f64>) -> (Array2<f64>, [f64; 2], f64, Array1<f64>) {
     let (n, d) = z.dim();
     let mean = if n > 0 {
         z.mean_axis(Axis(0)).unwrap_or_else(|| Array1::zeros(d))

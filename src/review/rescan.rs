@@ -1,6 +1,16 @@
 //! Re-scoring the most recently accepted batches after the trusted set changed.
 
-use super::*;
+use chrono::{DateTime, Duration as ChronoDuration, Utc};
+use ndarray::Array2;
+use serde::{Deserialize, Serialize};
+
+use crate::model;
+use crate::model::{PoolInput, TrustedInput};
+use crate::policy;
+use crate::policy::Verdict;
+use crate::store::{AuditRecord, BatchState};
+
+use super::{ReviewEnv, ReviewError, RESCORE_EXACT_POOL_MAX};
 
 /// One re-checked batch.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -39,7 +49,7 @@ pub struct RescanReport {
 /// Re-score the most recently accepted batches (`[trusted] rescore_lookback_batches` /
 /// `rescore_lookback_days`) against the current trusted set and report those the policy would now
 /// quarantine. Each batch is scored against the pool *without* its own items when the pool has at most
-/// [`RESCORE_EXACT_POOL_MAX`] items (exact mode), else against the saved pool summary. Nothing is
+/// 50,000 items (exact mode), else against the saved pool summary. Nothing is
 /// changed: withdrawing a batch is a reviewer's decision.
 pub fn rescan(env: &ReviewEnv<'_>, by: &str) -> Result<RescanReport, ReviewError> {
     let s = &env.config.trusted;

@@ -1,6 +1,20 @@
 //! The review queue and one batch explained: `quarantine list` and `quarantine show`.
 
-use super::*;
+use std::collections::HashMap;
+
+use chrono::{DateTime, Utc};
+use serde::{Deserialize, Serialize};
+
+use crate::data;
+use crate::data::{Format, Table};
+use crate::notice;
+use crate::policy;
+use crate::policy::{Baseline, Reason};
+use crate::store::{AuditRecord, BatchRecord, BatchState, Store};
+
+use super::{
+    build_projection, finish_moves, io_err, ReviewEnv, ReviewError, PROJECTION_MAX_POINTS,
+};
 
 /// One batch waiting for review.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

@@ -1,6 +1,20 @@
 //! Trusted-set upkeep: the rolling window, class balance, `trusted list`, `add` and `remove`.
 
-use super::*;
+use std::collections::{BTreeMap, HashSet};
+use std::path::Path;
+
+use chrono::{DateTime, Duration as ChronoDuration, Utc};
+use serde::{Deserialize, Serialize};
+
+use crate::config::TrustedSettings;
+use crate::data;
+use crate::data::{Classes, Format};
+use crate::store::{AuditRecord, TrustedItem, RECORD_VERSION};
+
+use super::{
+    caller_detail, require_by, require_reason, rescan, RescanReport, ReviewEnv, ReviewError,
+    TrustedAddRequest, TrustedRemoveRequest,
+};
 
 /// A trusted item with its provenance (no features).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -70,7 +84,7 @@ pub fn balance(classes: &[String], items: &[TrustedItem], settings: &TrustedSett
 /// * with `max_age_days > 0`, items verified more than that many days before `now`, while the class
 ///   keeps more than `min_items_per_class` items;
 /// * with `max_items_per_class > 0`, the oldest items beyond that many per class.
-pub fn window_removals(
+pub(crate) fn window_removals(
     items: &[TrustedItem],
     settings: &TrustedSettings,
     now: DateTime<Utc>,

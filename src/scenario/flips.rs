@@ -1,6 +1,11 @@
 //! Label-flip recipes (the attacks the benchmark and the demo plant) and writing a sample as a file.
 
-use super::*;
+use std::path::Path;
+
+use ndarray::{ArrayView2, Axis};
+use rand::seq::SliceRandom;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
 
 /// Clamp a rate to `[0, 1]`; NaN counts as 0.
 fn clamp_rate(rate: f64) -> f64 {
@@ -141,7 +146,7 @@ pub fn region_flips_around(
 }
 
 /// Systematic flips in the plant's own terms: `⌊rate · n_S⌋` random items of the given sub-populations `S`
-/// (indices into [`Plant::subpopulations`]), among those not already labeled `to`, get label `to` — e.g. a
+/// (indices into [`super::Plant::subpopulations`]), among those not already labeled `to`, get label `to` — e.g. a
 /// vendor who labels wet cardboard as paper. The same systematic-bias setting as [`region_flips`] (Zhang,
 /// Zhu & Wright 2018), with the region given by the sub-population. `rate` is clamped to `[0, 1]`.
 pub fn subpopulation_flips(

@@ -43,10 +43,7 @@
 //! * [`subpopulation_flips`]: the same systematic error expressed in the plant's terms (a vendor labels wet
 //!   cardboard as paper).
 
-use std::path::Path;
-
-use ndarray::{Array2, ArrayView2, Axis};
-use rand::seq::SliceRandom;
+use ndarray::Array2;
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal};

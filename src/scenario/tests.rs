@@ -1,7 +1,7 @@
 //! Unit tests of the fictional recycling plant and its label-flip recipes.
 use super::*;
 use linfa::prelude::*;
-use ndarray::Array1;
+use ndarray::{Array1, Axis};
 
 type Scorer = Box<dyn Fn((Array2<f64>, Vec<usize>)) -> f64>;
 

@@ -1,7 +1,10 @@
 //! The store's pool side: the accepted items, the saved pool summary and its epoch, and each vendor's
 //! history.
 
-use super::*;
+use super::{
+    dec, enc, u64_of, AuditRecord, PoolEntry, SavedSummary, Store, StoreError, VendorHistory,
+    META_EPOCH, SUMMARY_KEY, T_AUDIT, T_HISTORY, T_META, T_POOL, T_POOL_INDEX,
+};
 
 impl Store {
     /// Pool entries with sequence number greater than `after`, in order, with their sequence numbers.
