@@ -122,7 +122,10 @@ fn print_sweep(r: &SweepReport, max_batches: usize) {
         }
     }
     if r.batches.len() > max_batches {
-        println!("  … {} more batches (--batches N)", r.batches.len() - max_batches);
+        println!(
+            "  … {} more batches (--batches N)",
+            r.batches.len() - max_batches
+        );
     }
     for b in &r.withdraw {
         println!(

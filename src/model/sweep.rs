@@ -10,9 +10,9 @@
 //!   weighted `anchor_confidence` beside the pool's own loss, here its second-order summary) is the
 //!   learner pulled onto the trusted items; its doubt `1 − p_A(y_i)` is where the trusted set disagrees
 //!   with what the pool taught;
-//! * the **trusted audit** of `θ_P` (see the `anchor` module) weighs the two per item: the configured base
-//!   weight where the pool model is sound on the nearby trusted items and on the item's class, more where
-//!   it is not.
+//! * the suspicion leads with the anchored doubt (the sweep asks whether accepted labels agree with the
+//!   trusted set); the in-sample doubt keeps the configured base weight where the **trusted audit** of
+//!   `θ_P` (see the `anchor` module) finds the pool model sound near the item, and none where it does not.
 //!
 //! The models are fitted once (`SweepScorer::new`: one solve of the size of the learner's parameters);
 //! each chunk then costs `O(n · p · K + n · m · p)` for `n` items and `m` trusted items, so a pool of a
@@ -36,7 +36,10 @@ pub struct SweepItem {
     pub index: usize,
     /// The label in the pool (class index).
     pub label: usize,
-    /// Fused suspicion in `[0, 1]`: `w·anchored_doubt + (1 − w)·learner_doubt`. A suspicion, not proof.
+    /// Fused suspicion in `[0, 1]`: `(1 − β)·anchored_doubt + β·learner_doubt`, with `β` the base weight
+    /// (`pool_reference_repair_weight`) while the audit finds the pool model sound near the item, and 0
+    /// where it does not. The sweep asks whether accepted labels agree with the trusted set, so the
+    /// trusted-anchored doubt leads. A suspicion, not proof.
     pub suspicion: f64,
     /// `1 − p_P(label)` under the pool model (in-sample).
     pub learner_doubt: f64,
@@ -169,12 +172,19 @@ impl SweepScorer {
                 let anchored_doubt = (1.0 - p_anchor[[i, label]]).clamp(0.0, 1.0);
                 let w = weights[i];
                 let row = p_anchor.row(i);
-                let proposed_label =
-                    argmax((0..self.k).map(|c| if c == label { f64::NEG_INFINITY } else { row[c] }));
+                let proposed_label = argmax((0..self.k).map(|c| {
+                    if c == label {
+                        f64::NEG_INFINITY
+                    } else {
+                        row[c]
+                    }
+                }));
                 SweepItem {
                     index: i,
                     label,
-                    suspicion: (w * anchored_doubt + (1.0 - w) * learner_doubt).clamp(0.0, 1.0),
+                    suspicion: ((1.0 - self.base_weight.min(w)) * anchored_doubt
+                        + self.base_weight.min(w) * learner_doubt)
+                        .clamp(0.0, 1.0),
                     learner_doubt,
                     anchored_doubt,
                     repair_weight: w,
@@ -241,7 +251,13 @@ mod tests {
                 for (b, &pb) in s.iter().zip(&biased) {
                     if pa && !pb {
                         pairs += 1.0;
-                        wins += if a > b { 1.0 } else if a == b { 0.5 } else { 0.0 };
+                        wins += if a > b {
+                            1.0
+                        } else if a == b {
+                            0.5
+                        } else {
+                            0.0
+                        };
                     }
                 }
             }
@@ -254,7 +270,10 @@ mod tests {
         );
         assert!(audit.trusted_wrong > 0, "{audit:?}");
         assert!(anchored > 0.9, "anchored {anchored}");
-        assert!(anchored > learner + 0.1, "anchored {anchored}, learner {learner}");
+        assert!(
+            anchored > learner + 0.1,
+            "anchored {anchored}, learner {learner}"
+        );
         assert!(fused > learner, "fused {fused}, learner {learner}");
     }
 }

@@ -45,8 +45,8 @@ mod drift;
 mod page;
 mod projection;
 mod rescan;
-mod sweep;
 mod show;
+mod sweep;
 mod trusted;
 
 pub use decide::*;
@@ -54,8 +54,8 @@ pub use drift::*;
 pub use page::*;
 use projection::*;
 pub use rescan::*;
-pub use sweep::*;
 pub use show::*;
+pub use sweep::*;
 pub use trusted::*;
 
 /// Pools up to this many items are re-scored exactly (pool minus the batch); larger ones through the

@@ -6,7 +6,14 @@
 //! (one accepted batch) at a time, so memory follows the largest batch, not the pool. Nothing is changed:
 //! withdrawing a batch stays a reviewer's decision, and a suspect is a suspicion for review, not proof.
 
-use super::*;
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+use super::{ReviewEnv, ReviewError};
+use crate::model;
+use crate::model::TrustedInput;
+use crate::store::AuditRecord;
 
 /// What to sweep.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -83,8 +90,8 @@ pub struct SweepReport {
     pub vendors: Vec<SweepVendor>,
     /// Batches, withdrawal candidates first, then by suspect share.
     pub batches: Vec<SweepBatch>,
-    /// Batches worth withdrawing: a suspect share at least `[policy] max_flagged_share` and at least
-    /// twice the pool-wide share, with three suspects or more.
+    /// Batches worth withdrawing: a suspect share at least `[policy] cold_start_max_flagged_share` and at least
+    /// twice the share of the rest of the pool, with three suspects or more.
     pub withdraw: Vec<String>,
     /// What the trusted set says about the pool model (the audit of the last chunk's scoring).
     pub trusted_audit: String,
@@ -129,14 +136,9 @@ pub fn pool_sweep(env: &ReviewEnv<'_>, req: &SweepRequest) -> Result<SweepReport
                     note: CAUTION.into(),
                 });
             }
-            let (s, _) = model::PoolSummary::fit(
-                settings,
-                env.meta.feature_map.clone(),
-                k,
-                x.view(),
-                &y,
-            )
-            .map_err(engine_error)?;
+            let (s, _) =
+                model::PoolSummary::fit(settings, env.meta.feature_map.clone(), k, x.view(), &y)
+                    .map_err(engine_error)?;
             (s, "refitted from the stored pool".into())
         }
     };
@@ -156,47 +158,48 @@ pub fn pool_sweep(env: &ReviewEnv<'_>, req: &SweepRequest) -> Result<SweepReport
     let mut audit_line = String::new();
     let mut done = 0usize;
     let mut last_log = std::time::Instant::now();
-    env.store.for_each_pool_entry(|_, e| -> Result<(), ReviewError> {
-        if e.n_features != d || e.ids.is_empty() {
-            return Ok(());
-        }
-        let (items, audit) = scorer
-            .score(e.features().view(), &e.labels)
-            .map_err(engine_error)?;
-        audit_line = audit.summary;
-        let suspects = items.iter().filter(|i| i.suspicion >= threshold).count();
-        let mean = items.iter().map(|i| i.suspicion).sum::<f64>() / items.len() as f64;
-        let mut ranked: Vec<&model::SweepItem> = items.iter().collect();
-        ranked.sort_by(|a, b| b.suspicion.total_cmp(&a.suspicion));
-        let top = ranked
-            .into_iter()
-            .take(req.top)
-            .map(|i| SweepSuspect {
-                id: e.ids[i.index].clone(),
-                label: classes[i.label].clone(),
-                proposed_label: classes[i.proposed_label].clone(),
-                suspicion: i.suspicion,
-                learner_doubt: i.learner_doubt,
-                anchored_doubt: i.anchored_doubt,
-            })
-            .collect();
-        batches.push(SweepBatch {
-            batch_id: e.batch_id.clone(),
-            vendor: e.vendor.clone(),
-            items: items.len(),
-            suspects,
-            suspect_share: suspects as f64 / items.len() as f64,
-            mean_suspicion: mean,
-            withdraw_candidate: false,
-            top,
-        });
-        done += items.len();
-        if last_log.elapsed() >= std::time::Duration::from_secs(5) {
-            tracing::info!(done, total, "pool sweep in progress");
-            last_log = std::time::Instant::now();
-        }
-        Ok(())
-    })?;
+    env.store
+        .for_each_pool_entry(|_, e| -> Result<(), ReviewError> {
+            if e.n_features != d || e.ids.is_empty() {
+                return Ok(());
+            }
+            let (items, audit) = scorer
+                .score(e.features().view(), &e.labels)
+                .map_err(engine_error)?;
+            audit_line = audit.summary;
+            let suspects = items.iter().filter(|i| i.suspicion >= threshold).count();
+            let mean = items.iter().map(|i| i.suspicion).sum::<f64>() / items.len() as f64;
+            let mut ranked: Vec<&model::SweepItem> = items.iter().collect();
+            ranked.sort_by(|a, b| b.suspicion.total_cmp(&a.suspicion));
+            let top = ranked
+                .into_iter()
+                .take(req.top)
+                .map(|i| SweepSuspect {
+                    id: e.ids[i.index].clone(),
+                    label: classes[i.label].clone(),
+                    proposed_label: classes[i.proposed_label].clone(),
+                    suspicion: i.suspicion,
+                    learner_doubt: i.learner_doubt,
+                    anchored_doubt: i.anchored_doubt,
+                })
+                .collect();
+            batches.push(SweepBatch {
+                batch_id: e.batch_id.clone(),
+                vendor: e.vendor.clone(),
+                items: items.len(),
+                suspects,
+                suspect_share: suspects as f64 / items.len() as f64,
+                mean_suspicion: mean,
+                withdraw_candidate: false,
+                top,
+            });
+            done += items.len();
+            if last_log.elapsed() >= std::time::Duration::from_secs(5) {
+                tracing::info!(done, total, "pool sweep in progress");
+                last_log = std::time::Instant::now();
+            }
+            Ok(())
+        })?;
     let items: usize = batches.iter().map(|b| b.items).sum();
     let suspects: usize = batches.iter().map(|b| b.suspects).sum();
     let share = if items > 0 {
@@ -204,8 +207,21 @@ pub fn pool_sweep(env: &ReviewEnv<'_>, req: &SweepRequest) -> Result<SweepReport
     } else {
         0.0
     };
-    let floor = env.config.policy.max_flagged_share.max(2.0 * share);
+    // A batch is worth withdrawing when its suspect share is at least the policy's ceiling on a batch's
+    // flagged share at cold start and at least twice the share of the rest of the pool (leaving the batch out, so that a
+    // batch that is most of the pool is not its own yardstick), with three suspects or more.
     for b in &mut batches {
+        let rest_items = items - b.items;
+        let rest_share = if rest_items > 0 {
+            (suspects - b.suspects) as f64 / rest_items as f64
+        } else {
+            0.0
+        };
+        let floor = env
+            .config
+            .policy
+            .cold_start_max_flagged_share
+            .max(2.0 * rest_share);
         b.withdraw_candidate = b.suspects >= 3 && b.suspect_share >= floor;
     }
     batches.sort_by(|a, b| {
