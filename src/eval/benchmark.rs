@@ -372,6 +372,25 @@ pub struct ScaleTiming {
     pub phase_ms: [f64; 3],
 }
 
+/// The pool sweep's cost: `labelweir pool sweep` scores the pool in stored batches; here a million plant
+/// items in chunks of 10,000 against the 10k summary standing for a million-item pool.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct SweepTiming {
+    /// Items swept.
+    pub items: usize,
+    /// Items per chunk.
+    pub chunk: usize,
+    /// Fitting the trusted-anchored model (ms).
+    pub fit_ms: f64,
+    /// Scoring every chunk (ms; generating the items is not counted).
+    pub score_ms: f64,
+    /// Items per second.
+    pub items_per_s: f64,
+    /// Bytes held while sweeping: the summary, the scorer's trusted rows and parameters, one chunk's raw
+    /// features and its mapped rows and probabilities (`chunk × (d + 2·(p + K))` doubles).
+    pub memory_bytes: usize,
+}
+
 /// Pass / miss against one target of the issue.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct TargetCheck {
@@ -404,6 +423,8 @@ pub struct BenchReport {
     pub mode_agreement: Vec<ModeAgreement>,
     /// Scoring time against growing pools.
     pub scale: Vec<ScaleTiming>,
+    /// The pool sweep over a million plant items (with the scale section).
+    pub sweep: Option<SweepTiming>,
     /// The issue's targets, checked.
     pub targets: Vec<TargetCheck>,
     /// Total wall time (s).
@@ -1131,10 +1152,13 @@ pub fn run(opts: &BenchOptions, mut progress: impl FnMut(&str)) -> Result<BenchR
             cases.push(aggregate(src.name, attack, &runs[ai], batch_items));
         }
     }
-    let scale = if opts.scale {
-        scale_timings(opts, &plant)?
+    let (scale, sweep) = if opts.scale {
+        (
+            scale_timings(opts, &plant)?,
+            Some(sweep_timing(opts, &plant)?),
+        )
     } else {
-        Vec::new()
+        (Vec::new(), None)
     };
     let targets = check_targets(&cases, &agreement, &scale);
     Ok(BenchReport {
@@ -1144,6 +1168,7 @@ pub fn run(opts: &BenchOptions, mut progress: impl FnMut(&str)) -> Result<BenchR
         cases,
         mode_agreement: agreement,
         scale,
+        sweep,
         targets,
         wall_seconds: started.elapsed().as_secs_f64(),
     })
@@ -1284,6 +1309,64 @@ fn scale_timings(opts: &BenchOptions, plant: &Plant) -> Result<Vec<ScaleTiming>,
         });
     }
     Ok(out)
+}
+
+/// Time the pool sweep over a million plant items (see [`SweepTiming`]).
+fn sweep_timing(opts: &BenchOptions, plant: &Plant) -> Result<SweepTiming, BenchError> {
+    let err = |source| BenchError::Model {
+        case: "sweep".into(),
+        source,
+    };
+    let settings = &opts.settings;
+    let k = Plant::N_CLASSES;
+    let (trusted_x, trusted_y) = plant.sample_per_class(10, opts.seed ^ 0x61);
+    let (pool_x, pool_y) = plant.sample(10_000, opts.seed ^ 0x62);
+    let st = Standardizer::fit(&[trusted_x.view(), pool_x.view()]).map_err(err)?;
+    let fm = FeatureMap::new(st, settings.feature_map, settings.seed).map_err(err)?;
+    let (mut summary, _) =
+        PoolSummary::fit(settings, fm, k, pool_x.view(), &pool_y).map_err(err)?;
+    let (items, chunk) = if opts.quick {
+        (100_000, 10_000)
+    } else {
+        (1_000_000, 10_000)
+    };
+    summary.n = items as u64;
+    summary.exact_at_n = items as u64;
+    let weight = Array1::ones(trusted_y.len());
+    let t = Instant::now();
+    let scorer = crate::model::SweepScorer::new(
+        settings,
+        &summary,
+        TrustedInput {
+            x: trusted_x.view(),
+            y: &trusted_y,
+            weight: weight.view(),
+        },
+    )
+    .map_err(err)?;
+    let fit_ms = ms(t.elapsed());
+    let mut score = Duration::ZERO;
+    for c in 0..items / chunk {
+        let (x, y) = plant.sample(chunk, opts.seed ^ 0x6300 ^ c as u64);
+        let t = Instant::now();
+        let (scored, _) = scorer.score(x.view(), &y).map_err(err)?;
+        score += t.elapsed();
+        std::hint::black_box(scored);
+    }
+    let d = Plant::N_FEATURES;
+    let p = summary.feature_map.output_dim();
+    let memory_bytes = summary.memory_bytes()
+        + 8 * (trusted_y.len() * (p + 1) + 2 * p * k)
+        + 8 * chunk * (d + 2 * (p + k));
+    let score_ms = ms(score);
+    Ok(SweepTiming {
+        items,
+        chunk,
+        fit_ms,
+        score_ms,
+        items_per_s: items as f64 / score.as_secs_f64().max(1e-9),
+        memory_bytes,
+    })
 }
 
 fn fmt_opt(v: Option<f64>) -> String {
@@ -1583,6 +1666,13 @@ pub fn render_text(r: &BenchReport) -> String {
                 t.absorb_ms
             );
         }
+    }
+    if let Some(w) = &r.sweep {
+        let _ = writeln!(
+            s,
+            "\n== pool sweep: {} plant items in chunks of {} ==\n   trusted-anchored model fitted in {:.0} ms; scoring {:.0} ms ({:.0} items/s); memory while sweeping {} bytes",
+            w.items, w.chunk, w.fit_ms, w.score_ms, w.items_per_s, w.memory_bytes
+        );
     }
     let _ = writeln!(s, "\n== targets (issue 2) ==");
     for t in &r.targets {

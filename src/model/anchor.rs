@@ -352,11 +352,16 @@ const AUDIT_TOLERANCE_NATS: f64 = 0.5;
 /// first two terms minimised over the model at the delivered labels — where the trusted items are dense
 /// enough to outweigh a bias, it follows them; elsewhere it is the ordinary model. Its doubt
 /// `1 − p_A(ŷ_j)` is the evidence the audit turns to where the reference model has learned a bias.
+///
+/// With `chord`, the factor of the Hessian at the delivered labels' optimum (without the trusted rows),
+/// the solve runs the chord method on it (see [`super::learner::train_chord`], which hands over to Newton
+/// when it converges slowly): no Hessian is assembled while it converges well.
 pub(super) fn anchored_model(
     ctx: &Ctx<'_>,
     y_hat: &Array2<f64>,
     init: Array1<f64>,
     c_bar: f64,
+    chord: Option<std::sync::Arc<super::linalg::Cholesky>>,
     deadline: Instant,
 ) -> Array1<f64> {
     let (phi, y, w) = ctx.inner.with_trusted(
@@ -374,7 +379,20 @@ pub(super) fn anchored_model(
         l2: ctx.settings.l2,
         prior: ctx.inner.prior_quadratic(),
     };
-    let (theta, rep) = super::learner::solve(ctx.settings, &obj, init, deadline);
+    let (theta, rep) = match chord {
+        Some(f) => {
+            let (t, r, _) = super::learner::train_chord(
+                &obj,
+                init,
+                &f,
+                ctx.settings.inner_tol,
+                ctx.settings.inner_max_iters,
+                deadline,
+            );
+            (t, r)
+        }
+        None => super::learner::solve(ctx.settings, &obj, init, deadline),
+    };
     let mut conv = ctx.conv.borrow_mut();
     conv.inner_iterations += rep.iterations;
     if !rep.converged {

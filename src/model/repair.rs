@@ -1060,6 +1060,7 @@ pub fn assess(
         &y_hat,
         theta_hat.clone(),
         settings.anchor_confidence,
+        Ctx::factor_of(&lin),
         deadline,
     );
     let p_anchor = predict_proba(phi_b.view(), &theta_anchor, k);
