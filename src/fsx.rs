@@ -17,6 +17,45 @@ pub fn sync_dir(dir: &Path) -> io::Result<()> {
     fs::File::open(dir)?.sync_all()
 }
 
+/// Read a file someone else may control without trusting it: opened with `O_NOFOLLOW | O_NONBLOCK`
+/// (a link is never followed, a FIFO never blocks), checked with `fstat` on the open descriptor to be a
+/// regular file of at most `max_bytes`, then read through that descriptor. The caller copies the bytes
+/// into a file it owns instead of moving or changing the original inode (whose owner, mode and other
+/// links belong to whoever made it).
+pub fn read_untrusted(path: &Path, max_bytes: u64) -> io::Result<Vec<u8>> {
+    use rustix::fs::{FileType, Mode, OFlags};
+    use std::io::Read;
+    let fd = rustix::fs::open(
+        path,
+        OFlags::RDONLY | OFlags::NOFOLLOW | OFlags::NONBLOCK | OFlags::CLOEXEC | OFlags::NOCTTY,
+        Mode::empty(),
+    )?;
+    let st = rustix::fs::fstat(&fd)?;
+    if FileType::from_raw_mode(st.st_mode) != FileType::RegularFile {
+        return Err(io::Error::new(
+            io::ErrorKind::InvalidInput,
+            "not a regular file",
+        ));
+    }
+    if st.st_size as u64 > max_bytes {
+        return Err(io::Error::new(
+            io::ErrorKind::InvalidInput,
+            "larger than the limit",
+        ));
+    }
+    let mut bytes = Vec::with_capacity(st.st_size.max(0) as usize);
+    fs::File::from(fd)
+        .take(max_bytes + 1)
+        .read_to_end(&mut bytes)?;
+    if bytes.len() as u64 > max_bytes {
+        return Err(io::Error::new(
+            io::ErrorKind::InvalidInput,
+            "grew past the limit",
+        ));
+    }
+    Ok(bytes)
+}
+
 /// The temporary name of `name` in `dir`: hidden (the daemon's listings skip dot-files) and per process.
 fn temp_path(dir: &Path, name: &str) -> PathBuf {
     dir.join(format!(".{name}.tmp-{}", std::process::id()))

@@ -190,6 +190,7 @@ fn start_pipeline(
     let watcher = watch::start_watcher(ws, config, ctl.clone(), metrics.clone())
         .map_err(DaemonError::Watcher)?;
     ready.watcher.store(true, Ordering::SeqCst);
+    ready.pipeline.store(true, Ordering::SeqCst);
     let ingest = Ingest {
         ws: ws.clone(),
         config: config.clone(),
@@ -248,6 +249,7 @@ async fn bind_http(
 async fn supervise(
     shutdown: impl Future<Output = ()>,
     p: &Pipeline,
+    ready: &Readiness,
     watchdog: Option<Watchdog>,
 ) -> Option<DaemonError> {
     let mut shutdown = std::pin::pin!(shutdown);
@@ -260,8 +262,12 @@ async fn supervise(
             _ = check.tick() => {}
         }
         if p.worker.is_finished() || p.ingest.is_finished() {
+            ready.pipeline.store(false, Ordering::SeqCst);
             return Some(DaemonError::Internal("a pipeline thread stopped".into()));
         }
+        let failing = p.shared.filing_failing.load(Ordering::SeqCst)
+            || p.shared.claims_failing.load(Ordering::SeqCst);
+        ready.pipeline.store(!failing, Ordering::SeqCst);
         let Some(w) = &watchdog else { continue };
         let since_beat = Duration::from_millis(
             pipeline::now_ms().saturating_sub(p.shared.heartbeat_ms.load(Ordering::SeqCst)),
@@ -396,7 +402,7 @@ pub async fn run(
         stop_rx.clone(),
     ));
 
-    let fatal = supervise(shutdown, &p, Watchdog::from_env(&config)).await;
+    let fatal = supervise(shutdown, &p, &ready, Watchdog::from_env(&config)).await;
     let (worker_res, ingest_res) = stop_pipeline(p, &ready).await?;
     let _ = stop_tx.send(true);
     if let Some(t) = http_task {
