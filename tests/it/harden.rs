@@ -183,3 +183,50 @@ fn a_hard_linked_delivery_is_copied_and_the_vendor_inode_left_alone() {
     assert_eq!(k.nlink(), 1, "only the claimed link left the inbox");
     assert_eq!(ws.files_in("accepted").len(), 1);
 }
+
+/// Issue 14, item 6. Before the fix `--listen 0.0.0.0:PORT` started serving the unauthenticated endpoints
+/// with no warning (this test failed with "process did not exit within 30s": the daemon kept serving).
+#[test]
+fn a_non_loopback_listen_needs_an_explicit_flag() {
+    let ws = Ws::new(&["north-sort"]);
+    let port = free_addr().port();
+    let any = format!("0.0.0.0:{port}");
+    let mut child = Command::new(bin())
+        .args(["run", &ws.dir.display().to_string(), "--listen", &any])
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let status = wait_with_timeout(&mut child, Duration::from_secs(30));
+    let mut err = String::new();
+    std::io::Read::read_to_string(child.stderr.as_mut().unwrap(), &mut err).unwrap();
+    assert_eq!(
+        status.code(),
+        Some(78),
+        "a non-loopback --listen is refused: {err}"
+    );
+    assert!(err.contains("--allow-remote-listen"), "{err}");
+    // With the flag it serves there, and says so in the log.
+    let log = ws.tmp.path().join("remote.log");
+    let logf = std::fs::File::create(&log).unwrap();
+    let child = Command::new(bin())
+        .args([
+            "run",
+            &ws.dir.display().to_string(),
+            "--listen",
+            &any,
+            "--allow-remote-listen",
+        ])
+        .stdout(Stdio::from(logf.try_clone().unwrap()))
+        .stderr(Stdio::from(logf))
+        .spawn()
+        .unwrap();
+    let d = Daemon {
+        child: Some(child),
+        addr: format!("127.0.0.1:{port}").parse().unwrap(),
+        log,
+    };
+    d.wait_ready(Duration::from_secs(60));
+    d.wait_log("without authentication", Duration::from_secs(10));
+    assert!(d.stop().success());
+}
