@@ -56,6 +56,33 @@ pub fn read_untrusted(path: &Path, max_bytes: u64) -> io::Result<Vec<u8>> {
     Ok(bytes)
 }
 
+/// Whether `name` is a temporary name of [`write_atomic_all`] (`.NAME.tmp-PID`).
+pub fn is_temp_name(name: &str) -> bool {
+    name.starts_with('.')
+        && name.rsplit_once(".tmp-").is_some_and(|(stem, pid)| {
+            stem.len() > 1 && !pid.is_empty() && pid.bytes().all(|b| b.is_ascii_digit())
+        })
+}
+
+/// Remove the temporary files an interrupted [`write_atomic_all`] left in `dir` (a process killed between
+/// writing and renaming them). Only call it while no writer can be at work there (the daemon at start,
+/// holding the store lock). Returns how many were removed.
+pub fn remove_stale_temps(dir: &Path) -> io::Result<usize> {
+    let mut removed = 0;
+    for e in fs::read_dir(dir)? {
+        let e = e?;
+        let is_file = e.file_type().is_ok_and(|t| t.is_file());
+        if is_file && e.file_name().to_str().is_some_and(is_temp_name) {
+            fs::remove_file(e.path())?;
+            removed += 1;
+        }
+    }
+    if removed > 0 {
+        sync_dir(dir)?;
+    }
+    Ok(removed)
+}
+
 /// The temporary name of `name` in `dir`: hidden (the daemon's listings skip dot-files) and per process.
 fn temp_path(dir: &Path, name: &str) -> PathBuf {
     dir.join(format!(".{name}.tmp-{}", std::process::id()))
@@ -187,6 +214,27 @@ mod tests {
         let missing = d.path().join("missing");
         assert!(write_atomic(&missing, "a", b"1", None).is_err());
         assert!(!missing.exists());
+    }
+
+    #[test]
+    fn stale_temporary_files_are_recognised_and_removed() {
+        let d = tempfile::tempdir().unwrap();
+        let tmp = temp_path(d.path(), "b00000001.csv");
+        assert!(is_temp_name(&tmp.file_name().unwrap().to_string_lossy()));
+        fs::write(&tmp, b"half").unwrap();
+        for keep in [
+            ".hidden",
+            ".x.tmp-",
+            ".x.tmp-12a",
+            "b.csv.tmp-1",
+            "b00000001.csv",
+        ] {
+            assert!(!is_temp_name(keep), "{keep}");
+            fs::write(d.path().join(keep), b"k").unwrap();
+        }
+        assert_eq!(remove_stale_temps(d.path()).unwrap(), 1);
+        assert!(!tmp.exists());
+        assert_eq!(names_in(d.path()).len(), 5);
     }
 
     #[test]
