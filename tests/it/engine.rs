@@ -1167,8 +1167,8 @@ fn bench_engine_quick_json_reports_every_attack_and_baseline() {
             }
             assert_eq!(
                 methods.len(),
-                6,
-                "engine, two ablations, two baselines, the ceiling"
+                7,
+                "engine, three ablations, two baselines, the ceiling"
             );
             for m in methods {
                 for key in ["auroc", "average_precision", "precision_at_half_recall"] {
