@@ -17,6 +17,72 @@ pub fn sync_dir(dir: &Path) -> io::Result<()> {
     fs::File::open(dir)?.sync_all()
 }
 
+/// Read a file someone else may control without trusting it: opened with `O_NOFOLLOW | O_NONBLOCK`
+/// (a link is never followed, a FIFO never blocks), checked with `fstat` on the open descriptor to be a
+/// regular file of at most `max_bytes`, then read through that descriptor. The caller copies the bytes
+/// into a file it owns instead of moving or changing the original inode (whose owner, mode and other
+/// links belong to whoever made it).
+pub fn read_untrusted(path: &Path, max_bytes: u64) -> io::Result<Vec<u8>> {
+    use rustix::fs::{FileType, Mode, OFlags};
+    use std::io::Read;
+    let fd = rustix::fs::open(
+        path,
+        OFlags::RDONLY | OFlags::NOFOLLOW | OFlags::NONBLOCK | OFlags::CLOEXEC | OFlags::NOCTTY,
+        Mode::empty(),
+    )?;
+    let st = rustix::fs::fstat(&fd)?;
+    if FileType::from_raw_mode(st.st_mode) != FileType::RegularFile {
+        return Err(io::Error::new(
+            io::ErrorKind::InvalidInput,
+            "not a regular file",
+        ));
+    }
+    if st.st_size as u64 > max_bytes {
+        return Err(io::Error::new(
+            io::ErrorKind::InvalidInput,
+            "larger than the limit",
+        ));
+    }
+    let mut bytes = Vec::with_capacity(st.st_size.max(0) as usize);
+    fs::File::from(fd)
+        .take(max_bytes + 1)
+        .read_to_end(&mut bytes)?;
+    if bytes.len() as u64 > max_bytes {
+        return Err(io::Error::new(
+            io::ErrorKind::InvalidInput,
+            "grew past the limit",
+        ));
+    }
+    Ok(bytes)
+}
+
+/// Whether `name` is a temporary name of [`write_atomic_all`] (`.NAME.tmp-PID`).
+pub fn is_temp_name(name: &str) -> bool {
+    name.starts_with('.')
+        && name.rsplit_once(".tmp-").is_some_and(|(stem, pid)| {
+            stem.len() > 1 && !pid.is_empty() && pid.bytes().all(|b| b.is_ascii_digit())
+        })
+}
+
+/// Remove the temporary files an interrupted [`write_atomic_all`] left in `dir` (a process killed between
+/// writing and renaming them). Only call it while no writer can be at work there (the daemon at start,
+/// holding the store lock). Returns how many were removed.
+pub fn remove_stale_temps(dir: &Path) -> io::Result<usize> {
+    let mut removed = 0;
+    for e in fs::read_dir(dir)? {
+        let e = e?;
+        let is_file = e.file_type().is_ok_and(|t| t.is_file());
+        if is_file && e.file_name().to_str().is_some_and(is_temp_name) {
+            fs::remove_file(e.path())?;
+            removed += 1;
+        }
+    }
+    if removed > 0 {
+        sync_dir(dir)?;
+    }
+    Ok(removed)
+}
+
 /// The temporary name of `name` in `dir`: hidden (the daemon's listings skip dot-files) and per process.
 fn temp_path(dir: &Path, name: &str) -> PathBuf {
     dir.join(format!(".{name}.tmp-{}", std::process::id()))
@@ -148,6 +214,27 @@ mod tests {
         let missing = d.path().join("missing");
         assert!(write_atomic(&missing, "a", b"1", None).is_err());
         assert!(!missing.exists());
+    }
+
+    #[test]
+    fn stale_temporary_files_are_recognised_and_removed() {
+        let d = tempfile::tempdir().unwrap();
+        let tmp = temp_path(d.path(), "b00000001.csv");
+        assert!(is_temp_name(&tmp.file_name().unwrap().to_string_lossy()));
+        fs::write(&tmp, b"half").unwrap();
+        for keep in [
+            ".hidden",
+            ".x.tmp-",
+            ".x.tmp-12a",
+            "b.csv.tmp-1",
+            "b00000001.csv",
+        ] {
+            assert!(!is_temp_name(keep), "{keep}");
+            fs::write(d.path().join(keep), b"k").unwrap();
+        }
+        assert_eq!(remove_stale_temps(d.path()).unwrap(), 1);
+        assert!(!tmp.exists());
+        assert_eq!(names_in(d.path()).len(), 5);
     }
 
     #[test]

@@ -32,6 +32,8 @@ pub struct Readiness {
     pub worker: AtomicBool,
     /// Shutdown has begun.
     pub stopping: AtomicBool,
+    /// The pipeline threads are alive, the last claim succeeded and no filing waits for a retry.
+    pub pipeline: AtomicBool,
 }
 
 impl Readiness {
@@ -45,6 +47,7 @@ impl Readiness {
             ("disk_space", self.disk.load(Ordering::SeqCst)),
             ("scoring_worker", self.worker.load(Ordering::SeqCst)),
             ("not_stopping", !self.stopping.load(Ordering::SeqCst)),
+            ("pipeline", self.pipeline.load(Ordering::SeqCst)),
         ]
     }
 

@@ -45,9 +45,10 @@ pub const RESCAN_REASONS: [&str; 5] = ["startup", "timer", "event", "overflow", 
 pub const MOUNTS: [&str; 2] = ["inbox", "state"];
 /// Every `(stage, kind)` pair `labelweir_errors_total` is incremented with (pre-created at zero so alert
 /// rules see a series before the first error).
-pub const ERROR_KINDS: [(&str, &str); 6] = [
+pub const ERROR_KINDS: [(&str, &str); 7] = [
     ("claim", "list"),
     ("claim", "rename"),
+    ("file", "settle"),
     ("persist", "pool_refresh"),
     ("persist", "pool_update"),
     ("persist", "pool_update_panic"),

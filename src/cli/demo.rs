@@ -265,6 +265,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
     };
     let opts = RunOptions {
         listen: args.listen,
+        allow_remote_listen: false,
         observer: Some(observer),
         on_ready: Some(on_ready),
     };

@@ -22,6 +22,10 @@ pub struct Args {
     /// Serve /metrics, /livez and /readyz on this address instead of the configured one.
     #[arg(long)]
     pub listen: Option<SocketAddr>,
+    /// Allow --listen on an address other than loopback (refused otherwise: the endpoints have no
+    /// authentication); a warning is logged.
+    #[arg(long)]
+    pub allow_remote_listen: bool,
 }
 
 /// Install JSON logging to stdout (once per process).
@@ -83,6 +87,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         config,
         RunOptions {
             listen: args.listen,
+            allow_remote_listen: args.allow_remote_listen,
             ..RunOptions::default()
         },
     )

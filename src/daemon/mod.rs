@@ -120,6 +120,8 @@ impl DaemonError {
 pub struct RunOptions {
     /// Overrides `http.listen`.
     pub listen: Option<SocketAddr>,
+    /// Allow `listen` on an address other than loopback (the endpoints have no authentication).
+    pub allow_remote_listen: bool,
     /// Called after every settled batch.
     pub observer: Option<Observer>,
     /// Called once when the daemon is ready, with the HTTP address actually bound (if serving).
@@ -190,6 +192,7 @@ fn start_pipeline(
     let watcher = watch::start_watcher(ws, config, ctl.clone(), metrics.clone())
         .map_err(DaemonError::Watcher)?;
     ready.watcher.store(true, Ordering::SeqCst);
+    ready.pipeline.store(true, Ordering::SeqCst);
     let ingest = Ingest {
         ws: ws.clone(),
         config: config.clone(),
@@ -217,10 +220,23 @@ fn start_pipeline(
 }
 
 /// Bind the HTTP listener (`--listen`, else `http.listen` when enabled).
+///
+/// `/metrics`, `/livez` and `/readyz` have no authentication: a `listen` override on an address other
+/// than loopback is refused unless `allow_remote` says so, and any non-loopback address (also from
+/// `http.listen`) is logged as a warning.
 async fn bind_http(
     config: &Config,
     listen: Option<SocketAddr>,
+    allow_remote: bool,
 ) -> Result<Option<tokio::net::TcpListener>, DaemonError> {
+    if let Some(a) = listen {
+        if !a.ip().is_loopback() && !allow_remote {
+            return Err(DaemonError::Config(format!(
+                "--listen {a} is not a loopback address and the metrics endpoint has no authentication; \
+                 pass --allow-remote-listen to serve it there anyway (and restrict who can connect)"
+            )));
+        }
+    }
     let listen = match listen {
         Some(a) => Some(a),
         None if config.http.enabled => Some(
@@ -230,6 +246,9 @@ async fn bind_http(
         ),
         None => None,
     };
+    if let Some(a) = listen.filter(|a| !a.ip().is_loopback()) {
+        tracing::warn!(listen = %a, "serving /metrics, /livez and /readyz without authentication on a non-loopback address");
+    }
     match listen {
         Some(a) => crate::http::bind(a)
             .await
@@ -248,6 +267,7 @@ async fn bind_http(
 async fn supervise(
     shutdown: impl Future<Output = ()>,
     p: &Pipeline,
+    ready: &Readiness,
     watchdog: Option<Watchdog>,
 ) -> Option<DaemonError> {
     let mut shutdown = std::pin::pin!(shutdown);
@@ -260,8 +280,12 @@ async fn supervise(
             _ = check.tick() => {}
         }
         if p.worker.is_finished() || p.ingest.is_finished() {
+            ready.pipeline.store(false, Ordering::SeqCst);
             return Some(DaemonError::Internal("a pipeline thread stopped".into()));
         }
+        let failing = p.shared.filing_failing.load(Ordering::SeqCst)
+            || p.shared.claims_failing.load(Ordering::SeqCst);
+        ready.pipeline.store(!failing, Ordering::SeqCst);
         let Some(w) = &watchdog else { continue };
         let since_beat = Duration::from_millis(
             pipeline::now_ms().saturating_sub(p.shared.heartbeat_ms.load(Ordering::SeqCst)),
@@ -324,7 +348,7 @@ pub async fn run(
     let config = Arc::new(config);
     let metrics = metrics::install(&config.vendors);
     let ready = Arc::new(Readiness::default());
-    let listener = bind_http(&config, opts.listen).await?;
+    let listener = bind_http(&config, opts.listen, opts.allow_remote_listen).await?;
     let bound = listener.as_ref().and_then(|l| l.local_addr().ok());
 
     // Blocking startup work off the runtime's workers.
@@ -396,7 +420,7 @@ pub async fn run(
         stop_rx.clone(),
     ));
 
-    let fatal = supervise(shutdown, &p, Watchdog::from_env(&config)).await;
+    let fatal = supervise(shutdown, &p, &ready, Watchdog::from_env(&config)).await;
     let (worker_res, ingest_res) = stop_pipeline(p, &ready).await?;
     let _ = stop_tx.send(true);
     if let Some(t) = http_task {

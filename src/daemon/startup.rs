@@ -33,6 +33,8 @@ pub(crate) fn open(
 ) -> Result<Opened, DaemonError> {
     prepare_folders(ws, config)?;
     let store = Store::open_workspace(&ws.root, &config.store)?;
+    // The store lock is held: no other writer is at work, so every temporary file is a leftover.
+    remove_stale_temps(ws, config);
     let meta = store.workspace_meta()?;
     check_against_meta(config, &meta)?;
     let redo = reconcile(ws, config, &store, Some(metrics))?;
@@ -45,6 +47,29 @@ pub(crate) fn open(
         pool,
         trusted,
     })
+}
+
+/// Remove the temporary files a killed process left in the folders labelweir writes for others to read
+/// (terminal folders and vendor notices); in a listing they would look like a batch filed twice. A
+/// folder that cannot be cleaned is logged and left (the files are hidden and harmless to the daemon).
+fn remove_stale_temps(ws: &Workspace, config: &Config) {
+    let mut dirs: Vec<_> = ["accepted", "quarantine", "rejected"]
+        .iter()
+        .map(|f| ws.folder(f))
+        .collect();
+    dirs.extend(config.vendors.iter().map(|v| ws.notices(v)));
+    for d in dirs {
+        match crate::fsx::remove_stale_temps(&d) {
+            Ok(0) => {}
+            Ok(n) => {
+                tracing::info!(folder = %d.display(), removed = n, "recovery: removed temporary files left by an interrupted write")
+            }
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
+            Err(e) => {
+                tracing::warn!(folder = %d.display(), error = %e, "recovery: cannot remove leftover temporary files")
+            }
+        }
+    }
 }
 
 /// Check that the configuration agrees with what `init` fixed.

@@ -464,6 +464,7 @@ fn drive(
         async move { idle.notified().await }
     };
     let opts_run = RunOptions {
+        allow_remote_listen: false,
         listen: None,
         observer: Some(observer),
         on_ready: Some(on_ready),

@@ -20,14 +20,14 @@
 //! Every step is idempotent, so the daemon redoes [`settle`] for batches it finds `Decided` at startup.
 
 use std::fs;
-use std::os::unix::fs::PermissionsExt;
+use std::os::unix::fs::{MetadataExt, PermissionsExt};
 use std::path::{Path, PathBuf};
 
 use chrono::Utc;
 use std::sync::atomic::Ordering;
-use std::sync::mpsc::Receiver;
+use std::sync::mpsc::{Receiver, RecvTimeoutError};
 use std::sync::Arc;
-use std::time::Instant;
+use std::time::{Duration, Instant};
 
 use super::{Filing, Observer, Shared};
 use crate::config::Config;
@@ -78,6 +78,7 @@ fn file_into_folder(
     outcome: Outcome,
     bytes: Option<&[u8]>,
     report: Option<&[u8]>,
+    max_bytes: u64,
 ) -> Result<(), FileError> {
     let src_dir = ws.processing();
     let src = src_dir.join(&record.file_name);
@@ -88,6 +89,7 @@ fn file_into_folder(
         0o640
     };
     let report_name = report_name(record);
+    let copied: Vec<u8>;
     let mut writes: Vec<(&str, &[u8])> = Vec::with_capacity(2);
     // What to do with the claimed entry once the terminal folder is durable.
     let mut unlink_src = false;
@@ -106,14 +108,28 @@ fn file_into_folder(
         }
         Ok(m) => {
             let dst = dst_dir.join(&record.file_name);
-            if fs::symlink_metadata(&dst).is_ok() {
+            // No copy in hand (after a restart, or an entry that was never read): the entry is the
+            // vendor's inode, whose owner, mode and other links are not ours to change. A regular file we
+            // can read is copied into a file the daemon owns; only what cannot be read is moved as it is,
+            // and changed only when it is ours alone.
+            let copy = if m.is_file() {
+                crate::fsx::read_untrusted(&src, max_bytes).ok()
+            } else {
+                None
+            };
+            if let Some(copy) = copy {
+                copied = copy;
+                writes.push((record.file_name.as_str(), copied.as_slice()));
+                unlink_src = true;
+            } else if fs::symlink_metadata(&dst).is_ok() {
                 // A previous attempt got this far; the destination is complete (its folder is fsynced
                 // below before the original goes).
                 unlink_src = !m.is_dir();
                 remove_dir = m.is_dir();
             } else {
                 fs::rename(&src, &dst).map_err(io_err("move", &src))?;
-                if m.is_file() {
+                let ours = m.uid() == rustix::process::geteuid().as_raw() && m.nlink() == 1;
+                if m.is_file() && ours {
                     fs::set_permissions(&dst, fs::Permissions::from_mode(mode))
                         .map_err(io_err("chmod", &dst))?;
                 }
@@ -225,7 +241,14 @@ pub fn settle(
         }
         serde_json::to_vec_pretty(&report).unwrap_or_default()
     });
-    file_into_folder(ws, record, outcome, bytes, report.as_deref())?;
+    file_into_folder(
+        ws,
+        record,
+        outcome,
+        bytes,
+        report.as_deref(),
+        config.ingest.max_file_bytes,
+    )?;
     let mut written = Vec::new();
     if let Some(n) = notice_for(record) {
         let dir = ws.notices(&record.vendor);
@@ -278,43 +301,85 @@ pub(crate) struct Filer {
 }
 
 impl Filer {
+    /// File batches until the channel closes. A batch whose filing fails (a daemon-side error: the disk,
+    /// a folder) is logged, counted and kept for a retry every few seconds; it never stops the thread,
+    /// and its verdict is already durable (the next start redoes it in any case). While any batch waits
+    /// for a retry, [`Shared::filing_failing`] is set and `/readyz` answers 503.
     pub(crate) fn run(mut self, rx: Receiver<Filing>) -> Result<(), FileError> {
         let mut config_seen = 0;
-        for f in rx {
+        let mut pending: Vec<Filing> = Vec::new();
+        loop {
+            let next = match rx.recv_timeout(Duration::from_secs(if pending.is_empty() {
+                3600
+            } else {
+                2
+            })) {
+                Ok(f) => Some(f),
+                Err(RecvTimeoutError::Timeout) => None,
+                Err(RecvTimeoutError::Disconnected) => break,
+            };
             if let Some(c) = self.shared.reload.newer(&mut config_seen) {
                 self.config = c;
             }
-            let t = Instant::now();
-            let settled = settle(
-                &self.ws,
-                &self.config,
-                &self.store,
-                Some(&self.metrics),
-                &f.record,
-                f.bytes.as_deref(),
-            )?;
-            self.metrics.stage("notice", t.elapsed());
-            let outcome = settled.outcome.map_or("rejected", |o| o.as_str());
-            self.metrics.batch_outcome(
-                &settled.vendor,
-                outcome,
-                settled.items.unwrap_or(0) as u64,
-                settled.bytes.unwrap_or(0),
-                chrono::Utc::now().timestamp_millis() as f64 / 1000.0,
-            );
-            self.shared.settled.fetch_add(1, Ordering::SeqCst);
-            tracing::info!(
-                batch_id = %settled.id,
-                vendor = %settled.vendor,
-                sha256 = settled.sha256.as_deref().unwrap_or(""),
-                outcome,
-                stage = "notice",
-                "batch settled"
-            );
-            if let Some(obs) = &self.observer {
-                obs(&settled);
+            let mut todo = std::mem::take(&mut pending);
+            todo.extend(next);
+            for f in todo {
+                if let Some(f) = self.file_one(f) {
+                    pending.push(f);
+                }
             }
+            self.shared
+                .filing_failing
+                .store(!pending.is_empty(), Ordering::SeqCst);
         }
+        // What still fails at shutdown stays `Decided`; the next start files it.
         Ok(())
+    }
+
+    /// [`settle`] one batch, then metrics, log line and observer; gives the batch back on an error.
+    fn file_one(&mut self, f: Filing) -> Option<Filing> {
+        let t = Instant::now();
+        let settled = match settle(
+            &self.ws,
+            &self.config,
+            &self.store,
+            Some(&self.metrics),
+            &f.record,
+            f.bytes.as_deref(),
+        ) {
+            Ok(s) => s,
+            Err(e) => {
+                self.metrics.error("file", "settle");
+                tracing::error!(
+                    batch_id = %f.record.id,
+                    vendor = %f.record.vendor,
+                    error = %e,
+                    "filing failed; the verdict is recorded and filing is retried"
+                );
+                return Some(f);
+            }
+        };
+        self.metrics.stage("notice", t.elapsed());
+        let outcome = settled.outcome.map_or("rejected", |o| o.as_str());
+        self.metrics.batch_outcome(
+            &settled.vendor,
+            outcome,
+            settled.items.unwrap_or(0) as u64,
+            settled.bytes.unwrap_or(0),
+            chrono::Utc::now().timestamp_millis() as f64 / 1000.0,
+        );
+        self.shared.settled.fetch_add(1, Ordering::SeqCst);
+        tracing::info!(
+            batch_id = %settled.id,
+            vendor = %settled.vendor,
+            sha256 = settled.sha256.as_deref().unwrap_or(""),
+            outcome,
+            stage = "notice",
+            "batch settled"
+        );
+        if let Some(obs) = &self.observer {
+            obs(&settled);
+        }
+        None
     }
 }

@@ -619,9 +619,17 @@ impl Ingest {
                 Err(e) => {
                     tracing::error!(vendor, error = %e, "claim failed");
                     self.metrics.error("claim", "rename");
+                    self.scoring
+                        .shared
+                        .claims_failing
+                        .store(true, Ordering::SeqCst);
                     continue;
                 }
             };
+            self.scoring
+                .shared
+                .claims_failing
+                .store(false, Ordering::SeqCst);
             self.metrics.stage("claim", t.elapsed());
             tracing::info!(batch_id = %claimed.record.id, vendor, original_name = %claimed.record.original_name, stage = "claim", "claimed");
             if let Flow::Stop = self.process_claimed(claimed.record)? {

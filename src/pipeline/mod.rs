@@ -121,6 +121,10 @@ pub struct Shared {
     /// When the scoring loop last came round ([`now_ms`]): every 500 ms while idle, and after each batch.
     /// The systemd watchdog pings only while this is recent.
     pub heartbeat_ms: AtomicU64,
+    /// A decided batch waits for a retry of its filing (`/readyz` answers 503 meanwhile).
+    pub filing_failing: AtomicBool,
+    /// The last claim failed on a daemon-side error (`/readyz` answers 503 until one succeeds).
+    pub claims_failing: AtomicBool,
 }
 
 /// Milliseconds on a monotonic clock since the first call in this process (a wall-clock step, e.g. from

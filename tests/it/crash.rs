@@ -101,6 +101,22 @@ fn sigkill_at_random_moments_loses_nothing_and_repeats_nothing() {
         .unwrap()
         .flatten()
         .all(|e| e.file_name().to_string_lossy().starts_with('.')));
+    // No temporary file of an interrupted write survives the restart.
+    for dir in [
+        "accepted",
+        "quarantine",
+        "rejected",
+        "notices/v1",
+        "notices/v2",
+    ] {
+        let left: Vec<String> = std::fs::read_dir(ws.path(dir))
+            .unwrap()
+            .flatten()
+            .map(|e| e.file_name().to_string_lossy().into_owned())
+            .filter(|n| n.starts_with('.') && n.contains(".tmp-"))
+            .collect();
+        assert!(left.is_empty(), "{dir}/ keeps {left:?}");
+    }
     // Every verdict in the audit trail: exactly one per batch, and its file is in the matching folder.
     let audit = store.audit_since(0).unwrap();
     let mut verdicts: HashMap<String, String> = HashMap::new();

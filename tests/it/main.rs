@@ -8,6 +8,7 @@
 //! - `crash`      — SIGKILL at random moments, restart, invariants.
 //! - `policy`     — the verdict policy on the engine's output at a large pool (flagged share).
 //! - `review`     — quarantine review, trusted-set upkeep, notices, audit through the binary.
+//! - `harden`     — the daemon as a non-root service user under hostile vendors, crashes, handle pressure.
 //! - `alerting`   — alert rules, dashboard and service unit checked with the real tools.
 
 mod alerting;
@@ -15,6 +16,7 @@ mod assess_cli;
 mod crash;
 mod daemon;
 mod engine;
+mod harden;
 mod policy;
 mod review;
 mod util;
