@@ -23,6 +23,9 @@ use prometheus::{
 
 const NS: &str = "labelweir";
 
+/// The fates counted by `labelweir_admission_items_total`.
+pub const ADMISSION_FATES: [&str; 3] = ["held", "entered_proposed", "dropped"];
+
 /// Batch outcomes used as the `outcome` label.
 pub const OUTCOMES: [&str; 6] = [
     "accepted",
@@ -82,6 +85,7 @@ struct Flow {
     files_discovered: IntCounterVec,
     batches: IntCounterVec,
     batch_items: IntCounterVec,
+    admission_items: IntCounterVec,
     batch_bytes: IntCounterVec,
     repair_cost: HistogramVec,
     repair_cost_last: GaugeVec,
@@ -191,6 +195,18 @@ impl Flow {
                         "Items in batches, by vendor and outcome.",
                     ),
                     &["vendor", "outcome"],
+                )?,
+            )?,
+            admission_items: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "admission_items_total",
+                        "Flagged items of accepted batches that did not enter the pool as delivered, by \
+                         vendor and fate (held for review, entered_proposed, dropped); a flag is a \
+                         suspicion for review, not proof.",
+                    ),
+                    &["vendor", "fate"],
                 )?,
             )?,
             batch_bytes: reg(
@@ -452,6 +468,9 @@ impl Metrics {
                 m.flow.batches.with_label_values(&[v, o]);
                 m.flow.batch_items.with_label_values(&[v, o]);
             }
+            for f in ADMISSION_FATES {
+                m.flow.admission_items.with_label_values(&[v, f]);
+            }
             for f in ["json", "markdown"] {
                 m.state.notices_written.with_label_values(&[v, f]);
             }
@@ -495,6 +514,26 @@ impl Metrics {
             self.flow
                 .files_discovered
                 .with_label_values(&[vendor])
+                .inc();
+        }
+    }
+
+    /// An accepted batch's flagged items that did not enter the pool as delivered, counted by fate
+    /// (`ADMISSION_FATES`).
+    pub fn admission(&self, record: &crate::store::BatchRecord) {
+        if !self.known(&record.vendor) {
+            return;
+        }
+        for h in &record.held {
+            let fate = match h.state {
+                crate::store::HeldState::Waiting => "held",
+                crate::store::HeldState::AdmittedProposed => "entered_proposed",
+                crate::store::HeldState::Dropped => "dropped",
+                crate::store::HeldState::Admitted => continue,
+            };
+            self.flow
+                .admission_items
+                .with_label_values(&[&record.vendor, fate])
                 .inc();
         }
     }
