@@ -43,6 +43,8 @@ pub struct Config {
     pub model: ModelSettings,
     /// When a batch is quarantined.
     pub policy: PolicySettings,
+    /// What the flagged items of an accepted batch do.
+    pub admission: crate::policy::AdmissionSettings,
     /// What vendor notices disclose.
     pub notices: NoticeSettings,
     /// Trusted-set upkeep.
@@ -442,6 +444,13 @@ impl Config {
         self.policy
             .validate()
             .map_err(|e| invalid("policy", e.to_string()))?;
+        let floor = self.admission.relabel_min_confidence;
+        if !(floor > 0.0 && floor <= 1.0) {
+            return Err(invalid(
+                "admission.relabel_min_confidence",
+                "must be in (0, 1]",
+            ));
+        }
         Ok(())
     }
 

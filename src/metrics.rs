@@ -23,6 +23,9 @@ use prometheus::{
 
 const NS: &str = "labelweir";
 
+/// The fates counted by `labelweir_admission_items_total`.
+pub const ADMISSION_FATES: [&str; 3] = ["held", "entered_proposed", "dropped"];
+
 /// Batch outcomes used as the `outcome` label.
 pub const OUTCOMES: [&str; 6] = [
     "accepted",
@@ -83,6 +86,7 @@ struct Flow {
     files_discovered: IntCounterVec,
     batches: IntCounterVec,
     batch_items: IntCounterVec,
+    admission_items: IntCounterVec,
     batch_bytes: IntCounterVec,
     repair_cost: HistogramVec,
     repair_cost_last: GaugeVec,
@@ -192,6 +196,18 @@ impl Flow {
                         "Items in batches, by vendor and outcome.",
                     ),
                     &["vendor", "outcome"],
+                )?,
+            )?,
+            admission_items: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "admission_items_total",
+                        "Flagged items of accepted batches that did not enter the pool as delivered, by \
+                         vendor and fate (held for review, entered_proposed, dropped); a flag is a \
+                         suspicion for review, not proof.",
+                    ),
+                    &["vendor", "fate"],
                 )?,
             )?,
             batch_bytes: reg(
@@ -453,6 +469,9 @@ impl Metrics {
                 m.flow.batches.with_label_values(&[v, o]);
                 m.flow.batch_items.with_label_values(&[v, o]);
             }
+            for f in ADMISSION_FATES {
+                m.flow.admission_items.with_label_values(&[v, f]);
+            }
             for f in ["json", "markdown"] {
                 m.state.notices_written.with_label_values(&[v, f]);
             }
@@ -496,6 +515,20 @@ impl Metrics {
             self.flow
                 .files_discovered
                 .with_label_values(&[vendor])
+                .inc();
+        }
+    }
+
+    /// An accepted batch's flagged items that did not enter the pool as delivered, one fate
+    /// (`ADMISSION_FATES`: `held`, `entered_proposed`, `dropped`) per item.
+    pub fn admission<'f>(&self, vendor: &str, fates: impl IntoIterator<Item = &'f str>) {
+        if !self.known(vendor) {
+            return;
+        }
+        for fate in fates {
+            self.flow
+                .admission_items
+                .with_label_values(&[vendor, fate])
                 .inc();
         }
     }

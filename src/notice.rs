@@ -125,7 +125,7 @@ impl NoticeVerdict {
     fn default_detail(self) -> &'static str {
         match self {
             NoticeVerdict::Accepted => "The batch was scored against the trusted items and joined the training pool.",
-            NoticeVerdict::Quarantined => "The batch was scored against the trusted items and is held for review by a person before it can join the training pool. The items listed were flagged for review.",
+            NoticeVerdict::Quarantined => "The batch was scored against the trusted items and is held for review by a person before it can join the training pool. The notice gives the number of items flagged for review; a reviewer decides which items, if any, are named.",
             NoticeVerdict::Malformed => "The file could not be read as a batch, so it was not scored. The reasons say where the problem was; please fix it and deliver the batch again.",
             NoticeVerdict::Duplicate => "A file with exactly the same content was already delivered from this vendor folder; this copy was not processed again.",
             NoticeVerdict::Released => "After review, the batch joined the training pool. Items listed were excluded or relabeled by the reviewer.",
@@ -490,7 +490,15 @@ impl Notice {
                 let _ = writeln!(md, "{line}");
             }
         }
-        if !self.items.is_empty() {
+        if self.items.is_empty() {
+            if let Some(total) = self.items_total {
+                let _ = writeln!(
+                    md,
+                    "\n## Items\n\n{} of {total} items flagged for review (a suspicion, not proof; no item is named unless a reviewer discloses it).",
+                    self.items_listed_total
+                );
+            }
+        } else {
             let _ = writeln!(
                 md,
                 "\n## Items ({} of {} listed)\n",

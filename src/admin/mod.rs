@@ -117,6 +117,7 @@ mod tests {
             by: "alice".into(),
             reason: "flipped labels".into(),
             disclose_proposed: true,
+            disclose_items: false,
         });
         let v = serde_json::to_value(&r).unwrap();
         assert_eq!(v["op"], "reject");

@@ -1,4 +1,5 @@
-//! `labelweir quarantine`: review held batches — list, show, release, reject, withdraw.
+//! `labelweir quarantine`: review held batches — list, show, release, reject, withdraw — and the held items
+//! of accepted batches (held, admit, drop).
 //!
 //! Also home of [`dispatch`], which every review command uses: through the running daemon's admin socket
 //! when it answers, else on the store opened directly.
@@ -12,8 +13,9 @@ use super::{exit, Failure};
 use labelweir::admin;
 use labelweir::config::Config;
 use labelweir::review::{
-    self, Caller, DecisionReport, NoHooks, QueueEntry, RejectRequest, ReleaseRequest, Request,
-    ReviewEnv, ReviewError, ShowReport, WithdrawRequest,
+    self, Caller, DecisionReport, HeldAction, HeldBatch, HeldReport, HeldRequest, NoHooks,
+    QueueEntry, RejectRequest, ReleaseRequest, Request, ReviewEnv, ReviewError, ShowReport,
+    WithdrawRequest,
 };
 use labelweir::store::{Store, StoreError};
 use labelweir::text::sanitize;
@@ -35,6 +37,34 @@ enum Command {
     Release(ReleaseArgs),
     Reject(RejectArgs),
     Withdraw(WithdrawArgs),
+    Held(ListArgs),
+    Admit(HeldArgs),
+    Drop(HeldArgs),
+}
+
+/// Admit (`quarantine admit`) or drop (`quarantine drop`) held items of an accepted batch: the flagged
+/// items that `[admission] flagged = "hold"` kept out of the pool (`quarantine held` lists them).
+#[derive(Debug, clap::Args)]
+struct HeldArgs {
+    /// Workspace folder.
+    dir: PathBuf,
+    /// Batch id (from `quarantine held`).
+    batch: String,
+    /// Why (required; recorded in the audit trail).
+    #[arg(long)]
+    reason: String,
+    /// Reviewer name. Default: the OS user.
+    #[arg(long)]
+    by: Option<String>,
+    /// This held item (repeat for more). Default: every item of the batch still waiting.
+    #[arg(long = "item", value_name = "ID")]
+    items: Vec<String>,
+    /// Admit with the engine's proposed label instead of the given one (admit only).
+    #[arg(long)]
+    proposed: bool,
+    /// Print JSON.
+    #[arg(long)]
+    json: bool,
 }
 
 /// List the batches waiting for review, oldest first.
@@ -119,6 +149,10 @@ struct RejectArgs {
     /// must not become a free oracle for a poisoner).
     #[arg(long)]
     disclose_proposed: bool,
+    /// Name the flagged items in the vendor notice (off by default: the notice gives their count only;
+    /// --disclose-proposed implies it).
+    #[arg(long)]
+    disclose_items: bool,
     /// Print JSON.
     #[arg(long)]
     json: bool,
@@ -223,10 +257,22 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
                 by: a.by.unwrap_or_else(super::init::os_user),
                 reason: a.reason,
                 disclose_proposed: a.disclose_proposed,
+                disclose_items: a.disclose_items,
             };
             let v = dispatch(&a.dir, Request::Reject(req))?;
             print_decision(v, a.json)?;
         }
+        Command::Held(a) => {
+            let v = dispatch(&a.dir, Request::HeldList)?;
+            if a.json {
+                print_json(&v)?;
+            } else {
+                let list: Vec<HeldBatch> = serde_json::from_value(v)?;
+                print_held(&list);
+            }
+        }
+        Command::Admit(a) => held(a, false)?,
+        Command::Drop(a) => held(a, true)?,
         Command::Withdraw(a) => {
             let req = WithdrawRequest {
                 batch: a.batch,
@@ -238,6 +284,66 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         }
     }
     Ok(exit::OK)
+}
+
+fn held(a: HeldArgs, drop: bool) -> anyhow::Result<()> {
+    if drop && a.proposed {
+        return Err(Failure::new(exit::INPUT, "--proposed goes with `quarantine admit`").into());
+    }
+    let req = HeldRequest {
+        batch: a.batch,
+        by: a.by.unwrap_or_else(super::init::os_user),
+        reason: a.reason,
+        action: match (drop, a.proposed) {
+            (true, _) => HeldAction::Drop,
+            (false, true) => HeldAction::AdmitProposed,
+            (false, false) => HeldAction::Admit,
+        },
+        items: a.items,
+    };
+    let v = dispatch(&a.dir, Request::HeldDecide(req))?;
+    if a.json {
+        print_json(&v)?;
+    } else {
+        let r: HeldReport = serde_json::from_value(v)?;
+        println!(
+            "batch {}: {} item(s) {}; {} of its items in the pool, {} still held",
+            sanitize(&r.batch_id),
+            r.items.len(),
+            match r.action {
+                HeldAction::Admit => "admitted with their given labels",
+                HeldAction::AdmitProposed => "admitted with the proposed labels",
+                HeldAction::Drop => "dropped",
+            },
+            r.in_pool,
+            r.waiting
+        );
+    }
+    Ok(())
+}
+
+fn print_held(list: &[HeldBatch]) {
+    if list.is_empty() {
+        println!("no accepted batch has held items");
+        return;
+    }
+    println!("Flagged items of accepted batches kept out of the pool (a flag is a suspicion for review, not proof):");
+    println!(
+        "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8}",
+        "BATCH", "VENDOR", "ITEMS", "IN POOL", "WAITING", "PROPOSED", "DROPPED"
+    );
+    for b in list {
+        println!(
+            "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8}",
+            sanitize(&b.batch_id),
+            sanitize(&b.vendor),
+            b.items.unwrap_or(0),
+            b.in_pool,
+            b.waiting,
+            b.admitted_proposed,
+            b.dropped
+        );
+    }
 }
 
 fn write_page(path: &Path, html: &str) -> std::io::Result<()> {

@@ -32,7 +32,7 @@ use std::time::{Duration, Instant};
 use super::{Filing, Observer, Shared};
 use crate::config::Config;
 use crate::metrics::Metrics;
-use crate::notice::{self, BatchRef, Notice, NoticeItem, NoticeReason};
+use crate::notice::{self, BatchRef, Notice, NoticeReason};
 use crate::store::{AuditRecord, BatchRecord, BatchState, Outcome, PoolChange, Store, StoreError};
 use crate::workspace::Workspace;
 
@@ -170,25 +170,22 @@ pub fn notice_for(record: &BatchRecord) -> Option<Notice> {
     };
     Some(match outcome {
         Outcome::Accepted | Outcome::Quarantined => {
-            let items: Vec<NoticeItem> = record
-                .suspects
-                .iter()
-                .filter(|s| s.proposed_label != s.label)
-                .map(|s| NoticeItem {
-                    id: s.id.clone(),
-                    reasons: vec![notice::item_codes::LABEL_SUSPECTED.to_string()],
-                    proposed_label: Some(s.proposed_label.clone()),
-                    suspicion: Some(s.suspicion),
-                })
-                .collect();
+            // Counts, never item ids: naming the flagged items of a batch would tell a poisoner which of
+            // its items were seen, so it could resend the others (threat model in the README). The notice
+            // has the same shape whether or not items were held back; only a reviewer names items.
+            let flagged = record.scores.as_ref().map_or(0, |s| s.flagged_items) as u64;
             match &record.decision {
-                Some(d) => Notice::for_decision(
-                    batch,
-                    d,
-                    record.scores.as_ref().map_or(f64::NAN, |s| s.repair_cost),
-                    record.items.unwrap_or(0) as u64,
-                    items,
-                ),
+                Some(d) => {
+                    let mut n = Notice::for_decision(
+                        batch,
+                        d,
+                        record.scores.as_ref().map_or(f64::NAN, |s| s.repair_cost),
+                        record.items.unwrap_or(0) as u64,
+                        Vec::new(),
+                    );
+                    n.items_listed_total = flagged;
+                    n
+                }
                 None => return None,
             }
         }

@@ -451,7 +451,19 @@ impl Worker {
         );
         let (rec, accepted) = self.persist(v)?;
         if accepted {
+            self.metrics.admission(
+                &rec.vendor,
+                rec.held.iter().filter_map(|h| match h.state {
+                    crate::store::HeldState::Waiting => Some("held"),
+                    crate::store::HeldState::AdmittedProposed => Some("entered_proposed"),
+                    crate::store::HeldState::Dropped => Some("dropped"),
+                    crate::store::HeldState::Admitted => None,
+                }),
+            );
             let t_absorb = Instant::now();
+            // The speculative copy absorbed the batch as delivered; it stands in for the stored entry only
+            // when every item entered with its given label.
+            let speculative = speculative.filter(|_| rec.held.is_empty());
             self.absorb_accepted(rec.pool_seq, base, speculative);
             self.metrics
                 .stage("absorb", absorb_wait + t_absorb.elapsed());
@@ -661,10 +673,19 @@ mod tests {
 
     /// An adopted speculative absorb is bit-for-bit the summary that absorbing the stored pool entries
     /// gives (the ordering guarantee: each batch is scored against every batch accepted before it).
+    /// Nothing flagged (a flag threshold no suspicion reaches here), so every accepted batch enters the
+    /// pool as delivered and its speculative copy may stand in for the stored entry.
+    fn nothing_flagged(w: &mut Worker) {
+        let mut c = (*w.config).clone();
+        c.model.flag_threshold = 1.0;
+        w.config = Arc::new(c);
+    }
+
     #[test]
     fn adopted_speculative_absorb_equals_absorbing_the_stored_pool() {
         let tmp = tempfile::tempdir().unwrap();
         let (mut w, plant) = worker(tmp.path());
+        nothing_flagged(&mut w);
         let (ftx, frx) = std::sync::mpsc::sync_channel(16);
         for i in 0..3 {
             submit(&mut w, &plant, i, &ftx);
@@ -681,12 +702,41 @@ mod tests {
         assert!(w.pool.summary == fresh.summary, "the adopted copy differs");
     }
 
+    /// With the default admission (flagged items held), an accepted batch with flagged items enters the
+    /// pool without them, so its speculative copy (the whole batch) is never adopted: the summary follows
+    /// the stored pool exactly.
+    #[test]
+    fn held_items_never_reach_the_summary_through_the_speculative_copy() {
+        let tmp = tempfile::tempdir().unwrap();
+        let (mut w, plant) = worker(tmp.path());
+        let (ftx, frx) = std::sync::mpsc::sync_channel(16);
+        for i in 0..3 {
+            submit(&mut w, &plant, i, &ftx);
+        }
+        let filed: Vec<Filing> = frx.try_iter().collect();
+        let with_held = filed
+            .iter()
+            .filter(|f| f.record.outcome == Some(Outcome::Accepted) && !f.record.held.is_empty())
+            .count();
+        assert!(with_held >= 1, "an accepted plant batch has flagged items");
+        let adopted = w.shared.speculative_absorbs.load(Ordering::SeqCst) as usize;
+        let accepted = filed
+            .iter()
+            .filter(|f| f.record.outcome == Some(Outcome::Accepted))
+            .count();
+        assert_eq!(adopted, accepted - with_held);
+        let fresh = from_store(&w);
+        assert_eq!(w.pool.summary.len(), w.store.pool_items().unwrap());
+        assert!(w.pool.summary == fresh.summary);
+    }
+
     /// A pool entry committed by someone else while a batch is scored (a reviewer's release) makes the
     /// worker fall back to absorbing from the store, in sequence order, instead of adopting its copy.
     #[test]
     fn a_concurrent_pool_change_falls_back_to_the_store_path() {
         let tmp = tempfile::tempdir().unwrap();
         let (mut w, plant) = worker(tmp.path());
+        nothing_flagged(&mut w);
         let (ftx, frx) = std::sync::mpsc::sync_channel(16);
         submit(&mut w, &plant, 0, &ftx);
         assert_eq!(accepted(&frx), 1);

@@ -10,7 +10,8 @@ use crate::model::Assessment;
 use crate::policy::VendorHistory;
 use crate::policy::{self, BatchSignals, Decision, Reason, ReasonCode, Verdict as PolicyVerdict};
 use crate::store::{
-    AuditRecord, BatchRecord, BatchScores, Outcome, PoolEntry, RejectReason, Suspect,
+    AuditRecord, BatchRecord, BatchScores, HeldItem, HeldState, Outcome, PoolEntry, RejectReason,
+    Suspect,
 };
 
 /// What the engine said about a batch: its assessment, or why there is none (an engine error or panic).
@@ -151,14 +152,13 @@ pub fn scored(
             "reasons": decision.reasons,
         }));
     record.decision = Some(decision);
-    let pool = accept.then(|| PoolEntry {
-        batch_id: record.id.clone(),
-        vendor: record.vendor.clone(),
-        ids: batch.table.ids.clone(),
-        labels: batch.labels.to_vec(),
-        x: batch.table.features.iter().copied().collect(),
-        n_features: batch.table.features.ncols(),
-    });
+    let pool = if accept {
+        let (entry, held) = admit(config, &record, &batch);
+        record.held = held;
+        (!entry.ids.is_empty()).then_some(entry)
+    } else {
+        None
+    };
     if accept {
         if let Ok(a) = &batch.scored {
             history.record_accepted(
@@ -175,6 +175,77 @@ pub fn scored(
         assessment: if accept { None } else { batch.scored.ok() },
         pool,
     }
+}
+
+/// The pool entry of an accepted batch and its flagged items that did not enter as delivered, under
+/// `[admission]` ([`policy::item_fate`]): unflagged items enter with their given label; flagged ones are
+/// held, enter with the proposed label, or are dropped. Without an assessment (never the case for an
+/// accepted batch) every item enters as delivered.
+fn admit(
+    config: &Config,
+    record: &BatchRecord,
+    batch: &ScoredBatch<'_>,
+) -> (PoolEntry, Vec<HeldItem>) {
+    let n = batch.table.ids.len();
+    let mut fate = vec![(policy::ItemFate::Enter, 0usize); n];
+    let mut held = Vec::new();
+    if let Ok(a) = &batch.scored {
+        for s in &a.items {
+            let f = policy::item_fate(&config.admission, s.proposed_label != s.label, s.confidence);
+            let Some(slot) = fate.get_mut(s.index) else {
+                continue;
+            };
+            *slot = (f, s.proposed_label);
+            let state = match f {
+                policy::ItemFate::Enter => continue,
+                policy::ItemFate::EnterProposed => HeldState::AdmittedProposed,
+                policy::ItemFate::Held => HeldState::Waiting,
+                policy::ItemFate::Dropped => HeldState::Dropped,
+            };
+            let class = |k: usize| {
+                batch
+                    .classes
+                    .get(k)
+                    .cloned()
+                    .unwrap_or_else(|| k.to_string())
+            };
+            held.push(HeldItem {
+                id: batch.table.ids[s.index].clone(),
+                label: class(s.label),
+                proposed_label: class(s.proposed_label),
+                suspicion: s.suspicion,
+                confidence: s.confidence,
+                state,
+                decided_by: "daemon".into(),
+            });
+        }
+    }
+    let keep: Vec<usize> = (0..n)
+        .filter(|&i| {
+            matches!(
+                fate[i].0,
+                policy::ItemFate::Enter | policy::ItemFate::EnterProposed
+            )
+        })
+        .collect();
+    let entry = PoolEntry {
+        batch_id: record.id.clone(),
+        vendor: record.vendor.clone(),
+        ids: keep.iter().map(|&i| batch.table.ids[i].clone()).collect(),
+        labels: keep
+            .iter()
+            .map(|&i| match fate[i] {
+                (policy::ItemFate::EnterProposed, p) => p,
+                _ => batch.labels[i],
+            })
+            .collect(),
+        x: keep
+            .iter()
+            .flat_map(|&i| batch.table.features.row(i).to_vec())
+            .collect(),
+        n_features: batch.table.features.ncols(),
+    };
+    (entry, held)
 }
 
 /// The record's scores, suspects (the most suspicious items: every flagged one, at least 20, at most

@@ -66,9 +66,11 @@ use std::collections::VecDeque;
 
 use serde::{Deserialize, Serialize};
 
+mod admission;
 mod judge;
 mod stats;
 
+pub use admission::{item_fate, AdmissionSettings, FlaggedItems, ItemFate};
 pub use stats::{cusum_arl, cusum_step, median, modified_z_scores, normal_cdf};
 
 /// The consistency constant that makes the MAD estimate σ for normal data: `1 / Φ⁻¹(0.75)`.

@@ -444,6 +444,8 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
     expect_state(&rec, &[BatchState::Quarantined], "rejected")?;
     let mut detail = caller_detail(env);
     detail["disclose_proposed"] = serde_json::json!(req.disclose_proposed);
+    let disclose_items = req.disclose_items || req.disclose_proposed;
+    detail["disclose_items"] = serde_json::json!(disclose_items);
     let audit = AuditRecord::new(&req.by, "reject")
         .batch(&rec.id, &rec.vendor)
         .outcome(BatchState::ReviewRejected.as_str())
@@ -460,7 +462,7 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
     let items: Vec<NoticeItem> = rec
         .suspects
         .iter()
-        .filter(|s| s.proposed_label != s.label)
+        .filter(|s| disclose_items && s.proposed_label != s.label)
         .map(|s| NoticeItem {
             id: s.id.clone(),
             reasons: vec![item_codes::LABEL_SUSPECTED.into()],
@@ -469,6 +471,7 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
         })
         .collect();
     n.items_total = rec.items.map(|x| x as u64);
+    // The count of flagged items always; their ids only where the reviewer discloses them.
     n.items_listed_total =
         rec.scores
             .as_ref()

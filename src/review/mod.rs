@@ -42,6 +42,7 @@ use crate::workspace::Workspace;
 
 mod decide;
 mod drift;
+mod held;
 mod page;
 mod projection;
 mod rescan;
@@ -51,6 +52,7 @@ mod trusted;
 
 pub use decide::*;
 pub use drift::*;
+pub use held::*;
 pub use page::*;
 use projection::*;
 pub use rescan::*;
@@ -234,9 +236,12 @@ pub struct RejectRequest {
     pub by: String,
     /// Why (required).
     pub reason: String,
-    /// Include the proposed labels of the flagged items in the vendor notice.
+    /// Include the proposed labels of the flagged items in the vendor notice (implies `disclose_items`).
     #[serde(default)]
     pub disclose_proposed: bool,
+    /// Name the flagged items in the vendor notice (otherwise it gives their count only).
+    #[serde(default)]
+    pub disclose_items: bool,
 }
 
 /// Pull an accepted (or released) batch back out of the pool.
@@ -309,6 +314,10 @@ pub enum Request {
     DriftReset(DriftResetRequest),
     /// Debug every accepted item against the current trusted set.
     PoolSweep(SweepRequest),
+    /// Accepted batches with held items.
+    HeldList,
+    /// Admit or drop held items.
+    HeldDecide(HeldRequest),
     /// Re-score recently accepted batches against the current trusted set.
     Rescan {
         /// Who asked.
@@ -357,6 +366,8 @@ pub fn handle(env: &ReviewEnv<'_>, req: Request) -> Result<serde_json::Value, Re
             items: env.store.trusted_items()?,
         }),
         Request::DriftReset(r) => json(drift_reset(env, &r)?),
+        Request::HeldList => json(held_list(env)?),
+        Request::HeldDecide(r) => json(held_decide(env, &r)?),
         Request::Rescan { by } => json(rescan(env, &by)?),
         Request::PoolSweep(r) => json(pool_sweep(env, &r)?),
         Request::Audit {

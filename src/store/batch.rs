@@ -207,6 +207,66 @@ pub struct BatchRecord {
     /// them).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub pending_notices: Vec<crate::notice::Notice>,
+    /// Flagged items of an accepted (or released) batch that did not enter the pool with their given
+    /// label (see [`crate::policy::AdmissionSettings`]): held for review, entered with the proposed label,
+    /// or dropped, and what a reviewer later decided.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub held: Vec<HeldItem>,
+}
+
+/// Where a flagged item of an accepted batch stands.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum HeldState {
+    /// Out of the pool, waiting for a reviewer.
+    Waiting,
+    /// In the pool with its given label (a reviewer admitted it).
+    Admitted,
+    /// In the pool with the proposed label (by the `relabel` setting or a reviewer).
+    AdmittedProposed,
+    /// Out of the pool for good (by the `drop` setting or a reviewer).
+    Dropped,
+}
+
+impl HeldState {
+    /// Stable snake_case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Self::Waiting => "waiting",
+            Self::Admitted => "admitted",
+            Self::AdmittedProposed => "admitted_proposed",
+            Self::Dropped => "dropped",
+        }
+    }
+}
+
+/// A flagged item of an accepted batch that did not enter the pool as delivered.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct HeldItem {
+    /// Item id as delivered.
+    pub id: String,
+    /// Given label.
+    pub label: String,
+    /// The engine's proposed label.
+    pub proposed_label: String,
+    /// Suspicion in `[0, 1]` (a suspicion for review, not proof).
+    pub suspicion: f64,
+    /// Confidence in the proposed label, in `[0, 1]`.
+    pub confidence: f64,
+    /// Where it stands.
+    pub state: HeldState,
+    /// Who put it there: `daemon` (the admission setting) or the reviewer.
+    pub decided_by: String,
+}
+
+impl BatchRecord {
+    /// Held items still waiting for a reviewer.
+    pub fn held_waiting(&self) -> usize {
+        self.held
+            .iter()
+            .filter(|h| h.state == HeldState::Waiting)
+            .count()
+    }
 }
 
 impl BatchRecord {
@@ -237,6 +297,7 @@ impl BatchRecord {
             pool_seq: None,
             notices: Vec::new(),
             pending_notices: Vec::new(),
+            held: Vec::new(),
         }
     }
 }

@@ -50,7 +50,8 @@ pub mod batch;
 mod pool;
 
 pub use batch::{
-    AuditRecord, BatchRecord, BatchScores, BatchState, Outcome, RejectReason, Suspect,
+    AuditRecord, BatchRecord, BatchScores, BatchState, HeldItem, HeldState, Outcome, RejectReason,
+    Suspect,
 };
 
 /// Version of the store layout; a store with another version is refused.
@@ -278,6 +279,8 @@ pub enum PoolChange {
     Add(PoolEntry),
     /// Remove the batch's items (bumps the pool epoch, so the summary is rebuilt exactly).
     Remove,
+    /// Replace the batch's items (if any) by these: a removal then an addition, in that order.
+    Replace(PoolEntry),
 }
 
 const T_BATCHES: usize = 0;
@@ -661,6 +664,7 @@ impl Store {
             PoolChange::None => (None, None),
             PoolChange::Add(e) => (Some(e.encode()?), None),
             PoolChange::Remove => (None, Some(batch_id)),
+            PoolChange::Replace(e) => (Some(e.encode()?), Some(batch_id)),
         };
         self.apply(
             batch_id,
@@ -715,13 +719,7 @@ impl Store {
             }
             let mut record = cur;
             edit(&mut record);
-            if let Some(v) = &pool_add {
-                let seq = u64_of(t[T_META].get(META_POOL_SEQ)?) + 1;
-                t[T_META].insert(META_POOL_SEQ, &seq.to_be_bytes())?;
-                t[T_POOL].insert(&seq.to_be_bytes(), v.as_slice())?;
-                t[T_POOL_INDEX].insert(id.as_bytes(), &seq.to_be_bytes())?;
-                record.pool_seq = Some(seq);
-            }
+            // Removal first, so a replacement keeps the new entry.
             if let Some(bid) = pool_remove {
                 if let Some(seq) = t[T_POOL_INDEX].remove(bid.as_bytes())? {
                     t[T_POOL].remove(seq)?;
@@ -729,6 +727,13 @@ impl Store {
                     t[T_META].insert(META_EPOCH, &epoch.to_be_bytes())?;
                 }
                 record.pool_seq = None;
+            }
+            if let Some(v) = &pool_add {
+                let seq = u64_of(t[T_META].get(META_POOL_SEQ)?) + 1;
+                t[T_META].insert(META_POOL_SEQ, &seq.to_be_bytes())?;
+                t[T_POOL].insert(&seq.to_be_bytes(), v.as_slice())?;
+                t[T_POOL_INDEX].insert(id.as_bytes(), &seq.to_be_bytes())?;
+                record.pool_seq = Some(seq);
             }
             let rv = enc("batch", &record).map_err(ConflictableTransactionError::Abort)?;
             t[T_BATCHES].insert(id.as_bytes(), rv)?;

@@ -101,6 +101,22 @@ impl Store {
         Ok(v.into_iter().map(|(_, b)| b).collect())
     }
 
+    /// The pool entry of one batch, if its items are in the pool.
+    pub fn pool_entry_of(&self, batch_id: &str) -> Result<Option<PoolEntry>, StoreError> {
+        let Some(seq) = self.trees[T_POOL_INDEX]
+            .get(batch_id.as_bytes())
+            .map_err(StoreError::sled("read pool index"))?
+        else {
+            return Ok(None);
+        };
+        let key = u64_of(Some(seq.clone()));
+        self.trees[T_POOL]
+            .get(seq)
+            .map_err(StoreError::sled("read pool"))?
+            .map(|v| PoolEntry::decode(&key.to_string(), &v))
+            .transpose()
+    }
+
     /// The pool epoch: bumped whenever items leave the pool.
     pub fn pool_epoch(&self) -> Result<u64, StoreError> {
         Ok(u64_of(

@@ -33,7 +33,9 @@ fn clean_batch_is_accepted_into_the_pool() {
     let rec = store.batch(&id).unwrap().unwrap();
     assert_eq!(rec.state, labelweir::store::BatchState::Accepted);
     assert_eq!(rec.original_name, "week01.csv");
-    assert_eq!(store.pool_items().unwrap(), 300);
+    // Flagged items wait for review (`[admission] flagged = "hold"`); the rest entered.
+    assert!(rec.held.len() < 300);
+    assert_eq!(store.pool_items().unwrap(), 300 - rec.held_waiting() as u64);
     let audit = store.audit_since(0).unwrap();
     let verdicts: Vec<_> = audit.iter().filter(|a| a.action == "verdict").collect();
     assert_eq!(verdicts.len(), 1);
@@ -56,7 +58,7 @@ fn flagged_ids(report: &serde_json::Value) -> Vec<String> {
 
 #[test]
 fn poisoned_batches_are_quarantined_with_the_planted_items_flagged() {
-    let ws = Ws::new(&["north-sort"]);
+    let ws = Ws::whole_batches(&["north-sort"]);
     let d = Daemon::start(&ws);
     // Two clean batches first, so the poisoned ones are judged against a pool.
     ws.deliver("north-sort", "c1.csv", &clean_batch("c1", 400, 21).csv());
@@ -664,7 +666,7 @@ fn daemon_with_two_verdicts(ws: &Ws) -> Daemon {
 /// naming that line).
 #[test]
 fn metrics_and_health_endpoints() {
-    let ws = Ws::new(&["north-sort", "east-labels"]);
+    let ws = Ws::whole_batches(&["north-sort", "east-labels"]);
     let d = Daemon::start(&ws);
     assert_eq!(http_get(d.addr, "/livez").unwrap().0, 200);
     let (code, body) = http_get(d.addr, "/readyz?verbose").unwrap();
@@ -687,7 +689,7 @@ fn metrics_and_health_endpoints() {
 )]
 fn metrics_exposition_passes_promtool_check() {
     let promtool = tool(env!("LABELWEIR_TOOL_PROMTOOL"), "promtool");
-    let ws = Ws::new(&["north-sort", "east-labels"]);
+    let ws = Ws::whole_batches(&["north-sort", "east-labels"]);
     let d = daemon_with_two_verdicts(&ws);
     let text = wait_for_expected_metrics(&d);
     assert!(d.stop().success());
@@ -1009,7 +1011,7 @@ fn clean_then_poisoned(ws: &Ws, seed: u64) -> (Vec<String>, String) {
 #[test]
 fn pool_summary_catches_up_with_offline_pool_changes() {
     use labelweir::store::{AuditRecord, BatchState, PoolChange, PoolEntry};
-    let ws = Ws::new(&["v1"]);
+    let ws = Ws::whole_batches(&["v1"]);
     let d = Daemon::start(&ws);
     let (q, id) = clean_then_poisoned(&ws, 81);
     assert!(d.stop().success());
@@ -1085,7 +1087,7 @@ fn pool_summary_catches_up_with_offline_pool_changes() {
 /// `labelweir_batches_total{outcome="released"}`.
 #[test]
 fn a_live_release_updates_pool_and_metrics() {
-    let ws = Ws::new(&["v1"]);
+    let ws = Ws::whole_batches(&["v1"]);
     let d = Daemon::start(&ws);
     let (_, id) = clean_then_poisoned(&ws, 91);
     let dir = ws.dir.display().to_string();

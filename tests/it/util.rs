@@ -201,6 +201,12 @@ impl Ws {
         ws
     }
 
+    /// A workspace whose accepted batches enter the pool whole (`[admission] flagged = "enter"`), for
+    /// tests about other things that count pool items batch by batch.
+    pub fn whole_batches(vendors: &[&str]) -> Self {
+        Self::with(vendors, &[("flagged = \"hold\"", "flagged = \"enter\"")])
+    }
+
     /// Replace lines in labelweir.toml.
     pub fn edit_config(&self, edits: &[(&str, &str)]) {
         let p = self.dir.join("labelweir.toml");
