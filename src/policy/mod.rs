@@ -71,7 +71,7 @@ mod judge;
 mod stats;
 
 pub use admission::{item_fate, AdmissionSettings, FlaggedItems, ItemFate};
-pub use stats::{cusum_arl, cusum_step, median, modified_z_scores, normal_cdf};
+pub use stats::{cusum_step, median, modified_z_scores};
 
 /// The consistency constant that makes the MAD estimate σ for normal data: `1 / Φ⁻¹(0.75)`.
 ///
@@ -213,7 +213,8 @@ pub struct PolicySettings {
     /// CUSUM reference value `k`, in σ units. Default 0.5 (Montgomery & Runger).
     pub cusum_k: f64,
     /// CUSUM decision interval `h`, in σ units. Default 5 (Montgomery & Runger; one-sided in-control
-    /// ARL ≈ 930 batches, ARL ≈ 10.4 batches after a 1σ shift, see [`cusum_arl`]).
+    /// ARL ≈ 930 batches, ≈ 10.4 after a 1σ shift: Montgomery's ARL table for k = ½, h = 5; checked by
+    /// `tests/it/policy.rs::default_cusum_design_has_the_published_run_lengths`).
     pub cusum_h: f64,
     /// Start the CUSUM at `h/2` instead of 0 when a vendor leaves cold start (fast initial response,
     /// Lucas & Crosier, Technometrics 1982). Default false.

@@ -31,7 +31,7 @@
 //! # Attacks
 //!
 //! The attack functions are pure and seeded and return the new labels with a mask of the flipped items.
-//! Their recipes are published (see `/work/shared/check-values.md`, "Attack recipes"):
+//! Their recipes are published (see `tests/reference/check-values.md` §3):
 //!
 //! * [`uniform_flips`]: flip `⌊εn⌋` random items to a random other class — the random baseline of Xiao,
 //!   Xiao & Eckert, "Adversarial Label Flips Attack on Support Vector Machines", ECAI 2012;

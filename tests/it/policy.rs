@@ -172,9 +172,9 @@ fn flipped_batch_at_a_100k_pool_is_quarantined_in_cold_start_and_with_history() 
 /// * Siegmund's approximation (Siegmund, *Sequential Analysis*, 1985; in Montgomery, same chapter),
 ///   computed here from its formula.
 ///
-/// This is outside the code's own `cusum_arl` (a Brook–Evans Markov chain: values computed with it are no
-/// check of it). Tolerance: 4 Monte Carlo standard errors plus 1.5 % (the table's rounding and Siegmund's
-/// approximation error, about 1 % here); measured: 939 ± 15, 10.35, 333 ± 5, 8.35. Shown to fail on a
+/// The values come from Montgomery's table and Siegmund's approximation, not from a run-length computation
+/// of the project's own, so the check is outside the code. Tolerance: 4 Monte Carlo standard errors plus
+/// 1.5 % (the table's rounding and Siegmund's approximation error, about 1 % here); measured: 939 ± 15, 10.35, 333 ± 5, 8.35. Shown to fail on a
 /// planted defect in `cusum_step` (`k` halved): in-control ARL 145 ± 2 against the table's 930.
 #[test]
 fn default_cusum_design_has_the_published_run_lengths() {
