@@ -75,7 +75,7 @@ use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2};
 use serde::{Deserialize, Serialize};
 
 use super::learner::{predict_proba, trusted_loss, weights_view, INTERCEPT_RIDGE};
-use super::repair::{step_and_project, Ctx, Linearisation};
+use super::repair::{Ctx, Linearisation};
 
 /// The repair path of the published objective, per batch item.
 pub(super) struct AnchoredPath {
@@ -283,9 +283,7 @@ pub(super) fn anchored_path(
     }
 }
 
-/// Projected gradient on `F_γ` from the current `Y` (updated in place), with a backtracking step size
-/// carried between calls: `Y⁺ = Π_Δ(Y − η ∇F)`, accepted when
-/// `F(Y⁺) ≤ F(Y) + ⟨∇F, Y⁺ − Y⟩ + ‖Y⁺ − Y‖² / (2η)`, else `η ← η/2`.
+/// One step of the path: [`super::repair::descend_projected`] on `F_γ`.
 #[allow(clippy::too_many_arguments)]
 fn descend(
     outer: &Outer<'_, '_>,
@@ -297,51 +295,18 @@ fn descend(
     warm_d: &mut Option<Array1<f64>>,
     warm_q: &mut Option<Array1<f64>>,
 ) {
-    let ctx = outer.ctx;
-    let mut theta = ctx.theta_at(lin, y, warm_d);
-    for _ in 0..iters {
-        let (f, grad) = outer.value_grad(lin, y, &theta, gamma, warm_q);
-        if !step.is_finite() {
-            let gmax = grad.iter().fold(0.0f64, |a, &b| a.max(b.abs()));
-            if gmax <= 0.0 {
-                break;
-            }
-            *step = 0.5 / gmax;
-        } else {
-            *step *= 1.5;
-        }
-        ctx.conv.borrow_mut().repair_iterations += 1;
-        let mut accepted = None;
-        for _ in 0..30 {
-            ctx.conv.borrow_mut().repair_trials += 1;
-            let cand = step_and_project(y, &grad, outer.given, *step);
-            let diff = &cand - &*y;
-            let dd = diff.iter().map(|v| v * v).sum::<f64>();
-            if dd == 0.0 {
-                accepted = Some((cand, theta.clone(), 0.0));
-                break;
-            }
-            let th = ctx.theta_at(lin, &cand, warm_d);
-            let f_new = outer.value(&cand, &th, gamma);
-            let model = f + (&grad * &diff).sum() + dd / (2.0 * *step);
-            if f_new <= model + 1e-12 * f.abs() {
-                let max_move = diff.iter().fold(0.0f64, |a, &b| a.max(b.abs()));
-                accepted = Some((cand, th, max_move));
-                break;
-            }
-            *step *= 0.5;
-        }
-        match accepted {
-            Some((cand, th, max_move)) => {
-                *y = cand;
-                theta = th;
-                if max_move < 1e-3 {
-                    break;
-                }
-            }
-            None => break,
-        }
-    }
+    super::repair::descend_projected(
+        outer.ctx,
+        lin,
+        y,
+        outer.given,
+        iters,
+        step,
+        warm_d,
+        |y, theta| outer.value_grad(lin, y, theta, gamma, warm_q),
+        |y, theta| outer.value(y, theta, gamma),
+        1e-12,
+    );
 }
 
 /// Excess loss (nats) on nearby trusted items tolerated before the audit raises the repair's weight.

@@ -1464,13 +1464,48 @@ fn projected_gradient(
             .sum::<f64>()
             / n_b
     };
+    descend_projected(
+        ctx,
+        lin,
+        y,
+        given,
+        ctx.settings.repair_iters,
+        step,
+        warm_d,
+        |y, theta| {
+            let (f_phi, mut grad) = ctx.loss_and_hypergradient(lin, theta, warm_q);
+            for (i, &g) in given.iter().enumerate() {
+                grad[[i, g]] -= gamma / n_b;
+            }
+            (f_phi + gamma * cost(y), grad)
+        },
+        |y, theta| ctx.trusted_value(theta) + gamma * cost(y),
+        1e-15,
+    )
+}
+
+/// Projected-gradient descent on a linearised repair objective `F` from the current `Y` (updated in place),
+/// with a backtracking step size carried between calls: `Y⁺ = Π_Δ(Y − η ∇F)`, accepted when
+/// `F(Y⁺) ≤ F(Y) + ⟨∇F, Y⁺ − Y⟩ + ‖Y⁺ − Y‖² / (2η) + slack·|F(Y)|` (the standard sufficient-decrease test),
+/// else `η ← η/2`; at most `iters` accepted steps, stopping once no label mass moves by more than 0.1 %.
+/// `value_grad(Y, θ)` gives `F` and `∇_Y F` at `θ = θ_lin(Y)`, `value(Y, θ)` gives `F` alone. Returns
+/// `θ_lin` at the final `Y`. Shared by the target-crossing path and the published objective's path.
+#[allow(clippy::too_many_arguments)]
+pub(super) fn descend_projected(
+    ctx: &Ctx<'_>,
+    lin: &Linearisation,
+    y: &mut Array2<f64>,
+    given: &[usize],
+    iters: usize,
+    step: &mut f64,
+    warm_d: &mut Option<Array1<f64>>,
+    mut value_grad: impl FnMut(&Array2<f64>, &Array1<f64>) -> (f64, Array2<f64>),
+    value: impl Fn(&Array2<f64>, &Array1<f64>) -> f64,
+    slack: f64,
+) -> Array1<f64> {
     let mut theta = ctx.theta_at(lin, y, warm_d);
-    for _ in 0..ctx.settings.repair_iters {
-        let (f_phi, mut grad) = ctx.loss_and_hypergradient(lin, &theta, warm_q);
-        for (i, &g) in given.iter().enumerate() {
-            grad[[i, g]] -= gamma / n_b;
-        }
-        let f = f_phi + gamma * cost(y);
+    for _ in 0..iters {
+        let (f, grad) = value_grad(y, &theta);
         if !step.is_finite() {
             let gmax = grad.iter().fold(0.0f64, |a, &b| a.max(b.abs()));
             if gmax <= 0.0 {
@@ -1492,9 +1527,9 @@ fn projected_gradient(
                 break;
             }
             let th = ctx.theta_at(lin, &cand, warm_d);
-            let f_new = ctx.trusted_value(&th) + gamma * cost(&cand);
+            let f_new = value(&cand, &th);
             let model = f + (&grad * &diff).sum() + dd / (2.0 * *step);
-            if f_new <= model + 1e-15 * f.abs() {
+            if f_new <= model + slack * f.abs() {
                 let max_move = diff.iter().fold(0.0f64, |a, &b| a.max(b.abs()));
                 accepted = Some((cand, th, max_move));
                 break;

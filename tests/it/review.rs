@@ -872,6 +872,55 @@ fn systematic(
     (labels, mask)
 }
 
+/// The plant's classes that the lab's first trusted set and a vendor confuse: most PET labelled PP, most
+/// glass labelled steel, most paper labelled cardboard.
+const CONFUSED: [(usize, usize); 3] = [(5, 6), (2, 7), (4, 1)];
+
+/// The lab's first trusted set, sharing the vendor's systematic error, and the corrected one, written into
+/// `dir` as `trusted-v1.csv` and `trusted-v2.csv`; returns their paths.
+fn mistaken_trusted_files(dir: &Path) -> (String, String) {
+    let (tx, ty) = plant().sample_per_class(20, 777);
+    let ids = scenario::item_ids("lab", ty.len());
+    let wrong = CONFUSED
+        .iter()
+        .fold(ty.clone(), |l, &(from, to)| systematic(&tx, &l, from, to).0);
+    let write = |name: &str, labels: &[usize]| {
+        let b = Batch {
+            ids: ids.clone(),
+            labels: labels.to_vec(),
+            x: tx.clone(),
+            flipped: vec![false; labels.len()],
+        };
+        let p = dir.join(name);
+        std::fs::write(&p, b.csv()).unwrap();
+        p.display().to_string()
+    };
+    (
+        write("trusted-v1.csv", &wrong),
+        write("trusted-v2.csv", &ty),
+    )
+}
+
+/// The vendor's 400-item batch with the same three systematic errors (`flipped` marks them).
+fn biased_batch() -> Batch {
+    let (x, y) = plant().sample_per_class(50, 32);
+    let mut labels = y;
+    let mut mask = vec![false; labels.len()];
+    for &(from, to) in &CONFUSED {
+        let (l, m) = systematic(&x, &labels, from, to);
+        labels = l;
+        for (a, b) in mask.iter_mut().zip(m) {
+            *a |= b;
+        }
+    }
+    Batch {
+        ids: scenario::item_ids("s1", 400),
+        labels,
+        x,
+        flipped: mask,
+    }
+}
+
 #[test]
 fn trusted_correction_rescan_flags_an_accepted_batch_and_withdraw_pulls_it() {
     // The lab's first trusted set shares a vendor's systematic error (most PET items labeled PP, most
@@ -880,25 +929,7 @@ fn trusted_correction_rescan_flags_an_accepted_batch_and_withdraw_pulls_it() {
     // the accepted batch, and a reviewer withdraws it.
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path().join("ws");
-    let (cardboard, glass, paper, pet, pp, steel) = (1, 2, 4, 5, 6, 7);
-    let (tx, ty) = plant().sample_per_class(20, 777);
-    let ids = scenario::item_ids("lab", ty.len());
-    let (wrong, _) = systematic(&tx, &ty, pet, pp);
-    let (wrong, _) = systematic(&tx, &wrong, glass, steel);
-    let (wrong, _) = systematic(&tx, &wrong, paper, cardboard);
-    let write = |name: &str, labels: &[usize]| {
-        let b = Batch {
-            ids: ids.clone(),
-            labels: labels.to_vec(),
-            x: tx.clone(),
-            flipped: vec![false; labels.len()],
-        };
-        let p = tmp.path().join(name);
-        std::fs::write(&p, b.csv()).unwrap();
-        p.display().to_string()
-    };
-    let first = write("trusted-v1.csv", &wrong);
-    let fixed = write("trusted-v2.csv", &ty);
+    let (first, fixed) = mistaken_trusted_files(tmp.path());
     let dir_s = dir.display().to_string();
     let out = lw(&[
         "init",
@@ -920,18 +951,8 @@ fn trusted_correction_rescan_flags_an_accepted_batch_and_withdraw_pulls_it() {
     let d = Daemon::start(&ws);
     // The vendor's batch has the same three systematic errors; it is the vendor's first batch, so it is
     // judged against the trusted set alone.
-    let (x, y) = plant().sample_per_class(50, 32);
-    let (labels, m1) = systematic(&x, &y, pet, pp);
-    let (labels, m2) = systematic(&x, &labels, glass, steel);
-    let (labels, m3) = systematic(&x, &labels, paper, cardboard);
-    let mask: Vec<bool> = (0..labels.len()).map(|i| m1[i] || m2[i] || m3[i]).collect();
-    assert!(mask.iter().filter(|m| **m).count() >= 120);
-    let sys = Batch {
-        ids: scenario::item_ids("s1", 400),
-        labels,
-        x,
-        flipped: mask,
-    };
+    let sys = biased_batch();
+    assert!(sys.flipped.iter().filter(|m| **m).count() >= 120);
     ws.deliver("north-sort", "s1.csv", &sys.csv());
     ws.wait_settled(1, T);
     wait_filed(&dir_s, 1);
@@ -1029,25 +1050,7 @@ fn pool_sweep_lists_a_bias_accepted_from_day_one_once_the_trusted_set_is_right()
     // the clean batch alone.
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path().join("ws");
-    let (cardboard, glass, paper, pet, pp, steel) = (1, 2, 4, 5, 6, 7);
-    let (tx, ty) = plant().sample_per_class(20, 777);
-    let ids = scenario::item_ids("lab", ty.len());
-    let (wrong, _) = systematic(&tx, &ty, pet, pp);
-    let (wrong, _) = systematic(&tx, &wrong, glass, steel);
-    let (wrong, _) = systematic(&tx, &wrong, paper, cardboard);
-    let write = |name: &str, labels: &[usize]| {
-        let b = Batch {
-            ids: ids.clone(),
-            labels: labels.to_vec(),
-            x: tx.clone(),
-            flipped: vec![false; labels.len()],
-        };
-        let p = tmp.path().join(name);
-        std::fs::write(&p, b.csv()).unwrap();
-        p.display().to_string()
-    };
-    let first = write("trusted-v1.csv", &wrong);
-    let fixed = write("trusted-v2.csv", &ty);
+    let (first, fixed) = mistaken_trusted_files(tmp.path());
     let dir_s = dir.display().to_string();
     let out = lw(&[
         "init",
@@ -1069,24 +1072,14 @@ fn pool_sweep_lists_a_bias_accepted_from_day_one_once_the_trusted_set_is_right()
         ("min_free_bytes = 67108864", "min_free_bytes = 1"),
     ]);
     let d = Daemon::start(&ws);
-    let (x, y) = plant().sample_per_class(50, 32);
-    let (labels, m1) = systematic(&x, &y, pet, pp);
-    let (labels, m2) = systematic(&x, &labels, glass, steel);
-    let (labels, m3) = systematic(&x, &labels, paper, cardboard);
-    let mask: Vec<bool> = (0..labels.len()).map(|i| m1[i] || m2[i] || m3[i]).collect();
-    let sys_ids = scenario::item_ids("s1", 400);
-    let planted: HashSet<String> = sys_ids
+    let sys = biased_batch();
+    let planted: HashSet<String> = sys
+        .ids
         .iter()
-        .zip(&mask)
+        .zip(&sys.flipped)
         .filter(|(_, m)| **m)
         .map(|(id, _)| id.clone())
         .collect();
-    let sys = Batch {
-        ids: sys_ids,
-        labels,
-        x,
-        flipped: mask,
-    };
     ws.deliver("north-sort", "s1.csv", &sys.csv());
     ws.wait_settled(1, T);
     ws.deliver("east-bale", "c1.csv", &clean_batch("c1", 400, 33).csv());
