@@ -100,6 +100,23 @@ pub fn write_atomic(
     Ok(written.remove(0))
 }
 
+/// Write `bytes` to the file at `path` atomically (see the module doc), for a path someone named (an
+/// `--output` option): the temporary file goes next to it, in `path`'s folder (the current folder for a
+/// bare name). Fails with `InvalidInput` when `path` has no file name or a name that is not UTF-8.
+pub fn write_atomic_at(path: &Path, bytes: &[u8], mode: Option<u32>) -> io::Result<PathBuf> {
+    let name = path.file_name().and_then(|n| n.to_str()).ok_or_else(|| {
+        io::Error::new(
+            io::ErrorKind::InvalidInput,
+            "the path has no file name, or one that is not UTF-8",
+        )
+    })?;
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    write_atomic(dir, name, bytes, mode)
+}
+
 /// Write several files into `dir`, each atomically, with one fsync of the folder for all of them (see the
 /// module doc). `mode` sets their permission bits (otherwise the umask decides). On an error the
 /// temporary files are removed and no final name is touched that was not already renamed. Returns the
@@ -235,6 +252,45 @@ mod tests {
         assert_eq!(remove_stale_temps(d.path()).unwrap(), 1);
         assert!(!tmp.exists());
         assert_eq!(names_in(d.path()).len(), 5);
+    }
+
+    /// Every temporary file is written before the first rename: when a later file of the group cannot
+    /// even be written, no final name changes (a writer that renamed each file as soon as it was written
+    /// would already have replaced `a.json`).
+    #[test]
+    fn a_group_renames_nothing_until_every_file_is_written() {
+        let d = tempfile::tempdir().unwrap();
+        write_atomic(d.path(), "a.json", b"old", None).unwrap();
+        let r = write_atomic_all(
+            d.path(),
+            &[
+                ("a.json", &b"new"[..]),
+                ("no-such-folder/b.json", &b"b"[..]),
+            ],
+            None,
+        );
+        assert!(r.is_err());
+        assert_eq!(fs::read(d.path().join("a.json")).unwrap(), b"old");
+        assert_eq!(names_in(d.path()), ["a.json"]);
+    }
+
+    #[test]
+    fn a_named_path_is_written_atomically_in_its_own_folder() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("audit.txt");
+        fs::write(&p, b"old").unwrap();
+        assert_eq!(write_atomic_at(&p, b"new", Some(0o600)).unwrap(), p);
+        assert_eq!(fs::read(&p).unwrap(), b"new");
+        assert_eq!(
+            fs::metadata(&p).unwrap().permissions().mode() & 0o777,
+            0o600
+        );
+        assert_eq!(names_in(d.path()), ["audit.txt"]);
+        // No file name, or a folder that does not exist: an error, nothing written.
+        assert!(write_atomic_at(d.path(), b"x", None).is_err());
+        assert!(write_atomic_at(Path::new("/"), b"x", None).is_err());
+        assert!(write_atomic_at(&d.path().join("missing").join("a"), b"x", None).is_err());
+        assert_eq!(names_in(d.path()), ["audit.txt"]);
     }
 
     #[test]

@@ -92,7 +92,8 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         }
     }
     match &args.output {
-        Some(p) => std::fs::write(p, &out)
+        Some(p) => labelweir::fsx::write_atomic_at(p, &out, None)
+            .map(|_| ())
             .map_err(|e| Failure::new(exit::IO, format!("write {}: {e}", p.display())))?,
         None => std::io::stdout().write_all(&out)?,
     }

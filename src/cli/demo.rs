@@ -238,11 +238,9 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             std::thread::spawn(move || {
                 for d in drops {
                     let inbox = ws.vendor_inbox(d.vendor);
-                    let tmp = inbox.join(format!(".{}.part", d.name));
-                    let ok = std::fs::write(&tmp, &d.bytes)
-                        .and_then(|_| std::fs::rename(&tmp, inbox.join(&d.name)));
-                    match ok {
-                        Ok(()) => println!("  dropped {}/{} ({})", d.vendor, d.name, d.note),
+                    // Written to a hidden temporary name and renamed into place, as a vendor should.
+                    match labelweir::fsx::write_atomic(&inbox, &d.name, &d.bytes, None) {
+                        Ok(_) => println!("  dropped {}/{} ({})", d.vendor, d.name, d.note),
                         Err(e) => eprintln!("  could not drop {}: {e}", d.name),
                     }
                     std::thread::sleep(pace);

@@ -185,7 +185,8 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
                 export_csv(&export, &config)?
             };
             match a.output {
-                Some(p) => std::fs::write(&p, bytes)
+                Some(p) => labelweir::fsx::write_atomic_at(&p, &bytes, None)
+                    .map(|_| ())
                     .map_err(|e| Failure::new(exit::IO, format!("write {}: {e}", p.display())))?,
                 None => std::io::stdout().write_all(&bytes)?,
             }

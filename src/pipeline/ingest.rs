@@ -269,8 +269,9 @@ pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Clai
             });
         }
     }
-    to_dir.sync_all().map_err(io("fsync", &to))?;
-    from_dir.sync_all().map_err(io("fsync", &from))?;
+    drop((from_dir, to_dir));
+    crate::fsx::sync_dir(&to).map_err(io("fsync", &to))?;
+    crate::fsx::sync_dir(&from).map_err(io("fsync", &from))?;
     Ok(Some(Claimed { record }))
 }
 

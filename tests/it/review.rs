@@ -360,6 +360,22 @@ fn review_loop_while_the_daemon_runs() {
     assert!(v.status.success() && v.stdout.is_empty());
     let v = lw(&["audit", &dir, "--since", "2999-01-01", "--json"]);
     assert!(v.status.success() && v.stdout.is_empty());
+    // `--output` replaces the file atomically (temporary file, rename): a second link to the old file
+    // keeps the old bytes, where writing in place would have changed both names.
+    let other = ws.tmp.path().join("kept-audit.jsonl");
+    let named = ws.tmp.path().join("audit.jsonl");
+    std::fs::write(&other, b"old\n").unwrap();
+    std::fs::hard_link(&other, &named).unwrap();
+    let out = lw(&[
+        "audit",
+        &dir,
+        "--json",
+        "--output",
+        &named.display().to_string(),
+    ]);
+    assert!(out.status.success(), "{}", stderr(&out));
+    assert_eq!(std::fs::read(&named).unwrap(), audit.stdout);
+    assert_eq!(std::fs::read(&other).unwrap(), b"old\n");
 
     assert!(d.stop().success());
     assert!(
@@ -783,8 +799,12 @@ fn trusted_set_provenance_window_and_inbox_cannot_touch_it() {
         stderr(&out)
     );
 
-    // Export: CSV that `trusted add` reads back, JSON Lines with provenance.
+    // Export: CSV that `trusted add` reads back, JSON Lines with provenance. The export replaces the file
+    // atomically: a second link to the old file keeps the old bytes.
     let exported = ws.tmp.path().join("export.csv");
+    let other = ws.tmp.path().join("kept-export.csv");
+    std::fs::write(&other, b"old\n").unwrap();
+    std::fs::hard_link(&other, &exported).unwrap();
     let out = lw(&[
         "trusted",
         "export",
@@ -795,6 +815,7 @@ fn trusted_set_provenance_window_and_inbox_cannot_touch_it() {
     assert!(out.status.success(), "{}", stderr(&out));
     let table = labelweir::data::read_table(&exported, &Default::default(), None).unwrap();
     assert_eq!(table.len(), 87);
+    assert_eq!(std::fs::read(&other).unwrap(), b"old\n");
     let jl = lw(&["trusted", "export", &dir, "--format", "jsonl"]);
     let first: Value =
         serde_json::from_str(String::from_utf8_lossy(&jl.stdout).lines().next().unwrap()).unwrap();
