@@ -107,9 +107,9 @@ impl Workspace {
 }
 
 /// Filesystems on which inotify does not see files written elsewhere (by other clients of a network share,
-/// or through a FUSE daemon), by their `statfs` magic number. Values of Linux's `include/uapi/linux/magic.h`
-/// as the statfs(2) manual page lists them, written here from memory; `NFS_SUPER_MAGIC` is checked against
-/// rustix's constant in a test.
+/// or through a FUSE daemon), by their `statfs` magic number (`f_type`). Values from the Linux statfs(2)
+/// manual page (man-pages 6.03, the `f_type` table), Ceph's from Linux's `include/uapi/linux/magic.h`
+/// (`CEPH_SUPER_MAGIC`, not in that table); `remote_filesystem_kind`'s test checks them one by one.
 const REMOTE_FILESYSTEMS: [(u64, &str); 8] = [
     (0x6969, "NFS"),
     (0x517B, "SMB"),
@@ -124,8 +124,15 @@ const REMOTE_FILESYSTEMS: [(u64, &str); 8] = [
 /// The kind of network or FUSE filesystem holding `path`, if it is one (`None` also when `statfs` fails).
 pub fn remote_filesystem(path: &Path) -> Option<&'static str> {
     let st = rustix::fs::statfs(path).ok()?;
-    // `f_type` is a C long; the magic numbers are 32-bit.
-    let magic = (st.f_type as u64) & 0xFFFF_FFFF;
+    #[allow(clippy::unnecessary_cast)] // `f_type`'s C type differs between architectures
+    remote_filesystem_kind(st.f_type as i64)
+}
+
+/// The classification behind [`remote_filesystem`], a pure function of `statfs`'s `f_type`: the kind of
+/// network or FUSE filesystem, or `None` for any other. `f_type` is a C long; the magic numbers are 32-bit
+/// (a 32-bit `f_type` may arrive sign-extended, as CIFS's `0xFF534D42` does), so only the low 32 bits count.
+fn remote_filesystem_kind(f_type: i64) -> Option<&'static str> {
+    let magic = (f_type as u64) & 0xFFFF_FFFF;
     REMOTE_FILESYSTEMS
         .iter()
         .find(|(m, _)| *m == magic)
@@ -288,13 +295,43 @@ mod tests {
     use super::*;
 
     #[test]
+    #[allow(clippy::unnecessary_cast)] // the constant's C type differs between architectures
     fn remote_filesystems_are_told_apart_from_local_ones() {
-        // The one magic number rustix exports, against the table written from memory.
+        // Linux statfs(2) manual page, man-pages 6.03 (2022-10-30), the `f_type` table: the network and
+        // FUSE filesystems...
+        for (magic, kind) in [
+            (0x6969_i64, "NFS"),                     // NFS_SUPER_MAGIC
+            (0x517b, "SMB"),                         // SMB_SUPER_MAGIC
+            (0xff53_4d42, "CIFS"),                   // CIFS_MAGIC_NUMBER
+            (0xfe53_4d42, "SMB2"),                   // SMB2_MAGIC_NUMBER
+            (0x6573_5546, "FUSE"),                   // FUSE_SUPER_MAGIC
+            (0x0102_1997, "9p"),                     // V9FS_MAGIC
+            (0x5346_414f, "AFS"),                    // AFS_SUPER_MAGIC
+            (0x00c3_6400, "Ceph"), // CEPH_SUPER_MAGIC, include/uapi/linux/magic.h (not in the table)
+            (0xff53_4d42_u32 as i32 as i64, "CIFS"), // a 32-bit f_type, sign-extended
+        ] {
+            assert_eq!(remote_filesystem_kind(magic), Some(kind), "{magic:#x}");
+        }
+        // ... and local ones from the same table, which must not count as remote.
+        for magic in [
+            0xef53_i64,  // EXT4_SUPER_MAGIC
+            0x5846_5342, // XFS_SUPER_MAGIC
+            0x9123_683e, // BTRFS_SUPER_MAGIC
+            0x0102_1994, // TMPFS_MAGIC (one bit from V9FS_MAGIC)
+            0x794c_7630, // OVERLAYFS_SUPER_MAGIC
+            0x9fa0,      // PROC_SUPER_MAGIC
+            0x6968,      // next to NFS_SUPER_MAGIC
+            0,
+        ] {
+            assert_eq!(remote_filesystem_kind(magic), None, "{magic:#x}");
+        }
+        // The one magic number rustix exports agrees with the table.
         assert_eq!(
-            REMOTE_FILESYSTEMS[0].0,
-            (rustix::fs::NFS_SUPER_MAGIC as u64) & 0xFFFF_FFFF
+            remote_filesystem_kind(rustix::fs::NFS_SUPER_MAGIC as i64),
+            Some("NFS")
         );
-        // The test machine's temporary folder is local (ext4, xfs, btrfs, tmpfs or overlayfs).
+        // Through statfs: the test machine's temporary folder is local (ext4, xfs, btrfs, tmpfs or
+        // overlayfs), and a missing folder is no remote one.
         let d = tempfile::tempdir().unwrap();
         assert_eq!(remote_filesystem(d.path()), None);
         assert_eq!(remote_filesystem(Path::new("/no/such/folder")), None);
