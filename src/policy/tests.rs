@@ -624,3 +624,20 @@ fn flagged_share_settings_are_validated() {
         assert!(bad.validate().is_err());
     }
 }
+
+/// Mutation testing found three changes the library's tests let through (DEVELOPERS.md, "Mutation
+/// testing"): `n % 2` → `n / 2` or `n + 2` in `median` (the worked examples had equal middle values) and
+/// `/ MAD` → `· MAD` in `modified_z_scores` (their MAD was 1). Iglewicz & Hoaglin's formula
+/// `M_i = 0.6745 (x_i − median) / MAD`, computed by hand (no published worked example with these values):
+/// data 2, 4, 6, 8, 100: median 6, |x − 6| = 4, 2, 0, 2, 94 → sorted 0, 2, 2, 4, 94, MAD 2;
+/// M(100) = 0.6745 · 94 / 2 = 31.70150, M(2) = 0.6745 · (−4) / 2 = −1.3490. Medians: the middle value, or
+/// the mean of the two middle values (common practice).
+#[test]
+fn median_and_modified_z_with_distinct_middle_values_and_a_mad_of_two() {
+    assert_eq!(median(&[10.0, 1.0, 2.0]), 2.0);
+    assert_eq!(median(&[100.0, 4.0, 1.0, 3.0, 2.0]), 3.0);
+    assert_eq!(median(&[10.0, 1.0, 3.0, 2.0]), 2.5);
+    let m = modified_z_scores(&[2.0, 4.0, 6.0, 8.0, 100.0]).expect("MAD > 0");
+    assert_relative_eq!(m[4], 31.70150, epsilon = 1e-5);
+    assert_relative_eq!(m[0], -1.3490, epsilon = 1e-4);
+}
