@@ -1264,3 +1264,48 @@ fn bench_daemon_measures_the_whole_path() {
         "rate {rate} items/s vs {total} items in {wall} s:\n{text}"
     );
 }
+
+/// The implicit-function solves `H v = g` by conjugate gradients (the path for models with more than
+/// `dense_max_params` parameters) against the dense Cholesky path on the same batch: both solve the same
+/// linear system, so the repair cost and the items' repair signals agree to the solvers' tolerances (common
+/// practice: two solvers of one system agree; no outside source), and the CG path reports the iterations it
+/// ran. Mutation testing (DEVELOPERS.md, "Mutation testing") found that no library test reached the CG path
+/// of `solve_h`: its iteration count could be subtracted or multiplied unnoticed.
+#[test]
+fn cg_and_dense_implicit_function_solves_agree_and_cg_counts_its_iterations() {
+    let [(tx, ty), (px, py), (bx, mut by)] = base_data(21, 60, 30);
+    for i in [0, 7, 14] {
+        by[i] = (by[i] + 1) % 3;
+    }
+    let dense = ModelSettings::default();
+    let cg = ModelSettings {
+        dense_max_params: 0,
+        ..ModelSettings::default()
+    };
+    let st = Standardizer::fit(&[tx.view(), px.view(), bx.view()]).expect("standardise");
+    let a_dense = assess_exact(&dense, &st, 3, (&tx, &ty), (&px, &py), (&bx, &by));
+    let a_cg = assess_exact(&cg, &st, 3, (&tx, &ty), (&px, &py), (&bx, &by));
+    assert_eq!(a_dense.convergence.linear_solver, "dense");
+    assert_eq!(a_cg.convergence.linear_solver, "cg");
+    assert!(a_cg.convergence.linear_converged, "{:?}", a_cg.convergence);
+    // At least one CG iteration per solve; the path makes several solves.
+    assert!(
+        a_cg.convergence.linear_iterations >= 3,
+        "{:?}",
+        a_cg.convergence
+    );
+    assert!(
+        (a_cg.repair_cost - a_dense.repair_cost).abs() <= 1e-3 * (1.0 + a_dense.repair_cost.abs()),
+        "repair cost: cg {} vs dense {}",
+        a_cg.repair_cost,
+        a_dense.repair_cost
+    );
+    for (c, d) in a_cg.items.iter().zip(&a_dense.items) {
+        assert!(
+            (c.repair_signal - d.repair_signal).abs() <= 0.05,
+            "repair signal: cg {} vs dense {}",
+            c.repair_signal,
+            d.repair_signal
+        );
+    }
+}
