@@ -57,7 +57,7 @@ pub fn read_untrusted(path: &Path, max_bytes: u64) -> io::Result<Vec<u8>> {
 }
 
 /// Whether `name` is a temporary name of [`write_atomic_all`] (`.NAME.tmp-PID`).
-pub fn is_temp_name(name: &str) -> bool {
+fn is_temp_name(name: &str) -> bool {
     name.starts_with('.')
         && name.rsplit_once(".tmp-").is_some_and(|(stem, pid)| {
             stem.len() > 1 && !pid.is_empty() && pid.bytes().all(|b| b.is_ascii_digit())

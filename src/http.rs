@@ -64,7 +64,7 @@ struct AppState {
 }
 
 /// The router (exposed for tests).
-pub fn router(metrics: Arc<Metrics>, ready: Arc<Readiness>) -> Router {
+fn router(metrics: Arc<Metrics>, ready: Arc<Readiness>) -> Router {
     Router::new()
         .route("/metrics", get(metrics_handler))
         .route("/livez", get(|| async { "ok\n" }))

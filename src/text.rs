@@ -31,7 +31,7 @@ pub fn is_unsafe_char(c: char) -> bool {
 
 /// Remove unsafe characters and cut to at most `max_chars` characters, the last of them `…` when the
 /// string was cut.
-pub fn sanitize_text(s: &str, max_chars: usize) -> String {
+fn sanitize_text(s: &str, max_chars: usize) -> String {
     let clean: Vec<char> = s.chars().filter(|c| !is_unsafe_char(*c)).collect();
     if clean.len() <= max_chars {
         clean.into_iter().collect()
@@ -42,8 +42,8 @@ pub fn sanitize_text(s: &str, max_chars: usize) -> String {
     }
 }
 
-/// A vendor string for a terminal, a log line or a table: [`sanitize_text`] to 121 characters (120 and
-/// an ellipsis when longer).
+/// A vendor string for a terminal, a log line or a table: unsafe characters removed, cut to 121
+/// characters (120 and an ellipsis when longer).
 pub fn sanitize(s: &str) -> String {
     sanitize_text(s, 121)
 }
