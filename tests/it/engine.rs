@@ -1288,6 +1288,10 @@ fn cg_and_dense_implicit_function_solves_agree_and_cg_counts_its_iterations() {
     assert_eq!(a_dense.convergence.linear_solver, "dense");
     assert_eq!(a_cg.convergence.linear_solver, "cg");
     assert!(a_cg.convergence.linear_converged, "{:?}", a_cg.convergence);
+    // A well-posed problem: every inner solve converged, and the record says so.
+    for a in [&a_dense, &a_cg] {
+        assert!(a.convergence.inner_converged, "{:?}", a.convergence);
+    }
     // At least one CG iteration per solve; the path makes several solves.
     assert!(
         a_cg.convergence.linear_iterations >= 3,
