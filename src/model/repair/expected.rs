@@ -106,7 +106,7 @@ pub(crate) fn expected_damage(
 
 /// The label hypergradient `∂Φ/∂Y` (rows `batch` of the training set) at the optimum `theta` of `obj`.
 ///
-/// `∂Φ/∂Y_ik = φ_iᵀ q_k / N` with `H q = ∇_θ Φ` (implicit function theorem; see [`assess`]). Solved densely
+/// `∂Φ/∂Y_ik = φ_iᵀ q_k / N` with `H q = ∇_θ Φ` (implicit function theorem; see [`super::assess`]). Solved densely
 /// when `p·K ≤ settings.dense_max_params`, else by CG. Exposed for the derivative checks.
 pub fn label_hypergradient(
     settings: &ModelSettings,

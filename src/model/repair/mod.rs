@@ -1,7 +1,7 @@
 //! Bilevel label repair along a decreasing penalty path (Zhang, Zhu & Wright, AAAI 2018).
 //!
 //! Derivations are written beside the code that computes them. The assessment runs in phases, one file
-//! each: the reference model and the target ([`reference`]), the learner's linearisation around pool ∪
+//! each: the reference model and the target ([`mod@reference`]), the learner's linearisation around pool ∪
 //! batch (`inner`), the penalty path ([`path`]), the expected clean-batch figures ([`expected`]), and the
 //! per-item fusion and report (`assess`).
 
