@@ -67,12 +67,16 @@ use std::collections::VecDeque;
 use serde::{Deserialize, Serialize};
 
 mod admission;
+pub mod evidence;
 mod judge;
 mod settings;
+pub mod shift;
 mod stats;
 
 pub use admission::{item_fate, AdmissionSettings, FlaggedItems, ItemFate};
+pub use evidence::{ItemEvidence, ItemJudgement};
 pub use settings::{PolicyError, PolicySettings};
+pub use shift::{Reach, ShiftReport};
 pub use stats::{cusum_step, median, modified_z_scores};
 
 /// The consistency constant that makes the MAD estimate σ for normal data: `1 / Φ⁻¹(0.75)`.
@@ -132,6 +136,20 @@ pub struct BatchSignals {
     /// Standard deviation of [`BatchSignals::expected_damage`], in nats.
     #[serde(default)]
     pub expected_damage_sd: f64,
+    /// The computed clean level: the flagged share a batch of these very items would show if every label
+    /// were right (from the engine's assessment). 0 when unknown (`clean_level_unknown` is used).
+    #[serde(default)]
+    pub clean_flagged_share: f64,
+    /// Items beyond the trusted set's reach ([`shift`]); their labels are not judged.
+    #[serde(default)]
+    pub unlike_items: usize,
+    /// Flagged items among those beyond reach (left out of the flagged count the label rules read).
+    #[serde(default)]
+    pub unlike_flagged: usize,
+    /// The share of the reference sample beyond reach (what a batch like the pool shows); 0 when the shift
+    /// check did not run.
+    #[serde(default)]
+    pub unlike_tail: f64,
 }
 
 impl BatchSignals {
@@ -158,7 +176,69 @@ impl BatchSignals {
             expected_flagged_sd: a.expected_flagged_sd,
             expected_damage: a.expected_damage,
             expected_damage_sd: a.expected_damage_sd,
+            clean_flagged_share: a.expected_flagged_share,
+            unlike_items: 0,
+            unlike_flagged: 0,
+            unlike_tail: 0.0,
         }
+    }
+
+    /// The same signals with the shift check's findings: items beyond reach are counted, and their flags
+    /// are left out of the items the label rules judge.
+    pub fn with_shift(
+        mut self,
+        a: &crate::model::Assessment,
+        flag_threshold: f64,
+        report: &ShiftReport,
+    ) -> Self {
+        self.unlike_items = report.unlike_items;
+        self.unlike_tail = report.tail;
+        self.unlike_flagged = a
+            .items
+            .iter()
+            .filter(|i| i.suspicion >= flag_threshold)
+            .filter(|i| report.beyond.get(i.index).copied().unwrap_or(false))
+            .count();
+        self
+    }
+
+    /// Flagged items of the batch: `round(flagged_share · items)` (0 for a non-finite share).
+    pub fn flagged_items(&self) -> usize {
+        if self.flagged_share.is_finite() {
+            (self.flagged_share.clamp(0.0, 1.0) * self.items as f64).round() as usize
+        } else {
+            0
+        }
+    }
+
+    /// Items whose labels are judged: those within the trusted set's reach.
+    pub fn judged_items(&self) -> usize {
+        self.items.saturating_sub(self.unlike_items)
+    }
+
+    /// Flagged items among the judged ones.
+    pub fn judged_flagged(&self) -> usize {
+        self.flagged_items()
+            .saturating_sub(self.unlike_flagged)
+            .min(self.judged_items())
+    }
+
+    /// The clean level `c` the item rules start from: the computed one, or `clean_level_unknown`.
+    pub fn clean_level(&self, settings: &PolicySettings) -> f64 {
+        if self.clean_flagged_share > 0.0 && self.clean_flagged_share.is_finite() {
+            self.clean_flagged_share.min(1.0)
+        } else {
+            settings.clean_level_unknown
+        }
+    }
+
+    /// Whether the shift check found the batch's items unlike the pool (see [`shift::unlike_pool`]), and
+    /// the binomial tail behind it.
+    pub fn unlike_pool(&self, settings: &PolicySettings) -> (bool, f64) {
+        if self.unlike_tail <= 0.0 {
+            return (false, 1.0);
+        }
+        shift::unlike_pool(settings, self.items, self.unlike_items, self.unlike_tail)
     }
 
     /// Whether the engine's learner separates this batch's classes poorly: labels that follow its reference
@@ -182,6 +262,10 @@ impl BatchSignals {
             expected_flagged_sd: 0.0,
             expected_damage: 0.0,
             expected_damage_sd: 0.0,
+            clean_flagged_share: 0.0,
+            unlike_items: 0,
+            unlike_flagged: 0,
+            unlike_tail: 0.0,
         }
     }
 }
@@ -207,6 +291,9 @@ pub struct VendorHistory {
     /// records written before the flagged share was judged; it then starts in cold start).
     #[serde(default)]
     pub flagged_share: SignalHistory,
+    /// The flagged items as one stream ([`evidence`]): empty in records written before it existed.
+    #[serde(default)]
+    pub evidence: ItemEvidence,
 }
 
 /// The accepted values of one signal other than the repair cost, with its CUSUM state (see
@@ -233,6 +320,7 @@ impl Default for VendorHistory {
             cusum: 0.0,
             accepted_total: 0,
             flagged_share: SignalHistory::default(),
+            evidence: ItemEvidence::default(),
         }
     }
 }
@@ -312,6 +400,7 @@ impl VendorHistory {
             signals.repair_cost.clamp(0.0, 1.0),
         );
         if signals.flagged_share.is_finite() {
+            self.evidence.record_accepted(settings, signals);
             let f = &mut self.flagged_share;
             record_value(
                 settings,
@@ -323,6 +412,31 @@ impl VendorHistory {
                 &mut f.cusum,
                 signals.flagged_share.clamp(0.0, 1.0),
             );
+        }
+    }
+
+    /// Record a batch a reviewer released: a person judged it, so its values join the baselines directly
+    /// (no CUSUM step, no holding aside) and its items join the item evidence as released (they may lift
+    /// the vendor's level, see [`evidence`]). This is what keeps a vendor whose honest batches the
+    /// computed limits hold from staying in cold start for ever.
+    pub fn record_released(&mut self, settings: &PolicySettings, signals: &BatchSignals) {
+        if !signals.repair_cost.is_finite() {
+            return;
+        }
+        let window = settings.history_window.max(1);
+        self.accepted_total += 1;
+        self.accepted_costs
+            .push_back(signals.repair_cost.clamp(0.0, 1.0));
+        while self.accepted_costs.len() > window {
+            self.accepted_costs.pop_front();
+        }
+        if signals.flagged_share.is_finite() {
+            self.evidence.record_released(settings, signals);
+            let f = &mut self.flagged_share;
+            f.accepted.push_back(signals.flagged_share.clamp(0.0, 1.0));
+            while f.accepted.len() > window {
+                f.accepted.pop_front();
+            }
         }
     }
 
@@ -342,6 +456,7 @@ impl VendorHistory {
     pub fn reset_cusum(&mut self, settings: &PolicySettings) {
         let window = settings.history_window.max(1);
         self.cusum = 0.0;
+        self.evidence.cusum = 0.0;
         self.accepted_costs.extend(self.pending_costs.drain(..));
         while self.accepted_costs.len() > window {
             self.accepted_costs.pop_front();
@@ -407,6 +522,14 @@ pub enum ReasonCode {
     FlaggedShareOutlier,
     /// Quarantine: the CUSUM of the vendor's standardised flagged share crossed `h` (slow drift).
     FlaggedShareDrift,
+    /// Quarantine: more flagged items than the binomial noise allows at the vendor's level
+    /// ([`evidence`]).
+    FlaggedItemsExcess,
+    /// Quarantine: the Bernoulli CUSUM over the vendor's items crossed `h` ([`evidence`]).
+    FlaggedItemsDrift,
+    /// Quarantine for operations, not label trouble: the batch's items are unlike the pool and the
+    /// trusted set does not cover them ([`shift`]).
+    ItemsUnlikePool,
 }
 
 impl ReasonCode {
@@ -426,11 +549,14 @@ impl ReasonCode {
             ReasonCode::ColdStartFlaggedShare => "cold_start_flagged_share",
             ReasonCode::FlaggedShareOutlier => "flagged_share_outlier",
             ReasonCode::FlaggedShareDrift => "flagged_share_drift",
+            ReasonCode::FlaggedItemsExcess => "flagged_items_excess",
+            ReasonCode::FlaggedItemsDrift => "flagged_items_drift",
+            ReasonCode::ItemsUnlikePool => "items_unlike_pool",
         }
     }
 
     /// Every code, for documentation and schema checks.
-    pub const ALL: [ReasonCode; 13] = [
+    pub const ALL: [ReasonCode; 16] = [
         ReasonCode::WithinBaseline,
         ReasonCode::WithinColdStartLimits,
         ReasonCode::ScoreInvalid,
@@ -444,7 +570,22 @@ impl ReasonCode {
         ReasonCode::ColdStartFlaggedShare,
         ReasonCode::FlaggedShareOutlier,
         ReasonCode::FlaggedShareDrift,
+        ReasonCode::FlaggedItemsExcess,
+        ReasonCode::FlaggedItemsDrift,
+        ReasonCode::ItemsUnlikePool,
     ];
+
+    /// Whether the code says something about the batch's labels (false for the accepting codes, an
+    /// invalid score and `items_unlike_pool`, which is about the items, not their labels).
+    pub fn is_label_finding(self) -> bool {
+        !matches!(
+            self,
+            ReasonCode::WithinBaseline
+                | ReasonCode::WithinColdStartLimits
+                | ReasonCode::ScoreInvalid
+                | ReasonCode::ItemsUnlikePool
+        )
+    }
 }
 
 impl std::fmt::Display for ReasonCode {
@@ -643,6 +784,10 @@ pub struct Decision {
     /// The signals the decision read (absent in older records and from [`decide`]).
     #[serde(default)]
     pub signals: Option<BatchSignals>,
+    /// How the batch's items were judged as part of the vendor's item stream (absent in older records,
+    /// from [`decide`], and with `judge_items = false`).
+    #[serde(default)]
+    pub items: Option<ItemJudgement>,
 }
 
 /// Decide one batch from its repair cost and damage alone: the flagged-share rules are skipped.

@@ -85,6 +85,8 @@ pub struct PolicySettings {
     pub small_pool_items: u64,
     /// Always: quarantine when the flagged share exceeds this, whatever the history. Fraction; default 0.35
     /// (more than twice the largest clean share measured, 0.157, in the demo's workspace at a pool of 300).
+    /// With `judge_items` the ceiling is on the share *above the batch's computed clean level*, so a batch
+    /// of data the learner separates poorly is not held for the flags its true labels would bring.
     pub max_flagged_share: f64,
     /// Floor on the robust scale of a vendor's flagged shares (the binomial standard error of this batch's
     /// share is a second floor). Fraction of items; default 0.01 (the clean spread measured at one pool
@@ -108,6 +110,44 @@ pub struct PolicySettings {
     /// in three exceeded the fixed 0.05-nat limit although labels drawn from the reference model would
     /// move the trusted loss as much.
     pub cold_start_damage_excess_z: f64,
+    /// Judge the flagged items as one stream of items (`flagged_items_excess`, `flagged_items_drift`; see
+    /// `policy::evidence`) instead of by the per-batch flagged-share baseline (`cold_start_flagged_share`,
+    /// `flagged_share_outlier`, `flagged_share_drift`, whose median of per-file shares a vendor can move by
+    /// cutting its deliveries into small files). Default true.
+    pub judge_items: bool,
+    /// Items of a vendor's latest accepted batches that its own level is computed from (a rolling window,
+    /// size-weighted). Items; default 5,000.
+    pub evidence_items: u64,
+    /// The prior's weight in items: a vendor's own record weighs as much as the computed clean level once
+    /// it holds this many judged items. Items; default 1,000.
+    pub trust_items: u64,
+    /// `flagged_items_excess` holds a batch when the binomial upper tail of its flagged count at the
+    /// vendor's level is below this. Probability; default 1e-4 (one clean batch in 10,000 at most, the
+    /// binomial being conservative for the Poisson-binomial count).
+    pub item_alpha: f64,
+    /// The shift `δ` in flagged share the item CUSUM is tuned to detect (`p₁ = ℓ + δ`). Fraction; default
+    /// 0.03 (about 3 % of flipped labels at the engine's flag rate).
+    pub item_drift_shift: f64,
+    /// Decision interval `h` of the item CUSUM. Nats; default 8 (measured with `labelweir bench casebook`:
+    /// the clean streams' false alarms and the drips' first holds are in its report).
+    pub item_cusum_h: f64,
+    /// Lowest level a vendor is judged against (keeps the likelihood ratio finite). Fraction; default 0.005.
+    pub item_level_floor: f64,
+    /// The clean level used when the engine computed none (records from before it did). Fraction; default
+    /// 0.10.
+    pub clean_level_unknown: f64,
+    /// An item lies beyond the trusted set's reach when its squared Mahalanobis distance from the reference
+    /// sample exceeds this empirical quantile of the reference's own distances (and the chi-squared 0.999
+    /// quantile). Probability; default 0.99.
+    pub unlike_quantile: f64,
+    /// A batch is unlike the pool when at least this share of its items lie beyond reach (and the binomial
+    /// test below agrees). Fraction; default 0.25.
+    pub unlike_min_share: f64,
+    /// ... and the binomial upper tail of that count at the reference's own share beyond reach is below
+    /// this. Probability; default 1e-6.
+    pub unlike_alpha: f64,
+    /// Ridge added to the reference covariance's diagonal (standardised units). Default 0.1.
+    pub unlike_ridge: f64,
 }
 
 impl Default for PolicySettings {
@@ -132,6 +172,18 @@ impl Default for PolicySettings {
             cold_start_flagged_excess_z: 3.0,
             cold_start_weak_model_share: 0.2,
             cold_start_damage_excess_z: 3.0,
+            judge_items: true,
+            evidence_items: 5_000,
+            trust_items: 1_000,
+            item_alpha: 1e-4,
+            item_drift_shift: 0.03,
+            item_cusum_h: 8.0,
+            item_level_floor: 0.005,
+            clean_level_unknown: 0.10,
+            unlike_quantile: 0.99,
+            unlike_min_share: 0.25,
+            unlike_alpha: 1e-6,
+            unlike_ridge: 0.1,
         }
     }
 }
@@ -229,6 +281,29 @@ impl PolicySettings {
             "cold_start_damage_excess_z",
             self.cold_start_damage_excess_z,
         )?;
+        if self.evidence_items == 0 {
+            return Err(bad(
+                "evidence_items",
+                self.evidence_items,
+                "at least 1 item",
+            ));
+        }
+        let open_unit = |key, v: f64| {
+            if v.is_finite() && v > 0.0 && v < 1.0 {
+                Ok(())
+            } else {
+                Err(bad(key, v, "a probability in (0, 1)"))
+            }
+        };
+        open_unit("item_alpha", self.item_alpha)?;
+        open_unit("item_drift_shift", self.item_drift_shift)?;
+        pos("item_cusum_h", self.item_cusum_h)?;
+        open_unit("item_level_floor", self.item_level_floor)?;
+        open_unit("clean_level_unknown", self.clean_level_unknown)?;
+        open_unit("unlike_quantile", self.unlike_quantile)?;
+        unit("unlike_min_share", self.unlike_min_share)?;
+        open_unit("unlike_alpha", self.unlike_alpha)?;
+        pos("unlike_ridge", self.unlike_ridge)?;
         Ok(())
     }
 }
