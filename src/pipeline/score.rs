@@ -437,6 +437,13 @@ impl Worker {
         });
         let decision = verdict::decide(&self.config, &history, &scored, shift.as_ref());
         self.metrics.stage("decide", t_decide.elapsed());
+        if decision
+            .reasons
+            .iter()
+            .any(|r| r.code == crate::policy::ReasonCode::ItemsUnlikePool)
+        {
+            self.metrics.unlike_pool(&record.vendor);
+        }
         if let Ok(a) = &scored {
             self.metrics.batch_scored(
                 &record.vendor,
