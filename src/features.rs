@@ -2,8 +2,8 @@
 //! (`labelweir features add`) and from the team's drop folder `features/incoming/`.
 //!
 //! A workspace created with `labelweir init --features FILE` takes features by reference: vendors deliver
-//! `id,label` files and the daemon joins each id's features from this table (see
-//! [`crate::pipeline::ingest`]). The table grows only through the two paths here, both the team's:
+//! `id,label` files and the daemon joins each id's features from this table (in
+//! the daemon's ingest stage). The table grows only through the two paths here, both the team's:
 //!
 //! * `labelweir features add DIR FILE` imports a file at once when the daemon is stopped; while it runs
 //!   (the store is locked), the command copies the file into `features/incoming/` under a temporary name

@@ -545,7 +545,7 @@ pub fn parse_table(
 
 /// Parse an `id,label` table (a delivery in by-reference mode): the id and label columns and nothing
 /// else; a feature column is refused with [`DataErrorKind::FeaturesNotAccepted`]. The result has no
-/// feature columns (its features are joined from the feature table by id, see [`FeatureTable::join`]).
+/// feature columns (its features are joined from the feature table by id, see [`join_features`]).
 pub fn parse_labels(
     bytes: &[u8],
     format: Format,

@@ -6,13 +6,13 @@
 //! to vendors. Row `x` (the 32 raw readings) becomes
 //!
 //! ```text
-//! e = tanh( W₂ · tanh( W₁ · (x − μ) ⊘ σ + b₁ ) / √h ),   W₁ ∈ ℝ^{h×32}, W₂ ∈ ℝ^{d×h}, h = 2·d
+//! e = tanh( W · (x − μ) ⊘ σ / √32 + b ),   W ∈ ℝ^{d×32} standard normal, b uniform in [−0.5, 0.5]
 //! ```
 //!
-//! with `μ`, `σ` the per-reading mean and spread of a reference sample, `W₁`, `W₂` standard normal and
-//! `b₁` uniform in `[−1, 1]` (ChaCha8 seeded). `W₁`'s rows are scaled by `1/√32`. The map is smooth and
-//! injective almost surely, so items of one material stay close; the values are stored as `f32`, as an
-//! encoder's output would be.
+//! with `μ`, `σ` the per-reading mean and spread of a reference sample (ChaCha8 seeded draws). `W` has
+//! rank 32 almost surely, so the map is injective and close to linear where `|W z| / √32` is small: items
+//! of one material stay close and the classes stay about as separable as in the readings, which is what a
+//! useful encoder gives. The values are stored as `f32`, as an encoder's output would be.
 
 use ndarray::{Array1, Array2, ArrayView2, Axis};
 use rand::SeedableRng;
@@ -24,9 +24,8 @@ use rand_distr::{Distribution, StandardNormal, Uniform};
 pub struct Encoder {
     mean: Array1<f64>,
     spread: Array1<f64>,
-    w1: Array2<f64>,
-    b1: Array1<f64>,
-    w2: Array2<f64>,
+    w: Array2<f64>,
+    b: Array1<f64>,
 }
 
 impl Encoder {
@@ -34,7 +33,6 @@ impl Encoder {
     /// drawn from `seed`.
     pub fn new(reference: ArrayView2<'_, f64>, dim: usize, seed: u64) -> Self {
         let p = reference.ncols();
-        let h = 2 * dim;
         let mean = reference
             .mean_axis(Axis(0))
             .unwrap_or_else(|| Array1::zeros(p));
@@ -42,34 +40,25 @@ impl Encoder {
             .std_axis(Axis(0), 0.0)
             .mapv(|s| if s > 1e-12 { s } else { 1.0 });
         let mut rng = ChaCha8Rng::seed_from_u64(seed);
-        let scale1 = 1.0 / (p as f64).sqrt();
-        let w1 = Array2::from_shape_fn((h, p), |_| {
+        let scale = 1.0 / (p.max(1) as f64).sqrt();
+        let w = Array2::from_shape_fn((dim, p), |_| {
             let z: f64 = StandardNormal.sample(&mut rng);
-            z * scale1
+            z * scale
         });
-        let u = Uniform::new(-1.0, 1.0).unwrap_or_else(|_| unreachable!("valid range"));
-        let b1 = Array1::from_shape_fn(h, |_| u.sample(&mut rng));
-        let w2 = Array2::from_shape_fn((dim, h), |_| StandardNormal.sample(&mut rng));
-        Self {
-            mean,
-            spread,
-            w1,
-            b1,
-            w2,
-        }
+        let u = Uniform::new(-0.5, 0.5).unwrap_or_else(|_| unreachable!("valid range"));
+        let b = Array1::from_shape_fn(dim, |_| u.sample(&mut rng));
+        Self { mean, spread, w, b }
     }
 
     /// Output dimension.
     pub fn dim(&self) -> usize {
-        self.w2.nrows()
+        self.w.nrows()
     }
 
     /// Encode rows of readings; the result is row-major `n × dim` 32-bit floats.
     pub fn encode(&self, x: ArrayView2<'_, f64>) -> Vec<f32> {
         let z = (&x - &self.mean) / &self.spread;
-        let hidden = (z.dot(&self.w1.t()) + &self.b1).mapv(f64::tanh);
-        let scale = 1.0 / (self.w1.nrows() as f64).sqrt();
-        let e = hidden.dot(&self.w2.t()).mapv(|v| (v * scale).tanh() as f32);
+        let e = (z.dot(&self.w.t()) + &self.b).mapv(|v| v.tanh() as f32);
         e.into_iter().collect()
     }
 
