@@ -34,6 +34,7 @@ pub mod config;
 pub mod daemon;
 pub mod data;
 pub mod eval;
+pub mod features;
 pub mod fsx;
 mod http;
 mod metrics;

@@ -30,6 +30,7 @@ enum Command {
     Vendor(cli::vendor::Args),
     Audit(cli::audit::Args),
     Bench(cli::bench::Args),
+    Features(cli::features::Args),
 }
 
 fn main() -> ExitCode {
@@ -57,6 +58,7 @@ fn main() -> ExitCode {
         Command::Vendor(a) => cli::vendor::run(a),
         Command::Audit(a) => cli::audit::run(a),
         Command::Bench(a) => cli::bench::run(a),
+        Command::Features(a) => cli::features::run(a),
     };
     match result {
         Ok(code) => ExitCode::from(code),

@@ -7,9 +7,13 @@ use std::path::{Path, PathBuf};
 use chrono::Utc;
 
 use crate::config::{self, Config, WatcherKind, CONFIG_FILE};
-use crate::data::{self, Classes, TableOptions};
+use std::collections::HashMap;
+
+use crate::data::{self, Classes, FeatureTable, TableOptions};
 use crate::model::{FeatureMap, Standardizer};
-use crate::store::{AuditRecord, Store, StoreError, TrustedItem, WorkspaceMeta, RECORD_VERSION};
+use crate::store::{
+    AuditRecord, Provenance, Store, StoreError, TrustedItem, WorkspaceMeta, RECORD_VERSION,
+};
 
 /// Why a workspace could not be created or prepared; the binary picks an exit code per kind.
 #[derive(Debug, thiserror::Error)]
@@ -100,6 +104,21 @@ impl Workspace {
         self.root.join("state")
     }
 
+    /// `DIR/features/incoming` (the team's drop folder for feature-table files; never a vendor's).
+    pub fn features_incoming(&self) -> PathBuf {
+        self.root.join("features").join("incoming")
+    }
+
+    /// `DIR/features/imported` (feature-table files taken in, renamed `<import seq>-<name>`).
+    pub fn features_imported(&self) -> PathBuf {
+        self.root.join("features").join("imported")
+    }
+
+    /// `DIR/features/rejected` (feature-table files refused, each with a `.reason.txt`).
+    pub fn features_rejected(&self) -> PathBuf {
+        self.root.join("features").join("rejected")
+    }
+
     /// `DIR/admin.sock` (the review commands' channel to a running daemon).
     pub fn admin_socket(&self) -> PathBuf {
         self.root.join("admin.sock")
@@ -157,6 +176,9 @@ pub fn prepare_folders(ws: &Workspace, config: &Config) -> Result<(), WorkspaceE
         ws.folder("rejected"),
         ws.root.join("notices"),
         ws.state(),
+        ws.features_incoming(),
+        ws.features_imported(),
+        ws.features_rejected(),
     ];
     for v in &config.vendors {
         dirs.push(ws.vendor_inbox(v));
@@ -204,12 +226,118 @@ pub fn free_bytes(path: &Path) -> Option<u64> {
 /// Create a workspace in `dir`: the configuration file (the shipped defaults with `vendors`), a drop folder
 /// per vendor, the daemon's folders, and the store seeded with the trusted set read from `trusted` (its
 /// feature columns become the schema, its labels the classes; features are standardised on it), verified
-/// by `by`. Returns the number of trusted items stored.
+/// by `by`. Returns the number of trusted items stored. See [`create_workspace_with`] for a feature table
+/// and an imported pool.
 pub fn create_workspace(
     dir: &std::path::Path,
     trusted: &std::path::Path,
     vendors: &[String],
     by: &str,
+) -> Result<usize, WorkspaceError> {
+    create_workspace_with(dir, trusted, vendors, by, &InitExtras::default())
+}
+
+/// Optional parts of a new workspace.
+#[derive(Debug, Clone, Default)]
+pub struct InitExtras {
+    /// A feature table (id + feature columns; CSV, JSON Lines or Parquet): the workspace then takes
+    /// features by reference. Its columns become the feature schema; the trusted set and the pool may be
+    /// `id,label` files joined against it (or carry exactly its columns).
+    pub features: Option<PathBuf>,
+    /// An existing training pool (id, label and the schema's features, or `id,label` in by-reference
+    /// mode), imported with its provenance so the daemon starts with a warm pool.
+    pub pool: Option<PathBuf>,
+}
+
+/// How the team's own files (trusted set, feature table, imported pool) are read: the configured id and
+/// label column names, with limits sized for a team's files rather than a vendor's batch: 8 GiB, 20
+/// million rows, 4,096 columns (a 1,024-dimension embedding plus id and label fits), 4 KiB per field.
+pub fn team_file_options(cfg: &Config) -> TableOptions {
+    TableOptions {
+        id_column: cfg.schema.id_column.clone(),
+        label_column: cfg.schema.label_column.clone(),
+        limits: data::Limits {
+            max_bytes: 8 << 30,
+            max_rows: 20_000_000,
+            max_columns: 4096,
+            max_field_bytes: 4096,
+        },
+    }
+}
+
+/// A file's bytes, the parsed table, and its provenance.
+struct Loaded {
+    table: data::Table,
+    provenance: Provenance,
+}
+
+fn provenance(path: &Path, bytes: &[u8], by: &str) -> Provenance {
+    use sha2::Digest;
+    Provenance {
+        source: path
+            .file_name()
+            .map(crate::text::escape_name)
+            .unwrap_or_default(),
+        sha256: hex::encode(sha2::Sha256::digest(bytes)),
+        by: by.to_string(),
+        at: Utc::now(),
+    }
+}
+
+/// Read a labeled file for `init`: with a feature table, an `id,label` file is joined against it and a
+/// file with features must carry exactly the table's columns; without one, every other column is a
+/// feature (`schema` None) or the schema's (`schema` Some).
+fn load_labeled(
+    path: &Path,
+    opts: &TableOptions,
+    schema: Option<&[String]>,
+    table: Option<&FeatureTable>,
+    by: &str,
+) -> Result<Loaded, WorkspaceError> {
+    let input = |e: &dyn std::fmt::Display| WorkspaceError::Input(e.to_string());
+    let (bytes, format, source) =
+        data::read_bytes(path, opts.limits.max_bytes).map_err(|e| input(&e))?;
+    let prov = provenance(path, &bytes, by);
+    let Some(ft) = table else {
+        let t = data::parse_table(&bytes, format, &source, opts, schema).map_err(|e| input(&e))?;
+        return Ok(Loaded {
+            table: t,
+            provenance: prov,
+        });
+    };
+    let t = match data::parse_labels(&bytes, format, &source, opts) {
+        Ok(t) => {
+            let index: HashMap<&str, usize> = ft
+                .ids
+                .iter()
+                .enumerate()
+                .map(|(i, id)| (id.as_str(), i))
+                .collect();
+            data::join_features(t, &ft.names, |id| {
+                index.get(id).map(|&i| ft.row(i).to_vec())
+            })
+            .map_err(|e| input(&format!("{source}: {e}")))?
+        }
+        Err(e) if matches!(*e.kind, data::DataErrorKind::FeaturesNotAccepted { .. }) => {
+            data::parse_table(&bytes, format, &source, opts, Some(&ft.names))
+                .map_err(|e| input(&e))?
+        }
+        Err(e) => return Err(input(&e)),
+    };
+    Ok(Loaded {
+        table: t,
+        provenance: prov,
+    })
+}
+
+/// [`create_workspace`] with a feature table and/or an imported pool (`labelweir init --features FILE
+/// --pool FILE`). Everything is read and checked before anything is created.
+pub fn create_workspace_with(
+    dir: &std::path::Path,
+    trusted: &std::path::Path,
+    vendors: &[String],
+    by: &str,
+    extras: &InitExtras,
 ) -> Result<usize, WorkspaceError> {
     let cfg_text = config::render_with_vendors(vendors);
     let cfg = Config::parse_str(&cfg_text, &dir.join(CONFIG_FILE))
@@ -222,19 +350,39 @@ pub fn create_workspace(
             dir.display()
         )));
     }
-    let opts = TableOptions {
-        id_column: cfg.schema.id_column.clone(),
-        label_column: cfg.schema.label_column.clone(),
-        ..TableOptions::default()
+    let opts = team_file_options(&cfg);
+    let feature_table = match &extras.features {
+        Some(p) => {
+            let (bytes, format, source) = data::read_bytes(p, opts.limits.max_bytes)
+                .map_err(|e| WorkspaceError::Input(e.to_string()))?;
+            let ft = FeatureTable::parse(&bytes, format, &source, &opts, None)
+                .map_err(|e| WorkspaceError::Input(e.to_string()))?;
+            Some((ft, provenance(p, &bytes, by)))
+        }
+        None => None,
     };
-    let table =
-        data::read_table(trusted, &opts, None).map_err(|e| WorkspaceError::Input(e.to_string()))?;
+    let ft = feature_table.as_ref().map(|(t, _)| t);
+    let Loaded {
+        table,
+        provenance: trusted_prov,
+    } = load_labeled(trusted, &opts, None, ft, by)?;
     let classes = Classes::from_labels(&table.labels);
     if classes.len() < 2 {
         return Err(WorkspaceError::Input(
             "the trusted set needs items of at least two classes".into(),
         ));
     }
+    let pool = match &extras.pool {
+        Some(p) => {
+            let l = load_labeled(p, &opts, Some(&table.feature_names), ft, by)?;
+            let y = l
+                .table
+                .class_indices_in(&classes, &opts.label_column)
+                .map_err(|e| WorkspaceError::Input(e.to_string()))?;
+            Some((l, y))
+        }
+        None => None,
+    };
     let standardizer = Standardizer::fit(&[table.features.view()])
         .map_err(|e| WorkspaceError::Input(e.to_string()))?;
     let feature_map = FeatureMap::new(standardizer, cfg.model.feature_map, cfg.model.seed)
@@ -249,10 +397,7 @@ pub fn create_workspace(
         created_at: Utc::now(),
     };
     let now = Utc::now();
-    let source = trusted
-        .file_name()
-        .map(crate::text::escape_name)
-        .unwrap_or_default();
+    let source = trusted_prov.source.clone();
     let items: Vec<TrustedItem> = (0..table.len())
         .map(|i| TrustedItem {
             version: RECORD_VERSION,
@@ -283,10 +428,19 @@ pub fn create_workspace(
         "vendors": vendors,
         "trusted_items": items.len(),
         "trusted_source": source,
+        "trusted_sha256": trusted_prov.sha256,
         "classes": meta.classes,
         "features": meta.features.len(),
+        "features_by_reference": feature_table.is_some(),
     }));
     store.initialise(&meta, &items, audit)?;
+    if let Some((ft, prov)) = feature_table {
+        store.set_feature_schema(&ft.names)?;
+        store.import_features(&ft, prov)?;
+    }
+    if let Some((l, y)) = pool {
+        store.import_pool(&l.table.ids, &y, l.table.features.view(), l.provenance)?;
+    }
     Ok(items.len())
 }
 

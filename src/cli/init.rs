@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use super::exit;
-use labelweir::workspace::create_workspace;
+use labelweir::workspace::{create_workspace_with, InitExtras};
 
 /// Create a workspace: the config file, a drop folder per vendor, the daemon's folders, and the store
 /// seeded with the trusted set.
@@ -24,6 +24,15 @@ pub struct Args {
     /// Who verified the trusted items (recorded as their provenance). Default: the OS user.
     #[arg(long)]
     pub by: Option<String>,
+    /// The team's feature table (id + feature columns; CSV, JSON Lines or Parquet): the workspace then
+    /// takes features by reference, vendors deliver `id,label` files, and the table grows through
+    /// `labelweir features add` or `DIR/features/incoming/`. The trusted file may then be `id,label` too.
+    #[arg(long)]
+    pub features: Option<PathBuf>,
+    /// An existing training pool to start from (id, label and features, or `id,label` with --features),
+    /// recorded with its provenance (file, SHA-256, --by, time); the first batch is judged against it.
+    #[arg(long)]
+    pub pool: Option<PathBuf>,
 }
 
 /// The OS user name, or `unknown`.
@@ -36,7 +45,11 @@ pub fn os_user() -> String {
 /// Run the subcommand.
 pub fn run(args: Args) -> anyhow::Result<u8> {
     let by = args.by.clone().unwrap_or_else(os_user);
-    let n = create_workspace(&args.dir, &args.trusted, &args.vendors, &by)
+    let extras = InitExtras {
+        features: args.features.clone(),
+        pool: args.pool.clone(),
+    };
+    let n = create_workspace_with(&args.dir, &args.trusted, &args.vendors, &by, &extras)
         .map_err(super::workspace_failure)?;
     println!(
         "created workspace {} with {} trusted items; vendors deliver into {}/inbox/<vendor>/",
@@ -44,6 +57,17 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         n,
         args.dir.display()
     );
+    if let Some(f) = &args.features {
+        println!(
+            "features by reference from {}: vendors deliver id,label files; add features with `labelweir features add {} FILE` or by dropping files into {}/features/incoming/",
+            f.display(),
+            args.dir.display(),
+            args.dir.display()
+        );
+    }
+    if let Some(p) = &args.pool {
+        println!("imported the training pool from {}", p.display());
+    }
     println!("start it with: labelweir run {}", args.dir.display());
     Ok(exit::OK)
 }

@@ -9,6 +9,7 @@ pub mod audit;
 pub mod bench;
 pub mod config_cmd;
 pub mod demo;
+pub mod features;
 pub mod init;
 pub mod pool;
 pub mod quarantine;

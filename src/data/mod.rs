@@ -41,10 +41,14 @@ use ndarray::Array2;
 
 use crate::text::quote_for_message;
 
+mod columnar;
+mod feature_table;
 mod parse;
 mod write;
 
-use parse::{parse_csv, parse_jsonl, Builder};
+pub use columnar::{write_parquet, write_parquet_features};
+pub use feature_table::{join_features, FeatureTable, JoinError};
+use parse::{locate_invalid_utf8, parse_csv, parse_jsonl, Builder, Shape};
 pub use write::{write_csv, write_jsonl};
 
 /// Input format of a labeled table.
@@ -55,6 +59,8 @@ pub enum Format {
     Csv,
     /// One JSON object per line (`.jsonl`).
     JsonLines,
+    /// Apache Parquet (`.parquet`), flat columns.
+    Parquet,
 }
 
 impl Format {
@@ -63,6 +69,7 @@ impl Format {
         match ext.to_ascii_lowercase().as_str() {
             "csv" => Some(Self::Csv),
             "jsonl" => Some(Self::JsonLines),
+            "parquet" => Some(Self::Parquet),
             _ => None,
         }
     }
@@ -79,6 +86,7 @@ impl Format {
         match self {
             Self::Csv => "csv",
             Self::JsonLines => "jsonl",
+            Self::Parquet => "parquet",
         }
     }
 }
@@ -276,12 +284,33 @@ pub enum DataErrorKind {
     /// A header but no data rows.
     #[error("the file has a header but no data rows")]
     NoRows,
-    /// The input is not valid UTF-8.
-    #[error("invalid UTF-8 (byte offset {offset})")]
-    InvalidUtf8 {
-        /// Byte offset of the first invalid byte.
-        offset: usize,
+    /// The input is not valid UTF-8 (the error's row and column say where).
+    #[error("not valid UTF-8 text (save the file as UTF-8)")]
+    InvalidUtf8,
+    /// A byte-order mark after the first one (an editor added one to a file that had one).
+    #[error("a second byte-order mark at the start of the file; keep at most one")]
+    ByteOrderMark,
+    /// A carriage return not followed by a line feed (classic Mac line endings, or a stray CR).
+    #[error("a carriage return without a line feed; save the file with LF or CRLF line endings")]
+    BareCarriageReturn,
+    /// A number written in a form the reader refuses (spaces around it, a leading `+`).
+    #[error("not a plain number: \"{value}\" ({reason})")]
+    NumberFormat {
+        /// The cell as given (escaped, shortened).
+        value: String,
+        /// What is wrong with it.
+        reason: &'static str,
     },
+    /// A feature column in an `id,label` delivery (by-reference mode: features come from the workspace's
+    /// feature table, never from a vendor file).
+    #[error("column \"{name}\" is not accepted: this workspace takes features from its own feature table, so deliveries carry only the id and label columns")]
+    FeaturesNotAccepted {
+        /// The column's name.
+        name: String,
+    },
+    /// A Parquet file that cannot be decoded.
+    #[error("malformed Parquet: {0}")]
+    Parquet(String),
     /// A required column (id, label, or a schema feature) is absent.
     #[error("missing column \"{name}\"{hint}")]
     MissingColumn {
@@ -464,27 +493,38 @@ impl fmt::Display for DataError {
 // `Error` is implemented by hand: the error has no underlying cause.
 impl std::error::Error for DataError {}
 
-/// Read and parse a table from a file; the format comes from the extension (`.csv`, `.jsonl`), and
-/// [`DataError::source`] is the path as given.
+/// Read a file's bytes (at most `limit` + 1, so an oversized file is seen) and its format from the
+/// extension.
+pub(crate) fn read_bytes(
+    path: &Path,
+    limit: usize,
+) -> Result<(Vec<u8>, Format, String), DataError> {
+    let source = path.display().to_string();
+    let format = Format::from_path(path).ok_or_else(|| {
+        DataError::new(
+            &source,
+            DataErrorKind::Io(
+                "unknown file type: expected a .csv, .jsonl or .parquet extension".into(),
+            ),
+        )
+    })?;
+    let file = std::fs::File::open(path)
+        .map_err(|e| DataError::new(&source, DataErrorKind::Io(e.to_string())))?;
+    let mut bytes = Vec::new();
+    file.take(limit as u64 + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| DataError::new(&source, DataErrorKind::Io(e.to_string())))?;
+    Ok((bytes, format, source))
+}
+
+/// Read and parse a table from a file; the format comes from the extension (`.csv`, `.jsonl`,
+/// `.parquet`), and [`DataError::source`] is the path as given.
 pub fn read_table(
     path: &Path,
     opts: &TableOptions,
     schema: Option<&[String]>,
 ) -> Result<Table, DataError> {
-    let source = path.display().to_string();
-    let format = Format::from_path(path).ok_or_else(|| {
-        DataError::new(
-            &source,
-            DataErrorKind::Io("unknown file type: expected a .csv or .jsonl extension".into()),
-        )
-    })?;
-    let file = std::fs::File::open(path)
-        .map_err(|e| DataError::new(&source, DataErrorKind::Io(e.to_string())))?;
-    let limit = opts.limits.max_bytes;
-    let mut bytes = Vec::new();
-    file.take(limit as u64 + 1)
-        .read_to_end(&mut bytes)
-        .map_err(|e| DataError::new(&source, DataErrorKind::Io(e.to_string())))?;
+    let (bytes, format, source) = read_bytes(path, opts.limits.max_bytes)?;
     parse_table(&bytes, format, &source, opts, schema)
 }
 
@@ -500,31 +540,77 @@ pub fn parse_table(
     opts: &TableOptions,
     schema: Option<&[String]>,
 ) -> Result<Table, DataError> {
+    parse_shaped(bytes, format, source, opts, schema, Shape::LABELED)
+}
+
+/// Parse an `id,label` table (a delivery in by-reference mode): the id and label columns and nothing
+/// else; a feature column is refused with [`DataErrorKind::FeaturesNotAccepted`]. The result has no
+/// feature columns (its features are joined from the feature table by id, see [`join_features`]).
+pub fn parse_labels(
+    bytes: &[u8],
+    format: Format,
+    source: &str,
+    opts: &TableOptions,
+) -> Result<Table, DataError> {
+    parse_shaped(bytes, format, source, opts, None, Shape::LABELS_ONLY)
+}
+
+/// Parse any shape of table. The text checks (size, UTF-8, byte-order mark, line endings) come first and
+/// apply to CSV and JSON Lines; Parquet is binary and has its own checks.
+fn parse_shaped(
+    bytes: &[u8],
+    format: Format,
+    source: &str,
+    opts: &TableOptions,
+    schema: Option<&[String]>,
+    shape: Shape,
+) -> Result<Table, DataError> {
     let err = |kind| DataError::new(source, kind);
     if bytes.len() > opts.limits.max_bytes {
         return Err(err(DataErrorKind::TooLarge {
             limit: opts.limits.max_bytes,
         }));
     }
+    let mut builder = Builder::new(source, opts, shape);
+    if format == Format::Parquet {
+        columnar::read_parquet(bytes, &mut builder)?;
+        return builder.finish(schema);
+    }
     let text = match std::str::from_utf8(bytes) {
         Ok(t) => t,
         Err(e) => {
-            let offset = e.valid_up_to();
-            let line = 1 + bytes[..offset].iter().filter(|b| **b == b'\n').count();
-            return Err(err(DataErrorKind::InvalidUtf8 { offset }).at_line(line));
+            return Err(locate_invalid_utf8(
+                bytes,
+                e.valid_up_to(),
+                format,
+                &builder,
+            ))
         }
     };
     let text = text.strip_prefix('\u{FEFF}').unwrap_or(text);
+    if text.starts_with('\u{FEFF}') {
+        return Err(err(DataErrorKind::ByteOrderMark).at_line(1));
+    }
+    // A CR must end a line together with an LF: a bare CR is a line ending only to some readers, so the
+    // rows (and the row numbers in any message) would depend on the reader. Ids, labels and numbers never
+    // contain a CR (it is a control character), so a bare CR is an error wherever it is.
+    let b = text.as_bytes();
+    if let Some(i) = (0..b.len()).find(|&i| b[i] == b'\r' && b.get(i + 1) != Some(&b'\n')) {
+        let line = 1 + b[..i].iter().filter(|c| **c == b'\n').count();
+        return Err(err(DataErrorKind::BareCarriageReturn).at_line(line));
+    }
     if text.trim().is_empty() {
         return Err(err(DataErrorKind::Empty));
     }
-    let mut builder = Builder::new(source, opts);
     match format {
         Format::Csv => parse_csv(text, &mut builder)?,
         Format::JsonLines => parse_jsonl(text, &mut builder, opts)?,
+        Format::Parquet => {}
     }
     builder.finish(schema)
 }
 
 #[cfg(test)]
 mod tests;
+#[cfg(test)]
+mod tests_formats;

@@ -10,27 +10,58 @@ use crate::text::{is_unsafe_char, quote_for_message};
 
 use super::{DataError, DataErrorKind, Table, TableOptions};
 
+/// Which columns a file must have besides the id: a label column, feature columns, or both.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(super) struct Shape {
+    /// A label column is required (vendor batches, trusted sets, pools); without it the file is a
+    /// feature table.
+    pub label: bool,
+    /// Feature columns are required; without them the file is `id,label` only (a delivery in
+    /// by-reference mode) and any other column is refused.
+    pub features: bool,
+}
+
+impl Shape {
+    /// A labeled table with features.
+    pub const LABELED: Shape = Shape {
+        label: true,
+        features: true,
+    };
+    /// `id,label` only.
+    pub const LABELS_ONLY: Shape = Shape {
+        label: true,
+        features: false,
+    };
+    /// `id` and features (a feature table).
+    pub const FEATURES_ONLY: Shape = Shape {
+        label: false,
+        features: true,
+    };
+}
+
 /// Collects rows in file column order, checking ids as they come.
 pub(super) struct Builder<'a> {
     source: &'a str,
     opts: &'a TableOptions,
+    pub(super) shape: Shape,
     /// Column names in file order.
-    columns: Vec<String>,
-    id_col: usize,
-    label_col: usize,
+    pub(super) columns: Vec<String>,
+    pub(super) id_col: usize,
+    pub(super) label_col: usize,
     /// File column index of each feature, in file order.
-    feature_cols: Vec<usize>,
+    pub(super) feature_cols: Vec<usize>,
     ids: Vec<String>,
     labels: Vec<String>,
-    values: Vec<f64>,
+    pub(super) values: Vec<f64>,
     seen: HashMap<String, usize>,
 }
 
 impl<'a> Builder<'a> {
-    pub(super) fn new(source: &'a str, opts: &'a TableOptions) -> Self {
+    pub(super) fn new(source: &'a str, opts: &'a TableOptions, shape: Shape) -> Self {
         Self {
             source,
             opts,
+            shape,
             columns: Vec::new(),
             id_col: 0,
             label_col: 0,
@@ -42,12 +73,12 @@ impl<'a> Builder<'a> {
         }
     }
 
-    fn err(&self, kind: DataErrorKind) -> DataError {
+    pub(super) fn err(&self, kind: DataErrorKind) -> DataError {
         DataError::new(self.source, kind)
     }
 
     /// Take the header (column names in file order) at the given file line.
-    fn header(&mut self, names: Vec<String>, line: usize) -> Result<(), DataError> {
+    pub(super) fn header(&mut self, names: Vec<String>, line: usize) -> Result<(), DataError> {
         let limits = &self.opts.limits;
         if names.len() > limits.max_columns {
             return Err(self
@@ -100,9 +131,13 @@ impl<'a> Builder<'a> {
             .in_column(want)
         };
         let id_col = find(&self.opts.id_column).ok_or_else(|| missing(&self.opts.id_column))?;
-        let label_col =
-            find(&self.opts.label_column).ok_or_else(|| missing(&self.opts.label_column))?;
-        if id_col == label_col {
+        // Without a label column (a feature table), `label_col` points at the id column and is never read.
+        let label_col = if self.shape.label {
+            find(&self.opts.label_column).ok_or_else(|| missing(&self.opts.label_column))?
+        } else {
+            id_col
+        };
+        if self.shape.label && id_col == label_col {
             return Err(self
                 .err(DataErrorKind::NoHeader {
                     reason: "the id and label columns must be different columns".into(),
@@ -114,12 +149,22 @@ impl<'a> Builder<'a> {
         self.feature_cols = (0..names.len())
             .filter(|&c| c != id_col && c != label_col)
             .collect();
+        if !self.shape.features {
+            if let Some(&c) = self.feature_cols.first() {
+                return Err(self
+                    .err(DataErrorKind::FeaturesNotAccepted {
+                        name: names[c].clone(),
+                    })
+                    .at_line(line)
+                    .in_column(&names[c]));
+            }
+        }
         self.columns = names;
         Ok(())
     }
 
     /// Start a data row; checks the row limit.
-    fn begin_row(&self, row: usize, line: usize) -> Result<(), DataError> {
+    pub(super) fn begin_row(&self, row: usize, line: usize) -> Result<(), DataError> {
         if row > self.opts.limits.max_rows {
             return Err(self
                 .err(DataErrorKind::TooManyRows {
@@ -131,7 +176,7 @@ impl<'a> Builder<'a> {
     }
 
     /// Record the id and label of data row `row`.
-    fn id_label(
+    pub(super) fn id_label(
         &mut self,
         row: usize,
         line: usize,
@@ -144,7 +189,12 @@ impl<'a> Builder<'a> {
         if id.trim().is_empty() {
             return Err(at(self.err(DataErrorKind::EmptyId), &id_name));
         }
-        for (v, col) in [(&id, &id_name), (&label, &label_name)] {
+        let checked: &[(&String, &String)] = if self.shape.label {
+            &[(&id, &id_name), (&label, &label_name)]
+        } else {
+            &[(&id, &id_name)]
+        };
+        for &(v, col) in checked {
             if v.chars().any(is_unsafe_char) {
                 return Err(at(
                     self.err(DataErrorKind::ControlCharacter {
@@ -154,7 +204,7 @@ impl<'a> Builder<'a> {
                 ));
             }
         }
-        if label.is_empty() {
+        if self.shape.label && label.is_empty() {
             return Err(at(self.err(DataErrorKind::EmptyCell), &label_name));
         }
         if let Some(&first_row) = self.seen.get(&id) {
@@ -168,12 +218,20 @@ impl<'a> Builder<'a> {
         }
         self.seen.insert(id.clone(), row);
         self.ids.push(id);
-        self.labels.push(label);
+        if self.shape.label {
+            self.labels.push(label);
+        }
         Ok(())
     }
 
     /// Check a field's length.
-    fn field_len(&self, len: usize, row: usize, line: usize, col: usize) -> Result<(), DataError> {
+    pub(super) fn field_len(
+        &self,
+        len: usize,
+        row: usize,
+        line: usize,
+        col: usize,
+    ) -> Result<(), DataError> {
         let limit = self.opts.limits.max_field_bytes;
         if len > limit {
             return Err(self
@@ -227,7 +285,7 @@ impl<'a> Builder<'a> {
                 order
             }
         };
-        if order.is_empty() {
+        if order.is_empty() && self.shape.features {
             return Err(self.err(DataErrorKind::NoFeatures).at_line(1));
         }
         if self.ids.is_empty() {
@@ -249,11 +307,26 @@ impl<'a> Builder<'a> {
     }
 }
 
-/// Parse one numeric cell as given in a CSV file.
+/// Parse one numeric cell as given in a CSV file: the plain decimal or exponent form, an optional leading
+/// `-`, nothing around it. Spaces around the number and a leading `+` are refused (they are what an export
+/// with padded columns or a locale's formatting leaves, and accepting them would let two spellings of a
+/// file hash differently yet read the same).
 pub(super) fn parse_number(cell: &str) -> Result<f64, DataErrorKind> {
-    let t = cell.trim();
-    if t.is_empty() {
+    if cell.trim().is_empty() {
         return Err(DataErrorKind::EmptyCell);
+    }
+    let t = cell;
+    if t.trim() != t {
+        return Err(DataErrorKind::NumberFormat {
+            value: quote_for_message(t),
+            reason: "spaces around the number",
+        });
+    }
+    if t.starts_with('+') {
+        return Err(DataErrorKind::NumberFormat {
+            value: quote_for_message(t),
+            reason: "a leading plus sign",
+        });
     }
     match t.parse::<f64>() {
         Ok(v) if v.is_finite() => Ok(v),
@@ -266,6 +339,34 @@ pub(super) fn parse_number(cell: &str) -> Result<f64, DataErrorKind> {
     }
 }
 
+/// File lines of byte positions, counted forward from the last position asked (positions only grow).
+///
+/// The record reader's own line count is one too low after a CRLF line ending (it ends the record at the
+/// CR and counts the LF into the next one), so lines are counted here from byte offsets: a record's line
+/// is one plus the line feeds before its first byte, skipping the CR or LF that ended the previous record.
+#[derive(Default)]
+struct LineCounter {
+    pos: usize,
+    line: usize,
+}
+
+impl LineCounter {
+    fn line_at(&mut self, text: &str, byte: usize) -> usize {
+        let b = text.as_bytes();
+        let mut at = byte.min(b.len());
+        while at < b.len() && (b[at] == b'\r' || b[at] == b'\n') {
+            at += 1;
+        }
+        if at < self.pos {
+            self.pos = 0;
+            self.line = 0;
+        }
+        self.line += b[self.pos..at].iter().filter(|c| **c == b'\n').count();
+        self.pos = at;
+        self.line + 1
+    }
+}
+
 pub(super) fn parse_csv(text: &str, b: &mut Builder<'_>) -> Result<(), DataError> {
     let mut reader = csv::ReaderBuilder::new()
         .has_headers(false)
@@ -274,9 +375,10 @@ pub(super) fn parse_csv(text: &str, b: &mut Builder<'_>) -> Result<(), DataError
     let mut record = csv::StringRecord::new();
     let mut row = 0usize;
     let mut have_header = false;
+    let mut lines = LineCounter::default();
     loop {
         let more = reader.read_record(&mut record).map_err(|e| {
-            let line = e.position().map(|p| p.line() as usize);
+            let line = e.position().map(|p| lines.line_at(text, p.byte() as usize));
             let mut de = b.err(DataErrorKind::Csv(e.to_string()));
             de.line = line;
             de
@@ -284,7 +386,10 @@ pub(super) fn parse_csv(text: &str, b: &mut Builder<'_>) -> Result<(), DataError
         if !more {
             break;
         }
-        let line = record.position().map(|p| p.line() as usize).unwrap_or(0);
+        let line = record
+            .position()
+            .map(|p| lines.line_at(text, p.byte() as usize))
+            .unwrap_or(0);
         // A line holding only spaces reads as one blank field: skip it like an empty line.
         if record.len() == 1 && record[0].trim().is_empty() {
             continue;
@@ -308,12 +413,12 @@ pub(super) fn parse_csv(text: &str, b: &mut Builder<'_>) -> Result<(), DataError
         for (c, field) in record.iter().enumerate() {
             b.field_len(field.len(), row, line, c)?;
         }
-        b.id_label(
-            row,
-            line,
-            record[b.id_col].to_owned(),
-            record[b.label_col].to_owned(),
-        )?;
+        let label = if b.shape.label {
+            record[b.label_col].to_owned()
+        } else {
+            String::new()
+        };
+        b.id_label(row, line, record[b.id_col].to_owned(), label)?;
         for i in 0..b.feature_cols.len() {
             let c = b.feature_cols[i];
             let v = parse_number(&record[c])
@@ -430,18 +535,20 @@ pub(super) fn parse_jsonl(
             .in_column(&b.columns[c]));
         }
         let cells: Vec<serde_json::Value> = cells.into_iter().flatten().collect();
+        // Ids are JSON strings only: a number id (`17`) has many spellings (`17.0`, `1.7e1`) and loses
+        // leading zeros, so two files could name one item differently.
         let id = match &cells[b.id_col] {
             serde_json::Value::String(s) => s.clone(),
-            serde_json::Value::Number(n) if n.is_i64() || n.is_u64() => n.to_string(),
             other => {
                 return Err(at(b.err(DataErrorKind::WrongType {
-                    expected: "a string or an integer",
+                    expected: "a JSON string (write the id in quotes)",
                     found: json_type(other),
                 }))
                 .in_column(&b.columns[b.id_col]))
             }
         };
         let label = match &cells[b.label_col] {
+            _ if !b.shape.label => String::new(),
             serde_json::Value::String(s) => s.clone(),
             other => {
                 return Err(at(b.err(DataErrorKind::WrongType {
@@ -475,4 +582,90 @@ pub(super) fn parse_jsonl(
         return Err(b.err(DataErrorKind::Empty));
     }
     Ok(())
+}
+
+/// Where the first invalid UTF-8 byte (at byte `offset`) is, as a data row and column: the file is read
+/// again as raw records (CSV: the same record reader on bytes; JSON Lines: the line, decoded with
+/// replacement characters, and the first key or string value that holds one).
+pub(super) fn locate_invalid_utf8(
+    bytes: &[u8],
+    offset: usize,
+    format: super::Format,
+    b: &Builder<'_>,
+) -> DataError {
+    let err = b.err(DataErrorKind::InvalidUtf8);
+    let bytes = bytes.strip_prefix("\u{FEFF}".as_bytes()).unwrap_or(bytes);
+    match format {
+        super::Format::Csv => locate_in_csv(bytes, err),
+        _ => {
+            let line_no = 1 + bytes[..offset.min(bytes.len())]
+                .iter()
+                .filter(|c| **c == b'\n')
+                .count();
+            let lines: Vec<&[u8]> = bytes.split(|c| *c == b'\n').collect();
+            let row = lines[..line_no.min(lines.len())]
+                .iter()
+                .filter(|l| !String::from_utf8_lossy(l).trim().is_empty())
+                .count();
+            let text = String::from_utf8_lossy(lines.get(line_no - 1).copied().unwrap_or(&[]));
+            let column = serde_json::from_str::<Pairs>(&text)
+                .ok()
+                .and_then(|Pairs(p)| {
+                    p.into_iter()
+                    .find(|(k, v)| {
+                        k.contains('\u{FFFD}')
+                            || matches!(v, serde_json::Value::String(s) if s.contains('\u{FFFD}'))
+                    })
+                    .map(|(k, _)| k)
+                });
+            let e = err.at_row(row.max(1), Some(line_no));
+            match column {
+                Some(c) => e.in_column(&c),
+                None => e,
+            }
+        }
+    }
+}
+
+fn locate_in_csv(bytes: &[u8], err: DataError) -> DataError {
+    let mut reader = csv::ReaderBuilder::new()
+        .has_headers(false)
+        .flexible(true)
+        .from_reader(bytes);
+    let mut record = csv::ByteRecord::new();
+    let mut header: Option<Vec<String>> = None;
+    let mut row = 0usize;
+    while let Ok(true) = reader.read_byte_record(&mut record) {
+        let line = record.position().map(|p| p.line() as usize).unwrap_or(0);
+        if record.len() == 1 && record[0].iter().all(u8::is_ascii_whitespace) {
+            continue;
+        }
+        let bad = record.iter().position(|f| std::str::from_utf8(f).is_err());
+        match (&header, bad) {
+            (None, Some(c)) => {
+                return err
+                    .at_line(line)
+                    .in_column(&format!("header cell {}", c + 1))
+            }
+            (None, None) => {
+                header = Some(
+                    record
+                        .iter()
+                        .map(|f| String::from_utf8_lossy(f).trim().to_owned())
+                        .collect(),
+                );
+            }
+            (Some(names), bad) => {
+                row += 1;
+                if let Some(c) = bad {
+                    let name = names
+                        .get(c)
+                        .cloned()
+                        .unwrap_or_else(|| format!("cell {}", c + 1));
+                    return err.at_row(row, Some(line)).in_column(&name);
+                }
+            }
+        }
+    }
+    err
 }

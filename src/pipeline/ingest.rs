@@ -411,12 +411,27 @@ pub fn name_problem(escaped_original: &str) -> RejectReason {
     } else {
         reject(
             "unsupported_type",
-            "the file name does not end in .csv or .jsonl",
+            "the file name does not end in .csv, .jsonl or .parquet",
         )
     }
 }
 
+/// Where a batch's features come from.
+pub enum FeatureSource<'a> {
+    /// From the delivered file itself (its feature columns must be the workspace's schema).
+    InFile,
+    /// From the workspace's feature table (by-reference mode): the file is `id,label` only and every id
+    /// must have a row in the table.
+    Table(&'a Store),
+}
+
 /// Parse the bytes against the schema and classes.
+///
+/// In by-reference mode ([`FeatureSource::Table`]) a delivery is `id,label` only: a file that carries any
+/// other column is **refused** (reason `parse_error`, naming the column; a vendor file never supplies or
+/// overrides a feature), and a file with ids the feature table does not have is **refused whole** (reason
+/// `unknown_ids`, with the count and the first ten ids by row), so a batch is judged on all of its items
+/// or not at all.
 pub fn parse_claimed(
     format: Format,
     escaped_name: &str,
@@ -424,6 +439,7 @@ pub fn parse_claimed(
     config: &Config,
     features: &[String],
     classes: &Classes,
+    source: &FeatureSource<'_>,
 ) -> Result<Parsed, RejectReason> {
     let opts = config.table_options();
     let from_data = |e: data::DataError| RejectReason {
@@ -432,12 +448,36 @@ pub fn parse_claimed(
         row: e.row,
         column: e.column.clone(),
     };
-    let table =
-        data::parse_table(bytes, format, escaped_name, &opts, Some(features)).map_err(from_data)?;
+    let table = match source {
+        FeatureSource::InFile => {
+            data::parse_table(bytes, format, escaped_name, &opts, Some(features))
+        }
+        FeatureSource::Table(_) => data::parse_labels(bytes, format, escaped_name, &opts),
+    }
+    .map_err(from_data)?;
     let labels = table.class_indices(classes).map_err(|e| RejectReason {
         code: "unknown_label".into(),
         ..from_data(e)
     })?;
+    let table = match source {
+        FeatureSource::InFile => table,
+        FeatureSource::Table(store) => {
+            let lookup = store.feature_lookup().map_err(|e| {
+                reject(
+                    "unreadable",
+                    format!("the feature table could not be read: {e}"),
+                )
+            })?;
+            data::join_features(table, features, lookup).map_err(|e| RejectReason {
+                code: "unknown_ids".into(),
+                detail: format!(
+                    "{escaped_name}: {e}; only items whose features the team has registered can be delivered"
+                ),
+                row: e.first.first().map(|(r, _)| *r),
+                column: Some(opts.id_column.clone()),
+            })?
+        }
+    };
     Ok(Parsed { table, labels })
 }
 
@@ -449,6 +489,7 @@ pub fn prepare(
     features: &[String],
     classes: &Classes,
     record: &BatchRecord,
+    source: &FeatureSource<'_>,
 ) -> Option<JobInput> {
     let path = ws.processing().join(&record.file_name);
     let read = match read_claimed(&path, config.ingest.max_file_bytes) {
@@ -478,6 +519,7 @@ pub fn prepare(
             config,
             features,
             classes,
+            source,
         ),
         None => Err(name_problem(&record.original_name)),
     };
@@ -535,12 +577,18 @@ impl Ingest {
 
     fn process_claimed(&self, record: BatchRecord) -> Result<Flow, IngestError> {
         let t = Instant::now();
+        let source = if self.store.feature_schema()?.is_some() {
+            FeatureSource::Table(&self.store)
+        } else {
+            FeatureSource::InFile
+        };
         let input = prepare(
             &self.ws,
             &self.config,
             &self.meta.features,
             &self.classes,
             &record,
+            &source,
         );
         self.metrics.stage("parse", t.elapsed());
         match input {
@@ -563,6 +611,16 @@ impl Ingest {
         }
         self.ready.disk.store(ok, Ordering::SeqCst);
         ok
+    }
+
+    /// Import the team's files from `features/incoming/` (by-reference mode only), before the vendors'
+    /// folders are taken, so a batch delivered after its features were dropped in finds them.
+    fn take_feature_files(&self) -> Result<(), IngestError> {
+        if self.store.feature_schema()?.is_none() {
+            return Ok(());
+        }
+        crate::features::take_incoming(&self.ws, &self.store, &self.config, SystemTime::now())?;
+        Ok(())
     }
 
     fn scan_unknown(&self) {
@@ -736,6 +794,7 @@ impl Ingest {
                 self.metrics.rescan(reason);
                 self.scan_unknown();
                 self.disk_ok();
+                self.take_feature_files()?;
             } else {
                 self.metrics.rescan("event");
             }

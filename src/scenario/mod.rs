@@ -48,6 +48,7 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal};
 
+pub mod embed;
 mod flips;
 
 pub use flips::{

@@ -47,12 +47,14 @@ use crate::model::{Assessment, FeatureMap, PoolSummary};
 use crate::policy::VendorHistory;
 
 pub mod batch;
+mod features;
 mod pool;
 
 pub use batch::{
     AuditRecord, BatchRecord, BatchScores, BatchState, HeldItem, HeldState, Outcome, RejectReason,
     Suspect,
 };
+pub use features::{FeatureImport, PoolImport, Provenance, POOL_IMPORT_CHUNK};
 
 /// Version of the store layout; a store with another version is refused.
 pub const SCHEMA_VERSION: u32 = 1;

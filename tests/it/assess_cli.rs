@@ -396,7 +396,7 @@ fn bad_trusted_pool_and_config_exit_2_too() {
         &fx("pool.csv").replace(".csv", ".txt"),
     ]);
     assert_eq!(code, 2);
-    assert!(err.contains(".csv or .jsonl"), "{err}");
+    assert!(err.contains(".csv, .jsonl or .parquet"), "{err}");
 }
 
 #[test]

@@ -16,6 +16,7 @@ mod assess_cli;
 mod crash;
 mod daemon;
 mod engine;
+mod features;
 mod harden;
 mod policy;
 mod review;
