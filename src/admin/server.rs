@@ -59,6 +59,7 @@ pub async fn serve(ctx: Context, mut stop: tokio::sync::watch::Receiver<bool>) {
         let _ = std::fs::remove_file(&path);
         return;
     }
+    give_to_reviewers(&path, &(ctx.config)().admin.reviewer_group);
     tracing::info!(path = %path.display(), "admin socket listening");
     let max = fd_share((ctx.config)().admin.max_connections, 8);
     let slots = Slots::new(max);
@@ -96,6 +97,27 @@ pub async fn serve(ctx: Context, mut stop: tokio::sync::watch::Receiver<bool>) {
         }
     }
     let _ = std::fs::remove_file(&path);
+}
+
+/// Give the socket file the reviewer group, so reviewers can connect as themselves (the daemon's user
+/// must be a member: `SupplementaryGroups=` in the unit). A failure is logged; the socket then keeps the
+/// daemon's own group.
+fn give_to_reviewers(path: &std::path::Path, reviewer_group: &str) {
+    let spec = reviewer_group.trim();
+    if spec.is_empty() {
+        return;
+    }
+    let group = std::fs::read_to_string("/etc/group").unwrap_or_default();
+    let Some((gid, _)) = peer::group_in(&group, spec) else {
+        tracing::warn!(
+            group = spec,
+            "the reviewer group does not exist; the admin socket keeps the daemon's group"
+        );
+        return;
+    };
+    if let Err(e) = std::os::unix::fs::chown(path, None, Some(gid)) {
+        tracing::warn!(group = spec, error = %e, "cannot give the admin socket to the reviewer group (is the daemon's user a member?); it keeps the daemon's group");
+    }
 }
 
 /// Read one request line (within `[admin] request_timeout_secs` of silence), check the peer, run it,
