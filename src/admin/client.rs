@@ -80,6 +80,11 @@ pub(crate) fn call_at(
             io(e)
         });
     }
+    if answer.is_empty() {
+        // The daemon took the request and went away (killed, or stopped) before answering: what it did
+        // with the request is unknown here, and a decision may well have been committed.
+        return Err(AdminError::NoAnswer(path.display().to_string()));
+    }
     let r: Response =
         serde_json::from_slice(&answer).map_err(|e| AdminError::Protocol(e.to_string()))?;
     Ok(Some(match (r.ok, r.result, r.error) {

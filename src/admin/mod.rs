@@ -156,6 +156,9 @@ pub enum AdminError {
         /// The limit that passed.
         secs: u64,
     },
+    /// The daemon closed the connection without answering (it stopped or was killed meanwhile).
+    #[error("admin socket {0}: the daemon closed the connection without answering (it may have stopped); the request may or may not have been carried out: check `labelweir audit` (or `quarantine list`) before repeating a decision")]
+    NoAnswer(String),
     /// The daemon's answer could not be read.
     #[error("admin socket: bad response: {0}")]
     Protocol(String),

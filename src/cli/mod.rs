@@ -57,13 +57,13 @@ pub fn review_exit(e: &labelweir::review::ReviewError) -> u8 {
     }
 }
 
-/// The exit code for a failure of the admin channel itself: 77 not allowed to use it, 75 no answer in
-/// time, 74 other I/O.
+/// The exit code for a failure of the admin channel itself: 77 not allowed to use it, 75 no answer (in
+/// time, or at all: the outcome is unknown, never reported as a storage failure), 74 other I/O.
 pub fn admin_exit(e: &labelweir::admin::AdminError) -> u8 {
     use labelweir::admin::AdminError;
     match e {
         AdminError::Denied(_) => exit::NOPERM,
-        AdminError::Timeout { .. } => exit::TEMPFAIL,
+        AdminError::Timeout { .. } | AdminError::NoAnswer(_) => exit::TEMPFAIL,
         _ => exit::IO,
     }
 }
