@@ -33,6 +33,8 @@ pub struct Config {
     pub ingest: IngestSettings,
     /// The metrics and health endpoint.
     pub http: HttpSettings,
+    /// The admin socket.
+    pub admin: AdminSettings,
     /// Column names and the feature schema of batches.
     pub schema: SchemaSettings,
     /// The embedded store.
@@ -114,6 +116,11 @@ pub struct HttpSettings {
     pub enabled: bool,
     /// Address and port; loopback by default (put a reverse proxy in front to expose it).
     pub listen: String,
+    /// Most connections open at once (also kept below a quarter of the open-file limit); more wait in
+    /// the kernel's backlog. Count.
+    pub max_connections: usize,
+    /// A connection that sends or reads nothing for this long is closed. Seconds.
+    pub idle_timeout_secs: u64,
 }
 
 impl Default for HttpSettings {
@@ -121,6 +128,32 @@ impl Default for HttpSettings {
         Self {
             enabled: true,
             listen: "127.0.0.1:9464".into(),
+            max_connections: 64,
+            idle_timeout_secs: 15,
+        }
+    }
+}
+
+/// The `[admin]` section: who may use the admin socket, and its connection limits.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(default, deny_unknown_fields)]
+pub struct AdminSettings {
+    /// The reviewers' group (a name from /etc/group or a numeric gid): besides root and the daemon's own
+    /// user, only its members may use the admin socket (checked on the peer's credentials). Empty: root
+    /// and the daemon's user only.
+    pub reviewer_group: String,
+    /// Most admin connections open at once (also kept below an eighth of the open-file limit). Count.
+    pub max_connections: usize,
+    /// A client must send its whole request within this time. Seconds.
+    pub request_timeout_secs: u64,
+}
+
+impl Default for AdminSettings {
+    fn default() -> Self {
+        Self {
+            reviewer_group: String::new(),
+            max_connections: 16,
+            request_timeout_secs: 30,
         }
     }
 }
@@ -318,6 +351,10 @@ impl Config {
         };
         check(self.vendors != new.vendors, "vendors");
         check(self.http != new.http, "http");
+        check(
+            self.admin.max_connections != new.admin.max_connections,
+            "admin.max_connections",
+        );
         check(self.schema != new.schema, "schema");
         check(self.store != new.store, "store");
         check(self.pool != new.pool, "pool");
@@ -413,6 +450,18 @@ impl Config {
             return Err(invalid("ingest.queue_capacity", "must be in 1..=1024"));
         }
         self.listen_addr()?;
+        if self.http.max_connections == 0 || self.http.idle_timeout_secs == 0 {
+            return Err(invalid(
+                "http.max_connections / http.idle_timeout_secs",
+                "must be > 0",
+            ));
+        }
+        if self.admin.max_connections == 0 || self.admin.request_timeout_secs == 0 {
+            return Err(invalid(
+                "admin.max_connections / admin.request_timeout_secs",
+                "must be > 0",
+            ));
+        }
         let s = &self.schema;
         if s.id_column.is_empty() || s.label_column.is_empty() || s.id_column == s.label_column {
             return Err(invalid(

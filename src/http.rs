@@ -2,6 +2,9 @@
 //!
 //! Served by axum on the configured address (loopback by default). Status codes are what machines read:
 //! `/readyz` answers 200 only when every readiness check passes, else 503.
+//!
+//! Connections are capped and idle ones closed (`http.max_connections`, `http.idle_timeout_secs`; see
+//! [`crate::conn`]), so idle clients cannot use up the daemon's file descriptors; accept errors back off.
 
 use std::net::SocketAddr;
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -13,6 +16,7 @@ use axum::response::IntoResponse;
 use axum::routing::get;
 use axum::Router;
 
+use crate::conn::{fd_share, Backoff, Idle, Slots};
 use crate::metrics::Metrics;
 
 /// Readiness checks, set by the daemon as it starts and runs.
@@ -114,14 +118,70 @@ pub async fn bind(addr: SocketAddr) -> std::io::Result<tokio::net::TcpListener> 
     tokio::net::TcpListener::bind(addr).await
 }
 
-/// Serve until `shutdown` resolves.
+/// Connection limits of the HTTP listener.
+#[derive(Debug, Clone, Copy)]
+pub struct Limits {
+    /// Most connections open at once.
+    pub max_connections: usize,
+    /// Close a connection idle this long.
+    pub idle: std::time::Duration,
+}
+
+/// The TCP listener with a slot per connection, an idle timeout on each and backoff on accept errors.
+struct Capped {
+    inner: tokio::net::TcpListener,
+    slots: Slots,
+    idle: std::time::Duration,
+    backoff: Backoff,
+}
+
+impl axum::serve::Listener for Capped {
+    type Io = Idle<tokio::net::TcpStream>;
+    type Addr = SocketAddr;
+
+    async fn accept(&mut self) -> (Self::Io, Self::Addr) {
+        loop {
+            // The slot first: beyond the cap, clients wait in the kernel's backlog, not in our fds.
+            let Some(slot) = self.slots.take().await else {
+                std::future::pending::<()>().await;
+                continue;
+            };
+            match self.inner.accept().await {
+                Ok((s, a)) => {
+                    self.backoff.succeeded();
+                    return (Idle::new(s, self.idle, Some(slot)), a);
+                }
+                Err(e) => {
+                    drop(slot);
+                    self.backoff.failed(&e).await;
+                }
+            }
+        }
+    }
+
+    fn local_addr(&self) -> std::io::Result<Self::Addr> {
+        self.inner.local_addr()
+    }
+}
+
+/// Serve until `shutdown` resolves, with at most `limits.max_connections` connections (and at most a
+/// quarter of the open-file limit) open at once.
 pub async fn serve(
     listener: tokio::net::TcpListener,
     metrics: Arc<Metrics>,
     ready: Arc<Readiness>,
+    limits: Limits,
     shutdown: impl std::future::Future<Output = ()> + Send + 'static,
 ) -> std::io::Result<()> {
-    axum::serve(listener, router(metrics, ready))
+    let max = fd_share(limits.max_connections, 4);
+    tracing::debug!(max_connections = max, "http connection cap");
+    let capped = Capped {
+        inner: listener,
+        slots: Slots::new(max),
+        idle: limits.idle,
+        backoff: Backoff::new("http"),
+    };
+    axum::serve(capped, router(metrics, ready))
         .with_graceful_shutdown(shutdown)
         .await
 }

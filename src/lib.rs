@@ -31,6 +31,7 @@
 
 pub mod admin;
 pub mod config;
+mod conn;
 pub mod daemon;
 pub mod data;
 pub mod eval;

@@ -33,6 +33,19 @@ enum Command {
     Features(cli::features::Args),
 }
 
+/// Give SIGPIPE back its default action, so a command whose output pipe closes early (`labelweir assess
+/// ... --json | head -1`) ends quietly, as Unix filters do, instead of failing on the write (the Rust
+/// runtime ignores SIGPIPE, which turns every later print into an error). Not for `run` and `demo`: the
+/// daemon writes to sockets whose peers may go away, and must see that as an error on the one connection.
+/// The admin client sends with `MSG_NOSIGNAL` for the same reason.
+fn restore_sigpipe() {
+    // SAFETY: called once at start, before any other thread exists; SIG_DFL is a valid disposition for
+    // SIGPIPE and no handler function is involved.
+    unsafe {
+        libc::signal(libc::SIGPIPE, libc::SIG_DFL);
+    }
+}
+
 fn main() -> ExitCode {
     let cli = match Cli::try_parse() {
         Ok(cli) => cli,
@@ -46,6 +59,9 @@ fn main() -> ExitCode {
             return ExitCode::from(code);
         }
     };
+    if !matches!(cli.command, Command::Run(_) | Command::Demo(_)) {
+        restore_sigpipe();
+    }
     let result = match cli.command {
         Command::Assess(a) => cli::assess::run(a),
         Command::Init(a) => cli::init::run(a),

@@ -1,10 +1,13 @@
 //! The review commands' side of the admin socket.
 
-use std::io::{BufRead, BufReader, Read, Write};
+use std::io::{BufRead, BufReader, Read};
 use std::os::unix::net::UnixStream as StdUnixStream;
 use std::path::Path;
+use std::time::Duration;
 
-use super::{AdminError, Request, Response, CLIENT_TIMEOUT, MAX_REQUEST_BYTES};
+use super::{
+    client_timeout, AdminError, Request, Response, CONNECT_TIMEOUT, DENIED, MAX_REQUEST_BYTES,
+};
 use crate::review::ReviewError;
 use crate::workspace::Workspace;
 
@@ -26,9 +29,15 @@ pub(crate) fn call_at(
         path: path.display().to_string(),
         source,
     };
-    let mut stream = match StdUnixStream::connect(path) {
-        Ok(s) => s,
-        Err(e)
+    let timeout = client_timeout();
+    let timed_out = |limit: Duration| AdminError::Timeout {
+        path: path.display().to_string(),
+        secs: limit.as_secs(),
+    };
+    let mut stream = match connect(path) {
+        None => return Err(timed_out(CONNECT_TIMEOUT)),
+        Some(Ok(s)) => s,
+        Some(Err(e))
             if matches!(
                 e.kind(),
                 std::io::ErrorKind::NotFound | std::io::ErrorKind::ConnectionRefused
@@ -36,26 +45,83 @@ pub(crate) fn call_at(
         {
             return Ok(None)
         }
-        Err(e) if e.kind() == std::io::ErrorKind::PermissionDenied => {
-            return Err(AdminError::Denied(path.display().to_string()))
+        Some(Err(e)) if e.kind() == std::io::ErrorKind::PermissionDenied => {
+            return Err(AdminError::Denied(format!(
+                "no permission to use the admin socket {}: ask for membership in the reviewer group ([admin] reviewer_group)",
+                path.display()
+            )))
         }
-        Err(e) => return Err(io(e)),
+        Some(Err(e)) => return Err(io(e)),
     };
-    stream.set_read_timeout(Some(CLIENT_TIMEOUT)).map_err(io)?;
+    stream.set_read_timeout(Some(timeout)).map_err(io)?;
+    stream.set_write_timeout(Some(timeout)).map_err(io)?;
+    let is_timeout = |e: &std::io::Error| {
+        matches!(
+            e.kind(),
+            std::io::ErrorKind::WouldBlock | std::io::ErrorKind::TimedOut
+        )
+    };
     let mut line = serde_json::to_vec(req).map_err(|e| AdminError::Protocol(e.to_string()))?;
     line.push(b'\n');
-    stream.write_all(&line).map_err(io)?;
+    if let Err(e) = send_all(&stream, &line) {
+        return Err(if is_timeout(&e) {
+            timed_out(timeout)
+        } else {
+            io(e)
+        });
+    }
     let mut answer = Vec::new();
-    BufReader::new(stream.take(MAX_REQUEST_BYTES as u64 * 4))
+    if let Err(e) = BufReader::new((&mut stream).take(MAX_REQUEST_BYTES as u64 * 4))
         .read_until(b'\n', &mut answer)
-        .map_err(io)?;
+    {
+        return Err(if is_timeout(&e) {
+            timed_out(timeout)
+        } else {
+            io(e)
+        });
+    }
+    if answer.is_empty() {
+        // The daemon took the request and went away (killed, or stopped) before answering: what it did
+        // with the request is unknown here, and a decision may well have been committed.
+        return Err(AdminError::NoAnswer(path.display().to_string()));
+    }
     let r: Response =
         serde_json::from_slice(&answer).map_err(|e| AdminError::Protocol(e.to_string()))?;
     Ok(Some(match (r.ok, r.result, r.error) {
         (true, Some(v), _) => Ok(v),
+        (_, _, Some(e)) if e.kind == DENIED => return Err(AdminError::Denied(e.message)),
         (_, _, Some(e)) => Err(ReviewError::from_kind(&e.kind, e.message)),
         _ => Err(ReviewError::Model("empty response".into())),
     }))
+}
+
+/// Connect within [`CONNECT_TIMEOUT`] (`None` when it did not: a full backlog makes `connect` wait).
+fn connect(path: &Path) -> Option<std::io::Result<StdUnixStream>> {
+    let (tx, rx) = std::sync::mpsc::channel();
+    let p = path.to_path_buf();
+    let spawned = std::thread::Builder::new()
+        .name("labelweir-connect".into())
+        .spawn(move || {
+            let _ = tx.send(StdUnixStream::connect(&p));
+        });
+    if let Err(e) = spawned {
+        return Some(Err(e));
+    }
+    rx.recv_timeout(CONNECT_TIMEOUT).ok()
+}
+
+/// Write all of `buf` with `MSG_NOSIGNAL`: a daemon that closed the connection gives an error here, never
+/// a SIGPIPE (which the commands leave at its default so that `| head` ends them quietly).
+fn send_all(stream: &StdUnixStream, mut buf: &[u8]) -> std::io::Result<()> {
+    while !buf.is_empty() {
+        match rustix::net::send(stream, buf, rustix::net::SendFlags::NOSIGNAL) {
+            Ok(0) => return Err(std::io::ErrorKind::WriteZero.into()),
+            Ok(n) => buf = &buf[n..],
+            Err(e) if e == rustix::io::Errno::INTR => {}
+            Err(e) => return Err(e.into()),
+        }
+    }
+    Ok(())
 }
 
 /// Whether `ws` has a daemon answering on its admin socket.

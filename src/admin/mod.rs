@@ -4,10 +4,15 @@
 //! therefore send their [`Request`] to the daemon over a Unix socket in the workspace, `DIR/admin.sock`;
 //! when no daemon answers there, they open the store themselves (the binary does the choosing).
 //!
-//! * **Who may use it** is decided by the socket file's permissions: the daemon creates it with mode
-//!   `0660` (owner and group may connect; put reviewers in the daemon's group), and the workspace
-//!   folder's own permissions apply on top. The peer's user id (`SO_PEERCRED`) is recorded in the audit
-//!   trail beside the `--by` name the command gives.
+//! * **Who may use it**: root, the daemon's own user and the members of `[admin] reviewer_group`, checked
+//!   on the peer's credentials (`SO_PEERCRED`) for every connection ([`peer`]); anyone else gets a
+//!   `denied` answer with the reason. The socket file's mode (`0660`, created by the daemon) and the
+//!   workspace folder's permissions are a second fence on top. The peer's user id and name are recorded
+//!   in the audit trail beside the `--by` name the command gives.
+//! * **Limits**: at most `[admin] max_connections` connections at once (more wait in the backlog), a
+//!   request must arrive within `[admin] request_timeout_secs`, and accept errors back off. The client
+//!   gives up after [`CONNECT_TIMEOUT`] to connect and [`client_timeout`] to get its answer
+//!   ([`AdminError::Timeout`]).
 //! * **Protocol**: one request per connection, one JSON object per line each way. The request is a
 //!   [`Request`] (tagged by `op`); the response is [`Response`] — `{"ok": true, "result": ...}` or
 //!   `{"ok": false, "error": {"kind": ..., "message": ...}}`. A request line may be at most
@@ -27,6 +32,7 @@ pub use crate::review::Request;
 use crate::review::ReviewError;
 
 pub mod client;
+pub mod peer;
 pub mod server;
 
 pub use client::{call, daemon_answers};
@@ -37,8 +43,27 @@ pub(crate) const MAX_REQUEST_BYTES: usize = 64 * 1024 * 1024;
 /// Permissions of the socket file: owner and group may connect.
 pub(crate) const SOCKET_MODE: u32 = 0o660;
 
-/// How long a client waits for an answer (a trusted-set change re-scores recent batches).
-pub(crate) const CLIENT_TIMEOUT: Duration = Duration::from_secs(900);
+/// How long a client waits for an answer by default (a trusted-set change re-scores recent batches).
+pub const CLIENT_TIMEOUT: Duration = Duration::from_secs(900);
+
+/// How long a client waits for the daemon to take its connection.
+pub const CONNECT_TIMEOUT: Duration = Duration::from_secs(10);
+
+/// The environment variable that overrides [`CLIENT_TIMEOUT`], in seconds.
+pub const TIMEOUT_ENV: &str = "LABELWEIR_ADMIN_TIMEOUT_SECS";
+
+/// How long a client waits for an answer: `LABELWEIR_ADMIN_TIMEOUT_SECS` when set to a positive number,
+/// else [`CLIENT_TIMEOUT`].
+pub fn client_timeout() -> Duration {
+    std::env::var(TIMEOUT_ENV)
+        .ok()
+        .and_then(|v| v.trim().parse::<u64>().ok())
+        .filter(|s| *s > 0)
+        .map_or(CLIENT_TIMEOUT, Duration::from_secs)
+}
+
+/// The error kind of a refused peer.
+pub(crate) const DENIED: &str = "denied";
 
 /// An error on the wire.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -63,6 +88,18 @@ pub struct Response {
 }
 
 impl Response {
+    /// The answer to a peer that may not use the socket.
+    pub(crate) fn denied(why: String) -> Self {
+        Self {
+            ok: false,
+            result: None,
+            error: Some(WireError {
+                kind: DENIED.into(),
+                message: why,
+            }),
+        }
+    }
+
     /// The response for an operation's result.
     pub(crate) fn from_result(r: Result<serde_json::Value, ReviewError>) -> Self {
         match r {
@@ -76,10 +113,22 @@ impl Response {
                 result: None,
                 error: Some(WireError {
                     kind: e.kind().into(),
-                    message: e.to_string(),
+                    message: wire_message(e),
                 }),
             },
         }
+    }
+}
+
+/// The message of an error without the prefix its kind adds when displayed: the client rebuilds the error
+/// from kind and message, and displaying it again would say "refused: refused: ...".
+fn wire_message(e: ReviewError) -> String {
+    match e {
+        ReviewError::NotFound(m)
+        | ReviewError::Refused(m)
+        | ReviewError::Invalid(m)
+        | ReviewError::Model(m) => m,
+        ReviewError::Store { message, .. } | ReviewError::Io { message, .. } => message,
     }
 }
 
@@ -96,9 +145,20 @@ pub enum AdminError {
         #[source]
         source: std::io::Error,
     },
-    /// The socket's permissions do not let this user connect.
-    #[error("no permission to use the admin socket {0}: ask for membership in the daemon's group")]
+    /// This user may not use the socket (its file mode, or the daemon's check of the peer).
+    #[error("{0}")]
     Denied(String),
+    /// The daemon did not take the connection, or did not answer, in time.
+    #[error("admin socket {path}: no answer within {secs} s (the daemon may be overloaded; try again, or raise {TIMEOUT_ENV})")]
+    Timeout {
+        /// The socket path.
+        path: String,
+        /// The limit that passed.
+        secs: u64,
+    },
+    /// The daemon closed the connection without answering (it stopped or was killed meanwhile).
+    #[error("admin socket {0}: the daemon closed the connection without answering (it may have stopped); the request may or may not have been carried out: check `labelweir audit` (or `quarantine list`) before repeating a decision")]
+    NoAnswer(String),
     /// The daemon's answer could not be read.
     #[error("admin socket: bad response: {0}")]
     Protocol(String),
@@ -144,5 +204,15 @@ mod tests {
         let e = back.error.unwrap();
         assert_eq!(e.kind, "refused");
         assert!(e.message.contains("released"));
+        // Rebuilt on the client's side, it reads as it did in the daemon: one prefix, not two.
+        let shown = ReviewError::from_kind(&e.kind, e.message).to_string();
+        assert_eq!(shown, "refused: batch b1 is released");
+        let store = Response::from_result(Err(ReviewError::Store {
+            message: "disk full".into(),
+            source: None,
+        }));
+        let e = store.error.unwrap();
+        let shown = ReviewError::from_kind(&e.kind, e.message).to_string();
+        assert_eq!(shown, "store: disk full");
     }
 }

@@ -7,8 +7,11 @@ use std::time::Duration;
 use tokio::io::{AsyncBufReadExt, AsyncReadExt, AsyncWriteExt};
 use tokio::net::UnixListener;
 
-use super::{Request, Response, MAX_REQUEST_BYTES, SOCKET_MODE};
+use tokio::sync::OwnedSemaphorePermit;
+
+use super::{peer, Request, Response, MAX_REQUEST_BYTES, SOCKET_MODE};
 use crate::config::Config;
+use crate::conn::{fd_share, Backoff, Idle, Slots};
 use crate::review::{self, Caller, ReviewEnv, ReviewError, ReviewHooks};
 use crate::store::{Store, WorkspaceMeta};
 use crate::workspace::Workspace;
@@ -56,26 +59,39 @@ pub async fn serve(ctx: Context, mut stop: tokio::sync::watch::Receiver<bool>) {
         let _ = std::fs::remove_file(&path);
         return;
     }
+    give_to_reviewers(&path, &(ctx.config)().admin.reviewer_group);
     tracing::info!(path = %path.display(), "admin socket listening");
+    let max = fd_share((ctx.config)().admin.max_connections, 8);
+    let slots = Slots::new(max);
+    let mut backoff = Backoff::new("admin");
     let ctx = Arc::new(ctx);
     let mut stopped = std::pin::pin!(async move {
         let _ = stop.wait_for(|s| *s).await;
     });
     loop {
+        // A slot first: beyond the cap, clients wait in the socket's backlog, holding none of our fds.
+        let slot = tokio::select! {
+            _ = &mut stopped => break,
+            slot = slots.take() => match slot {
+                Some(s) => s,
+                None => break,
+            },
+        };
         tokio::select! {
             _ = &mut stopped => break,
             accepted = listener.accept() => match accepted {
                 Ok((stream, _)) => {
+                    backoff.succeeded();
                     let ctx = ctx.clone();
                     tokio::spawn(async move {
-                        if let Err(e) = serve_one(ctx, stream).await {
+                        if let Err(e) = serve_one(ctx, stream, slot).await {
                             tracing::warn!(error = %e, "admin connection failed");
                         }
                     });
                 }
                 Err(e) => {
-                    tracing::warn!(error = %e, "admin socket accept failed");
-                    tokio::time::sleep(Duration::from_millis(100)).await;
+                    drop(slot);
+                    backoff.failed(&e).await;
                 }
             }
         }
@@ -83,13 +99,53 @@ pub async fn serve(ctx: Context, mut stop: tokio::sync::watch::Receiver<bool>) {
     let _ = std::fs::remove_file(&path);
 }
 
-async fn serve_one(ctx: Arc<Context>, stream: tokio::net::UnixStream) -> std::io::Result<()> {
-    let uid = stream.peer_cred().ok().map(|c| c.uid());
-    let (rd, mut wr) = stream.into_split();
+/// Give the socket file the reviewer group, so reviewers can connect as themselves (the daemon's user
+/// must be a member: `SupplementaryGroups=` in the unit). A failure is logged; the socket then keeps the
+/// daemon's own group.
+fn give_to_reviewers(path: &std::path::Path, reviewer_group: &str) {
+    let spec = reviewer_group.trim();
+    if spec.is_empty() {
+        return;
+    }
+    let group = std::fs::read_to_string("/etc/group").unwrap_or_default();
+    let Some((gid, _)) = peer::group_in(&group, spec) else {
+        tracing::warn!(
+            group = spec,
+            "the reviewer group does not exist; the admin socket keeps the daemon's group"
+        );
+        return;
+    };
+    if let Err(e) = std::os::unix::fs::chown(path, None, Some(gid)) {
+        tracing::warn!(group = spec, error = %e, "cannot give the admin socket to the reviewer group (is the daemon's user a member?); it keeps the daemon's group");
+    }
+}
+
+/// Read one request line (within `[admin] request_timeout_secs` of silence), check the peer, run it,
+/// answer.
+async fn serve_one(
+    ctx: Arc<Context>,
+    stream: tokio::net::UnixStream,
+    slot: OwnedSemaphorePermit,
+) -> std::io::Result<()> {
+    let cred = stream.peer_cred().ok();
+    let uid = cred.map(|c| c.uid());
+    let config = (ctx.config)();
+    let idle = Duration::from_secs(config.admin.request_timeout_secs);
+    let mut conn = Idle::new(stream, idle, Some(slot));
     let mut line = Vec::new();
-    let mut reader = tokio::io::BufReader::new(rd.take(MAX_REQUEST_BYTES as u64 + 1));
-    reader.read_until(b'\n', &mut line).await?;
-    let response = if line.len() > MAX_REQUEST_BYTES {
+    {
+        let mut reader = tokio::io::BufReader::new((&mut conn).take(MAX_REQUEST_BYTES as u64 + 1));
+        reader.read_until(b'\n', &mut line).await?;
+    }
+    let daemon_uid = rustix::process::geteuid().as_raw();
+    let allowed = match cred {
+        Some(c) => peer::check(c.uid(), c.gid(), daemon_uid, &config.admin.reviewer_group),
+        None => Err("the peer's credentials cannot be read".to_string()),
+    };
+    let response = if let Err(why) = allowed {
+        tracing::warn!(uid = ?uid, reason = %why, "admin request refused");
+        Response::denied(why)
+    } else if line.len() > MAX_REQUEST_BYTES {
         Response::from_result(Err(ReviewError::Invalid(format!(
             "request longer than {MAX_REQUEST_BYTES} bytes"
         ))))
@@ -113,6 +169,7 @@ async fn serve_one(ctx: Arc<Context>, stream: tokio::net::UnixStream) -> std::io
                                 hooks: ctx.hooks.as_ref(),
                                 caller: Caller {
                                     uid,
+                                    user: uid.and_then(peer::user_name),
                                     via: "admin_socket".into(),
                                 },
                             };
@@ -139,7 +196,7 @@ async fn serve_one(ctx: Arc<Context>, stream: tokio::net::UnixStream) -> std::io
     };
     let mut out = serde_json::to_vec(&response).unwrap_or_else(|_| b"{\"ok\":false}".to_vec());
     out.push(b'\n');
-    wr.write_all(&out).await?;
-    wr.shutdown().await?;
+    conn.write_all(&out).await?;
+    conn.shutdown().await?;
     Ok(())
 }

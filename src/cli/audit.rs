@@ -47,6 +47,16 @@ pub fn parse_since(s: &str) -> Option<DateTime<Utc>> {
         })
 }
 
+/// The OS user a review action came from (peer credentials on the admin socket, or the process's own
+/// user), as `os:NAME(UID)`; `-` for records the daemon wrote itself.
+fn os_user(a: &AuditRecord) -> String {
+    match (a.detail["os_uid"].as_u64(), a.detail["os_user"].as_str()) {
+        (Some(uid), Some(name)) => format!("os:{}({uid})", sanitize(name)),
+        (Some(uid), None) => format!("os:uid {uid}"),
+        _ => "-".into(),
+    }
+}
+
 /// Run the subcommand.
 pub fn run(args: Args) -> anyhow::Result<u8> {
     let since = match &args.since {
@@ -81,9 +91,10 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             };
             writeln!(
                 out,
-                "{}  {:<12} {:<16} {:<24} {:<16} {}",
+                "{}  {:<12} {:<18} {:<16} {:<24} {:<16} {}",
                 a.at.format("%Y-%m-%d %H:%M:%S"),
                 sanitize(&a.actor),
+                os_user(a),
                 sanitize(&a.action),
                 what,
                 sanitize(a.outcome.as_deref().unwrap_or("")),

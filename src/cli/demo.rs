@@ -332,6 +332,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         })
     };
     let exit_when_idle = args.exit_when_idle;
+    let deadline = super::run::shutdown_deadline(&config);
     let shutdown = {
         let idle = idle.clone();
         async move {
@@ -341,7 +342,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
                 return;
             }
             println!("\nevery batch has a verdict. Serving metrics until Ctrl-C.");
-            super::run::signals().await;
+            super::run::signals(deadline).await;
         }
     };
     let opts = RunOptions {

@@ -58,6 +58,17 @@ pub fn review_exit(e: &labelweir::review::ReviewError) -> u8 {
     }
 }
 
+/// The exit code for a failure of the admin channel itself: 77 not allowed to use it, 75 no answer (in
+/// time, or at all: the outcome is unknown, never reported as a storage failure), 74 other I/O.
+pub fn admin_exit(e: &labelweir::admin::AdminError) -> u8 {
+    use labelweir::admin::AdminError;
+    match e {
+        AdminError::Denied(_) => exit::NOPERM,
+        AdminError::Timeout { .. } | AdminError::NoAnswer(_) => exit::TEMPFAIL,
+        _ => exit::IO,
+    }
+}
+
 /// The exit code for a failure to create or prepare a workspace: 2 bad input, 78 configuration, 74 I/O.
 pub fn workspace_exit(e: &labelweir::workspace::WorkspaceError) -> u8 {
     use labelweir::workspace::WorkspaceError;
@@ -73,7 +84,8 @@ pub fn workspace_failure(e: labelweir::workspace::WorkspaceError) -> anyhow::Err
     Failure::new(workspace_exit(&e), e.to_string()).into()
 }
 
-/// Exit codes shared by the subcommands (documented in the README).
+/// Exit codes shared by the subcommands (documented in the README). A command whose output pipe closes
+/// early (`labelweir ... | head`) ends quietly on SIGPIPE, as Unix filters do (the shell reports 141).
 pub mod exit {
     /// Success; for `assess`, the batch looks clean.
     pub const OK: u8 = 0;
@@ -85,6 +97,13 @@ pub mod exit {
     pub const INTERNAL: u8 = 70;
     /// I/O or storage error (sysexits EX_IOERR).
     pub const IO: u8 = 74;
+    /// The daemon did not answer in time (sysexits EX_TEMPFAIL: try again later).
+    pub const TEMPFAIL: u8 = 75;
+    /// Not allowed to use the admin socket (sysexits EX_NOPERM).
+    pub const NOPERM: u8 = 77;
+    /// The daemon's shutdown passed its deadline and the process ended itself (sysexits EX_SOFTWARE);
+    /// whatever was unfinished is redone at the next start.
+    pub const SHUTDOWN_DEADLINE: u8 = 70;
     /// Configuration error (sysexits EX_CONFIG).
     pub const CONFIG: u8 = 78;
 }

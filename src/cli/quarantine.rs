@@ -393,7 +393,7 @@ pub fn dispatch(dir: &Path, req: Request) -> anyhow::Result<serde_json::Value> {
         match admin::call(&ws, &req) {
             Ok(Some(r)) => return r.map_err(review_failure),
             Ok(None) => {}
-            Err(e) => return Err(Failure::new(exit::IO, e.to_string()).into()),
+            Err(e) => return Err(Failure::new(super::admin_exit(&e), e.to_string()).into()),
         }
         let config =
             Config::from_workspace(dir).map_err(|e| Failure::new(exit::CONFIG, e.to_string()))?;
@@ -410,6 +410,7 @@ pub fn dispatch(dir: &Path, req: Request) -> anyhow::Result<serde_json::Value> {
                     hooks: &NoHooks,
                     caller: Caller {
                         uid: own_uid(),
+                        user: own_uid().and_then(admin::peer::user_name),
                         via: "direct".into(),
                     },
                 };

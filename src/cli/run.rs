@@ -2,6 +2,7 @@
 
 use std::net::SocketAddr;
 use std::path::PathBuf;
+use std::time::Duration;
 
 use super::{exit, Failure};
 use labelweir::config::Config;
@@ -39,8 +40,17 @@ pub fn init_logging() {
         .try_init();
 }
 
-/// Resolves on the first SIGINT or SIGTERM; a second one exits the process at once (status 130).
-pub async fn signals() {
+/// How long a stop may take before the process ends itself: one scoring run (`model.time_budget_ms`)
+/// plus 20 s for filing, the flush and open connections; below the unit's `TimeoutStopSec=60s` at the
+/// default budget (raise both together).
+pub fn shutdown_deadline(config: &Config) -> Duration {
+    Duration::from_millis(config.model.time_budget_ms) + Duration::from_secs(20)
+}
+
+/// Resolves on the first SIGINT or SIGTERM; a second one exits the process at once (status 130), and so
+/// does the passing of `deadline` after the first (status 70). The deadline runs on a thread of its own,
+/// so it fires even when the runtime's threads are stuck.
+pub async fn signals(deadline: Duration) {
     use tokio::signal::unix::{signal, SignalKind};
     let (Ok(mut int), Ok(mut term)) = (
         signal(SignalKind::interrupt()),
@@ -53,6 +63,16 @@ pub async fn signals() {
         _ = int.recv() => {}
         _ = term.recv() => {}
     }
+    let _ = std::thread::Builder::new()
+        .name("labelweir-stop-deadline".into())
+        .spawn(move || {
+            std::thread::sleep(deadline);
+            eprintln!(
+                "labelweir: shutdown did not finish within {} s, exiting; unfinished work is redone at the next start",
+                deadline.as_secs()
+            );
+            std::process::exit(exit::SHUTDOWN_DEADLINE.into());
+        });
     tokio::spawn(async move {
         tokio::select! {
             _ = int.recv() => {}
@@ -72,7 +92,8 @@ pub fn run_daemon(dir: PathBuf, config: Config, opts: RunOptions) -> anyhow::Res
         .build()
         .map_err(|e| Failure::new(exit::INTERNAL, format!("cannot start the runtime: {e}")))?;
     let ws = Workspace::new(dir);
-    rt.block_on(daemon::run(ws, config, opts, signals()))
+    let deadline = shutdown_deadline(&config);
+    rt.block_on(daemon::run(ws, config, opts, signals(deadline)))
         .map_err(|e| Failure::new(super::daemon_exit(&e), e.to_string()))?;
     Ok(exit::OK)
 }

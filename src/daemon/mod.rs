@@ -330,6 +330,21 @@ async fn stop_pipeline(
     Ok((w, i))
 }
 
+/// Wait a little for a server task to finish its open connections, then abort it.
+async fn finish_or_abort(mut task: tokio::task::JoinHandle<()>, what: &str) {
+    if tokio::time::timeout(Duration::from_secs(5), &mut task)
+        .await
+        .is_err()
+    {
+        tracing::warn!(
+            server = what,
+            "connections still open at shutdown; closing them"
+        );
+        task.abort();
+        let _ = task.await;
+    }
+}
+
 /// Run the daemon on workspace `ws` until `shutdown` resolves. Must be called inside a tokio runtime.
 pub async fn run(
     ws: Workspace,
@@ -378,11 +393,15 @@ pub async fn run(
     let http_task = listener.map(|l| {
         let mut rx = stop_rx.clone();
         let (m, r) = (metrics.clone(), ready.clone());
+        let limits = crate::http::Limits {
+            max_connections: config.http.max_connections,
+            idle: Duration::from_secs(config.http.idle_timeout_secs),
+        };
         tokio::spawn(async move {
             let stop = async move {
                 let _ = rx.wait_for(|s| *s).await;
             };
-            if let Err(e) = crate::http::serve(l, m, r, stop).await {
+            if let Err(e) = crate::http::serve(l, m, r, limits, stop).await {
                 tracing::error!(error = %e, "http server failed");
             }
         })
@@ -423,10 +442,11 @@ pub async fn run(
     let fatal = supervise(shutdown, &p, &ready, Watchdog::from_env(&config)).await;
     let (worker_res, ingest_res) = stop_pipeline(p, &ready).await?;
     let _ = stop_tx.send(true);
+    // Open connections get a few seconds to finish their answer; then they are dropped.
     if let Some(t) = http_task {
-        let _ = t.await;
+        finish_or_abort(t, "http server").await;
     }
-    let _ = admin_task.await;
+    finish_or_abort(admin_task, "admin socket").await;
     let _ = hk.await;
     let _ = hup.await;
     let flush = tokio::task::spawn_blocking(move || store.flush())

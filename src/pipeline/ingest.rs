@@ -119,6 +119,13 @@ pub fn scan_vendor(
     now: SystemTime,
 ) -> std::io::Result<Scan> {
     let mut scan = Scan::default();
+    // A vendor folder replaced by a symbolic link is never followed (its files would be taken in as
+    // that vendor's); the caller logs the error and leaves it alone.
+    if !std::fs::symlink_metadata(dir)?.file_type().is_dir() {
+        return Err(std::io::Error::other(
+            "the vendor folder is not a directory (a symbolic link?); it is not followed",
+        ));
+    }
     for entry in std::fs::read_dir(dir)? {
         let entry = entry?;
         let ft = match entry.file_type() {
@@ -246,7 +253,19 @@ pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Clai
         let path = path.display().to_string();
         move |source| IngestError::Io { op, path, source }
     };
-    let from_dir = File::open(&from).map_err(io("open", &from))?;
+    // The source folder without following a link: a vendor folder swapped for a link after the listing
+    // fails here instead of lending its files to this vendor.
+    let from_dir = rustix::fs::open(
+        &from,
+        OFlags::RDONLY | OFlags::DIRECTORY | OFlags::NOFOLLOW | OFlags::CLOEXEC,
+        Mode::empty(),
+    )
+    .map(File::from)
+    .map_err(|e| IngestError::Io {
+        op: "open",
+        path: from.display().to_string(),
+        source: e.into(),
+    })?;
     let to_dir = File::open(&to).map_err(io("open", &to))?;
     match rustix::fs::renameat_with(
         &from_dir,

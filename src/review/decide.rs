@@ -114,7 +114,7 @@ pub(super) fn expect_state(
 }
 
 pub(super) fn caller_detail(env: &ReviewEnv<'_>) -> serde_json::Value {
-    serde_json::json!({ "os_uid": env.caller.uid, "via": env.caller.via })
+    serde_json::json!({ "os_uid": env.caller.uid, "os_user": env.caller.user, "via": env.caller.via })
 }
 
 /// Release a quarantined batch into the pool, possibly with items excluded or relabeled, and optionally

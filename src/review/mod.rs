@@ -179,6 +179,9 @@ impl ReviewHooks for NoHooks {}
 pub struct Caller {
     /// The OS user id of the requesting process (from the socket's peer credentials, or our own).
     pub uid: Option<u32>,
+    /// That user's name on this machine, if it has one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub user: Option<String>,
     /// `admin_socket` or `direct`.
     pub via: String,
 }
