@@ -120,10 +120,24 @@ struct ReleaseArgs {
     /// Set this item's label (repeat for more).
     #[arg(long = "relabel", value_name = "ID=LABEL")]
     relabel: Vec<String>,
-    /// Accept the proposed label of every item whose label the repair moved (explicit --exclude and
-    /// --relabel win).
+    /// Leave out the items listed in this file: one id per line; blank lines and lines starting with
+    /// `#` are skipped.
+    #[arg(long, value_name = "FILE")]
+    exclude_from: Option<PathBuf>,
+    /// Leave out every flagged item (label moved by the repair) that no --relabel covers and, with
+    /// --accept-proposed, whose proposal is below the confidence floor.
+    #[arg(long)]
+    exclude_flagged: bool,
+    /// Take the proposed label of every flagged item whose proposal is at least --min-confidence
+    /// (explicit --exclude and --relabel win). Weaker proposals are not taken and are listed.
     #[arg(long)]
     accept_proposed: bool,
+    /// Confidence floor for --accept-proposed, from 0 to 1.
+    #[arg(long, value_name = "P", default_value_t = labelweir::review::DEFAULT_MIN_CONFIDENCE, requires = "accept_proposed")]
+    min_confidence: f64,
+    /// Show what the release would do and record nothing.
+    #[arg(long)]
+    dry_run: bool,
     /// Add this item, with its final label, to the trusted set: you verified it (repeat for more).
     #[arg(long = "promote", value_name = "ID")]
     promote: Vec<String>,
@@ -239,14 +253,21 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
                 })?;
                 relabel.push((id.to_string(), label.to_string()));
             }
+            let mut exclude = a.exclude;
+            if let Some(f) = &a.exclude_from {
+                exclude.extend(read_id_list(f)?);
+            }
             let req = ReleaseRequest {
                 batch: a.batch,
                 by: a.by.unwrap_or_else(super::init::os_user),
                 reason: a.reason,
-                exclude: a.exclude,
+                exclude,
                 relabel,
                 accept_proposed: a.accept_proposed,
                 promote: a.promote,
+                min_confidence: Some(a.min_confidence),
+                exclude_flagged: a.exclude_flagged,
+                dry_run: a.dry_run,
             };
             let v = dispatch(&a.dir, Request::Release(req))?;
             print_decision(v, a.json)?;
@@ -284,6 +305,22 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         }
     }
     Ok(exit::OK)
+}
+
+/// Item ids from a list file: one per line, blank lines and `#` comments skipped.
+fn read_id_list(path: &Path) -> anyhow::Result<Vec<String>> {
+    let text = std::fs::read_to_string(path).map_err(|e| {
+        Failure::new(
+            exit::INPUT,
+            format!("--exclude-from {}: {e}", path.display()),
+        )
+    })?;
+    Ok(text
+        .lines()
+        .map(str::trim)
+        .filter(|l| !l.is_empty() && !l.starts_with('#'))
+        .map(str::to_string)
+        .collect())
 }
 
 fn held(a: HeldArgs, drop: bool) -> anyhow::Result<()> {
@@ -576,22 +613,43 @@ fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
         return print_json(&v);
     }
     let d: DecisionReport = serde_json::from_value(v)?;
-    println!(
-        "batch {} ({}) is now {}; decided by {}: {}",
-        sanitize(&d.batch_id),
-        sanitize(&d.vendor),
-        d.state,
-        sanitize(&d.by),
-        sanitize(&d.reason)
-    );
-    if d.items_into_pool > 0 {
-        println!("  {} items went into the training pool", d.items_into_pool);
+    if d.dry_run {
+        println!(
+            "preview, nothing recorded: releasing batch {} ({}) would do this",
+            sanitize(&d.batch_id),
+            sanitize(&d.vendor)
+        );
+        println!(
+            "  {} {} would go into the training pool",
+            d.items_into_pool,
+            plural(d.items_into_pool, "item", "items")
+        );
+    } else {
+        println!(
+            "batch {} ({}) is now {}; decided by {}: {}",
+            sanitize(&d.batch_id),
+            sanitize(&d.vendor),
+            d.state,
+            sanitize(&d.by),
+            sanitize(&d.reason)
+        );
+        if d.items_into_pool > 0 {
+            println!(
+                "  {} {} went into the training pool",
+                d.items_into_pool,
+                plural(d.items_into_pool, "item", "items")
+            );
+        }
     }
     if !d.excluded.is_empty() {
         println!("  excluded: {}", sanitize(&d.excluded.join(", ")));
     }
     if !d.relabeled.is_empty() {
-        println!("  {} item(s) relabeled:", d.relabeled.len());
+        println!(
+            "  {} {} relabeled:",
+            d.relabeled.len(),
+            plural(d.relabeled.len(), "item", "items")
+        );
     }
     for (id, from, to) in d.relabeled.iter().take(10) {
         println!(
@@ -604,6 +662,7 @@ fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
     if d.relabeled.len() > 10 {
         println!("    ... {} more (see --json)", d.relabeled.len() - 10);
     }
+    print_skipped(&d);
     if !d.promoted.is_empty() {
         println!(
             "  promoted to the trusted set: {}",
@@ -620,4 +679,46 @@ fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
         eprintln!("warning: {}", sanitize(w));
     }
     Ok(())
+}
+
+/// `one` or `many` by count.
+pub fn plural(n: usize, one: &'static str, many: &'static str) -> &'static str {
+    if n == 1 {
+        one
+    } else {
+        many
+    }
+}
+
+/// The proposals a release did not take, and what happened to those items.
+fn print_skipped(d: &DecisionReport) {
+    if d.skipped_weak.is_empty() {
+        return;
+    }
+    let floor = d.min_confidence.unwrap_or(labelweir::review::DEFAULT_MIN_CONFIDENCE);
+    let left_out: std::collections::HashSet<&str> = d.excluded.iter().map(String::as_str).collect();
+    let n_out = d
+        .skipped_weak
+        .iter()
+        .filter(|s| left_out.contains(s.id.as_str()))
+        .count();
+    println!(
+        "  {} weak {} below confidence {floor:.2} not taken ({} left out, {} kept their given label); decide them with --relabel ID=LABEL or --exclude ID:",
+        d.skipped_weak.len(),
+        plural(d.skipped_weak.len(), "proposal", "proposals"),
+        n_out,
+        d.skipped_weak.len() - n_out
+    );
+    for s in d.skipped_weak.iter().take(10) {
+        println!(
+            "    {}: {} -> {}? (confidence {:.2})",
+            sanitize(&s.id),
+            sanitize(&s.label),
+            sanitize(&s.proposed_label),
+            s.confidence
+        );
+    }
+    if d.skipped_weak.len() > 10 {
+        println!("    ... {} more (see --json)", d.skipped_weak.len() - 10);
+    }
 }

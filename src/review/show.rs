@@ -307,10 +307,31 @@ pub fn show(env: &ReviewEnv<'_>, batch: &str) -> Result<ShowReport, ReviewError>
     })
 }
 
+/// A batch by its id, or by the reference a vendor quotes from its notice: the notice's file stem
+/// (`<file>.<batch id>[.<verdict>]`, also with `.json`/`.md` after it) or its `instance`
+/// (`urn:labelweir:batch:<batch id>:<verdict>`).
 pub(super) fn get_batch(store: &Store, batch: &str) -> Result<BatchRecord, ReviewError> {
-    store
-        .batch(batch)?
-        .ok_or_else(|| ReviewError::NotFound(format!("no batch {}", crate::text::sanitize(batch))))
+    if let Some(r) = store.batch(batch)? {
+        return Ok(r);
+    }
+    let reference = batch.trim();
+    let reference = reference
+        .strip_prefix("urn:labelweir:batch:")
+        .map(|rest| rest.split(':').next().unwrap_or(rest))
+        .unwrap_or(reference);
+    let file = reference.rsplit('/').next().unwrap_or(reference);
+    // From the end: the batch id comes after the delivered file's stem, which a vendor chose.
+    for part in file.split('.').rev() {
+        if notice::is_safe_batch_id(part) {
+            if let Some(r) = store.batch(part)? {
+                return Ok(r);
+            }
+        }
+    }
+    Err(ReviewError::NotFound(format!(
+        "no batch {} (give a batch id from `quarantine list`, or the reference a vendor quotes from its notice)",
+        crate::text::sanitize(batch)
+    )))
 }
 
 /// The folder a batch's file is in for its state (`None` when it has none).
