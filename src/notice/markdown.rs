@@ -30,17 +30,22 @@ impl Notice {
         }
         let _ = writeln!(
             md,
-            "Your file {} (batch {}, received {}). {}\n",
+            "About your file {}, received {} as batch {}:\n\n{}\n",
             file.as_deref().unwrap_or("(name unknown)"),
-            code(&self.batch_id),
             self.received_at.to_rfc3339_opts(SecondsFormat::Secs, true),
+            code(&self.batch_id),
             md_text(&self.detail)
         );
         let step = self.next_step_for();
         let _ = writeln!(md, "## What to do next\n");
         let _ = writeln!(md, "{}\n", md_text(&step.text));
         let appeal = self.appeal_for();
-        let _ = writeln!(md, "Reference: {}. {}\n", code(&appeal.reference), md_text(&appeal.text));
+        let _ = writeln!(
+            md,
+            "Reference: {}. {}\n",
+            code(&appeal.reference),
+            md_text(&appeal.text)
+        );
         if self.caution_applies() {
             let _ = writeln!(md, "> **Note.** {}\n", md_text(SUSPICION_SENTENCE));
         }
@@ -180,14 +185,17 @@ impl Notice {
             );
         }
     }
-
 }
 
 /// What an item reason code means, in the vendor's terms.
 pub fn item_code_meaning(code: &str) -> Option<&'static str> {
     Some(match code {
-        item_codes::LABEL_SUSPECTED => "the label looks wrong to labelweir's checks; a reviewer looks at it.",
-        item_codes::CONTRADICTS_TRUSTED => "the label disagrees with the plant's expert-verified items of this kind.",
+        item_codes::LABEL_SUSPECTED => {
+            "the label looks wrong to labelweir's checks; a reviewer looks at it."
+        }
+        item_codes::CONTRADICTS_TRUSTED => {
+            "the label disagrees with the plant's expert-verified items of this kind."
+        }
         item_codes::UNLIKE_SIMILAR => "items that look like this one mostly carry another label.",
         item_codes::EXCLUDED_BY_REVIEWER => "a reviewer left the item out of the training pool.",
         item_codes::RELABELED_BY_REVIEWER => "a reviewer changed the item's label.",
@@ -227,7 +235,10 @@ pub fn md_text(s: &str) -> String {
     let clean: Vec<char> = sanitize_text(s, 4000).chars().collect();
     let mut out = String::with_capacity(clean.len() + 8);
     for (i, &c) in clean.iter().enumerate() {
-        let edge = |j: Option<usize>| j.and_then(|j| clean.get(j)).is_none_or(|c| !c.is_alphanumeric());
+        let edge = |j: Option<usize>| {
+            j.and_then(|j| clean.get(j))
+                .is_none_or(|c| !c.is_alphanumeric())
+        };
         let escape = match c {
             '\\' | '`' | '*' | '[' | ']' | '<' | '>' | '|' | '&' | '~' => true,
             '_' => edge(i.checked_sub(1)) || edge(Some(i + 1)),
@@ -240,4 +251,3 @@ pub fn md_text(s: &str) -> String {
     }
     out
 }
-

@@ -161,8 +161,14 @@ fn markdown_shows_vendor_strings_literally_and_own_sentences_without_backslashes
 #[test]
 fn md_text_escapes_only_what_starts_markup() {
     // CommonMark 0.31 "Backslash escapes": any ASCII punctuation may be escaped; only these need it here.
-    assert_eq!(md_text("max_repair_cost: 0.5 (row 3)."), "max_repair_cost: 0.5 (row 3).");
-    assert_eq!(md_text("a *b* [c](d) <e> _f_"), "a \\*b\\* \\[c\\](d) \\<e\\> \\_f\\_");
+    assert_eq!(
+        md_text("max_repair_cost: 0.5 (row 3)."),
+        "max_repair_cost: 0.5 (row 3)."
+    );
+    assert_eq!(
+        md_text("a *b* [c](d) <e> _f_"),
+        "a \\*b\\* \\[c\\](d) \\<e\\> \\_f\\_"
+    );
     assert_eq!(md_code("a`b", 120, false), "``a`b``");
     assert_eq!(md_code("`", 120, false), "`` ` ``");
     assert_eq!(md_code("", 120, false), "` `");
@@ -170,8 +176,11 @@ fn md_text_escapes_only_what_starts_markup() {
 
 #[test]
 fn caution_and_next_step_follow_the_verdict() {
-    let m = Notice::malformed(batch(), vec![NoticeReason::new("missing_column", "no column id")])
-        .redacted(&NoticeSettings::default());
+    let m = Notice::malformed(
+        batch(),
+        vec![NoticeReason::new("missing_column", "no column id")],
+    )
+    .redacted(&NoticeSettings::default());
     assert!(m.suspicion_notice.is_none());
     assert_eq!(m.next_step.action, NextAction::FixAndResend);
     let md = m.to_markdown(&NoticeSettings::default());
@@ -236,7 +245,10 @@ fn write_notice_is_atomic_and_names_files_by_stem() {
 
 #[test]
 fn delivered_names_become_safe_stems() {
-    assert_eq!(delivered_stem("line3 week14 (final).csv"), "line3-week14-final");
+    assert_eq!(
+        delivered_stem("line3 week14 (final).csv"),
+        "line3-week14-final"
+    );
     assert_eq!(delivered_stem("../../etc/passwd"), "passwd");
     assert_eq!(delivered_stem("über.csv"), "ber");
     assert_eq!(delivered_stem(".csv"), "csv");
@@ -259,7 +271,11 @@ fn a_failed_notice_write_keeps_the_old_notice_whole_and_readers_never_see_a_part
     let paths = write_notice(&vd, &old, &settings).unwrap();
     let before: Vec<Vec<u8>> = paths.iter().map(|p| std::fs::read(p).unwrap()).collect();
     // The second write fails: its temporary JSON file cannot be created.
-    let squat = vd.join(format!(".{}.json.tmp-{}", old.file_stem(), std::process::id()));
+    let squat = vd.join(format!(
+        ".{}.json.tmp-{}",
+        old.file_stem(),
+        std::process::id()
+    ));
     std::fs::create_dir(&squat).unwrap();
     std::fs::write(squat.join("x"), b"x").unwrap();
     let mut new = quarantined();

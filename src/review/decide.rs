@@ -591,7 +591,8 @@ fn reject_findings(
     env: &ReviewEnv<'_>,
     rec: &BatchRecord,
 ) -> HashMap<String, (Option<u64>, Vec<String>)> {
-    let (Ok(Some(a)), Ok(table)) = (env.store.assessment(&rec.id), read_batch_table(env, rec)) else {
+    let (Ok(Some(a)), Ok(table)) = (env.store.assessment(&rec.id), read_batch_table(env, rec))
+    else {
         return HashMap::new();
     };
     a.items

@@ -42,8 +42,10 @@ use crate::workspace::Workspace;
 
 mod decide;
 mod drift;
+mod explain;
 mod held;
 mod page;
+mod page_parts;
 mod projection;
 mod rescan;
 mod show;
@@ -52,6 +54,7 @@ mod trusted;
 
 pub use decide::*;
 pub use drift::*;
+pub use explain::*;
 pub use held::*;
 pub use page::*;
 use projection::*;
@@ -550,6 +553,11 @@ mod tests {
                 suspicion: 0.9,
                 confidence: 0.8,
             }],
+            repair_moved: Vec::new(),
+            suspect_groups: Vec::new(),
+            suspect_details: Vec::new(),
+            signals: Vec::new(),
+            workspace: None,
             broken_trusted: Vec::new(),
             history: Vec::new(),
             projection: Some(Projection {

@@ -451,7 +451,10 @@ fn review_loop_while_the_daemon_runs() {
     );
     let md = std::fs::read_to_string(notice_file(&nd, &uid, "rejected.md")).unwrap();
     // A code span, literal in Markdown; the pipe escaped so the table cell stays whole (GFM "Tables").
-    assert!(md.contains("`=cmd\\|' /C calc'!A"), "a code span in Markdown:\n{md}");
+    assert!(
+        md.contains("`=cmd\\|' /C calc'!A"),
+        "a code span in Markdown:\n{md}"
+    );
     assert!(md.contains("A flag is a suspicion for review, not proof"));
 }
 
@@ -487,9 +490,7 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     // Reject with the proposed labels disclosed (the reviewer's choice). The notice cannot be written at
     // first (a folder squats on its file name, as a crash between decision and notice would leave it
     // unwritten): the decision stands, the notice waits in the store, and the next review command writes it.
-    let notice_path = notice_file(&ws
-        .path("notices")
-        .join("glassline"), &uid, "rejected.json");
+    let notice_path = notice_file(&ws.path("notices").join("glassline"), &uid, "rejected.json");
     std::fs::create_dir(&notice_path).unwrap();
     let rej = ok_json(&[
         "quarantine",
@@ -526,10 +527,11 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     assert!(lw(&["quarantine", "list", &dir]).status.success());
     assert_eq!(notices_of(&uid), 1, "and not sent again");
     let n: Value = serde_json::from_slice(
-        &std::fs::read(
-            notice_file(&ws.path("notices")
-                .join("glassline"), &uid, "rejected.json"),
-        )
+        &std::fs::read(notice_file(
+            &ws.path("notices").join("glassline"),
+            &uid,
+            "rejected.json",
+        ))
         .unwrap(),
     )
     .unwrap();
@@ -591,9 +593,11 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
 
     // Withdraw it again (the same command works on released batches) and check the pool. Its notice
     // cannot be written yet (a folder squats on the name); the daemon's next start sends it.
-    let withdrawn_notice = notice_file(&ws
-        .path("notices")
-        .join("glassline"), &rid, "withdrawn.json");
+    let withdrawn_notice = notice_file(
+        &ws.path("notices").join("glassline"),
+        &rid,
+        "withdrawn.json",
+    );
     std::fs::create_dir(&withdrawn_notice).unwrap();
     let w = ok_json(&[
         "quarantine",
@@ -1032,10 +1036,12 @@ fn trusted_correction_rescan_flags_an_accepted_batch_and_withdraw_pulls_it() {
     );
     drop(store);
     validate_notices(&ws.path("notices").join("north-sort"));
-    assert!(notice_file(&ws
-        .path("notices")
-        .join("north-sort"), &sid, "withdrawn.json")
-        .exists());
+    assert!(notice_file(
+        &ws.path("notices").join("north-sort"),
+        &sid,
+        "withdrawn.json"
+    )
+    .exists());
 }
 
 #[test]
@@ -1523,7 +1529,7 @@ fn schema_errors(v: &Value) -> Vec<String> {
 }
 
 /// Every JSON notice in a folder validates against the shipped schema.
-fn validate_notices(dir: &Path) {
+pub(crate) fn validate_notices(dir: &Path) {
     let mut n = 0;
     for e in std::fs::read_dir(dir).unwrap().flatten() {
         let name = e.file_name().to_string_lossy().into_owned();

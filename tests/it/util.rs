@@ -321,7 +321,10 @@ pub fn notice_file(dir: &Path, batch_id: &str, ext: &str) -> PathBuf {
                 .map(|e| e.file_name().to_string_lossy().into_owned())
                 .find(|n| !n.starts_with('.') && (n.ends_with(&suffix) || *n == bare))
         })
-        .map_or_else(|| dir.join(first_verdict_prefix(dir, batch_id) + &bare), |n| dir.join(n))
+        .map_or_else(
+            || dir.join(first_verdict_prefix(dir, batch_id) + &bare),
+            |n| dir.join(n),
+        )
 }
 
 /// `<file>.` from the batch's first-verdict notice (`<file>.<batch id>.json`), or empty.
