@@ -1,0 +1,185 @@
+//! Phase 5 of an assessment: each item's suspicion from the repair signal, the trusted-anchored doubt and
+//! the learner's doubt, fused with the weight the trusted audit gives the repair near the item; the
+//! proposed label; and the trusted items the batch gets wrong.
+
+use ndarray::{Array1, Array2, ArrayView2};
+
+use super::{argmax, ItemScore, TrustedItemReport};
+use crate::model::anchor::AnchoredPath;
+use crate::model::learner::predict_proba;
+use crate::model::ModelSettings;
+
+/// The per-item evidence the fusion reads.
+pub(crate) struct Evidence<'a> {
+    /// Reference probabilities `p_ref` (a model that has not seen the item).
+    pub(crate) p_ref: &'a Array2<f64>,
+    /// The trusted-anchored model's probabilities `p_A`.
+    pub(crate) p_anchor: &'a Array2<f64>,
+    /// The published objective's path.
+    pub(crate) anchored: &'a AnchoredPath,
+    /// Repair weight per item, from the trusted audit.
+    pub(crate) repair_weights: &'a [f64],
+    /// The configured base weight (where the audit finds the reference sound).
+    pub(crate) base_weight: f64,
+    /// Moved mass per item at the repair-cost point.
+    pub(crate) repair_mass: &'a [f64],
+    /// Whether the pool is the reference model.
+    pub(crate) big_pool: bool,
+}
+
+/// The items' scores and the batch's estimated share of wrong labels.
+///
+/// The suspicion fuses the repair signal (the published objective's path) with the learner's doubt, item
+/// by item, with the weight the trusted audit gives the repair there: the configured base weight where the
+/// reference model is sound on the nearby trusted items and of the item's class, more where it is not. The
+/// best alternative class comes from the blend `q_j = w_j ρ_j + (1 − w_j) p_ref,j` of the repair's
+/// path-averaged relaxed label and the reference prediction.
+pub(crate) fn score_items(
+    settings: &ModelSettings,
+    batch_y: &[usize],
+    k: usize,
+    ev: &Evidence<'_>,
+) -> (Vec<ItemScore>, f64) {
+    let n_b = batch_y.len();
+    let (p_ref, anchored) = (ev.p_ref, ev.anchored);
+    let blend: Array2<f64> = {
+        let mut q = p_ref.clone();
+        for (j, mut row) in q.rows_mut().into_iter().enumerate() {
+            let w = ev.repair_weights[j];
+            for c in 0..k {
+                row[c] = w * anchored.mean_labels[[j, c]] + (1.0 - w) * row[c];
+            }
+        }
+        q
+    };
+    // The batch's estimated share of wrong labels: EM on the reference model's probability of each given
+    // label under a class-symmetric noise model (see `crate::model::anchor`), and each item's posterior.
+    let q_given: Vec<f64> = (0..n_b).map(|j| p_ref[[j, batch_y[j]]]).collect();
+    let (noise_rate, p_wrong) = crate::model::anchor::noise_rate_em(
+        &q_given,
+        k,
+        settings.label_noise_prior,
+        settings.label_noise_prior_items,
+    );
+    let items = (0..n_b)
+        .map(|i| {
+            let given = batch_y[i];
+            let disagreement = (1.0 - p_ref[[i, given]]).clamp(0.0, 1.0);
+            // Where the audit finds the reference sound (w = base), the repair's share is the signal that
+            // serves best there: under the pool reference the mass the minimal repair moves at the target
+            // crossing (the items the post-condition needs relabelled; the pool model orders the rest better
+            // than any path does), under a cross-fit the published path's rank. What the audit adds above
+            // the base goes to the trusted-anchored doubt, which leans on the trusted set where the
+            // reference model has learned a bias.
+            let w = ev.repair_weights[i];
+            let base_signal = if ev.big_pool {
+                ev.repair_mass[i]
+            } else {
+                anchored.score[i]
+            };
+            let anchored_doubt = (1.0 - ev.p_anchor[[i, given]]).clamp(0.0, 1.0);
+            let suspicion = (ev.base_weight * base_signal
+                + (w - ev.base_weight).max(0.0) * anchored_doubt
+                + (1.0 - w) * disagreement)
+                .clamp(0.0, 1.0);
+            let pi = blend.row(i);
+            // Best alternative class under the blend, and its share of the non-given mass:
+            // P(alternative | the given label is wrong). The proposed label is the alternative once the
+            // suspicion reaches `flag_threshold`, otherwise the given label.
+            let alt = argmax((0..k).map(|c| if c == given { f64::NEG_INFINITY } else { pi[c] }));
+            let rest: f64 = (0..k).filter(|&c| c != given).map(|c| pi[c]).sum();
+            let share = if rest > 0.0 {
+                pi[alt] / rest
+            } else {
+                1.0 / (k - 1) as f64
+            };
+            let (proposed_label, confidence) = if suspicion >= settings.flag_threshold {
+                (alt, (suspicion * share).clamp(0.0, 1.0))
+            } else {
+                (given, 1.0 - suspicion)
+            };
+            let rho = anchored.mean_labels.row(i);
+            let repair_label = argmax((0..k).map(|c| {
+                if c == given {
+                    f64::NEG_INFINITY
+                } else {
+                    rho[c]
+                }
+            }));
+            ItemScore {
+                index: i,
+                label: given,
+                suspicion,
+                proposed_label,
+                confidence,
+                alternative_label: alt,
+                alternative_share: share.clamp(0.0, 1.0),
+                repair_mass: ev.repair_mass[i],
+                repair_signal: anchored.score[i],
+                repair_label,
+                learner_doubt: disagreement,
+                anchored_doubt,
+                repair_weight: w,
+                wrong_probability: p_wrong[i],
+                flagged_at_step: anchored.first_flagged[i],
+            }
+        })
+        .collect();
+    (items, noise_rate)
+}
+
+/// The flagged share to expect from a batch labelled the way the reference model expects, and its
+/// standard deviation (see `Assessment::expected_flagged_share`), at each item's own weight.
+pub(crate) fn expected_flagged(
+    p_ref: &Array2<f64>,
+    repair_weights: &[f64],
+    threshold: f64,
+) -> (f64, f64) {
+    let n_b = p_ref.nrows();
+    let q: Vec<f64> = p_ref
+        .rows()
+        .into_iter()
+        .enumerate()
+        .map(|(j, r)| {
+            let w = repair_weights[j];
+            r.iter()
+                .filter(|&&pc| (1.0 - w) * (1.0 - pc) >= threshold)
+                .sum::<f64>()
+                .clamp(0.0, 1.0)
+        })
+        .collect();
+    let share = q.iter().sum::<f64>() / n_b as f64;
+    let sd = q.iter().map(|v| v * (1.0 - v)).sum::<f64>().sqrt() / n_b as f64;
+    (share, sd)
+}
+
+/// Trusted items the batch as delivered gets wrong (`prob_t_with`: the trusted items' probabilities under
+/// the model trained with it), and how many the model at the repair point `theta_rep` still gets wrong.
+pub(crate) fn trusted_reports(
+    phi_t: ArrayView2<'_, f64>,
+    y_t: &[usize],
+    prob_t_with: &Array2<f64>,
+    ref_pred_t: &[usize],
+    theta_rep: &Array1<f64>,
+    k: usize,
+) -> (Vec<TrustedItemReport>, usize) {
+    let prob_t_rep = predict_proba(phi_t, theta_rep, k);
+    let broken = (0..y_t.len())
+        .filter_map(|t| {
+            let pred = argmax(prob_t_with.row(t).iter().copied());
+            let yt = y_t[t];
+            (pred != yt).then(|| TrustedItemReport {
+                index: t,
+                label: yt,
+                predicted_with_batch: pred,
+                prob_with_batch: prob_t_with[[t, yt]],
+                reference_correct: ref_pred_t[t] == yt,
+                repaired_correct: argmax(prob_t_rep.row(t).iter().copied()) == yt,
+            })
+        })
+        .collect();
+    let still_wrong = (0..y_t.len())
+        .filter(|&t| argmax(prob_t_rep.row(t).iter().copied()) != y_t[t])
+        .count();
+    (broken, still_wrong)
+}

@@ -1,0 +1,344 @@
+//! The reference model's phase: the pool alone, the trusted set's own cross-validation and the cross-fit.
+
+use std::time::Instant;
+
+use ndarray::{Array1, Array2, Axis};
+use rand::seq::SliceRandom;
+use rand::SeedableRng;
+use rand_chacha::ChaCha8Rng;
+
+use super::{argmax, Convergence, PoolInput, TrustedInput};
+use crate::model::learner::{one_hot, predict_proba, solve, trusted_loss, vstack, Objective};
+use crate::model::{check_labels, FeatureMap, ModelError, ModelSettings, PoolTerm};
+
+/// The pool as it enters the training problems of one assessment: rows with a common weight, and the
+/// summary's quadratic term (incremental mode).
+pub(crate) struct PoolRows {
+    pub(crate) phi: Option<Array2<f64>>,
+    pub(crate) y: Option<Array2<f64>>,
+    pub(crate) row_weight: f64,
+    pub(crate) term: Option<PoolTerm>,
+}
+
+/// Stratified fold assignment: items of each class dealt round-robin after a seeded shuffle.
+fn folds(y: &[usize], k: usize, n_folds: usize, seed: u64) -> Vec<usize> {
+    let mut rng = ChaCha8Rng::seed_from_u64(seed);
+    let mut order: Vec<usize> = (0..y.len()).collect();
+    order.shuffle(&mut rng);
+    let mut next = vec![0usize; k];
+    let mut out = vec![0; y.len()];
+    for i in order {
+        let c = y[i];
+        out[i] = next[c] % n_folds;
+        next[c] += 1;
+    }
+    out
+}
+
+/// Stratified `cv_folds`-fold cross-validation of the learner on the trusted items alone (weighted):
+/// returns the weighted mean out-of-fold loss `Φ_cv` and the out-of-fold predicted classes.
+fn trusted_cross_validation(
+    settings: &ModelSettings,
+    phi_t: &Array2<f64>,
+    trusted: TrustedInput<'_>,
+    k: usize,
+    deadline: Instant,
+    conv: &mut Convergence,
+) -> (f64, Vec<usize>) {
+    let n = trusted.y.len();
+    let nf = settings.cv_folds.min(n).max(2);
+    let fold = folds(trusted.y, k, nf, settings.seed ^ 0x7275_7374);
+    let mut loss = 0.0;
+    let mut wsum = 0.0;
+    let mut pred = vec![0usize; n];
+    let m = phi_t.ncols() * k;
+    for f in 0..nf {
+        let train: Vec<usize> = (0..n).filter(|&i| fold[i] != f).collect();
+        let test: Vec<usize> = (0..n).filter(|&i| fold[i] == f).collect();
+        if test.is_empty() || train.is_empty() {
+            continue;
+        }
+        let phi_tr = phi_t.select(Axis(0), &train);
+        let y_tr = one_hot(&train.iter().map(|&i| trusted.y[i]).collect::<Vec<_>>(), k);
+        let w_tr = Array1::from_iter(train.iter().map(|&i| trusted.weight[i]));
+        let obj = Objective {
+            phi: phi_tr.view(),
+            y: y_tr.view(),
+            weight: Some(w_tr.view()),
+            norm: w_tr.sum().max(f64::MIN_POSITIVE),
+            l2: settings.l2,
+            prior: None,
+        };
+        let (theta, rep) = solve(settings, &obj, Array1::zeros(m), deadline);
+        conv.inner_iterations += rep.iterations;
+        if !rep.converged {
+            conv.inner_converged = false;
+            conv.notes.push(format!(
+                "trusted cross-validation solve stopped early ({})",
+                rep.stopped
+            ));
+        }
+        let phi_te = phi_t.select(Axis(0), &test);
+        let prob = predict_proba(phi_te.view(), &theta, k);
+        for (r, &i) in test.iter().enumerate() {
+            let c = trusted.weight[i];
+            loss += c * -(prob[[r, trusted.y[i]]].max(1e-300)).ln();
+            wsum += c;
+            pred[i] = argmax(prob.row(r).iter().copied());
+        }
+    }
+    let cv = if wsum > 0.0 {
+        loss / wsum
+    } else {
+        (k as f64).ln()
+    };
+    (cv, pred)
+}
+
+/// Out-of-fold probabilities for the batch items: for each of `cv_folds` folds, train on the pool (items or
+/// summary), the other folds of the batch, and the trusted items (with their weights), and predict the fold.
+#[allow(clippy::too_many_arguments)]
+fn cross_fit(
+    settings: &ModelSettings,
+    phi_b: &Array2<f64>,
+    y_hat: &Array2<f64>,
+    pool: &PoolRows,
+    n_p: f64,
+    phi_t: &Array2<f64>,
+    trusted: TrustedInput<'_>,
+    theta_p: &Array1<f64>,
+    deadline: Instant,
+    conv: &mut Convergence,
+) -> Array2<f64> {
+    let n_b = phi_b.nrows();
+    let k = y_hat.ncols();
+    let labels: Vec<usize> = y_hat
+        .rows()
+        .into_iter()
+        .map(|r| argmax(r.iter().copied()))
+        .collect();
+    let nf = settings.cv_folds.min(n_b).max(2);
+    let fold = folds(&labels, k, nf, settings.seed ^ 0x6261_7463);
+    let mut out = Array2::from_elem((n_b, k), 1.0 / k as f64);
+    let y_t = one_hot(trusted.y, k);
+    for f in 0..nf {
+        let train: Vec<usize> = (0..n_b).filter(|&i| fold[i] != f).collect();
+        let test: Vec<usize> = (0..n_b).filter(|&i| fold[i] == f).collect();
+        if test.is_empty() {
+            continue;
+        }
+        let mut phi = vstack(phi_b.select(Axis(0), &train).view(), phi_t.view());
+        let mut yy = vstack(y_hat.select(Axis(0), &train).view(), y_t.view());
+        let mut wts: Vec<f64> = vec![1.0; train.len()];
+        wts.extend(trusted.weight.iter());
+        // The batch folds and trusted items count as themselves; the pool counts as its n_P items whether
+        // it enters as rows (exact mode, or the reservoir), as the quadratic, or both.
+        let n_sum = wts.iter().sum::<f64>() + n_p;
+        if let (Some(pp), Some(yp)) = (&pool.phi, &pool.y) {
+            phi = vstack(pp.view(), phi.view());
+            yy = vstack(yp.view(), yy.view());
+            let mut w2 = vec![pool.row_weight; pp.nrows()];
+            w2.extend(wts);
+            wts = w2;
+        }
+        let wts = Array1::from(wts);
+        let obj = Objective {
+            phi: phi.view(),
+            y: yy.view(),
+            weight: Some(wts.view()),
+            norm: n_sum,
+            l2: settings.l2,
+            prior: pool.term.as_ref().map(|t| t.quadratic(n_sum)),
+        };
+        let (theta, rep) = solve(settings, &obj, theta_p.clone(), deadline);
+        conv.inner_iterations += rep.iterations;
+        if !rep.converged {
+            conv.inner_converged = false;
+            conv.notes
+                .push(format!("cross-fit solve stopped early ({})", rep.stopped));
+        }
+        let prob = predict_proba(phi_b.select(Axis(0), &test).view(), &theta, k);
+        for (r, &i) in test.iter().enumerate() {
+            out.row_mut(i).assign(&prob.row(r));
+        }
+    }
+    out
+}
+
+/// Phase 1a of an assessment: the pool as it enters the training problems, its size, and the learner
+/// trained on the pool alone, `θ_P` (zero for an empty pool; the summary's optimum in incremental mode).
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn fit_pool(
+    settings: &ModelSettings,
+    fmap: &FeatureMap,
+    pool: PoolInput<'_>,
+    k: usize,
+    m: usize,
+    n_b: usize,
+    deadline: Instant,
+    conv: &mut Convergence,
+) -> Result<(PoolRows, u64, Array1<f64>), ModelError> {
+    Ok(match pool {
+        PoolInput::Empty => (
+            PoolRows {
+                phi: None,
+                y: None,
+                row_weight: 1.0,
+                term: None,
+            },
+            0u64,
+            Array1::zeros(m),
+        ),
+        PoolInput::Exact { x, y } => {
+            check_labels(y, k)?;
+            if x.nrows() != y.len() {
+                return Err(ModelError::Shape(
+                    "pool rows and labels differ in length".into(),
+                ));
+            }
+            let phi_p = fmap.apply(x)?;
+            let yp = one_hot(y, k);
+            let theta_p = if y.is_empty() {
+                Array1::zeros(m)
+            } else {
+                let obj = Objective {
+                    phi: phi_p.view(),
+                    y: yp.view(),
+                    weight: None,
+                    norm: y.len() as f64,
+                    l2: settings.l2,
+                    prior: None,
+                };
+                let (t, rep) = solve(settings, &obj, Array1::zeros(m), deadline);
+                conv.inner_iterations += rep.iterations;
+                if !rep.converged {
+                    conv.inner_converged = false;
+                    conv.notes
+                        .push(format!("pool-only solve stopped early ({})", rep.stopped));
+                }
+                t
+            };
+            (
+                PoolRows {
+                    phi: Some(phi_p),
+                    y: Some(yp),
+                    row_weight: 1.0,
+                    term: None,
+                },
+                y.len() as u64,
+                theta_p,
+            )
+        }
+        PoolInput::Summary(s) if s.n == 0 => (
+            PoolRows {
+                phi: None,
+                y: None,
+                row_weight: 1.0,
+                term: None,
+            },
+            0,
+            s.theta(),
+        ),
+        PoolInput::Summary(s) => {
+            let mut term = s.term(settings, n_b);
+            let (phi, y, row_weight) = match term.rows.take() {
+                Some((phi, y, w)) => (Some(phi), Some(y), w),
+                None => (None, None, 1.0),
+            };
+            (
+                PoolRows {
+                    phi,
+                    y,
+                    row_weight,
+                    term: Some(term),
+                },
+                s.n,
+                s.theta(),
+            )
+        }
+    })
+}
+
+/// What phase 1 learns before the batch enters the learner: the pool's trusted loss, which model is the
+/// reference, the reference's probabilities for every batch item, and the target.
+pub(crate) struct Reference {
+    /// `Φ_pool = Φ(θ_P)`.
+    pub(crate) phi_pool_loss: f64,
+    /// Whether the pool is large enough to be the reference model.
+    pub(crate) big_pool: bool,
+    /// The reference's predicted class for each trusted item.
+    pub(crate) ref_pred_t: Vec<usize>,
+    /// `Φ_tgt` (consensus relabelling may lower it later).
+    pub(crate) target: f64,
+    /// Which yardstick set the target.
+    pub(crate) target_basis: &'static str,
+    /// `p_ref` for every batch item, from a model that has not seen it.
+    pub(crate) p_ref: Array2<f64>,
+    /// `"pool"` or `"cross_fit"`.
+    pub(crate) reference: &'static str,
+}
+
+/// Phase 1b: the target and the reference probabilities (see [`super::assess`]).
+#[allow(clippy::too_many_arguments)]
+pub(crate) fn reference(
+    settings: &ModelSettings,
+    phi_b: &Array2<f64>,
+    y_hat: &Array2<f64>,
+    pool_rows: &PoolRows,
+    n_p: u64,
+    phi_t: &Array2<f64>,
+    trusted: TrustedInput<'_>,
+    theta_p: &Array1<f64>,
+    k: usize,
+    m: usize,
+    deadline: Instant,
+    conv: &mut Convergence,
+) -> Reference {
+    let (phi_pool_loss, _, prob_t_pool) =
+        trusted_loss(phi_t.view(), trusted.y, trusted.weight, theta_p, k);
+    // The pool is the reference once it holds `min_reference_pool` items, or sooner when it already holds
+    // `reference_items_per_param` items per learner parameter (a small learner on a small pool).
+    let big_pool = n_p > 0
+        && (n_p >= settings.min_reference_pool as u64
+            || n_p as f64 >= settings.reference_items_per_param * m as f64);
+
+    // Cross-validated trusted loss (only needed while the pool is too small to be the reference).
+    let mut ref_pred_t: Vec<usize> = prob_t_pool
+        .rows()
+        .into_iter()
+        .map(|r| argmax(r.iter().copied()))
+        .collect();
+    // The target never rests on the pool alone: the trusted set's own cross-validated loss (what the
+    // trusted items promise about each other, which no vendor can touch) is always computed, and the
+    // target is the better of the two. A contaminated pool raises `Φ_pool`, so it can never make the bar
+    // laxer than the trusted items alone set it; a clean pool that predicts the trusted items better
+    // tightens it.
+    let mut target = phi_pool_loss;
+    let mut target_basis = "pool";
+    let (cv_loss, cv_pred) = trusted_cross_validation(settings, phi_t, trusted, k, deadline, conv);
+    if cv_loss < target || n_p == 0 {
+        target = target.min(cv_loss);
+        ref_pred_t = cv_pred;
+        target_basis = "trusted_cross_validation";
+    }
+    target += settings.target_slack;
+
+    // Reference probabilities for the batch items from a model that has not seen them.
+    let (p_ref, reference) = if big_pool {
+        (predict_proba(phi_b.view(), theta_p, k), "pool")
+    } else {
+        let pr = cross_fit(
+            settings, phi_b, y_hat, pool_rows, n_p as f64, phi_t, trusted, theta_p, deadline, conv,
+        );
+        (pr, "cross_fit")
+    };
+    Reference {
+        phi_pool_loss,
+        big_pool,
+        ref_pred_t,
+        target,
+        target_basis,
+        p_ref,
+        reference,
+    }
+}
