@@ -132,7 +132,7 @@ pub fn suspect_groups(moved: &[MovedItem], details: &[SuspectDetail]) -> Vec<Sus
     for g in &mut groups {
         g.mean_suspicion /= g.ids.len().max(1) as f64;
     }
-    groups.sort_by(|a, b| b.ids.len().cmp(&a.ids.len()));
+    groups.sort_by_key(|g| std::cmp::Reverse(g.ids.len()));
     groups
 }
 
@@ -298,7 +298,8 @@ pub fn repair_moved(
     let (Some(a), Some(t)) = (assessment, table) else {
         return Vec::new();
     };
-    if !(cost >= NEGLIGIBLE_REPAIR_COST) || a.items.len() != t.len() {
+    // A NaN cost (unknown) lists nothing either.
+    if cost.is_nan() || cost < NEGLIGIBLE_REPAIR_COST || a.items.len() != t.len() {
         return Vec::new();
     }
     let name = |k: usize| classes.get(k).cloned().unwrap_or_else(|| k.to_string());

@@ -52,10 +52,11 @@ fn text(o: &Output) -> String {
     String::from_utf8_lossy(&o.stdout).into_owned()
 }
 
-/// A workspace on the fixtures' trusted set (vendor `acme`), fed by a running daemon with: `pool.csv` (the
-/// pool, accepted, released if held), the three batches with planted errors (held), `batch-clean.csv`,
-/// the same bytes again as `again-clean.csv` (a duplicate) and `bad.csv` (a missing column). Returns the
-/// stopped workspace and the batch id of each delivered file name.
+/// A workspace on the fixtures' trusted set (vendor `acme`), fed by a running daemon, one file at a time,
+/// with: `pool.csv` (the pool, accepted, released if held), the three batches with planted errors (held),
+/// `batch-clean.csv`, the same bytes again as `again-clean.csv` (a duplicate) and `bad.csv` (a missing
+/// column); batch ids `b00000001` to `b00000007` in that order. This is the README's worked session.
+/// Returns the stopped workspace and the batch id of each delivered file name.
 fn fixture_workspace() -> (Ws, HashMap<String, String>) {
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path().join("ws");
@@ -100,14 +101,19 @@ fn fixture_workspace() -> (Ws, HashMap<String, String>) {
             "--json",
         ]);
     }
-    for f in FLIPPED {
-        ws.deliver("acme", f, &read(f));
+    // One at a time, so that batch ids follow the order below (the README's session quotes them).
+    let rest = [
+        (FLIPPED[0], read(FLIPPED[0])),
+        (FLIPPED[1], read(FLIPPED[1])),
+        (FLIPPED[2], read(FLIPPED[2])),
+        ("batch-clean.csv", read("batch-clean.csv")),
+        ("again-clean.csv", read("batch-clean.csv")),
+        ("bad.csv", read("bad/missing-column.csv")),
+    ];
+    for (k, (name, bytes)) in rest.iter().enumerate() {
+        ws.deliver("acme", name, bytes);
+        ws.wait_settled(2 + k, T);
     }
-    ws.deliver("acme", "batch-clean.csv", &read("batch-clean.csv"));
-    ws.wait_settled(5, T);
-    ws.deliver("acme", "again-clean.csv", &read("batch-clean.csv"));
-    ws.deliver("acme", "bad.csv", &read("bad/missing-column.csv"));
-    ws.wait_settled(7, T);
     // Every delivery's first notice, read back: delivered name -> batch id.
     let nd = ws.path("notices").join("acme");
     let t = Instant::now();
@@ -889,4 +895,137 @@ fn json_everywhere_it_is_asked_for_and_generated_completions_and_man_pages() {
 
 fn text_of(o: &Output) -> String {
     String::from_utf8_lossy(&o.stdout).into_owned()
+}
+
+/// Replace what differs between runs: the workspace path by `lw`, timestamps by `<time>`.
+fn normalise(text: &str, ws: &Path) -> String {
+    let time =
+        regex::Regex::new(r"\d{4}-\d{2}-\d{2}[T ]\d{2}:\d{2}:\d{2}(\.\d+)?Z?( UTC)?").unwrap();
+    let text = text.replace(&ws.display().to_string(), "lw");
+    time.replace_all(&text, "<time>").into_owned()
+}
+
+/// The README's worked session, `(command, quoted output lines)`, from the console block after the marker
+/// `<!-- worked session: checked by tests/it/ux.rs -->`.
+fn readme_session() -> Vec<(String, Vec<String>)> {
+    let readme =
+        std::fs::read_to_string(Path::new(env!("CARGO_MANIFEST_DIR")).join("README.md")).unwrap();
+    let start = readme
+        .find("<!-- worked session: checked by tests/it/ux.rs -->")
+        .expect("the README marks its worked session");
+    let block = readme[start..]
+        .split("```console\n")
+        .nth(1)
+        .unwrap()
+        .split("\n```")
+        .next()
+        .unwrap();
+    let mut out: Vec<(String, Vec<String>)> = Vec::new();
+    let mut continued = false;
+    for line in block.lines() {
+        if let Some(cmd) = line.strip_prefix("$ ") {
+            out.push((cmd.trim_end_matches('\\').trim().to_string(), Vec::new()));
+            continued = line.ends_with('\\');
+        } else if continued {
+            let last = out.last_mut().unwrap();
+            last.0.push(' ');
+            last.0.push_str(line.trim().trim_end_matches('\\').trim());
+            continued = line.ends_with('\\');
+        } else if let Some(last) = out.last_mut() {
+            last.1.push(line.to_string());
+        }
+    }
+    out
+}
+
+/// Split a README command line into words (single and double quotes group words).
+fn words(cmd: &str) -> Vec<String> {
+    let mut v = Vec::new();
+    let mut cur = String::new();
+    let mut quote: Option<char> = None;
+    let mut any = false;
+    for c in cmd.chars() {
+        match (quote, c) {
+            (Some(q), c) if c == q => quote = None,
+            (Some(_), c) => cur.push(c),
+            (None, '"' | '\'') => {
+                quote = Some(c);
+                any = true;
+            }
+            (None, ' ') => {
+                if any || !cur.is_empty() {
+                    v.push(std::mem::take(&mut cur));
+                }
+                any = false;
+            }
+            (None, c) => cur.push(c),
+        }
+    }
+    if any || !cur.is_empty() {
+        v.push(cur);
+    }
+    v
+}
+
+/// Issue 15 item 6: the README's worked session is a real run. The test builds the same workspace
+/// ([`fixture_workspace`]), runs every `labelweir` command of the session (on `lw`, the workspace) and checks
+/// that every output line the README quotes appears in the real output, after replacing timestamps and
+/// the workspace path; lines of `...` stand for output left out. With `LABELWEIR_PRINT_SESSION=1` it
+/// prints the real session instead, to paste into the README after a change of output.
+#[test]
+fn the_readme_worked_session_matches_a_real_run() {
+    let (ws, _) = fixture_workspace();
+    let session = readme_session();
+    assert!(session.len() >= 5, "{session:?}");
+    let print = std::env::var_os("LABELWEIR_PRINT_SESSION").is_some();
+    let mut missing = Vec::new();
+    for (cmd, quoted) in &session {
+        let w = words(cmd);
+        assert_eq!(
+            w[0], "labelweir",
+            "only labelweir commands in the session: {cmd}"
+        );
+        let args: Vec<String> = w[1..]
+            .iter()
+            .map(|a| {
+                if a == "lw" {
+                    ws.dir.display().to_string()
+                } else if let Some(rest) = a.strip_prefix("lw/") {
+                    ws.dir.join(rest).display().to_string()
+                } else {
+                    a.clone()
+                }
+            })
+            .collect();
+        let args: Vec<&str> = args.iter().map(String::as_str).collect();
+        let out = run_bin(&args);
+        let real = normalise(
+            &format!(
+                "{}{}",
+                String::from_utf8_lossy(&out.stdout),
+                String::from_utf8_lossy(&out.stderr)
+            ),
+            &ws.dir,
+        );
+        if print {
+            println!("$ {cmd}\n{real}");
+            continue;
+        }
+        let lines: HashSet<&str> = real.lines().map(str::trim_end).collect();
+        for q in quoted {
+            let q = normalise(q, &ws.dir);
+            let q = q.trim_end();
+            if q.trim() == "..." || q.is_empty() {
+                continue;
+            }
+            if !lines.contains(q) {
+                missing.push(format!("{cmd}: {q:?}"));
+            }
+        }
+    }
+    assert!(
+        missing.is_empty(),
+        "README lines not in a real run (LABELWEIR_PRINT_SESSION=1 prints the real session):\n{}",
+        missing.join("\n")
+    );
 }
