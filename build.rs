@@ -7,13 +7,14 @@
 //! | `prometheus`       | `PROMETHEUS`       | `has_prometheus`       | alerting          |
 //! | `systemd-analyze`  | `SYSTEMD_ANALYZE`  | `has_systemd_analyze`  | alerting          |
 //! | `systemd-tmpfiles` | `SYSTEMD_TMPFILES` | `has_systemd_tmpfiles` | alerting          |
+//! | `chromium`         | `CHROMIUM`         | `has_chromium`         | ux (review page)  |
 //!
 //! Each is looked up in its env variable (which must then name an executable file), then in
 //! `.ci/root/usr/bin`, then on `PATH`.
 //!
 //! The path found is passed to the tests as the compile-time env `LABELWEIR_TOOL_<ENV NAME>` (empty when
 //! missing). Under CI (env `CI` = `true`, `1` or `yes`) the cfg `labelweir_ci` is set and no such test is
-//! ignored: a missing program makes the test fail. `.ci/run` installs all four and exports their paths.
+//! ignored: a missing program makes the test fail. `.ci/run` installs all five and exports their paths.
 //!
 //! `.ci/root/usr/bin` is where `.ci/run` unpacks Debian's prometheus package, so a developer who ran it once
 //! has those tests too. The script runs again when any of these variables (or `PATH`, or `CI`) changes, or
@@ -23,7 +24,7 @@
 use std::path::{Path, PathBuf};
 
 /// (program, env variable naming it, cfg set when found)
-const TOOLS: [(&str, &str, &str); 4] = [
+const TOOLS: [(&str, &str, &str); 5] = [
     ("promtool", "PROMTOOL", "has_promtool"),
     ("prometheus", "PROMETHEUS", "has_prometheus"),
     ("systemd-analyze", "SYSTEMD_ANALYZE", "has_systemd_analyze"),
@@ -32,6 +33,7 @@ const TOOLS: [(&str, &str, &str); 4] = [
         "SYSTEMD_TMPFILES",
         "has_systemd_tmpfiles",
     ),
+    ("chromium", "CHROMIUM", "has_chromium"),
 ];
 
 fn main() {

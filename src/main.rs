@@ -2,7 +2,7 @@
 
 use std::process::ExitCode;
 
-use clap::{Parser, Subcommand};
+use clap::{CommandFactory, Parser, Subcommand};
 mod cli;
 
 use cli::{exit, Failure};
@@ -15,6 +15,10 @@ use cli::{exit, Failure};
 struct Cli {
     #[command(subcommand)]
     command: Command,
+    /// Log lines as `text` or `json` (daemon and demo). Default: text on a terminal, JSON otherwise
+    /// (e.g. under systemd). The filter comes from LABELWEIR_LOG (default `info`).
+    #[arg(long, global = true, value_enum, value_name = "FORMAT")]
+    log_format: Option<cli::logging::LogFormat>,
 }
 
 #[derive(Debug, Subcommand)]
@@ -31,6 +35,7 @@ enum Command {
     Audit(cli::audit::Args),
     Bench(cli::bench::Args),
     Features(cli::features::Args),
+    Generate(cli::generate::Args),
 }
 
 /// Give SIGPIPE back its default action, so a command whose output pipe closes early (`labelweir assess
@@ -62,6 +67,7 @@ fn main() -> ExitCode {
     if !matches!(cli.command, Command::Run(_) | Command::Demo(_)) {
         restore_sigpipe();
     }
+    cli::logging::choose(cli.log_format);
     let result = match cli.command {
         Command::Assess(a) => cli::assess::run(a),
         Command::Init(a) => cli::init::run(a),
@@ -75,6 +81,7 @@ fn main() -> ExitCode {
         Command::Audit(a) => cli::audit::run(a),
         Command::Bench(a) => cli::bench::run(a),
         Command::Features(a) => cli::features::run(a),
+        Command::Generate(a) => cli::generate::run(a, Cli::command()),
     };
     match result {
         Ok(code) => ExitCode::from(code),
@@ -83,7 +90,13 @@ fn main() -> ExitCode {
                 .downcast_ref::<Failure>()
                 .map(|f| f.code)
                 .unwrap_or(exit::INTERNAL);
-            eprintln!("labelweir: {err:#}");
+            if std::env::args().any(|a| a == "--json") {
+                // Under --json the error is JSON too (on stderr, one line), for scripts.
+                let v = serde_json::json!({ "error": format!("{err:#}"), "exit_code": code });
+                eprintln!("{v}");
+            } else {
+                eprintln!("labelweir: {err:#}");
+            }
             ExitCode::from(code)
         }
     }

@@ -27,13 +27,15 @@ const NS: &str = "labelweir";
 pub const ADMISSION_FATES: [&str; 3] = ["held", "entered_proposed", "dropped"];
 
 /// Batch outcomes used as the `outcome` label.
-pub const OUTCOMES: [&str; 6] = [
+pub const OUTCOMES: [&str; 7] = [
     "accepted",
     "quarantined",
     "rejected",
     "duplicate",
     "released",
     "withdrawn",
+    // A reviewer's reject of a quarantined batch (the batch state of the same name).
+    "review_rejected",
 ];
 /// Pipeline stages used as the `stage` label of the duration histogram: `claim` and `parse` (ingest
 /// thread), `score`, `decide`, `persist` (the verdict's store transaction) and `absorb` (the pool summary
@@ -92,6 +94,9 @@ struct Flow {
     repair_cost: HistogramVec,
     repair_cost_last: GaugeVec,
     repair_cost_baseline: GaugeVec,
+    flagged_items: IntCounterVec,
+    flagged_share_last: GaugeVec,
+    damage_last: GaugeVec,
     stage_duration: HistogramVec,
     inbox_files: IntGaugeVec,
     inbox_oldest_age: GaugeVec,
@@ -257,6 +262,39 @@ impl Flow {
                     opts(
                         "repair_cost_baseline",
                         "Median repair cost of the vendor's accepted history.",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            flagged_items: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "flagged_items_total",
+                        "Items of scored batches flagged for review (proposed label differs from the given \
+                         one), by vendor; with labelweir_batch_items_total it gives the flagged share over \
+                         time. A flag is a suspicion for review, not proof.",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            flagged_share_last: reg(
+                r,
+                GaugeVec::new(
+                    opts(
+                        "flagged_share_last",
+                        "Share of the vendor's last scored batch flagged for review (a suspicion, not proof).",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            damage_last: reg(
+                r,
+                GaugeVec::new(
+                    opts(
+                        "damage_last",
+                        "Damage of the vendor's last scored batch: how much worse the model does on the \
+                         trusted items with the batch added as delivered (nats).",
                     ),
                     &["vendor"],
                 )?,
@@ -478,6 +516,7 @@ impl Metrics {
             m.flow.batch_bytes.with_label_values(&[v]);
             m.flow.inbox_files.with_label_values(&[v]);
             m.flow.inbox_oldest_age.with_label_values(&[v]);
+            m.flow.flagged_items.with_label_values(&[v]);
             for o in OUTCOMES {
                 m.flow.batches.with_label_values(&[v, o]);
                 m.flow.batch_items.with_label_values(&[v, o]);
@@ -604,6 +643,29 @@ impl Metrics {
                 .repair_cost_baseline
                 .with_label_values(&[vendor])
                 .set(b);
+        }
+    }
+
+    /// A scored batch's flagged items (of `items`) and damage (nats; skipped when unknown).
+    pub fn batch_judged(&self, vendor: &str, flagged: u64, items: u64, damage: f64) {
+        if !self.known(vendor) {
+            return;
+        }
+        self.flow
+            .flagged_items
+            .with_label_values(&[vendor])
+            .inc_by(flagged);
+        if items > 0 {
+            self.flow
+                .flagged_share_last
+                .with_label_values(&[vendor])
+                .set(flagged as f64 / items as f64);
+        }
+        if damage.is_finite() {
+            self.flow
+                .damage_last
+                .with_label_values(&[vendor])
+                .set(damage);
         }
     }
 

@@ -7,28 +7,36 @@
 //!   quoted; cells that a spreadsheet would read as a formula neutralised with a leading `'`, per OWASP's
 //!   "CSV Injection" guidance).
 //!
-//! The stem is the batch id for the first verdict on a batch (`accepted`, `quarantined`, `malformed`,
-//! `duplicate`) and `<batch id>.<verdict>` for a later review decision (`released`, `rejected`,
-//! `withdrawn`), so a quarantined batch's interim notice is never overwritten by its final one.
+//! The stem names the file the vendor delivered, then the batch id: `<file stem>.<batch id>` for the
+//! first verdict on a batch (`accepted`, `quarantined`, `malformed`, `duplicate`) and
+//! `<file stem>.<batch id>.<verdict>` for a later review decision (`released`, `rejected`, `withdrawn`), so
+//! a quarantined batch's interim notice is never overwritten by its final one. The file stem keeps
+//! `[A-Za-z0-9_-]` of the delivered name (other characters become `-`, at most 60). The stem is also the
+//! notice's appeal reference: the review commands take it wherever they take a batch id.
+//!
+//! Every notice says what the vendor is expected to do next ([`NextStep`]): nothing, fix and resend, or
+//! contact the plant (to appeal).
 //!
 //! What a notice discloses is configurable ([`NoticeSettings`]). By default it names the flagged items and
 //! reason codes, but not scores or proposed labels, so that a poisoner cannot use notices as a free oracle.
 //! [`write_notice`] applies the settings itself ([`Notice::redacted`]), whatever the caller put in.
 //!
-//! Every notice says that a flag is a suspicion for review, not proof ([`SUSPICION_SENTENCE`]).
+//! Every notice about scored content (accepted with flagged items, held, released, rejected, withdrawn)
+//! says that a flag is a suspicion for review, not proof ([`SUSPICION_SENTENCE`]); a notice about a file
+//! that could not be read, or a duplicate, does not: nothing was judged.
 
-use std::fmt::Write as _;
 use std::io;
 use std::path::{Path, PathBuf};
 
-use chrono::{DateTime, SecondsFormat, Utc};
+use chrono::{DateTime, Utc};
 use serde::{Deserialize, Serialize};
 
 use crate::policy::{Decision, ReasonCode, Verdict};
-use crate::text::{csv_cell, markdown_escape};
+use crate::text::csv_cell;
 
-/// Version of the notice record (the `schema_version` member).
-pub const NOTICE_SCHEMA_VERSION: u32 = 1;
+/// Version of the notice record (the `schema_version` member). 2: file names after the delivered file,
+/// `next_step`, `appeal`, item `row`, `suspicion_notice` only where it applies.
+pub const NOTICE_SCHEMA_VERSION: u32 = 2;
 
 /// The fixed sentence every notice carries.
 pub const SUSPICION_SENTENCE: &str = "A flag is a suspicion for review, not proof: labelweir's scores point \
@@ -50,8 +58,8 @@ pub struct NoticeSettings {
     pub csv: bool,
     /// Most items listed in one notice (the count of all flagged items is always given). Default 1000.
     pub max_items: usize,
-    /// Longest vendor-supplied string shown in Markdown, in characters (longer ones are cut and marked
-    /// with `…`). Default 120.
+    /// Longest vendor-supplied string (file name, item id, label) shown in Markdown, in characters
+    /// (longer ones are cut and marked with `…`). labelweir's own sentences are never cut. Default 120.
     pub max_string_chars: usize,
 }
 
@@ -174,8 +182,13 @@ impl NoticeReason {
 
 /// Item-level reason codes used in notices.
 pub mod item_codes {
-    /// The label repair moved this item's label: flagged for review.
+    /// The label repair moved this item's label: flagged for review (no finer finding recorded).
     pub const LABEL_SUSPECTED: &str = "label_suspected";
+    /// The trusted items contradict the label: the repair moved it to reach the trusted items, or the
+    /// learner fitted with the trusted items doubts it.
+    pub const CONTRADICTS_TRUSTED: &str = "contradicts_trusted_items";
+    /// Similar items elsewhere in the pool and batch carry another label (the reference model doubts it).
+    pub const UNLIKE_SIMILAR: &str = "unlike_similar_items";
     /// A reviewer excluded the item before releasing the batch.
     pub const EXCLUDED_BY_REVIEWER: &str = "excluded_by_reviewer";
     /// A reviewer changed the item's label before releasing the batch.
@@ -187,6 +200,9 @@ pub mod item_codes {
 pub struct NoticeItem {
     /// The item's id as the vendor delivered it (or its 1-based row number when the batch has no ids).
     pub id: String,
+    /// The item's 1-based data row in the delivered file (the header is not a data row), when known.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub row: Option<u64>,
     /// Reason codes for this item.
     pub reasons: Vec<String>,
     /// The label the repair proposes (only when disclosed).
@@ -279,8 +295,58 @@ pub struct Notice {
     pub repair_cost: Option<f64>,
     /// What this notice discloses.
     pub disclosure: Disclosure,
-    /// [`SUSPICION_SENTENCE`].
-    pub suspicion_notice: String,
+    /// [`SUSPICION_SENTENCE`] where the notice is about scored content (absent for a malformed file or a
+    /// duplicate: nothing was judged).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub suspicion_notice: Option<String>,
+    /// What the vendor is expected to do next.
+    #[serde(default)]
+    pub next_step: NextStep,
+    /// How to appeal or resubmit: the reference to quote.
+    #[serde(default)]
+    pub appeal: Appeal,
+}
+
+/// What a vendor is expected to do after a notice.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum NextAction {
+    /// Nothing is expected.
+    #[default]
+    None,
+    /// Correct the file and deliver it again under a new name.
+    FixAndResend,
+    /// Get in touch with the plant (e.g. to appeal).
+    Contact,
+}
+
+impl NextAction {
+    /// Stable snake_case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            NextAction::None => "none",
+            NextAction::FixAndResend => "fix_and_resend",
+            NextAction::Contact => "contact",
+        }
+    }
+}
+
+/// The next step for the vendor: an action code and a sentence.
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct NextStep {
+    /// What is expected.
+    pub action: NextAction,
+    /// The same in words.
+    pub text: String,
+}
+
+/// How to appeal a decision or resubmit a batch.
+#[derive(Debug, Clone, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Appeal {
+    /// The reference to quote: this notice's file stem (the review commands accept it as a batch).
+    pub reference: String,
+    /// How, in words.
+    pub text: String,
 }
 
 mod rfc3339 {
@@ -329,8 +395,71 @@ impl Notice {
             duplicate_of: None,
             repair_cost: None,
             disclosure: Disclosure::default(),
-            suspicion_notice: SUSPICION_SENTENCE.to_string(),
+            suspicion_notice: None,
+            next_step: NextStep::default(),
+            appeal: Appeal::default(),
         }
+    }
+
+    /// Whether the notice is about scored content, so the suspicion caution applies: not for a file that
+    /// could not be read or a duplicate, nor for an accepted batch with nothing flagged.
+    pub fn caution_applies(&self) -> bool {
+        match self.verdict {
+            NoticeVerdict::Malformed | NoticeVerdict::Duplicate => false,
+            NoticeVerdict::Accepted => self.items_listed_total > 0,
+            _ => true,
+        }
+    }
+
+    /// The vendor's next step for this notice.
+    pub fn next_step_for(&self) -> NextStep {
+        let flagged = self.items_listed_total;
+        let (action, text) = match self.verdict {
+            NoticeVerdict::Accepted if flagged > 0 => (
+                NextAction::None,
+                format!("Nothing is required. The batch is in the training pool; {flagged} of its items wait for a reviewer's check, who may admit them or leave them out. If you find a mislabeled item yourself, deliver the corrected items as a new file."),
+            ),
+            NoticeVerdict::Accepted => (NextAction::None, "Nothing is required.".to_string()),
+            NoticeVerdict::Quarantined => (
+                NextAction::None,
+                "Nothing is required yet. A reviewer decides; a second notice for this file follows with the outcome. Please do not resend the file meanwhile.".to_string(),
+            ),
+            NoticeVerdict::Malformed => (
+                NextAction::FixAndResend,
+                "Please fix the file where the reasons point and deliver it again under a new file name.".to_string(),
+            ),
+            NoticeVerdict::Duplicate => (
+                NextAction::None,
+                "Nothing is required: the first delivery stands. If you meant to send corrected labels, change the file and deliver it under a new name.".to_string(),
+            ),
+            NoticeVerdict::Released => (
+                NextAction::None,
+                "Nothing is required. Items listed were left out or relabeled by the reviewer; please check them against your own records for future batches.".to_string(),
+            ),
+            NoticeVerdict::Rejected => (
+                NextAction::FixAndResend,
+                "Please check the labels of this batch, correct them and deliver the corrected file under a new file name. If you believe the labels are right, contact the plant to appeal.".to_string(),
+            ),
+            NoticeVerdict::Withdrawn => (
+                NextAction::Contact,
+                "Please contact the plant: a reviewer will go through the batch with you.".to_string(),
+            ),
+        };
+        NextStep { action, text }
+    }
+
+    /// How to appeal or resubmit, quoting this notice's reference.
+    pub fn appeal_for(&self) -> Appeal {
+        let reference = self.file_stem();
+        let text = match self.verdict {
+            NoticeVerdict::Malformed | NoticeVerdict::Duplicate => format!(
+                "Questions about this notice: quote the reference {reference} to your contact at the plant."
+            ),
+            _ => format!(
+                "To appeal, or when you resubmit corrected labels, quote the reference {reference} to your contact at the plant; a reviewer opens the batch with it."
+            ),
+        };
+        Appeal { reference, text }
     }
 
     /// The notice for a policy decision on a scored batch (accepted or quarantined). `items` are the
@@ -373,20 +502,32 @@ impl Notice {
         n.reasons = vec![NoticeReason::new(
             "duplicate",
             format!(
-                "the same content (same SHA-256) was delivered before as batch {first_batch_id}"
+                "This file has exactly the same content (the same SHA-256) as a file you delivered earlier, batch {first_batch_id}; that delivery's notice files carry .{first_batch_id} in their names."
             ),
         )];
         n.duplicate_of = Some(first_batch_id.to_string());
         n
     }
 
-    /// The file stem: the batch id for a first verdict, `<batch id>.<verdict>` for a review decision.
+    /// The file stem: `<delivered file stem>.<batch id>` for a first verdict,
+    /// `<delivered file stem>.<batch id>.<verdict>` for a review decision (just the batch id when the
+    /// delivered name has no usable character).
     pub fn file_stem(&self) -> String {
-        if self.verdict.is_review() {
-            format!("{}.{}", self.batch_id, self.verdict.as_str())
-        } else {
+        let delivered = self
+            .file_name
+            .as_deref()
+            .map(delivered_stem)
+            .unwrap_or_default();
+        let mut stem = if delivered.is_empty() {
             self.batch_id.clone()
+        } else {
+            format!("{delivered}.{}", self.batch_id)
+        };
+        if self.verdict.is_review() {
+            stem.push('.');
+            stem.push_str(self.verdict.as_str());
         }
+        stem
     }
 
     /// A copy with only what `settings` (and a reviewer's explicit choice) allow:
@@ -413,6 +554,9 @@ impl Notice {
             }
         }
         n.items_listed_total = n.items_listed_total.max(n.items.len() as u64);
+        n.suspicion_notice = n.caution_applies().then(|| SUSPICION_SENTENCE.to_string());
+        n.next_step = n.next_step_for();
+        n.appeal = n.appeal_for();
         if n.items.len() > settings.max_items {
             n.items.truncate(settings.max_items);
             n.items_truncated = true;
@@ -426,128 +570,6 @@ impl Notice {
             }
         }
         n
-    }
-
-    /// The Markdown rendering. Every vendor-supplied string (vendor, file name, item ids, labels, reason
-    /// details) is sanitised and escaped ([`markdown_escape`]).
-    pub fn to_markdown(&self, settings: &NoticeSettings) -> String {
-        let cap = settings.max_string_chars;
-        let esc = |s: &str| markdown_escape(s, cap);
-        let mut md = String::new();
-        let _ = writeln!(md, "# {}\n", esc(&self.title));
-        let _ = writeln!(md, "{}\n", esc(&self.detail));
-        let _ = writeln!(md, "> **Note.** {SUSPICION_SENTENCE}\n");
-        let _ = writeln!(md, "| | |\n|---|---|");
-        let _ = writeln!(md, "| Verdict | {} |", self.verdict.as_str());
-        let _ = writeln!(
-            md,
-            "| Decided by | {} |",
-            match self.decided_by {
-                DecidedBy::Policy => "automatic policy",
-                DecidedBy::Reviewer => "reviewer",
-            }
-        );
-        let _ = writeln!(md, "| Batch | {} |", esc(&self.batch_id));
-        let _ = writeln!(md, "| Vendor | {} |", esc(&self.vendor));
-        if let Some(f) = &self.file_name {
-            let _ = writeln!(md, "| File | {} |", esc(f));
-        }
-        if let Some(h) = &self.sha256 {
-            let _ = writeln!(md, "| SHA-256 | {} |", esc(h));
-        }
-        let _ = writeln!(
-            md,
-            "| Received | {} |",
-            self.received_at.to_rfc3339_opts(SecondsFormat::Secs, true)
-        );
-        let _ = writeln!(
-            md,
-            "| Decided | {} |",
-            self.decided_at.to_rfc3339_opts(SecondsFormat::Secs, true)
-        );
-        if let Some(t) = self.items_total {
-            let _ = writeln!(md, "| Items in batch | {t} |");
-        }
-        if let Some(d) = &self.duplicate_of {
-            let _ = writeln!(md, "| First delivered as | {} |", esc(d));
-        }
-        if let Some(c) = self.repair_cost {
-            let _ = writeln!(md, "| Repair cost | {c:.4} |");
-        }
-        if !self.reasons.is_empty() {
-            let _ = writeln!(md, "\n## Reasons\n");
-            for r in &self.reasons {
-                let mut line = format!("- `{}`: {}", code_text(&r.code), esc(&r.detail));
-                if let Some(row) = r.row {
-                    let _ = write!(line, " (row {row}");
-                    if let Some(c) = &r.column {
-                        let _ = write!(line, ", column {}", esc(c));
-                    }
-                    line.push(')');
-                } else if let Some(c) = &r.column {
-                    let _ = write!(line, " (column {})", esc(c));
-                }
-                let _ = writeln!(md, "{line}");
-            }
-        }
-        if self.items.is_empty() {
-            if let Some(total) = self.items_total {
-                let _ = writeln!(
-                    md,
-                    "\n## Items\n\n{} of {total} items flagged for review (a suspicion, not proof; no item is named unless a reviewer discloses it).",
-                    self.items_listed_total
-                );
-            }
-        } else {
-            let _ = writeln!(
-                md,
-                "\n## Items ({} of {} listed)\n",
-                self.items.len(),
-                self.items_listed_total
-            );
-            let mut header = String::from("| Item | Reasons |");
-            let mut rule = String::from("|---|---|");
-            if self.disclosure.proposed_labels {
-                header.push_str(" Proposed label |");
-                rule.push_str("---|");
-            }
-            if self.disclosure.scores {
-                header.push_str(" Suspicion |");
-                rule.push_str("---|");
-            }
-            let _ = writeln!(md, "{header}\n{rule}");
-            for it in &self.items {
-                let codes: Vec<String> = it
-                    .reasons
-                    .iter()
-                    .map(|c| format!("`{}`", code_text(c)))
-                    .collect();
-                let mut row = format!("| {} | {} |", esc(&it.id), codes.join(", "));
-                if self.disclosure.proposed_labels {
-                    let _ = write!(
-                        row,
-                        " {} |",
-                        esc(it.proposed_label.as_deref().unwrap_or(""))
-                    );
-                }
-                if self.disclosure.scores {
-                    match it.suspicion {
-                        Some(s) => {
-                            let _ = write!(row, " {s:.3} |");
-                        }
-                        None => row.push_str(" |"),
-                    }
-                }
-                let _ = writeln!(md, "{row}");
-            }
-            if self.items_truncated {
-                let _ = writeln!(
-                    md,
-                    "\nThe list was cut; the JSON notice gives the total count."
-                );
-            }
-        }
-        md
     }
 
     /// The CSV rendering: header `batch_id,item_id,reasons[,proposed_label][,suspicion]`, one row per
@@ -643,6 +665,45 @@ fn code_text(code: &str) -> String {
         .collect()
 }
 
+/// The finding codes for one scored item: [`item_codes::CONTRADICTS_TRUSTED`] where the repair path
+/// moved its label or the trusted-anchored learner doubts it (≥ 0.5), [`item_codes::UNLIKE_SIMILAR`] where
+/// the reference model doubts it (≥ 0.5); [`item_codes::LABEL_SUSPECTED`] when neither alone says so.
+pub fn finding_codes(s: &crate::model::ItemScore) -> Vec<String> {
+    let mut v = Vec::new();
+    if s.flagged_at_step.is_some() || s.anchored_doubt >= 0.5 {
+        v.push(item_codes::CONTRADICTS_TRUSTED.to_string());
+    }
+    if s.learner_doubt >= 0.5 {
+        v.push(item_codes::UNLIKE_SIMILAR.to_string());
+    }
+    if v.is_empty() {
+        v.push(item_codes::LABEL_SUSPECTED.to_string());
+    }
+    v
+}
+
+/// The delivered file's name as a file-name stem: its extension dropped, `[A-Za-z0-9_-]` kept, any other
+/// run of characters turned into one `-`, at most 60 characters.
+pub fn delivered_stem(name: &str) -> String {
+    let base = name.rsplit('/').next().unwrap_or(name);
+    let base = match base.rsplit_once('.') {
+        Some((b, _)) if !b.is_empty() => b,
+        _ => base,
+    };
+    let mut out = String::new();
+    for c in base.chars() {
+        if c.is_ascii_alphanumeric() || c == '_' || c == '-' {
+            out.push(c);
+        } else if !out.ends_with('-') {
+            out.push('-');
+        }
+        if out.len() >= 60 {
+            break;
+        }
+    }
+    out.trim_matches('-').to_string()
+}
+
 /// The notice items for a scored batch: the items whose label the repair moved (`proposed_label ≠
 /// label`), most suspicious first, each with the `label_suspected` code, its suspicion and proposed label
 /// (removed later unless disclosed).
@@ -663,7 +724,8 @@ pub fn flagged_items(
                 .get(s.index)
                 .cloned()
                 .unwrap_or_else(|| (s.index + 1).to_string()),
-            reasons: vec![item_codes::LABEL_SUSPECTED.to_string()],
+            row: Some(s.index as u64 + 1),
+            reasons: finding_codes(s),
             proposed_label: Some(
                 class_names
                     .get(s.proposed_label)
@@ -684,6 +746,16 @@ pub fn is_safe_batch_id(id: &str) -> bool {
             .all(|b| b.is_ascii_alphanumeric() || b == b'_' || b == b'-')
 }
 
+/// Whether a notice file stem is a safe file name: `[A-Za-z0-9_.-]`, no leading dot, no `..`.
+fn is_safe_stem(stem: &str) -> bool {
+    !stem.is_empty()
+        && !stem.starts_with('.')
+        && !stem.contains("..")
+        && stem
+            .bytes()
+            .all(|b| b.is_ascii_alphanumeric() || b == b'_' || b == b'-' || b == b'.')
+}
+
 /// Write a notice into `vendor_dir` (the vendor's folder, `<workspace>/notices/<vendor>/`, created if
 /// missing): `<stem>.json` always, `<stem>.md` and `<stem>.items.csv` as configured. The notice is
 /// redacted with `settings` first. Each file is written atomically — a temporary file in the same folder,
@@ -694,7 +766,7 @@ pub fn write_notice(
     notice: &Notice,
     settings: &NoticeSettings,
 ) -> io::Result<Vec<PathBuf>> {
-    if !is_safe_batch_id(&notice.batch_id) {
+    if !is_safe_batch_id(&notice.batch_id) || !is_safe_stem(&notice.file_stem()) {
         return Err(io::Error::new(
             io::ErrorKind::InvalidInput,
             "batch id is not a safe file name",
@@ -716,192 +788,8 @@ pub fn write_notice(
     crate::fsx::write_atomic_all(vendor_dir, &files, None)
 }
 
+mod markdown;
+pub use markdown::{item_code_meaning, md_code, md_text};
+
 #[cfg(test)]
-mod tests {
-    use super::*;
-    use crate::policy::{decide, PolicySettings, VendorHistory};
-    use chrono::TimeZone;
-
-    fn batch() -> BatchRef {
-        BatchRef {
-            batch_id: "b-000042".into(),
-            vendor: "sortright".into(),
-            file_name: Some("line3_shift2.csv".into()),
-            sha256: Some("ab".repeat(32)),
-            received_at: Utc.with_ymd_and_hms(2026, 3, 1, 8, 0, 0).unwrap(),
-            decided_at: Utc.with_ymd_and_hms(2026, 3, 1, 8, 0, 2).unwrap(),
-        }
-    }
-
-    fn quarantined() -> Notice {
-        let d = decide(
-            &PolicySettings::default(),
-            &VendorHistory::default(),
-            0.3,
-            0.2,
-        );
-        let items = vec![
-            NoticeItem {
-                id: "=HYPERLINK(\"http://x\")".into(),
-                reasons: vec![item_codes::LABEL_SUSPECTED.into()],
-                proposed_label: Some("PET".into()),
-                suspicion: Some(0.93),
-            },
-            NoticeItem {
-                id: "item-7".into(),
-                reasons: vec![item_codes::LABEL_SUSPECTED.into()],
-                proposed_label: Some("glass".into()),
-                suspicion: Some(0.81),
-            },
-        ];
-        Notice::for_decision(batch(), &d, 0.3, 50, items)
-    }
-
-    // OWASP, "CSV Injection" (owasp.org/www-community/attacks/CSV_Injection): the cell-level cases are in
-    // `text::tests`; this one checks the writer's quoting on a whole notice.
-    #[test]
-    fn csv_output_quotes_always_and_doubles_quotes_owasp_example() {
-        // OWASP's worked example (same page, from memory): the cell `=1+2";=1+2` must come out as
-        // `"'=1+2"";=1+2"` — quoted, a leading single quote, the embedded quote doubled.
-        let mut n = Notice::new(NoticeVerdict::Rejected, DecidedBy::Reviewer, batch());
-        n.items.push(NoticeItem {
-            id: "=1+2\";=1+2".into(),
-            reasons: vec!["label_suspected".into()],
-            proposed_label: None,
-            suspicion: None,
-        });
-        let csv = String::from_utf8(n.to_csv().unwrap()).unwrap();
-        let line = csv.lines().nth(1).unwrap();
-        assert_eq!(line, "\"b-000042\",\"'=1+2\"\";=1+2\",\"label_suspected\"");
-        // Read back with a standard CSV reader: the value is the neutralised text, one cell.
-        let mut r = csv::Reader::from_reader(csv.as_bytes());
-        let rec = r.records().next().unwrap().unwrap();
-        assert_eq!(&rec[1], "'=1+2\";=1+2");
-        assert_eq!(rec.len(), 3);
-    }
-
-    #[test]
-    fn default_disclosure_hides_scores_and_proposed_labels() {
-        let n = quarantined().redacted(&NoticeSettings::default());
-        assert_eq!(n.verdict, NoticeVerdict::Quarantined);
-        assert!(n.repair_cost.is_none());
-        assert!(n
-            .items
-            .iter()
-            .all(|i| i.suspicion.is_none() && i.proposed_label.is_none()));
-        assert_eq!(n.items.len(), 2);
-        let json = serde_json::to_string(&n).unwrap();
-        assert!(!json.contains("0.93") && !json.contains("PET"), "{json}");
-        // The policy's numbers are gone from the reasons too.
-        assert!(!json.contains("0.3000"), "{json}");
-        assert!(n.reasons.iter().any(|r| r.code == "cold_start_repair_cost"));
-        assert!(json.contains(SUSPICION_SENTENCE));
-    }
-
-    #[test]
-    fn reviewer_can_disclose_proposed_labels_and_settings_can_disclose_scores() {
-        let mut n = quarantined();
-        n.disclosure.by_reviewer = true;
-        n.disclosure.proposed_labels = true;
-        let r = n.redacted(&NoticeSettings::default());
-        assert_eq!(r.items[0].proposed_label.as_deref(), Some("PET"));
-        assert!(r.items[0].suspicion.is_none());
-        let s = NoticeSettings {
-            disclose_scores: true,
-            ..NoticeSettings::default()
-        };
-        let r = quarantined().redacted(&s);
-        assert_eq!(r.items[0].suspicion, Some(0.93));
-        assert_eq!(r.repair_cost, Some(0.3));
-        assert!(r.items[0].proposed_label.is_none());
-    }
-
-    #[test]
-    fn items_are_capped() {
-        let mut n = quarantined();
-        n.items = (0..10)
-            .map(|i| NoticeItem {
-                id: format!("i{i}"),
-                reasons: vec!["label_suspected".into()],
-                proposed_label: None,
-                suspicion: None,
-            })
-            .collect();
-        n.items_listed_total = 10;
-        let r = n.redacted(&NoticeSettings {
-            max_items: 3,
-            ..NoticeSettings::default()
-        });
-        assert_eq!(r.items.len(), 3);
-        assert!(r.items_truncated);
-        assert_eq!(r.items_listed_total, 10);
-    }
-
-    #[test]
-    fn markdown_escapes_and_strips_vendor_strings() {
-        let mut n = quarantined();
-        // Bidi override (U+202E) to reverse displayed text, a newline to break out of the table,
-        // Markdown/HTML syntax to inject a link and a script tag.
-        n.file_name = Some("evil\u{202E}gpj.csv\n# Injected heading".into());
-        n.items[1].id = "[click](http://evil.example) <script>alert(1)</script> | x".into();
-        let md = n
-            .redacted(&NoticeSettings::default())
-            .to_markdown(&NoticeSettings::default());
-        assert!(!md.contains('\u{202E}'));
-        assert!(!md.contains("\n# Injected"), "{md}");
-        assert!(
-            md.contains("\\[click\\]\\(http\\:\\/\\/evil\\.example\\)"),
-            "{md}"
-        );
-        assert!(md.contains("\\<script\\>"), "{md}");
-        assert!(!md.contains("<script>"));
-        // The table row for the item stays one row with two cells (escaped pipe).
-        let row = md.lines().find(|l| l.contains("click")).unwrap();
-        let unescaped = row
-            .char_indices()
-            .filter(|&(i, c)| c == '|' && !row[..i].ends_with('\\'))
-            .count();
-        assert_eq!(unescaped, 3, "two cells: {row}");
-        assert!(md.contains("A flag is a suspicion for review, not proof"));
-    }
-
-    #[test]
-    fn notice_json_round_trips_and_uses_rfc3339_utc() {
-        let n = quarantined().redacted(&NoticeSettings::default());
-        let v = serde_json::to_value(&n).unwrap();
-        assert_eq!(v["type"], "urn:labelweir:notice:quarantined");
-        assert_eq!(v["instance"], "urn:labelweir:batch:b-000042:quarantined");
-        assert_eq!(v["received_at"], "2026-03-01T08:00:00.000Z");
-        let back: Notice = serde_json::from_value(v).unwrap();
-        assert_eq!(back, n);
-    }
-
-    #[test]
-    fn write_notice_is_atomic_and_names_files_by_stem() {
-        let dir = tempfile::tempdir().unwrap();
-        let vd = dir.path().join("notices").join("sortright");
-        let paths = write_notice(&vd, &quarantined(), &NoticeSettings::default()).unwrap();
-        let names: Vec<String> = paths
-            .iter()
-            .map(|p| p.file_name().unwrap().to_string_lossy().into_owned())
-            .collect();
-        assert_eq!(
-            names,
-            ["b-000042.json", "b-000042.md", "b-000042.items.csv"]
-        );
-        let mut rej = quarantined();
-        rej.verdict = NoticeVerdict::Rejected;
-        let paths = write_notice(&vd, &rej, &NoticeSettings::default()).unwrap();
-        assert!(paths[0].ends_with("b-000042.rejected.json"));
-        // No temporary files are left behind.
-        let left: Vec<_> = std::fs::read_dir(&vd)
-            .unwrap()
-            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
-            .filter(|n| n.starts_with('.'))
-            .collect();
-        assert!(left.is_empty(), "{left:?}");
-        let mut bad = quarantined();
-        bad.batch_id = "../escape".into();
-        assert!(write_notice(&vd, &bad, &NoticeSettings::default()).is_err());
-    }
-}
+mod tests;

@@ -31,7 +31,7 @@ pub fn is_unsafe_char(c: char) -> bool {
 
 /// Remove unsafe characters and cut to at most `max_chars` characters, the last of them `…` when the
 /// string was cut.
-fn sanitize_text(s: &str, max_chars: usize) -> String {
+pub(crate) fn sanitize_text(s: &str, max_chars: usize) -> String {
     let clean: Vec<char> = s.chars().filter(|c| !is_unsafe_char(*c)).collect();
     if clean.len() <= max_chars {
         clean.into_iter().collect()

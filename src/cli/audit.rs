@@ -17,7 +17,8 @@ use labelweir::text::sanitize;
 pub struct Args {
     /// Workspace folder.
     pub dir: PathBuf,
-    /// Only records at or after this time: RFC 3339 (2026-03-01T08:00:00Z) or a date (2026-03-01, UTC).
+    /// Only records at or after this time: RFC 3339 (2026-03-01T08:00:00Z), a time without a zone
+    /// (2026-03-01T08:00:00, read as UTC like every listing) or a date (2026-03-01, UTC).
     #[arg(long)]
     pub since: Option<String>,
     /// Only records about this vendor.
@@ -34,11 +35,23 @@ pub struct Args {
     pub output: Option<PathBuf>,
 }
 
-/// Parse `--since`: RFC 3339, or a calendar date meaning its midnight UTC.
+/// Parse `--since`: RFC 3339, a date and time without a zone (`2026-03-01T08:00:00` or with a space,
+/// read as UTC, the zone every listing prints), or a calendar date meaning its midnight UTC.
 pub fn parse_since(s: &str) -> Option<DateTime<Utc>> {
     DateTime::parse_from_rfc3339(s)
         .map(|t| t.with_timezone(&Utc))
         .ok()
+        .or_else(|| {
+            [
+                "%Y-%m-%dT%H:%M:%S",
+                "%Y-%m-%d %H:%M:%S",
+                "%Y-%m-%dT%H:%M",
+                "%Y-%m-%d %H:%M",
+            ]
+            .iter()
+            .find_map(|f| chrono::NaiveDateTime::parse_from_str(s, f).ok())
+            .map(|t| t.and_utc())
+        })
         .or_else(|| {
             NaiveDate::parse_from_str(s, "%Y-%m-%d")
                 .ok()
@@ -63,7 +76,10 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         Some(s) => Some(parse_since(s).ok_or_else(|| {
             Failure::new(
                 exit::INPUT,
-                format!("--since {}: expected RFC 3339 or YYYY-MM-DD", sanitize(s)),
+                format!(
+                    "--since {}: expected RFC 3339, YYYY-MM-DDTHH:MM:SS (UTC) or YYYY-MM-DD",
+                    sanitize(s)
+                ),
             )
         })?),
         None => None,
@@ -77,6 +93,25 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         },
     )?;
     let records: Vec<AuditRecord> = serde_json::from_value(v)?;
+    if let (Some(vendor), true) = (&args.vendor, records.is_empty()) {
+        // A vendor the workspace does not know is a mistake, not an empty trail.
+        if let Ok(c) = labelweir::config::Config::from_workspace(&args.dir) {
+            if !c.vendors.contains(vendor) {
+                return Err(Failure::new(
+                    exit::INPUT,
+                    format!(
+                        "no vendor {} in this workspace (vendors: {})",
+                        sanitize(vendor),
+                        c.vendors.join(", ")
+                    ),
+                )
+                .into());
+            }
+        }
+    }
+    if records.is_empty() && !args.json && args.output.is_none() {
+        eprintln!("no audit records match");
+    }
     let mut out = Vec::new();
     for a in &records {
         if args.json {
@@ -122,5 +157,8 @@ mod tests {
         let d = parse_since("2026-03-01").unwrap();
         assert_eq!(d.to_rfc3339(), "2026-03-01T00:00:00+00:00");
         assert!(parse_since("yesterday").is_none());
+        // Without a zone: UTC, as every listing prints it.
+        assert_eq!(parse_since("2026-03-01T08:00:00"), Some(t));
+        assert_eq!(parse_since("2026-03-01 08:00:00"), Some(t));
     }
 }

@@ -26,8 +26,12 @@ use labelweir::workspace::Workspace;
 /// review, not proof.
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Folder for the demo workspace (must not exist, or be empty).
+    /// Folder for the demo workspace (must not exist, or be empty; see --fresh).
     pub dir: PathBuf,
+    /// Start over in a folder that holds an earlier demo run (its trusted-items.csv and workspace/): remove
+    /// them first. Any other non-empty folder is still refused.
+    #[arg(long)]
+    pub fresh: bool,
     /// Exit as soon as every batch has a verdict instead of serving metrics until Ctrl-C.
     #[arg(long)]
     pub exit_when_idle: bool,
@@ -223,16 +227,40 @@ fn to_reference(
     Ok((trusted_file, table))
 }
 
-fn setup(dir: &Path, drops: &mut [Drop], embeddings: Option<usize>) -> anyhow::Result<()> {
+/// Whether `dir` holds an earlier demo run and nothing else.
+fn is_earlier_demo(dir: &Path) -> std::io::Result<bool> {
+    let mut names: Vec<String> = std::fs::read_dir(dir)?
+        .flatten()
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .collect();
+    names.sort();
+    Ok(names == ["trusted-items.csv", "workspace"]
+        && dir.join("workspace").join("labelweir.toml").is_file())
+}
+
+fn setup(
+    dir: &Path,
+    drops: &mut [Drop],
+    embeddings: Option<usize>,
+    fresh: bool,
+) -> anyhow::Result<()> {
     if dir.exists() && std::fs::read_dir(dir)?.next().is_some() {
-        return Err(Failure::new(
-            exit::INPUT,
-            format!(
-                "{} exists and is not empty; pick a new folder",
-                dir.display()
-            ),
-        )
-        .into());
+        let earlier = is_earlier_demo(dir)?;
+        if fresh && earlier {
+            std::fs::remove_dir_all(dir.join("workspace"))?;
+            std::fs::remove_file(dir.join("trusted-items.csv"))?;
+        } else {
+            let hint = if earlier {
+                "it holds an earlier demo run: add --fresh to start over, or pick a new folder"
+            } else {
+                "pick a new folder"
+            };
+            return Err(Failure::new(
+                exit::INPUT,
+                format!("{} exists and is not empty; {hint}", dir.display()),
+            )
+            .into());
+        }
     }
     std::fs::create_dir_all(dir)?;
     let plant = Plant::new(2026);
@@ -275,7 +303,7 @@ fn setup(dir: &Path, drops: &mut [Drop], embeddings: Option<usize>) -> anyhow::R
 pub fn run(args: Args) -> anyhow::Result<u8> {
     let mut drops = plan(&Plant::new(2026))?;
     let embeddings = args.embeddings.then_some(args.embedding_dim);
-    setup(&args.dir, &mut drops, embeddings).context("creating the demo workspace")?;
+    setup(&args.dir, &mut drops, embeddings, args.fresh).context("creating the demo workspace")?;
     let ws_dir = args.dir.join("workspace");
     let config =
         Config::from_workspace(&ws_dir).map_err(|e| Failure::new(exit::CONFIG, e.to_string()))?;

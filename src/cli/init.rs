@@ -33,13 +33,33 @@ pub struct Args {
     /// recorded with its provenance (file, SHA-256, --by, time); the first batch is judged against it.
     #[arg(long)]
     pub pool: Option<PathBuf>,
+    /// Print JSON: the workspace, its trusted-item count, vendors, who verified the trusted items.
+    #[arg(long)]
+    pub json: bool,
 }
 
-/// The OS user name, or `unknown`.
+/// The OS user name: `$USER`, else `$LOGNAME` (empty values skipped), else the name of our user id in
+/// /etc/passwd, else `uid <n>`, so that the audit trail never records an anonymous actor.
 pub fn os_user() -> String {
-    std::env::var("USER")
-        .or_else(|_| std::env::var("LOGNAME"))
-        .unwrap_or_else(|_| "unknown".into())
+    for var in ["USER", "LOGNAME"] {
+        if let Ok(v) = std::env::var(var) {
+            if !v.trim().is_empty() {
+                return v;
+            }
+        }
+    }
+    let uid = rustix::process::getuid().as_raw();
+    std::fs::read_to_string("/etc/passwd")
+        .ok()
+        .and_then(|t| {
+            t.lines().find_map(|l| {
+                let mut f = l.split(':');
+                let name = f.next()?;
+                let id = f.nth(1)?;
+                (id.parse::<u32>().ok()? == uid && !name.is_empty()).then(|| name.to_string())
+            })
+        })
+        .unwrap_or_else(|| format!("uid {uid}"))
 }
 
 /// Run the subcommand.
@@ -51,6 +71,18 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
     };
     let n = create_workspace_with(&args.dir, &args.trusted, &args.vendors, &by, &extras)
         .map_err(super::workspace_failure)?;
+    if args.json {
+        let v = serde_json::json!({
+            "workspace": args.dir,
+            "trusted_items": n,
+            "vendors": args.vendors,
+            "verified_by": by,
+            "inbox": args.dir.join("inbox"),
+            "start": format!("labelweir run {}", args.dir.display()),
+        });
+        println!("{}", serde_json::to_string_pretty(&v)?);
+        return Ok(exit::OK);
+    }
     println!(
         "created workspace {} with {} trusted items; vendors deliver into {}/inbox/<vendor>/",
         args.dir.display(),

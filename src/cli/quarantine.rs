@@ -17,7 +17,7 @@ use labelweir::review::{
     QueueEntry, RejectRequest, ReleaseRequest, Request, ReviewEnv, ReviewError, ShowReport,
     WithdrawRequest,
 };
-use labelweir::store::{Store, StoreError};
+use labelweir::store::{BatchState, Store, StoreError};
 use labelweir::text::sanitize;
 use labelweir::workspace::Workspace;
 
@@ -120,10 +120,24 @@ struct ReleaseArgs {
     /// Set this item's label (repeat for more).
     #[arg(long = "relabel", value_name = "ID=LABEL")]
     relabel: Vec<String>,
-    /// Accept the proposed label of every item whose label the repair moved (explicit --exclude and
-    /// --relabel win).
+    /// Leave out the items listed in this file: one id per line; blank lines and lines starting with
+    /// `#` are skipped.
+    #[arg(long, value_name = "FILE")]
+    exclude_from: Option<PathBuf>,
+    /// Leave out every flagged item (label moved by the repair) that no --relabel covers and, with
+    /// --accept-proposed, whose proposal is below the confidence floor.
+    #[arg(long)]
+    exclude_flagged: bool,
+    /// Take the proposed label of every flagged item whose proposal is at least --min-confidence
+    /// (explicit --exclude and --relabel win). Weaker proposals are not taken and are listed.
     #[arg(long)]
     accept_proposed: bool,
+    /// Confidence floor for --accept-proposed, from 0 to 1.
+    #[arg(long, value_name = "P", default_value_t = labelweir::review::DEFAULT_MIN_CONFIDENCE, requires = "accept_proposed")]
+    min_confidence: f64,
+    /// Show what the release would do and record nothing.
+    #[arg(long)]
+    dry_run: bool,
     /// Add this item, with its final label, to the trusted set: you verified it (repeat for more).
     #[arg(long = "promote", value_name = "ID")]
     promote: Vec<String>,
@@ -225,7 +239,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
                 v["html_page"] = serde_json::json!(page);
                 print_json(&v)?;
             } else {
-                print_show(&report, a.top, page.as_deref());
+                print_show(&report, &a.dir, a.top, page.as_deref());
             }
         }
         Command::Release(a) => {
@@ -239,14 +253,21 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
                 })?;
                 relabel.push((id.to_string(), label.to_string()));
             }
+            let mut exclude = a.exclude;
+            if let Some(f) = &a.exclude_from {
+                exclude.extend(read_id_list(f)?);
+            }
             let req = ReleaseRequest {
                 batch: a.batch,
                 by: a.by.unwrap_or_else(super::init::os_user),
                 reason: a.reason,
-                exclude: a.exclude,
+                exclude,
                 relabel,
                 accept_proposed: a.accept_proposed,
                 promote: a.promote,
+                min_confidence: Some(a.min_confidence),
+                exclude_flagged: a.exclude_flagged,
+                dry_run: a.dry_run,
             };
             let v = dispatch(&a.dir, Request::Release(req))?;
             print_decision(v, a.json)?;
@@ -284,6 +305,22 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
         }
     }
     Ok(exit::OK)
+}
+
+/// Item ids from a list file: one per line, blank lines and `#` comments skipped.
+fn read_id_list(path: &Path) -> anyhow::Result<Vec<String>> {
+    let text = std::fs::read_to_string(path).map_err(|e| {
+        Failure::new(
+            exit::INPUT,
+            format!("--exclude-from {}: {e}", path.display()),
+        )
+    })?;
+    Ok(text
+        .lines()
+        .map(str::trim)
+        .filter(|l| !l.is_empty() && !l.starts_with('#'))
+        .map(str::to_string)
+        .collect())
 }
 
 fn held(a: HeldArgs, drop: bool) -> anyhow::Result<()> {
@@ -466,12 +503,13 @@ fn print_list(list: &[QueueEntry]) {
         );
     }
     println!(
-        "\n{} batch(es) waiting. A flag is a suspicion for review, not proof.",
-        list.len()
+        "\n{} {} waiting. A flag is a suspicion for review, not proof.",
+        list.len(),
+        plural(list.len(), "batch", "batches")
     );
 }
 
-fn print_show(r: &ShowReport, top: usize, page: Option<&Path>) {
+fn print_show(r: &ShowReport, dir: &Path, top: usize, page: Option<&Path>) {
     let b = &r.batch;
     println!(
         "batch {} from vendor {} ({})",
@@ -497,45 +535,34 @@ fn print_show(r: &ShowReport, top: usize, page: Option<&Path>) {
     if let Some(bl) = &r.baseline {
         if bl.cold_start {
             println!(
-                "  baseline       cold start: {} accepted batches so far, absolute limits apply",
-                bl.n_history
+                "  baseline       cold start: {} accepted {} so far, absolute limits apply",
+                bl.n_history,
+                plural(bl.n_history, "batch", "batches")
             );
         } else {
             println!(
-                "  baseline       vendor median {:.4} over {} accepted batches; modified z {:.2}; CUSUM {:.2} (h = {:.1})",
-                bl.median, bl.n_history, bl.modified_z, bl.cusum, bl.cusum_h
+                "  baseline       vendor median {:.4} over {} accepted {}; modified z {:.2}; CUSUM {:.2} (h = {:.1})",
+                bl.median,
+                bl.n_history,
+                plural(bl.n_history, "batch", "batches"),
+                bl.modified_z,
+                bl.cusum,
+                bl.cusum_h
             );
         }
     }
-    println!("\nwhy it was held:");
+    let accepted = matches!(b.state, BatchState::Accepted | BatchState::Released);
+    if accepted {
+        println!("\nhow it was judged ({}):", b.state);
+    } else {
+        println!("\nwhy it was held:");
+    }
     for reason in &r.reasons {
         println!("  - {}: {}", reason.code, sanitize(&reason.detail));
     }
-    println!(
-        "\nitems whose labels the repair moved ({}):",
-        r.moved_items.len()
-    );
-    if !r.moved_items.is_empty() {
-        println!(
-            "  {:<24} {:<16} {:<16} {:>9}",
-            "item", "given", "proposed", "suspicion"
-        );
-    }
-    for m in r.moved_items.iter().take(top) {
-        println!(
-            "  {:<24} {:<16} {:<16} {:>9.3}",
-            sanitize(&m.id),
-            sanitize(&m.label),
-            sanitize(&m.proposed_label),
-            m.suspicion
-        );
-    }
-    if r.moved_items.len() > top {
-        println!(
-            "  ... {} more (see --json or the page)",
-            r.moved_items.len() - top
-        );
-    }
+    print_signals(r);
+    print_flagged(r, top);
+    print_repair_moved(r, top);
     println!(
         "\ntrusted items the batch as delivered would break ({}):",
         r.broken_trusted.len()
@@ -548,9 +575,17 @@ fn print_show(r: &ShowReport, top: usize, page: Option<&Path>) {
             sanitize(t.predicted_with_batch.as_deref().unwrap_or("?"))
         );
     }
+    if r.broken_trusted.len() > top {
+        println!(
+            "  ... {} more (see --json or the page)",
+            r.broken_trusted.len() - top
+        );
+    }
     println!(
-        "\nvendor: {} accepted batches in total, {} waiting for review",
-        r.vendor.accepted_total, r.vendor.waiting_for_review
+        "\nvendor: {} accepted {} in total, {} waiting for review",
+        r.vendor.accepted_total,
+        plural(r.vendor.accepted_total as usize, "batch", "batches"),
+        r.vendor.waiting_for_review
     );
     println!("\nhistory:");
     for a in &r.history {
@@ -563,6 +598,7 @@ fn print_show(r: &ShowReport, top: usize, page: Option<&Path>) {
             sanitize(a.reason.as_deref().unwrap_or(""))
         );
     }
+    print_commands(r, dir);
     if let Some(p) = page {
         println!("\nreview page: {}", p.display());
     }
@@ -577,22 +613,54 @@ fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
         return print_json(&v);
     }
     let d: DecisionReport = serde_json::from_value(v)?;
-    println!(
-        "batch {} ({}) is now {}; decided by {}: {}",
-        sanitize(&d.batch_id),
-        sanitize(&d.vendor),
-        d.state,
-        sanitize(&d.by),
-        sanitize(&d.reason)
-    );
-    if d.items_into_pool > 0 {
-        println!("  {} items went into the training pool", d.items_into_pool);
+    if d.dry_run {
+        println!(
+            "preview, nothing recorded: releasing batch {} ({}) would do this",
+            sanitize(&d.batch_id),
+            sanitize(&d.vendor)
+        );
+        println!(
+            "  {} {} would go into the training pool",
+            d.items_into_pool,
+            plural(d.items_into_pool, "item", "items")
+        );
+    } else {
+        println!(
+            "batch {} ({}) is now {}; decided by {}: {}",
+            sanitize(&d.batch_id),
+            sanitize(&d.vendor),
+            d.state,
+            sanitize(&d.by),
+            sanitize(&d.reason)
+        );
+        if d.items_into_pool > 0 {
+            println!(
+                "  {} {} went into the training pool",
+                d.items_into_pool,
+                plural(d.items_into_pool, "item", "items")
+            );
+        }
     }
     if !d.excluded.is_empty() {
-        println!("  excluded: {}", sanitize(&d.excluded.join(", ")));
+        let first: Vec<String> = d.excluded.iter().take(8).map(|i| sanitize(i)).collect();
+        println!(
+            "  {} {} left out: {}{}",
+            d.excluded.len(),
+            plural(d.excluded.len(), "item", "items"),
+            first.join(", "),
+            if d.excluded.len() > 8 {
+                ", ... (see --json)"
+            } else {
+                ""
+            }
+        );
     }
     if !d.relabeled.is_empty() {
-        println!("  {} item(s) relabeled:", d.relabeled.len());
+        println!(
+            "  {} {} relabeled:",
+            d.relabeled.len(),
+            plural(d.relabeled.len(), "item", "items")
+        );
     }
     for (id, from, to) in d.relabeled.iter().take(10) {
         println!(
@@ -605,6 +673,7 @@ fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
     if d.relabeled.len() > 10 {
         println!("    ... {} more (see --json)", d.relabeled.len() - 10);
     }
+    print_skipped(&d);
     if !d.promoted.is_empty() {
         println!(
             "  promoted to the trusted set: {}",
@@ -621,4 +690,168 @@ fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
         eprintln!("warning: {}", sanitize(w));
     }
     Ok(())
+}
+
+/// `one` or `many` by count.
+pub fn plural(n: usize, one: &'static str, many: &'static str) -> &'static str {
+    if n == 1 {
+        one
+    } else {
+        many
+    }
+}
+
+/// The proposals a release did not take, and what happened to those items.
+fn print_skipped(d: &DecisionReport) {
+    if d.skipped_weak.is_empty() {
+        return;
+    }
+    let floor = d
+        .min_confidence
+        .unwrap_or(labelweir::review::DEFAULT_MIN_CONFIDENCE);
+    let left_out: std::collections::HashSet<&str> = d.excluded.iter().map(String::as_str).collect();
+    let n_out = d
+        .skipped_weak
+        .iter()
+        .filter(|s| left_out.contains(s.id.as_str()))
+        .count();
+    println!(
+        "  {} weak {} below confidence {floor:.2} not taken ({} left out, {} kept their given label); decide them with --relabel ID=LABEL or --exclude ID:",
+        d.skipped_weak.len(),
+        plural(d.skipped_weak.len(), "proposal", "proposals"),
+        n_out,
+        d.skipped_weak.len() - n_out
+    );
+    for s in d.skipped_weak.iter().take(10) {
+        println!(
+            "    {}: {} -> {}? (confidence {:.2})",
+            sanitize(&s.id),
+            sanitize(&s.label),
+            sanitize(&s.proposed_label),
+            s.confidence
+        );
+    }
+    if d.skipped_weak.len() > 10 {
+        println!("    ... {} more (see --json)", d.skipped_weak.len() - 10);
+    }
+}
+
+/// The engine's signals in plain words.
+fn print_signals(r: &ShowReport) {
+    if r.signals.is_empty() {
+        return;
+    }
+    println!("\nwhat the engine's signals say:");
+    for n in &r.signals {
+        println!("  {} = {}", n.name, sanitize(&n.value));
+        println!("      {}", n.meaning);
+    }
+}
+
+/// The flagged items, grouped by (given -> proposed), then the most suspicious ones.
+fn print_flagged(r: &ShowReport, top: usize) {
+    println!(
+        "\nflagged items ({}; a suspicion for review, not proof), by given -> proposed label:",
+        r.moved_items.len()
+    );
+    for g in &r.suspect_groups {
+        let (near, of) = g.trusted_nearby_proposed;
+        let trusted = if of > 0 {
+            format!(
+                "; {near} of {of} nearest trusted items are {}",
+                sanitize(&g.proposed_label)
+            )
+        } else {
+            String::new()
+        };
+        println!(
+            "  {} {} labeled {}, proposed {} (mean suspicion {:.2}{trusted})",
+            g.ids.len(),
+            plural(g.ids.len(), "item", "items"),
+            sanitize(&g.label),
+            sanitize(&g.proposed_label),
+            g.mean_suspicion
+        );
+    }
+    if r.moved_items.is_empty() {
+        return;
+    }
+    println!(
+        "\n  {:<24} {:<16} {:<16} {:>9} {:>10}",
+        "item", "given", "proposed", "suspicion", "confidence"
+    );
+    for m in r.moved_items.iter().take(top) {
+        println!(
+            "  {:<24} {:<16} {:<16} {:>9.3} {:>10.2}",
+            sanitize(&m.id),
+            sanitize(&m.label),
+            sanitize(&m.proposed_label),
+            m.suspicion,
+            m.confidence
+        );
+    }
+    if r.moved_items.len() > top {
+        println!(
+            "  ... {} more (see --json or the page)",
+            r.moved_items.len() - top
+        );
+    }
+}
+
+/// The labels the repair itself moved, or why none are listed.
+fn print_repair_moved(r: &ShowReport, top: usize) {
+    let cost = r.batch.scores.as_ref().map(|s| s.repair_cost);
+    match cost {
+        Some(c) if c < labelweir::review::NEGLIGIBLE_REPAIR_COST => {
+            println!(
+                "\nlabels the repair moved: none (repair cost {c:.4} is negligible: the trusted items ask for no change)"
+            );
+            return;
+        }
+        _ => {}
+    }
+    println!("\nlabels the repair moved ({}):", r.repair_moved.len());
+    for m in r.repair_moved.iter().take(top) {
+        println!(
+            "  {:<24} {:<16} -> {:<16}",
+            sanitize(&m.id),
+            sanitize(&m.label),
+            sanitize(&m.proposed_label)
+        );
+    }
+    if r.repair_moved.len() > top {
+        println!("  ... {} more (see --json)", r.repair_moved.len() - top);
+    }
+}
+
+/// A path or id as one shell word (single-quoted unless it is plain).
+fn shell_word(s: &str) -> String {
+    if !s.is_empty()
+        && s.chars()
+            .all(|c| c.is_ascii_alphanumeric() || "/._-+:=@".contains(c))
+    {
+        s.to_string()
+    } else {
+        format!("'{}'", s.replace('\'', "'\\''"))
+    }
+}
+
+/// The exact commands to act on the batch.
+fn print_commands(r: &ShowReport, dir: &Path) {
+    let d = shell_word(&dir.display().to_string());
+    let b = shell_word(&r.batch.id);
+    match r.batch.state {
+        BatchState::Quarantined => {
+            println!("\nto decide (preview a release first; every decision needs a reason):");
+            println!("  labelweir quarantine release {d} {b} --accept-proposed --exclude-flagged --dry-run --reason '...'");
+            println!("  labelweir quarantine release {d} {b} --reason '...' [--accept-proposed] [--exclude-flagged] [--exclude ID] [--relabel ID=LABEL]");
+            println!("  labelweir quarantine reject {d} {b} --reason '...' [--disclose-items]");
+        }
+        BatchState::Accepted | BatchState::Released => {
+            println!("\nto act on it:");
+            println!("  labelweir quarantine held {d}        (flagged items kept out of the pool)");
+            println!("  labelweir quarantine withdraw {d} {b} --reason '...'");
+        }
+        _ => {}
+    }
 }

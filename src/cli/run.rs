@@ -13,9 +13,10 @@ use labelweir::workspace::Workspace;
 ///
 /// The first signal stops claiming, finishes the batch in hand, flushes the store and exits 0; a second
 /// signal exits at once (anything unfinished is redone at the next start). SIGHUP re-reads and validates
-/// the config (changes apply at the next start). Exit codes: 0 clean stop,
-/// 78 configuration, 74 I/O or storage, 70 internal error. Logs are JSON lines on stdout (filter with
-/// LABELWEIR_LOG, e.g. LABELWEIR_LOG=debug).
+/// the config and applies a valid one at once (an invalid one is logged and the running config stays).
+/// Exit codes: 0 clean stop, 78 configuration (also an invalid LABELWEIR_LOG), 74 I/O or storage, 70
+/// internal error. Logs go to stdout: readable text on a terminal, JSON lines otherwise, e.g. under
+/// systemd (--log-format to choose); filter with LABELWEIR_LOG, e.g. LABELWEIR_LOG=debug.
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// Workspace folder (created by `labelweir init`).
@@ -29,15 +30,9 @@ pub struct Args {
     pub allow_remote_listen: bool,
 }
 
-/// Install JSON logging to stdout (once per process).
-pub fn init_logging() {
-    let filter = tracing_subscriber::EnvFilter::try_from_env("LABELWEIR_LOG")
-        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("info"));
-    let _ = tracing_subscriber::fmt()
-        .json()
-        .with_env_filter(filter)
-        .with_writer(std::io::stdout)
-        .try_init();
+/// Install logging (see [`super::logging`]; once per process).
+pub fn init_logging() -> Result<(), Failure> {
+    super::logging::init()
 }
 
 /// How long a stop may take before the process ends itself: one scoring run (`model.time_budget_ms`)
@@ -100,7 +95,7 @@ pub fn run_daemon(dir: PathBuf, config: Config, opts: RunOptions) -> anyhow::Res
 
 /// Run the subcommand.
 pub fn run(args: Args) -> anyhow::Result<u8> {
-    init_logging();
+    init_logging()?;
     let config = Config::from_workspace(&args.dir)
         .map_err(|e| Failure::new(exit::CONFIG, format!("invalid configuration: {e}")))?;
     run_daemon(

@@ -36,7 +36,8 @@ pub(crate) async fn run(
         if ok && !notified {
             notified = true;
             let _ = sd_notify::notify(false, &[sd_notify::NotifyState::Ready]);
-            tracing::info!(listen = ?bound, "ready");
+            let listen = bound.map_or_else(|| "none".to_string(), |a| a.to_string());
+            tracing::info!(listen = %listen, "ready");
             if let Some(f) = &on_ready {
                 f(bound);
             }
@@ -58,7 +59,8 @@ pub(crate) async fn run(
     }
 }
 
-/// Count review decisions (`release`, `withdraw`) as `labelweir_batches_total{outcome="released"|"withdrawn"}`
+/// Count review decisions (`release`, `withdraw`, `reject`) as
+/// `labelweir_batches_total{outcome="released"|"withdrawn"|"review_rejected"}`
 /// by tailing the audit trail, so they are counted whichever path (admin socket or a stopped-daemon
 /// command) recorded them. The first call only sets the starting point (`u64::MAX` = not yet set).
 pub(crate) fn count_review_outcomes(store: &Store, metrics: &Metrics, seen: &AtomicU64) {
@@ -76,6 +78,7 @@ pub(crate) fn count_review_outcomes(store: &Store, metrics: &Metrics, seen: &Ato
         let outcome = match a.action.as_str() {
             "release" => "released",
             "withdraw" => "withdrawn",
+            "reject" => "review_rejected",
             _ => continue,
         };
         let (Some(vendor), Some(id)) = (&a.vendor, &a.batch_id) else {

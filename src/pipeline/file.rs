@@ -375,11 +375,27 @@ impl Filer {
             chrono::Utc::now().timestamp_millis() as f64 / 1000.0,
         );
         self.shared.settled.fetch_add(1, Ordering::SeqCst);
+        // Cost, damage and the reason codes, so a log reader sees why without opening the store.
+        let reasons: Vec<&str> = match (&settled.decision, &settled.reject) {
+            (Some(d), _) => d.reasons.iter().map(|r| r.code.as_str()).collect(),
+            (None, Some(r)) => vec![r.code.as_str()],
+            (None, None) => settled
+                .duplicate_of
+                .as_ref()
+                .map_or(Vec::new(), |_| vec!["duplicate"]),
+        };
+        let num = |v: Option<f64>| {
+            v.filter(|x| x.is_finite())
+                .map_or("-".to_string(), |x| format!("{x:.4}"))
+        };
         tracing::info!(
             batch_id = %settled.id,
             vendor = %settled.vendor,
             sha256 = settled.sha256.as_deref().unwrap_or(""),
             outcome,
+            repair_cost = %num(settled.scores.as_ref().map(|s| s.repair_cost)),
+            damage = %num(settled.scores.as_ref().map(|s| s.damage)),
+            reason = %reasons.join(","),
             stage = "notice",
             "batch settled"
         );

@@ -450,6 +450,17 @@ impl Worker {
                 a.repair_cost,
                 Some(decision.baseline.median),
             );
+            let flagged = a
+                .items
+                .iter()
+                .filter(|s| s.proposed_label != s.label)
+                .count();
+            self.metrics.batch_judged(
+                &record.vendor,
+                flagged as u64,
+                a.items.len() as u64,
+                a.damage,
+            );
         }
         let v = verdict::scored(
             &self.config,

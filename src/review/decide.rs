@@ -52,6 +52,29 @@ pub struct DecisionReport {
     /// Problems after the decision was recorded (the decision stands; rerun a review command to finish
     /// moving files).
     pub warnings: Vec<String>,
+    /// A preview (`--dry-run`): nothing was recorded, moved or written.
+    #[serde(default)]
+    pub dry_run: bool,
+    /// Proposed labels not taken because their confidence was below the floor (release with
+    /// `accept_proposed`): the item kept its given label, or was left out with `exclude_flagged`.
+    #[serde(default)]
+    pub skipped_weak: Vec<SkippedProposal>,
+    /// The confidence floor applied to proposed labels (release with `accept_proposed`).
+    #[serde(default)]
+    pub min_confidence: Option<f64>,
+}
+
+/// A proposed label a release did not take because the engine was not confident enough in it.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SkippedProposal {
+    /// Item id as delivered.
+    pub id: String,
+    /// The given label.
+    pub label: String,
+    /// The label the repair proposed.
+    pub proposed_label: String,
+    /// The engine's confidence in it.
+    pub confidence: f64,
 }
 
 impl DecisionReport {
@@ -70,6 +93,9 @@ impl DecisionReport {
             file: None,
             notices: Vec::new(),
             warnings: Vec::new(),
+            dry_run: false,
+            skipped_weak: Vec::new(),
+            min_confidence: None,
         }
     }
 }
@@ -138,10 +164,24 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     let plan = plan_release(env, &rec, &table, req)?;
     let entry = plan.pool_entry(env, &rec, &table);
     let n_pool = entry.ids.len();
+    if req.dry_run {
+        let mut report = DecisionReport::new(&rec, &req.by, &req.reason);
+        report.dry_run = true;
+        report.items_into_pool = n_pool;
+        report.excluded = plan.excluded_ids;
+        report.relabeled = plan.relabeled;
+        report.skipped_weak = plan.skipped_weak;
+        report.min_confidence = plan.min_confidence;
+        report.promoted = plan.promote.iter().map(|&i| table.ids[i].clone()).collect();
+        return Ok(report);
+    }
     let mut detail = caller_detail(env);
     detail["excluded"] = serde_json::json!(plan.excluded_ids);
     detail["relabeled"] = serde_json::json!(plan.relabeled);
     detail["accept_proposed"] = serde_json::json!(req.accept_proposed);
+    detail["min_confidence"] = serde_json::json!(plan.min_confidence);
+    detail["exclude_flagged"] = serde_json::json!(req.exclude_flagged);
+    detail["skipped_weak"] = serde_json::json!(plan.skipped_weak.len());
     detail["items_into_pool"] = serde_json::json!(n_pool);
     let audit = AuditRecord::new(&req.by, "release")
         .batch(&rec.id, &rec.vendor)
@@ -154,7 +194,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         PoolChange::None
     };
     // The vendor notice is recorded with the decision (an outbox: see `finish_pending`).
-    let n = release_notice(&rec, &plan);
+    let n = release_notice(&rec, &table, &plan);
     let settled = env.store.transition(
         &rec.id,
         &[BatchState::Quarantined],
@@ -168,6 +208,8 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     report.items_into_pool = n_pool;
     report.excluded = plan.excluded_ids.clone();
     report.relabeled = plan.relabeled.clone();
+    report.skipped_weak = plan.skipped_weak.clone();
+    report.min_confidence = plan.min_confidence;
     if !plan.promote.is_empty() {
         promote(env, req, &rec, &table, &plan, &mut report)?;
     }
@@ -188,6 +230,10 @@ struct ReleasePlan {
     relabeled: Vec<(String, String, String)>,
     /// Rows promoted into the trusted set.
     promote: Vec<usize>,
+    /// Proposals below the confidence floor, not taken.
+    skipped_weak: Vec<SkippedProposal>,
+    /// The floor (with `accept_proposed`).
+    min_confidence: Option<f64>,
 }
 
 impl ReleasePlan {
@@ -266,14 +312,42 @@ fn plan_release(
             labels[i] = label.clone();
         }
     }
-    if req.accept_proposed {
-        let proposals = proposals_for(env, rec, table)?;
-        for (i, proposed) in proposals {
-            if excluded.contains(&i) || explicit.contains(&i) || labels[i] == proposed {
+    let min_confidence = req
+        .accept_proposed
+        .then(|| req.min_confidence.unwrap_or(super::DEFAULT_MIN_CONFIDENCE));
+    if let Some(floor) = min_confidence {
+        if !(0.0..=1.0).contains(&floor) {
+            return Err(ReviewError::Invalid(format!(
+                "--min-confidence {floor}: expected a number from 0 to 1"
+            )));
+        }
+    }
+    let mut skipped_weak = Vec::new();
+    let proposals = if req.accept_proposed || req.exclude_flagged {
+        proposals_for(env, rec, table)?
+    } else {
+        Vec::new()
+    };
+    for (i, proposed, confidence) in proposals {
+        if excluded.contains(&i) || explicit.contains(&i) || labels[i] == proposed {
+            continue;
+        }
+        match min_confidence {
+            Some(floor) if confidence >= floor => {
+                relabeled.push((table.ids[i].clone(), labels[i].clone(), proposed.clone()));
+                labels[i] = proposed;
                 continue;
             }
-            relabeled.push((table.ids[i].clone(), labels[i].clone(), proposed.clone()));
-            labels[i] = proposed;
+            Some(_) => skipped_weak.push(SkippedProposal {
+                id: table.ids[i].clone(),
+                label: labels[i].clone(),
+                proposed_label: proposed,
+                confidence,
+            }),
+            None => {}
+        }
+        if req.exclude_flagged {
+            excluded.insert(i);
         }
     }
     let mut promote = Vec::new();
@@ -295,22 +369,32 @@ fn plan_release(
         excluded_ids,
         relabeled,
         promote,
+        skipped_weak,
+        min_confidence,
     })
 }
 
-/// The vendor notice of a release: the excluded and the relabeled items.
-fn release_notice(rec: &BatchRecord, plan: &ReleasePlan) -> Notice {
+/// The vendor notice of a release: the excluded and the relabeled items, with their data rows.
+fn release_notice(rec: &BatchRecord, table: &Table, plan: &ReleasePlan) -> Notice {
+    let rows: HashMap<&str, u64> = table
+        .ids
+        .iter()
+        .enumerate()
+        .map(|(i, id)| (id.as_str(), i as u64 + 1))
+        .collect();
     let items: Vec<NoticeItem> = plan
         .excluded_ids
         .iter()
         .map(|id| NoticeItem {
             id: id.clone(),
+            row: rows.get(id.as_str()).copied(),
             reasons: vec![item_codes::EXCLUDED_BY_REVIEWER.into()],
             proposed_label: None,
             suspicion: None,
         })
         .chain(plan.relabeled.iter().map(|(id, _, to)| NoticeItem {
             id: id.clone(),
+            row: rows.get(id.as_str()).copied(),
             reasons: vec![item_codes::RELABELED_BY_REVIEWER.into()],
             proposed_label: Some(to.clone()),
             suspicion: None,
@@ -394,13 +478,13 @@ fn promote(
     Ok(())
 }
 
-/// `(row, proposed class name)` for every item whose label the repair moved: from the full report when
-/// it was kept, else from the record's suspects.
+/// `(row, proposed class name, confidence)` for every item whose label the repair moved: from the full
+/// report when it was kept, else from the record's suspects.
 pub(super) fn proposals_for(
     env: &ReviewEnv<'_>,
     rec: &BatchRecord,
     table: &Table,
-) -> Result<Vec<(usize, String)>, ReviewError> {
+) -> Result<Vec<(usize, String, f64)>, ReviewError> {
     if let Some(a) = env.store.assessment(&rec.id)? {
         if a.items.len() == table.len() {
             return Ok(a
@@ -411,7 +495,7 @@ pub(super) fn proposals_for(
                     env.meta
                         .classes
                         .get(s.proposed_label)
-                        .map(|c| (s.index, c.clone()))
+                        .map(|c| (s.index, c.clone(), s.confidence))
                 })
                 .collect());
         }
@@ -429,7 +513,7 @@ pub(super) fn proposals_for(
         .filter_map(|s| {
             index
                 .get(s.id.as_str())
-                .map(|&i| (i, s.proposed_label.clone()))
+                .map(|&i| (i, s.proposed_label.clone(), s.confidence))
         })
         .collect())
 }
@@ -459,15 +543,24 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
             "A reviewer checked the flagged items and rejected the batch.",
         ),
     );
+    // Each named item with its data row and finding codes, from the full report where it was kept.
+    let findings = reject_findings(env, &rec);
     let items: Vec<NoticeItem> = rec
         .suspects
         .iter()
         .filter(|s| disclose_items && s.proposed_label != s.label)
-        .map(|s| NoticeItem {
-            id: s.id.clone(),
-            reasons: vec![item_codes::LABEL_SUSPECTED.into()],
-            proposed_label: Some(s.proposed_label.clone()),
-            suspicion: Some(s.suspicion),
+        .map(|s| {
+            let (row, reasons) = findings
+                .get(s.id.as_str())
+                .cloned()
+                .unwrap_or_else(|| (None, vec![item_codes::LABEL_SUSPECTED.into()]));
+            NoticeItem {
+                id: s.id.clone(),
+                row,
+                reasons,
+                proposed_label: Some(s.proposed_label.clone()),
+                suspicion: Some(s.suspicion),
+            }
         })
         .collect();
     n.items_total = rec.items.map(|x| x as u64);
@@ -490,6 +583,28 @@ pub fn reject(env: &ReviewEnv<'_>, req: &RejectRequest) -> Result<DecisionReport
     let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
     finish_decision(env, &settled, &req.by, &mut report);
     Ok(report)
+}
+
+/// Item id → (data row, finding codes) for a batch whose full report and file are at hand (empty when
+/// either is missing: the notice then falls back to the plain code).
+fn reject_findings(
+    env: &ReviewEnv<'_>,
+    rec: &BatchRecord,
+) -> HashMap<String, (Option<u64>, Vec<String>)> {
+    let (Ok(Some(a)), Ok(table)) = (env.store.assessment(&rec.id), read_batch_table(env, rec))
+    else {
+        return HashMap::new();
+    };
+    a.items
+        .iter()
+        .filter_map(|s| {
+            let id = table.ids.get(s.index)?;
+            Some((
+                id.clone(),
+                (Some(s.index as u64 + 1), notice::finding_codes(s)),
+            ))
+        })
+        .collect()
 }
 
 /// Pull an accepted or released batch back out of the pool (e.g. after a re-scan flagged it).

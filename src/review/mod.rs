@@ -42,8 +42,10 @@ use crate::workspace::Workspace;
 
 mod decide;
 mod drift;
+mod explain;
 mod held;
 mod page;
+mod page_parts;
 mod projection;
 mod rescan;
 mod show;
@@ -52,6 +54,7 @@ mod trusted;
 
 pub use decide::*;
 pub use drift::*;
+pub use explain::*;
 pub use held::*;
 pub use page::*;
 use projection::*;
@@ -228,7 +231,24 @@ pub struct ReleaseRequest {
     /// Item ids the reviewer verified: they join the trusted set with their final label.
     #[serde(default)]
     pub promote: Vec<String>,
+    /// With `accept_proposed`: the least confidence a proposed label needs to be taken; weaker proposals
+    /// keep the given label (or are left out with `exclude_flagged`) and are listed in the report.
+    /// `None`: [`DEFAULT_MIN_CONFIDENCE`].
+    #[serde(default)]
+    pub min_confidence: Option<f64>,
+    /// Leave out every flagged item (label moved by the repair) that no explicit relabel or accepted
+    /// proposal covers.
+    #[serde(default)]
+    pub exclude_flagged: bool,
+    /// Work out and report what the release would do, and record nothing.
+    #[serde(default)]
+    pub dry_run: bool,
 }
+
+/// The default confidence floor for `quarantine release --accept-proposed`. Measured on the shipped
+/// fixtures against `fixtures/truth/` (README, "Safe fixes"): at 0.7 every fixture batch gets more labels
+/// fixed than broken; taking every proposal broke more than it fixed on the wet-cardboard batch.
+pub const DEFAULT_MIN_CONFIDENCE: f64 = 0.7;
 
 /// Reject a quarantined batch.
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
@@ -536,6 +556,11 @@ mod tests {
                 suspicion: 0.9,
                 confidence: 0.8,
             }],
+            repair_moved: Vec::new(),
+            suspect_groups: Vec::new(),
+            suspect_details: Vec::new(),
+            signals: Vec::new(),
+            workspace: None,
             broken_trusted: Vec::new(),
             history: Vec::new(),
             projection: Some(Projection {

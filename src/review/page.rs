@@ -4,7 +4,7 @@ use std::path::PathBuf;
 
 use chrono::SecondsFormat;
 
-use crate::store::BatchRecord;
+use crate::store::{BatchRecord, BatchState};
 use crate::text::html_escape;
 use crate::workspace::Workspace;
 
@@ -69,35 +69,47 @@ pub fn render_html(report: &ShowReport) -> String {
     );
     let _ = writeln!(
         h,
-        "<style>body{{font-family:sans-serif;margin:1.5em;max-width:70em}}table{{border-collapse:collapse;margin:0.5em 0}}td,th{{border:1px solid #bbb;padding:0.2em 0.5em;text-align:left}}.note{{background:#fff6d5;padding:0.5em;border-left:4px solid #e0b000}}svg{{border:1px solid #ccc;background:#fff}}</style>"
+        "<style>body{{font-family:sans-serif;margin:1.5em;max-width:70em;line-height:1.4}}table{{border-collapse:collapse;margin:0.5em 0}}td,th{{border:1px solid #bbb;padding:0.2em 0.5em;text-align:left;vertical-align:top}}.note{{background:#fff6d5;padding:0.5em;border-left:4px solid #e0b000}}svg{{border:1px solid #ccc;background:#fff}}.legend li{{list-style:none}}.sw{{display:inline-block;width:9px;height:9px;border:1px solid #212121;vertical-align:middle}}.dot{{border-radius:50%;border:none}}.ring{{border:2px solid #000000;background:#ffffff}}pre{{background:#f4f4f4;padding:0.5em;white-space:pre-wrap}}dt{{font-weight:bold}}dd{{margin:0 0 0.5em 1.5em}}</style>"
     );
     let _ = writeln!(h, "</head>");
     let _ = writeln!(h, "<body>");
     let _ = writeln!(
         h,
-        "<h1>Batch {} from vendor {}</h1>",
+        "<h1>Batch {} from vendor {}: {}</h1>",
         html_escape(&b.id),
-        html_escape(&b.vendor)
+        html_escape(&b.vendor),
+        html_escape(&b.original_name)
     );
-    let _ = writeln!(h, "<p class=\"note\">{}</p>", html_escape(&report.note));
+    let _ = writeln!(
+        h,
+        "<p class=\"note\">{}</p>",
+        super::page_parts::html_text(&report.note)
+    );
     summary_table(&mut h, report);
-    let _ = writeln!(h, "<h2>Why it was held</h2>\n<ul>");
+    let accepted = matches!(b.state, BatchState::Accepted | BatchState::Released);
+    if accepted {
+        let _ = writeln!(h, "<h2>How it was judged ({})</h2>\n<ul>", b.state);
+    } else {
+        let _ = writeln!(h, "<h2>Why it was held</h2>\n<ul>");
+    }
     for r in &report.reasons {
         let _ = writeln!(
             h,
             "<li><code>{}</code>: {}</li>",
             html_escape(r.code.as_str()),
-            html_escape(&r.detail)
+            super::page_parts::html_text(&r.detail)
         );
     }
     let _ = writeln!(h, "</ul>");
+    super::page_parts::signals(&mut h, report);
     let _ = writeln!(h, "<h2>Projection</h2>");
     match &report.projection {
         Some(p) => {
             render_svg(&mut h, p);
+            super::page_parts::legend(&mut h, p);
             let _ = writeln!(
                 h,
-                "<p>{}; axis 1 explains {:.1} %, axis 2 {:.1} % of the variance. Circles: this batch's items, coloured from blue (low suspicion) to red (high); circles with a black ring: items whose label the repair moved. Grey squares: trusted items.</p>",
+                "<p>{}; axis 1 explains {:.1} %, axis 2 {:.1} % of the variance.</p>",
                 html_escape(&p.method),
                 100.0 * p.explained[0],
                 100.0 * p.explained[1]
@@ -108,9 +120,12 @@ pub fn render_html(report: &ShowReport) -> String {
         }
     }
     if let Some(n) = &report.projection_note {
-        let _ = writeln!(h, "<p>{}</p>", html_escape(n));
+        let _ = writeln!(h, "<p>{}</p>", super::page_parts::html_text(n));
     }
+    super::page_parts::groups(&mut h, report);
+    super::page_parts::details(&mut h, report);
     item_tables(&mut h, report);
+    super::page_parts::commands(&mut h, report);
     let _ = writeln!(h, "</body>\n</html>");
     h
 }
@@ -146,7 +161,7 @@ fn summary_table(h: &mut String, report: &ShowReport) {
         row(
             h,
             "Vendor baseline",
-            &html_escape(&format!(
+            &super::page_parts::html_text(&format!(
                 "median {:.4} over {} accepted batches{}; modified z {:.2}; CUSUM {:.2} (h = {:.1})",
                 bl.median,
                 bl.n_history,
@@ -165,24 +180,26 @@ fn item_tables(h: &mut String, report: &ShowReport) {
     use std::fmt::Write as _;
     let _ = writeln!(
         h,
-        "<h2>Items whose labels the repair moved ({})</h2>",
+        "<h2>All flagged items ({})</h2>\n<p>Most suspicious first; a suspicion for review, not proof.</p>",
         report.moved_items.len()
     );
     let _ = writeln!(
         h,
-        "<table><tr><th>Item</th><th>Given label</th><th>Proposed label</th><th>Suspicion</th></tr>"
+        "<table id=\"flagged\"><tr><th>Item</th><th>Given label</th><th>Proposed label</th><th>Suspicion</th><th>Confidence</th></tr>"
     );
     for m in &report.moved_items {
         let _ = writeln!(
             h,
-            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{:.3}</td></tr>",
+            "<tr><td>{}</td><td>{}</td><td>{}</td><td>{:.3}</td><td>{:.2}</td></tr>",
             html_escape(&m.id),
             html_escape(&m.label),
             html_escape(&m.proposed_label),
-            m.suspicion
+            m.suspicion,
+            m.confidence
         );
     }
     let _ = writeln!(h, "</table>");
+    super::page_parts::repair_moved(h, report);
     let _ = writeln!(
         h,
         "<h2>Trusted items the batch as delivered would break ({})</h2>",
@@ -244,13 +261,15 @@ pub(super) fn render_svg(h: &mut String, p: &Projection) {
         h,
         "<svg xmlns=\"http://www.w3.org/2000/svg\" width=\"{W}\" height=\"{H}\" viewBox=\"0 0 {W} {H}\" role=\"img\" aria-label=\"projection of the batch items beside the trusted items\">"
     );
-    // Trusted items first (underneath).
+    // Trusted items first (underneath), coloured by their verified class.
+    let classes = super::page_parts::trusted_classes(p);
     for q in p.points.iter().filter(|q| q.group == "trusted") {
         let _ = writeln!(
             h,
-            "<rect class=\"trusted\" x=\"{:.1}\" y=\"{:.1}\" width=\"5\" height=\"5\" fill=\"#bdbdbd\" stroke=\"#616161\" stroke-width=\"0.5\"><title>trusted {} ({})</title></rect>",
-            px(q.x) - 2.5,
-            py(q.y) - 2.5,
+            "<rect class=\"trusted\" x=\"{:.1}\" y=\"{:.1}\" width=\"7\" height=\"7\" fill=\"{}\" stroke=\"#212121\" stroke-width=\"0.7\"><title>trusted {} ({})</title></rect>",
+            px(q.x) - 3.5,
+            py(q.y) - 3.5,
+            super::page_parts::class_colour(&classes, &q.label),
             html_escape(&q.id),
             html_escape(&q.label)
         );

@@ -161,8 +161,25 @@ pub struct ShowReport {
     pub baseline: Option<Baseline>,
     /// The vendor's standing now.
     pub vendor: VendorStanding,
-    /// Items whose labels the repair moved, most suspicious first.
+    /// The flagged items (proposed label differs from the given one), most suspicious first.
     pub moved_items: Vec<MovedItem>,
+    /// The items the repair itself moved (most of their label mass), most suspicious first; empty when
+    /// the repair cost is negligible or the full report was not kept.
+    #[serde(default)]
+    pub repair_moved: Vec<MovedItem>,
+    /// The flagged items grouped by (given → proposed).
+    #[serde(default)]
+    pub suspect_groups: Vec<super::SuspectGroup>,
+    /// The most suspicious flagged items explained: features against class profiles, nearest trusted
+    /// items, the engine's signals.
+    #[serde(default)]
+    pub suspect_details: Vec<super::SuspectDetail>,
+    /// The engine's signals in plain words.
+    #[serde(default)]
+    pub signals: Vec<super::SignalNote>,
+    /// The workspace folder (for the commands the page shows).
+    #[serde(default)]
+    pub workspace: Option<std::path::PathBuf>,
     /// Trusted items the batch as delivered would have broken.
     pub broken_trusted: Vec<BrokenTrusted>,
     /// The batch's audit trail.
@@ -245,7 +262,15 @@ pub fn show(env: &ReviewEnv<'_>, batch: &str) -> Result<ShowReport, ReviewError>
         waiting_for_review: waiting,
     };
     // The projection needs the batch's features: read its file where its state says it is.
-    let (projection, projection_note) = match read_batch_table(env, &rec) {
+    let table = read_batch_table(env, &rec);
+    let suspect_details = match &table {
+        Ok(t) => super::suspect_details(env.meta, t, &trusted, &moved_items, assessment.as_ref()),
+        Err(_) => Vec::new(),
+    };
+    let suspect_groups = super::suspect_groups(&moved_items, &suspect_details);
+    let repair_moved = super::repair_moved(&rec, table.as_ref().ok(), assessment.as_ref(), classes);
+    let signals = super::signal_notes(&rec, assessment.as_ref());
+    let (projection, projection_note) = match table {
         Ok(table) => {
             let suspicion: Vec<Option<f64>> = match &assessment {
                 Some(a) if a.items.len() == table.len() => {
@@ -299,6 +324,11 @@ pub fn show(env: &ReviewEnv<'_>, batch: &str) -> Result<ShowReport, ReviewError>
         batch: rec,
         vendor,
         moved_items,
+        repair_moved,
+        suspect_groups,
+        suspect_details,
+        signals,
+        workspace: Some(env.ws.root.clone()),
         broken_trusted,
         history,
         projection,
@@ -307,10 +337,31 @@ pub fn show(env: &ReviewEnv<'_>, batch: &str) -> Result<ShowReport, ReviewError>
     })
 }
 
+/// A batch by its id, or by the reference a vendor quotes from its notice: the notice's file stem
+/// (`<file>.<batch id>[.<verdict>]`, also with `.json`/`.md` after it) or its `instance`
+/// (`urn:labelweir:batch:<batch id>:<verdict>`).
 pub(super) fn get_batch(store: &Store, batch: &str) -> Result<BatchRecord, ReviewError> {
-    store
-        .batch(batch)?
-        .ok_or_else(|| ReviewError::NotFound(format!("no batch {}", crate::text::sanitize(batch))))
+    if let Some(r) = store.batch(batch)? {
+        return Ok(r);
+    }
+    let reference = batch.trim();
+    let reference = reference
+        .strip_prefix("urn:labelweir:batch:")
+        .map(|rest| rest.split(':').next().unwrap_or(rest))
+        .unwrap_or(reference);
+    let file = reference.rsplit('/').next().unwrap_or(reference);
+    // From the end: the batch id comes after the delivered file's stem, which a vendor chose.
+    for part in file.split('.').rev() {
+        if notice::is_safe_batch_id(part) {
+            if let Some(r) = store.batch(part)? {
+                return Ok(r);
+            }
+        }
+    }
+    Err(ReviewError::NotFound(format!(
+        "no batch {} (give a batch id from `quarantine list`, or the reference a vendor quotes from its notice)",
+        crate::text::sanitize(batch)
+    )))
 }
 
 /// The folder a batch's file is in for its state (`None` when it has none).

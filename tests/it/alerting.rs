@@ -33,13 +33,14 @@ const DATASOURCE_UID: &str = "labelweir-prometheus";
 /// Vendors of the test workspaces (the demo's recycling-plant vendors).
 const VENDORS: [&str; 2] = ["north-sort", "east-labels"];
 /// Verdict outcomes of `labelweir_batches_total`.
-const OUTCOMES: [&str; 6] = [
+const OUTCOMES: [&str; 7] = [
     "accepted",
     "quarantined",
     "rejected",
     "duplicate",
     "released",
     "withdrawn",
+    "review_rejected",
 ];
 
 // ------------------------------------------------------------------------------------------------ helpers

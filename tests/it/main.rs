@@ -10,6 +10,7 @@
 //! - `review`     — quarantine review, trusted-set upkeep, notices, audit through the binary.
 //! - `harden`     — the daemon as a non-root service user under hostile vendors, crashes, handle pressure.
 //! - `alerting`   — alert rules, dashboard and service unit checked with the real tools.
+//! - `ux`         — what reviewers and vendors read: safe releases, notices, the review page in a browser.
 
 mod alerting;
 mod assess_cli;
@@ -21,3 +22,4 @@ mod harden;
 mod policy;
 mod review;
 mod util;
+mod ux;

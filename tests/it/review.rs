@@ -355,9 +355,11 @@ fn review_loop_while_the_daemon_runs() {
             "the review notice for {b} is recorded"
         );
     }
-    // Filters: by vendor, and a --since in the future gives nothing.
+    // Filters: a vendor the workspace does not know is an error (issue 15), a --since in the future gives
+    // nothing.
     let v = lw(&["audit", &dir, "--vendor", "nobody", "--json"]);
-    assert!(v.status.success() && v.stdout.is_empty());
+    assert_eq!(v.status.code(), Some(2));
+    assert!(v.stdout.is_empty());
     let v = lw(&["audit", &dir, "--since", "2999-01-01", "--json"]);
     assert!(v.status.success() && v.stdout.is_empty());
     // `--output` replaces the file atomically (temporary file, rename): a second link to the old file
@@ -418,7 +420,7 @@ fn review_loop_while_the_daemon_runs() {
     let nd = ws.path("notices").join("north-sort");
     validate_notices(&nd);
     let released: Value =
-        serde_json::from_slice(&std::fs::read(nd.join(format!("{rid}.released.json"))).unwrap())
+        serde_json::from_slice(&std::fs::read(notice_file(&nd, &rid, "released.json")).unwrap())
             .unwrap();
     assert_eq!(released["decided_by"], "reviewer");
     assert!(released["items"]
@@ -431,7 +433,7 @@ fn review_loop_while_the_daemon_runs() {
         "reviewers' names stay in the audit trail"
     );
     let rejected: Value =
-        serde_json::from_slice(&std::fs::read(nd.join(format!("{uid}.rejected.json"))).unwrap())
+        serde_json::from_slice(&std::fs::read(notice_file(&nd, &uid, "rejected.json")).unwrap())
             .unwrap();
     assert_eq!(rejected["verdict"], "rejected");
     let items = rejected["items"].as_array().unwrap();
@@ -447,7 +449,7 @@ fn review_loop_while_the_daemon_runs() {
         "the reviewer's reason is internal"
     );
     // The formula ids are neutralised in the CSV and escaped in the Markdown (OWASP "CSV Injection").
-    let csv = std::fs::read_to_string(nd.join(format!("{uid}.rejected.items.csv"))).unwrap();
+    let csv = std::fs::read_to_string(notice_file(&nd, &uid, "rejected.items.csv")).unwrap();
     let mut cells = 0;
     for rec in csv::Reader::from_reader(csv.as_bytes()).records() {
         let rec = rec.unwrap();
@@ -465,8 +467,12 @@ fn review_loop_while_the_daemon_runs() {
         csv.lines().skip(1).all(|l| l.starts_with('"')),
         "every cell quoted"
     );
-    let md = std::fs::read_to_string(nd.join(format!("{uid}.rejected.md"))).unwrap();
-    assert!(md.contains("\\=cmd\\|\\'"), "escaped in Markdown:\n{md}");
+    let md = std::fs::read_to_string(notice_file(&nd, &uid, "rejected.md")).unwrap();
+    // A code span, literal in Markdown; the pipe escaped so the table cell stays whole (GFM "Tables").
+    assert!(
+        md.contains("`=cmd\\|' /C calc'!A"),
+        "a code span in Markdown:\n{md}"
+    );
     assert!(md.contains("A flag is a suspicion for review, not proof"));
 }
 
@@ -502,10 +508,7 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     // Reject with the proposed labels disclosed (the reviewer's choice). The notice cannot be written at
     // first (a folder squats on its file name, as a crash between decision and notice would leave it
     // unwritten): the decision stands, the notice waits in the store, and the next review command writes it.
-    let notice_path = ws
-        .path("notices")
-        .join("glassline")
-        .join(format!("{uid}.rejected.json"));
+    let notice_path = notice_file(&ws.path("notices").join("glassline"), &uid, "rejected.json");
     std::fs::create_dir(&notice_path).unwrap();
     let rej = ok_json(&[
         "quarantine",
@@ -542,11 +545,11 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
     assert!(lw(&["quarantine", "list", &dir]).status.success());
     assert_eq!(notices_of(&uid), 1, "and not sent again");
     let n: Value = serde_json::from_slice(
-        &std::fs::read(
-            ws.path("notices")
-                .join("glassline")
-                .join(format!("{uid}.rejected.json")),
-        )
+        &std::fs::read(notice_file(
+            &ws.path("notices").join("glassline"),
+            &uid,
+            "rejected.json",
+        ))
         .unwrap(),
     )
     .unwrap();
@@ -608,10 +611,11 @@ fn review_commands_work_with_the_daemon_stopped_and_refuse_a_second_decision() {
 
     // Withdraw it again (the same command works on released batches) and check the pool. Its notice
     // cannot be written yet (a folder squats on the name); the daemon's next start sends it.
-    let withdrawn_notice = ws
-        .path("notices")
-        .join("glassline")
-        .join(format!("{rid}.withdrawn.json"));
+    let withdrawn_notice = notice_file(
+        &ws.path("notices").join("glassline"),
+        &rid,
+        "withdrawn.json",
+    );
     std::fs::create_dir(&withdrawn_notice).unwrap();
     let w = ok_json(&[
         "quarantine",
@@ -1055,11 +1059,12 @@ fn trusted_correction_rescan_flags_an_accepted_batch_and_withdraw_pulls_it() {
     );
     drop(store);
     validate_notices(&ws.path("notices").join("north-sort"));
-    assert!(ws
-        .path("notices")
-        .join("north-sort")
-        .join(format!("{sid}.withdrawn.json"))
-        .exists());
+    assert!(notice_file(
+        &ws.path("notices").join("north-sort"),
+        &sid,
+        "withdrawn.json"
+    )
+    .exists());
 }
 
 #[test]
@@ -1547,7 +1552,7 @@ fn schema_errors(v: &Value) -> Vec<String> {
 }
 
 /// Every JSON notice in a folder validates against the shipped schema.
-fn validate_notices(dir: &Path) {
+pub(crate) fn validate_notices(dir: &Path) {
     let mut n = 0;
     for e in std::fs::read_dir(dir).unwrap().flatten() {
         let name = e.file_name().to_string_lossy().into_owned();
@@ -1589,6 +1594,7 @@ fn every_kind_of_notice_validates_and_the_validator_rejects_bad_ones() {
         n.reasons
             .push(NoticeReason::new("repair_cost_outlier", "x"));
         n.items.push(NoticeItem {
+            row: Some(3),
             id: "=1+2\";=1+2".into(),
             reasons: vec!["label_suspected".into()],
             proposed_label: Some("pet".into()),
@@ -1620,7 +1626,7 @@ fn every_kind_of_notice_validates_and_the_validator_rejects_bad_ones() {
     // The validator can fail: each of these breaks the schema.
     let good = serde_json::to_value(notices[1].redacted(&all)).unwrap();
     let mut missing = good.clone();
-    missing.as_object_mut().unwrap().remove("suspicion_notice");
+    missing.as_object_mut().unwrap().remove("next_step");
     let mut extra = good.clone();
     extra["reviewer"] = "alice".into();
     let mut bad_hash = good.clone();
@@ -1881,8 +1887,8 @@ fn notices_name_no_item_unless_a_reviewer_discloses() {
     };
     // Wait for both notices, then check every file.
     let t = Instant::now();
-    while !(notices.join(format!("{aid}.json")).is_file()
-        && notices.join(format!("{qid}.json")).is_file())
+    while !(notice_file(&notices, &aid, "json").is_file()
+        && notice_file(&notices, &qid, "json").is_file())
     {
         assert!(t.elapsed() < T);
         std::thread::sleep(Duration::from_millis(100));
@@ -1906,11 +1912,11 @@ fn notices_name_no_item_unless_a_reviewer_discloses() {
         std::thread::sleep(Duration::from_millis(100));
     }
     assert_eq!(na["items_listed_total"].as_u64(), Some(store_held(&aid)));
-    let csv = std::fs::read_to_string(notices.join(format!("{aid}.items.csv"))).unwrap();
+    let csv = std::fs::read_to_string(notice_file(&notices, &aid, "items.csv")).unwrap();
     assert_eq!(csv.lines().count(), 1, "a header only: {csv}");
-    let md = std::fs::read_to_string(notices.join(format!("{aid}.md"))).unwrap();
+    let md = std::fs::read_to_string(notice_file(&notices, &aid, "md")).unwrap();
     assert!(
-        md.contains(&format!("{} of 300 items flagged", store_held(&aid))),
+        md.contains(&format!("{} of 300 items were flagged", store_held(&aid))),
         "{md}"
     );
     let nq = ws.notice("north-sort", &qid);
@@ -1944,7 +1950,7 @@ fn notices_name_no_item_unless_a_reviewer_discloses() {
         std::thread::sleep(Duration::from_millis(100));
     }
     assert!(d.stop().success());
-    let rejected = notices.join(format!("{qid}.rejected.json"));
+    let rejected = notice_file(&notices, &qid, "rejected.json");
     assert!(rejected.is_file());
     assert_no_item("a rejection without disclosure");
     let nr: Value = serde_json::from_slice(&std::fs::read(&rejected).unwrap()).unwrap();

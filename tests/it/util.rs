@@ -289,14 +289,12 @@ impl Ws {
     /// saw the file settle may be a moment early: wait (up to 30 s) for the notice to appear. It is written
     /// atomically, so once there it is whole.
     pub fn notice(&self, vendor: &str, batch_id: &str) -> serde_json::Value {
-        let p = self
-            .dir
-            .join("notices")
-            .join(vendor)
-            .join(format!("{batch_id}.json"));
+        let dir = self.dir.join("notices").join(vendor);
         let t = Instant::now();
+        let mut p = notice_file(&dir, batch_id, "json");
         while !p.exists() && t.elapsed() < Duration::from_secs(30) {
             std::thread::sleep(Duration::from_millis(50));
+            p = notice_file(&dir, batch_id, "json");
         }
         serde_json::from_slice(
             &std::fs::read(&p).unwrap_or_else(|e| panic!("{}: {e}", p.display())),
@@ -308,6 +306,39 @@ impl Ws {
     pub fn store(&self) -> labelweir::store::Store {
         labelweir::store::Store::open_workspace(&self.dir, &Default::default()).expect("open store")
     }
+}
+
+/// The notice file of a batch's first verdict in a vendor's notice folder, `<file>.<batch id>.<ext>`
+/// (`ext` is `json`, `md` or `items.csv`; for a review decision pass `rejected.json` and so on). When none
+/// is there yet: the path it will have, named after the first-verdict notice's delivered file.
+pub fn notice_file(dir: &Path, batch_id: &str, ext: &str) -> PathBuf {
+    let suffix = format!(".{batch_id}.{ext}");
+    let bare = format!("{batch_id}.{ext}");
+    std::fs::read_dir(dir)
+        .ok()
+        .and_then(|rd| {
+            rd.flatten()
+                .map(|e| e.file_name().to_string_lossy().into_owned())
+                .find(|n| !n.starts_with('.') && (n.ends_with(&suffix) || *n == bare))
+        })
+        .map_or_else(
+            || dir.join(first_verdict_prefix(dir, batch_id) + &bare),
+            |n| dir.join(n),
+        )
+}
+
+/// `<file>.` from the batch's first-verdict notice (`<file>.<batch id>.json`), or empty.
+fn first_verdict_prefix(dir: &Path, batch_id: &str) -> String {
+    let suffix = format!(".{batch_id}.json");
+    std::fs::read_dir(dir)
+        .ok()
+        .and_then(|rd| {
+            rd.flatten()
+                .map(|e| e.file_name().to_string_lossy().into_owned())
+                .find(|n| !n.starts_with('.') && n.ends_with(&suffix))
+        })
+        .map(|n| n[..n.len() - suffix.len() + 1].to_string())
+        .unwrap_or_default()
 }
 
 /// A free TCP port on 127.0.0.1 (bound and released; good enough for tests).
