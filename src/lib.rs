@@ -35,7 +35,7 @@ mod conn;
 pub mod daemon;
 pub mod data;
 pub mod eval;
-pub mod features;
+pub use pipeline::features;
 pub mod fsx;
 mod http;
 mod metrics;

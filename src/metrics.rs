@@ -171,6 +171,7 @@ fn hopts(name: &str, help: &str, buckets: Vec<f64>) -> HistogramOpts {
 }
 
 impl Flow {
+    // size-limits: long-fn new: one registration per flow metric, read as a table of names, help texts and labels
     fn new(r: &Registry) -> prometheus::Result<Self> {
         let stage_buckets = vec![
             0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0,

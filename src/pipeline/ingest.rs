@@ -638,7 +638,7 @@ impl Ingest {
         if self.store.feature_schema()?.is_none() {
             return Ok(());
         }
-        crate::features::take_incoming(&self.ws, &self.store, &self.config, SystemTime::now())?;
+        super::features::take_incoming(&self.ws, &self.store, &self.config, SystemTime::now())?;
         Ok(())
     }
 

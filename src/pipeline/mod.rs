@@ -52,6 +52,7 @@ use std::time::Instant;
 use crate::data::Table;
 use crate::store::{BatchRecord, RejectReason, StoreError};
 
+pub mod features;
 pub mod file;
 pub mod ingest;
 pub mod score;

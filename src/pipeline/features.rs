@@ -24,9 +24,9 @@ use std::time::{Duration, SystemTime};
 
 use chrono::Utc;
 
+use super::ingest::{is_ignored_name, read_claimed, unsafe_name, EntryKind};
 use crate::config::Config;
 use crate::data::{FeatureTable, Format};
-use crate::pipeline::ingest::{is_ignored_name, read_claimed, unsafe_name, EntryKind};
 use crate::store::{FeatureImport, Provenance, Store, StoreError};
 use crate::workspace::{team_file_options, Workspace};
 
