@@ -13,6 +13,5 @@
 
 pub mod baselines;
 pub mod benchmark;
-pub mod casebook;
 pub mod metrics;
 pub mod throughput;
