@@ -325,6 +325,11 @@ fn every_malformed_batch_exits_2_naming_file_row_and_column() {
             out.is_empty(),
             "{file}: nothing on stdout on error, got {out}"
         );
+        // Under --json the error is one JSON object on stderr; its message is what a reader sees.
+        let v: serde_json::Value = serde_json::from_str(err.trim())
+            .unwrap_or_else(|e| panic!("{file}: stderr is not one JSON object ({e}): {err}"));
+        assert_eq!(v["exit_code"], 2, "{file}: {err}");
+        let err = v["error"].as_str().expect("error message").to_string();
         let name = Path::new(file).file_name().unwrap().to_str().unwrap();
         assert!(err.contains(name), "{file}: {err}");
         for n in *needles {
