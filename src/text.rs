@@ -93,7 +93,13 @@ pub fn escape_name(name: &OsStr) -> String {
 /// `>`, `"` and `'` as character references (OWASP Cross Site Scripting Prevention Cheat Sheet, output
 /// encoding for HTML contexts).
 pub fn html_escape(s: &str) -> String {
-    let clean = sanitize_text(s, 200);
+    html_escape_up_to(s, 200)
+}
+
+/// [`html_escape`] with the sanitiser's length cap given by the caller (labelweir's own sentences are never
+/// cut).
+pub(crate) fn html_escape_up_to(s: &str, max_chars: usize) -> String {
+    let clean = sanitize_text(s, max_chars);
     let mut out = String::with_capacity(clean.len());
     for c in clean.chars() {
         match c {

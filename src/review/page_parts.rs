@@ -12,21 +12,7 @@ use super::{Projection, ShowReport, NEGLIGIBLE_REPAIR_COST};
 /// cut (up to 20,000 characters) and keeping line breaks, so that no sentence of ours ends in `…`.
 pub(super) fn html_text(s: &str) -> String {
     s.split('\n')
-        .map(|line| {
-            let clean = crate::text::sanitize_text(line, 20_000);
-            let mut out = String::with_capacity(clean.len());
-            for c in clean.chars() {
-                match c {
-                    '&' => out.push_str("&amp;"),
-                    '<' => out.push_str("&lt;"),
-                    '>' => out.push_str("&gt;"),
-                    '"' => out.push_str("&quot;"),
-                    '\'' => out.push_str("&#39;"),
-                    _ => out.push(c),
-                }
-            }
-            out
-        })
+        .map(|line| crate::text::html_escape_up_to(line, 20_000))
         .collect::<Vec<_>>()
         .join("\n")
 }
