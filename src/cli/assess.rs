@@ -17,8 +17,8 @@ use super::{exit, Failure};
 use labelweir::config::Config;
 use labelweir::data::{self, Classes, Table, TableOptions};
 use labelweir::model::{
-    self, Assessment, FeatureMap, ModelSettings, PoolInput, PoolSummary, Standardizer, TrainReport,
-    TrustedInput,
+    self, Assessment, FeatureMap, ModelSettings, PoolInput, PoolSummary, Standardizer,
+    SuspectStory, TrainReport, TrustedInput,
 };
 use labelweir::policy::{self, Decision, PolicySettings, VendorHistory};
 use labelweir::text::sanitize;
@@ -118,6 +118,8 @@ pub struct Report {
     pub decision: Decision,
     /// Suspicion at or above which an item counts as flagged (`[model] flag_threshold`).
     pub flag_threshold: f64,
+    /// The flagged items grouped by (given → proposed), with the trusted items nearest them.
+    pub stories: Vec<SuspectStory>,
 }
 
 /// The pool summary built in incremental mode.
@@ -296,6 +298,19 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
     )
     .map_err(engine_error)?;
     let decision = decide(&cfg.policy, &assessment, settings.flag_threshold);
+    let stories = model::suspect_stories(
+        standardizer
+            .transform(trusted.features.view())
+            .map_err(engine_error)?
+            .view(),
+        &trusted_y,
+        standardizer
+            .transform(batch.features.view())
+            .map_err(engine_error)?
+            .view(),
+        &assessment.items,
+        settings.flag_threshold,
+    );
     Ok(Report {
         batch_path: batch.source.clone(),
         trusted_path: trusted.source.clone(),
@@ -309,6 +324,7 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
         assessment,
         decision,
         flag_threshold: settings.flag_threshold,
+        stories,
     })
 }
 
@@ -435,6 +451,7 @@ pub fn report_json(r: &Report) -> Value {
             "target": a.trusted_loss_target,
         },
         "broken_trusted": broken,
+        "stories": stories_json(r),
         "per_class": per_class(r),
         "classes": r.classes.names(),
         "inputs": {
@@ -481,6 +498,81 @@ pub fn report_json(r: &Report) -> Value {
             "baseline": r.decision.baseline,
         },
     })
+}
+
+/// Stories shown in the readable report; the rest are counted (all are in `--json`).
+const STORIES_SHOWN: usize = 6;
+
+/// The flagged items by story, for `--json`: per (given → proposed) pair its item ids (most suspicious
+/// first), mean signals and the trusted items nearest them.
+fn stories_json(r: &Report) -> Vec<Value> {
+    let name = |k: usize| r.classes.names()[k].as_str();
+    r.stories
+        .iter()
+        .map(|g| {
+            json!({
+                "label": name(g.label),
+                "proposed_label": name(g.proposed_label),
+                "items": g.items.len(),
+                "ids": g.items.iter().map(|&i| r.batch_ids[i].as_str()).collect::<Vec<_>>(),
+                "mean_suspicion": g.mean_suspicion,
+                "mean_repair_signal": g.mean_repair_signal,
+                "mean_learner_doubt": g.mean_learner_doubt,
+                "trusted_nearby": g.trusted_nearby,
+                "trusted_nearby_proposed": g.trusted_nearby_proposed,
+                "trusted_nearby_given": g.trusted_nearby_given,
+            })
+        })
+        .collect()
+}
+
+/// The stories in words: "37 labeled paper, proposed cardboard: of the 14 trusted items nearest them,
+/// 9 are cardboard and 2 paper".
+fn render_stories(o: &mut String, r: &Report) {
+    if r.stories.is_empty() {
+        return;
+    }
+    let name = |k: usize| r.classes.names()[k].as_str();
+    let _ = writeln!(
+        o,
+        "\nflagged items by story (given → proposed, and the {} trusted items nearest each):",
+        model::stories::NEAREST_TRUSTED
+    );
+    for g in r.stories.iter().take(STORIES_SHOWN) {
+        let (given, proposed) = (cell(name(g.label), 24), cell(name(g.proposed_label), 24));
+        let lean = if g.trusted_nearby == 0 {
+            String::new()
+        } else if g.trusted_back_the_proposal() {
+            "  <- the trusted set backs the proposal here".to_string()
+        } else if g.trusted_nearby_given > g.trusted_nearby_proposed {
+            "  <- trusted items here carry the given label".to_string()
+        } else if g.trusted_nearby_given > 0 {
+            "  <- the trusted items here are split".to_string()
+        } else {
+            String::new()
+        };
+        let _ = writeln!(
+            o,
+            "  {:>4} labeled {given}, proposed {proposed}: of the {} trusted items nearest them, {} {proposed}, {} {given}; repair {:.2}, learner {:.2}{lean}",
+            g.items.len(),
+            g.trusted_nearby,
+            g.trusted_nearby_proposed,
+            g.trusted_nearby_given,
+            g.mean_repair_signal,
+            g.mean_learner_doubt,
+        );
+    }
+    if r.stories.len() > STORIES_SHOWN {
+        let rest: usize = r.stories[STORIES_SHOWN..]
+            .iter()
+            .map(|g| g.items.len())
+            .sum();
+        let _ = writeln!(
+            o,
+            "  … {} more stories with {rest} items (see --json)",
+            r.stories.len() - STORIES_SHOWN
+        );
+    }
 }
 
 /// Whether every solve (including the pool summary's fit) converged within its bounds.
@@ -552,6 +644,7 @@ pub fn render_text(r: &Report, top: usize) -> String {
         a.items.len(),
         r.flag_threshold
     );
+    render_stories(&mut o, r);
     if !a.broken_trusted.is_empty() {
         // Those the pool alone got right first: they are what adding the batch breaks.
         let mut broken: Vec<_> = a.broken_trusted.iter().collect();
@@ -591,8 +684,12 @@ pub fn render_text(r: &Report, top: usize) -> String {
     let _ = writeln!(o, "\ntop {shown} suspects of {}:", ranked.len());
     let _ = writeln!(
         o,
-        "  {:>4}  {:<24}  {:<14}  {:>9}  {:<14}  {:>10}",
-        "rank", "id", "label", "suspicion", "proposed", "confidence"
+        "  (repair: the repair signal, what the trusted items say through the learner; learner: 1 − p(label) under a model that has not seen the item)"
+    );
+    let _ = writeln!(
+        o,
+        "  {:>4}  {:<24}  {:<14}  {:>9}  {:<14}  {:>10}  {:>6}  {:>7}",
+        "rank", "id", "label", "suspicion", "proposed", "confidence", "repair", "learner"
     );
     for (rank, it) in ranked.iter().take(shown).enumerate() {
         let proposed = if it.proposed_label == it.label {
@@ -602,13 +699,15 @@ pub fn render_text(r: &Report, top: usize) -> String {
         };
         let _ = writeln!(
             o,
-            "  {:>4}  {:<24}  {:<14}  {:>9.3}  {:<14}  {:>10.3}",
+            "  {:>4}  {:<24}  {:<14}  {:>9.3}  {:<14}  {:>10.3}  {:>6.3}  {:>7.3}",
             rank + 1,
             cell(&r.batch_ids[it.index], 24),
             cell(name(it.label), 14),
             it.suspicion,
             cell(&proposed, 14),
-            it.confidence
+            it.confidence,
+            it.repair_signal,
+            it.learner_doubt
         );
     }
     let c = &a.convergence;

@@ -34,6 +34,7 @@ pub mod features;
 pub mod learner;
 pub mod linalg;
 pub mod repair;
+pub mod stories;
 pub mod summary;
 pub mod sweep;
 
@@ -48,6 +49,7 @@ pub use learner::{Learner, TrainReport};
 pub use repair::{
     assess, Assessment, Convergence, ItemScore, PoolInput, Timings, TrustedInput, TrustedItemReport,
 };
+pub use stories::{suspect_stories, SuspectStory};
 pub use summary::{PoolSummary, PoolTerm};
 pub use sweep::{SweepItem, SweepScorer};
 

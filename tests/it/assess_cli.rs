@@ -573,3 +573,92 @@ fn vendor_strings_never_reach_the_terminal_raw() {
     );
     assert!(!err.contains('\u{1b}'), "raw escape in {err:?}");
 }
+
+/// The flagged items told as stories: on the wet-cardboard fixture (cardboard delivered as paper) the
+/// largest story is paper → cardboard, it holds most of the planted flips (`fixtures/truth/`), and the
+/// trusted items nearest it carry cardboard more often than paper. Every id in a story carries the story's
+/// given label and proposed label in `items` (fails if the grouping mixed pairs), and the stories are
+/// ordered largest first. The readable report leads with the same stories.
+#[test]
+fn flagged_items_are_told_as_stories_backed_by_nearby_trusted_items() {
+    let batch = "batch-wet-cardboard-as-paper.csv";
+    let args = [
+        "--trusted",
+        &fx("trusted.csv"),
+        "--pool",
+        &fx("pool.csv"),
+        &fx(batch),
+    ];
+    let (code, doc) = assess_json(&args);
+    assert_eq!(code, 1);
+    let stories = doc["stories"].as_array().expect("stories array");
+    assert!(!stories.is_empty(), "{doc}");
+    let by_id: HashMap<&str, &Value> = items(&doc)
+        .iter()
+        .map(|it| (it["id"].as_str().unwrap(), it))
+        .collect();
+    let mut in_stories = 0;
+    for (k, s) in stories.iter().enumerate() {
+        let ids = s["ids"].as_array().unwrap();
+        assert_eq!(ids.len() as u64, s["items"].as_u64().unwrap());
+        if k > 0 {
+            assert!(
+                stories[k - 1]["items"].as_u64() >= s["items"].as_u64(),
+                "{s}"
+            );
+        }
+        for id in ids {
+            let it = by_id[id.as_str().unwrap()];
+            assert_eq!(it["label"], s["label"], "{id} in {s}");
+            assert_eq!(it["proposed_label"], s["proposed_label"], "{id} in {s}");
+            assert_eq!(it["flagged"], true, "{id} in {s}");
+        }
+        let near = s["trusted_nearby"].as_u64().unwrap();
+        assert!(
+            s["trusted_nearby_proposed"].as_u64().unwrap()
+                + s["trusted_nearby_given"].as_u64().unwrap()
+                <= near
+        );
+        in_stories += ids.len();
+    }
+    // Every flagged item with a proposed change is in exactly one story.
+    let changed = items(&doc)
+        .iter()
+        .filter(|it| it["flagged"] == true && it["label"] != it["proposed_label"])
+        .count();
+    assert_eq!(in_stories, changed);
+
+    let top = &stories[0];
+    assert_eq!(
+        (top["label"].as_str(), top["proposed_label"].as_str()),
+        (Some("paper"), Some("cardboard"))
+    );
+    let t = truth(batch);
+    let planted = top["ids"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|id| t[id.as_str().unwrap()])
+        .count();
+    let all_planted = t.values().filter(|f| **f).count();
+    assert!(
+        planted * 3 >= all_planted * 2,
+        "{planted} of {all_planted} planted flips in {top}"
+    );
+    assert!(
+        top["trusted_nearby_proposed"].as_u64() > top["trusted_nearby_given"].as_u64(),
+        "{top}"
+    );
+
+    let (_, out, _) = assess(&args);
+    let story = out
+        .lines()
+        .skip_while(|l| !l.starts_with("flagged items by story"))
+        .nth(1)
+        .unwrap_or_else(|| panic!("no stories in the readable report:\n{out}"));
+    assert!(story.contains("labeled paper, proposed cardboard"), "{out}");
+    assert!(
+        story.contains("the trusted set backs the proposal"),
+        "{out}"
+    );
+}
