@@ -97,8 +97,9 @@ pub struct SuspectDetail {
     pub nearest_trusted: Vec<NearTrusted>,
 }
 
-/// The flagged items grouped by (given → proposed), largest group first. A local stand-in until the
-/// engine's own grouping is merged.
+/// The moved items grouped by (given → proposed), largest group first. (The stored record keeps only
+/// the detailed items' features, so the nearby trusted items are counted over those; `assess`, which has
+/// every item's features, groups with [`crate::model::suspect_stories`].)
 pub fn suspect_groups(moved: &[MovedItem], details: &[SuspectDetail]) -> Vec<SuspectGroup> {
     let mut groups: Vec<SuspectGroup> = Vec::new();
     for m in moved {
