@@ -253,7 +253,7 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
                 x.view(),
             )
         });
-        let decision = verdict::decide(&s.config, &history, &scored, shift.as_ref());
+        let decision = verdict::decide(&s.config, &history, &scored, shift.as_ref(), &classes);
         let record = BatchRecord::claimed(
             format!("b{b}"),
             "casebook",

@@ -435,7 +435,13 @@ impl Worker {
                 table.features.view(),
             )
         });
-        let decision = verdict::decide(&self.config, &history, &scored, shift.as_ref());
+        let decision = verdict::decide(
+            &self.config,
+            &history,
+            &scored,
+            shift.as_ref(),
+            &self.meta.classes,
+        );
         self.metrics.stage("decide", t_decide.elapsed());
         if decision
             .reasons

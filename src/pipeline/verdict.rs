@@ -89,16 +89,18 @@ fn unscored(record: BatchRecord, audit: AuditRecord) -> Verdict {
 /// score is quarantined with reason `score_invalid` (held for a person, never silently accepted).
 ///
 /// `shift` is the shift check's finding for the batch ([`shift_check`]); without it every item is judged.
+/// `classes` are the workspace's class names by index (reasons name a class by its name).
 pub fn decide(
     config: &Config,
     history: &VendorHistory,
     scored: &Scored,
     shift: Option<&ShiftReport>,
+    classes: &[String],
 ) -> Decision {
     match scored {
         Ok(a) => {
             let t = config.model.flag_threshold;
-            let mut signals = BatchSignals::from_assessment(a, t);
+            let mut signals = BatchSignals::from_assessment(a, t).named(classes);
             if let Some(r) = shift {
                 signals = signals.with_shift(a, t, r);
             }
@@ -194,7 +196,7 @@ pub fn scored(
         let signals = record
             .decision
             .as_ref()
-            .and_then(|d| d.signals)
+            .and_then(|d| d.signals.clone())
             .or_else(|| {
                 batch
                     .scored
@@ -364,7 +366,7 @@ mod tests {
         let config = Config::default();
         let history = VendorHistory::default();
         let scored: Scored = Err("the engine failed".into());
-        let d = decide(&config, &history, &scored, None);
+        let d = decide(&config, &history, &scored, None, &[]);
         assert_eq!(d.verdict, PolicyVerdict::Quarantine);
         assert_eq!(d.reasons[0].code, ReasonCode::ScoreInvalid);
         let table = Table {

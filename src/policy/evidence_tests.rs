@@ -182,3 +182,27 @@ fn interleaving_small_clean_files_does_not_get_poison_through() {
     );
     assert_eq!(clean_held, 0, "{v:?}");
 }
+
+/// What a release teaches the vendor's record is the level of the labels the reviewer let stand: items left
+/// out leave the count, and flagged items left out or corrected leave the flagged count.
+#[test]
+fn a_release_without_the_corrected_items_teaches_the_level_that_stood() {
+    let s = PolicySettings::default();
+    let b = batch(150, 30, 0.05);
+    let kept = b.clone().without_items(10, 25);
+    assert_eq!((kept.items, kept.flagged_items()), (140, 5));
+    let mut as_is = VendorHistory::default();
+    as_is.record_released(&s, &b);
+    let mut fixed = VendorHistory::default();
+    fixed.record_released(&s, &kept);
+    assert_eq!(fixed.evidence.released[0].flagged, 5);
+    assert_eq!(fixed.evidence.released[0].items, 140);
+    let next = batch(150, 9, 0.05);
+    assert!(
+        fixed.evidence.judge(&s, &next).level < as_is.evidence.judge(&s, &next).level,
+        "a batch released with its errors corrected lifts the level less"
+    );
+    // Removing more than there is never underflows.
+    let none = b.without_items(1_000, 1_000);
+    assert_eq!((none.items, none.flagged_items()), (0, 0));
+}

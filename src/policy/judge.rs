@@ -28,6 +28,11 @@ pub(super) fn judge(
     let items = signals
         .filter(|s| settings.judge_items && s.flagged_share.is_finite())
         .map(|s| history.evidence.judge(settings, s));
+    let labels = signals
+        .filter(|s| settings.judge_labels && s.flagged_share.is_finite())
+        .map_or_else(Vec::new, |s| {
+            super::classes::check_labels(settings, s, items.as_ref())
+        });
     let mut reasons = Vec::new();
     let share_invalid = flagged
         .as_ref()
@@ -66,6 +71,7 @@ pub(super) fn judge(
             (Some((s, fb)), None) => flagged_share_rules(settings, s, fb, &mut reasons),
             _ => {}
         }
+        label_rule(&labels, &mut reasons);
     }
     let verdict = if reasons.is_empty() {
         let mut r = accepting_reason(
@@ -87,8 +93,29 @@ pub(super) fn judge(
         reasons,
         baseline,
         flagged_share_baseline: flagged.map(|(_, fb)| fb),
-        signals: signals.copied(),
+        signals: signals.cloned(),
         items,
+        labels,
+    }
+}
+
+/// A systematic error on one class: every label whose flagged items exceed the noise allowed if the
+/// labels were right (see `policy::classes`), named.
+fn label_rule(labels: &[super::LabelCheck], reasons: &mut Vec<Reason>) {
+    let fired: Vec<String> = labels
+        .iter()
+        .filter(|c| c.fires())
+        .map(|c| c.describe())
+        .collect();
+    if !fired.is_empty() {
+        push(
+            reasons,
+            ReasonCode::FlaggedItemsInClass,
+            format!(
+                "more flagged items in one class than if its labels were right — {}",
+                fired.join("; ")
+            ),
+        );
     }
 }
 

@@ -58,15 +58,22 @@
 //! baseline only once its CUSUM returns to 0: a slow drip of slightly-high batches cannot drag the median up
 //! under the CUSUM that is meant to catch it (our own design; Montgomery's CUSUM assumes a fixed target). A
 //! reviewer who accepts the new level resets the CUSUMs ([`VendorHistory::reset_cusum`]), which merges the
-//! held values. Only [`VendorHistory::record_accepted`] changes the history, and the daemon calls it for
-//! batches the policy accepted. A batch released by a reviewer does not enter the baseline either (a
-//! reviewer's release is a judgement about one batch, not a new normal).
+//! held values. The daemon calls [`VendorHistory::record_accepted`] for batches the policy accepted, and
+//! [`VendorHistory::record_released`] for a batch a reviewer released (in the same store transaction as the
+//! release, without the items the reviewer left out or corrected): a person looked at it, so it joins the
+//! vendor's record, and a vendor whose honest batches the computed limits hold earns a record of its own
+//! instead of staying in cold start for ever.
+//!
+//! 6. **Per label** ([`classes`], `flagged_items_in_class`): each given label's flagged items against the
+//!    number to expect if the labels were right; a systematic error on one class can hide in the noise of
+//!    the batch's total.
 
 use std::collections::VecDeque;
 
 use serde::{Deserialize, Serialize};
 
 mod admission;
+pub mod classes;
 pub mod evidence;
 mod judge;
 mod settings;
@@ -74,6 +81,7 @@ pub mod shift;
 mod stats;
 
 pub use admission::{item_fate, AdmissionSettings, FlaggedItems, ItemFate};
+pub use classes::{LabelCheck, LabelFlags};
 pub use evidence::{ItemEvidence, ItemJudgement};
 pub use settings::{PolicyError, PolicySettings};
 pub use shift::{Reach, ShiftReport};
@@ -98,7 +106,7 @@ pub const MEAN_AD_CONSISTENCY: f64 = 1.253_314;
 /// model trained on 100,000, so its repair cost and damage shrink towards the clean noise floor, while the
 /// per-item suspicions (which compare each label with a reference model that has not seen the item) keep
 /// ranking flipped items well. See [`PolicySettings::cold_start_max_flagged_share`] for the measurements.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct BatchSignals {
     /// The engine's repair cost: fraction of the batch's label mass that must move, in `[0, 1]`.
     pub repair_cost: f64,
@@ -150,6 +158,10 @@ pub struct BatchSignals {
     /// check did not run.
     #[serde(default)]
     pub unlike_tail: f64,
+    /// The batch's items per given label, for the per-label test ([`classes`]); empty when the engine
+    /// computed no per-label expectation (records from before it did), which skips that test.
+    #[serde(default)]
+    pub labels: Vec<LabelFlags>,
 }
 
 impl BatchSignals {
@@ -165,6 +177,24 @@ impl BatchSignals {
             .filter(|i| i.suspicion >= flag_threshold)
             .count() as f64;
         let sum: f64 = a.items.iter().map(|i| i.suspicion).sum();
+        let mut labels: Vec<LabelFlags> = a
+            .expected_flagged_by_label
+            .iter()
+            .enumerate()
+            .map(|(class, &expected)| LabelFlags {
+                class,
+                name: String::new(),
+                items: 0,
+                flagged: 0,
+                expected,
+            })
+            .collect();
+        for i in &a.items {
+            if let Some(l) = labels.get_mut(i.label) {
+                l.items += 1;
+                l.flagged += u64::from(i.suspicion >= flag_threshold);
+            }
+        }
         Self {
             repair_cost: a.repair_cost,
             damage: a.damage,
@@ -180,7 +210,19 @@ impl BatchSignals {
             unlike_items: 0,
             unlike_flagged: 0,
             unlike_tail: 0.0,
+            labels,
         }
+    }
+
+    /// The same signals with the class names (by index) in the per-label tallies, so that reasons name a
+    /// class by its name.
+    pub fn named(mut self, classes: &[String]) -> Self {
+        for l in &mut self.labels {
+            if let Some(n) = classes.get(l.class) {
+                l.name = n.clone();
+            }
+        }
+        self
     }
 
     /// The same signals with the shift check's findings: items beyond reach are counted, and their flags
@@ -199,6 +241,41 @@ impl BatchSignals {
             .filter(|i| i.suspicion >= flag_threshold)
             .filter(|i| report.beyond.get(i.index).copied().unwrap_or(false))
             .count();
+        // Per label: items beyond reach leave the tallies, and the expectation is scaled to the judged
+        // items (the engine computed it over the whole batch).
+        let keep = if self.items > 0 {
+            self.judged_items() as f64 / self.items as f64
+        } else {
+            0.0
+        };
+        for l in &mut self.labels {
+            l.expected *= keep;
+        }
+        for i in &a.items {
+            if !report.beyond.get(i.index).copied().unwrap_or(false) {
+                continue;
+            }
+            if let Some(l) = self.labels.get_mut(i.label) {
+                l.items = l.items.saturating_sub(1);
+                if i.suspicion >= flag_threshold {
+                    l.flagged = l.flagged.saturating_sub(1);
+                }
+            }
+        }
+        self
+    }
+
+    /// The same signals without items a reviewer left out of a release or corrected (`removed` items,
+    /// `removed_flagged` of them flagged): what the vendor's record learns from a released batch is the
+    /// level of the labels the reviewer let stand.
+    pub fn without_items(mut self, removed: usize, removed_flagged: usize) -> Self {
+        let flagged = self.flagged_items().saturating_sub(removed_flagged);
+        self.items = self.items.saturating_sub(removed);
+        self.flagged_share = if self.items > 0 {
+            flagged.min(self.items) as f64 / self.items as f64
+        } else {
+            0.0
+        };
         self
     }
 
@@ -266,6 +343,7 @@ impl BatchSignals {
             unlike_items: 0,
             unlike_flagged: 0,
             unlike_tail: 0.0,
+            labels: Vec::new(),
         }
     }
 }
@@ -530,6 +608,9 @@ pub enum ReasonCode {
     /// Quarantine for operations, not label trouble: the batch's items are unlike the pool and the
     /// trusted set does not cover them ([`shift`]).
     ItemsUnlikePool,
+    /// Quarantine: among the items given one label, more are flagged than the noise allows if the
+    /// labels were right — a systematic error on one class ([`classes`]).
+    FlaggedItemsInClass,
 }
 
 impl ReasonCode {
@@ -552,11 +633,12 @@ impl ReasonCode {
             ReasonCode::FlaggedItemsExcess => "flagged_items_excess",
             ReasonCode::FlaggedItemsDrift => "flagged_items_drift",
             ReasonCode::ItemsUnlikePool => "items_unlike_pool",
+            ReasonCode::FlaggedItemsInClass => "flagged_items_in_class",
         }
     }
 
     /// Every code, for documentation and schema checks.
-    pub const ALL: [ReasonCode; 16] = [
+    pub const ALL: [ReasonCode; 17] = [
         ReasonCode::WithinBaseline,
         ReasonCode::WithinColdStartLimits,
         ReasonCode::ScoreInvalid,
@@ -573,6 +655,7 @@ impl ReasonCode {
         ReasonCode::FlaggedItemsExcess,
         ReasonCode::FlaggedItemsDrift,
         ReasonCode::ItemsUnlikePool,
+        ReasonCode::FlaggedItemsInClass,
     ];
 
     /// Whether the code says something about the batch's labels (false for the accepting codes, an
@@ -788,6 +871,10 @@ pub struct Decision {
     /// from [`decide`], and with `judge_items = false`).
     #[serde(default)]
     pub items: Option<ItemJudgement>,
+    /// The per-label tests of the batch's labels that had flagged items ([`classes`]; empty in older
+    /// records, from [`decide`], and with `judge_labels = false`).
+    #[serde(default)]
+    pub labels: Vec<LabelCheck>,
 }
 
 /// Decide one batch from its repair cost and damage alone: the flagged-share rules are skipped.

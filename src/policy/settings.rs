@@ -148,6 +148,14 @@ pub struct PolicySettings {
     pub unlike_alpha: f64,
     /// Ridge added to the reference covariance's diagonal (standardised units). Default 0.1.
     pub unlike_ridge: f64,
+    /// Judge each batch label by label as well (`flagged_items_in_class`; see `policy::classes`): a
+    /// systematic error on one class can hide in the noise of the batch's total flagged count. Default
+    /// true.
+    pub judge_labels: bool,
+    /// `flagged_items_in_class` holds a batch when, for some label, the binomial upper tail of its flagged
+    /// count is below this divided by the number of labels tested (Bonferroni). Probability; default 1e-4
+    /// (as `item_alpha`).
+    pub label_alpha: f64,
 }
 
 impl Default for PolicySettings {
@@ -184,6 +192,8 @@ impl Default for PolicySettings {
             unlike_min_share: 0.25,
             unlike_alpha: 1e-6,
             unlike_ridge: 0.1,
+            judge_labels: true,
+            label_alpha: 1e-4,
         }
     }
 }
@@ -304,6 +314,7 @@ impl PolicySettings {
         unit("unlike_min_share", self.unlike_min_share)?;
         open_unit("unlike_alpha", self.unlike_alpha)?;
         pos("unlike_ridge", self.unlike_ridge)?;
+        open_unit("label_alpha", self.label_alpha)?;
         Ok(())
     }
 }

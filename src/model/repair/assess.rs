@@ -4,7 +4,9 @@ use std::time::Instant;
 
 use ndarray::{Array1, Array2, ArrayView2};
 
-use super::fusion::{expected_flagged, score_items, trusted_reports, Evidence};
+use super::fusion::{
+    expected_flagged, expected_flagged_by_label, score_items, trusted_reports, Evidence,
+};
 use super::path::{penalty_path, repair_point};
 use super::reference::{fit_pool, reference, Reference};
 use super::{
@@ -214,6 +216,8 @@ pub fn assess(
     );
     let (expected_flagged_share, expected_flagged_sd) =
         expected_flagged(&refm.p_ref, &ev.repair_weights, settings.flag_threshold);
+    let expected_flagged_by_label =
+        expected_flagged_by_label(&refm.p_ref, &ev.repair_weights, settings.flag_threshold);
     let (broken_trusted, trusted_still_wrong) = trusted_reports(
         phi_t.view(),
         trusted.y,
@@ -255,6 +259,7 @@ pub fn assess(
         },
         expected_flagged_share,
         expected_flagged_sd,
+        expected_flagged_by_label,
         expected_damage,
         expected_damage_sd,
     })
