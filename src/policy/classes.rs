@@ -70,6 +70,8 @@ pub struct LabelCheck {
     pub tail_p: f64,
     /// `label_alpha / L`.
     pub limit: f64,
+    /// `L`, the labels tested in the batch.
+    pub labels_tested: usize,
 }
 
 impl LabelCheck {
@@ -83,7 +85,7 @@ impl LabelCheck {
     pub fn describe(&self) -> String {
         format!(
             "items labelled {}: {} of {} flagged for review, {:.1} to expect if the labels were right \
-             ({:.2} per item of the batch's {} judged items); binomial tail {:.2e} < {:.1e} (limit {:.0e} over the labels tested)",
+             (a share {:.3} of the batch's {} judged items); binomial tail {:.2e} < {:.2e} (the limit {:.0e} shared by {} labels)",
             self.label.display_name(),
             self.label.flagged,
             self.label.items,
@@ -92,7 +94,8 @@ impl LabelCheck {
             self.batch_items,
             self.tail_p,
             self.limit,
-            self.limit,
+            self.limit * self.labels_tested as f64,
+            self.labels_tested,
         )
     }
 }
@@ -111,7 +114,8 @@ pub fn check_labels(
     let ratio = items
         .filter(|j| j.clean_level > 0.0)
         .map_or(1.0, |j| (j.level / j.clean_level).max(1.0));
-    let limit = settings.label_alpha / tested.len() as f64;
+    let labels_tested = tested.len();
+    let limit = settings.label_alpha / labels_tested as f64;
     tested
         .into_iter()
         .filter(|l| l.flagged > 0)
@@ -125,6 +129,7 @@ pub fn check_labels(
                 level,
                 tail_p: binomial_upper_tail(l.flagged, n, level),
                 limit,
+                labels_tested,
             }
         })
         .collect()
@@ -154,7 +159,9 @@ mod tests {
     #[test]
     fn the_binomial_tail_bounds_the_uneven_one_beyond_the_mean_plus_one() {
         let sets: [Vec<f64>; 3] = [
-            (0..60).map(|i| if i % 3 == 0 { 0.12 } else { 0.0 }).collect(),
+            (0..60)
+                .map(|i| if i % 3 == 0 { 0.12 } else { 0.0 })
+                .collect(),
             (0..100).map(|i| 0.3 * (i as f64 / 100.0).powi(3)).collect(),
             (0..40).map(|i| if i < 4 { 0.9 } else { 0.01 }).collect(),
         ];
@@ -222,7 +229,9 @@ mod tests {
         let fired: Vec<_> = checks.iter().filter(|c| c.fires()).collect();
         assert_eq!(fired.len(), 1, "{checks:?}");
         assert_eq!(fired[0].label.name, "paper");
-        assert!(fired[0].describe().contains("items labelled paper: 14 of 77"));
+        assert!(fired[0]
+            .describe()
+            .contains("items labelled paper: 14 of 77"));
         let mut fine = other(6);
         fine[2].flagged = 3;
         assert!(check_labels(&s, &signals(fine), None)

@@ -770,7 +770,9 @@ impl Store {
             if let Some(f) = history_edit {
                 let key = record.vendor.as_bytes();
                 let mut h: VendorHistory = match t[T_HISTORY].get(key)? {
-                    Some(v) => dec("history", key, &v).map_err(ConflictableTransactionError::Abort)?,
+                    Some(v) => {
+                        dec("history", key, &v).map_err(ConflictableTransactionError::Abort)?
+                    }
                     None => VendorHistory::default(),
                 };
                 f(&mut h);

@@ -194,7 +194,14 @@ fn a_transition_with_history_updates_both_or_neither() {
     let mut r = claimed(&s);
     r.outcome = Some(Outcome::Quarantined);
     let r = s
-        .record_verdict(&r, AuditRecord::new("daemon", "verdict"), true, None, None, None)
+        .record_verdict(
+            &r,
+            AuditRecord::new("daemon", "verdict"),
+            true,
+            None,
+            None,
+            None,
+        )
         .unwrap();
     s.transition(
         &r.id,

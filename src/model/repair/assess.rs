@@ -4,9 +4,7 @@ use std::time::Instant;
 
 use ndarray::{Array1, Array2, ArrayView2};
 
-use super::fusion::{
-    expected_flagged, expected_flagged_by_label, score_items, trusted_reports, Evidence,
-};
+use super::fusion::{expected_flagged, score_items, trusted_reports, Evidence};
 use super::path::{penalty_path, repair_point};
 use super::reference::{fit_pool, reference, Reference};
 use super::{
@@ -214,10 +212,8 @@ pub fn assess(
         k,
         &ev.fusion(&refm, &point.mass, big_pool),
     );
-    let (expected_flagged_share, expected_flagged_sd) =
+    let (expected_flagged_share, expected_flagged_sd, expected_flagged_by_label) =
         expected_flagged(&refm.p_ref, &ev.repair_weights, settings.flag_threshold);
-    let expected_flagged_by_label =
-        expected_flagged_by_label(&refm.p_ref, &ev.repair_weights, settings.flag_threshold);
     let (broken_trusted, trusted_still_wrong) = trusted_reports(
         phi_t.view(),
         trusted.y,

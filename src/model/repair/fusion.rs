@@ -129,12 +129,13 @@ pub(crate) fn score_items(
 }
 
 /// The flagged share to expect from a batch labelled the way the reference model expects, and its
-/// standard deviation (see `Assessment::expected_flagged_share`), at each item's own weight.
+/// standard deviation (see `Assessment::expected_flagged_share`), at each item's own weight; and the
+/// flagged items to expect per given label ([`expected_flagged_by_label`]).
 pub(crate) fn expected_flagged(
     p_ref: &Array2<f64>,
     repair_weights: &[f64],
     threshold: f64,
-) -> (f64, f64) {
+) -> (f64, f64, Vec<f64>) {
     let n_b = p_ref.nrows();
     let q: Vec<f64> = p_ref
         .rows()
@@ -150,7 +151,8 @@ pub(crate) fn expected_flagged(
         .collect();
     let share = q.iter().sum::<f64>() / n_b as f64;
     let sd = q.iter().map(|v| v * (1.0 - v)).sum::<f64>().sqrt() / n_b as f64;
-    (share, sd)
+    let by_label = expected_flagged_by_label(p_ref, repair_weights, threshold);
+    (share, sd, by_label)
 }
 
 /// The flagged items to expect per given label from a batch labelled the way the reference model expects
@@ -161,7 +163,7 @@ pub(crate) fn expected_flagged(
 ///   `E_c = Σ_j p_ref,jc · 1[(1 − w_j)(1 − p_ref,jc) ≥ τ]`.
 ///
 /// Summed over the classes this is `n · m₀`, the expected flagged count of [`expected_flagged`].
-pub(crate) fn expected_flagged_by_label(
+fn expected_flagged_by_label(
     p_ref: &Array2<f64>,
     repair_weights: &[f64],
     threshold: f64,
@@ -228,7 +230,8 @@ mod tests {
         for (got, want) in by.iter().zip(want) {
             assert!((got - want).abs() < 1e-12, "{by:?}");
         }
-        let (share, _) = expected_flagged(&p, &w, t);
+        let (share, _, total_by_label) = expected_flagged(&p, &w, t);
+        assert_eq!(total_by_label, by);
         assert!((by.iter().sum::<f64>() - 3.0 * share).abs() < 1e-12);
     }
 }
