@@ -212,8 +212,10 @@ fn a_transition_with_history_updates_both_or_neither() {
         |_| {},
     )
     .unwrap();
-    let mut before = VendorHistory::default();
-    before.accepted_total = 4;
+    let before = VendorHistory {
+        accepted_total: 4,
+        ..VendorHistory::default()
+    };
     s.set_vendor_history("v1", &before, AuditRecord::new("test", "seed"))
         .unwrap();
     let bump = |h: &mut VendorHistory| h.accepted_total += 1;
