@@ -1,9 +1,9 @@
 //! The attack casebook behind `labelweir bench casebook`: scripted vendor streams replayed through the
 //! verdict path the daemon runs after parsing — the engine ([`crate::model::assess`] against the pool
-//! summary), the shift check ([`verdict::shift_check`]), the policy ([`verdict::decide`]) and the
-//! verdict with its item admission ([`verdict::scored`]) — with the pool summary absorbing what each
-//! accepted batch lets into the pool, as the scoring worker does. In-process and seeded: the same
-//! functions, no files.
+//! summary), the shift check (`pipeline::verdict::shift_check`), the policy (`pipeline::verdict::decide`)
+//! and the verdict with its item admission (`pipeline::verdict::scored`) — with the pool summary absorbing
+//! what each accepted batch lets into the pool, as the scoring worker does. In-process and seeded: the
+//! same functions, no files.
 //!
 //! Per case it counts the poison delivered and the poison that reached the pool (poisoned items that
 //! entered with a wrong label: flagged items of accepted batches wait for review under the default
