@@ -89,6 +89,7 @@ struct Flow {
     batches: IntCounterVec,
     batch_items: IntCounterVec,
     admission_items: IntCounterVec,
+    unlike_pool: IntCounterVec,
     batch_bytes: IntCounterVec,
     repair_cost: HistogramVec,
     repair_cost_last: GaugeVec,
@@ -214,6 +215,18 @@ impl Flow {
                          suspicion for review, not proof.",
                     ),
                     &["vendor", "fate"],
+                )?,
+            )?,
+            unlike_pool: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "batches_unlike_pool_total",
+                        "Batches held because their items are unlike the pool and the trusted set \
+                         (items_unlike_pool), by vendor: a data-source finding for operations, not a \
+                         finding about the vendor's labels.",
+                    ),
+                    &["vendor"],
                 )?,
             )?,
             batch_bytes: reg(
@@ -512,6 +525,7 @@ impl Metrics {
             for f in ADMISSION_FATES {
                 m.flow.admission_items.with_label_values(&[v, f]);
             }
+            m.flow.unlike_pool.with_label_values(&[v]);
             for f in ["json", "markdown"] {
                 m.state.notices_written.with_label_values(&[v, f]);
             }
@@ -570,6 +584,13 @@ impl Metrics {
                 .admission_items
                 .with_label_values(&[vendor, fate])
                 .inc();
+        }
+    }
+
+    /// A batch was held because its items are unlike the pool (`items_unlike_pool`).
+    pub fn unlike_pool(&self, vendor: &str) {
+        if self.known(vendor) {
+            self.flow.unlike_pool.with_label_values(&[vendor]).inc();
         }
     }
 

@@ -645,6 +645,18 @@ fn generic_policy_detail(code: &str) -> Option<&'static str> {
         ReasonCode::FlaggedShareDrift => {
             "This vendor's recent batches have drifted upward in the share of items flagged for review."
         }
+        ReasonCode::FlaggedItemsExcess => {
+            "More items were flagged for review than the checks expect for a batch of this size."
+        }
+        ReasonCode::FlaggedItemsDrift => {
+            "Across this vendor's recent items, the share flagged for review has drifted upward."
+        }
+        ReasonCode::FlaggedItemsInClass => {
+            "Among the items given one label, more were flagged for review than the checks expect if those labels were right."
+        }
+        ReasonCode::ItemsUnlikePool => {
+            "The items are unlike the data the checks were built on, so their labels could not be judged. This is not a finding about your labels; our operations team will look at the data source."
+        }
     })
 }
 

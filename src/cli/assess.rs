@@ -297,7 +297,12 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
         &batch_y,
     )
     .map_err(engine_error)?;
-    let decision = decide(&cfg.policy, &assessment, settings.flag_threshold);
+    let decision = decide(
+        &cfg.policy,
+        &assessment,
+        settings.flag_threshold,
+        classes.names(),
+    );
     let stories = model::suspect_stories(
         standardizer
             .transform(trusted.features.view())
@@ -330,11 +335,16 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
 
 /// The policy's verdict for a batch from a vendor with no history (cold-start limits and the absolute
 /// ceilings apply), on every signal the daemon judges: repair cost, damage and flagged share.
-fn decide(settings: &PolicySettings, a: &Assessment, flag_threshold: f64) -> Decision {
+fn decide(
+    settings: &PolicySettings,
+    a: &Assessment,
+    flag_threshold: f64,
+    classes: &[String],
+) -> Decision {
     policy::decide_batch(
         settings,
         &VendorHistory::default(),
-        &policy::BatchSignals::from_assessment(a, flag_threshold),
+        &policy::BatchSignals::from_assessment(a, flag_threshold).named(classes),
     )
 }
 

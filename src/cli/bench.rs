@@ -34,6 +34,25 @@ enum What {
     /// Daemon throughput: sustained items per second through the whole path (claim, parse, score, decide,
     /// persist, notice) with the latency per stage. Measured, never asserted; build with `--release`.
     Daemon(DaemonArgs),
+    /// Attack casebook: scripted vendor streams (clean, drips, targeted, region, boiling frog, split and
+    /// interleaved files, a repair-aware attacker, covariate shift) replayed through the verdict path
+    /// (engine, shift check, policy, item admission); per case the first batch held, the poison that
+    /// reached the pool, the clean batches held and what the vendor was told.
+    Casebook(CasebookArgs),
+}
+
+/// Options of `bench casebook`.
+#[derive(Debug, clap::Args)]
+struct CasebookArgs {
+    /// CI-size streams (a 12-batch clean stream, 3–22 batches per attack).
+    #[arg(long)]
+    quick: bool,
+    /// Print one JSON document instead of the table.
+    #[arg(long)]
+    json: bool,
+    /// Master seed.
+    #[arg(long, default_value_t = 2018)]
+    seed: u64,
 }
 
 /// Sizes for `bench daemon` (defaults: 30 batches of 1,000 items against a pool of 100,000).
@@ -78,6 +97,7 @@ struct EngineArgs {
 pub fn run(args: Args) -> anyhow::Result<u8> {
     match args.what {
         What::Engine(a) => engine(a),
+        What::Casebook(c) => casebook(c),
         What::Daemon(d) => {
             let mut o = labelweir::eval::throughput::Options::default();
             if let Some(b) = d.batches {
@@ -157,6 +177,29 @@ fn engine(a: EngineArgs) -> anyhow::Result<u8> {
         writeln!(out)?;
     } else {
         write!(out, "{}", benchmark::render_text(&report))?;
+    }
+    Ok(exit::OK)
+}
+
+fn casebook(a: CasebookArgs) -> anyhow::Result<u8> {
+    use labelweir::eval::casebook::{self, CasebookOptions};
+    let opts = CasebookOptions {
+        quick: a.quick,
+        seed: a.seed,
+    };
+    let json = a.json;
+    let report = casebook::run(&opts, |line| {
+        if !json {
+            eprintln!("  {line}");
+        }
+    })
+    .map_err(|e| Failure::new(exit::INTERNAL, format!("casebook failed: {e}")))?;
+    let mut out = std::io::stdout().lock();
+    if json {
+        serde_json::to_writer_pretty(&mut out, &report).context("writing JSON")?;
+        writeln!(out)?;
+    } else {
+        write!(out, "{}", casebook::render_text(&report))?;
     }
     Ok(exit::OK)
 }

@@ -13,5 +13,6 @@
 
 pub mod baselines;
 pub mod benchmark;
+pub mod casebook;
 pub mod metrics;
 pub mod throughput;

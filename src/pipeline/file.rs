@@ -173,7 +173,16 @@ pub fn notice_for(record: &BatchRecord) -> Option<Notice> {
             // Counts, never item ids: naming the flagged items of a batch would tell a poisoner which of
             // its items were seen, so it could resend the others (threat model in the README). The notice
             // has the same shape whether or not items were held back; only a reviewer names items.
-            let flagged = record.scores.as_ref().map_or(0, |s| s.flagged_items) as u64;
+            // Flagged items the label rules judged: items beyond the trusted set's reach are not
+            // counted (a shift is not a finding about the labels).
+            let flagged = record
+                .decision
+                .as_ref()
+                .and_then(|d| d.signals.as_ref())
+                .filter(|s| s.unlike_tail > 0.0)
+                .map_or(record.scores.as_ref().map_or(0, |s| s.flagged_items), |s| {
+                    s.judged_flagged()
+                }) as u64;
             match &record.decision {
                 Some(d) => {
                     let mut n = Notice::for_decision(

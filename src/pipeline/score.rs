@@ -426,8 +426,30 @@ impl Worker {
         }
         let t_decide = Instant::now();
         let history = self.store.vendor_history(&record.vendor)?;
-        let decision = verdict::decide(&self.config, &history, &scored);
+        let shift = scored.as_ref().ok().and_then(|_| {
+            verdict::shift_check(
+                &self.config,
+                &self.meta.feature_map.standardizer,
+                self.trusted.x.view(),
+                self.pool.summary.reservoir_phi.view(),
+                table.features.view(),
+            )
+        });
+        let decision = verdict::decide(
+            &self.config,
+            &history,
+            &scored,
+            shift.as_ref(),
+            &self.meta.classes,
+        );
         self.metrics.stage("decide", t_decide.elapsed());
+        if decision
+            .reasons
+            .iter()
+            .any(|r| r.code == crate::policy::ReasonCode::ItemsUnlikePool)
+        {
+            self.metrics.unlike_pool(&record.vendor);
+        }
         if let Ok(a) = &scored {
             self.metrics.batch_scored(
                 &record.vendor,

@@ -8,7 +8,9 @@ use crate::config::Config;
 use crate::data::Table;
 use crate::model::Assessment;
 use crate::policy::VendorHistory;
-use crate::policy::{self, BatchSignals, Decision, Reason, ReasonCode, Verdict as PolicyVerdict};
+use crate::policy::{
+    self, BatchSignals, Decision, Reason, ReasonCode, ShiftReport, Verdict as PolicyVerdict,
+};
 use crate::store::{
     AuditRecord, BatchRecord, BatchScores, HeldItem, HeldState, Outcome, PoolEntry, RejectReason,
     Suspect,
@@ -85,13 +87,25 @@ fn unscored(record: BatchRecord, audit: AuditRecord) -> Verdict {
 
 /// The policy's decision on a scored batch against the vendor's history; a batch the engine could not
 /// score is quarantined with reason `score_invalid` (held for a person, never silently accepted).
-pub fn decide(config: &Config, history: &VendorHistory, scored: &Scored) -> Decision {
+///
+/// `shift` is the shift check's finding for the batch ([`shift_check`]); without it every item is judged.
+/// `classes` are the workspace's class names by index (reasons name a class by its name).
+pub fn decide(
+    config: &Config,
+    history: &VendorHistory,
+    scored: &Scored,
+    shift: Option<&ShiftReport>,
+    classes: &[String],
+) -> Decision {
     match scored {
-        Ok(a) => policy::decide_batch(
-            &config.policy,
-            history,
-            &BatchSignals::from_assessment(a, config.model.flag_threshold),
-        ),
+        Ok(a) => {
+            let t = config.model.flag_threshold;
+            let mut signals = BatchSignals::from_assessment(a, t).named(classes);
+            if let Some(r) = shift {
+                signals = signals.with_shift(a, t, r);
+            }
+            policy::decide_batch(&config.policy, history, &signals)
+        }
         Err(msg) => {
             let mut d = policy::decide(&config.policy, history, f64::NAN, f64::NAN);
             d.verdict = PolicyVerdict::Quarantine;
@@ -102,6 +116,24 @@ pub fn decide(config: &Config, history: &VendorHistory, scored: &Scored) -> Deci
             d
         }
     }
+}
+
+/// The shift check ([`policy::shift`]) of a batch: its items' distances from the reference sample made of
+/// the trusted items and the pool reservoir, all in the workspace's standardised features. `None` when
+/// the check cannot run (a non-finite value, a reference sample too small), in which case every item
+/// is judged.
+pub fn shift_check(
+    config: &Config,
+    standardizer: &crate::model::Standardizer,
+    trusted_x: ndarray::ArrayView2<'_, f64>,
+    reservoir_phi: ndarray::ArrayView2<'_, f64>,
+    batch_x: ndarray::ArrayView2<'_, f64>,
+) -> Option<ShiftReport> {
+    let tz = standardizer.transform(trusted_x).ok()?;
+    let bz = standardizer.transform(batch_x).ok()?;
+    let reference = policy::shift::reference_sample(tz.view(), reservoir_phi);
+    let reach = policy::Reach::fit(&config.policy, reference.view())?;
+    Some(reach.check(bz.view()))
 }
 
 /// What a scored batch brings to its verdict besides the record.
@@ -160,11 +192,20 @@ pub fn scored(
         None
     };
     if accept {
-        if let Ok(a) = &batch.scored {
-            history.record_accepted(
-                &config.policy,
-                &BatchSignals::from_assessment(a, config.model.flag_threshold),
-            );
+        // The signals the decision read (with the shift check's findings), else the assessment's.
+        let signals = record
+            .decision
+            .as_ref()
+            .and_then(|d| d.signals.clone())
+            .or_else(|| {
+                batch
+                    .scored
+                    .as_ref()
+                    .ok()
+                    .map(|a| BatchSignals::from_assessment(a, config.model.flag_threshold))
+            });
+        if let Some(s) = signals {
+            history.record_accepted(&config.policy, &s);
         }
     }
     Verdict {
@@ -325,7 +366,7 @@ mod tests {
         let config = Config::default();
         let history = VendorHistory::default();
         let scored: Scored = Err("the engine failed".into());
-        let d = decide(&config, &history, &scored);
+        let d = decide(&config, &history, &scored, None, &[]);
         assert_eq!(d.verdict, PolicyVerdict::Quarantine);
         assert_eq!(d.reasons[0].code, ReasonCode::ScoreInvalid);
         let table = Table {

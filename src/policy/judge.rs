@@ -3,7 +3,8 @@
 //! accepting reason when no rule fired. Every rule that fires is reported.
 
 use super::{
-    Baseline, BatchSignals, Decision, PolicySettings, Reason, ReasonCode, VendorHistory, Verdict,
+    Baseline, BatchSignals, Decision, ItemJudgement, PolicySettings, Reason, ReasonCode,
+    VendorHistory, Verdict,
 };
 
 fn push(reasons: &mut Vec<Reason>, code: ReasonCode, detail: String) {
@@ -24,6 +25,14 @@ pub(super) fn judge(
             Baseline::flagged_share(settings, history, s.flagged_share, s.items),
         )
     });
+    let items = signals
+        .filter(|s| settings.judge_items && s.flagged_share.is_finite())
+        .map(|s| history.evidence.judge(settings, s));
+    let labels = signals
+        .filter(|s| settings.judge_labels && s.flagged_share.is_finite())
+        .map_or_else(Vec::new, |s| {
+            super::classes::check_labels(settings, s, items.as_ref())
+        });
     let mut reasons = Vec::new();
     let share_invalid = flagged
         .as_ref()
@@ -38,27 +47,43 @@ pub(super) fn judge(
         };
         push(&mut reasons, ReasonCode::ScoreInvalid, detail);
     } else {
-        let flagged_signals = flagged.as_ref().map(|(s, _)| *s);
-        ceilings(settings, repair_cost, damage, flagged_signals, &mut reasons);
-        repair_cost_rules(
-            settings,
-            &baseline,
-            repair_cost,
-            damage,
-            signals,
-            &mut reasons,
-        );
-        if let Some((s, fb)) = &flagged {
-            flagged_share_rules(settings, s, fb, &mut reasons);
+        // A batch whose items are unlike the pool: the batch-level scores mix in items the trusted set
+        // does not reach, so only the items within reach are judged (item rules), beside the shift
+        // finding itself.
+        let unlike = items.is_some() && signals.is_some_and(|s| s.unlike_pool(settings).0);
+        if !unlike {
+            let flagged_signals = flagged.as_ref().map(|(s, _)| *s);
+            ceilings(settings, repair_cost, damage, flagged_signals, &mut reasons);
+            repair_cost_rules(
+                settings,
+                &baseline,
+                repair_cost,
+                damage,
+                signals,
+                &mut reasons,
+            );
         }
+        match (&flagged, &items) {
+            (Some((s, _)), Some(j)) => {
+                item_rules(j, &mut reasons);
+                shift_rule(settings, s, &mut reasons);
+            }
+            (Some((s, fb)), None) => flagged_share_rules(settings, s, fb, &mut reasons),
+            _ => {}
+        }
+        label_rule(&labels, &mut reasons);
     }
     let verdict = if reasons.is_empty() {
-        reasons.push(accepting_reason(
+        let mut r = accepting_reason(
             &baseline,
             flagged.as_ref().map(|(s, fb)| (*s, fb)),
             repair_cost,
             damage,
-        ));
+        );
+        if let Some(j) = &items {
+            r.detail = format!("{}; {}", r.detail, j.describe());
+        }
+        reasons.push(r);
         Verdict::Accept
     } else {
         Verdict::Quarantine
@@ -68,7 +93,76 @@ pub(super) fn judge(
         reasons,
         baseline,
         flagged_share_baseline: flagged.map(|(_, fb)| fb),
-        signals: signals.copied(),
+        signals: signals.cloned(),
+        items,
+        labels,
+    }
+}
+
+/// A systematic error on one class: every label whose flagged items exceed the noise allowed if the
+/// labels were right (see `policy::classes`), named.
+fn label_rule(labels: &[super::LabelCheck], reasons: &mut Vec<Reason>) {
+    let fired: Vec<String> = labels
+        .iter()
+        .filter(|c| c.fires())
+        .map(|c| c.describe())
+        .collect();
+    if !fired.is_empty() {
+        push(
+            reasons,
+            ReasonCode::FlaggedItemsInClass,
+            format!(
+                "more flagged items in one class than if its labels were right — {}",
+                fired.join("; ")
+            ),
+        );
+    }
+}
+
+/// The flagged items as part of the vendor's item stream: this batch's binomial excess and the item
+/// CUSUM (see `policy::evidence`).
+fn item_rules(j: &ItemJudgement, reasons: &mut Vec<Reason>) {
+    if j.excess() {
+        push(
+            reasons,
+            ReasonCode::FlaggedItemsExcess,
+            format!(
+                "more flagged items than the noise of {} items allows: {}",
+                j.items,
+                j.describe()
+            ),
+        );
+    }
+    if j.drift() {
+        push(
+            reasons,
+            ReasonCode::FlaggedItemsDrift,
+            format!(
+                "the vendor's flagged items drift above its level: {}",
+                j.describe()
+            ),
+        );
+    }
+}
+
+/// Items unlike the pool: a finding for operations about the items, not about their labels.
+fn shift_rule(settings: &PolicySettings, s: &BatchSignals, reasons: &mut Vec<Reason>) {
+    let (unlike, p) = s.unlike_pool(settings);
+    if unlike {
+        push(
+            reasons,
+            ReasonCode::ItemsUnlikePool,
+            format!(
+                "items unlike the pool — the trusted set does not cover them: {} of {} items lie beyond the reach of the pool and the trusted set \
+                 (a batch like the pool has {:.2} % there; binomial tail {p:.2e} < {:.0e}, share ≥ {:.2}); their labels were not judged. \
+                 This says nothing about the labels: the sensor, the site or the material mix may have changed",
+                s.unlike_items,
+                s.items,
+                100.0 * s.unlike_tail,
+                settings.unlike_alpha,
+                settings.unlike_min_share
+            ),
+        );
     }
 }
 
@@ -101,15 +195,30 @@ fn ceilings(
         );
     }
     if let Some(s) = flagged {
-        if s.flagged_share > settings.max_flagged_share {
+        // With item judging the ceiling applies to the share above the computed clean level: on data
+        // the learner separates poorly, clean batches flag many items.
+        let clean = if settings.judge_items {
+            s.clean_level(settings)
+        } else {
+            0.0
+        };
+        if s.flagged_share - clean > settings.max_flagged_share {
             push(
                 reasons,
                 ReasonCode::FlaggedShareCeiling,
                 format!(
-                    "{} items flagged for review (share {:.4}) exceeds the ceiling {:.4}",
+                    "{} items flagged for review (share {:.4}) exceeds the ceiling {:.4}{}",
                     flagged_count(s),
                     s.flagged_share,
-                    settings.max_flagged_share
+                    settings.max_flagged_share + clean,
+                    if clean > 0.0 {
+                        format!(
+                            " (the computed clean level {clean:.4} plus {:.4})",
+                            settings.max_flagged_share
+                        )
+                    } else {
+                        String::new()
+                    }
                 ),
             );
         }

@@ -58,19 +58,33 @@
 //! baseline only once its CUSUM returns to 0: a slow drip of slightly-high batches cannot drag the median up
 //! under the CUSUM that is meant to catch it (our own design; Montgomery's CUSUM assumes a fixed target). A
 //! reviewer who accepts the new level resets the CUSUMs ([`VendorHistory::reset_cusum`]), which merges the
-//! held values. Only [`VendorHistory::record_accepted`] changes the history, and the daemon calls it for
-//! batches the policy accepted. A batch released by a reviewer does not enter the baseline either (a
-//! reviewer's release is a judgement about one batch, not a new normal).
+//! held values. The daemon calls [`VendorHistory::record_accepted`] for batches the policy accepted, and
+//! [`VendorHistory::record_released`] for a batch a reviewer released (in the same store transaction as the
+//! release, without the items the reviewer left out or corrected): a person looked at it, so it joins the
+//! vendor's record, and a vendor whose honest batches the computed limits hold earns a record of its own
+//! instead of staying in cold start for ever.
+//!
+//! 6. **Per label** ([`classes`], `flagged_items_in_class`): each given label's flagged items against the
+//!    number to expect if the labels were right; a systematic error on one class can hide in the noise of
+//!    the batch's total.
 
 use std::collections::VecDeque;
 
 use serde::{Deserialize, Serialize};
 
 mod admission;
+pub mod classes;
+pub mod evidence;
 mod judge;
+mod settings;
+pub mod shift;
 mod stats;
 
 pub use admission::{item_fate, AdmissionSettings, FlaggedItems, ItemFate};
+pub use classes::{LabelCheck, LabelFlags};
+pub use evidence::{ItemEvidence, ItemJudgement};
+pub use settings::{PolicyError, PolicySettings};
+pub use shift::{Reach, ShiftReport};
 pub use stats::{cusum_step, median, modified_z_scores};
 
 /// The consistency constant that makes the MAD estimate σ for normal data: `1 / Φ⁻¹(0.75)`.
@@ -92,7 +106,7 @@ pub const MEAN_AD_CONSISTENCY: f64 = 1.253_314;
 /// model trained on 100,000, so its repair cost and damage shrink towards the clean noise floor, while the
 /// per-item suspicions (which compare each label with a reference model that has not seen the item) keep
 /// ranking flipped items well. See [`PolicySettings::cold_start_max_flagged_share`] for the measurements.
-#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct BatchSignals {
     /// The engine's repair cost: fraction of the batch's label mass that must move, in `[0, 1]`.
     pub repair_cost: f64,
@@ -130,6 +144,24 @@ pub struct BatchSignals {
     /// Standard deviation of [`BatchSignals::expected_damage`], in nats.
     #[serde(default)]
     pub expected_damage_sd: f64,
+    /// The computed clean level: the flagged share a batch of these very items would show if every label
+    /// were right (from the engine's assessment). 0 when unknown (`clean_level_unknown` is used).
+    #[serde(default)]
+    pub clean_flagged_share: f64,
+    /// Items beyond the trusted set's reach ([`shift`]); their labels are not judged.
+    #[serde(default)]
+    pub unlike_items: usize,
+    /// Flagged items among those beyond reach (left out of the flagged count the label rules read).
+    #[serde(default)]
+    pub unlike_flagged: usize,
+    /// The share of the reference sample beyond reach (what a batch like the pool shows); 0 when the shift
+    /// check did not run.
+    #[serde(default)]
+    pub unlike_tail: f64,
+    /// The batch's items per given label, for the per-label test ([`classes`]); empty when the engine
+    /// computed no per-label expectation (records from before it did), which skips that test.
+    #[serde(default)]
+    pub labels: Vec<LabelFlags>,
 }
 
 impl BatchSignals {
@@ -145,6 +177,24 @@ impl BatchSignals {
             .filter(|i| i.suspicion >= flag_threshold)
             .count() as f64;
         let sum: f64 = a.items.iter().map(|i| i.suspicion).sum();
+        let mut labels: Vec<LabelFlags> = a
+            .expected_flagged_by_label
+            .iter()
+            .enumerate()
+            .map(|(class, &expected)| LabelFlags {
+                class,
+                name: String::new(),
+                items: 0,
+                flagged: 0,
+                expected,
+            })
+            .collect();
+        for i in &a.items {
+            if let Some(l) = labels.get_mut(i.label) {
+                l.items += 1;
+                l.flagged += u64::from(i.suspicion >= flag_threshold);
+            }
+        }
         Self {
             repair_cost: a.repair_cost,
             damage: a.damage,
@@ -156,7 +206,116 @@ impl BatchSignals {
             expected_flagged_sd: a.expected_flagged_sd,
             expected_damage: a.expected_damage,
             expected_damage_sd: a.expected_damage_sd,
+            clean_flagged_share: a.expected_flagged_share,
+            unlike_items: 0,
+            unlike_flagged: 0,
+            unlike_tail: 0.0,
+            labels,
         }
+    }
+
+    /// The same signals with the class names (by index) in the per-label tallies, so that reasons name a
+    /// class by its name.
+    pub fn named(mut self, classes: &[String]) -> Self {
+        for l in &mut self.labels {
+            if let Some(n) = classes.get(l.class) {
+                l.name = n.clone();
+            }
+        }
+        self
+    }
+
+    /// The same signals with the shift check's findings: items beyond reach are counted, and their flags
+    /// are left out of the items the label rules judge.
+    pub fn with_shift(
+        mut self,
+        a: &crate::model::Assessment,
+        flag_threshold: f64,
+        report: &ShiftReport,
+    ) -> Self {
+        self.unlike_items = report.unlike_items;
+        self.unlike_tail = report.tail;
+        self.unlike_flagged = a
+            .items
+            .iter()
+            .filter(|i| i.suspicion >= flag_threshold)
+            .filter(|i| report.beyond.get(i.index).copied().unwrap_or(false))
+            .count();
+        // Per label: items beyond reach leave the tallies, and the expectation is scaled to the judged
+        // items (the engine computed it over the whole batch).
+        let keep = if self.items > 0 {
+            self.judged_items() as f64 / self.items as f64
+        } else {
+            0.0
+        };
+        for l in &mut self.labels {
+            l.expected *= keep;
+        }
+        for i in &a.items {
+            if !report.beyond.get(i.index).copied().unwrap_or(false) {
+                continue;
+            }
+            if let Some(l) = self.labels.get_mut(i.label) {
+                l.items = l.items.saturating_sub(1);
+                if i.suspicion >= flag_threshold {
+                    l.flagged = l.flagged.saturating_sub(1);
+                }
+            }
+        }
+        self
+    }
+
+    /// The same signals without items a reviewer left out of a release or corrected (`removed` items,
+    /// `removed_flagged` of them flagged): what the vendor's record learns from a released batch is the
+    /// level of the labels the reviewer let stand.
+    pub fn without_items(mut self, removed: usize, removed_flagged: usize) -> Self {
+        let flagged = self.flagged_items().saturating_sub(removed_flagged);
+        self.items = self.items.saturating_sub(removed);
+        self.flagged_share = if self.items > 0 {
+            flagged.min(self.items) as f64 / self.items as f64
+        } else {
+            0.0
+        };
+        self
+    }
+
+    /// Flagged items of the batch: `round(flagged_share · items)` (0 for a non-finite share).
+    pub fn flagged_items(&self) -> usize {
+        if self.flagged_share.is_finite() {
+            (self.flagged_share.clamp(0.0, 1.0) * self.items as f64).round() as usize
+        } else {
+            0
+        }
+    }
+
+    /// Items whose labels are judged: those within the trusted set's reach.
+    pub fn judged_items(&self) -> usize {
+        self.items.saturating_sub(self.unlike_items)
+    }
+
+    /// Flagged items among the judged ones.
+    pub fn judged_flagged(&self) -> usize {
+        self.flagged_items()
+            .saturating_sub(self.unlike_flagged)
+            .min(self.judged_items())
+    }
+
+    /// The clean level `c` the item rules start from: the computed one, or `clean_level_unknown`.
+    pub fn clean_level(&self, settings: &PolicySettings) -> f64 {
+        if self.clean_flagged_share > 0.0 && self.clean_flagged_share.is_finite() {
+            self.clean_flagged_share.min(1.0)
+        } else {
+            settings.clean_level_unknown
+        }
+    }
+
+    /// Whether the shift check found the batch's items unlike the pool (see [`shift::unlike_pool`]), and
+    /// the binomial tail behind it.
+    pub fn unlike_pool(&self, settings: &PolicySettings) -> (bool, f64) {
+        if self.unlike_tail <= 0.0 {
+            return (false, 1.0);
+        }
+        shift::unlike_pool(settings, self.items, self.unlike_items, self.unlike_tail)
     }
 
     /// Whether the engine's learner separates this batch's classes poorly: labels that follow its reference
@@ -180,237 +339,12 @@ impl BatchSignals {
             expected_flagged_sd: 0.0,
             expected_damage: 0.0,
             expected_damage_sd: 0.0,
+            clean_flagged_share: 0.0,
+            unlike_items: 0,
+            unlike_flagged: 0,
+            unlike_tail: 0.0,
+            labels: Vec::new(),
         }
-    }
-}
-
-/// The `[policy]` section of the configuration: when a batch is quarantined.
-///
-/// Costs are fractions of the batch's label mass in `[0, 1]` (the engine's repair cost); damage is in nats
-/// (the increase of the trusted set's mean cross-entropy caused by adding the batch as delivered).
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-#[serde(default, deny_unknown_fields)]
-pub struct PolicySettings {
-    /// Accepted batches a vendor needs before its own baseline is used; until then only the cold-start
-    /// limits apply. Count; default 8.
-    pub min_history: usize,
-    /// Most recent accepted batches kept per vendor for the baseline (a rolling window). Count; default 200.
-    pub history_window: usize,
-    /// Cold start: quarantine when the repair cost exceeds this. Fraction of label mass; default 0.05.
-    pub cold_start_max_repair_cost: f64,
-    /// Cold start: quarantine when the damage exceeds this. Nats; default 0.05.
-    pub cold_start_max_damage_nats: f64,
-    /// Always: quarantine when the repair cost exceeds this, whatever the history. Fraction; default 0.2.
-    pub max_repair_cost: f64,
-    /// Always: quarantine when the damage exceeds this, whatever the history. Nats; default 0.25.
-    pub max_damage_nats: f64,
-    /// Quarantine when the modified z-score of the repair cost exceeds this. Default 3.5 (Iglewicz &
-    /// Hoaglin 1993).
-    pub modified_z_limit: f64,
-    /// Floor on the robust scale of a vendor's repair costs, so a vendor whose costs are all 0 is not
-    /// quarantined for rounding noise. Fraction of label mass; default 0.01.
-    pub min_scale: f64,
-    /// CUSUM reference value `k`, in σ units. Default 0.5 (Montgomery & Runger).
-    pub cusum_k: f64,
-    /// CUSUM decision interval `h`, in σ units. Default 5 (Montgomery & Runger; one-sided in-control
-    /// ARL ≈ 930 batches, ≈ 10.4 after a 1σ shift: Montgomery's ARL table for k = ½, h = 5; checked by
-    /// `tests/it/policy.rs::default_cusum_design_has_the_published_run_lengths`).
-    pub cusum_h: f64,
-    /// Start the CUSUM at `h/2` instead of 0 when a vendor leaves cold start (fast initial response,
-    /// Lucas & Crosier, Technometrics 1982). Default false.
-    pub cusum_head_start: bool,
-    /// Cold start: quarantine when the batch's flagged share (fraction of items with suspicion ≥
-    /// `[model] flag_threshold`) exceeds this, once the pool holds at least `small_pool_items` items.
-    /// Fraction of the batch's items; default 0.10.
-    ///
-    /// Measured with `cargo run --release --example policy_calibration` (recycling plant, default model
-    /// settings, trusted set of 10 items per class that also fixes the standardisation, as `labelweir
-    /// init` does; min–max over 20 clean batches and 6 batches per attack; the 20k and 100k pools are a
-    /// summary fitted on 10k items standing for the larger pool):
-    ///
-    /// | pool / batch | clean | 10 % uniform flips | 10 % region flips |
-    /// |---|---|---|---|
-    /// | 0 / 300 (cross-fitted reference) | 0.103–0.153 | 0.267–0.337 | 0.167–0.230 |
-    /// | 300 / 300 | 0.073–0.127 | 0.160–0.187 | 0.150–0.200 |
-    /// | 900 / 300 | 0.053–0.117 | 0.120–0.173 | 0.130–0.180 |
-    /// | 1,500 / 300 | 0.040–0.087 | 0.133–0.150 | 0.127–0.157 |
-    /// | 3,000 / 300 | 0.040–0.083 | 0.130–0.157 | 0.120–0.153 |
-    /// | 2k / 1,000 | 0.042–0.070 | 0.142–0.152 | 0.142–0.152 |
-    /// | 20k / 1,000 | 0.041–0.062 | 0.136–0.147 | 0.136–0.148 |
-    /// | 100k / 1,000 | 0.041–0.062 | 0.136–0.147 | 0.136–0.148 |
-    /// | 100k / 300 | 0.033–0.077 | 0.120–0.147 | 0.123–0.147 |
-    ///
-    /// At 20k and 100k the flipped 1,000-item batches have repair cost 0–0.016 and damage ≤ 0.013 nats,
-    /// inside the clean range of the smaller pools: the repair-cost and damage limits alone quarantined
-    /// none of those 24 batches, the flagged share all of them, in cold start and against a history of 10
-    /// clean batches. The clean share falls as the pool grows (the reference model improves), hence the
-    /// higher limit for small pools. Mean suspicion was measured too: within one pool and batch size it
-    /// separates a little better (mean shift 5.6–15.5 clean standard deviations against 4.2–14.6) and its
-    /// level falls with the pool just as the flagged share's does (clean median 0.123 at a pool of 300,
-    /// 0.093 at 100k). The policy judges the flagged share because the noise of a share is known for every
-    /// batch size (the binomial standard error, so a vendor's small and large batches stay comparable) and
-    /// because a limit on it reads directly as "this share of the items looks mislabeled" to a reviewer.
-    /// Margins are thin for 300-item batches (30 flipped items): the binomial noise of a share is then
-    /// 0.012–0.019.
-    pub cold_start_max_flagged_share: f64,
-    /// Cold start while the pool holds fewer than `small_pool_items` items: quarantine when the flagged
-    /// share exceeds this. Fraction; default 0.17 (see the table above: clean batches reached 0.153 with
-    /// an empty pool, and 0.157 in the demo's workspace with a pool of 300; one of six region-flipped
-    /// batches with an empty pool, at 0.167, stays under the limit). Small pools are where the
-    /// repair cost and damage still see flipped batches (10 % flips raised the damage to 0.002–0.17 nats at
-    /// 300–900 pool items).
-    pub cold_start_max_flagged_share_small_pool: f64,
-    /// Pool size from which `cold_start_max_flagged_share` applies instead of the small-pool limit. Items;
-    /// default 1,500 (the smallest measured pool whose clean batches stayed below 0.09; at 900 they reached
-    /// 0.117).
-    pub small_pool_items: u64,
-    /// Always: quarantine when the flagged share exceeds this, whatever the history. Fraction; default 0.35
-    /// (more than twice the largest clean share measured, 0.157, in the demo's workspace at a pool of 300).
-    pub max_flagged_share: f64,
-    /// Floor on the robust scale of a vendor's flagged shares (the binomial standard error of this batch's
-    /// share is a second floor). Fraction of items; default 0.01 (the clean spread measured at one pool
-    /// size and batch size of 1,000 items: MAD ≈ 0.007, so σ̂ ≈ 0.01).
-    pub flagged_share_min_scale: f64,
-    /// Cold start on data the learner separates poorly: when a batch labelled the way the engine's
-    /// reference model expects would already flag more than `cold_start_weak_model_share` of its items
-    /// (`Assessment::expected_flagged_share` = m₀), the flagged-share limits above fire only when the share
-    /// also exceeds `m₀ + z·sd` with this `z`. Standard deviations; default 3.
-    pub cold_start_flagged_excess_z: f64,
-    /// See `cold_start_flagged_excess_z`. Fraction; default 0.2: twice the highest m₀ measured on the
-    /// recycling plant's fixtures (0.108, a batch rich in wet cardboard that looks like paper), far below the
-    /// 0.28–0.32 of clean winequality batches (pool model accuracy 0.62), whose clean batches the fixed
-    /// limit would otherwise send to review. The guard is not used below it, so that a systematic bug in a
-    /// region the model already finds ambiguous is not explained away by that ambiguity.
-    pub cold_start_weak_model_share: f64,
-    /// Cold start on data the learner separates poorly (as for `cold_start_flagged_excess_z`): the damage
-    /// limit fires only when the damage also exceeds `E + z·sd`, where `E` and `sd` are the damage to expect
-    /// from labels drawn from the reference model (`Assessment::expected_damage`). Standard deviations;
-    /// default 3. On clean winequality batches (pool model accuracy 0.62) the damage of one 500-item batch
-    /// in three exceeded the fixed 0.05-nat limit although labels drawn from the reference model would
-    /// move the trusted loss as much.
-    pub cold_start_damage_excess_z: f64,
-}
-
-impl Default for PolicySettings {
-    fn default() -> Self {
-        Self {
-            min_history: 8,
-            history_window: 200,
-            cold_start_max_repair_cost: 0.05,
-            cold_start_max_damage_nats: 0.05,
-            max_repair_cost: 0.2,
-            max_damage_nats: 0.25,
-            modified_z_limit: 3.5,
-            min_scale: 0.01,
-            cusum_k: 0.5,
-            cusum_h: 5.0,
-            cusum_head_start: false,
-            cold_start_max_flagged_share: 0.10,
-            cold_start_max_flagged_share_small_pool: 0.17,
-            small_pool_items: 1_500,
-            max_flagged_share: 0.35,
-            flagged_share_min_scale: 0.01,
-            cold_start_flagged_excess_z: 3.0,
-            cold_start_weak_model_share: 0.2,
-            cold_start_damage_excess_z: 3.0,
-        }
-    }
-}
-
-/// A `[policy]` setting out of range.
-#[derive(Debug, Clone, PartialEq, thiserror::Error)]
-#[non_exhaustive]
-pub enum PolicyError {
-    /// A key's value is outside its allowed range.
-    #[error("policy.{key} = {value}: {expected}")]
-    OutOfRange {
-        /// The configuration key.
-        key: &'static str,
-        /// The value given, as text.
-        value: String,
-        /// What is allowed.
-        expected: &'static str,
-    },
-}
-
-impl PolicySettings {
-    /// Semantic validation (serde only checks types and names).
-    pub fn validate(&self) -> Result<(), PolicyError> {
-        fn bad(key: &'static str, value: impl ToString, expected: &'static str) -> PolicyError {
-            PolicyError::OutOfRange {
-                key,
-                value: value.to_string(),
-                expected,
-            }
-        }
-        let unit = |key, v: f64| {
-            if v.is_finite() && (0.0..=1.0).contains(&v) {
-                Ok(())
-            } else {
-                Err(bad(key, v, "a fraction in [0, 1]"))
-            }
-        };
-        let nonneg = |key, v: f64| {
-            if v.is_finite() && v >= 0.0 {
-                Ok(())
-            } else {
-                Err(bad(key, v, "a finite number ≥ 0"))
-            }
-        };
-        let pos = |key, v: f64| {
-            if v.is_finite() && v > 0.0 {
-                Ok(())
-            } else {
-                Err(bad(key, v, "a finite number > 0"))
-            }
-        };
-        if self.min_history < 3 {
-            return Err(bad("min_history", self.min_history, "at least 3 batches"));
-        }
-        if self.history_window < self.min_history {
-            return Err(bad(
-                "history_window",
-                self.history_window,
-                "at least min_history batches",
-            ));
-        }
-        unit(
-            "cold_start_max_repair_cost",
-            self.cold_start_max_repair_cost,
-        )?;
-        unit("max_repair_cost", self.max_repair_cost)?;
-        nonneg(
-            "cold_start_max_damage_nats",
-            self.cold_start_max_damage_nats,
-        )?;
-        nonneg("max_damage_nats", self.max_damage_nats)?;
-        pos("modified_z_limit", self.modified_z_limit)?;
-        pos("min_scale", self.min_scale)?;
-        nonneg("cusum_k", self.cusum_k)?;
-        pos("cusum_h", self.cusum_h)?;
-        unit(
-            "cold_start_max_flagged_share",
-            self.cold_start_max_flagged_share,
-        )?;
-        unit(
-            "cold_start_max_flagged_share_small_pool",
-            self.cold_start_max_flagged_share_small_pool,
-        )?;
-        unit("max_flagged_share", self.max_flagged_share)?;
-        pos("flagged_share_min_scale", self.flagged_share_min_scale)?;
-        nonneg(
-            "cold_start_flagged_excess_z",
-            self.cold_start_flagged_excess_z,
-        )?;
-        unit(
-            "cold_start_weak_model_share",
-            self.cold_start_weak_model_share,
-        )?;
-        nonneg(
-            "cold_start_damage_excess_z",
-            self.cold_start_damage_excess_z,
-        )?;
-        Ok(())
     }
 }
 
@@ -435,6 +369,9 @@ pub struct VendorHistory {
     /// records written before the flagged share was judged; it then starts in cold start).
     #[serde(default)]
     pub flagged_share: SignalHistory,
+    /// The flagged items as one stream ([`evidence`]): empty in records written before it existed.
+    #[serde(default)]
+    pub evidence: ItemEvidence,
 }
 
 /// The accepted values of one signal other than the repair cost, with its CUSUM state (see
@@ -461,6 +398,7 @@ impl Default for VendorHistory {
             cusum: 0.0,
             accepted_total: 0,
             flagged_share: SignalHistory::default(),
+            evidence: ItemEvidence::default(),
         }
     }
 }
@@ -540,6 +478,7 @@ impl VendorHistory {
             signals.repair_cost.clamp(0.0, 1.0),
         );
         if signals.flagged_share.is_finite() {
+            self.evidence.record_accepted(settings, signals);
             let f = &mut self.flagged_share;
             record_value(
                 settings,
@@ -551,6 +490,31 @@ impl VendorHistory {
                 &mut f.cusum,
                 signals.flagged_share.clamp(0.0, 1.0),
             );
+        }
+    }
+
+    /// Record a batch a reviewer released: a person judged it, so its values join the baselines directly
+    /// (no CUSUM step, no holding aside) and its items join the item evidence as released (they may lift
+    /// the vendor's level, see [`evidence`]). This is what keeps a vendor whose honest batches the
+    /// computed limits hold from staying in cold start for ever.
+    pub fn record_released(&mut self, settings: &PolicySettings, signals: &BatchSignals) {
+        if !signals.repair_cost.is_finite() {
+            return;
+        }
+        let window = settings.history_window.max(1);
+        self.accepted_total += 1;
+        self.accepted_costs
+            .push_back(signals.repair_cost.clamp(0.0, 1.0));
+        while self.accepted_costs.len() > window {
+            self.accepted_costs.pop_front();
+        }
+        if signals.flagged_share.is_finite() {
+            self.evidence.record_released(settings, signals);
+            let f = &mut self.flagged_share;
+            f.accepted.push_back(signals.flagged_share.clamp(0.0, 1.0));
+            while f.accepted.len() > window {
+                f.accepted.pop_front();
+            }
         }
     }
 
@@ -570,6 +534,7 @@ impl VendorHistory {
     pub fn reset_cusum(&mut self, settings: &PolicySettings) {
         let window = settings.history_window.max(1);
         self.cusum = 0.0;
+        self.evidence.cusum = 0.0;
         self.accepted_costs.extend(self.pending_costs.drain(..));
         while self.accepted_costs.len() > window {
             self.accepted_costs.pop_front();
@@ -635,6 +600,17 @@ pub enum ReasonCode {
     FlaggedShareOutlier,
     /// Quarantine: the CUSUM of the vendor's standardised flagged share crossed `h` (slow drift).
     FlaggedShareDrift,
+    /// Quarantine: more flagged items than the binomial noise allows at the vendor's level
+    /// ([`evidence`]).
+    FlaggedItemsExcess,
+    /// Quarantine: the Bernoulli CUSUM over the vendor's items crossed `h` ([`evidence`]).
+    FlaggedItemsDrift,
+    /// Quarantine for operations, not label trouble: the batch's items are unlike the pool and the
+    /// trusted set does not cover them ([`shift`]).
+    ItemsUnlikePool,
+    /// Quarantine: among the items given one label, more are flagged than the noise allows if the
+    /// labels were right — a systematic error on one class ([`classes`]).
+    FlaggedItemsInClass,
 }
 
 impl ReasonCode {
@@ -654,11 +630,15 @@ impl ReasonCode {
             ReasonCode::ColdStartFlaggedShare => "cold_start_flagged_share",
             ReasonCode::FlaggedShareOutlier => "flagged_share_outlier",
             ReasonCode::FlaggedShareDrift => "flagged_share_drift",
+            ReasonCode::FlaggedItemsExcess => "flagged_items_excess",
+            ReasonCode::FlaggedItemsDrift => "flagged_items_drift",
+            ReasonCode::ItemsUnlikePool => "items_unlike_pool",
+            ReasonCode::FlaggedItemsInClass => "flagged_items_in_class",
         }
     }
 
     /// Every code, for documentation and schema checks.
-    pub const ALL: [ReasonCode; 13] = [
+    pub const ALL: [ReasonCode; 17] = [
         ReasonCode::WithinBaseline,
         ReasonCode::WithinColdStartLimits,
         ReasonCode::ScoreInvalid,
@@ -672,7 +652,23 @@ impl ReasonCode {
         ReasonCode::ColdStartFlaggedShare,
         ReasonCode::FlaggedShareOutlier,
         ReasonCode::FlaggedShareDrift,
+        ReasonCode::FlaggedItemsExcess,
+        ReasonCode::FlaggedItemsDrift,
+        ReasonCode::ItemsUnlikePool,
+        ReasonCode::FlaggedItemsInClass,
     ];
+
+    /// Whether the code says something about the batch's labels (false for the accepting codes, an
+    /// invalid score and `items_unlike_pool`, which is about the items, not their labels).
+    pub fn is_label_finding(self) -> bool {
+        !matches!(
+            self,
+            ReasonCode::WithinBaseline
+                | ReasonCode::WithinColdStartLimits
+                | ReasonCode::ScoreInvalid
+                | ReasonCode::ItemsUnlikePool
+        )
+    }
 }
 
 impl std::fmt::Display for ReasonCode {
@@ -871,6 +867,14 @@ pub struct Decision {
     /// The signals the decision read (absent in older records and from [`decide`]).
     #[serde(default)]
     pub signals: Option<BatchSignals>,
+    /// How the batch's items were judged as part of the vendor's item stream (absent in older records,
+    /// from [`decide`], and with `judge_items = false`).
+    #[serde(default)]
+    pub items: Option<ItemJudgement>,
+    /// The per-label tests of the batch's labels that had flagged items ([`classes`]; empty in older
+    /// records, from [`decide`], and with `judge_labels = false`).
+    #[serde(default)]
+    pub labels: Vec<LabelCheck>,
 }
 
 /// Decide one batch from its repair cost and damage alone: the flagged-share rules are skipped.

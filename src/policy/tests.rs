@@ -2,6 +2,15 @@
 use super::*;
 use approx::assert_relative_eq;
 
+/// The settings these tests were written for: the per-batch flagged-share rules (`judge_items = false`);
+/// the item rules have their own tests in `evidence_tests.rs`.
+fn batch_rules() -> PolicySettings {
+    PolicySettings {
+        judge_items: false,
+        ..PolicySettings::default()
+    }
+}
+
 /// Signals of a batch of 1,000 items with this repair cost, no damage and a usual flagged share.
 fn cost_only(cost: f64) -> BatchSignals {
     BatchSignals {
@@ -15,6 +24,7 @@ fn cost_only(cost: f64) -> BatchSignals {
         expected_flagged_sd: 0.0,
         expected_damage: 0.0,
         expected_damage_sd: 0.0,
+        ..BatchSignals::invalid()
     }
 }
 
@@ -31,13 +41,14 @@ fn share(flagged_share: f64, items: usize) -> BatchSignals {
         expected_flagged_sd: 0.0,
         expected_damage: 0.0,
         expected_damage_sd: 0.0,
+        ..BatchSignals::invalid()
     }
 }
 
 /// A vendor whose accepted batches had these flagged shares (1,000 items each, no repair), every value
 /// in the baseline.
 fn share_history(shares: &[f64]) -> VendorHistory {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let mut h = VendorHistory::default();
     for &f in shares {
         h.record_accepted(&s, &share(f, 1000));
@@ -51,7 +62,7 @@ fn codes(d: &Decision) -> Vec<ReasonCode> {
 }
 
 fn history(costs: &[f64]) -> VendorHistory {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let mut h = VendorHistory::default();
     for &c in costs {
         h.record_accepted(&s, &cost_only(c));
@@ -121,7 +132,7 @@ fn cusum_recursion_on_a_hand_worked_sequence() {
 
 #[test]
 fn cold_start_uses_absolute_limits() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let h = VendorHistory::default();
     let ok = decide(&s, &h, 0.01, 0.0);
     assert_eq!(ok.verdict, Verdict::Accept);
@@ -137,7 +148,7 @@ fn cold_start_uses_absolute_limits() {
 
 #[test]
 fn ceiling_applies_even_with_a_high_baseline() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     // A vendor whose accepted costs were all around 0.18 (allowed under the ceiling of 0.2).
     let h = history(&[0.18, 0.17, 0.19, 0.18, 0.18, 0.17, 0.19, 0.18, 0.18, 0.19]);
     assert!(!h.is_cold(&s));
@@ -156,7 +167,7 @@ fn ceiling_applies_even_with_a_high_baseline() {
 
 #[test]
 fn outlier_against_the_vendor_baseline() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     // Median 0.03, deviations 0.01,0,0.01,0,0.01,0,0.01,0,0 → MAD 0 → meanAD = 0.04/9 = 0.00444,
     // scale 1.253314·0.00444 = 0.00557 < floor 0.01, so σ̂ = 0.01 and M(0.08) = (0.08 − 0.03)/0.01 = 5 > 3.5.
     let h = history(&[0.02, 0.03, 0.04, 0.03, 0.02, 0.03, 0.04, 0.03, 0.03]);
@@ -175,7 +186,7 @@ fn outlier_against_the_vendor_baseline() {
 
 #[test]
 fn all_zero_history_uses_the_floor() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let h = history(&[0.0; 10]);
     let d = decide(&s, &h, 0.001, 0.0);
     assert_eq!(
@@ -193,7 +204,7 @@ fn all_zero_history_uses_the_floor() {
 
 #[test]
 fn slow_drift_trips_the_cusum_before_any_single_outlier() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     // Baseline: costs alternating 0.00/0.02 → median 0.01, MAD 0.01, σ̂ = 0.0148, modified z scale
     // 0.01/0.6745 = 0.01483.
     let mut h = history(&[0.0, 0.02, 0.0, 0.02, 0.0, 0.02, 0.0, 0.02, 0.0, 0.02]);
@@ -223,7 +234,7 @@ fn slow_drift_trips_the_cusum_before_any_single_outlier() {
 
 #[test]
 fn quarantined_batches_do_not_move_the_baseline() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let h = history(&[0.01; 10]);
     let d = decide(&s, &h, 0.5, 0.0);
     assert_eq!(d.verdict, Verdict::Quarantine);
@@ -240,7 +251,7 @@ fn quarantined_batches_do_not_move_the_baseline() {
 fn history_window_rolls() {
     let s = PolicySettings {
         history_window: 10,
-        ..PolicySettings::default()
+        ..batch_rules()
     };
     let mut h = VendorHistory::default();
     for i in 0..25 {
@@ -257,7 +268,7 @@ fn history_window_rolls() {
 fn head_start_applies_when_leaving_cold_start() {
     let s = PolicySettings {
         cusum_head_start: true,
-        ..PolicySettings::default()
+        ..batch_rules()
     };
     let mut h = VendorHistory::default();
     for _ in 0..s.min_history {
@@ -269,7 +280,7 @@ fn head_start_applies_when_leaving_cold_start() {
 
 #[test]
 fn invalid_scores_quarantine() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let d = decide(&s, &VendorHistory::default(), f64::NAN, 0.0);
     assert_eq!(d.verdict, Verdict::Quarantine);
     assert_eq!(d.reasons[0].code, ReasonCode::ScoreInvalid);
@@ -277,15 +288,15 @@ fn invalid_scores_quarantine() {
 
 #[test]
 fn settings_validate_and_reject_nonsense() {
-    assert!(PolicySettings::default().validate().is_ok());
+    assert!(batch_rules().validate().is_ok());
     let bad = PolicySettings {
         max_repair_cost: 1.5,
-        ..PolicySettings::default()
+        ..batch_rules()
     };
     assert!(bad.validate().is_err());
     let bad = PolicySettings {
         cusum_h: 0.0,
-        ..PolicySettings::default()
+        ..batch_rules()
     };
     assert!(bad.validate().is_err());
     let parsed: Result<PolicySettings, _> = toml::from_str("no_such_key = 1");
@@ -301,7 +312,7 @@ fn reason_codes_serialise_to_their_stable_names() {
 
 #[test]
 fn cold_start_judges_the_flagged_share() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let h = VendorHistory::default();
     // 27 of 300 flagged (0.09 ≤ 0.10) against a large pool: accepted, the reason names the share.
     let ok = decide_batch(&s, &h, &share(0.09, 300));
@@ -347,7 +358,7 @@ fn cold_start_share_limit_asks_for_more_than_the_reference_model_expects() {
     // A data set the learner separates poorly: a clean batch is expected to flag 0.28 ± 0.02 of its
     // items. 0.30 is above the fixed limit (0.10) but within m₀ + 3 sd = 0.34: accepted. 0.345 is not
     // (and stays under the absolute ceiling 0.35).
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let h = VendorHistory::default();
     let weak = |f| BatchSignals {
         expected_flagged_share: 0.28,
@@ -373,7 +384,7 @@ fn cold_start_share_limit_asks_for_more_than_the_reference_model_expects() {
     // With z = 0 the fixed limit alone decides, as before.
     let s0 = PolicySettings {
         cold_start_flagged_excess_z: 0.0,
-        ..PolicySettings::default()
+        ..batch_rules()
     };
     assert_eq!(
         decide_batch(&s0, &h, &weak(0.30)).verdict,
@@ -385,7 +396,7 @@ fn cold_start_share_limit_asks_for_more_than_the_reference_model_expects() {
 fn cold_start_damage_on_a_weak_model_must_clear_the_damage_to_expect() {
     // Values shaped on clean winequality batches (pool model accuracy 0.62): labels drawn from the
     // reference model would give damage −0.05 ± 0.06 nats and would flag 0.28 of the items.
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let h = VendorHistory::default();
     let weak = |damage| BatchSignals {
         damage,
@@ -421,14 +432,14 @@ fn cold_start_damage_on_a_weak_model_must_clear_the_damage_to_expect() {
     // A negative z is refused by validation.
     let bad = PolicySettings {
         cold_start_damage_excess_z: -1.0,
-        ..PolicySettings::default()
+        ..batch_rules()
     };
     assert!(bad.validate().is_err());
 }
 
 #[test]
 fn every_rule_that_fires_is_reported() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let b = BatchSignals {
         repair_cost: 0.06,
         damage: 0.3,
@@ -452,7 +463,7 @@ fn every_rule_that_fires_is_reported() {
 
 #[test]
 fn flagged_share_ceiling_applies_with_a_high_baseline() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     // A vendor whose accepted batches were all around 0.33 flagged (its items are hard to label).
     let h = share_history(&[0.33, 0.34, 0.32, 0.33, 0.34, 0.33, 0.32, 0.33, 0.33, 0.34]);
     assert!(!h.flagged_share_is_cold(&s));
@@ -466,7 +477,7 @@ fn flagged_share_ceiling_applies_with_a_high_baseline() {
 
 #[test]
 fn flagged_share_outlier_by_the_modified_z_score() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     // Shares 0.05 … 0.09: median 0.07; |x − 0.07| sorted 0,0,0,0,0.01,0.01,0.01,0.01,0.02,0.02 → MAD 0.01
     // (Iglewicz & Hoaglin 1993): M(x) = 0.6745 (x − 0.07)/0.01, scale 0.01/0.6745 = 0.014826 above the
     // floor 0.01 and above the binomial standard error √(0.07 · 0.93/1000) = 0.00807.
@@ -495,7 +506,7 @@ fn flagged_share_outlier_by_the_modified_z_score() {
 
 #[test]
 fn a_small_batch_is_judged_against_its_binomial_standard_error() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     // All shares 0.07: MAD = meanAD = 0, so the scale is a floor. For 1,000 items the configured floor
     // 0.01 binds (binomial √(0.07 · 0.93/1000) = 0.00807); for 100 items the binomial standard error
     // of a proportion binds: √(0.0651/100) = 0.025515 (standard), so M(0.15) = 0.08/0.025515 = 3.1354.
@@ -515,7 +526,7 @@ fn a_small_batch_is_judged_against_its_binomial_standard_error() {
 
 #[test]
 fn slow_drift_of_the_flagged_share_trips_its_cusum() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     // Baseline as in the outlier test: median 0.07, σ̂ = 1.4826 · 0.01. A drip of shares 0.09:
     // z = 0.02/0.014826 = 1.349 (modified z 1.349 < 3.5), S grows by 0.849: the 6th batch signals.
     let mut h = share_history(&[0.05, 0.06, 0.07, 0.08, 0.09, 0.06, 0.07, 0.08, 0.07, 0.07]);
@@ -547,7 +558,7 @@ fn slow_drift_of_the_flagged_share_trips_its_cusum() {
 
 #[test]
 fn quarantined_batches_never_reach_the_flagged_share_baseline() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let mut h = share_history(&[0.07; 10]);
     let poisoned = share(0.16, 1000);
     let d = decide_batch(&s, &h, &poisoned);
@@ -563,7 +574,7 @@ fn quarantined_batches_never_reach_the_flagged_share_baseline() {
 
 #[test]
 fn histories_written_before_the_flagged_share_still_load() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     // A stored record from before this field existed: ten accepted costs, no flagged shares.
     let old = r#"{"version":1,"accepted_costs":[0,0,0,0,0,0,0,0,0,0],"pending_costs":[],"cusum":0.0,"accepted_total":10}"#;
     let h: VendorHistory = serde_json::from_str(old).expect("backward compatible");
@@ -585,7 +596,7 @@ fn histories_written_before_the_flagged_share_still_load() {
 
 #[test]
 fn a_non_finite_flagged_share_is_an_invalid_score() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let d = decide_batch(&s, &VendorHistory::default(), &share(f64::NAN, 10));
     assert_eq!(codes(&d), vec![ReasonCode::ScoreInvalid]);
     let d = decide_batch(&s, &VendorHistory::default(), &BatchSignals::invalid());
@@ -599,7 +610,7 @@ fn a_non_finite_flagged_share_is_an_invalid_score() {
 
 #[test]
 fn decide_without_signals_skips_the_flagged_share() {
-    let s = PolicySettings::default();
+    let s = batch_rules();
     let d = decide(&s, &VendorHistory::default(), 0.0, 0.0);
     assert_eq!(d.verdict, Verdict::Accept);
     assert!(d.flagged_share_baseline.is_none() && d.signals.is_none());
@@ -610,15 +621,15 @@ fn flagged_share_settings_are_validated() {
     for bad in [
         PolicySettings {
             cold_start_max_flagged_share: 1.2,
-            ..PolicySettings::default()
+            ..batch_rules()
         },
         PolicySettings {
             max_flagged_share: -0.1,
-            ..PolicySettings::default()
+            ..batch_rules()
         },
         PolicySettings {
             flagged_share_min_scale: 0.0,
-            ..PolicySettings::default()
+            ..batch_rules()
         },
     ] {
         assert!(bad.validate().is_err());

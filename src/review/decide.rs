@@ -195,13 +195,22 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     };
     // The vendor notice is recorded with the decision (an outbox: see `finish_pending`).
     let n = release_notice(&rec, &table, &plan);
-    let settled = env.store.transition(
+    // A released batch joins its vendor's record (so a vendor whose honest batches the computed limits
+    // hold is not stuck in cold start), in the same transaction as the release.
+    let released = released_signals(&rec, &table, &plan);
+    let policy = &env.config.policy;
+    let settled = env.store.transition_with_history(
         &rec.id,
         &[BatchState::Quarantined],
         BatchState::Released,
         pool,
         vec![audit],
         |r| r.pending_notices.push(n.clone()),
+        |h| {
+            if let Some(s) = &released {
+                h.record_released(policy, s);
+            }
+        },
     )?;
     env.hooks.pool_changed();
     let mut report = DecisionReport::new(&settled, &req.by, &req.reason);
@@ -216,6 +225,31 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     // Side effects after the flushed decision.
     finish_decision(env, &settled, &req.by, &mut report);
     Ok(report)
+}
+
+/// What a released batch teaches its vendor's record: the signals it was decided on, without the items
+/// the reviewer left out or corrected (those were errors, not the vendor's usual level). `None` for
+/// records decided before the signals were kept.
+fn released_signals(
+    rec: &BatchRecord,
+    table: &Table,
+    plan: &ReleasePlan,
+) -> Option<crate::policy::BatchSignals> {
+    let signals = rec.decision.as_ref()?.signals.clone()?;
+    let flagged: HashSet<&str> = rec
+        .suspects
+        .iter()
+        .filter(|s| s.proposed_label != s.label)
+        .map(|s| s.id.as_str())
+        .collect();
+    let mut removed: HashSet<&str> = plan
+        .excluded
+        .iter()
+        .filter_map(|&i| table.ids.get(i).map(String::as_str))
+        .collect();
+    removed.extend(plan.relabeled.iter().map(|(id, _, _)| id.as_str()));
+    let removed_flagged = removed.iter().filter(|id| flagged.contains(*id)).count();
+    Some(signals.without_items(plan.excluded.len(), removed_flagged))
 }
 
 /// A release's edits to the batch, checked against it.

@@ -155,7 +155,8 @@ pub fn rescan(env: &ReviewEnv<'_>, by: &str) -> Result<RescanReport, ReviewError
                 let dcs = policy::decide_batch(
                     &env.config.policy,
                     &h,
-                    &policy::BatchSignals::from_assessment(&a, env.config.model.flag_threshold),
+                    &policy::BatchSignals::from_assessment(&a, env.config.model.flag_threshold)
+                        .named(&env.meta.classes),
                 );
                 entry.repair_cost_now = Some(a.repair_cost);
                 entry.damage_now = Some(a.damage);

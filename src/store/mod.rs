@@ -638,6 +638,7 @@ impl Store {
             assessment,
             pool_add,
             None,
+            None,
         )
     }
 
@@ -660,6 +661,20 @@ impl Store {
         pool: PoolChange,
         audit: Vec<AuditRecord>,
         edit: impl Fn(&mut BatchRecord),
+    ) -> Result<BatchRecord, StoreError> {
+        self.transition_inner(batch_id, expect, to, pool, audit, &edit, None)
+    }
+
+    #[allow(clippy::too_many_arguments)]
+    pub(crate) fn transition_inner(
+        &self,
+        batch_id: &str,
+        expect: &[BatchState],
+        to: BatchState,
+        pool: PoolChange,
+        audit: Vec<AuditRecord>,
+        edit: &dyn Fn(&mut BatchRecord),
+        history: Option<&dyn Fn(&mut VendorHistory)>,
     ) -> Result<BatchRecord, StoreError> {
         let now = Utc::now();
         let (pool_add, pool_remove) = match pool {
@@ -684,6 +699,7 @@ impl Store {
             None,
             pool_add,
             pool_remove,
+            history,
         )
     }
 
@@ -699,6 +715,7 @@ impl Store {
         assessment: Option<(Vec<u8>, Vec<u8>)>,
         pool_add: Option<Vec<u8>>,
         pool_remove: Option<&str>,
+        history_edit: Option<&dyn Fn(&mut VendorHistory)>,
     ) -> Result<BatchRecord, StoreError> {
         let mut audits = Vec::with_capacity(audit.len());
         for a in audit {
@@ -749,6 +766,18 @@ impl Store {
             }
             if let Some((k, v)) = &history {
                 t[T_HISTORY].insert(k.as_slice(), v.as_slice())?;
+            }
+            if let Some(f) = history_edit {
+                let key = record.vendor.as_bytes();
+                let mut h: VendorHistory = match t[T_HISTORY].get(key)? {
+                    Some(v) => {
+                        dec("history", key, &v).map_err(ConflictableTransactionError::Abort)?
+                    }
+                    None => VendorHistory::default(),
+                };
+                f(&mut h);
+                let v = enc("history", &h).map_err(ConflictableTransactionError::Abort)?;
+                t[T_HISTORY].insert(key, v)?;
             }
             if let Some((k, v)) = &assessment {
                 t[T_ASSESS].insert(k.as_slice(), v.as_slice())?;

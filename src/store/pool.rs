@@ -2,8 +2,9 @@
 //! history.
 
 use super::{
-    dec, enc, u64_of, AuditRecord, PoolEntry, SavedSummary, Store, StoreError, VendorHistory,
-    META_EPOCH, SUMMARY_KEY, T_AUDIT, T_HISTORY, T_META, T_POOL, T_POOL_INDEX,
+    dec, enc, u64_of, AuditRecord, BatchRecord, BatchState, PoolChange, PoolEntry, SavedSummary,
+    Store, StoreError, VendorHistory, META_EPOCH, SUMMARY_KEY, T_AUDIT, T_HISTORY, T_META, T_POOL,
+    T_POOL_INDEX,
 };
 
 impl Store {
@@ -146,6 +147,27 @@ impl Store {
     }
 
     // ----- vendor history -----
+
+    /// [`Store::transition`] that also updates the batch's vendor's history in the same flushed
+    /// transaction: `history` runs inside it on the history as stored (and again if the transaction
+    /// retries), so a release joins the vendor's record exactly when the release is recorded.
+    ///
+    /// A batch of the same vendor that the daemon is deciding at that very moment records the history it
+    /// read before; the release's contribution is then lost for that vendor's record (as for a drift
+    /// reset, see `review::drift`), never half-written.
+    #[allow(clippy::too_many_arguments)]
+    pub fn transition_with_history(
+        &self,
+        batch_id: &str,
+        expect: &[BatchState],
+        to: BatchState,
+        pool: PoolChange,
+        audit: Vec<AuditRecord>,
+        edit: impl Fn(&mut BatchRecord),
+        history: impl Fn(&mut VendorHistory),
+    ) -> Result<BatchRecord, StoreError> {
+        self.transition_inner(batch_id, expect, to, pool, audit, &edit, Some(&history))
+    }
 
     /// A vendor's history (empty if none yet).
     pub fn vendor_history(&self, vendor: &str) -> Result<VendorHistory, StoreError> {

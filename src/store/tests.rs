@@ -185,3 +185,65 @@ fn second_open_is_refused_as_locked() {
     let e = Store::open(&d.path().join("state"), &StoreSettings::default()).unwrap_err();
     assert!(matches!(e, StoreError::Locked(_)), "{e}");
 }
+
+/// A release that writes the vendor's history does so in the transition's own transaction: the history
+/// changes with the state, on the history as stored; a refused transition changes neither.
+#[test]
+fn a_transition_with_history_updates_both_or_neither() {
+    let (_d, s) = tmp_store();
+    let mut r = claimed(&s);
+    r.outcome = Some(Outcome::Quarantined);
+    let r = s
+        .record_verdict(
+            &r,
+            AuditRecord::new("daemon", "verdict"),
+            true,
+            None,
+            None,
+            None,
+        )
+        .unwrap();
+    s.transition(
+        &r.id,
+        &[BatchState::Decided],
+        BatchState::Quarantined,
+        PoolChange::None,
+        vec![],
+        |_| {},
+    )
+    .unwrap();
+    let before = VendorHistory {
+        accepted_total: 4,
+        ..VendorHistory::default()
+    };
+    s.set_vendor_history("v1", &before, AuditRecord::new("test", "seed"))
+        .unwrap();
+    let bump = |h: &mut VendorHistory| h.accepted_total += 1;
+    // Refused (the batch is not Released): nothing changes.
+    let refused = s.transition_with_history(
+        &r.id,
+        &[BatchState::Released],
+        BatchState::Withdrawn,
+        PoolChange::None,
+        vec![],
+        |_| {},
+        bump,
+    );
+    assert!(matches!(refused, Err(StoreError::Conflict { .. })));
+    assert_eq!(s.vendor_history("v1").unwrap().accepted_total, 4);
+    let done = s
+        .transition_with_history(
+            &r.id,
+            &[BatchState::Quarantined],
+            BatchState::Released,
+            PoolChange::None,
+            vec![AuditRecord::new("rev", "release")],
+            |_| {},
+            bump,
+        )
+        .unwrap();
+    assert_eq!(done.state, BatchState::Released);
+    assert_eq!(s.vendor_history("v1").unwrap().accepted_total, 5);
+    // Another vendor's history is untouched.
+    assert_eq!(s.vendor_history("v2").unwrap().accepted_total, 0);
+}

@@ -1145,3 +1145,88 @@ fn a_live_release_updates_pool_and_metrics() {
     }
     assert!(d.stop().success());
 }
+
+/// A batch a reviewer releases joins its vendor's record in the same store transaction as the release
+/// (issue 11: no cold-start deadlock — a vendor whose batches are held still earns a record of its own).
+/// Through the running daemon: a clean batch is accepted, a flipped one held and released over the admin
+/// socket; the next batch is judged against a record that already holds the released items, and the
+/// stored history counts the release once, as released.
+#[test]
+fn a_released_batch_joins_the_vendor_record_before_the_next_verdict() {
+    let ws = Ws::whole_batches(&["v1"]);
+    let d = Daemon::start(&ws);
+    let (_, id) = clean_then_poisoned(&ws, 101);
+    let dir = ws.dir.display().to_string();
+    // The file reaches quarantine/ a moment before its terminal state is recorded; a release in that
+    // window is refused as "decided": retry until it is not, with a deadline.
+    let t = std::time::Instant::now();
+    let out = loop {
+        let out = run_bin(&[
+            "quarantine",
+            "release",
+            &dir,
+            &id,
+            "--reason",
+            "checked by hand: the flips are a known site mix-up",
+            "--by",
+            "reviewer-c",
+        ]);
+        if out.status.success()
+            || !String::from_utf8_lossy(&out.stderr).contains("is decided")
+            || t.elapsed() > Duration::from_secs(10)
+        {
+            break out;
+        }
+        std::thread::sleep(Duration::from_millis(100));
+    };
+    assert!(
+        out.status.success(),
+        "release: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    // The release command returns once its transaction is flushed; the next batch is decided after it.
+    ws.deliver("v1", "next.csv", &clean_batch("n", 120, 103).csv());
+    ws.wait_settled(3, T);
+    assert!(d.stop().success());
+    let store = ws.store();
+    let released = store.batch(&id).unwrap().unwrap();
+    assert_eq!(released.state, labelweir::store::BatchState::Released);
+    let signals = released
+        .decision
+        .as_ref()
+        .and_then(|d| d.signals.clone())
+        .expect("the held batch's signals are kept");
+    let h = store.vendor_history("v1").unwrap();
+    assert_eq!(h.accepted_total, 3, "clean, released, next: {h:?}");
+    assert_eq!(h.evidence.released.len(), 1, "{h:?}");
+    assert_eq!(
+        h.evidence.released[0].items,
+        signals.judged_items() as u64,
+        "the whole released batch joined (nothing excluded)"
+    );
+    // The third batch was judged against a window that already held the released items.
+    let batches = store.batches().unwrap();
+    let next = batches
+        .iter()
+        .find(|b| b.original_name == "next.csv")
+        .expect("the third batch");
+    let j = next
+        .decision
+        .as_ref()
+        .and_then(|d| d.items.clone())
+        .expect("judged as items");
+    let first = batches
+        .iter()
+        .find(|b| b.original_name == "clean.csv")
+        .and_then(|b| b.decision.as_ref().and_then(|d| d.signals.clone()))
+        .expect("the first batch's signals");
+    assert_eq!(
+        j.window_items,
+        (first.judged_items() + signals.judged_items()) as u64,
+        "{j:?}"
+    );
+    let audit = store.audit_since(0).unwrap();
+    assert!(audit
+        .iter()
+        .any(|a| a.action == "release" && a.batch_id.as_deref() == Some(id.as_str())));
+}

@@ -124,7 +124,7 @@ fn flipped_batch_at_a_100k_pool_is_quarantined_in_cold_start_and_with_history() 
     let d = decide_batch(&ps, &history, &flipped);
     assert_eq!(d.verdict, Verdict::Quarantine, "{flipped:?}");
     assert!(
-        codes(&d).contains(&ReasonCode::ColdStartFlaggedShare),
+        codes(&d).contains(&ReasonCode::FlaggedItemsExcess),
         "{:?}",
         d.reasons
     );
@@ -153,12 +153,13 @@ fn flipped_batch_at_a_100k_pool_is_quarantined_in_cold_start_and_with_history() 
     let d = decide_batch(&ps, &history, &b.flipped(0x500));
     assert_eq!(d.verdict, Verdict::Quarantine);
     assert!(
-        codes(&d).contains(&ReasonCode::FlaggedShareOutlier),
+        codes(&d).contains(&ReasonCode::FlaggedItemsExcess),
         "{:?}",
         d.reasons
     );
-    let fb = d.flagged_share_baseline.expect("judged");
-    assert!(fb.modified_z > ps.modified_z_limit);
+    // Judged as items against the vendor's own record (10,000 items, more than `trust_items`).
+    let j = d.items.expect("judged as items");
+    assert!(j.established && j.tail_p < ps.item_alpha, "{j:?}");
 }
 
 /// Run lengths of the shipped drift rule, the production recursion [`labelweir::policy::cusum_step`] with the
@@ -252,6 +253,7 @@ fn vendor_history_leaves_cold_start_after_min_history_and_holds_high_costs_aside
         expected_flagged_sd: 0.0,
         expected_damage: 0.0,
         expected_damage_sd: 0.0,
+        ..BatchSignals::invalid()
     };
     let clean = [0.10, 0.11, 0.09, 0.10, 0.12, 0.08, 0.10, 0.11];
     for head_start in [false, true] {

@@ -212,7 +212,7 @@ pub fn assess(
         k,
         &ev.fusion(&refm, &point.mass, big_pool),
     );
-    let (expected_flagged_share, expected_flagged_sd) =
+    let (expected_flagged_share, expected_flagged_sd, expected_flagged_by_label) =
         expected_flagged(&refm.p_ref, &ev.repair_weights, settings.flag_threshold);
     let (broken_trusted, trusted_still_wrong) = trusted_reports(
         phi_t.view(),
@@ -255,6 +255,7 @@ pub fn assess(
         },
         expected_flagged_share,
         expected_flagged_sd,
+        expected_flagged_by_label,
         expected_damage,
         expected_damage_sd,
     })

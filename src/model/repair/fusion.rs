@@ -129,12 +129,13 @@ pub(crate) fn score_items(
 }
 
 /// The flagged share to expect from a batch labelled the way the reference model expects, and its
-/// standard deviation (see `Assessment::expected_flagged_share`), at each item's own weight.
+/// standard deviation (see `Assessment::expected_flagged_share`), at each item's own weight; and the
+/// flagged items to expect per given label ([`expected_flagged_by_label`]).
 pub(crate) fn expected_flagged(
     p_ref: &Array2<f64>,
     repair_weights: &[f64],
     threshold: f64,
-) -> (f64, f64) {
+) -> (f64, f64, Vec<f64>) {
     let n_b = p_ref.nrows();
     let q: Vec<f64> = p_ref
         .rows()
@@ -150,7 +151,33 @@ pub(crate) fn expected_flagged(
         .collect();
     let share = q.iter().sum::<f64>() / n_b as f64;
     let sd = q.iter().map(|v| v * (1.0 - v)).sum::<f64>().sqrt() / n_b as f64;
-    (share, sd)
+    let by_label = expected_flagged_by_label(p_ref, repair_weights, threshold);
+    (share, sd, by_label)
+}
+
+/// The flagged items to expect per given label from a batch labelled the way the reference model expects
+/// (see `Assessment::expected_flagged_by_label`): with labels `Y′_j ~ Categorical(p_ref,j)` drawn
+/// independently, the count of items labelled `c` and flagged is a sum of independent Bernoulli variables
+/// `1[Y′_j = c] · 1[(1 − w_j)(1 − p_ref,jc) ≥ τ]`, whose mean is
+///
+///   `E_c = Σ_j p_ref,jc · 1[(1 − w_j)(1 − p_ref,jc) ≥ τ]`.
+///
+/// Summed over the classes this is `n · m₀`, the expected flagged count of [`expected_flagged`].
+fn expected_flagged_by_label(
+    p_ref: &Array2<f64>,
+    repair_weights: &[f64],
+    threshold: f64,
+) -> Vec<f64> {
+    let mut by_label = vec![0.0; p_ref.ncols()];
+    for (j, r) in p_ref.rows().into_iter().enumerate() {
+        let w = repair_weights[j];
+        for (c, &pc) in r.iter().enumerate() {
+            if (1.0 - w) * (1.0 - pc) >= threshold {
+                by_label[c] += pc.clamp(0.0, 1.0);
+            }
+        }
+    }
+    by_label
 }
 
 /// Trusted items the batch as delivered gets wrong (`prob_t_with`: the trusted items' probabilities under
@@ -182,4 +209,29 @@ pub(crate) fn trusted_reports(
         .filter(|&t| argmax(prob_t_rep.row(t).iter().copied()) != y_t[t])
         .count();
     (broken, still_wrong)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The per-label expectations add up to the batch's expected flagged count `n · m₀`, and each is the
+    /// formula above worked by hand on a two-item batch.
+    #[test]
+    fn expected_flags_per_label_add_up_to_the_expected_share() {
+        let p = ndarray::array![[0.7, 0.2, 0.1], [0.45, 0.45, 0.1], [0.05, 0.05, 0.9]];
+        let w = [0.0, 0.2, 0.5];
+        let t = 0.5;
+        let by = expected_flagged_by_label(&p, &w, t);
+        // Item 0: 1 − p ≥ 0.5 for classes 1 (0.8) and 2 (0.9): adds 0.2 and 0.1.
+        // Item 1: 0.8 · (1 − p) ≥ 0.5 for class 2 only (0.72); classes 0 and 1 give 0.44: adds 0.1.
+        // Item 2: 0.5 · (1 − p) is at most 0.475 < 0.5: adds nothing.
+        let want = [0.0, 0.2, 0.2];
+        for (got, want) in by.iter().zip(want) {
+            assert!((got - want).abs() < 1e-12, "{by:?}");
+        }
+        let (share, _, total_by_label) = expected_flagged(&p, &w, t);
+        assert_eq!(total_by_label, by);
+        assert!((by.iter().sum::<f64>() - 3.0 * share).abs() < 1e-12);
+    }
 }

@@ -254,6 +254,13 @@ pub struct Assessment {
     /// Standard deviation of that share (Poisson-binomial): `√(Σ_i q_i (1 − q_i)) / n`.
     #[serde(default)]
     pub expected_flagged_sd: f64,
+    /// The flagged items to expect per given label (indexed by class) from a batch labelled the way the
+    /// reference model expects: `E_c = Σ_i p_ref,ic · 1[(1−w)(1 − p_ref,ic) ≥ τ]`, the mean of a sum of
+    /// independent Bernoulli variables (Poisson-binomial); `Σ_c E_c = n · m₀`. The policy compares each
+    /// label's flagged count with it, so that a systematic error on one class is seen even when the batch's
+    /// total flagged share stays within its noise. Empty in reports written before it existed.
+    #[serde(default)]
+    pub expected_flagged_by_label: Vec<f64>,
     /// The damage to expect if every item's label were drawn from its reference distribution `p_ref`:
     /// `E ≈ damage + Σ_i ⟨G_i, p_ref,i − y_i⟩ + E[r]` with `G = ∂Φ/∂Y` the label hypergradient at the
     /// delivered labels (the implicit-function-theorem gradient the repair path starts from) and `r ≥ 0`

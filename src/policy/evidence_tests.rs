@@ -1,0 +1,208 @@
+//! Unit tests of the item evidence: the binomial tail against hand-computed values, the vendor's level,
+//! and the two attacks on per-file judging (a delivery split into small files, small clean files
+//! interleaved) through the pure policy.
+use super::*;
+use crate::policy::{decide_batch, ReasonCode, VendorHistory, Verdict};
+
+/// A batch of `n` items, `k` flagged, computed clean level `c`.
+fn batch(n: usize, k: usize, c: f64) -> BatchSignals {
+    BatchSignals {
+        repair_cost: 0.0,
+        damage: 0.0,
+        flagged_share: k as f64 / n as f64,
+        mean_suspicion: 0.1,
+        items: n,
+        pool_items: 100_000,
+        clean_flagged_share: c,
+        ..BatchSignals::invalid()
+    }
+}
+
+#[test]
+fn binomial_tail_matches_hand_computed_values() {
+    // P(X ≥ 8 | Bin(10, ½)) = (C(10,8) + C(10,9) + C(10,10)) / 2¹⁰ = 56/1024 (binomial coefficients,
+    // computed by hand).
+    assert!((binomial_upper_tail(8, 10, 0.5) - 56.0 / 1024.0).abs() < 1e-12);
+    // P(X ≥ 1 | Bin(20, 0.05)) = 1 − 0.95²⁰ (complement of no success).
+    let want = 1.0 - 0.95f64.powi(20);
+    assert!((binomial_upper_tail(1, 20, 0.05) - want).abs() < 1e-12);
+    // P(X ≥ 0) = 1; P(X ≥ n + 1) = 0; P(X = n) = pⁿ.
+    assert_eq!(binomial_upper_tail(0, 7, 0.3), 1.0);
+    assert_eq!(binomial_upper_tail(8, 7, 0.3), 0.0);
+    assert!((binomial_upper_tail(7, 7, 0.3) - 0.3f64.powi(7)).abs() < 1e-15);
+    // Large n stays finite and tiny far in the tail.
+    // (Chernoff: P ≤ exp(−n KL(0.06 ‖ 0.05)) ≈ exp(−49.6).)
+    let p = binomial_upper_tail(3_000, 50_000, 0.05);
+    assert!(p > 0.0 && p < 1e-15, "{p}");
+}
+
+#[test]
+fn likelihood_ratio_is_the_bernoulli_formula() {
+    // 3 of 10 at p₁ = 0.2 against p₀ = 0.1: 3 ln 2 + 7 ln(0.8/0.9).
+    let want = 3.0 * 2f64.ln() + 7.0 * (0.8f64 / 0.9).ln();
+    assert!((bernoulli_llr(3, 10, 0.1, 0.2) - want).abs() < 1e-12);
+}
+
+#[test]
+fn a_new_vendor_is_judged_against_the_computed_clean_level() {
+    let s = PolicySettings::default();
+    let h = VendorHistory::default();
+    // 150 items, computed clean level 0.05: 7 flagged is usual, 25 is not.
+    let ok = decide_batch(&s, &h, &batch(150, 7, 0.05));
+    assert_eq!(ok.verdict, Verdict::Accept, "{:?}", ok.reasons);
+    let j = ok.items.expect("judged as items");
+    assert_eq!((j.items, j.flagged), (150, 7));
+    assert!((j.level - 0.05).abs() < 1e-12 && !j.established);
+    let bad = decide_batch(&s, &h, &batch(150, 25, 0.05));
+    assert_eq!(bad.verdict, Verdict::Quarantine);
+    assert!(bad
+        .reasons
+        .iter()
+        .any(|r| r.code == ReasonCode::FlaggedItemsExcess));
+    assert!(bad.reasons[0]
+        .detail
+        .contains("computed clean level 0.0500"));
+    // On data the learner separates poorly the computed level is high, and so is what passes.
+    let weak = decide_batch(&s, &h, &batch(150, 55, 0.35));
+    assert_eq!(weak.verdict, Verdict::Accept, "{:?}", weak.reasons);
+}
+
+#[test]
+fn day_one_excess_never_raises_the_level_but_releases_do() {
+    let s = PolicySettings::default();
+    let mut h = VendorHistory::default();
+    // 40 accepted batches each 2 flagged items above the clean level: the vendor's own record says
+    // "worse than the prior", and its level stays at the computed clean level.
+    for _ in 0..40 {
+        let b = batch(150, 9, 0.05);
+        h.record_accepted(&s, &b);
+    }
+    let j = h.evidence.judge(&s, &batch(150, 9, 0.05));
+    assert!(j.accepted_excess > 0.0);
+    assert_eq!(j.adjustment, 0.0);
+    assert!((j.level - 0.05).abs() < 1e-12);
+    // A reviewer releases batches at that level: now the level may rise to it.
+    for _ in 0..10 {
+        h.record_released(&s, &batch(150, 12, 0.05));
+    }
+    let j = h.evidence.judge(&s, &batch(150, 9, 0.05));
+    assert!(j.adjustment > 0.0 && j.level > 0.05, "{j:?}");
+    assert_eq!(j.cusum_before, 0.0);
+    // A vendor cleaner than the computed level is judged more strictly.
+    let mut clean = VendorHistory::default();
+    for _ in 0..40 {
+        clean.record_accepted(&s, &batch(150, 3, 0.05));
+    }
+    assert!(clean.evidence.judge(&s, &batch(150, 3, 0.05)).level < 0.05);
+}
+
+#[test]
+fn tiny_clean_batches_carry_their_weight_in_items_only() {
+    let s = PolicySettings::default();
+    let mut h = VendorHistory::default();
+    for _ in 0..20 {
+        h.record_accepted(&s, &batch(300, 15, 0.05));
+    }
+    let before = h.evidence.judge(&s, &batch(300, 15, 0.05)).level;
+    // 100 files of 3 clean items with nothing flagged: 300 items, the weight of one ordinary batch.
+    for _ in 0..100 {
+        h.record_accepted(&s, &batch(3, 0, 0.05));
+    }
+    let after = h.evidence.judge(&s, &batch(300, 15, 0.05)).level;
+    assert!(after > 0.04 && before - after < 0.01, "{before} → {after}");
+}
+
+/// Deliver `files` through the pure policy, recording accepted ones; returns the verdicts.
+fn deliver(s: &PolicySettings, h: &mut VendorHistory, files: &[BatchSignals]) -> Vec<Verdict> {
+    files
+        .iter()
+        .map(|b| {
+            let d = decide_batch(s, h, b);
+            if d.verdict == Verdict::Accept {
+                h.record_accepted(s, b);
+            }
+            d.verdict
+        })
+        .collect()
+}
+
+/// A vendor with a clean record of 20 batches of 300 items.
+fn established(s: &PolicySettings) -> VendorHistory {
+    let mut h = VendorHistory::default();
+    deliver(s, &mut h, &vec![batch(300, 15, 0.05); 20]);
+    h
+}
+
+#[test]
+fn splitting_a_poisoned_delivery_into_small_files_does_not_get_it_through() {
+    let s = PolicySettings::default();
+    // One 600-item delivery, clean level 0.05 (30 flagged) plus 57 flagged flipped items: held.
+    let mut whole = established(&s);
+    assert_eq!(
+        deliver(&s, &mut whole, &[batch(600, 87, 0.05)]),
+        [Verdict::Quarantine]
+    );
+    // The same items as 20 files of 30 (flagged 4 or 5 each, 87 in all): the item CUSUM accumulates
+    // across files; once it holds one file, every later file of the delivery is held too.
+    let mut split = established(&s);
+    let files: Vec<_> = (0..20)
+        .map(|i| batch(30, if i % 3 == 0 { 5 } else { 4 }, 0.05))
+        .collect();
+    assert_eq!(files.iter().map(|b| b.flagged_items()).sum::<usize>(), 87);
+    let v = deliver(&s, &mut split, &files);
+    let first_hold = v
+        .iter()
+        .position(|v| *v == Verdict::Quarantine)
+        .expect("held");
+    assert!(
+        v[first_hold..].iter().all(|v| *v == Verdict::Quarantine),
+        "{v:?}"
+    );
+    assert!(first_hold <= 8, "first hold at file {first_hold}: {v:?}");
+}
+
+#[test]
+fn interleaving_small_clean_files_does_not_get_poison_through() {
+    let s = PolicySettings::default();
+    let mut h = established(&s);
+    // 20 poisoned 30-item files (as above) each followed by a clean 30-item file (1–2 flagged).
+    let mut files = Vec::new();
+    for i in 0..20 {
+        files.push(batch(30, if i % 3 == 0 { 5 } else { 4 }, 0.05));
+        files.push(batch(30, 1 + i % 2, 0.05));
+    }
+    let v = deliver(&s, &mut h, &files);
+    let poisoned_through = (0..20).filter(|i| v[2 * i] == Verdict::Accept).count();
+    let clean_held = (0..20)
+        .filter(|i| v[2 * i + 1] == Verdict::Quarantine)
+        .count();
+    assert!(
+        poisoned_through <= 10,
+        "{poisoned_through} poisoned files through: {v:?}"
+    );
+    assert_eq!(clean_held, 0, "{v:?}");
+}
+
+/// What a release teaches the vendor's record is the level of the labels the reviewer let stand: items left
+/// out leave the count, and flagged items left out or corrected leave the flagged count.
+#[test]
+fn a_release_without_the_corrected_items_teaches_the_level_that_stood() {
+    let s = PolicySettings::default();
+    let b = batch(150, 30, 0.05);
+    let kept = b.clone().without_items(10, 25);
+    assert_eq!((kept.items, kept.flagged_items()), (140, 5));
+    let mut as_is = VendorHistory::default();
+    as_is.record_released(&s, &b);
+    let mut fixed = VendorHistory::default();
+    fixed.record_released(&s, &kept);
+    assert_eq!(fixed.evidence.released[0].flagged, 5);
+    assert_eq!(fixed.evidence.released[0].items, 140);
+    let next = batch(150, 9, 0.05);
+    assert!(
+        fixed.evidence.judge(&s, &next).level < as_is.evidence.judge(&s, &next).level,
+        "a batch released with its errors corrected lifts the level less"
+    );
+    // Removing more than there is never underflows.
+    let none = b.without_items(1_000, 1_000);
+    assert_eq!((none.items, none.flagged_items()), (0, 0));
+}
