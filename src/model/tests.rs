@@ -430,10 +430,10 @@ fn chord_method_reaches_newtons_optimum() {
 /// checked against the objective written out naively in the test
 /// (`f = (1/N) Σ_i w_i Σ_k −Y_ik log softmax(z_i)_k + ½ Σ_j r_j θ_j² + a (gᵀd + ½ dᵀHd)`, `d = θ − θ₀`), the
 /// gradient against central differences of that naive value, the product against central differences
-/// of the gradient, and the dense Hessian against the product. Kills mutants (cargo-mutants,
-/// `learner.rs`) in `value_grad`'s weighting (`w != 1.0` → `==`, `v * w` → `v + w` / `v / w`), in
-/// `add_penalties`' prior term and in `hvp`'s and `hessian`'s prior and weight terms, which the
-/// unweighted, prior-free test cannot see.
+/// of the gradient, and the dense Hessian against the product. Written against mutants in the weighting
+/// and prior code, which the unweighted, prior-free test cannot see; in the mutation run of 2026-12-04
+/// (DEVELOPERS.md) `learner.rs:201:18` (`!=` → `==`) and `202:49` (`*` → `/`) in `value_grad` each
+/// failed it.
 #[test]
 fn derivatives_match_finite_differences_with_weights_soft_labels_and_a_prior() {
     use super::learner::{Quadratic, INTERCEPT_RIDGE};

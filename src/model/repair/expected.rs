@@ -155,9 +155,9 @@ mod tests {
     /// second moment 0.2·0.09 + 0.5·0.01 + 0.3·0.25 = 0.098, variance 0.098 − 0.0256 = 0.0724;
     /// item 1: mean −0.6·0.2 + 0.1·0.4 = −0.08, shift −0.08 − 0.4 = −0.48,
     /// second moment 0.6·0.04 + 0.1·0.16 = 0.04, variance 0.04 − 0.0064 = 0.0336;
-    /// so the mean is 0.7 − 0.62 = 0.08 and the deviation √0.106. Kills the mutants (cargo-mutants,
-    /// `expected.rs`) that swap an operator of the moment loop (`*` → `+` / `/`, `-` → `+` / `/`,
-    /// `+=` → `-=` / `*=`).
+    /// so the mean is 0.7 − 0.62 = 0.08 and the deviation √0.106. Kills the mutants `expected.rs:52:23`
+    /// (`-` → `+` in the mean) and `53:24` (`-` → `+` in the variance), which no other library test
+    /// failed (mutation run of 2026-12-04, DEVELOPERS.md).
     #[test]
     fn out_of_time_the_expected_damage_is_the_linear_terms_closed_form_moments() {
         let settings = ModelSettings::default();

@@ -421,9 +421,9 @@ mod tests {
     /// `step_and_project` is `Π_Δ(Y − η G)` row by row, including the rows it keeps at their given
     /// label's vertex without a sort: each output row meets the projection's KKT conditions for
     /// `y_i − η g_i`. The rows cover both sides of the vertex shortcut (`v_g − max_{c≠g} v_c ≥ 1` or not) and
-    /// interior starting points. Kills the mutants (cargo-mutants, `path.rs`) `-=` → `+=` / `/=` in the
-    /// step, `>=` → `<` in the shortcut's test and `-` → `+` / `/` in its gap; each also fails this test
-    /// when applied by hand.
+    /// interior starting points. In the mutation run of 2026-12-04 (DEVELOPERS.md) the mutants
+    /// `path.rs:147:20` (`-=` → `+=` in the step), `154:28` (`>=` → `<` in the shortcut's test) and `154:19`
+    /// (`-` → `+` in its gap) each failed this test.
     #[test]
     fn step_and_project_is_the_projection_of_the_gradient_step() {
         let (n, k) = (400, 4);
