@@ -423,3 +423,109 @@ fn chord_method_reaches_newtons_optimum() {
     let diff = max_abs(&(&theta_n - &theta_c));
     assert!(diff < 1e-6, "chord vs Newton: max |Δθ| {diff}");
 }
+
+/// The learner's value, gradient, Hessian-vector product and dense Hessian with every optional part in
+/// play — row weights other than 1, soft labels, the pool's quadratic term — where
+/// `gradient_matches_finite_differences` has unit weights, one-hot labels and no prior. The value is
+/// checked against the objective written out naively in the test
+/// (`f = (1/N) Σ_i w_i Σ_k −Y_ik log softmax(z_i)_k + ½ Σ_j r_j θ_j² + a (gᵀd + ½ dᵀHd)`, `d = θ − θ₀`), the
+/// gradient against central differences of that naive value, the product against central differences
+/// of the gradient, and the dense Hessian against the product. Written against mutants in the weighting
+/// and prior code, which the unweighted, prior-free test cannot see; in the mutation run of 2026-12-04
+/// (DEVELOPERS.md) `learner.rs:201:18` (`!=` → `==`) and `202:49` (`*` → `/`) in `value_grad` each
+/// failed it.
+#[test]
+fn derivatives_match_finite_differences_with_weights_soft_labels_and_a_prior() {
+    use super::learner::{Quadratic, INTERCEPT_RIDGE};
+    let (n, k) = (30, 3);
+    let (x, y) = blobs(n, 2, k, 5);
+    let fm = FeatureMap::new(
+        Standardizer::fit(&[x.view()]).unwrap(),
+        FeatureMapKind::Linear,
+        1,
+    )
+    .unwrap();
+    let phi = fm.apply(x.view()).unwrap();
+    let p = phi.ncols();
+    let m = p * k;
+    let mut rng = ChaCha8Rng::seed_from_u64(6);
+    // Soft labels: 0.7 on the given class, the rest spread at random (rows sum to 1).
+    let mut yy = one_hot(&y, k) * 0.7;
+    for mut row in yy.rows_mut() {
+        let w: Vec<f64> = (0..k).map(|_| rng.random_range(0.0..1.0)).collect();
+        let s: f64 = w.iter().sum();
+        for c in 0..k {
+            row[c] += 0.3 * w[c] / s;
+        }
+    }
+    let weight = Array1::from_shape_fn(n, |_| rng.random_range(0.2..3.0));
+    let center = Array1::from_shape_fn(m, |_| rng.random_range(-0.5..0.5));
+    let qgrad = Array1::from_shape_fn(m, |_| rng.random_range(-0.3..0.3));
+    let a = Array2::from_shape_fn((m, m), |_| rng.random_range(-0.5..0.5));
+    let qhess = a.dot(&a.t()) + Array2::<f64>::eye(m);
+    let (norm, l2, scale) = (45.0, 0.05, 0.4);
+    let obj = Objective {
+        phi: phi.view(),
+        y: yy.view(),
+        weight: Some(weight.view()),
+        norm,
+        l2,
+        prior: Some(Quadratic {
+            scale,
+            center: center.view(),
+            grad: qgrad.view(),
+            hess: qhess.view(),
+        }),
+    };
+    let naive = |theta: &Array1<f64>| -> f64 {
+        let mut f = 0.0;
+        for i in 0..n {
+            let z: Vec<f64> = (0..k)
+                .map(|c| (0..p).map(|j| phi[[i, j]] * theta[c * p + j]).sum())
+                .collect();
+            let lse = z.iter().map(|v| v.exp()).sum::<f64>().ln();
+            f += weight[i] * (0..k).map(|c| -yy[[i, c]] * (z[c] - lse)).sum::<f64>();
+        }
+        f /= norm;
+        for (j, t) in theta.iter().enumerate() {
+            let r = if j % p == p - 1 { INTERCEPT_RIDGE } else { l2 };
+            f += 0.5 * r * t * t;
+        }
+        let d = theta - &center;
+        f + scale * (qgrad.dot(&d) + 0.5 * d.dot(&qhess.dot(&d)))
+    };
+    let theta = Array1::from_shape_fn(m, |_| rng.random_range(-1.0..1.0));
+    let (f, g, prob) = obj.value_grad(&theta);
+    assert!(
+        (f - naive(&theta)).abs() <= 1e-12 * (1.0 + f.abs()),
+        "value {f} vs {}",
+        naive(&theta)
+    );
+    let h = 1e-5;
+    for idx in 0..m {
+        let mut tp = theta.clone();
+        tp[idx] += h;
+        let mut tm = theta.clone();
+        tm[idx] -= h;
+        let fd = (naive(&tp) - naive(&tm)) / (2.0 * h);
+        assert!(
+            (fd - g[idx]).abs() <= 1e-6 * (1.0 + g[idx].abs()),
+            "gradient {idx}: fd {fd} vs {}",
+            g[idx]
+        );
+    }
+    let v = Array1::from_shape_fn(m, |_| rng.random_range(-1.0..1.0));
+    let hv = obj.hvp(prob.view(), &v);
+    let fd = (obj.value_grad(&(&theta + &(&v * h))).1 - obj.value_grad(&(&theta - &(&v * h))).1)
+        / (2.0 * h);
+    for (a, b) in hv.iter().zip(fd.iter()) {
+        assert!((a - b).abs() <= 1e-6 * (1.0 + a.abs()), "hvp {a} vs fd {b}");
+    }
+    let dense = obj.hessian(prob.view()).dot(&v);
+    for (a, b) in hv.iter().zip(dense.iter()) {
+        assert!(
+            (a - b).abs() <= 1e-10 * (1.0 + a.abs()),
+            "hessian·v {b} vs hvp {a}"
+        );
+    }
+}

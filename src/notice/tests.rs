@@ -310,3 +310,132 @@ fn a_failed_notice_write_keeps_the_old_notice_whole_and_readers_never_see_a_part
     let reads = reader.join().expect("reader saw only whole notices");
     assert!(reads > 0);
 }
+
+/// Issue 16, rename semantics: a reader that opened the old notice before a rewrite keeps reading the old
+/// bytes through its handle (the new notice is a new file renamed over the name; the old inode lives on
+/// until its last handle closes), while the name shows the new notice. Planted defect it catches (run
+/// once): `write_notice` writing each file in place with `std::fs::write` instead of
+/// `fsx::write_atomic_all` — the handle then reads the new, longer text (same inode, truncated and
+/// rewritten) and the first assertion fails.
+#[test]
+fn an_open_handle_on_the_old_notice_keeps_reading_the_old_bytes_after_a_rewrite() {
+    use std::io::Read;
+    use std::os::unix::fs::MetadataExt;
+    let dir = tempfile::tempdir().unwrap();
+    let vd = dir.path().join("sortright");
+    let settings = NoticeSettings::default();
+    let paths = write_notice(&vd, &quarantined(), &settings).unwrap();
+    let old: Vec<Vec<u8>> = paths.iter().map(|p| std::fs::read(p).unwrap()).collect();
+    let mut handles: Vec<std::fs::File> = paths
+        .iter()
+        .map(|p| std::fs::File::open(p).unwrap())
+        .collect();
+    let mut new = quarantined();
+    new.detail = "the second delivery from line 3 was scored again ".repeat(20);
+    assert_eq!(write_notice(&vd, &new, &settings).unwrap(), paths);
+    for ((p, h), old) in paths.iter().zip(&mut handles).zip(&old) {
+        let mut through_handle = Vec::new();
+        h.read_to_end(&mut through_handle).unwrap();
+        assert!(
+            through_handle == *old,
+            "{}: the open handle no longer reads the old bytes",
+            p.display()
+        );
+        assert_ne!(
+            h.metadata().unwrap().ino(),
+            std::fs::metadata(p).unwrap().ino(),
+            "{}: the name points at a new file",
+            p.display()
+        );
+    }
+    // The JSON and Markdown carry the detail, so under the name they changed (the CSV lists only items).
+    for p in &paths[..2] {
+        let now = std::fs::read(p).unwrap();
+        assert!(
+            String::from_utf8_lossy(&now).contains("scored again"),
+            "{}: the name shows the new notice",
+            p.display()
+        );
+    }
+}
+
+/// The unprivileged uid and gid the permission tests run as (`nobody` on Debian, as in
+/// `tests/it/harden.rs`).
+const UNPRIVILEGED: u32 = 65534;
+
+/// Run `f` on a new thread that holds uid and gid [`UNPRIVILEGED`] and no supplementary groups when the
+/// test process is root (CI runs as root, and root passes every permission check these tests are about);
+/// as the test's own non-root user otherwise. The kernel keeps credentials per thread: the raw system
+/// calls change only this thread, whereas glibc's `setresuid()` would change every thread of the test
+/// process. Leaving root this way also clears the thread's capabilities (capabilities(7), "Effect of user
+/// ID changes on capabilities"), so `CAP_DAC_OVERRIDE` is gone too.
+fn as_unprivileged<T: Send + 'static>(f: impl FnOnce() -> T + Send + 'static) -> T {
+    std::thread::spawn(move || {
+        if rustix::process::getuid().is_root() {
+            let id = libc::c_long::from(UNPRIVILEGED);
+            // SAFETY: plain system calls with integer arguments and a null list of zero groups.
+            unsafe {
+                assert_eq!(
+                    libc::syscall(libc::SYS_setgroups, 0, std::ptr::null::<libc::gid_t>()),
+                    0
+                );
+                assert_eq!(libc::syscall(libc::SYS_setresgid, id, id, id), 0);
+                assert_eq!(libc::syscall(libc::SYS_setresuid, id, id, id), 0);
+            }
+            assert_eq!(rustix::process::getuid().as_raw(), UNPRIVILEGED);
+        }
+        assert!(!rustix::process::geteuid().is_root());
+        f()
+    })
+    .join()
+    .unwrap_or_else(|e| std::panic::resume_unwind(e))
+}
+
+/// Issue 16: a rewrite that cannot create its temporary files (the vendor's notice folder is read-only
+/// for the daemon's non-root user) fails with `PermissionDenied` and leaves the old notice whole, with no
+/// temporary file behind. The old files themselves are left writable by anyone, so only a writer that
+/// goes through a new name and a rename is stopped by the folder. Planted defect it catches (run once):
+/// `write_notice` writing each file in place with `std::fs::write` — the unprivileged write then
+/// succeeds, overwriting the old notice, and `unwrap_err` fails.
+#[test]
+fn a_rewrite_refused_by_a_read_only_folder_leaves_the_old_notice_whole() {
+    use std::os::unix::fs::PermissionsExt;
+    let mode = |p: &std::path::Path, m: u32| {
+        std::fs::set_permissions(p, std::fs::Permissions::from_mode(m)).unwrap();
+    };
+    let dir = tempfile::tempdir().unwrap();
+    mode(dir.path(), 0o755);
+    let vd = dir.path().join("sortright");
+    let settings = NoticeSettings::default();
+    let paths = write_notice(&vd, &quarantined(), &settings).unwrap();
+    for p in &paths {
+        mode(p, 0o666);
+    }
+    mode(&vd, 0o555);
+    let before: Vec<Vec<u8>> = paths.iter().map(|p| std::fs::read(p).unwrap()).collect();
+    let r = {
+        let vd = vd.clone();
+        as_unprivileged(move || {
+            let mut new = quarantined();
+            new.detail = "a rewrite that must not land".into();
+            write_notice(&vd, &new, &settings).map_err(|e| e.kind())
+        })
+    };
+    assert_eq!(r.unwrap_err(), io::ErrorKind::PermissionDenied);
+    let after: Vec<Vec<u8>> = paths.iter().map(|p| std::fs::read(p).unwrap()).collect();
+    assert_eq!(before, after, "the old notice is untouched");
+    let mut names: Vec<String> = std::fs::read_dir(&vd)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    names.sort();
+    assert_eq!(
+        names,
+        [
+            "line3_shift2.b-000042.items.csv",
+            "line3_shift2.b-000042.json",
+            "line3_shift2.b-000042.md"
+        ]
+    );
+    mode(&vd, 0o755);
+}

@@ -139,3 +139,59 @@ pub fn label_hypergradient(
     let phi_b = obj.phi.slice(s![batch, ..]);
     phi_b.dot(&weights_view(&q, obj.dim(), k)) / obj.norm
 }
+
+#[cfg(test)]
+mod tests {
+    use super::super::Inner;
+    use super::*;
+    use crate::model::learner::one_hot;
+
+    /// Out of time before the first draw, the expected damage is the damage plus the linear term's mean and
+    /// its standard deviation, in closed form: per item the label is categorical with probabilities
+    /// `p_ref,i`, so `⟨G_i, Y′_i − Y_i⟩` has mean `Σ_c p_ic G_ic − G_iŷ` and variance
+    /// `Σ_c p_ic G_ic² − (Σ_c p_ic G_ic)²` (the mean and variance of a discrete random variable; common
+    /// practice, no source needed), summed over independent items. Values worked by hand:
+    /// item 0: mean 0.2·0.3 − 0.5·0.1 + 0.3·0.5 = 0.16, shift 0.16 − 0.3 = −0.14,
+    /// second moment 0.2·0.09 + 0.5·0.01 + 0.3·0.25 = 0.098, variance 0.098 − 0.0256 = 0.0724;
+    /// item 1: mean −0.6·0.2 + 0.1·0.4 = −0.08, shift −0.08 − 0.4 = −0.48,
+    /// second moment 0.6·0.04 + 0.1·0.16 = 0.04, variance 0.04 − 0.0064 = 0.0336;
+    /// so the mean is 0.7 − 0.62 = 0.08 and the deviation √0.106. Kills the mutants `expected.rs:52:23`
+    /// (`-` → `+` in the mean) and `53:24` (`-` → `+` in the variance), which no other library test
+    /// failed (mutation run of 2026-12-04, DEVELOPERS.md).
+    #[test]
+    fn out_of_time_the_expected_damage_is_the_linear_terms_closed_form_moments() {
+        let settings = ModelSettings::default();
+        let k = 3;
+        // A tiny training problem, only to have a context and a linearisation to pass (no draw uses them).
+        let phi = Array2::from_shape_fn((8, 2), |(i, j)| if j == 0 { 1.0 } else { i as f64 / 4.0 });
+        let y_pool = one_hot(&[0, 1, 2, 0, 1, 2], k);
+        let inner = Inner::for_test(phi.clone(), Some(y_pool), 6..8, settings.l2);
+        let phi_t = phi.slice(s![0..3, ..]).to_owned();
+        let y_t = [0, 1, 2];
+        let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
+        let batch_y = [0, 1];
+        let far = Instant::now() + std::time::Duration::from_secs(60);
+        let lin = ctx.linearise(
+            &one_hot(&batch_y, k),
+            Array1::zeros(2 * k),
+            far,
+            None,
+            false,
+        );
+        let g = ndarray::array![[0.3, -0.1, 0.5], [-0.2, 0.4, 0.0]];
+        let p_ref = ndarray::array![[0.2, 0.5, 0.3], [0.6, 0.1, 0.3]];
+        let (mean, sd) = expected_damage(
+            &ctx,
+            &lin,
+            &g,
+            &p_ref,
+            &batch_y,
+            0.7,
+            1.0,
+            1,
+            Instant::now(),
+        );
+        assert!((mean - 0.08).abs() < 1e-12, "mean {mean}");
+        assert!((sd - 0.106f64.sqrt()).abs() < 1e-12, "sd {sd}");
+    }
+}

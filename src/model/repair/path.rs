@@ -386,3 +386,89 @@ pub(crate) fn repair_point(
         None => point(0.0, false, phi_with, zero, theta_hat),
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use rand::{Rng, SeedableRng};
+    use rand_chacha::ChaCha8Rng;
+
+    /// `x` is the Euclidean projection of `v` onto the probability simplex exactly when `x ≥ 0`,
+    /// `Σ x = 1` and some `τ` has `x_c = v_c − τ` wherever `x_c > 0` and `v_c ≤ τ` wherever `x_c = 0` (the
+    /// KKT conditions of `min ‖x − v‖²` over the simplex; Held, Wolfe & Crowder, "Validation of
+    /// Subgradient Optimization", Mathematical Programming, 1974; restated by Duchi, Shalev-Shwartz,
+    /// Singer & Chandra, "Efficient Projections onto the l1-Ball for Learning in High Dimensions", ICML
+    /// 2008, §3). Checked directly, without the project's own projection.
+    fn is_simplex_projection(x: &[f64], v: &[f64], tol: f64) -> Result<(), String> {
+        if x.iter().any(|&a| a < 0.0) || (x.iter().sum::<f64>() - 1.0).abs() > tol {
+            return Err(format!("{x:?} is not on the simplex"));
+        }
+        let support: Vec<usize> = (0..x.len()).filter(|&c| x[c] > 0.0).collect();
+        let tau = v[support[0]] - x[support[0]];
+        for c in 0..x.len() {
+            let ok = if x[c] > 0.0 {
+                (v[c] - x[c] - tau).abs() <= tol
+            } else {
+                v[c] <= tau + tol
+            };
+            if !ok {
+                return Err(format!("{x:?} is not the projection of {v:?} (τ = {tau})"));
+            }
+        }
+        Ok(())
+    }
+
+    /// `step_and_project` is `Π_Δ(Y − η G)` row by row, including the rows it keeps at their given
+    /// label's vertex without a sort: each output row meets the projection's KKT conditions for
+    /// `y_i − η g_i`. The rows cover both sides of the vertex shortcut (`v_g − max_{c≠g} v_c ≥ 1` or not) and
+    /// interior starting points. In the mutation run of 2026-12-04 (DEVELOPERS.md) the mutants
+    /// `path.rs:147:20` (`-=` → `+=` in the step), `154:28` (`>=` → `<` in the shortcut's test) and `154:19`
+    /// (`-` → `+` in its gap) each failed this test.
+    #[test]
+    fn step_and_project_is_the_projection_of_the_gradient_step() {
+        let (n, k) = (400, 4);
+        let mut rng = ChaCha8Rng::seed_from_u64(7);
+        let given: Vec<usize> = (0..n).map(|_| rng.random_range(0..k)).collect();
+        let mut y = Array2::<f64>::zeros((n, k));
+        for i in 0..n {
+            if i % 2 == 0 {
+                y[[i, given[i]]] = 1.0;
+            } else {
+                let w: Vec<f64> = (0..k).map(|_| rng.random_range(0.05..1.0)).collect();
+                let s: f64 = w.iter().sum();
+                for c in 0..k {
+                    y[[i, c]] = w[c] / s;
+                }
+            }
+        }
+        let grad = Array2::from_shape_fn((n, k), |_| rng.random_range(-2.0..2.0));
+        let (mut kept, mut moved_off) = (0, 0);
+        for step in [0.05, 0.3, 1.0, 4.0] {
+            let out = step_and_project(&y, &grad, &given, step);
+            for i in 0..n {
+                let v: Vec<f64> = (0..k).map(|c| y[[i, c]] - step * grad[[i, c]]).collect();
+                if i % 2 == 0 {
+                    let g = given[i];
+                    let others = (0..k)
+                        .filter(|&c| c != g)
+                        .map(|c| v[c])
+                        .fold(f64::NEG_INFINITY, f64::max);
+                    if v[g] - others >= 1.0 {
+                        kept += 1;
+                    } else {
+                        moved_off += 1;
+                    }
+                }
+                let x: Vec<f64> = out.row(i).to_vec();
+                if let Err(e) = is_simplex_projection(&x, &v, 1e-9) {
+                    panic!("row {i}, step {step}: {e}");
+                }
+            }
+        }
+        // Both sides of the shortcut were exercised.
+        assert!(
+            kept > 50 && moved_off > 50,
+            "{kept} kept, {moved_off} moved off"
+        );
+    }
+}
