@@ -14,4 +14,5 @@
 pub mod baselines;
 pub mod benchmark;
 pub mod metrics;
+pub mod scale;
 pub mod throughput;

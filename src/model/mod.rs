@@ -31,11 +31,13 @@
 
 mod anchor;
 pub mod features;
+pub mod kron;
 pub mod learner;
 pub mod linalg;
 pub mod repair;
 pub mod summary;
 pub mod sweep;
+pub mod truncated;
 
 #[cfg(test)]
 mod tests;
