@@ -27,8 +27,8 @@ use serde::Serialize;
 
 use crate::eval::metrics::{auroc, spearman, top_k_set};
 use crate::model::{
-    assess, Assessment, FeatureMap, ModelError, ModelSettings, PoolInput, PoolSummary, Standardizer,
-    TrustedInput,
+    assess, Assessment, FeatureMap, ModelError, ModelSettings, PoolInput, PoolSummary,
+    Standardizer, TrustedInput,
 };
 
 /// What to run.
@@ -244,11 +244,7 @@ impl Problem {
 }
 
 /// Run one `(d, K)` case.
-pub fn run_case(
-    opts: &ScaleOptions,
-    d: usize,
-    k: usize,
-) -> Result<ScaleRow, ModelError> {
+pub fn run_case(opts: &ScaleOptions, d: usize, k: usize) -> Result<ScaleRow, ModelError> {
     let settings = &opts.settings;
     let prob = Problem::new(d, k, opts.seed ^ ((d as u64) << 8) ^ k as u64)?;
     let params = (d + 1) * k;

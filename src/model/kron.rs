@@ -241,7 +241,8 @@ pub fn sym_eigen(a: &Array2<f64>) -> (Array1<f64>, Array2<f64>) {
 }
 
 /// Householder tridiagonalisation (`tred2`): on return `v` holds the orthogonal transformation, `d` the
-/// diagonal and `e[1..]` the subdiagonal.
+/// diagonal and `e[1..]` the subdiagonal. Index loops follow the published procedure line by line.
+#[allow(clippy::needless_range_loop)]
 fn tred2(v: &mut Array2<f64>, d: &mut [f64], e: &mut [f64]) {
     let n = d.len();
     for j in 0..n {
@@ -340,6 +341,7 @@ fn tred2(v: &mut Array2<f64>, d: &mut [f64], e: &mut [f64]) {
 /// Implicit QL with shifts on the tridiagonal `(d, e)` (`tql2`), accumulating the rotations into the rows
 /// of `z` (the transposed eigenvector matrix); on return `d` holds the eigenvalues, ascending, and row `i`
 /// of `z` the eigenvector of `d[i]`.
+#[allow(clippy::needless_range_loop)]
 fn tql2(z: &mut Array2<f64>, d: &mut [f64], e: &mut [f64]) {
     let n = d.len();
     for i in 1..n {
@@ -469,12 +471,24 @@ mod tests {
         let a = m.t().dot(&m) - Array2::<f64>::eye(30) * 3.0;
         let (val, vec) = sym_eigen(&a);
         let back = vec.dot(&Array2::from_diag(&val)).dot(&vec.t());
-        assert!(max_abs(&(&back - &a)) < 1e-10 * max_abs(&a), "reconstruction");
+        assert!(
+            max_abs(&(&back - &a)) < 1e-10 * max_abs(&a),
+            "reconstruction"
+        );
         let eye = vec.t().dot(&vec);
-        assert!(max_abs(&(&eye - &Array2::<f64>::eye(30))) < 1e-12, "orthonormal");
-        assert!(val.windows(2).into_iter().all(|w| w[0] <= w[1]), "ascending");
+        assert!(
+            max_abs(&(&eye - &Array2::<f64>::eye(30))) < 1e-12,
+            "orthonormal"
+        );
+        assert!(
+            val.windows(2).into_iter().all(|w| w[0] <= w[1]),
+            "ascending"
+        );
         let (v2, _) = sym_eigen(&ndarray::array![[2.0, 1.0], [1.0, 2.0]]);
-        assert!((v2[0] - 1.0).abs() < 1e-14 && (v2[1] - 3.0).abs() < 1e-14, "{v2}");
+        assert!(
+            (v2[0] - 1.0).abs() < 1e-14 && (v2[1] - 3.0).abs() < 1e-14,
+            "{v2}"
+        );
     }
 
     /// Two classes: every item's class curvature is a multiple of one matrix, so `B ⊗ A` equals the exact
@@ -549,7 +563,10 @@ mod tests {
         let f = KronFactors::from_data(phi.view(), prob.view(), None, 60.0);
         let dense = dense_kron(&f);
         let (t_exact, t_kron) = (exact.diag().sum(), dense.diag().sum());
-        assert!((t_exact - t_kron).abs() < 1e-12 * t_exact, "{t_exact} vs {t_kron}");
+        assert!(
+            (t_exact - t_kron).abs() < 1e-12 * t_exact,
+            "{t_exact} vs {t_kron}"
+        );
         let v = Array1::from_shape_fn(p * k, |i| (i as f64 * 0.37).sin());
         let mv = f.matvec(&v);
         let dv = dense.dot(&v);
@@ -557,6 +574,9 @@ mod tests {
         let (s_, mu) = (0.7, 1e-2);
         let x = f.solve_damped(s_, mu, &v);
         let back = dense.dot(&x) * s_ + &x * mu;
-        assert!(back.iter().zip(&v).all(|(a, b)| (a - b).abs() < 1e-9), "damped solve residual");
+        assert!(
+            back.iter().zip(&v).all(|(a, b)| (a - b).abs() < 1e-9),
+            "damped solve residual"
+        );
     }
 }

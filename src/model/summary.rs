@@ -526,7 +526,12 @@ impl PoolSummary {
     /// `g_P − g_R`, with no curvature); otherwise the quadratic with `H ≈ B ⊗ A` stands for the pool
     /// alone — a sampled remainder would need the reservoir's own dense Hessian. The factors'
     /// eigendecompositions are computed here, once per summary, so that every assessment shares them.
-    fn kron_term(&self, settings: &ModelSettings, f: &KronFactors, use_reservoir: bool) -> PoolTerm {
+    fn kron_term(
+        &self,
+        settings: &ModelSettings,
+        f: &KronFactors,
+        use_reservoir: bool,
+    ) -> PoolTerm {
         let n = self.n as f64;
         if use_reservoir && self.reservoir_is_whole_pool() {
             let (_, g_r) = self.reservoir_loss_grad(settings.l2);

@@ -440,17 +440,27 @@ fn kronecker_summaries_round_trip_and_old_summaries_still_load() {
     let (ks, rep) = PoolSummary::fit(&kron_settings, fm.clone(), k, x.view(), &y).unwrap();
     assert!(rep.converged, "{rep:?}");
     assert!(ks.hess.is_empty());
-    let f = ks.kron.as_ref().expect("Kronecker factors above the threshold");
+    let f = ks
+        .kron
+        .as_ref()
+        .expect("Kronecker factors above the threshold");
     assert_eq!(f.dims(), (5, 3));
+    // JSON keeps every number to within its last digit.
     let back: PoolSummary = serde_json::from_str(&serde_json::to_string(&ks).unwrap()).unwrap();
-    assert_eq!(back, ks);
+    let bf = back.kron.as_ref().expect("factors survive the round trip");
+    assert!(max_abs(&(&bf.a - &f.a)) <= 1e-12 * max_abs(&f.a));
+    assert!(max_abs(&(&bf.b - &f.b)) <= 1e-12 * max_abs(&f.b));
+    assert!(max_abs(&(&back.w - &ks.w)) <= 1e-12 * max_abs(&ks.w));
     let (ds, _) = PoolSummary::fit(&ModelSettings::default(), fm, k, x.view(), &y).unwrap();
     assert!(ds.kron.is_none());
     let mut old = serde_json::to_value(&ds).unwrap();
     old.as_object_mut().unwrap().remove("kron");
     let loaded: PoolSummary = serde_json::from_value(old).unwrap();
     assert!(loaded.kron.is_none());
-    assert_eq!(loaded, ds);
+    assert_eq!(loaded.hess.dim(), (15, 15));
+    assert!(max_abs(&(&loaded.hess - &ds.hess)) <= 1e-12 * max_abs(&ds.hess));
+    // Factors and their eigendecompositions (2 × (5² + 3²)) against the dense 15² Hessian.
+    assert!(ks.memory_bytes() < ds.memory_bytes());
     // The same optimum either way (the solvers differ, the objective does not).
     let diff = max_abs(&(&ks.w - &ds.w));
     assert!(diff <= 1e-5 * max_abs(&ds.w), "max |ΔW| {diff}");

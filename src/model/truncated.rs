@@ -181,9 +181,9 @@ mod tests {
         let obj = objective(&c);
         let deadline = Instant::now() + Duration::from_secs(30);
         let init = Array1::zeros(28);
-        let (dense, rd) = train_newton(&obj, init.clone(), 1e-10, 100, deadline);
+        let (dense, rd) = train_newton(&obj, init.clone(), 1e-9, 100, deadline);
         let pre = kron_preconditioner(&obj);
-        let (tn, rt, cg) = train_newton_cg(&obj, init, &pre, 1e-10, 100, 200, deadline);
+        let (tn, rt, cg) = train_newton_cg(&obj, init, &pre, 1e-9, 100, 200, deadline);
         assert!(rd.converged && rt.converged, "{rd:?} {rt:?}");
         assert!(cg > 0);
         let diff = (&dense - &tn).iter().fold(0.0f64, |m, v| m.max(v.abs()));

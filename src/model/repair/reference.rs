@@ -125,12 +125,7 @@ fn trusted_cross_validation(
             l2: settings.l2,
             prior: None,
         };
-        let (theta, rep) = solve(
-            settings,
-            &obj,
-            Array1::zeros(phi_fit.ncols() * k),
-            deadline,
-        );
+        let (theta, rep) = solve(settings, &obj, Array1::zeros(phi_fit.ncols() * k), deadline);
         conv.inner_iterations += rep.iterations;
         if !rep.converged {
             conv.inner_converged = false;
@@ -434,13 +429,8 @@ mod tests {
                 prior: None,
             };
             let deadline = Instant::now() + Duration::from_secs(30);
-            let (theta, rep) = train_newton(
-                &obj,
-                Array1::zeros(phi.ncols() * k),
-                1e-11,
-                200,
-                deadline,
-            );
+            let (theta, rep) =
+                train_newton(&obj, Array1::zeros(phi.ncols() * k), 1e-11, 200, deadline);
             assert!(rep.converged, "{rep:?}");
             theta
         };
