@@ -31,6 +31,12 @@ enum What {
     /// Exit code 0 when the benchmark ran (whether or not every target was met; see the "targets"
     /// section), 70 when the engine failed.
     Engine(EngineArgs),
+    /// The engine on embedding-sized feature spaces: d in {32, 128, 384, 768, 1024} features and K in
+    /// {8, 20, 100} classes (--quick: d up to 768, K in {8, 20}) on invented embeddings of the plant's
+    /// items; scoring time against a pool summary standing for 1,000,000 items, summary memory,
+    /// convergence, AUROC under uniform and region flips, and agreement with the exact dense
+    /// computation where it is affordable. Measured, never asserted; build with `--release`.
+    Scale(ScaleArgs),
     /// Daemon throughput: sustained items per second through the whole path (claim, parse, score, decide,
     /// persist, notice) with the latency per stage. Measured, never asserted; build with `--release`.
     Daemon(DaemonArgs),
@@ -74,6 +80,26 @@ struct DaemonArgs {
     config: Option<std::path::PathBuf>,
 }
 
+/// Options of `bench scale`.
+#[derive(Debug, clap::Args)]
+struct ScaleArgs {
+    /// The smaller sweep (d up to 768, K in {8, 20}, one timing repetition).
+    #[arg(long)]
+    quick: bool,
+    /// Print one JSON document instead of the table.
+    #[arg(long)]
+    json: bool,
+    /// Master seed for the invented embeddings and the attacks.
+    #[arg(long, default_value_t = 2018)]
+    seed: u64,
+    /// Only this case, as FEATURESxCLASSES (e.g. 768x20); repeatable.
+    #[arg(long, value_name = "DxK")]
+    case: Vec<String>,
+    /// Engine settings: a TOML file whose `[model]` table overrides the defaults (other tables ignored).
+    #[arg(long, value_name = "FILE")]
+    config: Option<std::path::PathBuf>,
+}
+
 #[derive(Debug, clap::Args)]
 struct EngineArgs {
     /// Smaller pools and batches, one repetition per case, fewer timing repeats.
@@ -98,6 +124,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
     match args.what {
         What::Engine(a) => engine(a),
         What::Casebook(c) => casebook(c),
+        What::Scale(a) => scale(a),
         What::Daemon(d) => {
             let mut o = labelweir::eval::throughput::Options::default();
             if let Some(b) = d.batches {
@@ -200,6 +227,51 @@ fn casebook(a: CasebookArgs) -> anyhow::Result<u8> {
         writeln!(out)?;
     } else {
         write!(out, "{}", casebook::render_text(&report))?;
+    }
+    Ok(exit::OK)
+}
+
+fn scale(a: ScaleArgs) -> anyhow::Result<u8> {
+    use labelweir::eval::scale;
+    let settings = match &a.config {
+        Some(p) => model_settings(p)?,
+        None => ModelSettings::default(),
+    };
+    let mut only = Vec::new();
+    for c in &a.case {
+        let parsed = c
+            .split_once('x')
+            .and_then(|(d, k)| Some((d.trim().parse().ok()?, k.trim().parse().ok()?)));
+        match parsed {
+            Some((d, k)) if d > 0 && k >= 2 => only.push((d, k)),
+            _ => {
+                return Err(Failure::new(
+                    exit::INPUT,
+                    format!("bench scale: --case {c:?} is not FEATURESxCLASSES (e.g. 768x20)"),
+                )
+                .into())
+            }
+        }
+    }
+    let opts = scale::ScaleOptions {
+        quick: a.quick,
+        seed: a.seed,
+        settings,
+        only: (!only.is_empty()).then_some(only),
+    };
+    let json = a.json;
+    let rows = scale::run(&opts, |line| {
+        if !json {
+            eprintln!("  {line}");
+        }
+    })
+    .map_err(|e| Failure::new(exit::INTERNAL, format!("bench scale failed: {e}")))?;
+    let mut out = std::io::stdout().lock();
+    if json {
+        serde_json::to_writer_pretty(&mut out, &rows).context("writing JSON")?;
+        writeln!(out)?;
+    } else {
+        write!(out, "{}", scale::render_text(&rows))?;
     }
     Ok(exit::OK)
 }

@@ -15,4 +15,5 @@ pub mod baselines;
 pub mod benchmark;
 pub mod casebook;
 pub mod metrics;
+pub mod scale;
 pub mod throughput;

@@ -30,6 +30,8 @@ use argmin::solver::quasinewton::LBFGS;
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2, Axis};
 use serde::{Deserialize, Serialize};
 
+use super::kron::KronFactors;
+
 /// Ridge on the intercept row (see the module docs).
 pub const INTERCEPT_RIDGE: f64 = 1e-8;
 
@@ -77,8 +79,22 @@ pub struct Quadratic<'a> {
     pub center: ArrayView1<'a, f64>,
     /// Gradient `g` at `θ₀`.
     pub grad: ArrayView1<'a, f64>,
-    /// Hessian `H` at `θ₀`.
+    /// Hessian `H` at `θ₀` (dense; empty when `kron` stands for it, or when the curvature is zero).
     pub hess: ArrayView2<'a, f64>,
+    /// Kronecker-factored `H ≈ B ⊗ A` used instead of `hess` above the dense threshold (see
+    /// [`super::kron`]).
+    pub kron: Option<&'a KronFactors>,
+}
+
+impl Quadratic<'_> {
+    /// `H v` with whichever form of `H` the term holds (zero when it holds none).
+    pub fn hess_dot(&self, v: &Array1<f64>) -> Array1<f64> {
+        match self.kron {
+            Some(f) => f.matvec(v),
+            None if self.hess.is_empty() => Array1::zeros(v.len()),
+            None => self.hess.dot(v),
+        }
+    }
 }
 
 /// The training objective `L(θ; Y)` of the module docs.
@@ -174,7 +190,7 @@ impl Objective<'_> {
         }
         if let Some(q) = &self.prior {
             let d = theta - &q.center;
-            let hd = q.hess.dot(&d);
+            let hd = q.hess_dot(&d);
             *f += q.scale * (q.grad.dot(&d) + 0.5 * d.dot(&hd));
             g.scaled_add(q.scale, &q.grad);
             g.scaled_add(q.scale, &hd);
@@ -234,7 +250,7 @@ impl Objective<'_> {
             *o += reg * vi;
         }
         if let Some(q) = &self.prior {
-            out.scaled_add(q.scale, &q.hess.dot(v));
+            out.scaled_add(q.scale, &q.hess_dot(v));
         }
         out
     }
@@ -296,7 +312,19 @@ impl Objective<'_> {
             };
         }
         if let Some(q) = &self.prior {
-            h.scaled_add(q.scale, &q.hess);
+            match q.kron {
+                Some(f) => {
+                    let (p, k) = f.dims();
+                    for u in 0..k {
+                        for v in 0..k {
+                            let mut blk = h.slice_mut(s![u * p..(u + 1) * p, v * p..(v + 1) * p]);
+                            blk.scaled_add(q.scale * f.b[[u, v]], &f.a);
+                        }
+                    }
+                }
+                None if q.hess.is_empty() => {}
+                None => h.scaled_add(q.scale, &q.hess),
+            }
         }
         h
     }
@@ -715,7 +743,8 @@ impl Learner {
 }
 
 /// Solve the inner problem with the configured method: Newton with a dense Hessian when `p·K` is at most
-/// `dense_max_params`, else L-BFGS (argmin).
+/// `dense_max_params`; above it, truncated Newton preconditioned by the pool summary's Kronecker factors
+/// when the objective has such a prior ([`super::truncated`]), else L-BFGS (argmin).
 pub fn solve(
     settings: &super::ModelSettings,
     obj: &Objective<'_>,
@@ -734,6 +763,21 @@ pub fn solve_factored(
     init: Array1<f64>,
     deadline: Instant,
 ) -> (Array1<f64>, TrainReport, Option<super::linalg::Cholesky>) {
+    if obj.prior.is_some_and(|q| q.kron.is_some()) {
+        // Above the dense threshold with a Kronecker-factored pool summary: truncated Newton,
+        // preconditioned by the summary's factors.
+        let pre = super::truncated::kron_preconditioner(obj);
+        let (theta, report, _) = super::truncated::train_newton_cg(
+            obj,
+            init,
+            &pre,
+            settings.inner_tol,
+            settings.inner_max_iters,
+            settings.cg_max_iters,
+            deadline,
+        );
+        return (theta, report, None);
+    }
     if prefer_newton(settings, obj) {
         train_newton_factored(
             obj,

@@ -51,6 +51,18 @@ impl Cholesky {
         self.l.nrows()
     }
 
+    /// Solve `L z = b` (forward substitution only): `z_i = (b_i − L_{i,<i}·z_{<i}) / L_ii`.
+    pub fn solve_lower(&self, b: &Array1<f64>) -> Array1<f64> {
+        let n = self.dim();
+        let mut z: Vec<f64> = b.to_vec();
+        let l = self.l.as_slice().expect("standard layout");
+        for i in 0..n {
+            let s = dot(&l[i * n..i * n + i], &z[..i]);
+            z[i] = (z[i] - s) / l[i * n + i];
+        }
+        Array1::from(z)
+    }
+
     /// Solve `A x = b` by forward (`L z = b`) and back (`Lᵀ x = z`) substitution.
     ///
     /// Both walk the rows of `L` contiguously: the forward pass as dot products, `z_i = (b_i − L_{i,<i}·z_{<i})
@@ -122,6 +134,23 @@ pub fn conjugate_gradient(
     tol: f64,
     max_iters: usize,
 ) -> CgResult {
+    let pre = |r: &Array1<f64>| match precond {
+        Some(c) => c.solve(r),
+        None => r.clone(),
+    };
+    conjugate_gradient_with(apply, b, x0, pre, tol, max_iters)
+}
+
+/// [`conjugate_gradient`] with any symmetric positive definite preconditioner `r ↦ M⁻¹ r` (for example the
+/// damped Kronecker-factored inverse of [`super::kron::KronFactors::solve_damped`]).
+pub fn conjugate_gradient_with(
+    apply: impl Fn(&Array1<f64>) -> Array1<f64>,
+    b: &Array1<f64>,
+    x0: Option<Array1<f64>>,
+    pre: impl Fn(&Array1<f64>) -> Array1<f64>,
+    tol: f64,
+    max_iters: usize,
+) -> CgResult {
     let bnorm = b.dot(b).sqrt();
     let mut x = x0.unwrap_or_else(|| Array1::zeros(b.len()));
     if bnorm == 0.0 {
@@ -133,10 +162,6 @@ pub fn conjugate_gradient(
         };
     }
     let mut r = b - &apply(&x);
-    let pre = |r: &Array1<f64>| match precond {
-        Some(c) => c.solve(r),
-        None => r.clone(),
-    };
     let mut z = pre(&r);
     let mut d = z.clone();
     let mut rz = r.dot(&z);

@@ -31,12 +31,14 @@
 
 mod anchor;
 pub mod features;
+pub mod kron;
 pub mod learner;
 pub mod linalg;
 pub mod repair;
 pub mod stories;
 pub mod summary;
 pub mod sweep;
+pub mod truncated;
 
 #[cfg(test)]
 mod tests;

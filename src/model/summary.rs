@@ -4,6 +4,11 @@
 //! intercept and 8 classes that is 264² ≈ 70 000 doubles ≈ 0.56 MB — plus the reservoir of at most
 //! `pool_reservoir` items (`p` doubles each: 4,096 × 33 × 8 B ≈ 1.1 MB at the default), whatever the pool
 //! size.
+//!
+//! Above the dense threshold (`p·K > dense_max_params`) the Hessian is kept as Kronecker factors
+//! `H_P ≈ B ⊗ A` instead ([`super::kron`]): `p² + K²` doubles, plus as many again for their cached
+//! eigendecompositions — for 768 features and 20 classes about 2 × 769² × 8 B ≈ 9.5 MB, plus the
+//! reservoir (4,096 × 769 × 8 B ≈ 25 MB), where the dense Hessian would take 15,380² × 8 B ≈ 1.9 GB.
 
 use std::sync::{Arc, OnceLock};
 use std::time::Instant;
@@ -11,6 +16,7 @@ use std::time::Instant;
 use ndarray::{Array1, Array2, ArrayView2};
 use serde::{Deserialize, Serialize};
 
+use super::kron::KronFactors;
 use super::learner::{
     flatten_pk, one_hot, solve, vstack, weights_view, Objective, Quadratic, INTERCEPT_RIDGE,
 };
@@ -39,8 +45,13 @@ pub struct PoolSummary {
     pub loss: f64,
     /// `g_P`, length `p·K`.
     pub grad: Array1<f64>,
-    /// `H_P`, `(p·K) × (p·K)`.
+    /// `H_P`, `(p·K) × (p·K)`; empty (`0 × 0`) when [`PoolSummary::kron`] holds the curvature.
     pub hess: Array2<f64>,
+    /// `H_P ≈ B ⊗ A`, Kronecker factors standing for the Hessian above the dense threshold
+    /// (`p·K > dense_max_params` when the summary was created); `None` (and summaries saved before it
+    /// existed) means the dense `hess`.
+    #[serde(default)]
+    pub kron: Option<KronFactors>,
     /// Pool size at the last exact refresh.
     pub exact_at_n: u64,
     /// Mapped features `φ` of the reservoir: a uniform random sample of at most
@@ -81,8 +92,10 @@ pub struct PoolTerm {
     pub center: Array1<f64>,
     /// `g` of the quadratic.
     pub grad: Array1<f64>,
-    /// `H` of the quadratic.
+    /// `H` of the quadratic (dense; empty when `kron` holds it, or when the curvature is zero).
     pub hess: Array2<f64>,
+    /// `H ≈ B ⊗ A` of the quadratic above the dense threshold.
+    pub kron: Option<Arc<KronFactors>>,
 }
 
 impl PoolTerm {
@@ -93,6 +106,7 @@ impl PoolTerm {
             center: self.center.view(),
             grad: self.grad.view(),
             hess: self.hess.view(),
+            kron: self.kron.as_deref(),
         }
     }
 
@@ -153,10 +167,37 @@ impl<T> std::fmt::Debug for Cache<T> {
 }
 
 impl PoolSummary {
-    /// An empty pool (`n_P = 0`, `W_P = 0`).
+    /// An empty pool (`n_P = 0`, `W_P = 0`), dense up to the default `dense_max_params` parameters and
+    /// Kronecker-factored above (see [`PoolSummary::empty_with_threshold`]).
     pub fn empty(feature_map: FeatureMap, n_classes: usize) -> Self {
+        Self::empty_with_threshold(
+            feature_map,
+            n_classes,
+            ModelSettings::default().dense_max_params,
+        )
+    }
+
+    /// An empty pool whose curvature is a dense Hessian when `p·K ≤ dense_max_params`, else Kronecker
+    /// factors (zero until items arrive).
+    pub fn empty_with_threshold(
+        feature_map: FeatureMap,
+        n_classes: usize,
+        dense_max_params: usize,
+    ) -> Self {
         let p = feature_map.output_dim();
         let m = p * n_classes;
+        let kronecker = m > dense_max_params;
+        let (hess, kron) = if kronecker {
+            (
+                Array2::zeros((0, 0)),
+                Some(KronFactors::new(
+                    Array2::zeros((p, p)),
+                    Array2::zeros((n_classes, n_classes)),
+                )),
+            )
+        } else {
+            (Array2::zeros((m, m)), None)
+        };
         Self {
             version: 1,
             n: 0,
@@ -165,7 +206,8 @@ impl PoolSummary {
             w: Array2::zeros((p, n_classes)),
             loss: 0.0,
             grad: Array1::zeros(m),
-            hess: Array2::zeros((m, m)),
+            hess,
+            kron,
             exact_at_n: 0,
             reservoir_phi: Array2::zeros((0, p)),
             reservoir_y: Vec::new(),
@@ -191,7 +233,7 @@ impl PoolSummary {
                 y.len()
             )));
         }
-        let mut out = Self::empty(feature_map, n_classes);
+        let mut out = Self::empty_with_threshold(feature_map, n_classes, settings.dense_max_params);
         if y.is_empty() {
             return Ok((
                 out,
@@ -213,19 +255,28 @@ impl PoolSummary {
             prior: None,
         };
         let init = Array1::zeros(phi.ncols() * n_classes);
-        let (theta, report) = solve(
-            settings,
-            &obj,
-            init,
-            Instant::now() + settings.time_budget(),
-        );
+        let deadline = Instant::now() + settings.time_budget();
+        let (theta, report) = if out.kron.is_some() {
+            fit_kronecker(settings, &obj, init, deadline)
+        } else {
+            solve(settings, &obj, init, deadline)
+        };
         let (f, g, prob) = obj.value_grad(&theta);
         let (pen_f, pen_g) = penalty(&theta, phi.ncols(), settings.l2);
         out.n = y.len() as u64;
         out.exact_at_n = out.n;
         out.loss = f - pen_f;
         out.grad = g - pen_g;
-        out.hess = obj.data_hessian(prob.view());
+        if out.kron.is_some() {
+            out.kron = Some(KronFactors::from_data(
+                phi.view(),
+                prob.view(),
+                None,
+                y.len() as f64,
+            ));
+        } else {
+            out.hess = obj.data_hessian(prob.view());
+        }
         out.w = weights_view(&theta, phi.ncols(), n_classes).to_owned();
         Ok((out, report))
     }
@@ -315,9 +366,28 @@ impl PoolSummary {
         // [ℓ̄_R(θ) − q_R(θ)] for the loss, [∇ℓ̄_R(θ) − g_R − H_R d] for the gradient, [∇²ℓ̄_R(θ) − H_R] for
         // the Hessian.
         let d = &theta - &theta_p;
-        let hd = self.hess.dot(&d);
+        let hd = match &self.kron {
+            Some(f) => f.matvec(&d),
+            None => self.hess.dot(&d),
+        };
         let mut pool_loss = self.loss + self.grad.dot(&d) + 0.5 * d.dot(&hd);
         let mut pool_grad = &self.grad + &hd;
+        if let Some(f) = self.kron.take() {
+            // Kronecker mode: the pool's factors carried, combined with the batch's at the new optimum;
+            // when the reservoir holds the whole pool, the refresh below replaces them by exact ones.
+            let w_p = n_p / norm;
+            self.loss = w_p * pool_loss + fb;
+            self.grad = pool_grad * w_p + gb;
+            let fb_factors = KronFactors::from_data(phi.view(), prob.view(), None, norm);
+            self.kron = Some(f.combine(w_p, &fb_factors));
+            self.w = weights_view(&theta, p, k).to_owned();
+            self.offer(phi.view(), y, settings.pool_reservoir, settings.seed);
+            self.n += y.len() as u64;
+            self.curvature = Cache::default();
+            self.expansion = Cache::default();
+            self.refresh_from_reservoir(settings);
+            return Ok(report);
+        }
         let mut pool_hess = self.hess.clone();
         if term.as_ref().is_some_and(|t| t.rows.is_some()) {
             let e = self.reservoir_expansion(settings.l2);
@@ -360,7 +430,7 @@ impl PoolSummary {
     /// `H_P`, so `H_P + R` is a good fixed matrix for the chord method ([`super::learner::train_chord`])
     /// whatever the batch — it does not depend on the batch or on `N`, and is computed once per summary.
     pub fn curvature_factor(&self, l2: f64) -> Option<Arc<Cholesky>> {
-        if self.n == 0 {
+        if self.n == 0 || self.kron.is_some() {
             return None;
         }
         let trace: f64 = self.hess.diag().sum();
@@ -422,6 +492,9 @@ impl PoolSummary {
         let use_reservoir = !self.reservoir_y.is_empty()
             && self.reservoir_phi.nrows() == self.reservoir_y.len()
             && (batch_len as f64) >= settings.reservoir_min_share * n;
+        if let Some(f) = &self.kron {
+            return self.kron_term(settings, f, use_reservoir);
+        }
         if !use_reservoir {
             return PoolTerm {
                 n,
@@ -429,6 +502,7 @@ impl PoolSummary {
                 center: self.theta(),
                 grad: self.grad.clone(),
                 hess: self.hess.clone(),
+                kron: None,
             };
         }
         let e = self.reservoir_expansion(settings.l2);
@@ -443,7 +517,63 @@ impl PoolSummary {
             center: self.theta(),
             grad: &self.grad - &e.1,
             hess: &self.hess - &e.2,
+            kron: None,
         }
+    }
+
+    /// [`PoolSummary::term`] in Kronecker mode. The reservoir enters only when it holds the whole pool
+    /// (then its rows are the pool exactly, and the quadratic keeps only the small carried gradient
+    /// `g_P − g_R`, with no curvature); otherwise the quadratic with `H ≈ B ⊗ A` stands for the pool
+    /// alone — a sampled remainder would need the reservoir's own dense Hessian. The factors'
+    /// eigendecompositions are computed here, once per summary, so that every assessment shares them.
+    fn kron_term(
+        &self,
+        settings: &ModelSettings,
+        f: &KronFactors,
+        use_reservoir: bool,
+    ) -> PoolTerm {
+        let n = self.n as f64;
+        if use_reservoir && self.reservoir_is_whole_pool() {
+            let (_, g_r) = self.reservoir_loss_grad(settings.l2);
+            return PoolTerm {
+                n,
+                rows: Some((
+                    self.reservoir_phi.clone(),
+                    one_hot(&self.reservoir_y, self.n_classes),
+                    1.0,
+                )),
+                center: self.theta(),
+                grad: &self.grad - &g_r,
+                hess: Array2::zeros((0, 0)),
+                kron: None,
+            };
+        }
+        f.prepare();
+        PoolTerm {
+            n,
+            rows: None,
+            center: self.theta(),
+            grad: self.grad.clone(),
+            hess: Array2::zeros((0, 0)),
+            kron: Some(Arc::new(f.clone())),
+        }
+    }
+
+    /// The reservoir's mean cross-entropy and its gradient at `θ_P` (no Hessian).
+    fn reservoir_loss_grad(&self, l2: f64) -> (f64, Array1<f64>) {
+        let y = one_hot(&self.reservoir_y, self.n_classes);
+        let obj = Objective {
+            phi: self.reservoir_phi.view(),
+            y: y.view(),
+            weight: None,
+            norm: self.reservoir_y.len().max(1) as f64,
+            l2,
+            prior: None,
+        };
+        let theta = self.theta();
+        let (f, g, _) = obj.value_grad(&theta);
+        let (pen_f, pen_g) = penalty(&theta, self.reservoir_phi.ncols(), l2);
+        (f - pen_f, g - pen_g)
     }
 
     /// Offer items to the reservoir (Algorithm R): item number `t` (0-based over the pool's history) is
@@ -484,12 +614,42 @@ impl PoolSummary {
     /// When the reservoir holds the whole pool, replace the carried loss, gradient and Hessian by their
     /// exact values over the pool's items at `θ_P` (an exact refresh for free while the pool is small).
     fn refresh_from_reservoir(&mut self, settings: &ModelSettings) {
+        if self.reservoir_is_whole_pool() && self.kron.is_some() {
+            let (f, g) = self.reservoir_loss_grad(settings.l2);
+            let y = one_hot(&self.reservoir_y, self.n_classes);
+            let obj = Objective {
+                phi: self.reservoir_phi.view(),
+                y: y.view(),
+                weight: None,
+                norm: self.reservoir_y.len() as f64,
+                l2: settings.l2,
+                prior: None,
+            };
+            let (_, _, prob) = obj.value_grad(&self.theta());
+            self.loss = f;
+            self.grad = g;
+            self.kron = Some(KronFactors::from_data(
+                self.reservoir_phi.view(),
+                prob.view(),
+                None,
+                self.reservoir_y.len() as f64,
+            ));
+            return;
+        }
         if self.reservoir_is_whole_pool() {
             let e = self.reservoir_expansion(settings.l2);
             self.loss = e.0;
             self.grad = e.1.clone();
             self.hess = e.2.clone();
             self.curvature = Cache::default();
+        }
+    }
+
+    /// Compute what scoring against this summary caches on first use (the Kronecker factors'
+    /// eigendecompositions, `O(p³)`), so that the first batch is not slower than the others.
+    pub fn prepare(&self) {
+        if let Some(f) = &self.kron {
+            f.prepare();
         }
     }
 
@@ -505,16 +665,45 @@ impl PoolSummary {
 
     /// Bytes held by the summary's arrays.
     ///
-    /// The quadratic model is `p·K + p·K + (p·K)²` doubles; the reservoir `|R|·p` doubles plus its labels;
-    /// while the reservoir is in use, the caches hold one more `(p·K)²` Hessian and its Cholesky factor.
+    /// The quadratic model is `p·K + p·K + (p·K)²` doubles (`p² + K²` for Kronecker factors, counted
+    /// twice for their cached eigendecompositions); the reservoir `|R|·p` doubles plus its labels; in dense
+    /// mode, while the reservoir is in use, the caches hold one more `(p·K)²` Hessian and its Cholesky
+    /// factor.
     pub fn memory_bytes(&self) -> usize {
         8 * (self.w.len()
             + self.grad.len()
             + self.hess.len()
+            + self.kron.as_ref().map_or(0, |f| 2 * f.len())
             + self.feature_map.omega.len()
             + self.reservoir_phi.len())
             + std::mem::size_of::<usize>() * self.reservoir_y.len()
     }
+}
+
+/// The pool's own fit above the dense threshold: truncated Newton ([`super::truncated`]) preconditioned by
+/// the Kronecker factors of the data Hessian at the start (`θ = 0`: every item has the uniform class
+/// curvature there, so the factors are exact at the start and a fair approximation along the way),
+/// damped by the ridge `λ`.
+fn fit_kronecker(
+    settings: &ModelSettings,
+    obj: &Objective<'_>,
+    init: Array1<f64>,
+    deadline: Instant,
+) -> (Array1<f64>, TrainReport) {
+    let prob = super::learner::predict_proba(obj.phi, &init, obj.classes());
+    let factors = KronFactors::from_data(obj.phi, prob.view(), obj.weight, obj.norm);
+    let l2 = settings.l2;
+    let pre = move |r: &Array1<f64>| factors.solve_damped(1.0, l2, r);
+    let (theta, report, _) = super::truncated::train_newton_cg(
+        obj,
+        init,
+        &pre,
+        settings.inner_tol,
+        settings.inner_max_iters,
+        settings.cg_max_iters,
+        deadline,
+    );
+    (theta, report)
 }
 
 /// Value and gradient of the penalty `(λ/2)‖W_{0..p−1}‖² + (ε/2)‖W_{p−1}‖²` (see [`super::learner`]).

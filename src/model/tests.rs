@@ -475,6 +475,7 @@ fn derivatives_match_finite_differences_with_weights_soft_labels_and_a_prior() {
             center: center.view(),
             grad: qgrad.view(),
             hess: qhess.view(),
+            kron: None,
         }),
     };
     let naive = |theta: &Array1<f64>| -> f64 {
@@ -528,4 +529,114 @@ fn derivatives_match_finite_differences_with_weights_soft_labels_and_a_prior() {
             "hessian·v {b} vs hvp {a}"
         );
     }
+}
+
+/// Above the dense threshold the summary keeps Kronecker factors (not `(p·K)²` numbers), survives a JSON
+/// round trip with them, and a summary saved before the factors existed (no `kron` key) still loads, as a
+/// dense one.
+#[test]
+fn kronecker_summaries_round_trip_and_old_summaries_still_load() {
+    let k = 3;
+    let (x, y) = blobs(300, 4, k, 40);
+    let stdz = Standardizer::fit(&[x.view()]).unwrap();
+    let fm = FeatureMap::new(stdz, FeatureMapKind::Linear, 1).unwrap();
+    let kron_settings = ModelSettings {
+        dense_max_params: 0,
+        ..ModelSettings::default()
+    };
+    let (ks, rep) = PoolSummary::fit(&kron_settings, fm.clone(), k, x.view(), &y).unwrap();
+    assert!(rep.converged, "{rep:?}");
+    assert!(ks.hess.is_empty());
+    let f = ks
+        .kron
+        .as_ref()
+        .expect("Kronecker factors above the threshold");
+    assert_eq!(f.dims(), (5, 3));
+    // JSON keeps every number to within its last digit.
+    let back: PoolSummary = serde_json::from_str(&serde_json::to_string(&ks).unwrap()).unwrap();
+    let bf = back.kron.as_ref().expect("factors survive the round trip");
+    assert!(max_abs(&(&bf.a - &f.a)) <= 1e-12 * max_abs(&f.a));
+    assert!(max_abs(&(&bf.b - &f.b)) <= 1e-12 * max_abs(&f.b));
+    assert!(max_abs(&(&back.w - &ks.w)) <= 1e-12 * max_abs(&ks.w));
+    let (ds, _) = PoolSummary::fit(&ModelSettings::default(), fm, k, x.view(), &y).unwrap();
+    assert!(ds.kron.is_none());
+    let mut old = serde_json::to_value(&ds).unwrap();
+    old.as_object_mut().unwrap().remove("kron");
+    let loaded: PoolSummary = serde_json::from_value(old).unwrap();
+    assert!(loaded.kron.is_none());
+    assert_eq!(loaded.hess.dim(), (15, 15));
+    assert!(max_abs(&(&loaded.hess - &ds.hess)) <= 1e-12 * max_abs(&ds.hess));
+    // Factors and their eigendecompositions (2 × (5² + 3²)) against the dense 15² Hessian.
+    assert!(ks.memory_bytes() < ds.memory_bytes());
+    // The same optimum either way (the solvers differ, the objective does not).
+    let diff = max_abs(&(&ks.w - &ds.w));
+    assert!(diff <= 1e-5 * max_abs(&ds.w), "max |ΔW| {diff}");
+}
+
+/// The Kronecker-factored engine (threshold forced to 0) against the exact dense one on a small problem
+/// where both run: the same suspicion ranking up to the approximation of the pool's curvature.
+#[test]
+fn kronecker_engine_agrees_with_the_dense_engine_on_a_small_problem() {
+    let k = 3;
+    let (xp, yp) = blobs(2000, 4, k, 50);
+    let (xt, yt) = blobs(24, 4, k, 51);
+    let (xb, mut yb) = blobs(200, 4, k, 52);
+    for v in yb.iter_mut().take(20) {
+        *v = (*v + 1) % k;
+    }
+    let stdz = Standardizer::fit(&[xt.view(), xp.view()]).unwrap();
+    let ct = Array1::from_elem(yt.len(), 1.0);
+    let trusted = TrustedInput {
+        x: xt.view(),
+        y: &yt,
+        weight: ct.view(),
+    };
+    let run = |settings: &ModelSettings| {
+        let fm = FeatureMap::new(stdz.clone(), settings.feature_map, settings.seed).unwrap();
+        let (mut s, _) = PoolSummary::fit(settings, fm, k, xp.view(), &yp).unwrap();
+        // Stand for a large pool, so that the quadratic (not the reservoir) carries it.
+        s.n = 100_000;
+        let a = assess(
+            settings,
+            &stdz,
+            k,
+            trusted,
+            PoolInput::Summary(&s),
+            xb.view(),
+            &yb,
+        )
+        .unwrap();
+        (s, a)
+    };
+    let (ds, dense) = run(&ModelSettings::default());
+    let (ks, kron) = run(&ModelSettings {
+        dense_max_params: 0,
+        ..ModelSettings::default()
+    });
+    assert!(ds.kron.is_none() && ks.kron.is_some());
+    let c = &kron.convergence;
+    assert!(c.inner_converged && c.linear_converged, "{c:?}");
+    let a: Vec<f64> = dense.items.iter().map(|i| i.suspicion).collect();
+    let b: Vec<f64> = kron.items.iter().map(|i| i.suspicion).collect();
+    // Spearman's ρ as the correlation of ranks (ties by index; common practice, no outside source).
+    let ranks = |v: &[f64]| {
+        let mut order: Vec<usize> = (0..v.len()).collect();
+        order.sort_by(|&i, &j| v[i].total_cmp(&v[j]).then(i.cmp(&j)));
+        let mut r = vec![0.0; v.len()];
+        for (pos, &i) in order.iter().enumerate() {
+            r[i] = pos as f64;
+        }
+        (r, order)
+    };
+    let ((ra, oa), (rb, ob)) = (ranks(&a), ranks(&b));
+    let n = a.len() as f64;
+    let d2: f64 = ra.iter().zip(&rb).map(|(x, y)| (x - y).powi(2)).sum();
+    let rho = 1.0 - 6.0 * d2 / (n * (n * n - 1.0));
+    let ta: Vec<usize> = oa.iter().rev().take(20).copied().collect();
+    let tb: Vec<usize> = ob.iter().rev().take(20).copied().collect();
+    let shared = ta.iter().filter(|i| tb.contains(i)).count();
+    assert!(rho >= 0.99, "Spearman {rho}");
+    assert!(shared >= 18, "top-20 shared {shared}");
+    let flipped: Vec<bool> = (0..200).map(|i| i < 20).collect();
+    assert!(auroc(&b, &flipped) >= 0.9, "AUROC {}", auroc(&b, &flipped));
 }

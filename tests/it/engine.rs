@@ -275,6 +275,7 @@ impl SmallProblem {
                 center: c.view(),
                 grad: g.view(),
                 hess: h.view(),
+                kron: None,
             }),
         }
     }

@@ -11,7 +11,8 @@ use super::reference::PoolRows;
 use crate::model::learner::{
     logits, one_hot, solve_factored, train_chord, trusted_loss, vstack, Objective,
 };
-use crate::model::linalg::{conjugate_gradient, Cholesky};
+use crate::model::linalg::{conjugate_gradient, conjugate_gradient_with, Cholesky};
+use crate::model::truncated::kron_preconditioner;
 use crate::model::{ModelSettings, PoolTerm};
 
 /// The training problem over pool ∪ batch: mapped features with the pool's rows (the pool's items in exact
@@ -157,14 +158,27 @@ impl Ctx<'_> {
             HessianSolver::Cg { prob } => {
                 let y_all = self.inner.labels(lin.y_anchor.view());
                 let obj = self.inner.objective(&y_all);
-                let res = conjugate_gradient(
-                    |v| obj.hvp(prob.view(), v),
-                    rhs,
-                    warm,
-                    None,
-                    self.settings.cg_tol,
-                    self.settings.cg_max_iters,
-                );
+                let res = if obj.prior.is_some_and(|q| q.kron.is_some()) {
+                    // Above the dense threshold: preconditioned by the pool summary's Kronecker factors,
+                    // `(a B ⊗ A + λ I)⁻¹`, nearly `H⁻¹` when the pool outweighs the batch.
+                    conjugate_gradient_with(
+                        |v| obj.hvp(prob.view(), v),
+                        rhs,
+                        warm,
+                        kron_preconditioner(&obj),
+                        self.settings.cg_tol,
+                        self.settings.cg_max_iters,
+                    )
+                } else {
+                    conjugate_gradient(
+                        |v| obj.hvp(prob.view(), v),
+                        rhs,
+                        warm,
+                        None,
+                        self.settings.cg_tol,
+                        self.settings.cg_max_iters,
+                    )
+                };
                 let mut c = self.conv.borrow_mut();
                 c.linear_iterations += res.iterations as u64;
                 if !res.converged {

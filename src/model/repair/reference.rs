@@ -35,6 +35,52 @@ fn folds(y: &[usize], k: usize, n_folds: usize, seed: u64) -> Vec<usize> {
     out
 }
 
+/// The span of a training set's feature rows, for fitting the learner with fewer parameters than
+/// features.
+///
+/// With `F` the training rows' features (`n × d`, the intercept column left out), the penalised optimum's
+/// weights lie in the row span of `F` (representer theorem: the data term's gradient `Fᵀ R` lies there, the
+/// penalty `λ‖W‖²` is isotropic and the intercept is apart), so `W = Q V` with the orthonormal basis
+/// `Q = Fᵀ L⁻ᵀ`, `L Lᵀ = F Fᵀ` (Cholesky of the Gram matrix), and `‖W‖ = ‖V‖`. A row `x` maps to
+/// `z = L⁻¹ F x` (`n` numbers) plus the intercept; the learner on `[z, 1]` is the learner on `[x, 1]`.
+/// A relative jitter of `1e-12` on the Gram matrix's diagonal keeps the factorisation defined (the basis
+/// is then orthonormal to that accuracy); `None` when the rows are numerically dependent.
+struct RowSpan {
+    /// `F`, `n × d`.
+    f: Array2<f64>,
+    /// Cholesky factor of `F Fᵀ`.
+    chol: crate::model::linalg::Cholesky,
+}
+
+impl RowSpan {
+    fn new(phi: &Array2<f64>) -> Option<Self> {
+        let d = phi.ncols() - 1;
+        let f = phi.slice(ndarray::s![.., ..d]).to_owned();
+        let mut g = f.dot(&f.t());
+        let n = g.nrows();
+        let jitter = 1e-12 * g.diag().sum() / n.max(1) as f64;
+        for i in 0..n {
+            g[[i, i]] += jitter;
+        }
+        let chol = crate::model::linalg::Cholesky::factor(g)?;
+        Some(Self { f, chol })
+    }
+
+    /// Rows `[L⁻¹ F x, 1]` for the rows `x` of `phi` (intercept last, as the learner expects).
+    fn map(&self, phi: &Array2<f64>) -> Array2<f64> {
+        let d = self.f.ncols();
+        let n = self.f.nrows();
+        let cross = self.f.dot(&phi.slice(ndarray::s![.., ..d]).t());
+        let mut out = Array2::zeros((phi.nrows(), n + 1));
+        for (r, col) in cross.columns().into_iter().enumerate() {
+            let z = self.chol.solve_lower(&col.to_owned());
+            out.slice_mut(ndarray::s![r, ..n]).assign(&z);
+            out[[r, n]] = 1.0;
+        }
+        out
+    }
+}
+
 /// Stratified `cv_folds`-fold cross-validation of the learner on the trusted items alone (weighted):
 /// returns the weighted mean out-of-fold loss `Φ_cv` and the out-of-fold predicted classes.
 fn trusted_cross_validation(
@@ -61,15 +107,25 @@ fn trusted_cross_validation(
         let phi_tr = phi_t.select(Axis(0), &train);
         let y_tr = one_hot(&train.iter().map(|&i| trusted.y[i]).collect::<Vec<_>>(), k);
         let w_tr = Array1::from_iter(train.iter().map(|&i| trusted.weight[i]));
+        let phi_te = phi_t.select(Axis(0), &test);
+        // Above the dense threshold, with fewer training items than features, the fold is fitted in the
+        // span of its own rows (exactly the same model, far fewer parameters; see `RowSpan`).
+        let span = (m > settings.dense_max_params && train.len() + 1 < phi_t.ncols())
+            .then(|| RowSpan::new(&phi_tr))
+            .flatten();
+        let (phi_fit, phi_pred) = match &span {
+            Some(sp) => (sp.map(&phi_tr), sp.map(&phi_te)),
+            None => (phi_tr, phi_te),
+        };
         let obj = Objective {
-            phi: phi_tr.view(),
+            phi: phi_fit.view(),
             y: y_tr.view(),
             weight: Some(w_tr.view()),
             norm: w_tr.sum().max(f64::MIN_POSITIVE),
             l2: settings.l2,
             prior: None,
         };
-        let (theta, rep) = solve(settings, &obj, Array1::zeros(m), deadline);
+        let (theta, rep) = solve(settings, &obj, Array1::zeros(phi_fit.ncols() * k), deadline);
         conv.inner_iterations += rep.iterations;
         if !rep.converged {
             conv.inner_converged = false;
@@ -78,8 +134,7 @@ fn trusted_cross_validation(
                 rep.stopped
             ));
         }
-        let phi_te = phi_t.select(Axis(0), &test);
-        let prob = predict_proba(phi_te.view(), &theta, k);
+        let prob = predict_proba(phi_pred.view(), &theta, k);
         for (r, &i) in test.iter().enumerate() {
             let c = trusted.weight[i];
             loss += c * -(prob[[r, trusted.y[i]]].max(1e-300)).ln();
@@ -340,5 +395,53 @@ pub(crate) fn reference(
         target_basis,
         p_ref,
         reference,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::model::learner::train_newton;
+    use rand::Rng;
+    use std::time::Duration;
+
+    /// Fewer items than features: the learner fitted in the span of the training rows predicts exactly
+    /// what the learner fitted on all features predicts (the representer theorem behind `RowSpan`), on
+    /// rows it has not seen.
+    #[test]
+    fn fitting_in_the_row_span_gives_the_full_model() {
+        let (n, d, k) = (9, 20, 3);
+        let mut rng = ChaCha8Rng::seed_from_u64(3);
+        let mut rows = |n: usize| {
+            let mut x = Array2::from_shape_fn((n, d + 1), |_| rng.random_range(-1.0..1.0));
+            x.column_mut(d).fill(1.0);
+            x
+        };
+        let (train, test) = (rows(n), rows(6));
+        let y = one_hot(&(0..n).map(|i| i % k).collect::<Vec<_>>(), k);
+        let fit = |phi: &Array2<f64>| {
+            let obj = Objective {
+                phi: phi.view(),
+                y: y.view(),
+                weight: None,
+                norm: n as f64,
+                l2: 0.05,
+                prior: None,
+            };
+            let deadline = Instant::now() + Duration::from_secs(30);
+            let (theta, rep) =
+                train_newton(&obj, Array1::zeros(phi.ncols() * k), 1e-11, 200, deadline);
+            assert!(rep.converged, "{rep:?}");
+            theta
+        };
+        let full = predict_proba(test.view(), &fit(&train), k);
+        let span = RowSpan::new(&train).expect("independent rows");
+        let mapped = span.map(&train);
+        assert_eq!(mapped.ncols(), n + 1);
+        let reduced = predict_proba(span.map(&test).view(), &fit(&mapped), k);
+        let diff = (&full - &reduced)
+            .iter()
+            .fold(0.0f64, |m, v| m.max(v.abs()));
+        assert!(diff < 1e-6, "max probability difference {diff}");
     }
 }
