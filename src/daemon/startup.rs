@@ -6,7 +6,7 @@ use std::collections::HashSet;
 use super::DaemonError;
 use crate::config::Config;
 use crate::metrics::Metrics;
-use crate::pipeline::file;
+use crate::pipeline::{file, ingest};
 use crate::pipeline::score::{self, PoolState, TrustedArrays};
 use crate::pipeline::ScoringError;
 use crate::review;
@@ -117,7 +117,13 @@ pub fn reconcile(
         if rec.state != BatchState::Claimed {
             continue;
         }
-        if std::fs::symlink_metadata(ws.processing().join(&rec.file_name)).is_ok() {
+        let left_in_place = ingest::is_claimed_folder(&rec)
+            && std::fs::symlink_metadata(
+                ws.vendor_inbox(&rec.vendor)
+                    .join(ingest::folder_left_in_place(&rec.id)),
+            )
+            .is_ok();
+        if left_in_place || std::fs::symlink_metadata(ws.processing().join(&rec.file_name)).is_ok() {
             redo.push(rec);
         } else {
             let escaped = rec.original_name.contains("\\x") || rec.original_name.contains("\\u{");
