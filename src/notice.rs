@@ -776,11 +776,7 @@ pub fn write_notice(
     if settings.csv {
         files.push((format!("{stem}.items.csv"), n.to_csv()?));
     }
-    crate::fsx::write_atomic_all(
-        vendor_dir,
-        &files,
-        Some(crate::workspace::NOTICE_FILE_MODE),
-    )
+    crate::fsx::write_atomic_all(vendor_dir, &files, Some(crate::workspace::NOTICE_FILE_MODE))
 }
 
 mod markdown;

@@ -122,7 +122,9 @@ impl<'a> Builder<'a> {
         let missing = |want: &str| {
             // A header made of numbers is most likely a data row: say so.
             let hint = if let Some(kind) = other_delimiter(&names) {
-                format!("; the header looks {kind}-separated; labelweir reads comma-separated files")
+                format!(
+                    "; the header looks {kind}-separated; labelweir reads comma-separated files"
+                )
             } else if names.iter().any(|n| n.trim().parse::<f64>().is_ok()) {
                 "; the first line looks like data: the file needs a header row".to_string()
             } else {

@@ -279,7 +279,12 @@ fn temporary_files_left_by_a_killed_writer_are_removed_at_start() {
 }
 
 /// Run `labelweir ARGS` as `uid`:`gid` (no supplementary groups), with `env`.
-pub(crate) fn run_as(uid: u32, gid: u32, args: &[&str], env: &[(&str, &str)]) -> std::process::Output {
+pub(crate) fn run_as(
+    uid: u32,
+    gid: u32,
+    args: &[&str],
+    env: &[(&str, &str)],
+) -> std::process::Output {
     Command::new("setpriv")
         .args([
             &format!("--reuid={uid}"),

@@ -119,9 +119,17 @@ fn a_folder_in_a_vendor_folder_is_rejected_once_and_claims_go_on() {
     assert_eq!(ws.settled(), 2);
     assert!(!d.log_text().contains("claim failed"), "{}", d.log_text());
     assert!(d.stop().success());
-    let rejected = ids_in(&ws, "rejected");
-    assert_eq!(rejected.len(), 1, "{rejected:?}");
-    let id = &rejected[0];
+    // The folder stayed in the inbox, so rejected/ holds its report only.
+    let reports: Vec<String> = std::fs::read_dir(ws.path("rejected"))
+        .unwrap()
+        .flatten()
+        .map(|e| e.file_name().to_string_lossy().into_owned())
+        .collect();
+    assert_eq!(reports.len(), 1, "{reports:?}");
+    let id = &reports[0]
+        .strip_suffix(".report.json")
+        .unwrap_or_else(|| panic!("{reports:?}"))
+        .to_string();
     let report = ws.report("rejected", id);
     assert_eq!(report["reject"]["code"], "folder_not_a_batch", "{report}");
     // The folder is where the reason says, its contents untouched.
@@ -138,7 +146,10 @@ fn a_folder_in_a_vendor_folder_is_rejected_once_and_claims_go_on() {
     assert!(!dir.exists());
     // The vendor is told, in its notice folder.
     let notice = ws.notice("north-sort", id);
-    assert_eq!(notice["reasons"][0]["code"], "folder_not_a_batch", "{notice}");
+    assert_eq!(
+        notice["reasons"][0]["code"], "folder_not_a_batch",
+        "{notice}"
+    );
     assert_eq!(ws.files_in("accepted").len(), 1);
     // A restart does not take the hidden folder in again.
     let d = start_as_service_user(&ws);
@@ -154,7 +165,11 @@ fn a_folder_in_a_vendor_folder_is_rejected_once_and_claims_go_on() {
 /// `init` and the daemon both run as the service user here, with a permissive umask (022).
 #[test]
 fn notice_folders_and_files_are_closed_to_other_users() {
-    assert_eq!(crate::harden::current_uid(), 0, "drops privileges: run as root");
+    assert_eq!(
+        crate::harden::current_uid(),
+        0,
+        "drops privileges: run as root"
+    );
     let tmp = tempfile::tempdir().unwrap();
     std::fs::set_permissions(tmp.path(), std::fs::Permissions::from_mode(0o755)).unwrap();
     let trusted = tmp.path().join("trusted.csv");
@@ -221,7 +236,11 @@ fn notice_folders_and_files_are_closed_to_other_users() {
     };
     let d = start_as_service_user(&ws);
     let west = dir.join("notices/west-bins");
-    assert_eq!(mode(&west), 0o750, "notices/west-bins created by the daemon");
+    assert_eq!(
+        mode(&west),
+        0o750,
+        "notices/west-bins created by the daemon"
+    );
     ws.deliver("north-sort", "broken.csv", b"id;label\nx;pet\n");
     ws.wait_settled(1, T);
     let id = ids_in(&ws, "rejected")[0].clone();
@@ -291,7 +310,12 @@ fn a_semicolon_separated_batch_gets_a_delimiter_hint() {
 
 /// Check `v` against the subset of JSON Schema that `schemas/bench-daemon.schema.json` uses (`type`,
 /// `const`, `required`, `properties`, `additionalProperties`, `minimum`); returns what does not match.
-fn schema_errors(schema: &serde_json::Value, v: &serde_json::Value, at: &str, out: &mut Vec<String>) {
+fn schema_errors(
+    schema: &serde_json::Value,
+    v: &serde_json::Value,
+    at: &str,
+    out: &mut Vec<String>,
+) {
     use serde_json::Value;
     if let Some(c) = schema.get("const") {
         if c != v {
@@ -316,10 +340,7 @@ fn schema_errors(schema: &serde_json::Value, v: &serde_json::Value, at: &str, ou
             out.push(format!("{at}: {v} is not of type {t}"));
         }
     }
-    if let (Some(min), Some(x)) = (
-        schema.get("minimum").and_then(Value::as_f64),
-        v.as_f64(),
-    ) {
+    if let (Some(min), Some(x)) = (schema.get("minimum").and_then(Value::as_f64), v.as_f64()) {
         if x < min {
             out.push(format!("{at}: {x} < {min}"));
         }
@@ -367,11 +388,16 @@ fn bench_daemon_prints_versioned_json_and_shows_progress_only_on_a_terminal() {
     let out = run_bin(&args);
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(out.status.success(), "{err}");
-    let doc: serde_json::Value = serde_json::from_slice(&out.stdout)
-        .unwrap_or_else(|e| panic!("not one JSON document ({e}): {}", String::from_utf8_lossy(&out.stdout)));
+    let doc: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap_or_else(|e| {
+        panic!(
+            "not one JSON document ({e}): {}",
+            String::from_utf8_lossy(&out.stdout)
+        )
+    });
     let schema: serde_json::Value = serde_json::from_str(
         &std::fs::read_to_string(
-            std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("schemas/bench-daemon.schema.json"),
+            std::path::Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join("schemas/bench-daemon.schema.json"),
         )
         .unwrap(),
     )
@@ -388,7 +414,10 @@ fn bench_daemon_prints_versioned_json_and_shows_progress_only_on_a_terminal() {
         .map(|n| n.as_u64().unwrap())
         .sum();
     assert_eq!(settled, 3, "{doc:#}");
-    assert!(!err.contains("batches settled"), "progress on a pipe: {err}");
+    assert!(
+        !err.contains("batches settled"),
+        "progress on a pipe: {err}"
+    );
     // Under a pseudo-terminal the progress line appears (on the terminal, which `script` copies out).
     let cmd = std::iter::once(bin())
         .chain(args.iter().copied().filter(|a| *a != "--json"))
@@ -508,5 +537,8 @@ fn a_failed_claim_is_retried_with_backoff_and_readyz_says_not_ready() {
     ws.wait_settled(1, T);
     wait_readyz(&d, 200);
     assert!(d.stop().success());
-    assert_eq!(ws.files_in("accepted").len() + ws.files_in("quarantine").len(), 1);
+    assert_eq!(
+        ws.files_in("accepted").len() + ws.files_in("quarantine").len(),
+        1
+    );
 }

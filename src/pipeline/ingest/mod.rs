@@ -55,7 +55,16 @@ use crate::text::{escape_name, is_unsafe_char};
 use crate::workspace::{free_bytes, Workspace};
 
 mod read;
-pub use read::{read_claimed, ReadFile};
+pub use read::read_claimed;
+
+fn reject(code: &str, detail: impl Into<String>) -> RejectReason {
+    RejectReason {
+        code: code.to_string(),
+        detail: detail.into(),
+        row: None,
+        column: None,
+    }
+}
 
 /// Suffixes of temporary upload names (ignored).
 pub const TEMP_SUFFIXES: [&str; 3] = [".part", ".filepart", ".tmp"];

@@ -22,15 +22,6 @@ pub struct ReadFile {
     pub stamp: FileStamp,
 }
 
-fn reject(code: &str, detail: impl Into<String>) -> RejectReason {
-    RejectReason {
-        code: code.to_string(),
-        detail: detail.into(),
-        row: None,
-        column: None,
-    }
-}
-
 /// Open `processing/<file_name>` without following links and read it, checking that it is a regular file
 /// with one link and at most `max_bytes` bytes. An input problem is `Err(Ok(reason))`; a daemon-side I/O
 /// error is `Err(Err(..))`.
@@ -146,6 +137,8 @@ fn read_all(file: &mut File, max_bytes: u64) -> std::io::Result<Vec<u8>> {
 }
 
 /// The [`FileStamp`] of an `fstat` answer.
+// The field types of `stat` differ between targets; the casts are no-ops on some of them.
+#[allow(clippy::unnecessary_cast)]
 fn stamp_of(st: &rustix::fs::Stat) -> FileStamp {
     FileStamp {
         size: st.st_size.max(0) as u64,
@@ -154,4 +147,3 @@ fn stamp_of(st: &rustix::fs::Stat) -> FileStamp {
         ino: st.st_ino as u64,
     }
 }
-
