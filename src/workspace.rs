@@ -11,6 +11,7 @@ use std::collections::HashMap;
 
 use crate::data::{self, Classes, FeatureTable, TableOptions};
 use crate::model::{FeatureMap, Standardizer};
+use crate::notice::{NOTICES_MODE, VENDOR_NOTICES_MODE};
 use crate::store::{
     AuditRecord, Provenance, Store, StoreError, TrustedItem, WorkspaceMeta, RECORD_VERSION,
 };
@@ -157,14 +158,6 @@ fn remote_filesystem_kind(f_type: i64) -> Option<&'static str> {
         .find(|(m, _)| *m == magic)
         .map(|(_, name)| *name)
 }
-
-/// Mode of `notices/`: others may pass through to their own folder but not list who else is there.
-pub const NOTICES_MODE: u32 = 0o711;
-/// Mode of `notices/<vendor>/`: the daemon and the folder's group only (the tmpfiles snippet gives each
-/// vendor's folder that vendor's group), so one vendor cannot read another's notices.
-pub const VENDOR_NOTICES_MODE: u32 = 0o750;
-/// Mode of a notice file (see [`VENDOR_NOTICES_MODE`]).
-pub const NOTICE_FILE_MODE: u32 = 0o640;
 
 impl Workspace {
     /// The mode a folder of the workspace gets when the daemon or `init` creates it, where it matters
