@@ -482,7 +482,8 @@ fn a_write_past_the_storage_limit_keeps_the_daemon_up_and_not_ready_until_space_
             .unwrap_or(0)
     }
     let limit = largest(&ws.dir) + (4 << 20);
-    let limit_arg = format!("--fsize={limit}");
+    // Soft limit only: the hard limit stays unlimited, so the daemon's own user can lift the soft one.
+    let limit_arg = format!("--fsize={limit}:unlimited");
     let d = crate::harden::start_as_service_user_under(&ws, &["prlimit", &limit_arg, "--"]);
     // Not a batch (unsupported type), so it is rejected unparsed and its bytes copied into rejected/.
     let big = vec![b'x'; limit as usize + (1 << 20)];
@@ -490,9 +491,19 @@ fn a_write_past_the_storage_limit_keeps_the_daemon_up_and_not_ready_until_space_
     let body = wait_readyz(&d, 503);
     assert!(body.contains("pipeline"), "{body}");
     d.wait_log("storage full", T);
-    // Space comes back: the limit of the running daemon is lifted, and the retry files the batch.
-    let st = Command::new("prlimit")
-        .args(["--pid", &d.pid().to_string(), "--fsize=unlimited"])
+    // Space comes back: the limit of the running daemon is lifted (by its own user: changing another
+    // user's limits needs CAP_SYS_RESOURCE, which a container's root may lack), and the retry files it.
+    let st = Command::new("setpriv")
+        .args([
+            &format!("--reuid={SERVICE_UID}"),
+            &format!("--regid={SERVICE_UID}"),
+            "--clear-groups",
+            "--",
+            "prlimit",
+            "--pid",
+            &d.pid().to_string(),
+            "--fsize=unlimited",
+        ])
         .status()
         .unwrap();
     assert!(st.success());
