@@ -37,21 +37,23 @@ fn pause(pid: u32, stop: bool) {
     assert_eq!(rc, 0, "kill({pid}, {sig})");
 }
 
-/// Issue 14, item 6. A vendor tool that cannot rename writes 20 rows, pauses past the quiet period with
-/// the file still open, and writes the other 40: the daemon claims the file after the pause, and the
+/// Issue 14, item 6. A vendor tool that cannot rename writes 2,000 rows, pauses past the quiet period
+/// with the file still open, and writes 1,000 more: the daemon claims the file after the pause, and the
 /// rename into `processing/` does not stop the writer. Before the fix the batch was judged (and filed) on
-/// the 20 rows read at the claim, and the other 40 were lost (this test failed with "items 20, not 60").
+/// the rows read at the claim and the rest was lost (this test failed with "items Some(2000), not 3000").
 /// Now the worker compares the file's size and modification time with those taken when it was read,
 /// right before the verdict, and judges it again on its full content.
 ///
-/// The daemon is paused (SIGSTOP) the moment the claim is seen, so the rest is written after the read
-/// and before the verdict whatever the machine's load.
+/// The moment of the read is seen from the file's access time (the filesystem is mounted `relatime`, the
+/// Linux default, which updates it on the first read after a write); the daemon is then paused (SIGSTOP)
+/// while the rest is written, so the append lands after the read and before the verdict.
 #[test]
 fn a_file_that_grows_after_the_quiet_period_is_judged_on_all_its_rows() {
+    use std::os::unix::fs::MetadataExt;
     let ws = Ws::new(&["north-sort"]);
     let d = Daemon::start(&ws);
-    let bytes = clean_batch("g", 60, 81).csv();
-    let cut = after_line(&bytes, 21); // the header and 20 rows
+    let bytes = clean_batch("g", 3000, 81).csv();
+    let cut = after_line(&bytes, 2001); // the header and 2,000 rows
     let path = ws.path("inbox/north-sort/growing.csv");
     let mut f = std::fs::File::create(&path).unwrap();
     f.write_all(&bytes[..cut]).unwrap();
@@ -62,7 +64,28 @@ fn a_file_that_grows_after_the_quiet_period_is_judged_on_all_its_rows() {
         assert!(t.elapsed() < T, "the file was never claimed");
         std::thread::sleep(Duration::from_millis(1));
     }
+    let claimed = ws.path("processing").join(
+        ws.files_in("processing")
+            .first()
+            .expect("the claimed file in processing/"),
+    );
+    // Read by the daemon: its access time passes its modification time.
+    loop {
+        let m = std::fs::metadata(&claimed).expect("still in processing/ (not yet judged)");
+        if (m.atime(), m.atime_nsec()) > (m.mtime(), m.mtime_nsec()) {
+            break;
+        }
+        assert!(
+            t.elapsed() < T,
+            "the access time never moved (is the filesystem mounted noatime?)"
+        );
+        std::thread::sleep(Duration::from_millis(1));
+    }
     pause(d.pid(), true);
+    assert!(
+        ws.files_in("accepted").is_empty() && ws.files_in("quarantine").is_empty(),
+        "judged before the test could append"
+    );
     f.write_all(&bytes[cut..]).unwrap();
     f.sync_all().unwrap();
     drop(f);
@@ -73,7 +96,7 @@ fn a_file_that_grows_after_the_quiet_period_is_judged_on_all_its_rows() {
     let batches = store.batches().unwrap();
     assert_eq!(batches.len(), 1, "one batch, judged once");
     let rec = &batches[0];
-    assert_eq!(rec.items, Some(60), "items {:?}, not 60", rec.items);
+    assert_eq!(rec.items, Some(3000), "items {:?}, not 3000", rec.items);
     assert_eq!(rec.bytes, Some(bytes.len() as u64));
     // The filed copy is the whole file.
     let folder = match rec.outcome {
