@@ -202,7 +202,7 @@ const MAX_REREADS: u32 = 5;
 /// What [`Worker::reread_when_quiet`] found.
 enum Again {
     /// The file as it is now.
-    Read(JobInput, Option<FileStamp>),
+    Read(Box<(JobInput, Option<FileStamp>)>),
     /// The file is gone from `processing/`.
     Gone,
     /// Shutdown began meanwhile (the file stays in `processing/` for the next start).
@@ -417,7 +417,7 @@ impl Worker {
                 continue;
             }
             match self.reread_when_quiet(&record, &path) {
-                Again::Read(i, s) => (input, stamp) = (i, s),
+                Again::Read(read) => (input, stamp) = *read,
                 Again::Gone => {
                     self.store.forget_claim(&record.id)?;
                     return Ok(());
@@ -449,7 +449,7 @@ impl Worker {
             std::thread::sleep(Duration::from_millis(50).min(quiet.max(Duration::from_millis(1))));
         }
         match self.reread.as_ref().and_then(|r| r(record)) {
-            Some((input, stamp)) => Again::Read(input, stamp),
+            Some(read) => Again::Read(Box::new(read)),
             None => Again::Gone,
         }
     }

@@ -29,6 +29,17 @@ fn after_line(bytes: &[u8], n: usize) -> usize {
         .expect("enough lines")
 }
 
+/// Whether process `pid` has a descriptor open on a path ending in `suffix` (from `/proc/PID/fd`).
+fn holds_open(pid: u32, suffix: &str) -> bool {
+    std::fs::read_dir(format!("/proc/{pid}/fd"))
+        .map(|rd| {
+            rd.flatten().any(|e| {
+                std::fs::read_link(e.path()).is_ok_and(|t| t.to_string_lossy().ends_with(suffix))
+            })
+        })
+        .unwrap_or(false)
+}
+
 /// Stop or continue a process we started (by its id).
 fn pause(pid: u32, stop: bool) {
     let sig = if stop { libc::SIGSTOP } else { libc::SIGCONT };
@@ -44,9 +55,10 @@ fn pause(pid: u32, stop: bool) {
 /// Now the worker compares the file's size and modification time with those taken when it was read,
 /// right before the verdict, and judges it again on its full content.
 ///
-/// The moment of the read is seen from the file's access time (the filesystem is mounted `relatime`, the
-/// Linux default, which updates it on the first read after a write); the daemon is then paused (SIGSTOP)
-/// while the rest is written, so the append lands after the read and before the verdict.
+/// The end of the read is seen from the file's access time (the filesystem is mounted `relatime`, the
+/// Linux default, which updates it on the first read after a write) and the daemon's open descriptors
+/// (`/proc/PID/fd`); the daemon is then paused (SIGSTOP) while the rest is written, so the append lands
+/// after the read and before the verdict.
 #[test]
 fn a_file_that_grows_after_the_quiet_period_is_judged_on_all_its_rows() {
     use std::os::unix::fs::MetadataExt;
@@ -69,10 +81,18 @@ fn a_file_that_grows_after_the_quiet_period_is_judged_on_all_its_rows() {
             .first()
             .expect("the claimed file in processing/"),
     );
-    // Read by the daemon: its access time passes its modification time.
+    // Read by the daemon: its access time has passed its modification time (the read began) and no
+    // descriptor of the daemon's still holds the file (the read ended; it reads to the end of the file, so
+    // an append during the read would still be taken in).
+    let fd_suffix = format!(
+        "/processing/{}",
+        claimed.file_name().unwrap().to_string_lossy()
+    );
     loop {
         let m = std::fs::metadata(&claimed).expect("still in processing/ (not yet judged)");
-        if (m.atime(), m.atime_nsec()) > (m.mtime(), m.mtime_nsec()) {
+        if (m.atime(), m.atime_nsec()) > (m.mtime(), m.mtime_nsec())
+            && !holds_open(d.pid(), &fd_suffix)
+        {
             break;
         }
         assert!(
