@@ -12,6 +12,16 @@ use std::io::{self, Write};
 use std::os::unix::fs::PermissionsExt;
 use std::path::{Path, PathBuf};
 
+/// Whether an I/O error means the storage is full: no space left (`ENOSPC`), the user's quota reached
+/// (`EDQUOT`), or a file past the size limit (`EFBIG`, e.g. `RLIMIT_FSIZE`; the daemon ignores
+/// `SIGXFSZ`, so such a write fails with this error instead of killing the process).
+pub fn is_storage_full(e: &io::Error) -> bool {
+    matches!(
+        e.raw_os_error(),
+        Some(libc::ENOSPC) | Some(libc::EDQUOT) | Some(libc::EFBIG)
+    )
+}
+
 /// fsync a directory, which makes the renames and creations inside it durable.
 pub fn sync_dir(dir: &Path) -> io::Result<()> {
     fs::File::open(dir)?.sync_all()

@@ -759,6 +759,14 @@ fn is_safe_stem(stem: &str) -> bool {
             .all(|b| b.is_ascii_alphanumeric() || b == b'_' || b == b'-' || b == b'.')
 }
 
+/// Mode of `notices/`: others may pass through to their own folder but not list who else is there.
+pub const NOTICES_MODE: u32 = 0o711;
+/// Mode of `notices/<vendor>/`: the daemon and the folder's group only (the tmpfiles snippet gives each
+/// vendor's folder that vendor's group), so one vendor cannot read another's notices.
+pub const VENDOR_NOTICES_MODE: u32 = 0o750;
+/// Mode of a notice file (see [`VENDOR_NOTICES_MODE`]).
+pub const NOTICE_FILE_MODE: u32 = 0o640;
+
 /// Write a notice into `vendor_dir` (the vendor's folder, `<workspace>/notices/<vendor>/`, created if
 /// missing): `<stem>.json` always, `<stem>.md` and `<stem>.items.csv` as configured. The notice is
 /// redacted with `settings` first. Each file is written atomically — a temporary file in the same folder,
@@ -788,7 +796,7 @@ pub fn write_notice(
     if settings.csv {
         files.push((format!("{stem}.items.csv"), n.to_csv()?));
     }
-    crate::fsx::write_atomic_all(vendor_dir, &files, None)
+    crate::fsx::write_atomic_all(vendor_dir, &files, Some(NOTICE_FILE_MODE))
 }
 
 mod markdown;

@@ -1,7 +1,7 @@
 //! A workspace's folders: their paths, their creation and checks, and creating a new workspace (what
 //! `labelweir init` does).
 
-use std::os::unix::fs::MetadataExt;
+use std::os::unix::fs::{MetadataExt, PermissionsExt};
 use std::path::{Path, PathBuf};
 
 use chrono::Utc;
@@ -11,6 +11,7 @@ use std::collections::HashMap;
 
 use crate::data::{self, Classes, FeatureTable, TableOptions};
 use crate::model::{FeatureMap, Standardizer};
+use crate::notice::{NOTICES_MODE, VENDOR_NOTICES_MODE};
 use crate::store::{
     AuditRecord, Provenance, Store, StoreError, TrustedItem, WorkspaceMeta, RECORD_VERSION,
 };
@@ -158,6 +159,21 @@ fn remote_filesystem_kind(f_type: i64) -> Option<&'static str> {
         .map(|(_, name)| *name)
 }
 
+impl Workspace {
+    /// The mode a folder of the workspace gets when the daemon or `init` creates it, where it matters
+    /// beyond the umask (the notice folders; the others are set by `init`).
+    fn created_mode(&self, dir: &Path) -> Option<u32> {
+        let notices = self.root.join("notices");
+        if dir == notices {
+            Some(NOTICES_MODE)
+        } else if dir.parent() == Some(notices.as_path()) {
+            Some(VENDOR_NOTICES_MODE)
+        } else {
+            None
+        }
+    }
+}
+
 /// Create missing folders (vendors may have been added to the config) and check that every folder is on
 /// one filesystem (renames between them must be atomic), and that this filesystem is not a network or FUSE
 /// mount unless `ingest.watcher = "poll"` (inotify does not see remote writes there).
@@ -186,7 +202,14 @@ pub fn prepare_folders(ws: &Workspace, config: &Config) -> Result<(), WorkspaceE
     }
     let mut dev = None;
     for d in &dirs {
+        let existed = std::fs::symlink_metadata(d).is_ok();
         std::fs::create_dir_all(d).map_err(io(d.display()))?;
+        if !existed {
+            if let Some(mode) = ws.created_mode(d) {
+                std::fs::set_permissions(d, std::fs::Permissions::from_mode(mode))
+                    .map_err(io(d.display()))?;
+            }
+        }
         let m = std::fs::symlink_metadata(d).map_err(io(d.display()))?;
         if !m.is_dir() {
             return Err(WorkspaceError::Config(format!(
@@ -412,14 +435,21 @@ pub fn create_workspace_with(
         .collect();
     std::fs::create_dir_all(dir).map_err(io(format!("create {}", dir.display())))?;
     prepare_folders(&ws, &cfg)?;
-    use std::os::unix::fs::PermissionsExt;
     for (d, mode) in [
         ("processing", 0o750),
         ("quarantine", 0o750),
         ("state", 0o700),
+        ("notices", NOTICES_MODE),
     ] {
         std::fs::set_permissions(ws.folder(d), std::fs::Permissions::from_mode(mode))
             .map_err(io(format!("chmod {d}")))?;
+    }
+    for v in vendors {
+        std::fs::set_permissions(
+            ws.notices(v),
+            std::fs::Permissions::from_mode(VENDOR_NOTICES_MODE),
+        )
+        .map_err(io(format!("chmod notices/{v}")))?;
     }
     crate::fsx::write_atomic(dir, CONFIG_FILE, cfg_text.as_bytes(), Some(0o640))
         .map_err(io(format!("write {}", ws.config_file().display())))?;

@@ -78,6 +78,9 @@ struct DaemonArgs {
     /// keeps up with a faster scoring stage.
     #[arg(long, value_name = "FILE")]
     config: Option<std::path::PathBuf>,
+    /// Print one versioned JSON document instead of the text (schema: schemas/bench-daemon.schema.json).
+    #[arg(long)]
+    json: bool,
 }
 
 /// Options of `bench scale`.
@@ -139,9 +142,22 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             if let Some(path) = &d.config {
                 o.model = Some(model_settings(path)?);
             }
-            match labelweir::eval::throughput::run(&o) {
+            // Batches settled so far, on stderr when it is a terminal.
+            let progress: labelweir::eval::throughput::Progress =
+                match super::progress::Progress::on_terminal("bench daemon: batches settled") {
+                    Some(p) => std::sync::Arc::new(move |done, total| p.show(done, total)),
+                    None => std::sync::Arc::new(|_, _| {}),
+                };
+            match labelweir::eval::throughput::run_with_progress(&o, progress) {
                 Ok(r) => {
-                    print!("{r}");
+                    let mut out = std::io::stdout().lock();
+                    if d.json {
+                        serde_json::to_writer_pretty(&mut out, &r.to_json())
+                            .context("writing JSON")?;
+                        writeln!(out)?;
+                    } else {
+                        write!(out, "{r}")?;
+                    }
                     Ok(exit::OK)
                 }
                 Err(e) => {

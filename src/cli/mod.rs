@@ -14,6 +14,7 @@ pub mod generate;
 pub mod init;
 pub mod logging;
 pub mod pool;
+pub mod progress;
 pub mod quarantine;
 pub mod run;
 pub mod trusted;

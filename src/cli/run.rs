@@ -88,9 +88,27 @@ pub fn run_daemon(dir: PathBuf, config: Config, opts: RunOptions) -> anyhow::Res
         .map_err(|e| Failure::new(exit::INTERNAL, format!("cannot start the runtime: {e}")))?;
     let ws = Workspace::new(dir);
     let deadline = shutdown_deadline(&config);
+    ignore_file_size_signal();
     rt.block_on(daemon::run(ws, config, opts, signals(deadline)))
-        .map_err(|e| Failure::new(super::daemon_exit(&e), e.to_string()))?;
+        .map_err(|e| {
+            if e.storage_full() {
+                tracing::error!(error = %e, "storage full: stopping; free space (or raise the quota or file size limit) and start again");
+                Failure::new(exit::IO, format!("storage full: {e}"))
+            } else {
+                Failure::new(super::daemon_exit(&e), e.to_string())
+            }
+        })?;
     Ok(exit::OK)
+}
+
+/// Ignore SIGXFSZ, so a write past the file size limit (`RLIMIT_FSIZE`, `LimitFSIZE=` in a unit) fails
+/// with `EFBIG` — handled like a full disk — instead of killing the daemon with a core dump.
+fn ignore_file_size_signal() {
+    // SAFETY: setting a signal's disposition to SIG_IGN installs no handler function and touches no
+    // memory of ours; it is done before the runtime's threads start work.
+    unsafe {
+        libc::signal(libc::SIGXFSZ, libc::SIG_IGN);
+    }
 }
 
 /// Run the subcommand.

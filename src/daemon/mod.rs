@@ -36,7 +36,7 @@ use crate::config::Config;
 use crate::data::Classes;
 use crate::http::Readiness;
 use crate::metrics::{self, Metrics};
-use crate::pipeline::ingest::{Ingest, IngestError};
+use crate::pipeline::ingest::{self, Ingest, IngestError};
 use crate::pipeline::score::Worker;
 use crate::pipeline::watch::{self, AnyWatcher};
 use crate::pipeline::{self, IngestCtl, Observer, ScoringError, ScoringHandle, Shared};
@@ -99,8 +99,17 @@ pub enum ErrorKind {
 }
 
 impl DaemonError {
+    /// Whether the failure is a full storage (no space, quota, file size limit) anywhere in its chain of
+    /// causes; the binary then says "storage full" and exits 74.
+    pub fn storage_full(&self) -> bool {
+        crate::store::storage_full_in(self)
+    }
+
     /// What kind of failure this is.
     pub fn kind(&self) -> ErrorKind {
+        if self.storage_full() {
+            return ErrorKind::Io;
+        }
         match self {
             Self::Config(_) => ErrorKind::Config,
             Self::Workspace(e) => match e {
@@ -175,6 +184,19 @@ fn start_pipeline(
         trusted,
     } = opened;
     let shared = Arc::new(Shared::default());
+    let reread: pipeline::Reread = {
+        let (ws, config, store) = (ws.clone(), config.clone(), store.clone());
+        let (features, classes) = (meta.features.clone(), Classes::from_labels(&meta.classes));
+        Arc::new(move |rec| {
+            // A store that cannot say which mode it is in: by reference, whose lookup then fails and
+            // rejects the batch with a written reason (never judged on features it may not carry).
+            let source = match store.feature_schema() {
+                Ok(None) => ingest::FeatureSource::InFile,
+                _ => ingest::FeatureSource::Table(&store),
+            };
+            ingest::prepare(&ws, &config, &features, &classes, rec, &source)
+        })
+    };
     let (handle, worker) = pipeline::spawn(Worker {
         ws: ws.clone(),
         config: config.clone(),
@@ -185,6 +207,7 @@ fn start_pipeline(
         trusted,
         pool,
         shared: shared.clone(),
+        reread: Some(reread),
     })
     .map_err(io("start scoring thread"))?;
     ready.worker.store(true, Ordering::SeqCst);
@@ -204,6 +227,7 @@ fn start_pipeline(
         scoring: handle.clone(),
         ctl: ctl.clone(),
         seen: Default::default(),
+        claim_backoff: Default::default(),
     };
     let ingest = std::thread::Builder::new()
         .name("labelweir-ingest".into())
@@ -279,7 +303,10 @@ async fn supervise(
             _ = &mut shutdown => return None,
             _ = check.tick() => {}
         }
-        if p.worker.is_finished() || p.ingest.is_finished() {
+        if p.worker.is_finished()
+            || p.ingest.is_finished()
+            || p.shared.filing_stopped.load(Ordering::SeqCst)
+        {
             ready.pipeline.store(false, Ordering::SeqCst);
             return Some(DaemonError::Internal("a pipeline thread stopped".into()));
         }

@@ -6,9 +6,9 @@ use std::collections::HashSet;
 use super::DaemonError;
 use crate::config::Config;
 use crate::metrics::Metrics;
-use crate::pipeline::file;
 use crate::pipeline::score::{self, PoolState, TrustedArrays};
 use crate::pipeline::ScoringError;
+use crate::pipeline::{file, ingest};
 use crate::review;
 use crate::store::{AuditRecord, BatchRecord, BatchState, PoolChange, Store, WorkspaceMeta};
 use crate::text::escape_name;
@@ -117,7 +117,14 @@ pub fn reconcile(
         if rec.state != BatchState::Claimed {
             continue;
         }
-        if std::fs::symlink_metadata(ws.processing().join(&rec.file_name)).is_ok() {
+        let left_in_place = ingest::is_claimed_folder(&rec)
+            && std::fs::symlink_metadata(
+                ws.vendor_inbox(&rec.vendor)
+                    .join(ingest::folder_left_in_place(&rec.id)),
+            )
+            .is_ok();
+        if left_in_place || std::fs::symlink_metadata(ws.processing().join(&rec.file_name)).is_ok()
+        {
             redo.push(rec);
         } else {
             let escaped = rec.original_name.contains("\\x") || rec.original_name.contains("\\u{");

@@ -40,6 +40,17 @@ impl Shape {
 }
 
 /// Collects rows in file column order, checking ids as they come.
+/// When a CSV header came out as one column that holds a semicolon, a tab or a vertical bar, the file
+/// was most likely written with that delimiter (a spreadsheet's export in many locales uses `;`): the
+/// delimiter's name, for a hint in the error.
+fn other_delimiter(names: &[String]) -> Option<&'static str> {
+    let [only] = names else { return None };
+    [(';', "semicolon"), ('\t', "tab"), ('|', "vertical-bar")]
+        .into_iter()
+        .find(|(c, _)| only.contains(*c))
+        .map(|(_, name)| name)
+}
+
 pub(super) struct Builder<'a> {
     source: &'a str,
     opts: &'a TableOptions,
@@ -110,7 +121,11 @@ impl<'a> Builder<'a> {
         let find = |want: &str| names.iter().position(|n| n == want);
         let missing = |want: &str| {
             // A header made of numbers is most likely a data row: say so.
-            let hint = if names.iter().any(|n| n.trim().parse::<f64>().is_ok()) {
+            let hint = if let Some(kind) = other_delimiter(&names) {
+                format!(
+                    "; the header looks {kind}-separated; labelweir reads comma-separated files"
+                )
+            } else if names.iter().any(|n| n.trim().parse::<f64>().is_ok()) {
                 "; the first line looks like data: the file needs a header row".to_string()
             } else {
                 format!(

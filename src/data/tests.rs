@@ -386,3 +386,32 @@ proptest! {
         }
     }
 }
+
+#[test]
+fn a_one_column_header_with_another_delimiter_gets_a_hint() {
+    for (text, name) in [
+        ("id;label;a\nx;pet;1\n", "semicolon"),
+        ("id\tlabel\ta\nx\tpet\t1\n", "tab"),
+        ("id|label|a\nx|pet|1\n", "vertical-bar"),
+    ] {
+        match kind(csv(text)) {
+            DataErrorKind::MissingColumn { name: col, hint } => {
+                assert_eq!(col, "id");
+                assert!(
+                    hint.contains(&format!("looks {name}-separated"))
+                        && hint.contains("reads comma-separated"),
+                    "{name}: {hint}"
+                );
+            }
+            other => panic!("{name}: {other:?}"),
+        }
+    }
+    // Two columns, one of them with a semicolon in its name: no delimiter hint, the header is listed.
+    match kind(csv("ident;x,label\nx,pet\n")) {
+        DataErrorKind::MissingColumn { hint, .. } => {
+            assert!(!hint.contains("separated"), "{hint}");
+            assert!(hint.contains("the header has"), "{hint}");
+        }
+        other => panic!("{other:?}"),
+    }
+}

@@ -78,6 +78,53 @@ pub struct Report {
     pub outcomes: Vec<(String, usize)>,
 }
 
+/// Version of the `bench daemon --json` document (`schemas/bench-daemon.schema.json`); raised on any
+/// change a reader could trip over.
+pub const JSON_VERSION: u32 = 1;
+
+impl Report {
+    /// The report as one versioned JSON document (`bench daemon --json`; schema in
+    /// `schemas/bench-daemon.schema.json`). Times in seconds, rates in items per second, CPU in
+    /// milliseconds per batch.
+    pub fn to_json(&self) -> serde_json::Value {
+        let o = &self.options;
+        let pairs = |v: &[(String, f64)]| {
+            v.iter()
+                .map(|(k, x)| (k.clone(), serde_json::json!(finite(*x))))
+                .collect::<serde_json::Map<_, _>>()
+        };
+        serde_json::json!({
+            "kind": "labelweir-bench-daemon",
+            "version": JSON_VERSION,
+            "options": {
+                "batches": o.batches,
+                "items_per_batch": o.items,
+                "pool_items": o.pool,
+                "features": 32,
+                "seed": o.seed,
+            },
+            "setup_seconds": finite(self.setup_seconds),
+            "wall_seconds": finite(self.wall_seconds),
+            "items_per_second": finite(self.items_per_second),
+            "steady_items_per_second": finite(self.steady_items_per_second),
+            "warmup_batches": self.warmup,
+            "scoring_bound_items_per_second": finite(self.scoring_bound_items_per_second),
+            "latency_seconds": {
+                "p50": finite(self.latency_p50_p95.0),
+                "p95": finite(self.latency_p50_p95.1),
+            },
+            "stage_mean_seconds": pairs(&self.stage_mean_seconds),
+            "cpu_ms_per_batch": pairs(&self.cpu_ms_per_batch),
+            "outcomes": self.outcomes.iter().map(|(k, n)| (k.clone(), serde_json::json!(n))).collect::<serde_json::Map<_, _>>(),
+        })
+    }
+}
+
+/// A number JSON can carry: non-finite values (a rate over zero time) become `null`.
+fn finite(x: f64) -> Option<f64> {
+    x.is_finite().then_some(x)
+}
+
 impl std::fmt::Display for Report {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         let o = &self.options;
@@ -323,6 +370,14 @@ fn io(what: impl Into<String>) -> impl FnOnce(std::io::Error) -> ThroughputError
 /// Build a scratch workspace, seed the pool, drop the batches at once into a running daemon, and
 /// measure. The scratch folder is removed afterwards.
 pub fn run(opts: &Options) -> Result<Report, ThroughputError> {
+    run_with_progress(opts, Arc::new(|_, _| {}))
+}
+
+/// Called with (batches settled, batches dropped) after each verdict, for a progress display.
+pub type Progress = Arc<dyn Fn(usize, usize) + Send + Sync>;
+
+/// [`run`], reporting each settled batch to `progress` (on the daemon's filing thread: keep it short).
+pub fn run_with_progress(opts: &Options, progress: Progress) -> Result<Report, ThroughputError> {
     let base = opts.scratch.clone().unwrap_or_else(std::env::temp_dir);
     let root = base.join(format!(
         "labelweir-throughput-{}-{}",
@@ -330,16 +385,20 @@ pub fn run(opts: &Options) -> Result<Report, ThroughputError> {
         chrono::Utc::now().timestamp_millis()
     ));
     std::fs::create_dir_all(&root).map_err(io(format!("create {}", root.display())))?;
-    let result = measure(opts, &root);
+    let result = measure(opts, &root, progress);
     let _ = std::fs::remove_dir_all(&root);
     result
 }
 
-fn measure(opts: &Options, root: &std::path::Path) -> Result<Report, ThroughputError> {
+fn measure(
+    opts: &Options,
+    root: &std::path::Path,
+    progress: Progress,
+) -> Result<Report, ThroughputError> {
     let t_setup = Instant::now();
     let (ws, config, files) = prepare(opts, root)?;
     let setup_seconds = t_setup.elapsed().as_secs_f64();
-    let run = drive(ws, config, files, opts.batches)?;
+    let run = drive(ws, config, files, opts.batches, progress)?;
     Ok(summarize(opts, setup_seconds, &run))
 }
 
@@ -412,6 +471,7 @@ fn drive(
     config: Config,
     files: Files,
     total: usize,
+    progress: Progress,
 ) -> Result<Observed, ThroughputError> {
     let done = Arc::new(AtomicUsize::new(0));
     let records: Arc<Mutex<Vec<BatchRecord>>> = Arc::default();
@@ -425,7 +485,9 @@ fn drive(
             if let Ok(mut v) = records.lock() {
                 v.push(r.clone());
             }
-            if done.fetch_add(1, Ordering::SeqCst) + 1 == total {
+            let n = done.fetch_add(1, Ordering::SeqCst) + 1;
+            progress(n, total);
+            if n == total {
                 if let Ok(mut c) = cpu.lock() {
                     c.1 = CpuSnapshot::take();
                 }

@@ -356,11 +356,18 @@ impl Filer {
             Ok(s) => s,
             Err(e) => {
                 self.metrics.error("file", "settle");
+                let full = crate::store::storage_full_in(&e);
                 tracing::error!(
                     batch_id = %f.record.id,
                     vendor = %f.record.vendor,
                     error = %e,
-                    "filing failed; the verdict is recorded and filing is retried"
+                    storage_full = full,
+                    "{}",
+                    if full {
+                        "storage full: filing failed; the verdict is recorded and filing is retried"
+                    } else {
+                        "filing failed; the verdict is recorded and filing is retried"
+                    }
                 );
                 return Some(f);
             }

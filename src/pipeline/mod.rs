@@ -97,7 +97,55 @@ pub struct Job {
     pub record: BatchRecord,
     /// What ingest found.
     pub input: JobInput,
+    /// The claimed file's stamp when its bytes were read (`None` when it was not read).
+    pub stamp: Option<FileStamp>,
 }
+
+/// Size, modification time and inode of a claimed file, taken with `fstat` right after its bytes were
+/// read. The scoring worker compares it with the file in `processing/` before recording a verdict: a
+/// vendor's writer that kept its file open past the quiet period can still append after the claim (the
+/// rename does not stop it), and a batch is judged on the whole file, never on a prefix.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct FileStamp {
+    /// Size in bytes.
+    pub size: u64,
+    /// Modification time, seconds since the epoch.
+    pub mtime_sec: i64,
+    /// Modification time, nanoseconds within the second.
+    pub mtime_nsec: i64,
+    /// Inode number.
+    pub ino: u64,
+}
+
+impl FileStamp {
+    /// The stamp of the entry at `path` (not following a link), if it exists.
+    pub fn of(path: &std::path::Path) -> Option<Self> {
+        use std::os::unix::fs::MetadataExt;
+        let m = std::fs::symlink_metadata(path).ok()?;
+        Some(Self {
+            size: m.size(),
+            mtime_sec: m.mtime(),
+            mtime_nsec: m.mtime_nsec(),
+            ino: m.ino(),
+        })
+    }
+
+    /// How long ago the file was last modified (zero for a modification time in the future).
+    pub fn age(&self, now: std::time::SystemTime) -> std::time::Duration {
+        let mtime = if self.mtime_sec >= 0 {
+            std::time::UNIX_EPOCH
+                + std::time::Duration::new(self.mtime_sec as u64, self.mtime_nsec.max(0) as u32)
+        } else {
+            std::time::UNIX_EPOCH
+        };
+        now.duration_since(mtime).unwrap_or_default()
+    }
+}
+
+/// Reads a claimed batch again (its file changed after it was read): what ingest hands over for it now,
+/// or `None` when the file is gone. Set by the composition root, so the scoring stage does not import the
+/// ingest stage.
+pub type Reread = Arc<dyn Fn(&BatchRecord) -> Option<(JobInput, Option<FileStamp>)> + Send + Sync>;
 
 /// Flags and counters shared between the worker and the rest of the daemon.
 #[derive(Debug, Default)]
@@ -126,6 +174,18 @@ pub struct Shared {
     pub filing_failing: AtomicBool,
     /// The last claim failed on a daemon-side error (`/readyz` answers 503 until one succeeds).
     pub claims_failing: AtomicBool,
+    /// The filing thread has ended (normally only at shutdown; before it, `/readyz` answers 503 and the
+    /// daemon stops with an error).
+    pub filing_stopped: AtomicBool,
+}
+
+/// Sets a flag when dropped: when the thread that holds it ends, by returning or by a panic.
+struct SetOnDrop<'a>(&'a AtomicBool);
+
+impl Drop for SetOnDrop<'_> {
+    fn drop(&mut self) {
+        self.0.store(true, Ordering::SeqCst);
+    }
 }
 
 /// Milliseconds on a monotonic clock since the first call in this process (a wall-clock step, e.g. from
@@ -256,7 +316,11 @@ pub fn spawn(
     };
     let filer_thread = std::thread::Builder::new()
         .name("labelweir-filing".into())
-        .spawn(move || filer.run(frx))?;
+        .spawn(move || {
+            let shared = filer.shared.clone();
+            let _stopped = SetOnDrop(&shared.filing_stopped);
+            filer.run(frx)
+        })?;
     let thread = std::thread::Builder::new()
         .name("labelweir-scoring".into())
         .spawn(move || {

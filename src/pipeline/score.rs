@@ -11,7 +11,7 @@ use std::time::{Duration, Instant};
 use ndarray::{Array1, Array2};
 
 use super::verdict;
-use super::{now_ms, Filing, Job, JobInput, Observer, ScoringError, Shared};
+use super::{now_ms, FileStamp, Filing, Job, JobInput, Observer, Reread, ScoringError, Shared};
 use crate::config::Config;
 use crate::data::Table;
 use crate::metrics::Metrics;
@@ -192,6 +192,21 @@ pub struct Worker {
     pub pool: PoolState,
     /// Shared flags.
     pub shared: Arc<Shared>,
+    /// Reads a claimed file again when it changed after it was read (without it, no check is made).
+    pub reread: Option<Reread>,
+}
+
+/// Times a claimed file that keeps changing is read again before it is rejected as `still_changing`.
+const MAX_REREADS: u32 = 5;
+
+/// What [`Worker::reread_when_quiet`] found.
+enum Again {
+    /// The file as it is now.
+    Read(Box<(JobInput, Option<FileStamp>)>),
+    /// The file is gone from `processing/`.
+    Gone,
+    /// Shutdown began meanwhile (the file stays in `processing/` for the next start).
+    Cancelled,
 }
 
 type Refreshed = Arc<Mutex<Option<Result<PoolState, String>>>>;
@@ -355,14 +370,107 @@ impl Worker {
         self.publish_pool();
     }
 
+    /// Decide one job and hand it to the filing thread. Before a verdict is recorded, the claimed file's
+    /// stamp is compared with the one taken when it was read; if the file changed (a writer still
+    /// appending past the quiet period), it is read again once it has been quiet for
+    /// `ingest.quiet_period_ms` and judged on what it holds then; one that keeps changing is rejected as
+    /// `still_changing` after [`MAX_REREADS`] reads.
     fn process(&mut self, job: Job, filer: &SyncSender<Filing>) -> Result<(), ScoringError> {
-        let Job { mut record, input } = job;
-        let decided = match input {
+        let Job {
+            record,
+            mut input,
+            mut stamp,
+        } = job;
+        if self.reread.is_none() {
+            stamp = None;
+        }
+        let path = self.ws.processing().join(&record.file_name);
+        let mut rereads = 0;
+        let decided = loop {
+            let unchanged = || {
+                stamp
+                    .as_ref()
+                    .is_none_or(|s| FileStamp::of(&path).as_ref() == Some(s))
+            };
+            if let Some(f) = self.decide_once(record.clone(), input, &unchanged)? {
+                break f;
+            }
+            rereads += 1;
+            tracing::warn!(
+                batch_id = %record.id,
+                vendor = %record.vendor,
+                rereads,
+                "the claimed file changed after it was read; judging it again on its full content"
+            );
+            if rereads > MAX_REREADS {
+                input = JobInput::Rejected {
+                    reason: crate::store::RejectReason {
+                        code: "still_changing".into(),
+                        detail: "the file kept changing after it was taken in; upload it under a temporary name and rename it when it is complete".into(),
+                        row: None,
+                        column: None,
+                    },
+                    bytes: None,
+                    sha256: None,
+                };
+                stamp = None;
+                continue;
+            }
+            match self.reread_when_quiet(&record, &path) {
+                Again::Read(read) => (input, stamp) = *read,
+                Again::Gone => {
+                    self.store.forget_claim(&record.id)?;
+                    return Ok(());
+                }
+                Again::Cancelled => return Ok(()),
+            }
+        };
+        filer
+            .send(decided)
+            .map_err(|_| ScoringError::Model("the filing thread stopped".into()))
+    }
+
+    /// Wait until the claimed file has not been modified for the quiet period (at most four quiet
+    /// periods and a second), then read it again through the [`Reread`] hook.
+    fn reread_when_quiet(&self, record: &BatchRecord, path: &std::path::Path) -> Again {
+        let quiet = Duration::from_millis(self.config.ingest.quiet_period_ms);
+        let give_up = Instant::now() + quiet * 4 + Duration::from_secs(1);
+        loop {
+            if self.shared.cancel.load(Ordering::SeqCst) {
+                return Again::Cancelled;
+            }
+            self.shared.heartbeat_ms.store(now_ms(), Ordering::SeqCst);
+            let Some(now) = FileStamp::of(path) else {
+                break;
+            };
+            if now.age(std::time::SystemTime::now()) >= quiet || Instant::now() >= give_up {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(50).min(quiet.max(Duration::from_millis(1))));
+        }
+        match self.reread.as_ref().and_then(|r| r(record)) {
+            Some(read) => Again::Read(Box::new(read)),
+            None => Again::Gone,
+        }
+    }
+
+    /// Decide a job's input; `None`, with nothing recorded, when `unchanged` says the file changed since
+    /// it was read (checked after scoring, right before the verdict is recorded).
+    fn decide_once(
+        &mut self,
+        mut record: BatchRecord,
+        input: JobInput,
+        unchanged: &dyn Fn() -> bool,
+    ) -> Result<Option<Filing>, ScoringError> {
+        Ok(Some(match input {
             JobInput::Rejected {
                 reason,
                 bytes,
                 sha256,
             } => {
+                if !unchanged() {
+                    return Ok(None);
+                }
                 let v = verdict::rejected(record, reason, bytes.as_ref().map(Vec::len), sha256);
                 let (rec, _) = self.persist(v)?;
                 Filing { record: rec, bytes }
@@ -378,18 +486,19 @@ impl Worker {
                 let first = self.store.batch_by_hash(&record.vendor, &sha256)?;
                 record.sha256 = Some(sha256);
                 let rec = match first {
+                    Some(_) if !unchanged() => return Ok(None),
                     Some(first) => self.persist(verdict::duplicate(record, first))?.0,
-                    None => self.score_and_decide(record, &table, &labels)?,
+                    None => match self.score_and_decide(record, &table, &labels, unchanged)? {
+                        Some(rec) => rec,
+                        None => return Ok(None),
+                    },
                 };
                 Filing {
                     record: rec,
                     bytes: Some(bytes),
                 }
             }
-        };
-        filer
-            .send(decided)
-            .map_err(|_| ScoringError::Model("the filing thread stopped".into()))
+        }))
     }
 
     /// Record a verdict in one flushed store transaction (`persist` stage).
@@ -415,10 +524,15 @@ impl Worker {
         record: BatchRecord,
         table: &Table,
         labels: &[usize],
-    ) -> Result<BatchRecord, ScoringError> {
+        unchanged: &dyn Fn() -> bool,
+    ) -> Result<Option<BatchRecord>, ScoringError> {
         // The summary this batch is scored against; a speculative absorb starts from it too.
         let base = (self.pool.through_seq, self.pool.epoch);
         let (scored, score_elapsed, speculative, absorb_wait) = self.score(table, labels);
+        if !unchanged() {
+            // The file grew (or changed) while it was scored: nothing is recorded; it is read again.
+            return Ok(None);
+        }
         self.metrics.stage("score", score_elapsed);
         if let Err(msg) = &scored {
             self.metrics.error("score", "engine");
@@ -501,7 +615,7 @@ impl Worker {
             self.metrics
                 .stage("absorb", absorb_wait + t_absorb.elapsed());
         }
-        Ok(rec)
+        Ok(Some(rec))
     }
 
     /// Run the engine on the batch against the pool summary; meanwhile a second thread absorbs the same
@@ -645,6 +759,7 @@ mod tests {
             trusted,
             pool,
             shared: Arc::default(),
+            reread: None,
         };
         (w, plant)
     }
@@ -683,7 +798,15 @@ mod tests {
             table,
             labels,
         };
-        w.process(Job { record, input }, filer).unwrap();
+        w.process(
+            Job {
+                record,
+                input,
+                stamp: None,
+            },
+            filer,
+        )
+        .unwrap();
     }
 
     /// The store path: an empty summary that absorbs every stored pool entry in sequence order.

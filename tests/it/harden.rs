@@ -12,12 +12,12 @@ use std::time::Duration;
 
 use crate::util::*;
 
-const T: Duration = Duration::from_secs(60);
+pub(crate) const T: Duration = Duration::from_secs(60);
 /// The unprivileged uid and gid the daemon runs as in these tests.
-const SERVICE_UID: u32 = 65534;
+pub(crate) const SERVICE_UID: u32 = 65534;
 
 /// Hand the test's temporary folder (workspace, log) to [`SERVICE_UID`].
-fn give_to_service_user(ws: &Ws) {
+pub(crate) fn give_to_service_user(ws: &Ws) {
     let st = Command::new("chown")
         .args(["-R", &format!("{SERVICE_UID}:{SERVICE_UID}")])
         .arg(ws.tmp.path())
@@ -28,13 +28,13 @@ fn give_to_service_user(ws: &Ws) {
 }
 
 /// Start `labelweir run` as [`SERVICE_UID`] (no supplementary groups) and wait until /readyz answers 200.
-fn start_as_service_user(ws: &Ws) -> Daemon {
+pub(crate) fn start_as_service_user(ws: &Ws) -> Daemon {
     start_as_service_user_under(ws, &[])
 }
 
 /// [`start_as_service_user`] with `wrapper` (a program and its arguments, e.g. `prlimit --nofile=N --`)
 /// in front of the privilege drop.
-fn start_as_service_user_under(ws: &Ws, wrapper: &[&str]) -> Daemon {
+pub(crate) fn start_as_service_user_under(ws: &Ws, wrapper: &[&str]) -> Daemon {
     assert_eq!(
         current_uid(),
         0,
@@ -77,14 +77,14 @@ fn start_as_service_user_under(ws: &Ws, wrapper: &[&str]) -> Daemon {
     d
 }
 
-fn current_uid() -> u32 {
+pub(crate) fn current_uid() -> u32 {
     let out = Command::new("id").arg("-u").output().unwrap();
     String::from_utf8_lossy(&out.stdout).trim().parse().unwrap()
 }
 
 /// Write a vendor file (owned by the test's root user, not by the daemon) with `mode`, under a temporary
 /// name first, as the delivery contract says.
-fn deliver_with_mode(ws: &Ws, vendor: &str, name: &str, bytes: &[u8], mode: u32) {
+pub(crate) fn deliver_with_mode(ws: &Ws, vendor: &str, name: &str, bytes: &[u8], mode: u32) {
     let d = ws.path("inbox").join(vendor);
     let tmp = d.join(format!(".{name}.part"));
     std::fs::write(&tmp, bytes).unwrap();
@@ -92,14 +92,14 @@ fn deliver_with_mode(ws: &Ws, vendor: &str, name: &str, bytes: &[u8], mode: u32)
     std::fs::rename(&tmp, d.join(name)).unwrap();
 }
 
-fn ids_in(ws: &Ws, folder: &str) -> Vec<String> {
+pub(crate) fn ids_in(ws: &Ws, folder: &str) -> Vec<String> {
     ws.files_in(folder)
         .iter()
         .map(|f| f.split('.').next().unwrap().to_string())
         .collect()
 }
 
-fn owner(p: &Path) -> u32 {
+pub(crate) fn owner(p: &Path) -> u32 {
     std::fs::symlink_metadata(p).unwrap().uid()
 }
 
@@ -279,7 +279,12 @@ fn temporary_files_left_by_a_killed_writer_are_removed_at_start() {
 }
 
 /// Run `labelweir ARGS` as `uid`:`gid` (no supplementary groups), with `env`.
-fn run_as(uid: u32, gid: u32, args: &[&str], env: &[(&str, &str)]) -> std::process::Output {
+pub(crate) fn run_as(
+    uid: u32,
+    gid: u32,
+    args: &[&str],
+    env: &[(&str, &str)],
+) -> std::process::Output {
     Command::new("setpriv")
         .args([
             &format!("--reuid={uid}"),
@@ -296,7 +301,7 @@ fn run_as(uid: u32, gid: u32, args: &[&str], env: &[(&str, &str)]) -> std::proce
 }
 
 /// Poll `f` until it returns true (panics with `what` after a minute: a liveness bound, not a speed check).
-fn eventually(what: &str, mut f: impl FnMut() -> bool) {
+pub(crate) fn eventually(what: &str, mut f: impl FnMut() -> bool) {
     let t = std::time::Instant::now();
     while !f() {
         assert!(t.elapsed() < T, "{what}: not within {T:?}");

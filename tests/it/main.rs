@@ -9,6 +9,7 @@
 //! - `policy`     — the verdict policy on the engine's output at a large pool (flagged share).
 //! - `review`     — quarantine review, trusted-set upkeep, notices, audit through the binary.
 //! - `harden`     — the daemon as a non-root service user under hostile vendors, crashes, handle pressure.
+//! - `intake`     — a file still growing, a folder where batches go, notice modes, another delimiter.
 //! - `alerting`   — alert rules, dashboard and service unit checked with the real tools.
 //! - `ux`         — what reviewers and vendors read: safe releases, notices, the review page in a browser.
 
@@ -19,6 +20,7 @@ mod daemon;
 mod engine;
 mod features;
 mod harden;
+mod intake;
 mod policy;
 mod review;
 mod util;

@@ -17,10 +17,16 @@
 //! 2. **Claim.** A [`BatchRecord`] in state `Claimed` (vendor, escaped original name, generated file name)
 //!    is flushed to the store, then the entry is renamed with `renameat2(RENAME_NOREPLACE)` into the
 //!    daemon-private `processing/<batch id>.<ext>`; both folders are fsynced. The vendor is the folder the
-//!    file was found in. The original name is kept only as escaped metadata, never used as a path.
+//!    file was found in. The original name is kept only as escaped metadata, never used as a path. A
+//!    folder the daemon's account cannot move (a vendor-owned folder: the move would rewrite its `..`) is
+//!    renamed in place to the hidden `.<batch id>.folder-not-a-batch` instead; either way it is rejected
+//!    once, unread, as `folder_not_a_batch`.
 //! 3. **Read.** The claimed entry is opened with `O_NOFOLLOW | O_NONBLOCK | O_CLOEXEC` and checked with
 //!    `fstat` on the open descriptor: a regular file, one link, at most `ingest.max_file_bytes`. Its bytes
-//!    are read (bounded) into memory while hashing (SHA-256); everything after this works on that copy.
+//!    are read (bounded) into memory and hashed (SHA-256); everything after this works on that copy. A
+//!    file whose size or modification time changes while it is read is read again (a few times); the
+//!    stamp taken with the bytes ([`FileStamp`]) goes with the job, and the scoring worker compares it with
+//!    the file right before the verdict (a writer may go on appending after the claim).
 //!    Symlinks are never followed (they are removed and reported), directories, FIFOs and devices are
 //!    never read.
 //! 4. **Parse** with [`crate::data::parse_table`] against the workspace's feature schema and classes.
@@ -31,7 +37,6 @@
 use std::collections::HashSet;
 use std::ffi::OsStr;
 use std::fs::File;
-use std::io::Read;
 use std::os::unix::ffi::OsStrExt;
 use std::path::Path;
 use std::sync::atomic::Ordering;
@@ -39,9 +44,8 @@ use std::sync::Arc;
 use std::time::{Duration, Instant, SystemTime};
 
 use rustix::fs::{Mode, OFlags, RenameFlags};
-use sha2::{Digest, Sha256};
 
-use super::{IngestCtl, Job, JobInput, ScoringHandle};
+use super::{FileStamp, IngestCtl, Job, JobInput, ScoringHandle};
 use crate::config::Config;
 use crate::data::{self, Classes, Format, Table};
 use crate::http::Readiness;
@@ -49,6 +53,18 @@ use crate::metrics::Metrics;
 use crate::store::{BatchRecord, RejectReason, Store, StoreError, WorkspaceMeta};
 use crate::text::{escape_name, is_unsafe_char};
 use crate::workspace::{free_bytes, Workspace};
+
+mod read;
+pub use read::read_claimed;
+
+fn reject(code: &str, detail: impl Into<String>) -> RejectReason {
+    RejectReason {
+        code: code.to_string(),
+        detail: detail.into(),
+        row: None,
+        column: None,
+    }
+}
 
 /// Suffixes of temporary upload names (ignored).
 pub const TEMP_SUFFIXES: [&str; 3] = [".part", ".filepart", ".tmp"];
@@ -279,6 +295,30 @@ pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Clai
             store.forget_claim(&id)?;
             return Ok(None);
         }
+        // A folder owned by the vendor cannot be moved to another parent by the service user (the move
+        // rewrites its `..`, which needs write permission on the folder itself). Renamed in place under a
+        // hidden name instead (only the daemon-owned vendor folder changes), it is out of the listings and
+        // is still rejected once, with a notice.
+        Err(_) if c.kind == EntryKind::Dir => {
+            let hidden = folder_left_in_place(&id);
+            if let Err(e) = rustix::fs::renameat_with(
+                &from_dir,
+                c.name.as_os_str(),
+                &from_dir,
+                hidden.as_str(),
+                RenameFlags::NOREPLACE,
+            ) {
+                store.forget_claim(&id)?;
+                if e == rustix::io::Errno::NOENT {
+                    return Ok(None);
+                }
+                return Err(IngestError::Io {
+                    op: "claim (rename a folder in place)",
+                    path: from.display().to_string(),
+                    source: e.into(),
+                });
+            }
+        }
         Err(e) => {
             store.forget_claim(&id)?;
             return Err(IngestError::Io {
@@ -294,116 +334,34 @@ pub fn claim(ws: &Workspace, store: &Store, c: &Candidate) -> Result<Option<Clai
     Ok(Some(Claimed { record }))
 }
 
-/// The bytes of a claimed file, read through one descriptor.
-#[derive(Debug)]
-pub struct ReadFile {
-    /// The bytes.
-    pub bytes: Vec<u8>,
-    /// SHA-256, lower-case hex.
-    pub sha256: String,
+/// The hidden name a folder found in a vendor folder gets when it cannot be moved into `processing/`
+/// (it stays in the vendor folder under this name, which listings skip).
+pub fn folder_left_in_place(batch_id: &str) -> String {
+    format!(".{batch_id}.folder-not-a-batch")
 }
 
-fn reject(code: &str, detail: impl Into<String>) -> RejectReason {
-    RejectReason {
-        code: code.to_string(),
-        detail: detail.into(),
-        row: None,
-        column: None,
-    }
+/// Whether a claimed entry was a folder (its generated name ends in `.dir`).
+pub fn is_claimed_folder(record: &BatchRecord) -> bool {
+    record.file_name.ends_with(".dir")
 }
 
-/// Open `processing/<file_name>` without following links and read it, checking that it is a regular file
-/// with one link and at most `max_bytes` bytes. An input problem is `Err(Ok(reason))`; a daemon-side I/O
-/// error is `Err(Err(..))`.
-pub fn read_claimed(
-    path: &Path,
-    max_bytes: u64,
-) -> Result<ReadFile, Result<RejectReason, std::io::Error>> {
-    let fd = match rustix::fs::open(
-        path,
-        OFlags::RDONLY | OFlags::NOFOLLOW | OFlags::NONBLOCK | OFlags::CLOEXEC | OFlags::NOCTTY,
-        Mode::empty(),
-    ) {
-        Ok(fd) => fd,
-        Err(e) if e == rustix::io::Errno::LOOP => {
-            return Err(Ok(reject(
-                "symlink",
-                "the entry is a symbolic link; links are never followed",
-            )))
-        }
-        Err(e) if e == rustix::io::Errno::NOENT => return Err(Err(e.into())),
-        Err(e) => {
-            return Err(Ok(reject(
-                "unreadable",
-                format!("the entry could not be opened for reading: {e}"),
-            )))
-        }
+/// Why a folder found in a vendor folder is rejected, and where it went.
+pub fn folder_reason(ws: &Workspace, record: &BatchRecord) -> RejectReason {
+    let moved = std::fs::symlink_metadata(ws.processing().join(&record.file_name)).is_ok();
+    let whereabouts = if moved {
+        "it was moved out of your folder".to_string()
+    } else {
+        format!(
+            "it could not be moved and was renamed in your folder to {}; remove it",
+            folder_left_in_place(&record.id)
+        )
     };
-    let st = rustix::fs::fstat(&fd).map_err(|e| Err(e.into()))?;
-    let ftype = rustix::fs::FileType::from_raw_mode(st.st_mode);
-    match ftype {
-        rustix::fs::FileType::RegularFile => {}
-        rustix::fs::FileType::Directory => {
-            return Err(Ok(reject(
-                "not_regular_file",
-                "the entry is a directory; only files are batches",
-            )))
-        }
-        rustix::fs::FileType::Symlink => {
-            return Err(Ok(reject(
-                "symlink",
-                "the entry is a symbolic link; links are never followed",
-            )))
-        }
-        other => {
-            return Err(Ok(reject(
-                "not_regular_file",
-                format!("the entry is not a regular file ({other:?}); it was not read"),
-            )))
-        }
-    }
-    if st.st_nlink != 1 {
-        return Err(Ok(reject(
-            "hard_link",
-            format!(
-                "the file has {} hard links; deliver a file with a single link (another name could still change it)",
-                st.st_nlink
-            ),
-        )));
-    }
-    if st.st_size as u64 > max_bytes {
-        return Err(Ok(reject(
-            "too_large",
-            format!(
-                "the file has {} bytes, more than the limit of {max_bytes}",
-                st.st_size
-            ),
-        )));
-    }
-    // Blocking reads from here on (a regular file never blocks on O_NONBLOCK anyway).
-    let file = File::from(fd);
-    let mut bytes = Vec::with_capacity(st.st_size.max(0) as usize);
-    let mut hasher = Sha256::new();
-    let mut limited = file.take(max_bytes + 1);
-    let mut buf = [0u8; 64 * 1024];
-    loop {
-        let n = limited.read(&mut buf).map_err(Err)?;
-        if n == 0 {
-            break;
-        }
-        hasher.update(&buf[..n]);
-        bytes.extend_from_slice(&buf[..n]);
-    }
-    if bytes.len() as u64 > max_bytes {
-        return Err(Ok(reject(
-            "too_large",
-            format!("the file grew past the limit of {max_bytes} bytes while being read"),
-        )));
-    }
-    Ok(ReadFile {
-        sha256: hex::encode(hasher.finalize()),
-        bytes,
-    })
+    reject(
+        "folder_not_a_batch",
+        format!(
+            "a folder is not a batch: deliver each batch as one file directly in your folder ({whereabouts})"
+        ),
+    )
 }
 
 /// A parsed batch ready for scoring.
@@ -501,7 +459,8 @@ pub fn parse_claimed(
 }
 
 /// Read, hash and parse a claimed entry (`processing/<file_name>`) into a job input for the scoring
-/// worker. `None` when the entry is gone (nothing to do; the caller forgets the claim).
+/// worker, with the file's stamp when its bytes were read. `None` when the entry is gone (nothing to do;
+/// the caller forgets the claim).
 pub fn prepare(
     ws: &Workspace,
     config: &Config,
@@ -509,26 +468,37 @@ pub fn prepare(
     classes: &Classes,
     record: &BatchRecord,
     source: &FeatureSource<'_>,
-) -> Option<JobInput> {
+) -> Option<(JobInput, Option<FileStamp>)> {
+    if is_claimed_folder(record) {
+        let input = JobInput::Rejected {
+            reason: folder_reason(ws, record),
+            bytes: None,
+            sha256: None,
+        };
+        return Some((input, None));
+    }
     let path = ws.processing().join(&record.file_name);
     let read = match read_claimed(&path, config.ingest.max_file_bytes) {
         Ok(r) => r,
         Err(Ok(reason)) => {
-            return Some(JobInput::Rejected {
+            let input = JobInput::Rejected {
                 reason,
                 bytes: None,
                 sha256: None,
-            })
+            };
+            return Some((input, None));
         }
         Err(Err(e)) if e.kind() == std::io::ErrorKind::NotFound => return None,
         Err(Err(e)) => {
-            return Some(JobInput::Rejected {
+            let input = JobInput::Rejected {
                 reason: reject("unreadable", format!("the file could not be read: {e}")),
                 bytes: None,
                 sha256: None,
-            })
+            };
+            return Some((input, None));
         }
     };
+    let stamp = Some(read.stamp);
     let format = format_of(OsStr::new(&record.file_name));
     let parsed = match format {
         Some(f) => parse_claimed(
@@ -542,7 +512,7 @@ pub fn prepare(
         ),
         None => Err(name_problem(&record.original_name)),
     };
-    Some(match parsed {
+    let input = match parsed {
         Ok(p) => JobInput::Parsed {
             bytes: read.bytes,
             sha256: read.sha256,
@@ -554,7 +524,8 @@ pub fn prepare(
             bytes: Some(read.bytes),
             sha256: Some(read.sha256),
         },
-    })
+    };
+    Some((input, stamp))
 }
 
 /// The ingest thread (`labelweir-ingest`): waits for marks on its [`IngestCtl`], the rescan timer or a
@@ -571,6 +542,35 @@ pub struct Ingest {
     pub(crate) scoring: ScoringHandle,
     pub(crate) ctl: Arc<IngestCtl>,
     pub(crate) seen: HashSet<(String, std::ffi::OsString)>,
+    pub(crate) claim_backoff: ClaimBackoff,
+}
+
+/// The wait before a failed claim is tried again: 0.5 s, doubling after each failure in a row, at most
+/// 30 s; back to 0.5 s after a claim succeeds.
+#[derive(Debug, Default)]
+pub struct ClaimBackoff {
+    failures: u32,
+}
+
+impl ClaimBackoff {
+    /// The first wait.
+    pub const FIRST: Duration = Duration::from_millis(500);
+    /// The longest wait.
+    pub const MAX: Duration = Duration::from_secs(30);
+
+    /// A claim failed: the wait before the next try.
+    pub fn failed(&mut self) -> Duration {
+        let wait = Self::FIRST
+            .saturating_mul(1u32 << self.failures.min(16))
+            .min(Self::MAX);
+        self.failures = self.failures.saturating_add(1);
+        wait
+    }
+
+    /// A claim succeeded.
+    pub fn succeeded(&mut self) {
+        self.failures = 0;
+    }
 }
 
 enum Flow {
@@ -583,8 +583,12 @@ impl Ingest {
         self.ctl.wake.lock().map(|w| w.stop).unwrap_or(true)
     }
 
-    fn submit(&self, record: BatchRecord, input: JobInput) -> Flow {
-        match self.scoring.submit(Job { record, input }) {
+    fn submit(&self, record: BatchRecord, input: JobInput, stamp: Option<FileStamp>) -> Flow {
+        match self.scoring.submit(Job {
+            record,
+            input,
+            stamp,
+        }) {
             Ok(()) => {
                 self.metrics
                     .queue_depth(self.scoring.shared.queue_depth.load(Ordering::SeqCst));
@@ -611,7 +615,7 @@ impl Ingest {
         );
         self.metrics.stage("parse", t.elapsed());
         match input {
-            Some(input) => Ok(self.submit(record, input)),
+            Some((input, stamp)) => Ok(self.submit(record, input, stamp)),
             None => {
                 self.store.forget_claim(&record.id)?;
                 Ok(Flow::Continue)
@@ -695,15 +699,26 @@ impl Ingest {
                 Ok(None) => continue,
                 Err(IngestError::Store(e)) => return Err(e.into()),
                 Err(e) => {
-                    tracing::error!(vendor, error = %e, "claim failed");
+                    let full = crate::store::storage_full_in(&e);
+                    let wait = self.claim_backoff.failed();
+                    tracing::error!(
+                        vendor,
+                        error = %e,
+                        storage_full = full,
+                        retry_in_ms = wait.as_millis() as u64,
+                        "{}",
+                        if full { "storage full: claim failed" } else { "claim failed" }
+                    );
                     self.metrics.error("claim", "rename");
                     self.scoring
                         .shared
                         .claims_failing
                         .store(true, Ordering::SeqCst);
-                    continue;
+                    // Retried with backoff, not only at the next rescan.
+                    return Ok((Flow::Continue, Some(SystemTime::now() + wait)));
                 }
             };
+            self.claim_backoff.succeeded();
             self.scoring
                 .shared
                 .claims_failing
@@ -855,6 +870,18 @@ mod tests {
                 proptest::prop_assert!(unsafe_name(&name).is_some());
             }
         }
+    }
+
+    #[test]
+    fn claim_backoff_doubles_from_half_a_second_to_thirty() {
+        let mut b = ClaimBackoff::default();
+        let waits: Vec<u64> = (0..9).map(|_| b.failed().as_millis() as u64).collect();
+        assert_eq!(
+            waits,
+            [500, 1000, 2000, 4000, 8000, 16000, 30000, 30000, 30000]
+        );
+        b.succeeded();
+        assert_eq!(b.failed(), ClaimBackoff::FIRST);
     }
 
     #[test]

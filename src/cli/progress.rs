@@ -1,0 +1,40 @@
+//! A one-line progress display on stderr for long one-shot commands, shown only when stderr is a
+//! terminal (never in logs, pipes or CI output).
+
+use std::io::{IsTerminal, Write};
+use std::sync::Mutex;
+use std::time::{Duration, Instant};
+
+/// Redraws `LABEL: DONE/TOTAL` on one line of stderr, at most ten times a second.
+pub struct Progress {
+    label: String,
+    last: Mutex<Option<Instant>>,
+}
+
+impl Progress {
+    /// A display for `label`, or `None` when stderr is not a terminal.
+    pub fn on_terminal(label: &str) -> Option<Self> {
+        std::io::stderr().is_terminal().then(|| Self {
+            label: label.to_string(),
+            last: Mutex::new(None),
+        })
+    }
+
+    /// Show `done` of `total`; the last step ends the line.
+    pub fn show(&self, done: usize, total: usize) {
+        let Ok(mut last) = self.last.lock() else {
+            return;
+        };
+        let finished = done >= total;
+        if !finished && last.is_some_and(|t| t.elapsed() < Duration::from_millis(100)) {
+            return;
+        }
+        *last = Some(Instant::now());
+        let mut err = std::io::stderr().lock();
+        let _ = write!(err, "\r{}: {done}/{total}", self.label);
+        if finished {
+            let _ = writeln!(err);
+        }
+        let _ = err.flush();
+    }
+}
