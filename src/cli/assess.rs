@@ -303,19 +303,15 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
         settings.flag_threshold,
         classes.names(),
     );
-    let stories = model::suspect_stories(
-        standardizer
-            .transform(trusted.features.view())
-            .map_err(engine_error)?
-            .view(),
+    let stories = stories_of(
+        &standardizer,
+        &trusted,
         &trusted_y,
-        standardizer
-            .transform(batch.features.view())
-            .map_err(engine_error)?
-            .view(),
-        &assessment.items,
-        settings.flag_threshold,
-    );
+        &batch,
+        &assessment,
+        settings,
+    )
+    .map_err(engine_error)?;
     Ok(Report {
         batch_path: batch.source.clone(),
         trusted_path: trusted.source.clone(),
@@ -331,6 +327,24 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
         flag_threshold: settings.flag_threshold,
         stories,
     })
+}
+
+/// The flagged items told as stories, over features standardised with the run's one map.
+fn stories_of(
+    standardizer: &Standardizer,
+    trusted: &Table,
+    trusted_y: &[usize],
+    batch: &Table,
+    assessment: &Assessment,
+    settings: &ModelSettings,
+) -> Result<Vec<SuspectStory>, model::ModelError> {
+    Ok(model::suspect_stories(
+        standardizer.transform(trusted.features.view())?.view(),
+        trusted_y,
+        standardizer.transform(batch.features.view())?.view(),
+        &assessment.items,
+        settings.flag_threshold,
+    ))
 }
 
 /// The policy's verdict for a batch from a vendor with no history (cold-start limits and the absolute

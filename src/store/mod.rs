@@ -125,21 +125,13 @@ pub enum StoreError {
 /// Whether `e` or one of its causes is an I/O error that means a full storage
 /// ([`crate::fsx::is_storage_full`]), also inside the store's own error type.
 pub fn storage_full_in(e: &(dyn std::error::Error + 'static)) -> bool {
-    let mut cur = Some(e);
-    while let Some(err) = cur {
-        if let Some(io) = err.downcast_ref::<std::io::Error>() {
-            if crate::fsx::is_storage_full(io) {
-                return true;
-            }
-        }
-        if let Some(sled::Error::Io(io)) = err.downcast_ref::<sled::Error>() {
-            if crate::fsx::is_storage_full(io) {
-                return true;
-            }
-        }
-        cur = err.source();
-    }
-    false
+    std::iter::successors(Some(e), |err| err.source()).any(|err| {
+        let io = match err.downcast_ref::<sled::Error>() {
+            Some(sled::Error::Io(io)) => Some(io),
+            _ => err.downcast_ref::<std::io::Error>(),
+        };
+        io.is_some_and(crate::fsx::is_storage_full)
+    })
 }
 
 impl StoreError {
