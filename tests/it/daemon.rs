@@ -549,7 +549,7 @@ fn hostile_drop_folder_input_is_contained() {
     assert_eq!(code(&|n| n == "dirlink.csv"), "symlink");
     assert_eq!(code(&|n| n == "hard.csv"), "hard_link");
     assert_eq!(code(&|n| n == "pipe.csv"), "not_regular_file");
-    assert_eq!(code(&|n| n == "folder.csv"), "not_regular_file");
+    assert_eq!(code(&|n| n == "folder.csv"), "folder_not_a_batch");
     assert_eq!(code(&|n| n == "bad\\xffname.csv"), "unsafe_name");
     assert_eq!(code(&|n| n.starts_with("esc")), "unsafe_name");
     assert_eq!(code(&|n| n.ends_with("trusted.csv")), "unsafe_name");
