@@ -196,6 +196,31 @@ fn model_settings(path: &std::path::Path) -> anyhow::Result<ModelSettings> {
     Ok(settings)
 }
 
+/// Progress lines on stderr, unless the report goes out as JSON.
+fn progress_unless(json: bool) -> impl FnMut(&str) {
+    move |line| {
+        if !json {
+            eprintln!("  {line}");
+        }
+    }
+}
+
+/// Print a bench report: pretty JSON under `--json`, else its readable text.
+fn print_report<T: serde::Serialize + ?Sized>(
+    json: bool,
+    report: &T,
+    text: impl FnOnce(&T) -> String,
+) -> anyhow::Result<u8> {
+    let mut out = std::io::stdout().lock();
+    if json {
+        serde_json::to_writer_pretty(&mut out, report).context("writing JSON")?;
+        writeln!(out)?;
+    } else {
+        write!(out, "{}", text(report))?;
+    }
+    Ok(exit::OK)
+}
+
 fn engine(a: EngineArgs) -> anyhow::Result<u8> {
     let settings = match &a.config {
         Some(p) => model_settings(p)?,
@@ -207,21 +232,9 @@ fn engine(a: EngineArgs) -> anyhow::Result<u8> {
         settings,
         scale: !a.no_scale,
     };
-    let json = a.json;
-    let report = benchmark::run(&opts, |line| {
-        if !json {
-            eprintln!("  {line}");
-        }
-    })
-    .map_err(|e| Failure::new(exit::INTERNAL, format!("benchmark failed: {e}")))?;
-    let mut out = std::io::stdout().lock();
-    if json {
-        serde_json::to_writer_pretty(&mut out, &report).context("writing JSON")?;
-        writeln!(out)?;
-    } else {
-        write!(out, "{}", benchmark::render_text(&report))?;
-    }
-    Ok(exit::OK)
+    let report = benchmark::run(&opts, progress_unless(a.json))
+        .map_err(|e| Failure::new(exit::INTERNAL, format!("benchmark failed: {e}")))?;
+    print_report(a.json, &report, benchmark::render_text)
 }
 
 fn casebook(a: CasebookArgs) -> anyhow::Result<u8> {
@@ -230,21 +243,9 @@ fn casebook(a: CasebookArgs) -> anyhow::Result<u8> {
         quick: a.quick,
         seed: a.seed,
     };
-    let json = a.json;
-    let report = casebook::run(&opts, |line| {
-        if !json {
-            eprintln!("  {line}");
-        }
-    })
-    .map_err(|e| Failure::new(exit::INTERNAL, format!("casebook failed: {e}")))?;
-    let mut out = std::io::stdout().lock();
-    if json {
-        serde_json::to_writer_pretty(&mut out, &report).context("writing JSON")?;
-        writeln!(out)?;
-    } else {
-        write!(out, "{}", casebook::render_text(&report))?;
-    }
-    Ok(exit::OK)
+    let report = casebook::run(&opts, progress_unless(a.json))
+        .map_err(|e| Failure::new(exit::INTERNAL, format!("casebook failed: {e}")))?;
+    print_report(a.json, &report, casebook::render_text)
 }
 
 fn scale(a: ScaleArgs) -> anyhow::Result<u8> {
@@ -275,19 +276,7 @@ fn scale(a: ScaleArgs) -> anyhow::Result<u8> {
         settings,
         only: (!only.is_empty()).then_some(only),
     };
-    let json = a.json;
-    let rows = scale::run(&opts, |line| {
-        if !json {
-            eprintln!("  {line}");
-        }
-    })
-    .map_err(|e| Failure::new(exit::INTERNAL, format!("bench scale failed: {e}")))?;
-    let mut out = std::io::stdout().lock();
-    if json {
-        serde_json::to_writer_pretty(&mut out, &rows).context("writing JSON")?;
-        writeln!(out)?;
-    } else {
-        write!(out, "{}", scale::render_text(&rows))?;
-    }
-    Ok(exit::OK)
+    let rows = scale::run(&opts, progress_unless(a.json))
+        .map_err(|e| Failure::new(exit::INTERNAL, format!("bench scale failed: {e}")))?;
+    print_report(a.json, &rows, |r| scale::render_text(r))
 }

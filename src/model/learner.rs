@@ -473,6 +473,35 @@ pub fn train(
     }
 }
 
+/// A backtracking line search (Armijo's sufficient-decrease rule, `f(θ + t·d) ≤ f(θ) + 10⁻⁴·t·∇f·d`, `t`
+/// halved up to 40 times; Nocedal & Wright, "Numerical Optimization", 2006, Alg. 3.1) along the first of
+/// `dirs` that descends and succeeds. Returns the new `θ` with its value, gradient and probabilities, or
+/// `None` when no direction gives sufficient decrease.
+pub(crate) fn armijo_step(
+    obj: &Objective<'_>,
+    theta: &Array1<f64>,
+    f: f64,
+    g: &Array1<f64>,
+    dirs: impl IntoIterator<Item = Array1<f64>>,
+) -> Option<(Array1<f64>, f64, Array1<f64>, Array2<f64>)> {
+    for dir in dirs {
+        let slope = g.dot(&dir);
+        if !slope.is_finite() || slope >= 0.0 {
+            continue;
+        }
+        let mut step = 1.0;
+        for _ in 0..40 {
+            let cand = theta + &(&dir * step);
+            let (fc, gc, pc) = obj.value_grad(&cand);
+            if fc.is_finite() && fc <= f + 1e-4 * step * slope {
+                return Some((cand, fc, gc, pc));
+            }
+            step *= 0.5;
+        }
+    }
+    None
+}
+
 /// Minimise the objective by Newton's method with a dense Hessian (Cholesky), used when `p·K` is small.
 /// Quadratically convergent near the optimum; each step costs one Hessian assembly. Falls back to a
 /// gradient step with backtracking if the factorisation fails.
@@ -522,33 +551,13 @@ pub fn train_newton_factored(
         last_factor = factor;
         // Newton direction first; if its line search fails (e.g. round-off along the nearly flat intercept
         // direction), a steepest-descent step, which always descends.
-        let mut accepted = false;
-        for dir in newton_dir.into_iter().chain(std::iter::once(-g.clone())) {
-            let slope = g.dot(&dir);
-            if slope.is_nan() || slope >= 0.0 {
-                continue;
-            }
-            let mut step = 1.0;
-            for _ in 0..40 {
-                let cand = &theta + &(&dir * step);
-                let (fc, gc, pc) = obj.value_grad(&cand);
-                if fc.is_finite() && fc <= f + 1e-4 * step * slope {
-                    theta = cand;
-                    f = fc;
-                    g = gc;
-                    prob = pc;
-                    accepted = true;
-                    break;
-                }
-                step *= 0.5;
-            }
-            if accepted {
+        let dirs = newton_dir.into_iter().chain(std::iter::once(-g.clone()));
+        match armijo_step(obj, &theta, f, &g, dirs) {
+            Some((t, fc, gc, pc)) => (theta, f, g, prob) = (t, fc, gc, pc),
+            None => {
+                stopped = "line search made no progress".into();
                 break;
             }
-        }
-        if !accepted {
-            stopped = "line search made no progress".into();
-            break;
         }
     }
     let gn = g.dot(&g).sqrt();

@@ -13,7 +13,7 @@ use std::time::Instant;
 
 use ndarray::Array1;
 
-use super::learner::{Objective, TrainReport};
+use super::learner::{armijo_step, Objective, TrainReport};
 use super::linalg::conjugate_gradient_with;
 
 /// The preconditioner of [`train_newton_cg`] for an objective: the damped inverse of its prior's
@@ -71,33 +71,12 @@ pub fn train_newton_cg(
         let newton = cg.x;
         // A direction that does not descend (CG stopped on round-off) is replaced by the preconditioned
         // gradient, which always does.
-        let mut accepted = false;
-        for dir in [newton, -precond(&g)] {
-            let slope = g.dot(&dir);
-            if !slope.is_finite() || slope >= 0.0 {
-                continue;
-            }
-            let mut step = 1.0;
-            for _ in 0..40 {
-                let cand = &theta + &(&dir * step);
-                let (fc, gc, pc) = obj.value_grad(&cand);
-                if fc.is_finite() && fc <= f + 1e-4 * step * slope {
-                    theta = cand;
-                    f = fc;
-                    g = gc;
-                    prob = pc;
-                    accepted = true;
-                    break;
-                }
-                step *= 0.5;
-            }
-            if accepted {
+        match armijo_step(obj, &theta, f, &g, [newton, -precond(&g)]) {
+            Some((t, fc, gc, pc)) => (theta, f, g, prob) = (t, fc, gc, pc),
+            None => {
+                stopped = "line search made no progress";
                 break;
             }
-        }
-        if !accepted {
-            stopped = "line search made no progress";
-            break;
         }
     }
     let gn = g.dot(&g).sqrt();
