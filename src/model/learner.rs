@@ -473,6 +473,9 @@ pub fn train(
     }
 }
 
+/// A point of the optimisation: `θ`, the objective there, its gradient and the class probabilities.
+pub(crate) type Iterate = (Array1<f64>, f64, Array1<f64>, Array2<f64>);
+
 /// A backtracking line search (Armijo's sufficient-decrease rule, `f(θ + t·d) ≤ f(θ) + 10⁻⁴·t·∇f·d`, `t`
 /// halved up to 40 times; Nocedal & Wright, "Numerical Optimization", 2006, Alg. 3.1) along the first of
 /// `dirs` that descends and succeeds. Returns the new `θ` with its value, gradient and probabilities, or
@@ -483,7 +486,7 @@ pub(crate) fn armijo_step(
     f: f64,
     g: &Array1<f64>,
     dirs: impl IntoIterator<Item = Array1<f64>>,
-) -> Option<(Array1<f64>, f64, Array1<f64>, Array2<f64>)> {
+) -> Option<Iterate> {
     for dir in dirs {
         let slope = g.dot(&dir);
         if !slope.is_finite() || slope >= 0.0 {
