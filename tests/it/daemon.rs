@@ -1088,27 +1088,22 @@ fn pool_summary_catches_up_with_offline_pool_changes() {
     assert!(d.stop().success());
 }
 
-/// A release through the running daemon's admin socket reaches the pool summary at once and is counted as
-/// `labelweir_batches_total{outcome="released"}`.
-#[test]
-fn a_live_release_updates_pool_and_metrics() {
-    let ws = Ws::whole_batches(&["v1"]);
-    let d = Daemon::start(&ws);
-    let (_, id) = clean_then_poisoned(&ws, 91);
-    let dir = ws.dir.display().to_string();
-    // The file reaches quarantine/ a moment before its terminal state is recorded (filing order: file,
-    // report, notice, state); a release in that window is refused as "decided", so retry briefly.
+/// Release batch `id` through the running daemon, and assert that it was released. The file reaches
+/// quarantine/ a moment before its terminal state is recorded (filing order: file, report, notice,
+/// state); a release in that window is refused as "decided", so this retries until it is not, for at
+/// most 10 s.
+fn release_once_filed(dir: &str, id: &str, reason: &str, by: &str) {
     let t = std::time::Instant::now();
     let out = loop {
         let out = run_bin(&[
             "quarantine",
             "release",
-            &dir,
-            &id,
+            dir,
+            id,
             "--reason",
-            "checked by hand",
+            reason,
             "--by",
-            "reviewer-b",
+            by,
         ]);
         if out.status.success()
             || !String::from_utf8_lossy(&out.stderr).contains("is decided")
@@ -1123,6 +1118,17 @@ fn a_live_release_updates_pool_and_metrics() {
         "release: {}",
         String::from_utf8_lossy(&out.stderr)
     );
+}
+
+/// A release through the running daemon's admin socket reaches the pool summary at once and is counted as
+/// `labelweir_batches_total{outcome="released"}`.
+#[test]
+fn a_live_release_updates_pool_and_metrics() {
+    let ws = Ws::whole_batches(&["v1"]);
+    let d = Daemon::start(&ws);
+    let (_, id) = clean_then_poisoned(&ws, 91);
+    let dir = ws.dir.display().to_string();
+    release_once_filed(&dir, &id, "checked by hand", "reviewer-b");
     let metric = |name: &str| -> Option<f64> {
         let (_, text) = http_get(d.addr, "/metrics").unwrap();
         text.lines()
@@ -1157,32 +1163,11 @@ fn a_released_batch_joins_the_vendor_record_before_the_next_verdict() {
     let d = Daemon::start(&ws);
     let (_, id) = clean_then_poisoned(&ws, 101);
     let dir = ws.dir.display().to_string();
-    // The file reaches quarantine/ a moment before its terminal state is recorded; a release in that
-    // window is refused as "decided": retry until it is not, with a deadline.
-    let t = std::time::Instant::now();
-    let out = loop {
-        let out = run_bin(&[
-            "quarantine",
-            "release",
-            &dir,
-            &id,
-            "--reason",
-            "checked by hand: the flips are a known site mix-up",
-            "--by",
-            "reviewer-c",
-        ]);
-        if out.status.success()
-            || !String::from_utf8_lossy(&out.stderr).contains("is decided")
-            || t.elapsed() > Duration::from_secs(10)
-        {
-            break out;
-        }
-        std::thread::sleep(Duration::from_millis(100));
-    };
-    assert!(
-        out.status.success(),
-        "release: {}",
-        String::from_utf8_lossy(&out.stderr)
+    release_once_filed(
+        &dir,
+        &id,
+        "checked by hand: the flips are a known site mix-up",
+        "reviewer-c",
     );
     // The release command returns once its transaction is flushed; the next batch is decided after it.
     ws.deliver("v1", "next.csv", &clean_batch("n", 120, 103).csv());
