@@ -457,20 +457,8 @@ impl PoolSummary {
     fn reservoir_expansion(&self, l2: f64) -> Arc<Expansion> {
         let key = (self.n, self.loss.to_bits() ^ l2.to_bits());
         self.expansion.get_or(key, || {
-            let k = self.n_classes;
-            let y = one_hot(&self.reservoir_y, k);
-            let obj = Objective {
-                phi: self.reservoir_phi.view(),
-                y: y.view(),
-                weight: None,
-                norm: self.reservoir_y.len().max(1) as f64,
-                l2,
-                prior: None,
-            };
-            let theta = self.theta();
-            let (f, g, prob) = obj.value_grad(&theta);
-            let (pen_f, pen_g) = penalty(&theta, self.reservoir_phi.ncols(), l2);
-            Arc::new((f - pen_f, g - pen_g, obj.data_hessian(prob.view())))
+            let (f, g, h) = self.reservoir_terms(l2, true);
+            Arc::new((f, g, h.expect("the Hessian was asked for")))
         })
     }
 
@@ -561,6 +549,17 @@ impl PoolSummary {
 
     /// The reservoir's mean cross-entropy and its gradient at `θ_P` (no Hessian).
     fn reservoir_loss_grad(&self, l2: f64) -> (f64, Array1<f64>) {
+        let (f, g, _) = self.reservoir_terms(l2, false);
+        (f, g)
+    }
+
+    /// The reservoir's mean cross-entropy `f − R(θ_P)` and gradient `∇f − ∇R(θ_P)` at `θ_P` (the L2
+    /// penalty `R` removed), and its data Hessian when `with_hessian`.
+    fn reservoir_terms(
+        &self,
+        l2: f64,
+        with_hessian: bool,
+    ) -> (f64, Array1<f64>, Option<Array2<f64>>) {
         let y = one_hot(&self.reservoir_y, self.n_classes);
         let obj = Objective {
             phi: self.reservoir_phi.view(),
@@ -571,9 +570,10 @@ impl PoolSummary {
             prior: None,
         };
         let theta = self.theta();
-        let (f, g, _) = obj.value_grad(&theta);
+        let (f, g, prob) = obj.value_grad(&theta);
         let (pen_f, pen_g) = penalty(&theta, self.reservoir_phi.ncols(), l2);
-        (f - pen_f, g - pen_g)
+        let h = with_hessian.then(|| obj.data_hessian(prob.view()));
+        (f - pen_f, g - pen_g, h)
     }
 
     /// Offer items to the reservoir (Algorithm R): item number `t` (0-based over the pool's history) is
