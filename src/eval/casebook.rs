@@ -58,6 +58,7 @@ pub enum Attack {
 /// One scripted case.
 #[derive(Debug, Clone)]
 struct Case {
+    data: Data,
     name: &'static str,
     follows: &'static str,
     batches: Vec<(usize, Attack)>,
@@ -70,8 +71,12 @@ pub struct CaseReport {
     pub name: String,
     /// The published attack or practice it follows.
     pub follows: String,
+    /// The data: `plant` or `winequality`.
+    pub data: String,
     /// Batches delivered.
     pub batches: usize,
+    /// Batches held (any reason).
+    pub held: usize,
     /// Batches carrying poison (flipped labels).
     pub poisoned_batches: usize,
     /// 1-based number of the first batch held (any batch), if any.
@@ -82,6 +87,10 @@ pub struct CaseReport {
     pub poison_delivered: usize,
     /// Flipped labels that entered the pool with their wrong label.
     pub poison_in_pool: usize,
+    /// Of those, the ones whose wrong label is the pool model's own most likely class for the item when
+    /// it was delivered: poison that agrees with the model, which no check through that model can see
+    /// (only the trusted items near it can).
+    pub poison_in_pool_agreeing: usize,
     /// Poisoned batches accepted.
     pub poisoned_accepted: usize,
     /// Batches without poison.
@@ -115,11 +124,77 @@ pub struct Casebook {
     pub cases: Vec<CaseReport>,
 }
 
+/// Where a case's items come from.
+#[derive(Debug, Clone, Copy, PartialEq)]
+enum Data {
+    /// The fictional recycling plant.
+    Plant,
+    /// Red wine quality (`linfa-datasets` 0.8.1, 1,599 × 11, six grades): a registry data set on which
+    /// the linear learner is only moderately accurate (about half of the items right).
+    Wine,
+}
+
+/// The items a stream draws from.
+#[derive(Clone)]
+enum Source {
+    Plant(Plant),
+    /// A fixed table's rows set aside for batches (none of them in the trusted set or the pool).
+    Table {
+        x: Array2<f64>,
+        y: Vec<usize>,
+        k: usize,
+        features: usize,
+    },
+}
+
+impl Source {
+    fn classes(&self) -> usize {
+        match self {
+            Source::Plant(_) => Plant::N_CLASSES,
+            Source::Table { k, .. } => *k,
+        }
+    }
+
+    /// `n` items: the plant's belt, or `n` of the table's rows in a seeded order (drawn again, in a new
+    /// order, once they run out).
+    fn sample(&self, n: usize, seed: u64) -> (Array2<f64>, Vec<usize>) {
+        match self {
+            Source::Plant(p) => p.sample(n, seed),
+            Source::Table { x, y, .. } => {
+                use rand::seq::SliceRandom;
+                use rand::SeedableRng;
+                let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+                let mut idx = Vec::with_capacity(n);
+                while idx.len() < n {
+                    let mut order: Vec<usize> = (0..y.len()).collect();
+                    order.shuffle(&mut rng);
+                    idx.extend(order.into_iter().take(n - idx.len()));
+                }
+                (x.select(Axis(0), &idx), idx.iter().map(|&i| y[i]).collect())
+            }
+        }
+    }
+
+    fn class_names(&self) -> Vec<String> {
+        match self {
+            Source::Plant(_) => scenario::class_names(),
+            Source::Table { k, .. } => (0..*k).map(|c| format!("grade-{c}")).collect(),
+        }
+    }
+
+    fn feature_names(&self) -> Vec<String> {
+        match self {
+            Source::Plant(_) => scenario::feature_names(),
+            Source::Table { features, .. } => (0..*features).map(|j| format!("f{j}")).collect(),
+        }
+    }
+}
+
 /// The workspace a stream starts from: settings, trusted set, standardiser and the in-house pool.
 #[derive(Clone)]
 struct Start {
     config: Config,
-    plant: Plant,
+    source: Source,
     trusted_x: Array2<f64>,
     trusted_y: Vec<usize>,
     standardizer: Standardizer,
@@ -127,16 +202,76 @@ struct Start {
 }
 
 fn start(seed: u64) -> Result<Start, ModelError> {
-    let config = Config::default();
     let plant = Plant::new(seed);
     let (trusted_x, trusted_y) = plant.sample_per_class(10, seed ^ 0x7157);
+    let (px, py) = plant.sample(2_000, seed ^ 0x9001);
+    finish_start(Source::Plant(plant), trusted_x, trusted_y, px, py, seed)
+}
+
+/// The wine workspace: up to 10 trusted items per grade (at most a third of a rare grade's items), an
+/// 800-item in-house pool, and the remaining rows for batches, after a seeded shuffle.
+fn start_wine(seed: u64) -> Result<Start, ModelError> {
+    use rand::seq::SliceRandom;
+    use rand::SeedableRng;
+    let ds = linfa_datasets::winequality();
+    let targets = ds.targets().to_vec();
+    let mut grades = targets.clone();
+    grades.sort_unstable();
+    grades.dedup();
+    let y: Vec<usize> = targets
+        .iter()
+        .map(|t| grades.binary_search(t).unwrap_or(0))
+        .collect();
+    let k = grades.len();
+    let counts: Vec<usize> = (0..k)
+        .map(|c| y.iter().filter(|&&l| l == c).count())
+        .collect();
+    let mut order: Vec<usize> = (0..y.len()).collect();
+    order.shuffle(&mut rand_chacha::ChaCha8Rng::seed_from_u64(seed ^ 0x717e));
+    let (mut taken, mut trusted, mut rest) = (vec![0usize; k], Vec::new(), Vec::new());
+    for i in order {
+        if taken[y[i]] < 10.min(counts[y[i]] / 3) {
+            taken[y[i]] += 1;
+            trusted.push(i);
+        } else {
+            rest.push(i);
+        }
+    }
+    let (pool, batch_rows) = rest.split_at(800.min(rest.len() / 2));
+    let rows = |idx: &[usize]| {
+        (
+            ds.records().select(Axis(0), idx),
+            idx.iter().map(|&i| y[i]).collect::<Vec<_>>(),
+        )
+    };
+    let (tx, ty) = rows(&trusted);
+    let (px, py) = rows(pool);
+    let (bx, by) = rows(batch_rows);
+    let features = bx.ncols();
+    let source = Source::Table {
+        x: bx,
+        y: by,
+        k,
+        features,
+    };
+    finish_start(source, tx, ty, px, py, seed)
+}
+
+fn finish_start(
+    source: Source,
+    trusted_x: Array2<f64>,
+    trusted_y: Vec<usize>,
+    px: Array2<f64>,
+    py: Vec<usize>,
+    seed: u64,
+) -> Result<Start, ModelError> {
+    let config = Config::default();
     let standardizer = Standardizer::fit(&[trusted_x.view()])?;
     let fm = FeatureMap::new(standardizer.clone(), FeatureMapKind::Linear, seed)?;
-    let (px, py) = plant.sample(2_000, seed ^ 0x9001);
-    let (summary, _) = PoolSummary::fit(&config.model, fm, Plant::N_CLASSES, px.view(), &py)?;
+    let (summary, _) = PoolSummary::fit(&config.model, fm, source.classes(), px.view(), &py)?;
     Ok(Start {
         config,
-        plant,
+        source,
         trusted_x,
         trusted_y,
         standardizer,
@@ -153,7 +288,7 @@ fn attack(
     a: Attack,
     seed: u64,
 ) -> Result<(Vec<usize>, Vec<bool>), ModelError> {
-    let k = Plant::N_CLASSES;
+    let k = s.source.classes();
     Ok(match a {
         Attack::Clean => (y.to_vec(), vec![false; y.len()]),
         Attack::Uniform(r) => scenario::uniform_flips(y, k, r, seed),
@@ -188,28 +323,46 @@ fn attack(
                     row[c] += offset;
                 }
             }
-            let _ = s;
             (y.to_vec(), vec![false; y.len()])
         }
     })
+}
+
+/// The pool model's most likely class for each row of `x` (raw features).
+fn best_guesses(summary: &PoolSummary, x: &Array2<f64>) -> Result<Vec<usize>, ModelError> {
+    let scores = summary.feature_map.apply(x.view())?.dot(&summary.w);
+    Ok(scores
+        .axis_iter(Axis(0))
+        .map(|row| {
+            (0..row.len())
+                .max_by(|&a, &b| row[a].total_cmp(&row[b]))
+                .unwrap_or(0)
+        })
+        .collect())
 }
 
 /// Replay one case from the start state.
 fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
     let mut summary = s.summary.clone();
     let mut history = VendorHistory::default();
-    let classes = scenario::class_names();
+    let classes = s.source.class_names();
     let trusted_ids: Vec<String> = scenario::item_ids("t", s.trusted_y.len());
     let w = Array1::ones(s.trusted_y.len());
     let mut r = CaseReport {
         name: case.name.into(),
         follows: case.follows.into(),
+        data: match case.data {
+            Data::Plant => "plant".into(),
+            Data::Wine => "winequality".into(),
+        },
         batches: case.batches.len(),
+        held: 0,
         poisoned_batches: 0,
         first_held: None,
         first_poisoned: None,
         poison_delivered: 0,
         poison_in_pool: 0,
+        poison_in_pool_agreeing: 0,
         poisoned_accepted: 0,
         clean_batches: 0,
         clean_held: 0,
@@ -219,21 +372,22 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
     let mut told = std::collections::BTreeMap::<String, usize>::new();
     for (b, &(size, a)) in case.batches.iter().enumerate() {
         let bseed = seed.wrapping_mul(1_000_003).wrapping_add(b as u64);
-        let (mut x, y) = s.plant.sample(size, bseed);
+        let (mut x, y) = s.source.sample(size, bseed);
         let (given, mask) = attack(s, &summary, &mut x, &y, a, bseed ^ 0xa77)?;
+        let best_guess = best_guesses(&summary, &x)?;
         let poison = mask.iter().filter(|&&m| m).count();
         let ids = scenario::item_ids(&format!("c{b}-"), size);
         let table = Table {
             source: format!("{}-{b}.csv", case.name),
             ids: ids.clone(),
             labels: scenario::label_names(&given),
-            feature_names: scenario::feature_names(),
+            feature_names: s.source.feature_names(),
             features: x.clone(),
         };
         let scored = model::assess(
             &s.config.model,
             &s.standardizer,
-            Plant::N_CLASSES,
+            s.source.classes(),
             TrustedInput {
                 x: s.trusted_x.view(),
                 y: &s.trusted_y,
@@ -304,6 +458,9 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
                     if let Some(i) = ids.iter().position(|x| x == id) {
                         if mask[i] && label != y[i] {
                             r.poison_in_pool += 1;
+                            if label == best_guess[i] {
+                                r.poison_in_pool_agreeing += 1;
+                            }
                         }
                     }
                 }
@@ -312,6 +469,7 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
                 summary.absorb(&s.config.model, ex.view(), &entry.labels)?;
             }
         } else {
+            r.held += 1;
             r.first_held.get_or_insert(b + 1);
             if poison == 0 {
                 r.clean_held += 1;
@@ -334,6 +492,8 @@ fn cases(quick: bool) -> Vec<Case> {
         a
     };
     let q = |full: usize, short: usize| if quick { short } else { full };
+    const HALF: &str = "a labeler right on half the items (uniform flips at 50 %; the calibration requirement, common practice, no published source)";
+    const TRUE_LABELS: &str = "false alarms from the first batch on a moderately separable registry data set (calibration requirement; common practice, no published source)";
     const FLIPS: &str = "label-flip poisoning: Biggio, Nelson & Laskov, \"Support Vector Machines Under Adversarial Label Noise\", ACML 2011";
     let drip = |from: usize| -> Vec<(usize, Attack)> {
         (0..q(16, 6))
@@ -351,27 +511,35 @@ fn cases(quick: bool) -> Vec<Case> {
         v
     };
     vec![
-        Case { name: "clean stream", follows: "in-control run length of a CUSUM (Page, \"Continuous Inspection Schemes\", Biometrika 1954)", batches: clean(q(1_200, 12)) },
-        Case { name: "drip from day one", follows: FLIPS, batches: drip(0) },
-        Case { name: "drip after a clean history", follows: FLIPS, batches: then(clean(q(10, 3)), drip(0)) },
-        Case { name: "uniform 10 %", follows: FLIPS, batches: vec![(n, Attack::Uniform(0.10)); q(10, 3)] },
-        Case { name: "class-targeted 20 % (0 → 1)", follows: FLIPS, batches: vec![(n, Attack::Targeted(0, 1, 0.20)); q(10, 3)] },
-        Case { name: "region 10 %", follows: "region / sub-population flips: Jagielski et al., \"Subpopulation Data Poisoning Attacks\", CCS 2021", batches: vec![(n, Attack::Region(0.10)); q(10, 3)] },
-        Case { name: "boiling frog", follows: "boiling frog poisoning: Rubinstein et al., \"ANTIDOTE: Understanding and Defending against Poisoning of Anomaly Detectors\", IMC 2009", batches: then(vec![(n, Attack::Targeted(0, 1, 0.10)); q(25, 4)], vec![(n, Attack::Targeted(0, 1, 0.30)); q(6, 3)]) },
-        Case { name: "split delivery (20 × 30 items)", follows: "splitting a delivery under per-file limits (common evasion practice; no published source)", batches: split(false) },
-        Case { name: "interleaved small files", follows: "dilution with clean files (common evasion practice; no published source)", batches: split(true) },
-        Case { name: "repair-aware, least-sure items 10 %", follows: "adaptive attacker that knows the defence: Carlini & Wagner, \"Adversarial Examples Are Not Easily Detected\", AISec 2017", batches: vec![(n, Attack::LeastSure(0.10)); q(10, 3)] },
-        Case { name: "covariate shift, labels right", follows: "covariate shift: Shimodaira, \"Improving predictive inference under covariate shift\", J. Stat. Plan. Inference 2000", batches: then(clean(q(5, 2)), vec![(n, Attack::Shifted(6.0)); q(5, 3)]) },
+        Case { data: Data::Plant, name: "clean stream", follows: "in-control run length of a CUSUM (Page, \"Continuous Inspection Schemes\", Biometrika 1954)", batches: clean(q(1_200, 12)) },
+        Case { data: Data::Plant, name: "drip from day one", follows: FLIPS, batches: drip(0) },
+        Case { data: Data::Plant, name: "drip after a clean history", follows: FLIPS, batches: then(clean(q(10, 3)), drip(0)) },
+        Case { data: Data::Plant, name: "uniform 10 %", follows: FLIPS, batches: vec![(n, Attack::Uniform(0.10)); q(10, 3)] },
+        Case { data: Data::Plant, name: "class-targeted 20 % (0 → 1)", follows: FLIPS, batches: vec![(n, Attack::Targeted(0, 1, 0.20)); q(10, 3)] },
+        Case { data: Data::Plant, name: "region 10 %", follows: "region / sub-population flips: Jagielski et al., \"Subpopulation Data Poisoning Attacks\", CCS 2021", batches: vec![(n, Attack::Region(0.10)); q(10, 3)] },
+        Case { data: Data::Plant, name: "boiling frog", follows: "boiling frog poisoning: Rubinstein et al., \"ANTIDOTE: Understanding and Defending against Poisoning of Anomaly Detectors\", IMC 2009", batches: then(vec![(n, Attack::Targeted(0, 1, 0.10)); q(25, 4)], vec![(n, Attack::Targeted(0, 1, 0.30)); q(6, 3)]) },
+        Case { data: Data::Plant, name: "split delivery (20 × 30 items)", follows: "splitting a delivery under per-file limits (common evasion practice; no published source)", batches: split(false) },
+        Case { data: Data::Plant, name: "interleaved small files", follows: "dilution with clean files (common evasion practice; no published source)", batches: split(true) },
+        Case { data: Data::Plant, name: "repair-aware, least-sure items 10 %", follows: "adaptive attacker that knows the defence: Carlini & Wagner, \"Adversarial Examples Are Not Easily Detected\", AISec 2017", batches: vec![(n, Attack::LeastSure(0.10)); q(10, 3)] },
+        Case { data: Data::Plant, name: "covariate shift, labels right", follows: "covariate shift: Shimodaira, \"Improving predictive inference under covariate shift\", J. Stat. Plan. Inference 2000", batches: then(clean(q(5, 2)), vec![(n, Attack::Shifted(6.0)); q(5, 3)]) },
+        Case { data: Data::Plant, name: "half-accuracy labeler", follows: HALF, batches: vec![(n, Attack::Uniform(0.5)); q(20, 3)] },
+        Case { data: Data::Wine, name: "true labels (wine)", follows: TRUE_LABELS, batches: clean(q(100, 6)) },
+        Case { data: Data::Wine, name: "half-accuracy labeler (wine)", follows: HALF, batches: vec![(n, Attack::Uniform(0.5)); q(20, 3)] },
     ]
 }
 
 /// Run the casebook; `progress` receives a line per case.
 pub fn run(o: &CasebookOptions, mut progress: impl FnMut(&str)) -> Result<Casebook, ModelError> {
-    let s = start(o.seed)?;
+    let plant = start(o.seed)?;
+    let wine = start_wine(o.seed)?;
     let mut out = Vec::new();
     for (i, case) in cases(o.quick).iter().enumerate() {
         progress(&format!("{} ({} batches)", case.name, case.batches.len()));
-        out.push(replay(&s, case, o.seed ^ ((i as u64 + 1) << 20))?);
+        let s = match case.data {
+            Data::Plant => &plant,
+            Data::Wine => &wine,
+        };
+        out.push(replay(s, case, o.seed ^ ((i as u64 + 1) << 20))?);
     }
     Ok(Casebook {
         quick: o.quick,
@@ -383,28 +551,43 @@ pub fn run(o: &CasebookOptions, mut progress: impl FnMut(&str)) -> Result<Casebo
 pub fn render_text(c: &Casebook) -> String {
     use std::fmt::Write;
     let mut s = String::new();
-    let _ = writeln!(s, "attack casebook ({}; plant, 150-item batches unless named; a hold is a suspicion for review, not proof)", if c.quick { "quick" } else { "full" });
+    let _ = writeln!(s, "attack casebook ({}; plant unless marked wine, 150-item batches unless named; a hold is a suspicion for review, not proof)", if c.quick { "quick" } else { "full" });
     let _ = writeln!(
         s,
-        "{:<38} {:>7} {:>11} {:>16} {:>13} {:>11} {:>10}",
-        "case", "batches", "first held", "poison in pool", "clean held", "label told", "1st poison"
+        "{:<38} {:>7} {:>5} {:>11} {:>16} {:>9} {:>13} {:>11} {:>10}",
+        "case",
+        "batches",
+        "held",
+        "first held",
+        "poison in pool",
+        "agreeing",
+        "clean held",
+        "label told",
+        "1st poison"
     );
     for r in &c.cases {
         let _ = writeln!(
             s,
-            "{:<38} {:>7} {:>11} {:>7}/{:<4} {:>4.1}% {:>6}/{:<6} {:>11} {:>10}",
+            "{:<38} {:>7} {:>5} {:>11} {:>7}/{:<4} {:>4.1}% {:>9} {:>6}/{:<6} {:>11} {:>10}",
             r.name,
             r.batches,
+            r.held,
             r.first_held.map_or("—".into(), |b| b.to_string()),
             r.poison_in_pool,
             r.poison_delivered,
             100.0 * r.poison_share(),
+            r.poison_in_pool_agreeing,
             r.clean_held,
             r.clean_batches,
             r.held_as_label_trouble,
             r.first_poisoned.map_or("—".into(), |b| b.to_string()),
         );
     }
+    let _ = writeln!(
+        s,
+        "\nagreeing: poison in the pool whose wrong label is the pool model's own most likely class — \
+         invisible to any check through that model; only trusted items near it can speak"
+    );
     let _ = writeln!(s, "\nwhat the vendor was told (reason code: batches)");
     for r in &c.cases {
         let told: Vec<String> = r.told.iter().map(|(c, n)| format!("{c}: {n}")).collect();
@@ -429,7 +612,7 @@ mod tests {
             |_| {},
         )
         .expect("runs");
-        assert_eq!(c.cases.len(), 11);
+        assert_eq!(c.cases.len(), 14);
         let by = |name: &str| {
             c.cases
                 .iter()
@@ -444,6 +627,9 @@ mod tests {
             uniform.poison_delivered > 0 && uniform.poison_share() <= 0.10,
             "{uniform:?}"
         );
+        // With the clean level calibrated to what clean batches flag, a uniform 10 % flip is held within
+        // the three batches (with the reference model taken as it is, it was accepted throughout).
+        assert!(uniform.first_held.is_some(), "{uniform:?}");
         let shift = by("covariate shift");
         assert!(shift.first_held.is_some(), "{shift:?}");
         assert_eq!(shift.held_as_label_trouble, 0, "{shift:?}");
@@ -454,6 +640,8 @@ mod tests {
         for r in &c.cases {
             assert_eq!(r.batches, r.poisoned_batches + r.clean_batches);
             assert!(r.poison_in_pool <= r.poison_delivered);
+            assert!(r.poison_in_pool_agreeing <= r.poison_in_pool);
+            assert!(r.held >= r.clean_held && r.held <= r.batches);
         }
     }
 }

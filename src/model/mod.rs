@@ -30,6 +30,7 @@
 //! A flag is a suspicion for human review, not proof.
 
 mod anchor;
+pub mod calibration;
 pub mod features;
 pub mod kron;
 pub mod learner;

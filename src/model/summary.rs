@@ -16,6 +16,7 @@ use std::time::Instant;
 use ndarray::{Array1, Array2, ArrayView2};
 use serde::{Deserialize, Serialize};
 
+use super::calibration::{leave_one_out_probabilities, SharpnessFit};
 use super::kron::KronFactors;
 use super::learner::{
     flatten_pk, one_hot, solve, vstack, weights_view, Objective, Quadratic, INTERCEPT_RIDGE,
@@ -71,7 +72,14 @@ pub struct PoolSummary {
     /// never saved.
     #[serde(skip)]
     expansion: Cache<Arc<Expansion>>,
+    /// The pool model's sharpness measured when this summary was fitted exactly from a pool of items
+    /// (see [`PoolSummary::sharpness`]); kept, not re-measured, as batches are absorbed.
+    #[serde(default)]
+    pub sharpness_at_fit: Option<SharpnessFit>,
 }
+
+/// Work bound for [`PoolSummary::sharpness`]: items × `K·(p·K)²` stays under this.
+pub const SHARPNESS_FLOPS: f64 = 3e8;
 
 /// A mean loss with its gradient and Hessian at one point: `(ℓ̄, ∇ℓ̄, ∇²ℓ̄)`.
 type Expansion = (f64, Array1<f64>, Array2<f64>);
@@ -213,6 +221,7 @@ impl PoolSummary {
             reservoir_y: Vec::new(),
             curvature: Cache::default(),
             expansion: Cache::default(),
+            sharpness_at_fit: None,
         }
     }
 
@@ -278,6 +287,7 @@ impl PoolSummary {
             out.hess = obj.data_hessian(prob.view());
         }
         out.w = weights_view(&theta, phi.ncols(), n_classes).to_owned();
+        out.sharpness_at_fit = out.measure_sharpness(settings.l2);
         Ok((out, report))
     }
 
@@ -446,6 +456,42 @@ impl PoolSummary {
             }
             Cholesky::factor(h).map(Arc::new)
         })
+    }
+
+    /// The pool model's sharpness `β` (see [`crate::model::calibration`]) as measured when the summary
+    /// was fitted from a pool of items; `None` for a summary that was never fitted exactly (an empty pool
+    /// that grew by absorbing batches), above the dense threshold, or with too few items.
+    ///
+    /// Why only then: flagged items of accepted batches wait for review instead of entering the pool
+    /// (`[admission] flagged = "hold"`), so the items a pool gains by absorbing batches are *selected* —
+    /// the labels the model doubts most are missing — and a pool of them looks sharper than the data are
+    /// (on the plant the measured `β` climbed from 1.3 to 2.4 over 180 absorbed clean batches, and clean
+    /// batches were then held). The pool a workspace is fitted from (the in-house pool at `init`, or the
+    /// stored pool when the summary is rebuilt) is measured once, and that value is carried.
+    pub fn sharpness(&self) -> Option<SharpnessFit> {
+        self.sharpness_at_fit.clone()
+    }
+
+    /// Measure `β` on approximate leave-one-out probabilities of the reservoir's items, at most
+    /// [`SHARPNESS_FLOPS`]` / (K·(p·K)²)` of them (`K` triangular solves with the dense factor of
+    /// `H_P + R` each) and at most 1,000.
+    fn measure_sharpness(&self, l2: f64) -> Option<SharpnessFit> {
+        let chol = self.curvature_factor(l2)?;
+        let m = self.w.len() as f64;
+        let items = ((SHARPNESS_FLOPS / (self.n_classes as f64 * m * m)) as usize)
+            .min(1_000)
+            .min(self.reservoir_y.len());
+        let phi = self.reservoir_phi.slice(ndarray::s![..items, ..]);
+        let y = &self.reservoir_y[..items];
+        let loo = leave_one_out_probabilities(
+            phi,
+            y,
+            &self.theta(),
+            self.n_classes,
+            self.n as f64,
+            |g| chol.solve_lower(g),
+        );
+        SharpnessFit::fit(loo.view(), y, Array1::ones(items).view())
     }
 
     /// Whether the reservoir holds every pool item (then the summary's pool term is exact).

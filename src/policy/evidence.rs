@@ -45,6 +45,10 @@ use serde::{Deserialize, Serialize};
 
 use super::{BatchSignals, PolicySettings};
 
+fn one() -> f64 {
+    1.0
+}
+
 /// One batch in a vendor's item evidence.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
 pub struct Tally {
@@ -100,6 +104,9 @@ pub struct ItemJudgement {
     pub clean_level: f64,
     /// Whether `c` came from the engine (false: `clean_level_unknown` was used).
     pub clean_level_computed: bool,
+    /// The reference model's sharpness `β` behind `c` (1: the model as it is).
+    #[serde(default = "one")]
+    pub clean_level_sharpness: f64,
     /// The vendor's size-weighted excess `A` (shrunk by `trust_items`).
     pub accepted_excess: f64,
     /// The released batches' excess `R` (0 when none).
@@ -153,7 +160,13 @@ impl ItemJudgement {
             self.items,
             self.level,
             self.clean_level,
-            if self.clean_level_computed { "" } else { " (not computed; configured)" },
+            if !self.clean_level_computed {
+                " (not computed; configured)".to_string()
+            } else if self.clean_level_sharpness != 1.0 {
+                format!(" (reference model's sharpness {:.2}, measured)", self.clean_level_sharpness)
+            } else {
+                String::new()
+            },
             self.adjustment,
             whose,
             self.window_items,
@@ -200,6 +213,7 @@ impl ItemEvidence {
             flagged: t.flagged,
             clean_level: c,
             clean_level_computed: s.clean_flagged_share > 0.0,
+            clean_level_sharpness: s.clean_level_sharpness,
             accepted_excess,
             released_excess,
             adjustment,

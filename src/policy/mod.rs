@@ -148,6 +148,14 @@ pub struct BatchSignals {
     /// were right (from the engine's assessment). 0 when unknown (`clean_level_unknown` is used).
     #[serde(default)]
     pub clean_flagged_share: f64,
+    /// The reference model's sharpness `β` the clean level was computed with
+    /// (`Assessment::reference_sharpness`; 1: the model taken as it is), and how it was set. Shown in the
+    /// decision so a reviewer sees what the clean level rests on.
+    #[serde(default = "one")]
+    pub clean_level_sharpness: f64,
+    /// How [`BatchSignals::clean_level_sharpness`] was set, in words.
+    #[serde(default)]
+    pub clean_level_basis: String,
     /// Items beyond the trusted set's reach ([`shift`]); their labels are not judged.
     #[serde(default)]
     pub unlike_items: usize,
@@ -162,6 +170,10 @@ pub struct BatchSignals {
     /// computed no per-label expectation (records from before it did), which skips that test.
     #[serde(default)]
     pub labels: Vec<LabelFlags>,
+}
+
+fn one() -> f64 {
+    1.0
 }
 
 impl BatchSignals {
@@ -207,6 +219,8 @@ impl BatchSignals {
             expected_damage: a.expected_damage,
             expected_damage_sd: a.expected_damage_sd,
             clean_flagged_share: a.expected_flagged_share,
+            clean_level_sharpness: a.reference_sharpness.applied,
+            clean_level_basis: a.reference_sharpness.basis.clone(),
             unlike_items: 0,
             unlike_flagged: 0,
             unlike_tail: 0.0,
@@ -340,6 +354,8 @@ impl BatchSignals {
             expected_damage: 0.0,
             expected_damage_sd: 0.0,
             clean_flagged_share: 0.0,
+            clean_level_sharpness: 1.0,
+            clean_level_basis: String::new(),
             unlike_items: 0,
             unlike_flagged: 0,
             unlike_tail: 0.0,

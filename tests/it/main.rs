@@ -4,6 +4,7 @@
 //! - `util`       — shared helpers: temp workspaces, running the binary, waiting for verdicts.
 //! - `engine`     — the label-repair engine against outside references and its own derivatives.
 //! - `assess_cli` — the `labelweir assess` contract: output, exit codes, bad input.
+//! - `calibration` — the clean level calibrated to the data (registry data, moderately accurate learner).
 //! - `daemon`     — the watching daemon end to end: verdicts, folders, notices, audit, pool, hostile input.
 //! - `crash`      — SIGKILL at random moments, restart, invariants.
 //! - `policy`     — the verdict policy on the engine's output at a large pool (flagged share).
@@ -15,6 +16,7 @@
 
 mod alerting;
 mod assess_cli;
+mod calibration;
 mod crash;
 mod daemon;
 mod engine;

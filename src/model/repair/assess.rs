@@ -4,6 +4,8 @@ use std::time::Instant;
 
 use ndarray::{Array1, Array2, ArrayView2};
 
+use crate::model::calibration::{class_mix_weights, sharpen, Sharpness, SharpnessFit};
+
 use super::fusion::{expected_flagged, score_items, trusted_reports, Evidence};
 use super::path::{penalty_path, repair_point};
 use super::reference::{fit_pool, reference, Reference};
@@ -212,8 +214,8 @@ pub fn assess(
         k,
         &ev.fusion(&refm, &point.mass, big_pool),
     );
-    let (expected_flagged_share, expected_flagged_sd, expected_flagged_by_label) =
-        expected_flagged(&refm.p_ref, &ev.repair_weights, settings.flag_threshold);
+    let (sharpness, (expected_flagged_share, expected_flagged_sd, expected_flagged_by_label)) =
+        clean_expectation(settings, &refm, &ev.repair_weights, trusted, pool, k);
     let (broken_trusted, trusted_still_wrong) = trusted_reports(
         phi_t.view(),
         trusted.y,
@@ -258,6 +260,7 @@ pub fn assess(
         expected_flagged_by_label,
         expected_damage,
         expected_damage_sd,
+        reference_sharpness: sharpness,
     })
 }
 
@@ -425,4 +428,53 @@ fn damage_or_unknown(ctx: &Ctx<'_>, damage: f64, deadline: Instant) -> (f64, Vec
         return (f64::NAN, vec![why]);
     }
     (damage, Vec::new())
+}
+
+/// What a batch carrying the right labels would flag (`Assessment::expected_flagged_share`, its
+/// standard deviation and the per-label counts), with the right labels taken to follow `p_ref` sharpened
+/// by the measured sharpness ([`reference_sharpness`]).
+fn clean_expectation(
+    settings: &ModelSettings,
+    refm: &Reference,
+    repair_weights: &[f64],
+    trusted: TrustedInput<'_>,
+    pool: PoolInput<'_>,
+    k: usize,
+) -> (Sharpness, (f64, f64, Vec<f64>)) {
+    let sharpness = reference_sharpness(refm, trusted, pool, k);
+    let p_label = sharpen(refm.p_ref.view(), sharpness.applied);
+    let expected = expected_flagged(
+        &refm.p_ref,
+        &p_label,
+        repair_weights,
+        settings.flag_threshold,
+    );
+    (sharpness, expected)
+}
+
+/// The reference model's sharpness (see [`crate::model::calibration`]): measured on the pool's
+/// approximate leave-one-out probabilities (pool summary) and on the trusted items re-weighted to the
+/// pool's class mix, while the pool is the reference; the model as it is while it is cross-fitted (the
+/// trusted items are then part of its training).
+fn reference_sharpness(
+    refm: &Reference,
+    trusted: TrustedInput<'_>,
+    pool: PoolInput<'_>,
+    k: usize,
+) -> Sharpness {
+    if !refm.big_pool {
+        return Sharpness::combine(
+            None,
+            None,
+            "the reference is cross-fitted with the trusted items, which cannot then measure it",
+        );
+    }
+    let (pool_fit, pool_labels) = match pool {
+        PoolInput::Summary(s) => (s.sharpness(), s.reservoir_y.as_slice()),
+        PoolInput::Exact { y, .. } => (None, y),
+        PoolInput::Empty => (None, &[][..]),
+    };
+    let weights = class_mix_weights(trusted.y, pool_labels, k, trusted.weight);
+    let trusted_fit = SharpnessFit::fit(refm.prob_t_pool.view(), trusted.y, weights.view());
+    Sharpness::combine(pool_fit, trusted_fit, "too few items to measure it")
 }

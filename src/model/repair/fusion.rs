@@ -131,53 +131,47 @@ pub(crate) fn score_items(
 /// The flagged share to expect from a batch labelled the way the reference model expects, and its
 /// standard deviation (see `Assessment::expected_flagged_share`), at each item's own weight; and the
 /// flagged items to expect per given label ([`expected_flagged_by_label`]).
+///
+/// `p_label` is the distribution the right labels are taken to follow: `p_ref` itself, or `p_ref`
+/// sharpened by the sharpness the trusted set measured (see [`crate::model::calibration`]); the flag
+/// indicator always follows `p_ref`, because that is what the engine flags with.
 pub(crate) fn expected_flagged(
     p_ref: &Array2<f64>,
+    p_label: &Array2<f64>,
     repair_weights: &[f64],
     threshold: f64,
 ) -> (f64, f64, Vec<f64>) {
     let n_b = p_ref.nrows();
-    let q: Vec<f64> = p_ref
+    let by_item = flag_chances(p_ref, p_label, repair_weights, threshold);
+    let q: Vec<f64> = by_item
         .rows()
         .into_iter()
-        .enumerate()
-        .map(|(j, r)| {
-            let w = repair_weights[j];
-            r.iter()
-                .filter(|&&pc| (1.0 - w) * (1.0 - pc) >= threshold)
-                .sum::<f64>()
-                .clamp(0.0, 1.0)
-        })
+        .map(|r| r.sum().clamp(0.0, 1.0))
         .collect();
     let share = q.iter().sum::<f64>() / n_b as f64;
     let sd = q.iter().map(|v| v * (1.0 - v)).sum::<f64>().sqrt() / n_b as f64;
-    let by_label = expected_flagged_by_label(p_ref, repair_weights, threshold);
+    let by_label = by_item.sum_axis(ndarray::Axis(0)).to_vec();
     (share, sd, by_label)
 }
 
-/// The flagged items to expect per given label from a batch labelled the way the reference model expects
-/// (see `Assessment::expected_flagged_by_label`): with labels `Y′_j ~ Categorical(p_ref,j)` drawn
-/// independently, the count of items labelled `c` and flagged is a sum of independent Bernoulli variables
-/// `1[Y′_j = c] · 1[(1 − w_j)(1 − p_ref,jc) ≥ τ]`, whose mean is
-///
-///   `E_c = Σ_j p_ref,jc · 1[(1 − w_j)(1 − p_ref,jc) ≥ τ]`.
-///
-/// Summed over the classes this is `n · m₀`, the expected flagged count of [`expected_flagged`].
-fn expected_flagged_by_label(
+/// `P(Y′_j = c) · 1[(1 − w_j)(1 − p_ref,jc) ≥ τ]` for every item `j` and class `c`, with
+/// `Y′_j ~ Categorical(p_label,j)`: the chance that item `j` carries label `c` and is flagged for it.
+fn flag_chances(
     p_ref: &Array2<f64>,
+    p_label: &Array2<f64>,
     repair_weights: &[f64],
     threshold: f64,
-) -> Vec<f64> {
-    let mut by_label = vec![0.0; p_ref.ncols()];
+) -> Array2<f64> {
+    let mut out = Array2::zeros(p_ref.raw_dim());
     for (j, r) in p_ref.rows().into_iter().enumerate() {
         let w = repair_weights[j];
         for (c, &pc) in r.iter().enumerate() {
             if (1.0 - w) * (1.0 - pc) >= threshold {
-                by_label[c] += pc.clamp(0.0, 1.0);
+                out[[j, c]] = p_label[[j, c]].clamp(0.0, 1.0);
             }
         }
     }
-    by_label
+    out
 }
 
 /// Trusted items the batch as delivered gets wrong (`prob_t_with`: the trusted items' probabilities under
@@ -216,13 +210,13 @@ mod tests {
     use super::*;
 
     /// The per-label expectations add up to the batch's expected flagged count `n · m₀`, and each is the
-    /// formula above worked by hand on a two-item batch.
+    /// formula of `Assessment::expected_flagged_by_label` worked by hand on a three-item batch.
     #[test]
     fn expected_flags_per_label_add_up_to_the_expected_share() {
         let p = ndarray::array![[0.7, 0.2, 0.1], [0.45, 0.45, 0.1], [0.05, 0.05, 0.9]];
         let w = [0.0, 0.2, 0.5];
         let t = 0.5;
-        let by = expected_flagged_by_label(&p, &w, t);
+        let (share, _, by) = expected_flagged(&p, &p, &w, t);
         // Item 0: 1 − p ≥ 0.5 for classes 1 (0.8) and 2 (0.9): adds 0.2 and 0.1.
         // Item 1: 0.8 · (1 − p) ≥ 0.5 for class 2 only (0.72); classes 0 and 1 give 0.44: adds 0.1.
         // Item 2: 0.5 · (1 − p) is at most 0.475 < 0.5: adds nothing.
@@ -230,8 +224,13 @@ mod tests {
         for (got, want) in by.iter().zip(want) {
             assert!((got - want).abs() < 1e-12, "{by:?}");
         }
-        let (share, _, total_by_label) = expected_flagged(&p, &w, t);
-        assert_eq!(total_by_label, by);
         assert!((by.iter().sum::<f64>() - 3.0 * share).abs() < 1e-12);
+        // Labels drawn from a sharper distribution than the flag rule's: the indicator still follows
+        // `p_ref`, the chance follows `p_label` (item 0's classes 1 and 2 at 0.1 and 0.05).
+        let sharper = ndarray::array![[0.85, 0.1, 0.05], [0.45, 0.45, 0.1], [0.0, 0.0, 1.0]];
+        let (_, _, by) = expected_flagged(&p, &sharper, &w, t);
+        for (got, want) in by.iter().zip([0.0, 0.1, 0.15]) {
+            assert!((got - want).abs() < 1e-12, "{by:?}");
+        }
     }
 }

@@ -243,10 +243,10 @@ pub struct Assessment {
     pub reference: String,
     /// Trusted-set size and pool size used.
     pub sizes: Sizes,
-    /// The flagged share the batch would have if every item's label were drawn from its reference
-    /// distribution `p_ref` (a batch labelled the way the reference model expects; the repair then has
-    /// nothing to move): `m₀ = (1/n) Σ_i q_i` with `q_i = Σ_c p_ref,ic · 1[(1−w)(1 − p_ref,ic) ≥ τ]`, `τ` the
-    /// flag threshold. Where the learner separates the classes poorly even a clean batch has many items the
+    /// The flagged share the batch would have if every item's label were drawn from its calibrated
+    /// reference distribution `p̃ = p_ref` sharpened by [`Assessment::reference_sharpness`] (a batch
+    /// carrying the right labels; the repair then has nothing to move): `m₀ = (1/n) Σ_i q_i` with
+    /// `q_i = Σ_c p̃_ic · 1[(1−w)(1 − p_ref,ic) ≥ τ]`, `τ` the flag threshold. Where the learner separates the classes poorly even a clean batch has many items the
     /// reference model doubts, and this is the share to expect; the policy compares the observed share
     /// with it at cold start.
     #[serde(default)]
@@ -255,7 +255,7 @@ pub struct Assessment {
     #[serde(default)]
     pub expected_flagged_sd: f64,
     /// The flagged items to expect per given label (indexed by class) from a batch labelled the way the
-    /// reference model expects: `E_c = Σ_i p_ref,ic · 1[(1−w)(1 − p_ref,ic) ≥ τ]`, the mean of a sum of
+    /// reference model expects: `E_c = Σ_i p̃_ic · 1[(1−w)(1 − p_ref,ic) ≥ τ]`, the mean of a sum of
     /// independent Bernoulli variables (Poisson-binomial); `Σ_c E_c = n · m₀`. The policy compares each
     /// label's flagged count with it, so that a systematic error on one class is seen even when the batch's
     /// total flagged share stays within its noise. Empty in reports written before it existed.
@@ -274,6 +274,13 @@ pub struct Assessment {
     /// Standard deviation of that damage (labels drawn independently).
     #[serde(default)]
     pub expected_damage_sd: f64,
+    /// How sure the reference model should be, as the trusted items measure it
+    /// ([`crate::model::calibration`]): the expected flagged counts above take the right labels to follow
+    /// `p_ref` sharpened by `applied` (`p_c^β / Σ_k p_k^β`), so they match what batches carrying the
+    /// right labels flag whether the reference model is under- or over-confident. `applied = 1` (the
+    /// model as it is) while the reference is cross-fitted or the trusted set is too small.
+    #[serde(default)]
+    pub reference_sharpness: crate::model::calibration::Sharpness,
 }
 
 /// Reads a number that may be `null` (an unknown value, serialised from `NaN`) as `NaN`.

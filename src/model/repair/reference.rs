@@ -331,6 +331,8 @@ pub(crate) struct Reference {
     pub(crate) p_ref: Array2<f64>,
     /// `"pool"` or `"cross_fit"`.
     pub(crate) reference: &'static str,
+    /// The trusted items' class probabilities under the pool model (which has not seen them).
+    pub(crate) prob_t_pool: Array2<f64>,
 }
 
 /// Phase 1b: the target and the reference probabilities (see [`super::assess`]).
@@ -395,6 +397,7 @@ pub(crate) fn reference(
         target_basis,
         p_ref,
         reference,
+        prob_t_pool,
     }
 }
 
