@@ -59,6 +59,10 @@ struct CasebookArgs {
     /// Master seed.
     #[arg(long, default_value_t = 2018)]
     seed: u64,
+    /// Settings to replay the streams under (a workspace's `labelweir.toml`); the shipped defaults
+    /// otherwise. Replaying the same streams under two files is a paired comparison.
+    #[arg(long, value_name = "FILE")]
+    config: Option<std::path::PathBuf>,
 }
 
 /// Sizes for `bench daemon` (defaults: 30 batches of 1,000 items against a pool of 100,000).
@@ -239,9 +243,28 @@ fn engine(a: EngineArgs) -> anyhow::Result<u8> {
 
 fn casebook(a: CasebookArgs) -> anyhow::Result<u8> {
     use labelweir::eval::casebook::{self, CasebookOptions};
+    // The streams' vendor is the casebook's own, so a file whose vendor list is still empty (the
+    // shipped one) is read as if it listed it.
+    let config = match &a.config {
+        Some(p) => {
+            let text = std::fs::read_to_string(p)
+                .with_context(|| format!("reading {}", p.display()))
+                .map_err(|e| Failure::new(exit::CONFIG, format!("{e:#}")))?;
+            let mut c = labelweir::config::Config::parse_str(&text, p)
+                .map_err(|e| Failure::new(exit::CONFIG, format!("{}: {e}", p.display())))?;
+            if c.vendors.is_empty() {
+                c.vendors = vec!["casebook".into()];
+            }
+            c.validate()
+                .map_err(|e| Failure::new(exit::CONFIG, format!("{}: {e}", p.display())))?;
+            c
+        }
+        None => labelweir::config::Config::default(),
+    };
     let opts = CasebookOptions {
         quick: a.quick,
         seed: a.seed,
+        config,
     };
     let report = casebook::run(&opts, progress_unless(a.json))
         .map_err(|e| Failure::new(exit::INTERNAL, format!("casebook failed: {e}")))?;

@@ -42,15 +42,18 @@ impl Tally {
     }
 }
 
-/// Fit the workspace (standardiser on the trusted items, summary of the pool, default settings) and
-/// assess each batch of true labels against it.
+/// Fit the workspace (standardiser on the trusted items, summary of the pool, default settings with
+/// `calibrate_clean_level` on) and assess each batch of true labels against it.
 fn tally_clean_batches(
     trusted: (&Array2<f64>, &[usize]),
     pool: (&Array2<f64>, &[usize]),
     k: usize,
     batches: impl Iterator<Item = (Array2<f64>, Vec<usize>)>,
 ) -> Tally {
-    let settings = ModelSettings::default();
+    let settings = ModelSettings {
+        calibrate_clean_level: true,
+        ..ModelSettings::default()
+    };
     let st = Standardizer::fit(&[trusted.0.view()]).expect("standardise");
     let fm = FeatureMap::new(st.clone(), FeatureMapKind::Linear, 7).expect("map");
     let (summary, _) = PoolSummary::fit(&settings, fm, k, pool.0.view(), pool.1).expect("pool");
@@ -134,10 +137,7 @@ fn clean_batches_flag_what_the_calibrated_clean_level_says_on_winequality() {
     };
     let (tx, ty) = pick(&trusted);
     let (px, py) = pick(pool);
-    let batches = batches
-        .chunks(150)
-        .filter(|c| c.len() == 150)
-        .map(|c| pick(c));
+    let batches = batches.chunks(150).filter(|c| c.len() == 150).map(pick);
     let t = tally_clean_batches((&tx, &ty), (&px, &py), k, batches);
     assert!(t.items >= 600, "{} batch items", t.items);
     let accuracy = t.right as f64 / t.items as f64;

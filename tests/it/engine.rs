@@ -1137,6 +1137,27 @@ fn reservoir_corrects_the_quadratic_pool_model_beyond_its_capacity() {
 // ---------------------------------------------------------------------------------------------------------
 // 7. the benchmark command end to end
 
+/// `bench casebook --config` reads the settings a paired comparison replays under: a file that does not
+/// parse or holds an invalid setting is refused with the configuration exit code (78) before any stream
+/// runs, and names the file.
+#[test]
+fn bench_casebook_refuses_a_bad_settings_file() {
+    let dir = tempfile::tempdir().expect("tempdir");
+    let bad = dir.path().join("bad.toml");
+    std::fs::write(&bad, "[model]\nflag_threshold = 7.0\n").expect("write");
+    for path in [bad, dir.path().join("missing.toml")] {
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_labelweir"))
+            .args(["bench", "casebook", "--quick", "--config"])
+            .arg(&path)
+            .output()
+            .expect("run labelweir");
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(78), "stderr: {stderr}");
+        assert!(stderr.contains(&*path.to_string_lossy()), "{stderr}");
+        assert!(out.stdout.is_empty(), "no casebook printed");
+    }
+}
+
 #[test]
 fn bench_engine_quick_json_reports_every_attack_and_baseline() {
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_labelweir"))

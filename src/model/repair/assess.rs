@@ -432,7 +432,8 @@ fn damage_or_unknown(ctx: &Ctx<'_>, damage: f64, deadline: Instant) -> (f64, Vec
 
 /// What a batch carrying the right labels would flag (`Assessment::expected_flagged_share`, its
 /// standard deviation and the per-label counts), with the right labels taken to follow `p_ref` sharpened
-/// by the measured sharpness ([`reference_sharpness`]).
+/// by the measured sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on, and
+/// `p_ref` itself otherwise.
 fn clean_expectation(
     settings: &ModelSettings,
     refm: &Reference,
@@ -441,7 +442,11 @@ fn clean_expectation(
     pool: PoolInput<'_>,
     k: usize,
 ) -> (Sharpness, (f64, f64, Vec<f64>)) {
-    let sharpness = reference_sharpness(refm, trusted, pool, k);
+    let mut sharpness = reference_sharpness(refm, trusted, pool, k);
+    if !settings.calibrate_clean_level {
+        sharpness.applied = 1.0;
+        sharpness.basis = "measured, not applied ([model] calibrate_clean_level = false)".into();
+    }
     let p_label = sharpen(refm.p_ref.view(), sharpness.applied);
     let expected = expected_flagged(
         &refm.p_ref,
