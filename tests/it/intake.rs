@@ -564,6 +564,50 @@ fn a_write_past_the_storage_limit_keeps_the_daemon_up_and_not_ready_until_space_
     assert!(ws.files_in("processing").is_empty());
 }
 
+/// Issue 14, item 8 (full storage at start). When the store itself cannot be written — here the file size
+/// limit (`RLIMIT_FSIZE`, with `prlimit`, as above) sits at half the store's file, so sled's first write
+/// at open fails with `EFBIG` — the daemon does not start half-way: it logs and prints "storage full" with
+/// what to do, and exits 74 (EX_IOERR), the code a service manager's restart policy and the runbook key on.
+/// It runs as the service user, like the daemon in production.
+#[test]
+fn a_store_that_cannot_be_written_at_start_exits_74_saying_storage_full() {
+    assert_eq!(
+        crate::harden::current_uid(),
+        0,
+        "this test drops privileges and must start as root (CI runs as root)"
+    );
+    let ws = Ws::new(&["north-sort"]);
+    let store = ws.path("state").join("db");
+    let half = std::fs::metadata(&store).expect("the store's file").len() / 2;
+    crate::harden::give_to_service_user(&ws);
+    let log = ws.tmp.path().join("daemon-full.log");
+    let logf = std::fs::File::create(&log).unwrap();
+    let mut child = Command::new("prlimit")
+        .arg(format!("--fsize={half}:unlimited"))
+        .args([
+            "setpriv",
+            &format!("--reuid={SERVICE_UID}"),
+            &format!("--regid={SERVICE_UID}"),
+            "--clear-groups",
+            "--",
+            bin(),
+            "run",
+            &ws.dir.display().to_string(),
+            "--listen",
+            &free_addr().to_string(),
+        ])
+        .stdout(std::process::Stdio::from(logf.try_clone().unwrap()))
+        .stderr(std::process::Stdio::from(logf))
+        .spawn()
+        .unwrap();
+    let status = wait_with_timeout(&mut child, T);
+    let text = std::fs::read_to_string(&log).unwrap();
+    assert_eq!(status.code(), Some(74), "log:\n{text}");
+    assert!(text.contains("labelweir: storage full"), "{text}");
+    assert!(text.contains("free space"), "says what to do: {text}");
+    assert!(ws.files_in("accepted").is_empty() && ws.files_in("quarantine").is_empty());
+}
+
 /// Issue 14, item 8 (claims). A claim that fails on the daemon's side (here `processing/` made
 /// unwritable) answers 503 on `/readyz` and is retried with backoff (0.5 s doubling), not only at the next
 /// rescan: the rescan interval is an hour here, so before the fix the file waited (this test failed at
