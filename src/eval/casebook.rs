@@ -95,6 +95,10 @@ pub struct CaseReport {
     pub poison_in_pool_agreeing: usize,
     /// Poisoned batches accepted.
     pub poisoned_accepted: usize,
+    /// Poisoned deliveries let through: poisoned batches accepted with at least one poisoned item entering
+    /// the pool with its wrong label (a poisoned batch accepted with every poisoned item held back for
+    /// review does not count).
+    pub let_through: usize,
     /// Batches without poison.
     pub clean_batches: usize,
     /// Batches without poison that were held.
@@ -375,6 +379,7 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
         poison_in_pool: 0,
         poison_in_pool_agreeing: 0,
         poisoned_accepted: 0,
+        let_through: 0,
         clean_batches: 0,
         clean_held: 0,
         held_as_label_trouble: 0,
@@ -465,6 +470,7 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
             }
             if let Some(entry) = v.pool {
                 // Poisoned items that entered with a label other than their true one.
+                let before = r.poison_in_pool;
                 for (id, &label) in entry.ids.iter().zip(&entry.labels) {
                     if let Some(i) = ids.iter().position(|x| x == id) {
                         if mask[i] && label != y[i] {
@@ -474,6 +480,9 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
                             }
                         }
                     }
+                }
+                if r.poison_in_pool > before {
+                    r.let_through += 1;
                 }
                 let ex = Array2::from_shape_vec((entry.ids.len(), entry.n_features), entry.x)
                     .map_err(|e| ModelError::Shape(e.to_string()))?;
@@ -579,7 +588,7 @@ pub fn render_text(c: &Casebook) -> String {
     for r in &c.cases {
         let _ = writeln!(
             s,
-            "{:<38} {:>7} {:>5} {:>11} {:>7}/{:<4} {:>4.1}% {:>9} {:>6}/{:<6} {:>11} {:>10}",
+            "{:<38} {:>7} {:>5} {:>11} {:>7}/{:<4} {:>4.1}% {:>9} {:>8} {:>6}/{:<6} {:>11} {:>10}",
             r.name,
             r.batches,
             r.held,
@@ -588,6 +597,7 @@ pub fn render_text(c: &Casebook) -> String {
             r.poison_delivered,
             100.0 * r.poison_share(),
             r.poison_in_pool_agreeing,
+            r.let_through,
             r.clean_held,
             r.clean_batches,
             r.held_as_label_trouble,
@@ -597,7 +607,8 @@ pub fn render_text(c: &Casebook) -> String {
     let _ = writeln!(
         s,
         "\nagreeing: poison in the pool whose wrong label is the pool model's own most likely class — \
-         invisible to any check through that model; only trusted items near it can speak"
+         invisible to any check through that model; only trusted items near it can speak\n\
+         let thru: poisoned deliveries accepted with some of their poison entering the pool"
     );
     let _ = writeln!(s, "\nwhat the vendor was told (reason code: batches)");
     for r in &c.cases {
@@ -650,6 +661,8 @@ mod tests {
             assert_eq!(r.batches, r.poisoned_batches + r.clean_batches);
             assert!(r.poison_in_pool <= r.poison_delivered);
             assert!(r.poison_in_pool_agreeing <= r.poison_in_pool);
+            assert!(r.let_through <= r.poisoned_accepted && r.let_through <= r.poison_in_pool);
+            assert_eq!(r.let_through == 0, r.poison_in_pool == 0, "{r:?}");
             assert!(r.held >= r.clean_held && r.held <= r.batches);
         }
     }
