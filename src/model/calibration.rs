@@ -48,6 +48,8 @@
 //! show.
 
 use ndarray::{Array1, Array2, ArrayView1, ArrayView2};
+
+use crate::model::learner::{logits, softmax_rows};
 use serde::{Deserialize, Serialize};
 
 /// Smallest sharpness applied (a flatter model than this is not credible from a trusted set).
@@ -249,12 +251,11 @@ pub fn leave_one_out_probabilities(
     lower_solve: impl Fn(&Array1<f64>) -> Array1<f64>,
 ) -> Array2<f64> {
     let p = phi.ncols();
-    let mut out = Array2::zeros((phi.nrows(), k));
+    let z = logits(phi, theta, k);
+    let (prob, _) = softmax_rows(z.clone());
+    let mut z_loo = z;
     for (i, row) in phi.rows().into_iter().enumerate() {
-        let z: Vec<f64> = (0..k)
-            .map(|c| row.dot(&theta.slice(ndarray::s![c * p..(c + 1) * p])))
-            .collect();
-        let prob = softmax(&z);
+        let prob = prob.row(i);
         // V = L⁻¹ U, one column per class.
         let v: Vec<Array1<f64>> = (0..k)
             .map(|c| {
@@ -274,10 +275,10 @@ pub fn leave_one_out_probabilities(
         let r = Array1::from_shape_fn(k, |c| prob[c] - if y[i] == c { 1.0 } else { 0.0 });
         let lhs = Array2::eye(k) - m.dot(&sm);
         let dz = solve_small(lhs, m.dot(&r)).unwrap_or_else(|| m.dot(&r));
-        let z_loo: Vec<f64> = (0..k).map(|c| z[c] + dz[c]).collect();
-        out.row_mut(i).assign(&Array1::from(softmax(&z_loo)));
+        let mut zi = z_loo.row_mut(i);
+        zi += &dz;
     }
-    out
+    softmax_rows(z_loo).0
 }
 
 /// `P A P` with `P = I − 11ᵀ/K`.
@@ -320,23 +321,9 @@ fn solve_small(mut a: Array2<f64>, mut b: Array1<f64>) -> Option<Array1<f64>> {
     Some(x)
 }
 
-fn softmax(z: &[f64]) -> Vec<f64> {
-    let top = z.iter().fold(f64::NEG_INFINITY, |m, &v| m.max(v));
-    let e: Vec<f64> = z.iter().map(|v| (v - top).exp()).collect();
-    let s: f64 = e.iter().sum();
-    e.into_iter().map(|v| v / s).collect()
-}
-
 /// Rows of `p` sharpened by `β`: `p_β,c = p_c^β / Σ_k p_k^β` (computed in log space).
 pub fn sharpen(p: ArrayView2<'_, f64>, beta: f64) -> Array2<f64> {
-    let mut out = p.mapv(|v| beta * v.max(1e-300).ln());
-    for mut row in out.rows_mut() {
-        let top = row.iter().fold(f64::NEG_INFINITY, |m, &v| m.max(v));
-        row.mapv_inplace(|v| (v - top).exp());
-        let z = row.sum();
-        row.mapv_inplace(|v| v / z);
-    }
-    out
+    softmax_rows(p.mapv(|v| beta * v.max(1e-300).ln())).0
 }
 
 #[cfg(test)]
@@ -475,23 +462,18 @@ mod tests {
             train_newton(&obj, Array1::zeros((d + 1) * k), 1e-11, 200, deadline).0
         };
         let theta = fit(&phi, &y);
-        // H + R at θ̂, dense, with the learner's ridges (λ on weights, its tiny ridge on intercepts).
+        // H + R at θ̂: the learner's data Hessian plus its ridges (λ on weights, the tiny one on intercepts).
         let p = d + 1;
-        let prob = predict_proba(phi.view(), &theta, k);
-        let mut h = Array2::<f64>::zeros((p * k, p * k));
-        for (i, row) in phi.rows().into_iter().enumerate() {
-            for a in 0..k {
-                for b in 0..k {
-                    let wab =
-                        prob[[i, a]] * (if a == b { 1.0 } else { 0.0 } - prob[[i, b]]) / n as f64;
-                    for u in 0..p {
-                        for v in 0..p {
-                            h[[a * p + u, b * p + v]] += wab * row[u] * row[v];
-                        }
-                    }
-                }
-            }
-        }
+        let yy = one_hot(&y, k);
+        let obj = Objective {
+            phi: phi.view(),
+            y: yy.view(),
+            weight: None,
+            norm: n as f64,
+            l2,
+            prior: None,
+        };
+        let mut h = obj.data_hessian(predict_proba(phi.view(), &theta, k).view());
         for idx in 0..p * k {
             h[[idx, idx]] += if idx % p == p - 1 {
                 crate::model::learner::INTERCEPT_RIDGE

@@ -35,14 +35,21 @@ pub(crate) fn start_as_service_user(ws: &Ws) -> Daemon {
 /// [`start_as_service_user`] with `wrapper` (a program and its arguments, e.g. `prlimit --nofile=N --`)
 /// in front of the privilege drop.
 pub(crate) fn start_as_service_user_under(ws: &Ws, wrapper: &[&str]) -> Daemon {
+    let log = ws.tmp.path().join("daemon-service-user.log");
+    let d = spawn_as_service_user_under(ws, wrapper, &log);
+    d.wait_ready(Duration::from_secs(60));
+    d
+}
+
+/// Spawn `labelweir run` as [`SERVICE_UID`] behind `wrapper`, logging to `log`, without waiting for it.
+pub(crate) fn spawn_as_service_user_under(ws: &Ws, wrapper: &[&str], log: &Path) -> Daemon {
     assert_eq!(
         current_uid(),
         0,
         "these tests drop privileges and must start as root (CI runs as root)"
     );
     give_to_service_user(ws);
-    let log = ws.tmp.path().join("daemon-service-user.log");
-    let logf = std::fs::File::create(&log).unwrap();
+    let logf = std::fs::File::create(log).unwrap();
     let addr = free_addr();
     let mut cmd = match wrapper.split_first() {
         Some((prog, args)) => {
@@ -68,13 +75,11 @@ pub(crate) fn start_as_service_user_under(ws: &Ws, wrapper: &[&str]) -> Daemon {
         .stderr(Stdio::from(logf))
         .spawn()
         .unwrap();
-    let d = Daemon {
+    Daemon {
         child: Some(child),
         addr,
-        log,
-    };
-    d.wait_ready(Duration::from_secs(60));
-    d
+        log: log.to_path_buf(),
+    }
 }
 
 pub(crate) fn current_uid() -> u32 {

@@ -571,35 +571,13 @@ fn a_write_past_the_storage_limit_keeps_the_daemon_up_and_not_ready_until_space_
 /// It runs as the service user, like the daemon in production.
 #[test]
 fn a_store_that_cannot_be_written_at_start_exits_74_saying_storage_full() {
-    assert_eq!(
-        crate::harden::current_uid(),
-        0,
-        "this test drops privileges and must start as root (CI runs as root)"
-    );
     let ws = Ws::new(&["north-sort"]);
     let store = ws.path("state").join("db");
     let half = std::fs::metadata(&store).expect("the store's file").len() / 2;
-    crate::harden::give_to_service_user(&ws);
     let log = ws.tmp.path().join("daemon-full.log");
-    let logf = std::fs::File::create(&log).unwrap();
-    let mut child = Command::new("prlimit")
-        .arg(format!("--fsize={half}:unlimited"))
-        .args([
-            "setpriv",
-            &format!("--reuid={SERVICE_UID}"),
-            &format!("--regid={SERVICE_UID}"),
-            "--clear-groups",
-            "--",
-            bin(),
-            "run",
-            &ws.dir.display().to_string(),
-            "--listen",
-            &free_addr().to_string(),
-        ])
-        .stdout(std::process::Stdio::from(logf.try_clone().unwrap()))
-        .stderr(std::process::Stdio::from(logf))
-        .spawn()
-        .unwrap();
+    let limit = format!("--fsize={half}:unlimited");
+    let mut d = crate::harden::spawn_as_service_user_under(&ws, &["prlimit", &limit, "--"], &log);
+    let mut child = d.child.take().expect("spawned");
     let status = wait_with_timeout(&mut child, T);
     let text = std::fs::read_to_string(&log).unwrap();
     assert_eq!(status.code(), Some(74), "log:\n{text}");
