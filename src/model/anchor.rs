@@ -397,9 +397,23 @@ pub struct TrustedAudit {
     pub summary: String,
 }
 
-/// Per-item repair weights from the trusted audit of the model `theta_audit`.
-///
-/// Returns the weights (`n_B`), each item's excess (nats, after the noise allowance) and the audit record.
+/// The repair weights the trusted audit gives the batch items.
+pub(crate) struct AuditWeights {
+    /// Each item's weight for its given label (`n_B`).
+    pub(crate) given: Vec<f64>,
+    /// The weight item `j` would have if it carried label `c` (`n_B × K`): the neighbourhood's excess is
+    /// the item's, the class excesses are `c`'s. The clean level reads it (a batch of right labels is
+    /// weighed as the engine would weigh it).
+    pub(crate) by_class: Array2<f64>,
+}
+
+/// `w = base + (1 − base)(1 − e^{−2·max(0, x − AUDIT_TOLERANCE_NATS)})` for an excess `x` (nats).
+fn weight_of_excess(base: f64, x: f64) -> f64 {
+    let over = (x - AUDIT_TOLERANCE_NATS).max(0.0);
+    base + (1.0 - base) * (1.0 - (-2.0 * over).exp())
+}
+
+/// Per-item repair weights from the trusted audit of the model `theta_audit`, and the audit record.
 #[allow(clippy::too_many_arguments)]
 pub(super) fn trusted_audit(
     phi_t: ArrayView2<'_, f64>,
@@ -412,7 +426,7 @@ pub(super) fn trusted_audit(
     base: f64,
     neighbours: usize,
     audited: &str,
-) -> (Vec<f64>, Vec<f64>, TrustedAudit) {
+) -> (AuditWeights, TrustedAudit) {
     let m = y_t.len();
     let prob = predict_proba(phi_t, theta_audit, k);
     let mut e = Vec::with_capacity(m);
@@ -482,7 +496,7 @@ pub(super) fn trusted_audit(
     // that is the same for every row and cancels).
     let norm_t: Vec<f64> = phi_t.rows().into_iter().map(|r| r.dot(&r)).collect();
     let mut weights = Vec::with_capacity(phi_b.nrows());
-    let mut excess = Vec::with_capacity(phi_b.nrows());
+    let mut by_class = Array2::zeros((phi_b.nrows(), k));
     let cross = phi_b.dot(&phi_t.t());
     let mut order: Vec<(f64, usize)> = Vec::with_capacity(m);
     for (j, row) in phi_b.rows().into_iter().enumerate() {
@@ -495,16 +509,14 @@ pub(super) fn trusted_audit(
             (s + c_t[t] * e[t], w + c_t[t])
         });
         let local = if w > 0.0 { s / w } else { centre };
-        let x = (local - centre - allowance)
-            .max(0.0)
-            .max(class_excess[given[j]])
-            .max(pred_excess[given[j]])
-            .max(global);
-        excess.push(x);
+        let near = (local - centre - allowance).max(0.0).max(global);
+        let of_class = |c: usize| near.max(class_excess[c]).max(pred_excess[c]);
         // Half a nat of excess is tolerated (ordinary miscalibration of a clean model near class
         // boundaries, measured on the plant, iris and red-wine quality); beyond it the repair's weight rises.
-        let over = (x - AUDIT_TOLERANCE_NATS).max(0.0);
-        weights.push(base + (1.0 - base) * (1.0 - (-2.0 * over).exp()));
+        for c in 0..k {
+            by_class[[j, c]] = weight_of_excess(base, of_class(c));
+        }
+        weights.push(weight_of_excess(base, of_class(given[j])));
     }
     let n_b = weights.len().max(1) as f64;
     let mean_w = weights.iter().sum::<f64>() / n_b;
@@ -519,8 +531,10 @@ pub(super) fn trusted_audit(
         base
     );
     (
-        weights,
-        excess,
+        AuditWeights {
+            given: weights,
+            by_class,
+        },
         TrustedAudit {
             audited: audited.to_string(),
             trusted_items: m,

@@ -159,8 +159,8 @@ pub struct ModelSettings {
     pub label_noise_prior_items: f64,
     /// Compute the clean level (the flags a batch carrying the right labels shows) with the reference
     /// model's *measured* sharpness instead of the model as it is (see [`calibration`]). The sharpness
-    /// is measured and reported either way. Off by default: measured with `labelweir bench casebook`,
-    /// it holds attacks sooner but triples the plant's clean-stream false alarms (see
+    /// is measured and reported either way. On by default: measured with `labelweir bench casebook`
+    /// (paired), it holds attacks sooner with the same clean-stream false alarms (see
     /// `config/labelweir.toml`).
     pub calibrate_clean_level: bool,
 }
@@ -196,7 +196,7 @@ impl Default for ModelSettings {
             trusted_neighbours: 10,
             label_noise_prior: 0.02,
             label_noise_prior_items: 50.0,
-            calibrate_clean_level: false,
+            calibrate_clean_level: true,
         }
     }
 }

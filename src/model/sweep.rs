@@ -152,7 +152,7 @@ impl SweepScorer {
         let phi = self.summary_map.apply(x)?;
         let p_pool = predict_proba(phi.view(), &self.theta_pool, self.k);
         let p_anchor = predict_proba(phi.view(), &self.theta_anchor, self.k);
-        let (weights, _, audit) = trusted_audit(
+        let (weights, audit) = trusted_audit(
             self.phi_t.view(),
             &self.y_t,
             self.c_t.view(),
@@ -170,7 +170,7 @@ impl SweepScorer {
             .map(|(i, &label)| {
                 let learner_doubt = (1.0 - p_pool[[i, label]]).clamp(0.0, 1.0);
                 let anchored_doubt = (1.0 - p_anchor[[i, label]]).clamp(0.0, 1.0);
-                let w = weights[i];
+                let w = weights.given[i];
                 let row = p_anchor.row(i);
                 let proposed_label = argmax((0..self.k).map(|c| {
                     if c == label {

@@ -321,20 +321,32 @@ fn absorbing_batches_tracks_the_exact_summary() {
     assert!(inc.reservoir_y.is_empty());
 }
 
-/// The pool's sharpness is measured when a summary is fitted from items, carried unchanged as batches are
-/// absorbed, and never measured on a pool that only grew by absorbing (its items would be selected by
+/// The pool's sharpness (and the model the clean level's labels follow) is measured when a summary is
+/// fitted from items, carried unchanged as batches are absorbed, and never measured on a pool that only grew by absorbing (its items would be selected by
 /// the admission rule in the daemon; see `PoolSummary::sharpness`).
 #[test]
 fn the_pools_sharpness_is_measured_at_fit_and_carried_through_absorbing() {
     let settings = ModelSettings::default();
     let (inc, exact) = absorbed_and_fitted(&settings);
     assert!(inc.sharpness().is_none(), "grew by absorbing: not measured");
+    assert!(
+        inc.labels_model().is_none(),
+        "grew by absorbing: no model at fit"
+    );
     let at_fit = exact.sharpness().expect("measured at fit");
+    let model_at_fit = exact.labels_model().expect("the model at fit");
+    assert_eq!(model_at_fit, exact.theta());
     assert!(at_fit.beta.is_finite() && at_fit.standard_error > 0.0 && at_fit.items >= 10);
     let mut grown = exact.clone();
     let (x, y) = blobs(300, 3, 3, 31);
     grown.absorb(&settings, x.view(), &y).unwrap();
     assert_eq!(grown.sharpness(), Some(at_fit));
+    assert_eq!(grown.labels_model(), Some(model_at_fit.clone()));
+    assert_ne!(
+        grown.theta(),
+        model_at_fit,
+        "absorbing moved the pool model"
+    );
 }
 
 #[test]

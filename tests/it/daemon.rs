@@ -903,9 +903,9 @@ fn sighup_reloads_the_policy_and_refuses_restart_only_settings() {
         1,
         "accepted under the shipped policy"
     );
-    // An operator tightens the always-on flagged-share ceiling to 0 (any flagged item sends a batch to
-    // review) and sends SIGHUP: the next batch is judged by it.
-    ws.edit_config(&[("max_flagged_share = 0.35", "max_flagged_share = 0.0")]);
+    // An operator raises the item test's limit to 0.999 (a batch flagging anything near its clean level
+    // goes to review) and sends SIGHUP: the next batch is judged by it.
+    ws.edit_config(&[("item_alpha = 1e-4", "item_alpha = 0.999")]);
     signal(d.pid(), "HUP");
     d.wait_log("configuration reloaded", T);
     ws.deliver("v1", "b.csv", &clean_batch("b", 300, 32).csv());
@@ -926,7 +926,7 @@ fn sighup_reloads_the_policy_and_refuses_restart_only_settings() {
         .map(|r| r["code"].as_str().unwrap_or_default().to_string())
         .collect();
     assert!(
-        reasons.iter().any(|r| r == "flagged_share_ceiling"),
+        reasons.iter().any(|r| r == "flagged_items_excess"),
         "{reasons:?}"
     );
     // A setting that only a restart can change is refused, and the running configuration stays.

@@ -6,7 +6,7 @@ use ndarray::{Array1, Array2, ArrayView2};
 
 use crate::model::calibration::{class_mix_weights, sharpen, Sharpness, SharpnessFit};
 
-use super::fusion::{expected_flagged, score_items, trusted_reports, Evidence};
+use super::fusion::{expected_flagged, score_items, trusted_reports, Evidence, FlagRule};
 use super::path::{penalty_path, repair_point};
 use super::reference::{fit_pool, reference, Reference};
 use super::{
@@ -215,7 +215,7 @@ pub fn assess(
         &ev.fusion(&refm, &point.mass, big_pool),
     );
     let (sharpness, (expected_flagged_share, expected_flagged_sd, expected_flagged_by_label)) =
-        clean_expectation(settings, &refm, &ev.repair_weights, trusted, pool, k);
+        clean_expectation(settings, &refm, &phi_b, &ev, trusted, pool, k);
     let (broken_trusted, trusted_still_wrong) = trusted_reports(
         phi_t.view(),
         trusted.y,
@@ -320,6 +320,8 @@ struct TrustedEvidence {
     p_anchor: Array2<f64>,
     /// Repair weight per item from the trusted audit.
     repair_weights: Vec<f64>,
+    /// The weight each item would have with each label (`n_B × K`), for the clean level.
+    weights_by_class: Array2<f64>,
     /// The configured base repair weight for this reference.
     base_weight: f64,
     /// The audit itself.
@@ -395,7 +397,7 @@ fn trusted_evidence(
     } else {
         settings.repair_weight
     };
-    let (repair_weights, _, trusted_audit) = trusted_audit(
+    let (weights, trusted_audit) = trusted_audit(
         phi_t.view(),
         trusted.y,
         trusted.weight,
@@ -410,7 +412,8 @@ fn trusted_evidence(
     TrustedEvidence {
         anchored,
         p_anchor,
-        repair_weights,
+        repair_weights: weights.given,
+        weights_by_class: weights.by_class,
         base_weight,
         trusted_audit,
     }
@@ -431,13 +434,15 @@ fn damage_or_unknown(ctx: &Ctx<'_>, damage: f64, deadline: Instant) -> (f64, Vec
 }
 
 /// What a batch carrying the right labels would flag (`Assessment::expected_flagged_share`, its
-/// standard deviation and the per-label counts), with the right labels taken to follow `p_ref` sharpened
-/// by the measured sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on, and
-/// `p_ref` itself otherwise.
+/// standard deviation and the per-label counts), each item flagged by the fusion's rule; the right labels
+/// are taken to follow the pool model as fitted from stored items (`PoolSummary::labels_model`; `p_ref`
+/// while the pool is not the reference or was never fitted from items), sharpened by the measured
+/// sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on.
 fn clean_expectation(
     settings: &ModelSettings,
     refm: &Reference,
-    repair_weights: &[f64],
+    phi_b: &Array2<f64>,
+    ev: &TrustedEvidence,
     trusted: TrustedInput<'_>,
     pool: PoolInput<'_>,
     k: usize,
@@ -447,14 +452,27 @@ fn clean_expectation(
         sharpness.applied = 1.0;
         sharpness.basis = "measured, not applied ([model] calibrate_clean_level = false)".into();
     }
-    let p_label = sharpen(refm.p_ref.view(), sharpness.applied);
-    let expected = expected_flagged(
-        &refm.p_ref,
-        &p_label,
-        repair_weights,
-        settings.flag_threshold,
+    // The right labels follow the pool model as fitted from stored items (see
+    // `PoolSummary::labels_model`), not the one sharpened by absorbing selected items; the flags follow
+    // the reference as it is.
+    let p_fit = match pool {
+        PoolInput::Summary(s) if refm.big_pool => s
+            .labels_model()
+            .map(|theta| predict_proba(phi_b.view(), &theta, k)),
+        _ => None,
+    };
+    let p_label = sharpen(
+        p_fit.as_ref().unwrap_or(&refm.p_ref).view(),
+        sharpness.applied,
     );
-    (sharpness, expected)
+    let rule = FlagRule {
+        p_ref: &refm.p_ref,
+        p_anchor: &ev.p_anchor,
+        weights_by_class: &ev.weights_by_class,
+        base_weight: ev.base_weight,
+        threshold: settings.flag_threshold,
+    };
+    (sharpness, expected_flagged(&rule, &p_label))
 }
 
 /// The reference model's sharpness (see [`crate::model::calibration`]): measured on the pool's

@@ -128,21 +128,47 @@ pub(crate) fn score_items(
     (items, noise_rate)
 }
 
+/// The fusion's flag rule as the clean level reads it: for item `j` carrying label `c`,
+///
+/// `flag_j(c) = 1[(w_jc − b)⁺ (1 − p_A,jc) + (1 − w_jc)(1 − p_ref,jc) ≥ τ]`,
+///
+/// the suspicion of [`score_items`] with the repair's own share `b · s_j` taken as 0: a batch carrying the
+/// right labels asks the minimal repair to move nothing (its cost point is where the target is already
+/// met). `w_jc` is the weight the trusted audit would give item `j` with label `c` (the neighbourhood's
+/// excess is the item's, the class excesses are `c`'s), `p_A` the trusted-anchored model's probabilities.
+pub(crate) struct FlagRule<'a> {
+    /// Reference probabilities `p_ref`.
+    pub(crate) p_ref: &'a Array2<f64>,
+    /// The trusted-anchored model's probabilities `p_A`.
+    pub(crate) p_anchor: &'a Array2<f64>,
+    /// `w_jc` (`n_B × K`).
+    pub(crate) weights_by_class: &'a Array2<f64>,
+    /// The base weight `b`.
+    pub(crate) base_weight: f64,
+    /// The flag threshold `τ`.
+    pub(crate) threshold: f64,
+}
+
+impl FlagRule<'_> {
+    /// `flag_j(c)`.
+    fn flags(&self, j: usize, c: usize) -> bool {
+        let w = self.weights_by_class[[j, c]];
+        let anchored = (1.0 - self.p_anchor[[j, c]]).clamp(0.0, 1.0);
+        let learner = (1.0 - self.p_ref[[j, c]]).clamp(0.0, 1.0);
+        (w - self.base_weight).max(0.0) * anchored + (1.0 - w) * learner >= self.threshold
+    }
+}
+
 /// The flagged share to expect from a batch labelled the way the reference model expects, and its
-/// standard deviation (see `Assessment::expected_flagged_share`), at each item's own weight; and the
-/// flagged items to expect per given label ([`expected_flagged_by_label`]).
+/// standard deviation (see `Assessment::expected_flagged_share`), each item flagged by the fusion's rule
+/// ([`FlagRule`]); and the flagged items to expect per given label (`Assessment::expected_flagged_by_label`).
 ///
 /// `p_label` is the distribution the right labels are taken to follow: `p_ref` itself, or `p_ref`
 /// sharpened by the sharpness the trusted set measured (see [`crate::model::calibration`]); the flag
-/// indicator always follows `p_ref`, because that is what the engine flags with.
-pub(crate) fn expected_flagged(
-    p_ref: &Array2<f64>,
-    p_label: &Array2<f64>,
-    repair_weights: &[f64],
-    threshold: f64,
-) -> (f64, f64, Vec<f64>) {
-    let n_b = p_ref.nrows();
-    let by_item = flag_chances(p_ref, p_label, repair_weights, threshold);
+/// indicator always follows the fusion's rule, because that is what the engine flags with.
+pub(crate) fn expected_flagged(rule: &FlagRule<'_>, p_label: &Array2<f64>) -> (f64, f64, Vec<f64>) {
+    let n_b = rule.p_ref.nrows();
+    let by_item = flag_chances(rule, p_label);
     let q: Vec<f64> = by_item
         .rows()
         .into_iter()
@@ -154,19 +180,13 @@ pub(crate) fn expected_flagged(
     (share, sd, by_label)
 }
 
-/// `P(Y′_j = c) · 1[(1 − w_j)(1 − p_ref,jc) ≥ τ]` for every item `j` and class `c`, with
-/// `Y′_j ~ Categorical(p_label,j)`: the chance that item `j` carries label `c` and is flagged for it.
-fn flag_chances(
-    p_ref: &Array2<f64>,
-    p_label: &Array2<f64>,
-    repair_weights: &[f64],
-    threshold: f64,
-) -> Array2<f64> {
-    let mut out = Array2::zeros(p_ref.raw_dim());
-    for (j, r) in p_ref.rows().into_iter().enumerate() {
-        let w = repair_weights[j];
-        for (c, &pc) in r.iter().enumerate() {
-            if (1.0 - w) * (1.0 - pc) >= threshold {
+/// `P(Y′_j = c) · flag_j(c)` for every item `j` and class `c`, with `Y′_j ~ Categorical(p_label,j)`: the
+/// chance that item `j` carries label `c` and is flagged for it.
+fn flag_chances(rule: &FlagRule<'_>, p_label: &Array2<f64>) -> Array2<f64> {
+    let mut out = Array2::zeros(rule.p_ref.raw_dim());
+    for j in 0..rule.p_ref.nrows() {
+        for c in 0..rule.p_ref.ncols() {
+            if rule.flags(j, c) {
                 out[[j, c]] = p_label[[j, c]].clamp(0.0, 1.0);
             }
         }
@@ -214,9 +234,18 @@ mod tests {
     #[test]
     fn expected_flags_per_label_add_up_to_the_expected_share() {
         let p = ndarray::array![[0.7, 0.2, 0.1], [0.45, 0.45, 0.1], [0.05, 0.05, 0.9]];
-        let w = [0.0, 0.2, 0.5];
-        let t = 0.5;
-        let (share, _, by) = expected_flagged(&p, &p, &w, t);
+        // The trusted-anchored model sure of every label: its doubt adds nothing, the rule is
+        // `(1 − w)(1 − p) ≥ τ`.
+        let sure = Array2::ones((3, 3));
+        let w = ndarray::array![[0.0, 0.0, 0.0], [0.2, 0.2, 0.2], [0.5, 0.5, 0.5]];
+        let rule = FlagRule {
+            p_ref: &p,
+            p_anchor: &sure,
+            weights_by_class: &w,
+            base_weight: 0.0,
+            threshold: 0.5,
+        };
+        let (share, _, by) = expected_flagged(&rule, &p);
         // Item 0: 1 − p ≥ 0.5 for classes 1 (0.8) and 2 (0.9): adds 0.2 and 0.1.
         // Item 1: 0.8 · (1 − p) ≥ 0.5 for class 2 only (0.72); classes 0 and 1 give 0.44: adds 0.1.
         // Item 2: 0.5 · (1 − p) is at most 0.475 < 0.5: adds nothing.
@@ -226,10 +255,22 @@ mod tests {
         }
         assert!((by.iter().sum::<f64>() - 3.0 * share).abs() < 1e-12);
         // Labels drawn from a sharper distribution than the flag rule's: the indicator still follows
-        // `p_ref`, the chance follows `p_label` (item 0's classes 1 and 2 at 0.1 and 0.05).
+        // the rule, the chance follows `p_label` (item 0's classes 1 and 2 at 0.1 and 0.05).
         let sharper = ndarray::array![[0.85, 0.1, 0.05], [0.45, 0.45, 0.1], [0.0, 0.0, 1.0]];
-        let (_, _, by) = expected_flagged(&p, &sharper, &w, t);
+        let (_, _, by) = expected_flagged(&rule, &sharper);
         for (got, want) in by.iter().zip([0.0, 0.1, 0.15]) {
+            assert!((got - want).abs() < 1e-12, "{by:?}");
+        }
+        // The trusted-anchored model doubting item 2's classes 0 and 1 (p_A = 0.1) at weight 0.5 above a
+        // base of 0: 0.5 · 0.9 + 0.5 · 0.95 = 0.925 ≥ 0.5, so item 2 now adds 0.05 + 0.05; its class 2
+        // (p_A = 0.8) gives 0.5 · 0.2 + 0.5 · 0.1 = 0.15 and stays unflagged.
+        let doubting = ndarray::array![[1.0, 1.0, 1.0], [1.0, 1.0, 1.0], [0.1, 0.1, 0.8]];
+        let rule = FlagRule {
+            p_anchor: &doubting,
+            ..rule
+        };
+        let (_, _, by) = expected_flagged(&rule, &p);
+        for (got, want) in by.iter().zip([0.05, 0.25, 0.2]) {
             assert!((got - want).abs() < 1e-12, "{by:?}");
         }
     }

@@ -244,21 +244,25 @@ pub struct Assessment {
     /// Trusted-set size and pool size used.
     pub sizes: Sizes,
     /// The flagged share the batch would have if every item's label were drawn from its calibrated
-    /// reference distribution `p̃ = p_ref` sharpened by [`Assessment::reference_sharpness`] (a batch
-    /// carrying the right labels; the repair then has nothing to move): `m₀ = (1/n) Σ_i q_i` with
-    /// `q_i = Σ_c p̃_ic · 1[(1−w)(1 − p_ref,ic) ≥ τ]`, `τ` the flag threshold. Where the learner separates the classes poorly even a clean batch has many items the
-    /// reference model doubts, and this is the share to expect; the policy compares the observed share
-    /// with it at cold start.
+    /// label distribution `p̃` — the pool model as fitted from stored items (`PoolSummary::labels_model`;
+    /// `p_ref` while the pool is not the reference), sharpened by [`Assessment::reference_sharpness`]
+    /// when the clean level is calibrated — and flagged by the fusion's rule with the repair's own share
+    /// taken as 0 (a batch carrying the right labels asks the repair to move nothing):
+    /// `m₀ = (1/n) Σ_i q_i`, `q_i = Σ_c p̃_ic · 1[(w_ic − b)⁺ (1 − p_A,ic) + (1 − w_ic)(1 − p_ref,ic) ≥ τ]`,
+    /// with `w_ic` the repair weight the trusted audit gives item `i` labelled `c`, `b` the base weight,
+    /// `p_A` the trusted-anchored model and `τ` the flag threshold. Where the learner separates the
+    /// classes poorly even a clean batch has many items the reference model doubts, and this is the share
+    /// to expect; the policy judges the observed flags against it.
     #[serde(default)]
     pub expected_flagged_share: f64,
     /// Standard deviation of that share (Poisson-binomial): `√(Σ_i q_i (1 − q_i)) / n`.
     #[serde(default)]
     pub expected_flagged_sd: f64,
     /// The flagged items to expect per given label (indexed by class) from a batch labelled the way the
-    /// reference model expects: `E_c = Σ_i p̃_ic · 1[(1−w)(1 − p_ref,ic) ≥ τ]`, the mean of a sum of
-    /// independent Bernoulli variables (Poisson-binomial); `Σ_c E_c = n · m₀`. The policy compares each
-    /// label's flagged count with it, so that a systematic error on one class is seen even when the batch's
-    /// total flagged share stays within its noise. Empty in reports written before it existed.
+    /// reference model expects: `E_c = Σ_i p̃_ic · 1[item i flagged with label c]` (the rule above), the
+    /// mean of a sum of independent Bernoulli variables (Poisson-binomial); `Σ_c E_c = n · m₀`. The
+    /// policy compares each label's flagged count with it, so that a systematic error on one class is
+    /// seen even when the batch's total flagged share stays within its noise. Empty in reports written before it existed.
     #[serde(default)]
     pub expected_flagged_by_label: Vec<f64>,
     /// The damage to expect if every item's label were drawn from its reference distribution `p_ref`:
