@@ -500,6 +500,17 @@ impl Config {
                 "must be in (0, 1]",
             ));
         }
+        for (key, v) in [
+            ("admission.unsure_share", self.admission.unsure_share),
+            (
+                "admission.unsure_min_suspicion",
+                self.admission.unsure_min_suspicion,
+            ),
+        ] {
+            if !(0.0..=1.0).contains(&v) {
+                return Err(invalid(key, "must be in [0, 1]"));
+            }
+        }
         Ok(())
     }
 

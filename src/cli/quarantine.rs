@@ -364,21 +364,25 @@ fn print_held(list: &[HeldBatch]) {
         println!("no accepted batch has held items");
         return;
     }
-    println!("Flagged items of accepted batches kept out of the pool (a flag is a suspicion for review, not proof):");
     println!(
-        "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8}",
-        "BATCH", "VENDOR", "ITEMS", "IN POOL", "WAITING", "PROPOSED", "DROPPED"
+        "Flagged and unsure items of accepted batches kept out of the pool (unsure: not flagged, but among the \
+         batch's highest suspicions; either is a suspicion for review, not proof):"
+    );
+    println!(
+        "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7}",
+        "BATCH", "VENDOR", "ITEMS", "IN POOL", "WAITING", "PROPOSED", "DROPPED", "UNSURE"
     );
     for b in list {
         println!(
-            "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8}",
+            "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7}",
             sanitize(&b.batch_id),
             sanitize(&b.vendor),
             b.items.unwrap_or(0),
             b.in_pool,
             b.waiting,
             b.admitted_proposed,
-            b.dropped
+            b.dropped,
+            b.unsure
         );
     }
 }

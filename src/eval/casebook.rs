@@ -26,7 +26,7 @@ use crate::model::{
 use crate::pipeline::verdict;
 use crate::policy::VendorHistory;
 use crate::scenario::{self, Plant};
-use crate::store::BatchRecord;
+use crate::store::{BatchRecord, PoolEntry};
 
 /// Options of a casebook run.
 #[derive(Debug, Clone)]
@@ -99,6 +99,11 @@ pub struct CaseReport {
     /// the pool with its wrong label (a poisoned batch accepted with every poisoned item held back for
     /// review does not count).
     pub let_through: usize,
+    /// Items without poison in accepted batches.
+    pub clean_items_accepted: usize,
+    /// Of those, the items kept out of the pool (flagged or unsure items waiting for review): the review
+    /// load the item admission costs.
+    pub clean_items_kept_out: usize,
     /// Batches without poison.
     pub clean_batches: usize,
     /// Batches without poison that were held.
@@ -111,6 +116,42 @@ pub struct CaseReport {
 }
 
 impl CaseReport {
+    /// Count what an accepted batch's pool entry let in: poisoned items that entered with a label other
+    /// than their true one (and whether that label is the pool model's best guess), the delivery as let
+    /// through when any did, and the clean items kept out.
+    fn count_entry(
+        &mut self,
+        entry: &PoolEntry,
+        ids: &[String],
+        mask: &[bool],
+        y: &[usize],
+        best_guess: &[usize],
+    ) {
+        let before = self.poison_in_pool;
+        for (id, &label) in entry.ids.iter().zip(&entry.labels) {
+            if let Some(i) = ids.iter().position(|x| x == id) {
+                if mask[i] && label != y[i] {
+                    self.poison_in_pool += 1;
+                    if label == best_guess[i] {
+                        self.poison_in_pool_agreeing += 1;
+                    }
+                }
+            }
+        }
+        if self.poison_in_pool > before {
+            self.let_through += 1;
+        }
+        let entered: std::collections::HashSet<&String> = entry.ids.iter().collect();
+        for (i, id) in ids.iter().enumerate() {
+            if !mask[i] {
+                self.clean_items_accepted += 1;
+                if !entered.contains(id) {
+                    self.clean_items_kept_out += 1;
+                }
+            }
+        }
+    }
+
     /// Poison in the pool as a share of the poison delivered (0 when none was delivered).
     pub fn poison_share(&self) -> f64 {
         if self.poison_delivered == 0 {
@@ -380,6 +421,8 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
         poison_in_pool_agreeing: 0,
         poisoned_accepted: 0,
         let_through: 0,
+        clean_items_accepted: 0,
+        clean_items_kept_out: 0,
         clean_batches: 0,
         clean_held: 0,
         held_as_label_trouble: 0,
@@ -469,21 +512,7 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
                 history = h;
             }
             if let Some(entry) = v.pool {
-                // Poisoned items that entered with a label other than their true one.
-                let before = r.poison_in_pool;
-                for (id, &label) in entry.ids.iter().zip(&entry.labels) {
-                    if let Some(i) = ids.iter().position(|x| x == id) {
-                        if mask[i] && label != y[i] {
-                            r.poison_in_pool += 1;
-                            if label == best_guess[i] {
-                                r.poison_in_pool_agreeing += 1;
-                            }
-                        }
-                    }
-                }
-                if r.poison_in_pool > before {
-                    r.let_through += 1;
-                }
+                r.count_entry(&entry, &ids, &mask, &y, &best_guess);
                 let ex = Array2::from_shape_vec((entry.ids.len(), entry.n_features), entry.x)
                     .map_err(|e| ModelError::Shape(e.to_string()))?;
                 summary.absorb(&s.config.model, ex.view(), &entry.labels)?;
@@ -574,21 +603,31 @@ pub fn render_text(c: &Casebook) -> String {
     let _ = writeln!(s, "attack casebook ({}; plant unless marked wine, 150-item batches unless named; a hold is a suspicion for review, not proof)", if c.quick { "quick" } else { "full" });
     let _ = writeln!(
         s,
-        "{:<38} {:>7} {:>5} {:>11} {:>16} {:>9} {:>13} {:>11} {:>10}",
+        "{:<38} {:>7} {:>5} {:>10} {:>19} {:>8} {:>8} {:>13} {:>9} {:>10} {:>10}",
         "case",
         "batches",
         "held",
         "first held",
         "poison in pool",
         "agreeing",
+        "let thru",
         "clean held",
+        "kept out",
         "label told",
         "1st poison"
     );
     for r in &c.cases {
+        let kept_out = if r.clean_items_accepted > 0 {
+            format!(
+                "{:.1}%",
+                100.0 * r.clean_items_kept_out as f64 / r.clean_items_accepted as f64
+            )
+        } else {
+            "—".into()
+        };
         let _ = writeln!(
             s,
-            "{:<38} {:>7} {:>5} {:>11} {:>7}/{:<4} {:>4.1}% {:>9} {:>8} {:>6}/{:<6} {:>11} {:>10}",
+            "{:<38} {:>7} {:>5} {:>10} {:>7}/{:<4} {:>5.1}% {:>8} {:>8} {:>6}/{:<6} {:>9} {:>10} {:>10}",
             r.name,
             r.batches,
             r.held,
@@ -600,6 +639,7 @@ pub fn render_text(c: &Casebook) -> String {
             r.let_through,
             r.clean_held,
             r.clean_batches,
+            kept_out,
             r.held_as_label_trouble,
             r.first_poisoned.map_or("—".into(), |b| b.to_string()),
         );
@@ -608,7 +648,9 @@ pub fn render_text(c: &Casebook) -> String {
         s,
         "\nagreeing: poison in the pool whose wrong label is the pool model's own most likely class — \
          invisible to any check through that model; only trusted items near it can speak\n\
-         let thru: poisoned deliveries accepted with some of their poison entering the pool"
+         let thru: poisoned deliveries accepted with some of their poison entering the pool\n\
+         kept out: the clean items of accepted batches that wait for review (flagged or unsure) — the \
+         review load the item admission costs"
     );
     let _ = writeln!(s, "\nwhat the vendor was told (reason code: batches)");
     for r in &c.cases {
@@ -650,6 +692,16 @@ mod tests {
             uniform.poison_delivered > 0 && uniform.poison_share() <= 0.10,
             "{uniform:?}"
         );
+        // The repair-aware attacker's flips sit among the batches' highest unflagged suspicions, where
+        // the unsure items wait for review (`[admission] unsure_share`); without them 21 of its 45
+        // flips reached the pool in this run (measured when written).
+        let aware = by("repair-aware");
+        assert!(
+            aware.poison_delivered > 0 && aware.poison_share() <= 0.10,
+            "{aware:?}"
+        );
+        let wine = by("true labels (wine)");
+        assert_eq!(wine.clean_held, 0, "{wine:?}");
         let shift = by("covariate shift");
         assert!(shift.first_held.is_some(), "{shift:?}");
         assert_eq!(shift.held_as_label_trouble, 0, "{shift:?}");
@@ -664,6 +716,7 @@ mod tests {
             assert!(r.let_through <= r.poisoned_accepted && r.let_through <= r.poison_in_pool);
             assert_eq!(r.let_through == 0, r.poison_in_pool == 0, "{r:?}");
             assert!(r.held >= r.clean_held && r.held <= r.batches);
+            assert!(r.clean_items_kept_out <= r.clean_items_accepted);
         }
     }
 }

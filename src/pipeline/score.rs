@@ -829,11 +829,12 @@ mod tests {
 
     /// An adopted speculative absorb is bit-for-bit the summary that absorbing the stored pool entries
     /// gives (the ordering guarantee: each batch is scored against every batch accepted before it).
-    /// Nothing flagged (a flag threshold no suspicion reaches here), so every accepted batch enters the
-    /// pool as delivered and its speculative copy may stand in for the stored entry.
+    /// Nothing flagged (a flag threshold no suspicion reaches here) and nothing unsure, so every accepted
+    /// batch enters the pool as delivered and its speculative copy may stand in for the stored entry.
     fn nothing_flagged(w: &mut Worker) {
         let mut c = (*w.config).clone();
         c.model.flag_threshold = 1.0;
+        c.admission.unsure_share = 0.0;
         w.config = Arc::new(c);
     }
 

@@ -12,8 +12,8 @@ use crate::policy::{
     self, BatchSignals, Decision, Reason, ReasonCode, ShiftReport, Verdict as PolicyVerdict,
 };
 use crate::store::{
-    AuditRecord, BatchRecord, BatchScores, HeldItem, HeldState, Outcome, PoolEntry, RejectReason,
-    Suspect,
+    AuditRecord, BatchRecord, BatchScores, HeldItem, HeldState, HeldWhy, Outcome, PoolEntry,
+    RejectReason, Suspect,
 };
 
 /// What the engine said about a batch: its assessment, or why there is none (an engine error or panic).
@@ -231,8 +231,20 @@ fn admit(
     let mut fate = vec![(policy::ItemFate::Enter, 0usize); n];
     let mut held = Vec::new();
     if let Ok(a) = &batch.scored {
-        for s in &a.items {
-            let f = policy::item_fate(&config.admission, s.proposed_label != s.label, s.confidence);
+        let flagged: Vec<bool> = a
+            .items
+            .iter()
+            .map(|s| s.proposed_label != s.label)
+            .collect();
+        let suspicion: Vec<f64> = a.items.iter().map(|s| s.suspicion).collect();
+        let unsure = policy::unsure_items(&config.admission, &suspicion, &flagged);
+        for (k, s) in a.items.iter().enumerate() {
+            let (f, why) = if unsure[k] {
+                (policy::unsure_fate(&config.admission), HeldWhy::Unsure)
+            } else {
+                let f = policy::item_fate(&config.admission, flagged[k], s.confidence);
+                (f, HeldWhy::Flagged)
+            };
             let Some(slot) = fate.get_mut(s.index) else {
                 continue;
             };
@@ -258,6 +270,7 @@ fn admit(
                 confidence: s.confidence,
                 state,
                 decided_by: "daemon".into(),
+                why,
             });
         }
     }

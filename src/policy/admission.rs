@@ -1,4 +1,5 @@
-//! Item-level admission: what happens to the *flagged* items of a batch the policy accepts.
+//! Item-level admission: what happens to the *flagged* and the *unsure* items of a batch the policy
+//! accepts.
 //!
 //! A batch verdict is about the batch; accepting it does not mean every item in it is right. An item is
 //! flagged when the engine proposes a label other than the one given (its suspicion reached
@@ -7,7 +8,19 @@
 //! ([`FlaggedItems::Hold`]). A flag is a suspicion for review, not proof: a held item is not rejected, and
 //! a reviewer can admit it with its given label, with the proposed label, or drop it.
 //!
-//! The rule is ours (common practice for human-in-the-loop data intake; no published source).
+//! # Unsure items
+//!
+//! An attacker that knows the defence flips only the items the reference model is least sure of — those
+//! on a class boundary. There a clean batch's labels fall on either side about as often as the model's
+//! probabilities say, so flipping them swaps which items are flagged without changing how many: no count
+//! over the batch can see it, and the flips the model happens to agree with are flagged by nothing. What
+//! stays visible is *where* they are: every flip sits among the batch's highest unflagged suspicions. So
+//! the `⌈unsure_share · n⌉` unflagged items with the highest suspicion, where it reaches
+//! `unsure_min_suspicion`, wait for a reviewer as well ([`unsure_items`]): the engine cannot vouch for
+//! their labels. The cost is review load, bounded by `unsure_share` of each accepted batch; measured with
+//! `labelweir bench casebook` (see `config/labelweir.toml`).
+//!
+//! The rules are ours (common practice for human-in-the-loop data intake; no published source).
 
 use serde::{Deserialize, Serialize};
 
@@ -37,6 +50,11 @@ pub struct AdmissionSettings {
     /// With `flagged = "relabel"`: the least confidence in the proposed label (the engine's item
     /// `confidence`, in `[0, 1]`) for an item to enter with it. Default 0.9.
     pub relabel_min_confidence: f64,
+    /// The share of an accepted batch's items, taken from its unflagged items with the highest suspicion,
+    /// that also wait for review as unsure (see the module documentation). 0 turns the rule off.
+    pub unsure_share: f64,
+    /// The least suspicion for an unflagged item to be unsure.
+    pub unsure_min_suspicion: f64,
 }
 
 impl Default for AdmissionSettings {
@@ -44,6 +62,8 @@ impl Default for AdmissionSettings {
         Self {
             flagged: FlaggedItems::Hold,
             relabel_min_confidence: 0.9,
+            unsure_share: 0.05,
+            unsure_min_suspicion: 0.25,
         }
     }
 }
@@ -92,9 +112,80 @@ pub fn item_fate(settings: &AdmissionSettings, flagged: bool, confidence: f64) -
     }
 }
 
+/// Which unflagged items are unsure: of the items not flagged, the `⌈unsure_share · n⌉` with the highest
+/// suspicion (ties by position), among those whose suspicion reaches `unsure_min_suspicion`; `n` counts
+/// every item of the batch. A NaN suspicion is never unsure (such an item is flagged by the engine).
+pub fn unsure_items(
+    settings: &AdmissionSettings,
+    suspicion: &[f64],
+    flagged: &[bool],
+) -> Vec<bool> {
+    let n = suspicion.len();
+    let quota = (settings.unsure_share * n as f64).ceil() as usize;
+    let mut out = vec![false; n];
+    let mut candidates: Vec<usize> = (0..n)
+        .filter(|&i| !flagged[i] && suspicion[i] >= settings.unsure_min_suspicion)
+        .collect();
+    candidates.sort_by(|&a, &b| suspicion[b].total_cmp(&suspicion[a]).then(a.cmp(&b)));
+    for &i in candidates.iter().take(quota) {
+        out[i] = true;
+    }
+    out
+}
+
+/// The fate of an unsure item: it follows the `flagged` setting, except that with `relabel` it waits
+/// for a reviewer (an unflagged item has no other label to enter with).
+pub fn unsure_fate(settings: &AdmissionSettings) -> ItemFate {
+    match settings.flagged {
+        FlaggedItems::Hold | FlaggedItems::Relabel => ItemFate::Held,
+        FlaggedItems::Drop => ItemFate::Dropped,
+        FlaggedItems::Enter => ItemFate::Enter,
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Worked by hand: ten items, two flagged; a 0.2 share is a quota of 2; the unflagged suspicions at or
+    /// above 0.25 are 0.45, 0.3, 0.3 and 0.25, so the two highest (0.45, then the first 0.3) are unsure.
+    #[test]
+    fn the_unflagged_items_with_the_highest_suspicion_are_unsure_up_to_the_share() {
+        let s = AdmissionSettings {
+            unsure_share: 0.2,
+            ..AdmissionSettings::default()
+        };
+        let sus = [0.1, 0.9, 0.3, 0.45, 0.05, 0.3, 0.6, 0.25, 0.2, 0.0];
+        let flagged = sus.map(|v| v >= 0.5);
+        let u = unsure_items(&s, &sus, &flagged);
+        let picked: Vec<usize> = (0..10).filter(|&i| u[i]).collect();
+        assert_eq!(picked, [2, 3]);
+        // Fewer candidates than the quota: only those reaching the floor.
+        let s = AdmissionSettings {
+            unsure_share: 0.9,
+            ..s
+        };
+        let u = unsure_items(&s, &sus, &flagged);
+        assert_eq!((0..10).filter(|&i| u[i]).collect::<Vec<_>>(), [2, 3, 5, 7]);
+        // Off.
+        let s = AdmissionSettings {
+            unsure_share: 0.0,
+            ..s
+        };
+        assert!(unsure_items(&s, &sus, &flagged).iter().all(|&v| !v));
+    }
+
+    #[test]
+    fn unsure_items_wait_unless_the_setting_lets_flagged_items_in_or_drops_them() {
+        let mut s = AdmissionSettings::default();
+        assert_eq!(unsure_fate(&s), ItemFate::Held);
+        s.flagged = FlaggedItems::Relabel;
+        assert_eq!(unsure_fate(&s), ItemFate::Held);
+        s.flagged = FlaggedItems::Drop;
+        assert_eq!(unsure_fate(&s), ItemFate::Dropped);
+        s.flagged = FlaggedItems::Enter;
+        assert_eq!(unsure_fate(&s), ItemFate::Enter);
+    }
 
     #[test]
     fn unflagged_items_enter_and_flagged_ones_follow_the_setting() {

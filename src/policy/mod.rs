@@ -80,7 +80,9 @@ mod settings;
 pub mod shift;
 mod stats;
 
-pub use admission::{item_fate, AdmissionSettings, FlaggedItems, ItemFate};
+pub use admission::{
+    item_fate, unsure_fate, unsure_items, AdmissionSettings, FlaggedItems, ItemFate,
+};
 pub use classes::{LabelCheck, LabelFlags};
 pub use evidence::{ItemEvidence, ItemJudgement};
 pub use settings::{PolicyError, PolicySettings};

@@ -1,4 +1,4 @@
-//! Held items: the flagged items of accepted batches that wait for a reviewer (see
+//! Held items: the flagged and unsure items of accepted batches that wait for a reviewer (see
 //! [`crate::policy::AdmissionSettings`]). A reviewer lists them and admits them (with the given or the
 //! proposed label) or drops them; each decision is one audited store transition that also replaces the
 //! batch's pool entry. A flag is a suspicion for review, not proof.
@@ -7,7 +7,7 @@ use super::*;
 use std::collections::HashSet;
 
 use crate::data::Classes;
-use crate::store::{BatchState, HeldItem, HeldState, PoolChange, PoolEntry};
+use crate::store::{BatchState, HeldItem, HeldState, HeldWhy, PoolChange, PoolEntry};
 
 /// One accepted batch with held items.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -30,6 +30,10 @@ pub struct HeldBatch {
     pub admitted: usize,
     /// Items kept out for good.
     pub dropped: usize,
+    /// Of the held items, those kept out as unsure rather than flagged (see
+    /// [`crate::policy::unsure_items`]).
+    #[serde(default)]
+    pub unsure: usize,
     /// Every held item and where it stands.
     pub held: Vec<HeldItem>,
 }
@@ -57,6 +61,7 @@ pub fn held_list(env: &ReviewEnv<'_>) -> Result<Vec<HeldBatch>, ReviewError> {
             admitted_proposed: count(HeldState::AdmittedProposed),
             admitted: count(HeldState::Admitted),
             dropped: count(HeldState::Dropped),
+            unsure: r.held.iter().filter(|h| h.why == HeldWhy::Unsure).count(),
             held: r.held.clone(),
         });
     }

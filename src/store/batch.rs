@@ -257,6 +257,30 @@ pub struct HeldItem {
     pub state: HeldState,
     /// Who put it there: `daemon` (the admission setting) or the reviewer.
     pub decided_by: String,
+    /// Why it did not enter as delivered: flagged, or unsure (see [`crate::policy::unsure_items`]).
+    #[serde(default)]
+    pub why: HeldWhy,
+}
+
+/// Why an item of an accepted batch did not enter the pool as delivered.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum HeldWhy {
+    /// The engine proposes another label (suspicion at or above the flag threshold).
+    #[default]
+    Flagged,
+    /// Not flagged, but among the batch's highest suspicions: the engine cannot vouch for its label.
+    Unsure,
+}
+
+impl HeldWhy {
+    /// Stable snake_case name.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Self::Flagged => "flagged",
+            Self::Unsure => "unsure",
+        }
+    }
 }
 
 impl BatchRecord {

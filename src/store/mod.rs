@@ -51,8 +51,8 @@ mod features;
 mod pool;
 
 pub use batch::{
-    AuditRecord, BatchRecord, BatchScores, BatchState, HeldItem, HeldState, Outcome, RejectReason,
-    Suspect,
+    AuditRecord, BatchRecord, BatchScores, BatchState, HeldItem, HeldState, HeldWhy, Outcome,
+    RejectReason, Suspect,
 };
 pub use features::{FeatureImport, PoolImport, Provenance, POOL_IMPORT_CHUNK};
 

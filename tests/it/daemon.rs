@@ -38,9 +38,29 @@ fn clean_batch_is_accepted_into_the_pool() {
     let rec = store.batch(&id).unwrap().unwrap();
     assert_eq!(rec.state, labelweir::store::BatchState::Accepted);
     assert_eq!(rec.original_name, "week01.csv");
-    // Flagged items wait for review (`[admission] flagged = "hold"`); the rest entered.
+    // Flagged items wait for review (`[admission] flagged = "hold"`), and so do the unsure ones (not
+    // flagged, among the highest suspicions: at most `unsure_share` = 0.05 of 300, each at
+    // `unsure_min_suspicion` = 0.25 or more); the rest entered.
     assert!(rec.held.len() < 300);
     assert_eq!(store.pool_items().unwrap(), 300 - rec.held_waiting() as u64);
+    use labelweir::store::HeldWhy;
+    let unsure: Vec<_> = rec
+        .held
+        .iter()
+        .filter(|h| h.why == HeldWhy::Unsure)
+        .collect();
+    assert!((1..=15).contains(&unsure.len()), "{} unsure", unsure.len());
+    assert!(
+        unsure
+            .iter()
+            .all(|h| h.proposed_label == h.label && (0.25..0.5).contains(&h.suspicion)),
+        "{unsure:?}"
+    );
+    assert!(rec
+        .held
+        .iter()
+        .filter(|h| h.why == HeldWhy::Flagged)
+        .all(|h| h.proposed_label != h.label));
     let audit = store.audit_since(0).unwrap();
     let verdicts: Vec<_> = audit.iter().filter(|a| a.action == "verdict").collect();
     assert_eq!(verdicts.len(), 1);

@@ -1662,7 +1662,7 @@ fn every_kind_of_notice_validates_and_the_validator_rejects_bad_ones() {
 }
 
 /// Issue 11, item-level admission: the flagged items of an accepted batch wait for review (the default
-/// `[admission] flagged = "hold"`); the pool, `quarantine held` and the metrics count them; a reviewer
+/// `[admission] flagged = "hold"`), and so do its unsure items (`unsure_share`); the pool, `quarantine held` and the metrics count them; a reviewer
 /// admits one (into the pool, audited) and drops the rest while the daemon runs; the counts survive a
 /// restart. Then `flagged = "drop"` keeps them out with nothing waiting.
 #[test]
@@ -1822,10 +1822,12 @@ fn flagged_items_of_an_accepted_batch_are_held_for_review() {
             .filter(|h| h.state == labelweir::store::HeldState::AdmittedProposed)
             .collect();
         for h in &rec.held {
-            let expect = match (mode, h.confidence >= floor) {
-                ("drop", _) => labelweir::store::HeldState::Dropped,
-                (_, true) => labelweir::store::HeldState::AdmittedProposed,
-                (_, false) => labelweir::store::HeldState::Waiting,
+            // Unsure items (not flagged) have no other label to enter with: they wait under `relabel`.
+            let unsure = h.why == labelweir::store::HeldWhy::Unsure;
+            let expect = match (mode, unsure, h.confidence >= floor) {
+                ("drop", _, _) => labelweir::store::HeldState::Dropped,
+                (_, false, true) => labelweir::store::HeldState::AdmittedProposed,
+                _ => labelweir::store::HeldState::Waiting,
             };
             assert_eq!(h.state, expect, "{mode}: {h:?}");
         }
@@ -1894,13 +1896,17 @@ fn notices_name_no_item_unless_a_reviewer_discloses() {
         std::thread::sleep(Duration::from_millis(100));
     }
     assert_no_item("policy verdicts");
+    // Flagged items waiting (the unsure ones wait too, and the notice does not count them: it says
+    // what was flagged).
     let store_held = |id: &str| {
         let v = ok_json(&["quarantine", "held", &dir, "--json"]);
         v.as_array()
             .unwrap()
             .iter()
             .find(|b| b["batch_id"] == id)
-            .map_or(0, |b| b["waiting"].as_u64().unwrap())
+            .map_or(0, |b| {
+                b["waiting"].as_u64().unwrap() - b["unsure"].as_u64().unwrap()
+            })
     };
     let na = ws.notice("north-sort", &aid);
     assert_eq!(na["verdict"], "accepted");
