@@ -43,6 +43,18 @@ impl Tally {
     fn sd(&self) -> f64 {
         self.variance.sqrt()
     }
+
+    /// The tally in one line, for the checks' closing prints.
+    fn line(&self) -> String {
+        format!(
+            "{} clean batch items, flagged {} against {:.1} ± {:.1}; sharpness {:?}",
+            self.items,
+            self.observed,
+            self.expected,
+            self.sd(),
+            self.sharpness.first()
+        )
+    }
 }
 
 /// A workspace as the tests fit it: standardiser on the trusted items, summary of the pool, default
@@ -221,13 +233,8 @@ fn clean_batches_flag_what_the_computed_clean_level_says_on_winequality() {
             t.sharpness
         );
         eprintln!(
-            "winequality (calibrate_clean_level = {calibrate}): {} clean batch items, flagged {} against \
-             {:.1} ± {:.1}; accuracy {accuracy:.3}; sharpness {:?}",
-            t.items,
-            t.observed,
-            t.expected,
-            t.sd(),
-            t.sharpness[0]
+            "winequality (calibrate_clean_level = {calibrate}): {}; accuracy {accuracy:.3}",
+            t.line()
         );
         assert!(
             (t.observed - t.expected).abs() <= 3.0 * t.sd(),
@@ -308,14 +315,7 @@ fn clean_batches_flag_what_the_calibrated_clean_level_says_on_the_plant() {
     let batches = (0..8u64).map(|b| plant.sample(150, 0xb000 + b));
     let t = Workspace::fit(true, (&tx, &ty), (&px, &py), Plant::N_CLASSES).tally(batches);
     let applied: Vec<f64> = t.sharpness.iter().map(|s| s.applied).collect();
-    eprintln!(
-        "plant: {} clean batch items, flagged {} against {:.1} ± {:.1}; sharpness {:?}",
-        t.items,
-        t.observed,
-        t.expected,
-        t.sd(),
-        t.sharpness[0]
-    );
+    eprintln!("plant: {}", t.line());
     assert!(
         applied.iter().all(|&b| b > 1.0),
         "the plant's reference model is too flat: {applied:?}"
