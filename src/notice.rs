@@ -651,6 +651,9 @@ fn generic_policy_detail(code: &str) -> Option<&'static str> {
         ReasonCode::FlaggedItemsDrift => {
             "Across this vendor's recent items, the share flagged for review has drifted upward."
         }
+        ReasonCode::LabelsUnlikely => {
+            "Across this vendor's recent items, the labels fit the checks' model less well than correct labels would."
+        }
         ReasonCode::FlaggedItemsInClass => {
             "Among the items given one label, more were flagged for review than the checks expect if those labels were right."
         }

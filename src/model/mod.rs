@@ -50,7 +50,8 @@ pub use anchor::TrustedAudit;
 pub use features::{FeatureMap, Standardizer};
 pub use learner::{Learner, TrainReport};
 pub use repair::{
-    assess, Assessment, Convergence, ItemScore, PoolInput, Timings, TrustedInput, TrustedItemReport,
+    assess, Assessment, Convergence, ItemScore, LabelFit, PoolInput, Timings, TrustedInput,
+    TrustedItemReport,
 };
 pub use stories::{suspect_stories, SuspectStory};
 pub use summary::{PoolSummary, PoolTerm};

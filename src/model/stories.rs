@@ -169,6 +169,7 @@ mod tests {
 
     fn item(index: usize, label: usize, proposed: usize, suspicion: f64) -> ItemScore {
         ItemScore {
+            label_fit: Default::default(),
             index,
             label,
             suspicion,

@@ -143,6 +143,16 @@ fn item_rules(j: &ItemJudgement, reasons: &mut Vec<Reason>) {
             ),
         );
     }
+    if j.unlikely() {
+        push(
+            reasons,
+            ReasonCode::LabelsUnlikely,
+            format!(
+                "the vendor's labels are less likely under the reference model than right labels would be: {}",
+                j.describe_fit()
+            ),
+        );
+    }
 }
 
 /// Items unlike the pool: a finding for operations about the items, not about their labels.

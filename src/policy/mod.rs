@@ -172,6 +172,10 @@ pub struct BatchSignals {
     /// computed no per-label expectation (records from before it did), which skips that test.
     #[serde(default)]
     pub labels: Vec<LabelFlags>,
+    /// The judged items' label fit (see `model::LabelFit`): how likely their labels are under the
+    /// reference model against right labels.
+    #[serde(default)]
+    pub label_fit: crate::model::LabelFit,
 }
 
 fn one() -> f64 {
@@ -227,6 +231,12 @@ impl BatchSignals {
             unlike_flagged: 0,
             unlike_tail: 0.0,
             labels,
+            label_fit: a
+                .items
+                .iter()
+                .fold(crate::model::LabelFit::default(), |f, i| {
+                    f.plus(i.label_fit)
+                }),
         }
     }
 
@@ -271,6 +281,7 @@ impl BatchSignals {
             if !report.beyond.get(i.index).copied().unwrap_or(false) {
                 continue;
             }
+            self.label_fit = self.label_fit.minus(i.label_fit);
             if let Some(l) = self.labels.get_mut(i.label) {
                 l.items = l.items.saturating_sub(1);
                 if i.suspicion >= flag_threshold {
@@ -362,6 +373,7 @@ impl BatchSignals {
             unlike_flagged: 0,
             unlike_tail: 0.0,
             labels: Vec::new(),
+            label_fit: crate::model::LabelFit::default(),
         }
     }
 }
@@ -623,6 +635,9 @@ pub enum ReasonCode {
     FlaggedItemsExcess,
     /// Quarantine: the Bernoulli CUSUM over the vendor's items crossed `h` ([`evidence`]).
     FlaggedItemsDrift,
+    /// Quarantine: the CUSUM of the vendor's label fit crossed its `h` — its labels are less likely under
+    /// the reference model than right labels would be ([`evidence`]).
+    LabelsUnlikely,
     /// Quarantine for operations, not label trouble: the batch's items are unlike the pool and the
     /// trusted set does not cover them ([`shift`]).
     ItemsUnlikePool,
@@ -650,13 +665,14 @@ impl ReasonCode {
             ReasonCode::FlaggedShareDrift => "flagged_share_drift",
             ReasonCode::FlaggedItemsExcess => "flagged_items_excess",
             ReasonCode::FlaggedItemsDrift => "flagged_items_drift",
+            ReasonCode::LabelsUnlikely => "labels_unlikely",
             ReasonCode::ItemsUnlikePool => "items_unlike_pool",
             ReasonCode::FlaggedItemsInClass => "flagged_items_in_class",
         }
     }
 
     /// Every code, for documentation and schema checks.
-    pub const ALL: [ReasonCode; 17] = [
+    pub const ALL: [ReasonCode; 18] = [
         ReasonCode::WithinBaseline,
         ReasonCode::WithinColdStartLimits,
         ReasonCode::ScoreInvalid,
@@ -672,6 +688,7 @@ impl ReasonCode {
         ReasonCode::FlaggedShareDrift,
         ReasonCode::FlaggedItemsExcess,
         ReasonCode::FlaggedItemsDrift,
+        ReasonCode::LabelsUnlikely,
         ReasonCode::ItemsUnlikePool,
         ReasonCode::FlaggedItemsInClass,
     ];

@@ -131,6 +131,12 @@ pub struct PolicySettings {
     /// Decision interval `h` of the item CUSUM. Nats; default 8 (measured with `labelweir bench casebook`:
     /// the clean streams' false alarms and the drips' first holds are in its report).
     pub item_cusum_h: f64,
+    /// The per-item shift, in standard deviations of an item's label fit, the label-fit CUSUM is tuned to
+    /// (`labels_unlikely`; see `policy::evidence`). Default 0.1.
+    pub fit_drift_shift: f64,
+    /// Decision interval of the label-fit CUSUM, in item standard deviations. Default 40 (in-control run
+    /// length about 190,000 items by Siegmund's approximation; see `policy::evidence`).
+    pub fit_cusum_h: f64,
     /// Lowest level a vendor is judged against (keeps the likelihood ratio finite). Fraction; default 0.005.
     pub item_level_floor: f64,
     /// The clean level used when the engine computed none (records from before it did). Fraction; default
@@ -186,6 +192,8 @@ impl Default for PolicySettings {
             item_alpha: 1e-4,
             item_drift_shift: 0.03,
             item_cusum_h: 8.0,
+            fit_drift_shift: 0.1,
+            fit_cusum_h: 40.0,
             item_level_floor: 0.005,
             clean_level_unknown: 0.10,
             unlike_quantile: 0.99,
@@ -308,6 +316,8 @@ impl PolicySettings {
         open_unit("item_alpha", self.item_alpha)?;
         open_unit("item_drift_shift", self.item_drift_shift)?;
         pos("item_cusum_h", self.item_cusum_h)?;
+        pos("fit_drift_shift", self.fit_drift_shift)?;
+        pos("fit_cusum_h", self.fit_cusum_h)?;
         open_unit("item_level_floor", self.item_level_floor)?;
         open_unit("clean_level_unknown", self.clean_level_unknown)?;
         open_unit("unlike_quantile", self.unlike_quantile)?;

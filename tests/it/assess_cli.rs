@@ -412,7 +412,7 @@ fn config_policy_and_model_sections_are_used() {
     std::fs::write(
         &cfg,
         "[policy]\ncold_start_max_repair_cost = 1.0\ncold_start_max_damage_nats = 100.0\n\
-         max_repair_cost = 1.0\nmax_damage_nats = 100.0\n\n[model]\nflag_threshold = 0.9\n",
+         max_repair_cost = 1.0\nmax_damage_nats = 100.0\nfit_cusum_h = 1e9\n\n[model]\nflag_threshold = 0.9\n",
     )
     .unwrap();
     let (code, doc) = assess_json(&[

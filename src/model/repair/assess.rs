@@ -10,8 +10,8 @@ use super::fusion::{expected_flagged, score_items, trusted_reports, Evidence, Fl
 use super::path::{penalty_path, repair_point};
 use super::reference::{fit_pool, reference, Reference};
 use super::{
-    argmax, Assessment, Convergence, Ctx, Inner, Linearisation, PoolInput, Sizes, Timings,
-    TrustedInput,
+    argmax, Assessment, Convergence, Ctx, Inner, ItemScore, LabelFit, Linearisation, PoolInput,
+    Sizes, Timings, TrustedInput,
 };
 use crate::model::anchor::{anchored_model, anchored_path, trusted_audit, AnchoredPath};
 use crate::model::learner::{one_hot, predict_proba, trusted_loss};
@@ -208,14 +208,14 @@ pub fn assess(
     timings.repair = t_rep.elapsed();
 
     // ---- 5. items -----------------------------------------------------------------------------------------
-    let (items, noise_rate) = score_items(
+    let (mut items, noise_rate) = score_items(
         settings,
         batch_y,
         k,
         &ev.fusion(&refm, &point.mass, big_pool),
     );
     let (sharpness, (expected_flagged_share, expected_flagged_sd, expected_flagged_by_label)) =
-        clean_expectation(settings, &refm, &phi_b, &ev, trusted, pool, k);
+        clean_expectation(settings, &refm, &phi_b, &ev, trusted, pool, k, &mut items);
     let (broken_trusted, trusted_still_wrong) = trusted_reports(
         phi_t.view(),
         trusted.y,
@@ -437,7 +437,9 @@ fn damage_or_unknown(ctx: &Ctx<'_>, damage: f64, deadline: Instant) -> (f64, Vec
 /// standard deviation and the per-label counts), each item flagged by the fusion's rule; the right labels
 /// are taken to follow the pool model as fitted from stored items (`PoolSummary::labels_model`; `p_ref`
 /// while the pool is not the reference or was never fitted from items), sharpened by the measured
-/// sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on.
+/// sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on; and each item's
+/// [`LabelFit`] term against the same distribution (set on `items`, in batch order).
+#[allow(clippy::too_many_arguments)]
 fn clean_expectation(
     settings: &ModelSettings,
     refm: &Reference,
@@ -446,6 +448,7 @@ fn clean_expectation(
     trusted: TrustedInput<'_>,
     pool: PoolInput<'_>,
     k: usize,
+    items: &mut [ItemScore],
 ) -> (Sharpness, (f64, f64, Vec<f64>)) {
     let mut sharpness = reference_sharpness(refm, trusted, pool, k);
     if !settings.calibrate_clean_level {
@@ -472,7 +475,40 @@ fn clean_expectation(
         base_weight: ev.base_weight,
         threshold: settings.flag_threshold,
     };
+    // The label fit only while the pool is the reference: a cross-fitted reference's probabilities are
+    // calibrated by nothing (its sharpness is not measured), and clean fixture batches scored through one
+    // read z ≈ −4. Without it the terms stay 0 (`V` = 0: no evidence either way).
+    if refm.big_pool {
+        let given: Vec<usize> = items.iter().map(|it| it.label).collect();
+        let fits = label_fits(&refm.p_ref, &p_label, &given);
+        for (it, fit) in items.iter_mut().zip(fits) {
+            it.label_fit = fit;
+        }
+    }
     (sharpness, expected_flagged(&rule, &p_label))
+}
+
+/// Each item's [`LabelFit`] term: its given label under `p_ref` (floored at `1e-4`), against a label
+/// drawn from `p_label`.
+fn label_fits(p_ref: &Array2<f64>, p_label: &Array2<f64>, y: &[usize]) -> Vec<LabelFit> {
+    p_ref
+        .rows()
+        .into_iter()
+        .zip(p_label.rows())
+        .zip(y)
+        .map(|((r, q), &yi)| {
+            let ln = |c: usize| r[c].max(1e-4).ln();
+            let (m1, m2) = (0..r.len()).fold((0.0, 0.0), |(a, b), c| {
+                let v = ln(c);
+                (a + q[c] * v, b + q[c] * v * v)
+            });
+            LabelFit {
+                loglik: ln(yi),
+                expected: m1,
+                variance: (m2 - m1 * m1).max(0.0),
+            }
+        })
+        .collect()
 }
 
 /// The reference model's sharpness (see [`crate::model::calibration`]): measured on the pool's
@@ -500,4 +536,30 @@ fn reference_sharpness(
     let weights = class_mix_weights(trusted.y, pool_labels, k, trusted.weight);
     let trusted_fit = SharpnessFit::fit(refm.prob_t_pool.view(), trusted.y, weights.view());
     Sharpness::combine(pool_fit, trusted_fit, "too few items to measure it")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// [`label_fits`] worked by hand on two items (natural logarithms to five places). Item 0, label 1,
+    /// `p = (0.7, 0.2, 0.1)` for both the reference and the right labels: `ℓ = ln 0.2 = −1.60944`,
+    /// `E = 0.7 ln 0.7 + 0.2 ln 0.2 + 0.1 ln 0.1 = −0.80182`, `E[(ln p)²] = 1.13730`, `V = 0.49439`.
+    /// Item 1, label 0, `p = (0.5, 0.5, 0)`: the zero is floored at `1e-4` but carries no label mass, so
+    /// `ℓ = E = ln 0.5 = −0.69315`, `V = 0`; labelled 2 instead, `ℓ = ln 1e-4 = −9.21034`.
+    #[test]
+    fn label_fit_terms_are_the_formulas_worked_by_hand() {
+        let p = ndarray::array![[0.7, 0.2, 0.1], [0.5, 0.5, 0.0]];
+        let f = label_fits(&p, &p, &[1, 0]);
+        let close = |a: f64, b: f64| (a - b).abs() < 1e-5;
+        assert!(close(f[0].loglik, -1.60944), "{f:?}");
+        assert!(close(f[0].expected, -0.80182), "{f:?}");
+        assert!(close(f[0].variance, 0.49439), "{f:?}");
+        let ln_half = -std::f64::consts::LN_2;
+        assert!(close(f[1].loglik, ln_half) && close(f[1].expected, ln_half));
+        assert!(f[1].variance.abs() < 1e-12);
+        let total = f[0].plus(f[1]);
+        assert!(close(total.z(), (-1.60944 + 0.80182) / 0.49439f64.sqrt()));
+        assert!(close(label_fits(&p, &p, &[1, 2])[1].loglik, -9.21034));
+    }
 }

@@ -122,6 +122,7 @@ pub(crate) fn score_items(
                 repair_weight: w,
                 wrong_probability: p_wrong[i],
                 flagged_at_step: anchored.first_flagged[i],
+                label_fit: Default::default(),
             }
         })
         .collect();

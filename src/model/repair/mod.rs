@@ -106,6 +106,12 @@ pub struct ItemScore {
     pub wrong_probability: f64,
     /// Step of the repair path at which this item's relaxed label first left its given class, if it did.
     pub flagged_at_step: Option<usize>,
+    /// The item's term of the batch's label fit ([`LabelFit`]): `ln p_ref(y)` with `p_ref` floored at
+    /// `1e-4` (one item moves the sum by at most 9.2 nats), its mean and variance for a label drawn from
+    /// the clean level's distribution `p̃`. All 0 while the reference is cross-fitted (its probabilities are
+    /// calibrated by nothing).
+    #[serde(default)]
+    pub label_fit: LabelFit,
 }
 
 /// A trusted item that adding the batch as delivered would get wrong.
@@ -285,6 +291,52 @@ pub struct Assessment {
     /// model as it is) while the reference is cross-fitted or the trusted set is too small.
     #[serde(default)]
     pub reference_sharpness: crate::model::calibration::Sharpness,
+}
+
+/// How likely labels are under the reference model, against what right labels would give: for items
+/// `i`, `ℓ = Σ_i ln p_ref,i(y_i)`, `E = Σ_i Σ_c p̃_ic ln p_ref,ic` and
+/// `V = Σ_i [Σ_c p̃_ic (ln p_ref,ic)² − (Σ_c p̃_ic ln p_ref,ic)²]`, with `p̃` the calibrated distribution the
+/// clean level draws right labels from (see `Assessment::expected_flagged_share`) and independent items.
+/// `z = (ℓ − E)/√V` is near 0 for right labels and negative when labels are less likely than right ones
+/// would be. It uses every item's probability, not only whether it crossed the flag threshold — what a
+/// learner that separates the classes only moderately leaves to work with. Sums over items add.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Serialize, Deserialize)]
+pub struct LabelFit {
+    /// `ℓ`, nats.
+    pub loglik: f64,
+    /// `E`, nats.
+    pub expected: f64,
+    /// `V`, nats².
+    pub variance: f64,
+}
+
+impl LabelFit {
+    /// `z = (ℓ − E)/√V` (0 when `V` is 0).
+    pub fn z(&self) -> f64 {
+        if self.variance > 0.0 {
+            (self.loglik - self.expected) / self.variance.sqrt()
+        } else {
+            0.0
+        }
+    }
+
+    /// The sum of two fits (over disjoint items).
+    pub fn plus(self, o: LabelFit) -> LabelFit {
+        LabelFit {
+            loglik: self.loglik + o.loglik,
+            expected: self.expected + o.expected,
+            variance: self.variance + o.variance,
+        }
+    }
+
+    /// This fit without the items of `o` (a part of it).
+    pub fn minus(self, o: LabelFit) -> LabelFit {
+        LabelFit {
+            loglik: self.loglik - o.loglik,
+            expected: self.expected - o.expected,
+            variance: (self.variance - o.variance).max(0.0),
+        }
+    }
 }
 
 /// Reads a number that may be `null` (an unknown value, serialised from `NaN`) as `NaN`.
