@@ -44,6 +44,11 @@ impl Tally {
         self.variance.sqrt()
     }
 
+    /// Whether the observed count lies within three standard deviations of the computed one.
+    fn agrees(&self) -> bool {
+        (self.observed - self.expected).abs() <= 3.0 * self.sd()
+    }
+
     /// The tally in one line, for the checks' closing prints.
     fn line(&self) -> String {
         format!(
@@ -237,7 +242,7 @@ fn clean_batches_flag_what_the_computed_clean_level_says_on_winequality() {
             t.line()
         );
         assert!(
-            (t.observed - t.expected).abs() <= 3.0 * t.sd(),
+            t.agrees(),
             "calibrate_clean_level = {calibrate}: flagged {} against {:.1} ± {:.1} to expect; sharpness {:?}",
             t.observed,
             t.expected,
@@ -288,7 +293,7 @@ fn the_clean_level_holds_after_the_pool_absorbed_batches_with_held_back_items() 
     );
     assert!(t.items >= 450, "{} judged items", t.items);
     assert!(
-        (t.observed - t.expected).abs() <= 3.0 * t.sd(),
+        t.agrees(),
         "flagged {} against {:.1} ± {:.1}",
         t.observed,
         t.expected,
@@ -321,7 +326,7 @@ fn clean_batches_flag_what_the_calibrated_clean_level_says_on_the_plant() {
         "the plant's reference model is too flat: {applied:?}"
     );
     assert!(
-        (t.observed - t.expected).abs() <= 3.0 * t.sd(),
+        t.agrees(),
         "flagged {} against {:.1} ± {:.1} to expect",
         t.observed,
         t.expected,
