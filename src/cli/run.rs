@@ -89,6 +89,7 @@ pub fn run_daemon(dir: PathBuf, config: Config, opts: RunOptions) -> anyhow::Res
     let ws = Workspace::new(dir);
     let deadline = shutdown_deadline(&config);
     ignore_file_size_signal();
+    log_panics();
     rt.block_on(daemon::run(ws, config, opts, signals(deadline)))
         .map_err(|e| {
             if e.storage_full() {
@@ -99,6 +100,31 @@ pub fn run_daemon(dir: PathBuf, config: Config, opts: RunOptions) -> anyhow::Res
             }
         })?;
     Ok(exit::OK)
+}
+
+/// Log a panic on any of the daemon's threads as an error line with the thread's name, the message and the
+/// place, then give it to the default report on stderr: a log reader (or the journal's JSON fields) sees
+/// which thread died, not only the unstructured stderr text.
+fn log_panics() {
+    let default = std::panic::take_hook();
+    std::panic::set_hook(Box::new(move |info| {
+        let payload = info.payload();
+        let message = payload
+            .downcast_ref::<&str>()
+            .map(|s| (*s).to_string())
+            .or_else(|| payload.downcast_ref::<String>().cloned())
+            .unwrap_or_else(|| "(no message)".into());
+        let place = info
+            .location()
+            .map_or_else(String::new, |l| format!("{}:{}", l.file(), l.line()));
+        tracing::error!(
+            thread = std::thread::current().name().unwrap_or("unnamed"),
+            panic = %message,
+            place = %place,
+            "a thread panicked"
+        );
+        default(info);
+    }));
 }
 
 /// Ignore SIGXFSZ, so a write past the file size limit (`RLIMIT_FSIZE`, `LimitFSIZE=` in a unit) fails

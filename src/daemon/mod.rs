@@ -303,12 +303,24 @@ async fn supervise(
             _ = &mut shutdown => return None,
             _ = check.tick() => {}
         }
-        if p.worker.is_finished()
-            || p.ingest.is_finished()
-            || p.shared.filing_stopped.load(Ordering::SeqCst)
-        {
+        let dead = if p.shared.filing_stopped.load(Ordering::SeqCst) {
+            Some("filing")
+        } else if p.worker.is_finished() {
+            Some("scoring")
+        } else if p.ingest.is_finished() {
+            Some("ingest")
+        } else {
+            None
+        };
+        if let Some(thread) = dead {
             ready.pipeline.store(false, Ordering::SeqCst);
-            return Some(DaemonError::Internal("a pipeline thread stopped".into()));
+            tracing::error!(
+                thread,
+                "a pipeline thread stopped; the daemon stops too (a service manager restarts it, and the next start redoes unfinished batches)"
+            );
+            return Some(DaemonError::Internal(format!(
+                "the {thread} thread stopped"
+            )));
         }
         let failing = p.shared.filing_failing.load(Ordering::SeqCst)
             || p.shared.claims_failing.load(Ordering::SeqCst);
@@ -479,12 +491,20 @@ pub async fn run(
     let flush = tokio::task::spawn_blocking(move || store.flush())
         .await
         .map_err(|e| DaemonError::Internal(e.to_string()))?;
+    if let Some(e) = fatal {
+        // The thread that died is the cause; what the others reported on the way down is logged.
+        if let Err(w) = &worker_res {
+            tracing::error!(error = %w, "the scoring thread on the way down");
+        }
+        if let Err(i) = &ingest_res {
+            tracing::error!(error = %i, "the ingest thread on the way down");
+        }
+        flush?;
+        return Err(e);
+    }
     worker_res?;
     ingest_res?;
     flush?;
-    if let Some(e) = fatal {
-        return Err(e);
-    }
     tracing::info!("stopped cleanly");
     Ok(())
 }

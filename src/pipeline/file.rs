@@ -306,6 +306,17 @@ pub(crate) struct Filer {
     pub(crate) shared: Arc<Shared>,
 }
 
+/// Fault injection for the tests, in debug builds only: with `LABELWEIR_FAULT=filing-panic` the filing
+/// thread panics on its first batch, as a bug would, so a test can show that a dead filing thread stops the
+/// daemon (exit 70, the batch redone at the next start) instead of leaving it claiming batches it never
+/// files. Release builds carry no such hook.
+fn fault_hook() {
+    #[cfg(debug_assertions)]
+    if std::env::var("LABELWEIR_FAULT").as_deref() == Ok("filing-panic") {
+        panic!("fault injected by LABELWEIR_FAULT=filing-panic");
+    }
+}
+
 impl Filer {
     /// File batches until the channel closes. A batch whose filing fails (a daemon-side error: the disk,
     /// a folder) is logged, counted and kept for a retry every few seconds; it never stops the thread,
@@ -344,6 +355,7 @@ impl Filer {
 
     /// [`settle`] one batch, then metrics, log line and observer; gives the batch back on an error.
     fn file_one(&mut self, f: Filing) -> Option<Filing> {
+        fault_hook();
         let t = Instant::now();
         let settled = match settle(
             &self.ws,

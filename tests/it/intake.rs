@@ -618,3 +618,75 @@ fn a_failed_claim_is_retried_with_backoff_and_readyz_says_not_ready() {
         1
     );
 }
+
+/// Issue 14, item 8 (a dead filing thread). A filing thread that died used to go unnoticed: `/readyz`
+/// stayed 200 and later batches were claimed but never filed. The debug builds' fault hook
+/// (`LABELWEIR_FAULT=filing-panic`) makes the filing thread panic on its first batch, as a bug would. The
+/// daemon must say which thread died, stop promptly with exit 70 (EX_SOFTWARE, so a service manager
+/// restarts it) instead of running on, and the next start, without the fault, must file the batch exactly
+/// once. Shown to fail with the supervisor's check of the filing thread removed: the daemon ran on and
+/// the wait for its exit timed out.
+#[test]
+#[cfg_attr(
+    not(debug_assertions),
+    ignore = "the fault hook exists only in debug builds"
+)]
+fn a_dead_filing_thread_stops_the_daemon_and_the_next_start_files_its_batch() {
+    let ws = Ws::new(&["north-sort"]);
+    let log = ws.tmp.path().join("daemon-fault.log");
+    let logf = std::fs::File::create(&log).unwrap();
+    let addr = free_addr();
+    let child = Command::new(bin())
+        .args([
+            "run",
+            &ws.dir.display().to_string(),
+            "--listen",
+            &addr.to_string(),
+        ])
+        .env("LABELWEIR_FAULT", "filing-panic")
+        .stdout(std::process::Stdio::from(logf.try_clone().unwrap()))
+        .stderr(std::process::Stdio::from(logf))
+        .spawn()
+        .unwrap();
+    let mut d = Daemon {
+        child: Some(child),
+        addr,
+        log: log.clone(),
+    };
+    d.wait_ready(T);
+    ws.deliver("north-sort", "week01.csv", &clean_batch("f", 60, 41).csv());
+    let mut child = d.child.take().expect("spawned");
+    let status = wait_with_timeout(&mut child, T);
+    let text = std::fs::read_to_string(&log).unwrap();
+    assert_eq!(status.code(), Some(70), "log:\n{text}");
+    assert!(
+        text.contains("a thread panicked") && text.contains("labelweir-filing"),
+        "the panic is logged with the thread's name: {text}"
+    );
+    assert!(
+        text.contains("the filing thread stopped"),
+        "says which pipeline thread stopped: {text}"
+    );
+    assert_eq!(ws.settled(), 0, "nothing was filed by the dead thread");
+    assert_eq!(
+        ws.files_in("processing").len(),
+        1,
+        "the batch waits in processing/"
+    );
+
+    let again = Daemon::start(&ws);
+    ws.wait_settled(1, T);
+    assert_eq!(ws.settled(), 1);
+    let filed: usize = ["accepted", "quarantine", "rejected"]
+        .iter()
+        .map(|f| {
+            ws.files_in(f)
+                .iter()
+                .filter(|n| n.ends_with(".csv"))
+                .count()
+        })
+        .sum();
+    assert_eq!(filed, 1, "the batch's file is filed exactly once");
+    assert!(ws.files_in("processing").is_empty());
+    assert!(again.stop().success());
+}
