@@ -6,7 +6,8 @@ use std::path::Path;
 use std::time::Duration;
 
 use super::{
-    client_timeout, AdminError, Request, Response, CONNECT_TIMEOUT, DENIED, MAX_REQUEST_BYTES,
+    client_timeout, AdminError, Progress, ProgressLine, Request, Response, CONNECT_TIMEOUT, DENIED,
+    MAX_REQUEST_BYTES,
 };
 use crate::review::ReviewError;
 use crate::workspace::Workspace;
@@ -17,13 +18,24 @@ pub fn call(
     ws: &Workspace,
     req: &Request,
 ) -> Result<Option<Result<serde_json::Value, ReviewError>>, AdminError> {
-    call_at(&ws.admin_socket(), req)
+    call_at(&ws.admin_socket(), req, &|_| {})
 }
 
-/// [`call`] on an explicit socket path.
+/// [`call`], giving each progress line the daemon sends before its answer to `on_progress` (only a
+/// request that asks for progress gets any).
+pub fn call_with_progress(
+    ws: &Workspace,
+    req: &Request,
+    on_progress: &dyn Fn(Progress),
+) -> Result<Option<Result<serde_json::Value, ReviewError>>, AdminError> {
+    call_at(&ws.admin_socket(), req, on_progress)
+}
+
+/// [`call_with_progress`] on an explicit socket path.
 pub(crate) fn call_at(
     path: &Path,
     req: &Request,
+    on_progress: &dyn Fn(Progress),
 ) -> Result<Option<Result<serde_json::Value, ReviewError>>, AdminError> {
     let io = |source| AdminError::Io {
         path: path.display().to_string(),
@@ -70,15 +82,21 @@ pub(crate) fn call_at(
             io(e)
         });
     }
+    let mut reader = BufReader::new((&mut stream).take(MAX_REQUEST_BYTES as u64 * 4));
     let mut answer = Vec::new();
-    if let Err(e) = BufReader::new((&mut stream).take(MAX_REQUEST_BYTES as u64 * 4))
-        .read_until(b'\n', &mut answer)
-    {
-        return Err(if is_timeout(&e) {
-            timed_out(timeout)
-        } else {
-            io(e)
-        });
+    loop {
+        answer.clear();
+        if let Err(e) = reader.read_until(b'\n', &mut answer) {
+            return Err(if is_timeout(&e) {
+                timed_out(timeout)
+            } else {
+                io(e)
+            });
+        }
+        match serde_json::from_slice::<ProgressLine>(&answer) {
+            Ok(p) => on_progress(p.progress),
+            Err(_) => break,
+        }
     }
     if answer.is_empty() {
         // The daemon took the request and went away (killed, or stopped) before answering: what it did

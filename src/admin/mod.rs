@@ -15,8 +15,9 @@
 //!   ([`AdminError::Timeout`]).
 //! * **Protocol**: one request per connection, one JSON object per line each way. The request is a
 //!   [`Request`] (tagged by `op`); the response is [`Response`] — `{"ok": true, "result": ...}` or
-//!   `{"ok": false, "error": {"kind": ..., "message": ...}}`. A request line may be at most
-//!   64 MiB long.
+//!   `{"ok": false, "error": {"kind": ..., "message": ...}}`. A request that asks for progress (a pool
+//!   sweep with `"progress": true`) gets [`ProgressLine`]s first, `{"progress": {"done": N, "total":
+//!   M}}`, at most five a second. A request line may be at most 64 MiB long.
 //! * **Threads**: each request runs on its own short-lived thread (review operations read files, use the
 //!   store and may re-score batches), never on the runtime's worker threads; the async side only moves
 //!   bytes.
@@ -35,7 +36,7 @@ pub mod client;
 pub mod peer;
 pub mod server;
 
-pub use client::{call, daemon_answers};
+pub use client::{call, call_with_progress, daemon_answers};
 
 /// Longest request line accepted (a `trusted add` carries its file): 64 MiB.
 pub(crate) const MAX_REQUEST_BYTES: usize = 64 * 1024 * 1024;
@@ -73,6 +74,25 @@ pub struct WireError {
     /// The message.
     pub message: String,
 }
+
+/// How far a long operation has come (see the protocol in the module docs).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Progress {
+    /// Units done (items scored).
+    pub done: usize,
+    /// Units in all.
+    pub total: usize,
+}
+
+/// A progress line, sent before the response to a request that asked for progress.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub struct ProgressLine {
+    /// How far the operation has come.
+    pub progress: Progress,
+}
+
+/// Least time between two progress lines on one connection.
+pub(crate) const PROGRESS_EVERY: Duration = Duration::from_millis(200);
 
 /// One response line.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

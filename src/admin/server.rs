@@ -9,7 +9,9 @@ use tokio::net::UnixListener;
 
 use tokio::sync::OwnedSemaphorePermit;
 
-use super::{peer, Request, Response, MAX_REQUEST_BYTES, SOCKET_MODE};
+use super::{
+    peer, Progress, ProgressLine, Request, Response, MAX_REQUEST_BYTES, PROGRESS_EVERY, SOCKET_MODE,
+};
 use crate::config::Config;
 use crate::conn::{fd_share, Backoff, Idle, Slots};
 use crate::review::{self, Caller, ReviewEnv, ReviewError, ReviewHooks};
@@ -153,20 +155,27 @@ async fn serve_one(
         match serde_json::from_slice::<Request>(&line) {
             Err(e) => Response::from_result(Err(ReviewError::Invalid(format!("bad request: {e}")))),
             Ok(req) => {
+                let wants_progress = matches!(&req, Request::PoolSweep(r) if r.progress);
+                let (ptx, mut prx) = tokio::sync::mpsc::unbounded_channel::<Progress>();
                 // Review work runs on its own thread, off the runtime's workers.
-                let (tx, rx) = tokio::sync::oneshot::channel();
+                let (tx, mut rx) = tokio::sync::oneshot::channel();
                 let spawned = std::thread::Builder::new()
                     .name("labelweir-admin".into())
                     .spawn(move || {
                         let r = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
                             // The configuration of the last successful reload, if any.
                             let config = (ctx.config)();
+                            let hooks = Reporting {
+                                inner: ctx.hooks.as_ref(),
+                                tx: wants_progress.then_some(ptx),
+                                last: std::sync::Mutex::new(None),
+                            };
                             let env = ReviewEnv {
                                 ws: &ctx.ws,
                                 config: &config,
                                 store: &ctx.store,
                                 meta: &ctx.meta,
-                                hooks: ctx.hooks.as_ref(),
+                                hooks: &hooks,
                                 caller: Caller {
                                     uid,
                                     user: uid.and_then(peer::user_name),
@@ -183,9 +192,25 @@ async fn serve_one(
                         let _ = tx.send(r);
                     });
                 match spawned {
-                    Ok(_) => Response::from_result(rx.await.unwrap_or_else(|_| {
-                        Err(ReviewError::Model("the request's thread stopped".into()))
-                    })),
+                    Ok(_) => {
+                        // Progress lines while the request runs, then its answer.
+                        let result = loop {
+                            tokio::select! {
+                                // Lines already sent by the thread go out before its answer.
+                                biased;
+                                Some(p) = prx.recv() => {
+                                    let mut out = serde_json::to_vec(&ProgressLine { progress: p })
+                                        .unwrap_or_default();
+                                    out.push(b'\n');
+                                    conn.write_all(&out).await?;
+                                }
+                                r = &mut rx => break r,
+                            }
+                        };
+                        Response::from_result(result.unwrap_or_else(|_| {
+                            Err(ReviewError::Model("the request's thread stopped".into()))
+                        }))
+                    }
                     Err(e) => Response::from_result(Err(ReviewError::Io {
                         message: format!("cannot start a thread: {e}"),
                         source: Some(e),
@@ -199,4 +224,34 @@ async fn serve_one(
     conn.write_all(&out).await?;
     conn.shutdown().await?;
     Ok(())
+}
+
+/// The daemon's hooks, plus progress lines for one request (at most one per [`PROGRESS_EVERY`], and the
+/// last step always) when it asked for them.
+struct Reporting<'a> {
+    inner: &'a dyn ReviewHooks,
+    tx: Option<tokio::sync::mpsc::UnboundedSender<Progress>>,
+    last: std::sync::Mutex<Option<std::time::Instant>>,
+}
+
+impl ReviewHooks for Reporting<'_> {
+    fn pool_changed(&self) {
+        self.inner.pool_changed();
+    }
+
+    fn trusted_changed(&self) {
+        self.inner.trusted_changed();
+    }
+
+    fn progress(&self, done: usize, total: usize) {
+        let Some(tx) = &self.tx else { return };
+        let Ok(mut last) = self.last.lock() else {
+            return;
+        };
+        if done < total && last.is_some_and(|t| t.elapsed() < PROGRESS_EVERY) {
+            return;
+        }
+        *last = Some(std::time::Instant::now());
+        let _ = tx.send(Progress { done, total });
+    }
 }

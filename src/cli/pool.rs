@@ -3,7 +3,8 @@
 use std::path::PathBuf;
 
 use super::exit;
-use super::quarantine::{dispatch, print_json};
+use super::progress::Progress;
+use super::quarantine::{dispatch_with_progress, print_json};
 use labelweir::review::{Request, SweepReport, SweepRequest};
 use labelweir::text::sanitize;
 
@@ -48,13 +49,25 @@ struct SweepArgs {
 pub fn run(args: Args) -> anyhow::Result<u8> {
     match args.command {
         Command::Sweep(a) => {
-            let v = dispatch(
+            // Items scored, on one line of stderr when it is a terminal.
+            let bar = Progress::on_terminal("pool sweep: items scored");
+            let v = dispatch_with_progress(
                 &a.dir,
                 Request::PoolSweep(SweepRequest {
                     by: a.by.unwrap_or_else(super::init::os_user),
                     top: a.top,
+                    progress: bar.is_some(),
                 }),
-            )?;
+                &|p| {
+                    if let Some(b) = &bar {
+                        b.show(p.done, p.total);
+                    }
+                },
+            );
+            if let Some(b) = &bar {
+                b.finish();
+            }
+            let v = v?;
             let r: SweepReport = serde_json::from_value(v.clone())?;
             if a.json {
                 print_json(&v)?;

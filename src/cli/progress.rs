@@ -9,6 +9,8 @@ use std::time::{Duration, Instant};
 pub struct Progress {
     label: String,
     last: Mutex<Option<Instant>>,
+    /// A line is drawn and not yet ended.
+    open: Mutex<bool>,
 }
 
 impl Progress {
@@ -17,6 +19,7 @@ impl Progress {
         std::io::stderr().is_terminal().then(|| Self {
             label: label.to_string(),
             last: Mutex::new(None),
+            open: Mutex::new(false),
         })
     }
 
@@ -36,5 +39,19 @@ impl Progress {
             let _ = writeln!(err);
         }
         let _ = err.flush();
+        if let Ok(mut open) = self.open.lock() {
+            *open = !finished;
+        }
+    }
+
+    /// End a line left open (the work stopped short of its total, or failed), so that what follows
+    /// starts on a line of its own.
+    pub fn finish(&self) {
+        if let Ok(mut open) = self.open.lock() {
+            if *open {
+                let _ = writeln!(std::io::stderr());
+                *open = false;
+            }
+        }
     }
 }

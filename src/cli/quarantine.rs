@@ -13,8 +13,8 @@ use super::{exit, Failure};
 use labelweir::admin;
 use labelweir::config::Config;
 use labelweir::review::{
-    self, Caller, DecisionReport, HeldAction, HeldBatch, HeldReport, HeldRequest, NoHooks,
-    QueueEntry, RejectRequest, ReleaseRequest, Request, ReviewEnv, ReviewError, ShowReport,
+    self, Caller, DecisionReport, HeldAction, HeldBatch, HeldReport, HeldRequest, QueueEntry,
+    RejectRequest, ReleaseRequest, Request, ReviewEnv, ReviewError, ReviewHooks, ShowReport,
     WithdrawRequest,
 };
 use labelweir::store::{BatchState, Store, StoreError};
@@ -418,6 +418,26 @@ fn own_uid() -> Option<u32> {
 /// Run a review request: through the running daemon's admin socket when it answers, else on the store
 /// opened directly (waiting up to 15 s while another review command holds it).
 pub fn dispatch(dir: &Path, req: Request) -> anyhow::Result<serde_json::Value> {
+    dispatch_with_progress(dir, req, &|_| {})
+}
+
+/// The review hooks of a command that opened the store itself: nothing to tell a daemon, progress to
+/// the command's display.
+struct DirectHooks<'a>(&'a (dyn Fn(admin::Progress) + Sync));
+
+impl ReviewHooks for DirectHooks<'_> {
+    fn progress(&self, done: usize, total: usize) {
+        (self.0)(admin::Progress { done, total });
+    }
+}
+
+/// [`dispatch`], giving a long operation's progress to `on_progress` on either path (progress lines from
+/// the daemon, or the operation's own reports when the command opened the store).
+pub fn dispatch_with_progress(
+    dir: &Path,
+    req: Request,
+    on_progress: &(dyn Fn(admin::Progress) + Sync),
+) -> anyhow::Result<serde_json::Value> {
     let ws = Workspace::new(dir);
     if !ws.config_file().is_file() {
         return Err(Failure::new(
@@ -431,7 +451,7 @@ pub fn dispatch(dir: &Path, req: Request) -> anyhow::Result<serde_json::Value> {
     }
     let deadline = Instant::now() + Duration::from_secs(15);
     loop {
-        match admin::call(&ws, &req) {
+        match admin::call_with_progress(&ws, &req, on_progress) {
             Ok(Some(r)) => return r.map_err(review_failure),
             Ok(None) => {}
             Err(e) => return Err(Failure::new(super::admin_exit(&e), e.to_string()).into()),
@@ -448,7 +468,7 @@ pub fn dispatch(dir: &Path, req: Request) -> anyhow::Result<serde_json::Value> {
                     config: &config,
                     store: &store,
                     meta: &meta,
-                    hooks: &NoHooks,
+                    hooks: &DirectHooks(on_progress),
                     caller: Caller {
                         uid: own_uid(),
                         user: own_uid().and_then(admin::peer::user_name),

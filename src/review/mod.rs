@@ -169,6 +169,9 @@ pub trait ReviewHooks: Send + Sync {
     fn pool_changed(&self) {}
     /// The trusted set changed: reload it before the next batch.
     fn trusted_changed(&self) {}
+    /// A long operation (the pool sweep) has done `done` of `total` units (items scored): for a progress
+    /// display, directly or as progress lines on the admin channel. Called often; keep it cheap.
+    fn progress(&self, _done: usize, _total: usize) {}
 }
 
 /// Hooks for a stopped daemon: nothing to tell (it catches up from the store at its next start).

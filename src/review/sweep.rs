@@ -22,6 +22,9 @@ pub struct SweepRequest {
     pub by: String,
     /// Suspects listed per batch (the counts cover all of them).
     pub top: usize,
+    /// Send progress lines (items scored of the pool's items) before the answer, on the admin channel.
+    #[serde(default)]
+    pub progress: bool,
 }
 
 /// One suspect item.
@@ -213,6 +216,7 @@ fn score_batches(
     let mut audit_line = String::new();
     let mut done = 0usize;
     let mut last_log = std::time::Instant::now();
+    env.hooks.progress(done, total);
     env.store
         .for_each_pool_entry(|_, e| -> Result<(), ReviewError> {
             if e.n_features != d || e.ids.is_empty() {
@@ -249,6 +253,7 @@ fn score_batches(
                 top,
             });
             done += items.len();
+            env.hooks.progress(done, total);
             if last_log.elapsed() >= std::time::Duration::from_secs(5) {
                 tracing::info!(done, total, "pool sweep in progress");
                 last_log = std::time::Instant::now();

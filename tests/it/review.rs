@@ -12,7 +12,7 @@
 
 use std::collections::{HashMap, HashSet};
 use std::path::Path;
-use std::process::Output;
+use std::process::{Command, Output};
 use std::time::{Duration, Instant};
 
 use labelweir::notice::{
@@ -1217,8 +1217,33 @@ fn pool_sweep_lists_a_bias_accepted_from_day_one_once_the_trusted_set_is_right()
         assert!(r["note"].as_str().unwrap().contains("not proof"));
     };
     // Live, through the daemon's admin socket.
-    check(&lw(&["pool", "sweep", &dir_s, "--json", "--top", "5"]));
+    let live = lw(&["pool", "sweep", &dir_s, "--json", "--top", "5"]);
+    check(&live);
+    let items = serde_json::from_slice::<Value>(&live.stdout).unwrap()["items"]
+        .as_u64()
+        .unwrap();
+    // Issue 15, item 5: on a terminal (`script` gives the command a pseudo-terminal, and copies what it
+    // shows) the sweep counts the items scored, live from the daemon's progress lines and on the stopped
+    // store from the sweep itself; on a pipe (the `--json` runs) nothing is drawn.
+    assert!(!stderr(&live).contains("items scored"), "{}", stderr(&live));
+    let on_terminal = || {
+        let cmd = format!("{} pool sweep {dir_s}", bin());
+        let tty = Command::new("script")
+            .args(["-qefc", &cmd, "/dev/null"])
+            .stdin(std::process::Stdio::null())
+            .output()
+            .unwrap();
+        let shown = String::from_utf8_lossy(&tty.stdout).into_owned();
+        assert_eq!(tty.status.code(), Some(1), "{shown}");
+        assert!(
+            shown.contains(&format!("pool sweep: items scored: {items}/{items}")),
+            "{shown}"
+        );
+        assert!(shown.contains("worth withdrawing"), "{shown}");
+    };
+    on_terminal();
     assert!(d.stop().success());
+    on_terminal();
     // On the stopped store; the text view names the batch and the command to act.
     check(&lw(&["pool", "sweep", &dir_s, "--json", "--top", "5"]));
     let text = lw(&["pool", "sweep", &dir_s]);
@@ -1231,7 +1256,7 @@ fn pool_sweep_lists_a_bias_accepted_from_day_one_once_the_trusted_set_is_right()
     let audits = store.audit_since(0).unwrap();
     assert_eq!(
         audits.iter().filter(|a| a.action == "pool_sweep").count(),
-        3
+        5
     );
 }
 
