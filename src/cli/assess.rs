@@ -287,15 +287,22 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
             }
         }
     };
-    let assessment = model::assess(
-        settings,
-        &standardizer,
-        k,
-        trusted_in,
-        pool_in,
-        batch.features.view(),
-        &batch_y,
-    )
+    let label = format!(
+        "assess: scoring {} items (time budget {:.1} s)",
+        batch_y.len(),
+        settings.time_budget_ms as f64 / 1000.0
+    );
+    let assessment = super::progress::with_elapsed(&label, || {
+        model::assess(
+            settings,
+            &standardizer,
+            k,
+            trusted_in,
+            pool_in,
+            batch.features.view(),
+            &batch_y,
+        )
+    })
     .map_err(engine_error)?;
     let decision = decide(
         &cfg.policy,

@@ -2,6 +2,7 @@
 //! terminal (never in logs, pipes or CI output).
 
 use std::io::{IsTerminal, Write};
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Mutex;
 use std::time::{Duration, Instant};
 
@@ -54,4 +55,34 @@ impl Progress {
             }
         }
     }
+}
+
+/// Run `work` while one line of stderr shows `label` and the seconds elapsed (redrawn five times a second,
+/// erased when the work ends), when stderr is a terminal; elsewhere just run it. For one long step whose
+/// own progress cannot be counted (the engine's scoring of one batch, which stops at its time budget).
+pub fn with_elapsed<T>(label: &str, work: impl FnOnce() -> T) -> T {
+    if !std::io::stderr().is_terminal() {
+        return work();
+    }
+    let finished = AtomicBool::new(false);
+    let started = Instant::now();
+    std::thread::scope(|s| {
+        let ticker = s.spawn(|| {
+            while !finished.load(Ordering::SeqCst) {
+                let mut err = std::io::stderr().lock();
+                let _ = write!(err, "\r{label}: {:.1} s", started.elapsed().as_secs_f64());
+                let _ = err.flush();
+                drop(err);
+                std::thread::park_timeout(Duration::from_millis(200));
+            }
+            // Back to the start of the line and erase it (ANSI "erase in line").
+            let mut err = std::io::stderr().lock();
+            let _ = write!(err, "\r\x1b[K");
+            let _ = err.flush();
+        });
+        let out = work();
+        finished.store(true, Ordering::SeqCst);
+        ticker.thread().unpark();
+        out
+    })
 }

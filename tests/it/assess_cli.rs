@@ -217,6 +217,41 @@ fn readable_report_has_summary_table_and_caution() {
     );
 }
 
+/// Issue 15, item 5: a long `assess` shows the seconds elapsed on a terminal (`script` gives the command a
+/// pseudo-terminal and copies what it shows), erases that line before the report, and draws nothing on a
+/// pipe (the runs above capture stderr). Shown to fail with the terminal check inverted in
+/// `cli::progress::with_elapsed`: the pipe run carried the line.
+#[test]
+fn assess_shows_its_elapsed_time_only_on_a_terminal() {
+    let args = [
+        "--trusted".to_string(),
+        fx("trusted.csv"),
+        "--pool".to_string(),
+        fx("pool.csv"),
+        fx("batch-region-flip.csv"),
+    ];
+    let refs: Vec<&str> = args.iter().map(String::as_str).collect();
+    let (code, out, err) = assess(&refs);
+    assert_eq!(code, 1, "{err}");
+    assert!(!err.contains("assess: scoring"), "drawn on a pipe: {err}");
+    assert!(!out.contains("assess: scoring"), "{out}");
+    let cmd = format!("{} assess {}", bin(), args.join(" "));
+    let tty = Command::new("script")
+        .args(["-qefc", &cmd, "/dev/null"])
+        .stdin(std::process::Stdio::null())
+        .output()
+        .unwrap();
+    let shown = String::from_utf8_lossy(&tty.stdout);
+    assert_eq!(tty.status.code(), Some(1), "{shown}");
+    assert!(
+        shown.contains("assess: scoring 300 items (time budget 30.0 s): 0.0 s"),
+        "{shown}"
+    );
+    let erased = shown.find("\r\x1b[K").expect("the line is erased");
+    let report = shown.find("would be QUARANTINED").expect("the report");
+    assert!(erased < report, "erased before the report: {shown}");
+}
+
 #[test]
 fn jsonl_batch_scores_like_the_same_csv_batch() {
     let run = |b: &str| {
