@@ -28,8 +28,9 @@ use labelweir::workspace::Workspace;
 pub struct Args {
     /// Folder for the demo workspace (must not exist, or be empty; see --fresh).
     pub dir: PathBuf,
-    /// Start over in a folder that holds an earlier demo run (its trusted-items.csv and workspace/): remove
-    /// them first. Any other non-empty folder is still refused.
+    /// Start over in a folder that holds an earlier demo run (its workspace/, trusted-items.csv,
+    /// pool-items.csv and, after --embeddings, embeddings.parquet): remove them first. Any other non-empty
+    /// folder is still refused.
     #[arg(long)]
     pub fresh: bool,
     /// Exit as soon as every batch has a verdict instead of serving metrics until Ctrl-C.
@@ -57,6 +58,13 @@ pub struct Args {
 pub const EMBEDDING_DIM: usize = 64;
 
 const VENDORS: [&str; 3] = ["north-sort", "east-labels", "delta-tagging"];
+
+/// Items in the pool the demo starts from (the plant's own labelled history).
+const POOL_ITEMS: usize = 1_500;
+/// Its file, beside the trusted set.
+const POOL_FILE: &str = "pool-items.csv";
+/// Its item ids' prefix.
+const POOL_PREFIX: &str = "plant-history";
 
 /// One planned delivery.
 struct Drop {
@@ -186,9 +194,10 @@ fn print_verdict(r: &BatchRecord) {
 fn to_reference(
     dir: &Path,
     trusted: (&ndarray::Array2<f64>, &[usize]),
+    pool: (&ndarray::Array2<f64>, &[usize]),
     drops: &mut [Drop],
     dim: usize,
-) -> anyhow::Result<(PathBuf, PathBuf)> {
+) -> anyhow::Result<(PathBuf, PathBuf, PathBuf)> {
     use labelweir::data::{parse_table, Format, TableOptions};
     use labelweir::scenario::embed::Encoder;
     let encoder = Encoder::new(trusted.0.view(), dim, 2026);
@@ -206,6 +215,14 @@ fn to_reference(
         &trusted_file,
         id_label(&ids, &scenario::label_names(trusted.1)),
     )?;
+    let pool_ids = scenario::item_ids(POOL_PREFIX, pool.1.len());
+    let pool_file = dir.join(POOL_FILE);
+    std::fs::write(
+        &pool_file,
+        id_label(&pool_ids, &scenario::label_names(pool.1)),
+    )?;
+    values.extend(encoder.encode(pool.0.view()));
+    ids.extend(pool_ids);
     for d in drops.iter_mut() {
         let Ok(t) = parse_table(
             &d.bytes,
@@ -224,19 +241,23 @@ fn to_reference(
     let mut out = Vec::new();
     labelweir::data::write_parquet_features(&mut out, "id", &ids, &encoder.names(), &values)?;
     std::fs::write(&table, out)?;
-    Ok((trusted_file, table))
+    Ok((trusted_file, pool_file, table))
 }
 
 /// Whether `dir` holds an earlier demo run and nothing else.
 fn is_earlier_demo(dir: &Path) -> std::io::Result<bool> {
-    let mut names: Vec<String> = std::fs::read_dir(dir)?
+    let names: Vec<String> = std::fs::read_dir(dir)?
         .flatten()
         .map(|e| e.file_name().to_string_lossy().into_owned())
         .collect();
-    names.sort();
-    Ok(names == ["trusted-items.csv", "workspace"]
+    let ours = |n: &String| DEMO_FILES.contains(&n.as_str()) || n == "workspace";
+    Ok(names.iter().all(ours)
+        && names.iter().any(|n| n == "trusted-items.csv")
         && dir.join("workspace").join("labelweir.toml").is_file())
 }
+
+/// The files a demo run writes beside its workspace (the feature table only with `--embeddings`).
+const DEMO_FILES: [&str; 3] = ["trusted-items.csv", POOL_FILE, "embeddings.parquet"];
 
 fn setup(
     dir: &Path,
@@ -248,7 +269,11 @@ fn setup(
         let earlier = is_earlier_demo(dir)?;
         if fresh && earlier {
             std::fs::remove_dir_all(dir.join("workspace"))?;
-            std::fs::remove_file(dir.join("trusted-items.csv"))?;
+            for f in DEMO_FILES {
+                if dir.join(f).exists() {
+                    std::fs::remove_file(dir.join(f))?;
+                }
+            }
         } else {
             let hint = if earlier {
                 "it holds an earlier demo run: add --fresh to start over, or pick a new folder"
@@ -267,20 +292,27 @@ fn setup(
     let (x, y) = plant.sample_per_class(10, 7);
     let ws_dir = dir.join("workspace");
     let vendors: Vec<String> = VENDORS.iter().map(|s| s.to_string()).collect();
-    let (trusted, features) = match embeddings {
+    // The team's own labelled history, which a team that retrains a model already has: the pool the
+    // daemon starts from. Without one, the first vendors' batches build the reference model, and with their
+    // flagged items waiting for a reviewer it learns too little of the hard-but-right items (wet cardboard
+    // and the like) and holds clean batches for labels; see the README, "A pool to start from".
+    let (pool_x, pool_y) = plant.sample(POOL_ITEMS, 31);
+    let (trusted, pool, features) = match embeddings {
         Some(dim) => {
-            let (t, f) = to_reference(dir, (&x, &y), drops, dim)?;
-            (t, Some(f))
+            let (t, p, f) = to_reference(dir, (&x, &y), (&pool_x, &pool_y), drops, dim)?;
+            (t, p, Some(f))
         }
         None => {
             let trusted = dir.join("trusted-items.csv");
             std::fs::write(&trusted, csv("trusted", &x, &y)?)?;
-            (trusted, None)
+            let pool = dir.join(POOL_FILE);
+            std::fs::write(&pool, csv(POOL_PREFIX, &pool_x, &pool_y)?)?;
+            (trusted, pool, None)
         }
     };
     let extras = labelweir::workspace::InitExtras {
         features,
-        pool: None,
+        pool: Some(pool),
     };
     labelweir::workspace::create_workspace_with(
         &ws_dir,
@@ -310,7 +342,7 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
     let total = drops.len();
     println!("labelweir demo: a recycling plant's sorting model, trained on labels from three contracted vendors.");
     println!(
-        "workspace: {}  (trusted set: 10 verified items per material class)",
+        "workspace: {}  (trusted set: 10 verified items per material class; pool: {POOL_ITEMS} items of the plant's own labelled history)",
         ws_dir.display()
     );
     if let Some(dim) = embeddings {

@@ -1029,3 +1029,81 @@ fn the_readme_worked_session_matches_a_real_run() {
         missing.join("\n")
     );
 }
+
+/// The demo, as a new user first sees it: every delivery the demo's plan calls clean is accepted, the
+/// systematically flipped ones are quarantined and the malformed one is rejected, each verdict printed once.
+/// Before the demo started from the plant's own labelled history (an in-house pool), its pool was built
+/// only from the vendors' admitted items; with their flagged items waiting for a reviewer the reference
+/// model learned too little of the hard-but-right items, and this test failed at "east-labels/week03.csv:
+/// clean, QUARANTINED" (label fit z ≈ −2.4 per clean batch, `labels_unlikely`).
+#[test]
+fn the_demo_accepts_every_clean_delivery_and_holds_the_flipped_ones() {
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path().join("demo");
+    let out = run_bin(&[
+        "demo",
+        &dir.display().to_string(),
+        "--exit-when-idle",
+        "--pace-ms",
+        "50",
+        "--listen",
+        "127.0.0.1:0",
+    ]);
+    let shown = text(&out);
+    assert!(out.status.success(), "{shown}");
+    // The plan: `dropped VENDOR/FILE (NOTE)`.
+    let mut planned: HashMap<String, String> = HashMap::new();
+    for line in shown.lines() {
+        if let Some(rest) = line.trim().strip_prefix("dropped ") {
+            let (what, note) = rest.split_once(" (").expect("dropped V/F (note)");
+            planned.insert(what.to_string(), note.trim_end_matches(')').to_string());
+        }
+    }
+    assert_eq!(planned.len(), 13, "{shown}");
+    // The verdicts: `VENDOR FILE -> OUTCOME ...`.
+    let mut verdicts: HashMap<String, String> = HashMap::new();
+    for line in shown.lines() {
+        let cols: Vec<&str> = line.split_whitespace().collect();
+        if cols.len() >= 4 && cols[2] == "->" {
+            let key = format!("{}/{}", cols[0], cols[1]);
+            assert!(
+                verdicts.insert(key.clone(), cols[3].to_string()).is_none(),
+                "{key} decided twice: {shown}"
+            );
+        }
+    }
+    for (what, note) in &planned {
+        let expected = if note == "clean" {
+            "ACCEPTED"
+        } else if note.starts_with("systematically flipped") {
+            "QUARANTINED"
+        } else if note.starts_with("malformed") {
+            "REJECTED"
+        } else {
+            panic!("a note the test does not know: {note}")
+        };
+        let got = verdicts.get(what).map_or("none", String::as_str);
+        assert_eq!(got, expected, "{what}: {note}, {got}\n{shown}");
+    }
+    assert!(shown.contains("not proof"), "{shown}");
+    // `--fresh` starts the same folder over (its pool file included) with the same verdicts.
+    let again = run_bin(&[
+        "demo",
+        &dir.display().to_string(),
+        "--fresh",
+        "--exit-when-idle",
+        "--pace-ms",
+        "50",
+        "--listen",
+        "127.0.0.1:0",
+    ]);
+    assert!(again.status.success(), "{}", text(&again));
+    let count = |o: &str, what: &str| o.lines().filter(|l| l.contains(what)).count();
+    for outcome in ["ACCEPTED", "QUARANTINED", "REJECTED"] {
+        assert_eq!(
+            count(&text(&again), outcome),
+            count(&shown, outcome),
+            "{outcome}"
+        );
+    }
+}
