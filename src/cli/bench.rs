@@ -63,6 +63,10 @@ struct CasebookArgs {
     /// otherwise. Replaying the same streams under two files is a paired comparison.
     #[arg(long, value_name = "FILE")]
     config: Option<std::path::PathBuf>,
+    /// Only the cases whose name contains this text (case-insensitive), each with the seed it has in the
+    /// full run.
+    #[arg(long, value_name = "TEXT")]
+    case: Option<String>,
 }
 
 /// Sizes for `bench daemon` (defaults: 30 batches of 1,000 items against a pool of 100,000).
@@ -265,6 +269,7 @@ fn casebook(a: CasebookArgs) -> anyhow::Result<u8> {
         quick: a.quick,
         seed: a.seed,
         config,
+        only: a.case,
     };
     let report = casebook::run(&opts, progress_unless(a.json))
         .map_err(|e| Failure::new(exit::INTERNAL, format!("casebook failed: {e}")))?;
