@@ -147,6 +147,23 @@ pub fn unsure_fate(settings: &AdmissionSettings) -> ItemFate {
 mod tests {
     use super::*;
 
+    /// The fate names are a contract: the metric `labelweir_admission_items_total{fate=...}`, the runbook
+    /// (`fate="held"`) and the audit details read them. Written for a mutation run's two missed mutants
+    /// (`as_str` returning "" or "xyzzy"), which only the integration suite's metric scrape noticed.
+    #[test]
+    fn fate_names_are_the_ones_the_metrics_and_runbook_use() {
+        let names: Vec<&str> = [
+            ItemFate::Enter,
+            ItemFate::EnterProposed,
+            ItemFate::Held,
+            ItemFate::Dropped,
+        ]
+        .iter()
+        .map(|f| f.as_str())
+        .collect();
+        assert_eq!(names, ["entered", "entered_proposed", "held", "dropped"]);
+    }
+
     /// Worked by hand: ten items, two flagged; a 0.2 share is a quota of 2; the unflagged suspicions at or
     /// above 0.25 are 0.45, 0.3, 0.3 and 0.25, so the two highest (0.45, then the first 0.3) are unsure.
     #[test]

@@ -11,7 +11,7 @@ use labelweir::eval::metrics::{auroc, spearman};
 use serde_json::Value;
 use tempfile::TempDir;
 
-use super::util::bin;
+use super::util::{bin, on_a_terminal};
 
 fn fixture(name: &str) -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR"))
@@ -235,14 +235,8 @@ fn assess_shows_its_elapsed_time_only_on_a_terminal() {
     assert_eq!(code, 1, "{err}");
     assert!(!err.contains("assess: scoring"), "drawn on a pipe: {err}");
     assert!(!out.contains("assess: scoring"), "{out}");
-    let cmd = format!("{} assess {}", bin(), args.join(" "));
-    let tty = Command::new("script")
-        .args(["-qefc", &cmd, "/dev/null"])
-        .stdin(std::process::Stdio::null())
-        .output()
-        .unwrap();
-    let shown = String::from_utf8_lossy(&tty.stdout);
-    assert_eq!(tty.status.code(), Some(1), "{shown}");
+    let (code, shown) = on_a_terminal(&format!("{} assess {}", bin(), args.join(" ")));
+    assert_eq!(code, Some(1), "{shown}");
     assert!(
         shown.contains("assess: scoring 300 items (time budget 30.0 s): 0.0 s"),
         "{shown}"

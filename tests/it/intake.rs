@@ -466,13 +466,8 @@ fn bench_daemon_prints_versioned_json_and_shows_progress_only_on_a_terminal() {
         .chain(args.iter().copied().filter(|a| *a != "--json"))
         .collect::<Vec<_>>()
         .join(" ");
-    let tty = Command::new("script")
-        .args(["-qefc", &cmd, "/dev/null"])
-        .stdin(std::process::Stdio::null())
-        .output()
-        .unwrap();
-    let shown = String::from_utf8_lossy(&tty.stdout);
-    assert!(tty.status.success(), "{shown}");
+    let (code, shown) = on_a_terminal(&cmd);
+    assert_eq!(code, Some(0), "{shown}");
     assert!(
         shown.contains("bench daemon: batches settled: 3/3"),
         "{shown}"

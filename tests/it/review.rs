@@ -12,7 +12,7 @@
 
 use std::collections::{HashMap, HashSet};
 use std::path::Path;
-use std::process::{Command, Output};
+use std::process::Output;
 use std::time::{Duration, Instant};
 
 use labelweir::notice::{
@@ -1227,14 +1227,8 @@ fn pool_sweep_lists_a_bias_accepted_from_day_one_once_the_trusted_set_is_right()
     // store from the sweep itself; on a pipe (the `--json` runs) nothing is drawn.
     assert!(!stderr(&live).contains("items scored"), "{}", stderr(&live));
     let on_terminal = || {
-        let cmd = format!("{} pool sweep {dir_s}", bin());
-        let tty = Command::new("script")
-            .args(["-qefc", &cmd, "/dev/null"])
-            .stdin(std::process::Stdio::null())
-            .output()
-            .unwrap();
-        let shown = String::from_utf8_lossy(&tty.stdout).into_owned();
-        assert_eq!(tty.status.code(), Some(1), "{shown}");
+        let (code, shown) = on_a_terminal(&format!("{} pool sweep {dir_s}", bin()));
+        assert_eq!(code, Some(1), "{shown}");
         assert!(
             shown.contains(&format!("pool sweep: items scored: {items}/{items}")),
             "{shown}"

@@ -526,3 +526,17 @@ fn unique() -> u64 {
     static N: AtomicU64 = AtomicU64::new(0);
     N.fetch_add(1, Ordering::SeqCst)
 }
+
+/// Run the shell command line `cmd` on a pseudo-terminal (`script` from util-linux gives it one and copies
+/// what it shows to its own stdout); returns the exit code and what the terminal showed.
+pub fn on_a_terminal(cmd: &str) -> (Option<i32>, String) {
+    let tty = Command::new("script")
+        .args(["-qefc", cmd, "/dev/null"])
+        .stdin(Stdio::null())
+        .output()
+        .expect("script (util-linux) runs");
+    (
+        tty.status.code(),
+        String::from_utf8_lossy(&tty.stdout).into_owned(),
+    )
+}

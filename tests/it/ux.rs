@@ -1039,16 +1039,18 @@ fn the_readme_worked_session_matches_a_real_run() {
 #[test]
 fn the_demo_accepts_every_clean_delivery_and_holds_the_flipped_ones() {
     let tmp = tempfile::tempdir().unwrap();
-    let dir = tmp.path().join("demo");
-    let out = run_bin(&[
-        "demo",
-        &dir.display().to_string(),
-        "--exit-when-idle",
-        "--pace-ms",
-        "50",
-        "--listen",
-        "127.0.0.1:0",
-    ]);
+    let dir = tmp.path().join("demo").display().to_string();
+    let demo = |fresh: &[&str]| {
+        let fast = [
+            "--exit-when-idle",
+            "--pace-ms",
+            "50",
+            "--listen",
+            "127.0.0.1:0",
+        ];
+        run_bin(&[&["demo", dir.as_str()], fresh, &fast[..]].concat())
+    };
+    let out = demo(&[]);
     let shown = text(&out);
     assert!(out.status.success(), "{shown}");
     // The plan: `dropped VENDOR/FILE (NOTE)`.
@@ -1087,16 +1089,7 @@ fn the_demo_accepts_every_clean_delivery_and_holds_the_flipped_ones() {
     }
     assert!(shown.contains("not proof"), "{shown}");
     // `--fresh` starts the same folder over (its pool file included) with the same verdicts.
-    let again = run_bin(&[
-        "demo",
-        &dir.display().to_string(),
-        "--fresh",
-        "--exit-when-idle",
-        "--pace-ms",
-        "50",
-        "--listen",
-        "127.0.0.1:0",
-    ]);
+    let again = demo(&["--fresh"]);
     assert!(again.status.success(), "{}", text(&again));
     let count = |o: &str, what: &str| o.lines().filter(|l| l.contains(what)).count();
     for outcome in ["ACCEPTED", "QUARANTINED", "REJECTED"] {
