@@ -251,6 +251,33 @@ mod tests {
         assert!(r.detail.contains("paper"), "{}", r.detail);
     }
 
+    /// The binomial tail bounds the per-label count's own tail only from the mean plus one on (Hoeffding
+    /// 1956, see the module documentation), so below that a tiny tail does not hold a batch: one flagged
+    /// item in a label expected to show 10⁻⁶ flags has a binomial tail of 10⁻⁶, under the limit, and is
+    /// not held; two are. Written for a mutation run's missed mutants (`+ 1.0` → `- 1.0` and `* 1.0` in
+    /// `fires`).
+    #[test]
+    fn a_tiny_tail_below_the_mean_plus_one_does_not_hold() {
+        let check = |flagged: u64| LabelCheck {
+            label: label(0, "steel", 1, flagged, 1e-6),
+            batch_items: 1,
+            level: 1e-6,
+            tail_p: binomial_upper_tail(flagged, 1, 1e-6),
+            limit: 1.25e-5,
+            labels_tested: 8,
+        };
+        let one = check(1);
+        assert!(one.tail_p < one.limit, "{one:?}");
+        assert!(!one.fires());
+        let two = LabelCheck {
+            batch_items: 2,
+            label: label(0, "steel", 2, 2, 2e-6),
+            tail_p: binomial_upper_tail(2, 2, 1e-6),
+            ..check(1)
+        };
+        assert!(two.fires(), "{two:?}");
+    }
+
     /// Bonferroni: the limit is `label_alpha / L` over the labels tested; a vendor whose level was raised
     /// by released batches gets the same allowance per label (`r = ℓ / c`); unnamed classes read `class #k`.
     #[test]
