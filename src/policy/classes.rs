@@ -300,4 +300,38 @@ mod tests {
         let checks = check_labels(&s, &b, Some(&raised));
         assert!((checks[1].level - 4.0 / 100.0).abs() < 1e-12);
     }
+
+    /// Which labels are tested and counted. A label with no items in the batch is neither tested nor
+    /// counted in Bonferroni's `L`; a label with items but no flag counts in `L` but is left out of the
+    /// checks (it cannot fire); a batch whose items were all judged unlike the pool (`n = 0`) tests
+    /// nothing; a vendor record whose clean level is 0 leaves the level as computed (`r = 1`, not
+    /// `ℓ / 0`). Written for a mutation run's four missed mutants in `check_labels` (`> 0` → `>= 0` three
+    /// times, `||` → `&&`).
+    #[test]
+    fn labels_without_items_or_flags_and_empty_batches_are_counted_as_the_rule_says() {
+        let s = PolicySettings::default();
+        let b = signals(vec![
+            label(0, "glass", 50, 2, 2.0),
+            label(1, "steel", 50, 0, 2.0),
+            label(2, "pet", 0, 0, 0.0),
+        ]);
+        let checks = check_labels(&s, &b, None);
+        assert_eq!(checks.len(), 1, "{checks:?}");
+        assert_eq!(checks[0].label.name, "glass");
+        assert_eq!(checks[0].labels_tested, 2);
+        assert!((checks[0].limit - s.label_alpha / 2.0).abs() < 1e-18);
+        let beyond = BatchSignals {
+            unlike_items: b.items,
+            ..b.clone()
+        };
+        assert!(check_labels(&s, &beyond, None).is_empty());
+        let j = crate::policy::evidence::ItemEvidence::default().judge(&s, &b);
+        let zero = ItemJudgement {
+            clean_level: 0.0,
+            level: 0.1,
+            ..j
+        };
+        let checks = check_labels(&s, &b, Some(&zero));
+        assert!((checks[0].level - 2.0 / 100.0).abs() < 1e-12, "{checks:?}");
+    }
 }
