@@ -270,3 +270,26 @@ fn labels_less_likely_than_right_ones_are_held_by_the_label_fit_cusum() {
         .record_released(&s, &fitted(150, 8, 0.05, -3.35));
     assert_eq!(held.evidence.fit_cusum, 0.0);
 }
+
+/// A decision record written before the sharpness was kept reads it as 1 (the reference model taken as it
+/// was then), so old records show the level as it was computed. Written for a mutation run's two missed
+/// mutants (the serde default `one` returning 0 or −1).
+#[test]
+fn an_old_record_without_the_sharpness_reads_it_as_one() {
+    let s = PolicySettings::default();
+    let j = ItemEvidence::default().judge(&s, &batch(150, 12, 0.08));
+    let mut v = serde_json::to_value(&j).unwrap();
+    v.as_object_mut().unwrap().remove("clean_level_sharpness");
+    let old: ItemJudgement = serde_json::from_value(v).unwrap();
+    assert_eq!(old.clean_level_sharpness, 1.0);
+    assert_eq!(
+        ItemJudgement {
+            clean_level_sharpness: 1.0,
+            ..old
+        },
+        ItemJudgement {
+            clean_level_sharpness: 1.0,
+            ..j
+        }
+    );
+}
