@@ -293,3 +293,52 @@ fn an_old_record_without_the_sharpness_reads_it_as_one() {
         }
     );
 }
+
+/// The label-fit rule in words and at its edges: a record from before the rule existed (`h` = 0) never
+/// fires whatever its statistic, a CUSUM equal to `h` has not crossed it, one above has; the sentence
+/// carries the numbers. Written for a mutation run's missed mutants in `unlikely` (`>` → `>=`, twice)
+/// and `describe_fit` (an empty or made-up sentence).
+#[test]
+fn the_label_fit_rule_fires_only_above_a_positive_h_and_says_its_numbers() {
+    let s = PolicySettings::default();
+    let j = ItemEvidence::default().judge(&s, &batch(300, 20, 0.08));
+    let at = |cusum: f64, h: f64| ItemJudgement {
+        fit_z: -2.4,
+        fit_cusum_before: 39.4,
+        fit_cusum: cusum,
+        fit_cusum_h: h,
+        ..j.clone()
+    };
+    assert!(
+        !at(5.0, 0.0).unlikely(),
+        "an old record (h = 0) never fires"
+    );
+    assert!(!at(40.0, 40.0).unlikely(), "equal to h has not crossed it");
+    assert!(at(50.9, 40.0).unlikely());
+    let words = at(50.9, 40.0).describe_fit();
+    assert!(
+        words.contains("label fit z = -2.40 over 300 judged items")
+            && words.contains("label-fit CUSUM 39.4 → 50.9 (h = 40 item standard deviations)"),
+        "{words}"
+    );
+}
+
+/// The vendor's accepted excess, worked by hand: two accepted 150-item batches with 20 and 15 flagged
+/// items against 12 expected each carry an excess of 8 + 3 = 11 items, shrunk towards 0 by
+/// `trust_items` (1,000): `A = 11 / (300 + 1,000) = 0.0084615`. Written for a mutation run's missed
+/// mutants of that sum (`+` → `−`, `*`).
+#[test]
+fn the_accepted_excess_is_the_shrunk_mean_worked_by_hand() {
+    let s = PolicySettings::default();
+    assert_eq!(s.trust_items, 1_000);
+    let mut e = ItemEvidence::default();
+    for flagged in [20, 15] {
+        e.accepted.push_back(Tally {
+            items: 150,
+            flagged,
+            clean: 12.0,
+        });
+    }
+    let j = e.judge(&s, &batch(150, 12, 0.08));
+    assert!((j.accepted_excess - 11.0 / 1_300.0).abs() < 1e-12, "{j:?}");
+}
