@@ -326,7 +326,7 @@ fn the_label_fit_rule_fires_only_above_a_positive_h_and_says_its_numbers() {
 /// The vendor's accepted excess, worked by hand: two accepted 150-item batches with 20 and 15 flagged
 /// items against 12 expected each carry an excess of 8 + 3 = 11 items, shrunk towards 0 by
 /// `trust_items` (1,000): `A = 11 / (300 + 1,000) = 0.0084615`. Written for a mutation run's missed
-/// mutants of that sum (`+` → `−`, `*`).
+/// mutants of that sum (`+` → `−`, `*`) and of the released excess's mean (`/` → `%`, `*`).
 #[test]
 fn the_accepted_excess_is_the_shrunk_mean_worked_by_hand() {
     let s = PolicySettings::default();
@@ -341,4 +341,14 @@ fn the_accepted_excess_is_the_shrunk_mean_worked_by_hand() {
     }
     let j = e.judge(&s, &batch(150, 12, 0.08));
     assert!((j.accepted_excess - 11.0 / 1_300.0).abs() < 1e-12, "{j:?}");
+    // Released batches are a reviewer's word, not shrunk: one released batch with 20 flagged against 12
+    // carries `R = 8 / 150`, and the level rises by `min(A, R) = A`.
+    e.released.push_back(Tally {
+        items: 150,
+        flagged: 20,
+        clean: 12.0,
+    });
+    let j = e.judge(&s, &batch(150, 12, 0.08));
+    assert!((j.released_excess - 8.0 / 150.0).abs() < 1e-12, "{j:?}");
+    assert!((j.adjustment - 11.0 / 1_300.0).abs() < 1e-12, "{j:?}");
 }
