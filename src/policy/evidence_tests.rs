@@ -352,3 +352,35 @@ fn the_accepted_excess_is_the_shrunk_mean_worked_by_hand() {
     assert!((j.released_excess - 8.0 / 150.0).abs() < 1e-12, "{j:?}");
     assert!((j.adjustment - 11.0 / 1_300.0).abs() < 1e-12, "{j:?}");
 }
+
+/// The label-fit step worked by hand, and when it does not move. The demo's east-labels week 3 read
+/// `ℓ = −118.81`, `E = −85.17`, `V = 196.96` over 300 items: `σ̄ = √(196.96/300) = 0.81026`, so
+/// `L = 33.64 / 0.81026 − 0.1 · 300 = 11.52`. A batch without a label fit (`V = 0`: the reference was
+/// cross-fitted) leaves the statistic where it was instead of dividing by zero. The record says whether
+/// the clean level was computed. Written for a mutation run's missed mutants in `judge` (the step's
+/// guard `&&` → `||` and `>` → `>=`, `/` → `*` in `σ̄`, and the `clean_level_computed` comparison).
+#[test]
+fn the_label_fit_step_is_the_formula_and_stays_put_without_a_fit() {
+    let s = PolicySettings::default();
+    let mut b = batch(300, 36, 0.078);
+    b.label_fit = crate::model::LabelFit {
+        loglik: -118.81,
+        expected: -85.17,
+        variance: 196.96,
+    };
+    let e = ItemEvidence {
+        fit_cusum: 39.4,
+        ..ItemEvidence::default()
+    };
+    let j = e.judge(&s, &b);
+    let step = 33.64 / (196.96f64 / 300.0).sqrt() - 0.1 * 300.0;
+    assert!((step - 11.52).abs() < 0.01, "{step}");
+    assert!((j.fit_step - step).abs() < 1e-9, "{j:?}");
+    assert!((j.fit_cusum - (39.4 + step)).abs() < 1e-9);
+    assert!(j.clean_level_computed);
+    let mut none = batch(300, 36, 0.0);
+    none.label_fit = crate::model::LabelFit::default();
+    let j = e.judge(&s, &none);
+    assert_eq!((j.fit_step, j.fit_cusum), (0.0, 39.4), "{j:?}");
+    assert!(!j.clean_level_computed, "clean_level_unknown was used");
+}
