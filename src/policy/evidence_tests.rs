@@ -384,3 +384,51 @@ fn the_label_fit_step_is_the_formula_and_stays_put_without_a_fit() {
     assert_eq!((j.fit_step, j.fit_cusum), (0.0, 39.4), "{j:?}");
     assert!(!j.clean_level_computed, "clean_level_unknown was used");
 }
+
+/// The vendor's window, worked by hand with `evidence_items` = 400 and 150-item batches: the oldest
+/// tallies are dropped while the rest still hold 400 items, so the window holds 150, 300, 450, 450, 450
+/// items after each of five accepted batches (3 batches from the third on), a 1,000-item batch is kept
+/// alone (the newest always stays), released batches are windowed the same way, and `items_total`
+/// counts every item ever recorded. Written for a mutation run's missed mutants in `trim` and `push`
+/// (none of the library's tests had a window long enough to trim).
+#[test]
+fn the_window_keeps_the_newest_items_up_to_the_cap() {
+    let s = PolicySettings {
+        evidence_items: 400,
+        ..PolicySettings::default()
+    };
+    let b = batch(150, 12, 0.08);
+    let mut e = ItemEvidence::default();
+    let mut held = Vec::new();
+    for _ in 0..5 {
+        e.record_accepted(&s, &b);
+        held.push(e.accepted.iter().map(|t| t.items).sum::<u64>());
+    }
+    assert_eq!(held, [150, 300, 450, 450, 450]);
+    assert_eq!(e.accepted.len(), 3);
+    assert_eq!(e.items_total, 750);
+    e.record_accepted(&s, &batch(1_000, 80, 0.08));
+    assert_eq!(e.accepted.len(), 1, "{:?}", e.accepted);
+    assert_eq!(e.items_total, 1_750);
+    for _ in 0..4 {
+        e.record_released(&s, &b);
+    }
+    assert_eq!(e.released.len(), 3);
+    assert_eq!(e.released.iter().map(|t| t.items).sum::<u64>(), 450);
+    assert_eq!(
+        e.accepted.len(),
+        3,
+        "the 1,000-item batch has left: {:?}",
+        e.accepted
+    );
+    // At exactly the cap the rest still holds "at least" the cap: the oldest goes.
+    let s = PolicySettings {
+        evidence_items: 300,
+        ..s
+    };
+    let mut e = ItemEvidence::default();
+    for _ in 0..3 {
+        e.record_accepted(&s, &b);
+    }
+    assert_eq!(e.accepted.iter().map(|t| t.items).sum::<u64>(), 300);
+}
