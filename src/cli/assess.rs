@@ -287,23 +287,9 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
             }
         }
     };
-    let label = format!(
-        "assess: scoring {} items (time budget {:.1} s)",
-        batch_y.len(),
-        settings.time_budget_ms as f64 / 1000.0
-    );
-    let assessment = super::progress::with_elapsed(&label, || {
-        model::assess(
-            settings,
-            &standardizer,
-            k,
-            trusted_in,
-            pool_in,
-            batch.features.view(),
-            &batch_y,
-        )
-    })
-    .map_err(engine_error)?;
+    let batch_in = (batch.features.view(), batch_y.as_slice());
+    let assessment =
+        score(settings, &standardizer, k, trusted_in, pool_in, batch_in).map_err(engine_error)?;
     let decision = decide(
         &cfg.policy,
         &assessment,
@@ -333,6 +319,26 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
         decision,
         flag_threshold: settings.flag_threshold,
         stories,
+    })
+}
+
+/// The engine on one batch, with the seconds spent shown on a terminal (see
+/// [`super::progress::with_elapsed`]).
+fn score(
+    settings: &ModelSettings,
+    standardizer: &Standardizer,
+    k: usize,
+    trusted: TrustedInput<'_>,
+    pool: PoolInput<'_>,
+    (x, y): (ArrayView2<'_, f64>, &[usize]),
+) -> Result<Assessment, model::ModelError> {
+    let label = format!(
+        "assess: scoring {} items (time budget {:.1} s)",
+        y.len(),
+        settings.time_budget_ms as f64 / 1000.0
+    );
+    super::progress::with_elapsed(&label, || {
+        model::assess(settings, standardizer, k, trusted, pool, x, y)
     })
 }
 
