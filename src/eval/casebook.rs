@@ -479,6 +479,7 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
                 x.view(),
             )
         });
+        let item_scores = scored.as_ref().map(|a| a.items.clone()).unwrap_or_default();
         let decision = verdict::decide(&s.config, &history, &scored, shift.as_ref(), &classes);
         let record = BatchRecord::claimed(
             format!("b{b}"),
@@ -530,6 +531,11 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
                     .map_err(|e| ModelError::Shape(e.to_string()))?;
                 summary.absorb(&s.config.model, ex.view(), &entry.labels)?;
             }
+            // Items kept out for review join the model of the items as delivered (the clean level's labels
+            // model) where the trusted-anchored model does not doubt them, as in the daemon.
+            let rows = verdict::kept_out_rows(&v.record, &ids, &item_scores);
+            let kept: Vec<usize> = rows.iter().map(|&i| given[i]).collect();
+            summary.absorb_kept_out(&s.config.model, x.select(Axis(0), &rows).view(), &kept)?;
         } else {
             r.held += 1;
             r.first_held.get_or_insert(b + 1);
@@ -601,6 +607,8 @@ fn cases(quick: bool) -> Vec<Case> {
         Case { data: Data::Wine, name: "split delivery (wine)", follows: SPLIT, batches: split(false), empty_pool: false },
         Case { data: Data::Wine, name: "interleaved small files (wine)", follows: DILUTE, batches: split(true), empty_pool: false },
         Case { data: Data::Wine, name: "repair-aware (wine)", follows: AWARE, batches: vec![(n, Attack::LeastSure(0.10)); q(10, 3)], empty_pool: false },
+        // Last, so that the cases above keep their seeds.
+        Case { data: Data::Plant, name: "drip from day one on an empty pool", follows: FLIPS, batches: drip(0), empty_pool: true },
     ]
 }
 
@@ -714,7 +722,7 @@ mod tests {
             |_| {},
         )
         .expect("runs");
-        assert_eq!(c.cases.len(), 21);
+        assert_eq!(c.cases.len(), 22);
         let by = |name: &str| {
             c.cases
                 .iter()
@@ -776,5 +784,44 @@ mod tests {
             serde_json::to_value(&one.cases[0]).unwrap(),
             serde_json::to_value(full).unwrap()
         );
+    }
+
+    /// From an empty pool, the flagged items of accepted batches wait for review, so the pool model loses
+    /// the hard-but-right items and doubts their labels more and more; the clean level follows the model of
+    /// the items as delivered instead (`PoolSummary::labels_model`). Without it, these two quick streams
+    /// (seeds 2018 and 2026, 300-item clean batches) had a batch held by the per-label rule at the 6th and
+    /// the 5th batch (measured when written). The drip of flips on an empty pool still keeps its flips out
+    /// of the pool.
+    #[test]
+    fn a_clean_stream_from_an_empty_pool_is_not_held_label_by_label() {
+        for seed in [2018, 2026] {
+            let c = run(
+                &CasebookOptions {
+                    quick: true,
+                    seed,
+                    config: Config::default(),
+                    only: Some("empty pool".into()),
+                },
+                |_| {},
+            )
+            .expect("runs");
+            assert_eq!(c.cases.len(), 2);
+            let clean = &c.cases[0];
+            assert_eq!((clean.clean_batches, clean.poison_delivered), (12, 0));
+            assert!(
+                !clean
+                    .told
+                    .iter()
+                    .any(|(code, _)| code == "flagged_items_in_class"),
+                "seed {seed}: {clean:?}"
+            );
+            assert!(clean.clean_held <= 1, "seed {seed}: {clean:?}");
+            let drip = &c.cases[1];
+            assert!(drip.name.starts_with("drip"), "{drip:?}");
+            assert!(
+                drip.poison_delivered > 0 && drip.poison_share() <= 0.10,
+                "seed {seed}: {drip:?}"
+            );
+        }
     }
 }

@@ -80,6 +80,49 @@ pub struct PoolSummary {
     /// clean level takes the right labels to follow this model (see [`PoolSummary::labels_model`]).
     #[serde(default)]
     pub w_at_fit: Option<Array2<f64>>,
+    /// The model of every item of the accepted batches *as delivered* — the pool's items plus the items
+    /// kept out of it for review — while no exact fit of an unselected pool exists (a workspace that
+    /// started without an in-house pool): the clean level's labels model then (see
+    /// [`PoolSummary::labels_model`] and [`PoolSummary::absorb_kept_out`]). Its own `delivered` is `None`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub delivered: Option<Box<PoolSummary>>,
+}
+
+/// Largest trusted-anchored doubt (`1 − p_A(given label)`, [`crate::model::ItemScore::anchored_doubt`])
+/// with which an item kept out of the pool still enters the model of the items as delivered (see
+/// [`PoolSummary::absorb_kept_out`] and [`kept_out_for_labels_model`]).
+pub const KEPT_OUT_MAX_ANCHORED_DOUBT: f64 = 0.5;
+
+/// Of an accepted batch's items kept out of the pool (`kept`, rows of the batch), those whose given label
+/// the trusted-anchored model does not doubt (`anchored_doubt < ` [`KEPT_OUT_MAX_ANCHORED_DOUBT`]: the
+/// learner fitted to the trusted items and the data gives the label at least even odds). They enter the
+/// clean level's labels model; the others do not.
+///
+/// Why a gate: the labels model sets how many flags a batch with right labels shows. Fed every kept-out
+/// item with the label the vendor gave it, it learns a vendor's caught flips, and the next batch with the
+/// same flips is expected to show them: a drip of flips from day one on an empty pool (0 % rising by 1 %
+/// per 150-item batch) was then never held in 16 batches (two seeds). The trusted-anchored model doubts
+/// flipped labels far more than the hard right ones the pool model doubts: on that drip its doubt on kept
+/// flipped items had median 0.985 (10th percentile 0.67), on kept right items median 0.37. With the gate,
+/// 8, 9 and 8 of the 16 drip batches were held (first at the 7th, 7th and 9th batch, 6–8 % flips; in an
+/// earlier draw of the stream without the labels model 11–13, first at the 3rd–6th), and 2, 0 and 1 of its 176 flips entered the pool; the
+/// clean stream of 300-item batches from an empty pool had 1, 0 and 0 of 60 batches held (5, 15 and 9
+/// without the labels model). Measured with `bench casebook --case "empty pool"`, seeds 2018, 2026, 7.
+pub fn kept_out_for_labels_model(
+    items: &[crate::model::ItemScore],
+    kept: impl IntoIterator<Item = usize>,
+) -> Vec<usize> {
+    let doubt: std::collections::HashMap<usize, f64> = items
+        .iter()
+        .map(|it| (it.index, it.anchored_doubt))
+        .collect();
+    kept.into_iter()
+        .filter(|row| {
+            doubt
+                .get(row)
+                .is_some_and(|&d| d < KEPT_OUT_MAX_ANCHORED_DOUBT)
+        })
+        .collect()
 }
 
 /// Work bound for [`PoolSummary::sharpness`]: items × `K·(p·K)²` stays under this.
@@ -227,6 +270,7 @@ impl PoolSummary {
             expansion: Cache::default(),
             sharpness_at_fit: None,
             w_at_fit: None,
+            delivered: None,
         }
     }
 
@@ -326,6 +370,9 @@ impl PoolSummary {
                 converged: true,
                 ..TrainReport::default()
             });
+        }
+        if let Some(d) = self.delivered.as_mut() {
+            d.absorb(settings, x, y)?;
         }
         let k = self.n_classes;
         let phi = self.feature_map.apply(x)?;
@@ -472,8 +519,9 @@ impl PoolSummary {
     /// (`[admission] flagged = "hold"`), so the items a pool gains by absorbing batches are *selected* —
     /// the labels the model doubts most are missing — and a pool of them looks sharper than the data are
     /// (on the plant the measured `β` climbed from 1.3 to 2.4 over 180 absorbed clean batches, and clean
-    /// batches were then held). The pool a workspace is fitted from (the in-house pool at `init`, or the
-    /// stored pool when the summary is rebuilt) is measured once, and that value is carried.
+    /// batches were then held). The pool a workspace is first fitted from (the in-house pool at `init`) is
+    /// measured once, and that value is carried, also through exact rebuilds of the stored pool, which holds
+    /// only the admitted items ([`PoolSummary::carry_labels_model`]).
     pub fn sharpness(&self) -> Option<SharpnessFit> {
         self.sharpness_at_fit.clone()
     }
@@ -485,8 +533,64 @@ impl PoolSummary {
     /// drawn from it falls while clean batches flag as many items as ever (on winequality the computed
     /// clean count fell from 41.6 to 32.0 in six absorbed clean batches, the flagged count stayed at
     /// 39–52). The model at fit is the one the measured sharpness belongs to.
+    ///
+    /// A summary that was never fitted from items (a workspace that started without an in-house pool and
+    /// grew by absorbing batches) has no such model; once items of an accepted batch are kept out for
+    /// review, it keeps one of its own: the model of every item of the accepted batches as delivered
+    /// ([`PoolSummary::absorb_kept_out`]). Without it the clean level follows the selected model: on the
+    /// plant, a clean stream of 300-item batches from an empty pool had 5, 15 and 9 of 60 batches held
+    /// (three seeds), nearly all by the per-label rule, on labels whose hard items the pool had lost
+    /// (items labelled polypropylene: 23 of 28 flagged against 7.8 expected).
     pub fn labels_model(&self) -> Option<Array1<f64>> {
-        self.w_at_fit.as_ref().map(|w| flatten_pk(w.view()))
+        self.w_at_fit
+            .as_ref()
+            .or(self.delivered.as_ref().map(|d| &d.w))
+            .map(|w| flatten_pk(w.view()))
+    }
+
+    /// Note items of an accepted batch that were kept out of the pool (held for review), with their
+    /// given labels, raw features as delivered. They never enter the pool's model (the reference that
+    /// flags items); they enter the model of the items as delivered, the clean level's labels model, which
+    /// a summary never fitted from items starts here as a copy of itself (see [`PoolSummary::labels_model`]).
+    /// A summary fitted from an unselected pool keeps the labels model of its fit and ignores them.
+    ///
+    /// What this lets in: a kept-out item whose label is wrong (a flipped label that was caught) moves
+    /// the labels model a little towards its label, so the clean level of the next batches allows a little
+    /// more for that label there; the flags themselves, the pool and the reference model are untouched.
+    pub fn absorb_kept_out(
+        &mut self,
+        settings: &ModelSettings,
+        x: ArrayView2<'_, f64>,
+        y: &[usize],
+    ) -> Result<(), ModelError> {
+        if y.is_empty() || self.w_at_fit.is_some() {
+            return Ok(());
+        }
+        if self.delivered.is_none() {
+            let mut copy = self.clone();
+            copy.delivered = None;
+            self.delivered = Some(Box::new(copy));
+        }
+        if let Some(d) = self.delivered.as_mut() {
+            d.absorb(settings, x, y)?;
+        }
+        Ok(())
+    }
+
+    /// After an exact rebuild from the stored pool: keep the labels model (and its measured sharpness)
+    /// of the summary this one replaces. The stored pool holds only the items admitted, so a fit of it is
+    /// selected (the labels the model doubted most are missing, see [`PoolSummary::sharpness`]); the
+    /// labels model of the first, unselected fit, or of the items as delivered, is carried instead.
+    /// Nothing is carried from a summary that has neither (a rebuild of a first fit keeps its own).
+    pub fn carry_labels_model(&mut self, old: &PoolSummary) {
+        if old.feature_map != self.feature_map || old.n_classes != self.n_classes {
+            return;
+        }
+        if old.w_at_fit.is_some() || old.delivered.is_some() {
+            self.w_at_fit = old.w_at_fit.clone();
+            self.sharpness_at_fit = old.sharpness_at_fit.clone();
+            self.delivered = old.delivered.clone();
+        }
     }
 
     /// Measure `β` on approximate leave-one-out probabilities of the reservoir's items, at most

@@ -668,3 +668,94 @@ fn kronecker_engine_agrees_with_the_dense_engine_on_a_small_problem() {
     let flipped: Vec<bool> = (0..200).map(|i| i < 20).collect();
     assert!(auroc(&b, &flipped) >= 0.9, "AUROC {}", auroc(&b, &flipped));
 }
+
+/// Items kept out of the pool (held for review) enter the model of the items as delivered — the clean
+/// level's labels model — and never the pool model. With the reservoir holding every item both are exact
+/// fits: the pool model of the admitted items, the labels model of admitted ∪ kept out. A summary fitted
+/// from items keeps its model at fit; after an exact rebuild from the admitted items alone (a selected
+/// pool), `carry_labels_model` keeps the labels model instead of refitting it; it survives a save.
+#[test]
+fn kept_out_items_reach_the_labels_model_and_never_the_pool_model() {
+    let settings = ModelSettings::default();
+    let k = 3;
+    let (x, y) = blobs(900, 3, k, 32);
+    let stdz = Standardizer::fit(&[x.view()]).unwrap();
+    let fm = FeatureMap::new(stdz, settings.feature_map, settings.seed).unwrap();
+    let rows = |r: std::ops::Range<usize>| (x.slice(ndarray::s![r.clone(), ..]), &y[r]);
+    // Two accepted batches of 450: the first 300 of each admitted, the last 150 kept out.
+    let mut inc = PoolSummary::empty(fm.clone(), k);
+    for b in 0..2 {
+        let (xa, ya) = rows(b * 450..b * 450 + 300);
+        inc.absorb(&settings, xa, ya).unwrap();
+        let (xk, yk) = rows(b * 450 + 300..(b + 1) * 450);
+        inc.absorb_kept_out(&settings, xk, yk).unwrap();
+    }
+    assert_eq!(inc.len(), 600, "kept-out items never join the pool");
+    let admitted: Vec<usize> = (0..900).filter(|i| i % 450 < 300).collect();
+    let xa = x.select(ndarray::Axis(0), &admitted);
+    let ya: Vec<usize> = admitted.iter().map(|&i| y[i]).collect();
+    let (pool_fit, _) = PoolSummary::fit(&settings, fm.clone(), k, xa.view(), &ya).unwrap();
+    let (all_fit, _) = PoolSummary::fit(&settings, fm.clone(), k, x.view(), &y).unwrap();
+    let scale = max_abs(&all_fit.theta());
+    assert!(max_abs(&(&inc.theta() - &pool_fit.theta())) <= 1e-5 * scale);
+    let labels = inc
+        .labels_model()
+        .expect("a labels model of the items as delivered");
+    assert!(
+        max_abs(&(&labels - &all_fit.theta())) <= 1e-5 * scale,
+        "the labels model is the fit of every delivered item"
+    );
+    assert!(
+        max_abs(&(&labels - &inc.theta())) > 1e-3 * scale,
+        "and not the pool model"
+    );
+    // A summary fitted from an unselected pool keeps its model at fit.
+    let mut fitted = pool_fit.clone();
+    let (xk, yk) = rows(300..450);
+    fitted.absorb_kept_out(&settings, xk, yk).unwrap();
+    assert_eq!(fitted.labels_model(), Some(pool_fit.theta()));
+    assert!(fitted.delivered.is_none());
+    // An exact rebuild from the admitted items carries the labels model; a save keeps it.
+    let mut rebuilt = pool_fit.clone();
+    assert_eq!(
+        rebuilt.labels_model(),
+        Some(pool_fit.theta()),
+        "refitted: selected"
+    );
+    rebuilt.carry_labels_model(&inc);
+    assert_eq!(rebuilt.labels_model(), Some(labels.clone()));
+    assert!(
+        rebuilt.sharpness().is_none(),
+        "nothing measured on a selected pool"
+    );
+    let saved: PoolSummary =
+        serde_json::from_str(&serde_json::to_string(&rebuilt).unwrap()).unwrap();
+    let back = saved.labels_model().expect("saved with the summary");
+    assert!(
+        max_abs(&(&back - &labels)) <= 1e-12,
+        "JSON keeps the model to rounding"
+    );
+}
+
+/// The gate on kept-out items, by hand: rows 0–3 kept out with trusted-anchored doubt 0.2, 0.5, 0.7 and
+/// 0.49; row 9 has no score. Only doubts below 0.5 pass.
+#[test]
+fn only_kept_out_items_the_trusted_anchored_model_does_not_doubt_reach_the_labels_model() {
+    let item = |index: usize, anchored_doubt: f64| -> crate::model::ItemScore {
+        serde_json::from_value(serde_json::json!({
+            "index": index, "label": 0, "suspicion": 0.9, "proposed_label": 1, "confidence": 0.5,
+            "repair_mass": 0.0, "repair_signal": 0.0, "learner_doubt": 0.9,
+            "flagged_at_step": null, "anchored_doubt": anchored_doubt,
+        }))
+        .unwrap()
+    };
+    let items = [
+        item(0, 0.2),
+        item(1, 0.5),
+        item(2, 0.7),
+        item(3, 0.49),
+        item(4, 0.0),
+    ];
+    let rows = crate::model::summary::kept_out_for_labels_model(&items, [0, 1, 2, 3, 9]);
+    assert_eq!(rows, vec![0, 3]);
+}

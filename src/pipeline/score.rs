@@ -131,7 +131,13 @@ pub fn load_pool(
             epoch,
             dirty: false,
         },
-        _ => rebuild_pool(store, meta, config)?,
+        Some(s) => {
+            // Another pool epoch: rebuilt exactly, the labels model carried (see `catch_up`).
+            let mut state = rebuild_pool(store, meta, config)?;
+            state.summary.carry_labels_model(&s.summary);
+            state
+        }
+        None => rebuild_pool(store, meta, config)?,
     };
     catch_up(&mut state, store, meta, config)?;
     Ok(state)
@@ -145,7 +151,9 @@ pub fn catch_up(
     config: &Config,
 ) -> Result<(), ScoringError> {
     if store.pool_epoch()? != state.epoch {
-        *state = rebuild_pool(store, meta, config)?;
+        let old = std::mem::replace(state, rebuild_pool(store, meta, config)?);
+        // The stored pool holds only the admitted items: the labels model is carried, not refitted.
+        state.summary.carry_labels_model(&old.summary);
     }
     for (seq, e) in store.pool_entries_after(state.through_seq)? {
         if !e.labels.is_empty() {
@@ -302,8 +310,10 @@ impl Worker {
                         items = fresh.summary.len(),
                         "exact pool summary refresh done"
                     );
-                    self.pool = fresh;
+                    let old = std::mem::replace(&mut self.pool, fresh);
                     self.catch_up_logged();
+                    // After the catch-up: the carried labels model has absorbed those entries already.
+                    self.pool.summary.carry_labels_model(&old.summary);
                 }
                 Ok(_) => {} // the pool changed underneath; the next refresh will do
                 Err(e) => {
@@ -582,6 +592,7 @@ impl Worker {
                 a.damage,
             );
         }
+        let item_scores = scored.as_ref().map(|a| a.items.clone()).unwrap_or_default();
         let v = verdict::scored(
             &self.config,
             record,
@@ -612,6 +623,7 @@ impl Worker {
             // when every item entered with its given label.
             let speculative = speculative.filter(|_| rec.held.is_empty());
             self.absorb_accepted(rec.pool_seq, base, speculative);
+            self.absorb_kept_out(&rec, table, labels, &item_scores);
             self.metrics
                 .stage("absorb", absorb_wait + t_absorb.elapsed());
         }
@@ -679,6 +691,35 @@ impl Worker {
         })
     }
 
+    /// Items of an accepted batch kept out of the pool join the model of the items as delivered, the
+    /// clean level's labels model, where the trusted-anchored model does not doubt them
+    /// ([`verdict::kept_out_rows`], [`PoolSummary::absorb_kept_out`]); never the pool or the reference.
+    fn absorb_kept_out(
+        &mut self,
+        rec: &BatchRecord,
+        table: &Table,
+        labels: &[usize],
+        items: &[model::ItemScore],
+    ) {
+        let rows = verdict::kept_out_rows(rec, &table.ids, items);
+        if rows.is_empty() {
+            return;
+        }
+        let y: Vec<usize> = rows.iter().map(|&i| labels[i]).collect();
+        let x = table.features.select(ndarray::Axis(0), &rows);
+        match self
+            .pool
+            .summary
+            .absorb_kept_out(&self.config.model, x.view(), &y)
+        {
+            Ok(()) => self.pool.dirty = true,
+            Err(e) => {
+                tracing::warn!(batch_id = %rec.id, error = %e, "items kept out of the pool did not reach the clean level's labels model");
+                self.metrics.error("persist", "labels_model");
+            }
+        }
+    }
+
     /// Bring the pool summary up to date after this worker accepted a batch (its entry has sequence
     /// `seq`), before the next batch is scored.
     ///
@@ -717,215 +758,5 @@ impl Worker {
 }
 
 #[cfg(test)]
-mod tests {
-    use super::*;
-    use crate::data::{Classes, Format, TableOptions};
-    use crate::scenario::{self, Plant};
-    use crate::store::{BatchState, Outcome, PoolChange, PoolEntry};
-
-    /// A workspace of the recycling plant with one vendor, and a worker on it (no threads started).
-    fn worker(dir: &std::path::Path) -> (Worker, Plant) {
-        let plant = Plant::new(11);
-        let (tx, ty) = plant.sample_per_class(10, 12);
-        let mut csv = Vec::new();
-        crate::data::write_csv(
-            &mut csv,
-            ("id", "label"),
-            &scenario::item_ids("t", ty.len()),
-            &scenario::label_names(&ty),
-            &scenario::feature_names(),
-            tx.view(),
-        )
-        .unwrap();
-        let trusted = dir.join("trusted.csv");
-        std::fs::write(&trusted, csv).unwrap();
-        let root = dir.join("ws");
-        crate::workspace::create_workspace(&root, &trusted, &["v".to_string()], "test").unwrap();
-        let ws = Workspace::new(&root);
-        let config = Config::from_workspace(&root).unwrap();
-        crate::workspace::prepare_folders(&ws, &config).unwrap();
-        let store = Store::open_workspace(&root, &config.store).unwrap();
-        let meta = store.workspace_meta().unwrap();
-        let pool = load_pool(&store, &meta, &config).unwrap();
-        let trusted = TrustedArrays::load(&store, &meta).unwrap();
-        let metrics = crate::metrics::install(&config.vendors);
-        let w = Worker {
-            ws,
-            config: Arc::new(config),
-            store,
-            meta,
-            metrics,
-            observer: None,
-            trusted,
-            pool,
-            shared: Arc::default(),
-            reread: None,
-        };
-        (w, plant)
-    }
-
-    /// Claim a clean batch of the plant and hand it to the worker as the ingest thread would.
-    fn submit(w: &mut Worker, plant: &Plant, i: u64, filer: &SyncSender<Filing>) {
-        let (x, y) = plant.sample(150, 100 + i);
-        let mut bytes = Vec::new();
-        crate::data::write_csv(
-            &mut bytes,
-            ("id", "label"),
-            &scenario::item_ids(&format!("b{i}-"), y.len()),
-            &scenario::label_names(&y),
-            &scenario::feature_names(),
-            x.view(),
-        )
-        .unwrap();
-        let table = crate::data::parse_table(
-            &bytes,
-            Format::Csv,
-            "b.csv",
-            &TableOptions::default(),
-            Some(&w.meta.features),
-        )
-        .unwrap();
-        let labels = table
-            .class_indices(&Classes::from_labels(&w.meta.classes))
-            .unwrap();
-        let id = w.store.new_batch_id().unwrap();
-        let record =
-            BatchRecord::claimed(id.clone(), "v", format!("b{i}.csv"), format!("{id}.csv"));
-        w.store.record_claim(&record).unwrap();
-        let input = JobInput::Parsed {
-            bytes,
-            sha256: format!("{i:064x}"),
-            table,
-            labels,
-        };
-        w.process(
-            Job {
-                record,
-                input,
-                stamp: None,
-            },
-            filer,
-        )
-        .unwrap();
-    }
-
-    /// The store path: an empty summary that absorbs every stored pool entry in sequence order.
-    fn from_store(w: &Worker) -> PoolState {
-        let mut fresh = PoolState {
-            summary: PoolSummary::empty(w.meta.feature_map.clone(), w.meta.classes.len()),
-            through_seq: 0,
-            epoch: w.store.pool_epoch().unwrap(),
-            dirty: false,
-        };
-        catch_up(&mut fresh, &w.store, &w.meta, &w.config).unwrap();
-        fresh
-    }
-
-    fn accepted(rx: &Receiver<Filing>) -> usize {
-        rx.try_iter()
-            .filter(|f| f.record.outcome == Some(Outcome::Accepted))
-            .count()
-    }
-
-    /// An adopted speculative absorb is bit-for-bit the summary that absorbing the stored pool entries
-    /// gives (the ordering guarantee: each batch is scored against every batch accepted before it).
-    /// Nothing flagged (a flag threshold no suspicion reaches here) and nothing unsure, so every accepted
-    /// batch enters the pool as delivered and its speculative copy may stand in for the stored entry.
-    fn nothing_flagged(w: &mut Worker) {
-        let mut c = (*w.config).clone();
-        c.model.flag_threshold = 1.0;
-        c.admission.unsure_share = 0.0;
-        w.config = Arc::new(c);
-    }
-
-    #[test]
-    fn adopted_speculative_absorb_equals_absorbing_the_stored_pool() {
-        let tmp = tempfile::tempdir().unwrap();
-        let (mut w, plant) = worker(tmp.path());
-        nothing_flagged(&mut w);
-        let (ftx, frx) = std::sync::mpsc::sync_channel(16);
-        for i in 0..3 {
-            submit(&mut w, &plant, i, &ftx);
-        }
-        let n = accepted(&frx);
-        assert!(n >= 2, "clean batches of the plant are accepted ({n} of 3)");
-        assert_eq!(
-            w.shared.speculative_absorbs.load(Ordering::SeqCst),
-            n as u64
-        );
-        let fresh = from_store(&w);
-        assert_eq!(w.pool.through_seq, fresh.through_seq);
-        assert_eq!(w.pool.summary.len(), w.store.pool_items().unwrap());
-        assert!(w.pool.summary == fresh.summary, "the adopted copy differs");
-    }
-
-    /// With the default admission (flagged items held), an accepted batch with flagged items enters the
-    /// pool without them, so its speculative copy (the whole batch) is never adopted: the summary follows
-    /// the stored pool exactly.
-    #[test]
-    fn held_items_never_reach_the_summary_through_the_speculative_copy() {
-        let tmp = tempfile::tempdir().unwrap();
-        let (mut w, plant) = worker(tmp.path());
-        let (ftx, frx) = std::sync::mpsc::sync_channel(16);
-        for i in 0..3 {
-            submit(&mut w, &plant, i, &ftx);
-        }
-        let filed: Vec<Filing> = frx.try_iter().collect();
-        let with_held = filed
-            .iter()
-            .filter(|f| f.record.outcome == Some(Outcome::Accepted) && !f.record.held.is_empty())
-            .count();
-        assert!(with_held >= 1, "an accepted plant batch has flagged items");
-        let adopted = w.shared.speculative_absorbs.load(Ordering::SeqCst) as usize;
-        let accepted = filed
-            .iter()
-            .filter(|f| f.record.outcome == Some(Outcome::Accepted))
-            .count();
-        assert_eq!(adopted, accepted - with_held);
-        let fresh = from_store(&w);
-        assert_eq!(w.pool.summary.len(), w.store.pool_items().unwrap());
-        assert!(w.pool.summary == fresh.summary);
-    }
-
-    /// A pool entry committed by someone else while a batch is scored (a reviewer's release) makes the
-    /// worker fall back to absorbing from the store, in sequence order, instead of adopting its copy.
-    #[test]
-    fn a_concurrent_pool_change_falls_back_to_the_store_path() {
-        let tmp = tempfile::tempdir().unwrap();
-        let (mut w, plant) = worker(tmp.path());
-        nothing_flagged(&mut w);
-        let (ftx, frx) = std::sync::mpsc::sync_channel(16);
-        submit(&mut w, &plant, 0, &ftx);
-        assert_eq!(accepted(&frx), 1);
-        // A release goes through the store without telling the worker (no `pool_changed`).
-        let id = w.store.new_batch_id().unwrap();
-        let rec = BatchRecord::claimed(id.clone(), "v", "r.csv".into(), format!("{id}.csv"));
-        w.store.record_claim(&rec).unwrap();
-        let (x, y) = plant.sample(80, 999);
-        let entry = PoolEntry {
-            batch_id: id.clone(),
-            vendor: "v".into(),
-            ids: scenario::item_ids("r", y.len()),
-            labels: y,
-            x: x.iter().copied().collect(),
-            n_features: x.ncols(),
-        };
-        w.store
-            .transition(
-                &id,
-                &[BatchState::Claimed],
-                BatchState::Released,
-                PoolChange::Add(entry),
-                vec![],
-                |_| {},
-            )
-            .unwrap();
-        submit(&mut w, &plant, 1, &ftx);
-        assert_eq!(accepted(&frx), 1);
-        assert_eq!(w.shared.speculative_absorbs.load(Ordering::SeqCst), 1);
-        let fresh = from_store(&w);
-        assert_eq!(w.pool.through_seq, fresh.through_seq);
-        assert_eq!(w.pool.summary.len(), 150 + 80 + 150);
-        assert!(w.pool.summary == fresh.summary, "fallback differs");
-    }
-}
+#[path = "score_tests.rs"]
+mod tests;

@@ -152,6 +152,30 @@ pub struct ScoredBatch<'a> {
     pub trusted_ids: &'a [String],
 }
 
+/// Rows of an accepted batch's items that were kept out of the pool (held for review or dropped, not
+/// entered under the proposed label) and may join the clean level's labels model: those whose given label
+/// the trusted-anchored model does not doubt (see [`crate::model::summary::kept_out_for_labels_model`]).
+/// `ids` are the batch's item ids in row order, `items` the engine's item scores.
+pub fn kept_out_rows(
+    record: &BatchRecord,
+    ids: &[String],
+    items: &[crate::model::ItemScore],
+) -> Vec<usize> {
+    let row_of: std::collections::HashMap<&str, usize> = ids
+        .iter()
+        .enumerate()
+        .map(|(i, id)| (id.as_str(), i))
+        .collect();
+    crate::model::summary::kept_out_for_labels_model(
+        items,
+        record
+            .held
+            .iter()
+            .filter(|h| h.state != HeldState::AdmittedProposed)
+            .filter_map(|h| row_of.get(h.id.as_str()).copied()),
+    )
+}
+
 /// The verdict of a scored batch under `decision`; `history` is the vendor's history the decision was
 /// made against.
 pub fn scored(

@@ -435,8 +435,9 @@ fn damage_or_unknown(ctx: &Ctx<'_>, damage: f64, deadline: Instant) -> (f64, Vec
 
 /// What a batch carrying the right labels would flag (`Assessment::expected_flagged_share`, its
 /// standard deviation and the per-label counts), each item flagged by the fusion's rule; the right labels
-/// are taken to follow the pool model as fitted from stored items (`PoolSummary::labels_model`; `p_ref`
-/// while the pool is not the reference or was never fitted from items), sharpened by the measured
+/// are taken to follow the pool's labels model (`PoolSummary::labels_model`: the pool model as fitted from
+/// unselected stored items, or the model of the items of accepted batches as delivered for a pool that was
+/// never fitted from items; `p_ref` while the pool is not the reference or has neither), sharpened by the measured
 /// sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on; and each item's
 /// [`LabelFit`] term against the same distribution (set on `items`, in batch order).
 #[allow(clippy::too_many_arguments)]

@@ -250,8 +250,9 @@ pub struct Assessment {
     /// Trusted-set size and pool size used.
     pub sizes: Sizes,
     /// The flagged share the batch would have if every item's label were drawn from its calibrated
-    /// label distribution `p̃` — the pool model as fitted from stored items (`PoolSummary::labels_model`;
-    /// `p_ref` while the pool is not the reference), sharpened by [`Assessment::reference_sharpness`]
+    /// label distribution `p̃` — the pool's labels model (`PoolSummary::labels_model`: as fitted from
+    /// unselected stored items, or of the accepted items as delivered; `p_ref` while the pool is not the
+    /// reference or has neither), sharpened by [`Assessment::reference_sharpness`]
     /// when the clean level is calibrated — and flagged by the fusion's rule with the repair's own share
     /// taken as 0 (a batch carrying the right labels asks the repair to move nothing):
     /// `m₀ = (1/n) Σ_i q_i`, `q_i = Σ_c p̃_ic · 1[(w_ic − b)⁺ (1 − p_A,ic) + (1 − w_ic)(1 − p_ref,ic) ≥ τ]`,
