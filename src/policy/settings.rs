@@ -135,7 +135,8 @@ pub struct PolicySettings {
     /// (`labels_unlikely`; see `policy::evidence`). Default 0.1.
     pub fit_drift_shift: f64,
     /// Decision interval of the label-fit CUSUM, in item standard deviations. Default 40 (in-control run
-    /// length about 190,000 items by Siegmund's approximation; see `policy::evidence`).
+    /// length about 17,000 batches of 30–150 items, or 188,000 one-item files, by Siegmund's approximation;
+    /// see `policy::evidence`).
     pub fit_cusum_h: f64,
     /// Lowest level a vendor is judged against (keeps the likelihood ratio finite). Fraction; default 0.005.
     pub item_level_floor: f64,
