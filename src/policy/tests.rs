@@ -652,3 +652,249 @@ fn median_and_modified_z_with_distinct_middle_values_and_a_mad_of_two() {
     assert_relative_eq!(m[4], 31.70150, epsilon = 1e-5);
     assert_relative_eq!(m[0], -1.3490, epsilon = 1e-4);
 }
+
+/// Whether `decide_batch` gives this reason for these signals.
+fn fires(s: &PolicySettings, h: &VendorHistory, sig: &BatchSignals, code: ReasonCode) -> bool {
+    codes(&decide_batch(s, h, sig)).contains(&code)
+}
+
+/// Every limit is a strict "exceeds": a signal exactly at its limit does not fire the rule, the next
+/// representable value above it does (each pair checks both). Written for a mutation run's twelve missed
+/// mutants (`>` → `>=` at the ceilings, the cold-start limits, the weak-model allowances and the baseline
+/// rules); the other limits are raised out of the way so that only the rule under test can fire.
+#[test]
+fn a_signal_exactly_at_its_limit_does_not_fire_and_just_above_does() {
+    let up = |x: f64| f64::from_bits(x.to_bits() + 1);
+    let cold = VendorHistory::default();
+    let wide = PolicySettings {
+        cold_start_max_repair_cost: 0.5,
+        cold_start_max_damage_nats: 0.5,
+        cold_start_max_flagged_share: 0.5,
+        cold_start_max_flagged_share_small_pool: 0.5,
+        judge_labels: false,
+        ..batch_rules()
+    };
+    let damage = |d: f64| BatchSignals {
+        damage: d,
+        ..cost_only(0.0)
+    };
+    // (settings, signals at the limit, the same just above, the rule)
+    let cases: Vec<(PolicySettings, BatchSignals, BatchSignals, ReasonCode)> = vec![
+        (
+            wide.clone(),
+            cost_only(0.2),
+            cost_only(up(0.2)),
+            ReasonCode::RepairCostCeiling,
+        ),
+        (
+            wide.clone(),
+            damage(0.25),
+            damage(up(0.25)),
+            ReasonCode::DamageCeiling,
+        ),
+        (
+            wide.clone(),
+            share(0.35, 1000),
+            share(up(0.35), 1000),
+            ReasonCode::FlaggedShareCeiling,
+        ),
+        (
+            batch_rules(),
+            cost_only(0.05),
+            cost_only(up(0.05)),
+            ReasonCode::ColdStartRepairCost,
+        ),
+        (
+            batch_rules(),
+            damage(0.05),
+            damage(up(0.05)),
+            ReasonCode::ColdStartDamage,
+        ),
+        (
+            batch_rules(),
+            share(0.10, 1000),
+            share(up(0.10), 1000),
+            ReasonCode::ColdStartFlaggedShare,
+        ),
+    ];
+    for (s, at, above, code) in &cases {
+        assert!(!fires(s, &cold, at, *code), "{code:?} fired at its limit");
+        assert!(
+            fires(s, &cold, above, *code),
+            "{code:?} did not fire above it"
+        );
+    }
+    // Where the learner separates the classes poorly (labels that follow the reference model would
+    // flag 30 % of the batch), the cold-start limits also ask to clear what such labels give (here with
+    // no spread, so exactly `E`): damage 0.1 nats against an expected 0.1, a share 0.3 against 0.3.
+    let weak = |sig: BatchSignals| BatchSignals {
+        expected_flagged_share: 0.3,
+        expected_damage: 0.1,
+        ..sig
+    };
+    let s = batch_rules();
+    for (at, above, code) in [
+        (damage(0.1), damage(up(0.1)), ReasonCode::ColdStartDamage),
+        (
+            share(0.3, 1000),
+            share(up(0.3), 1000),
+            ReasonCode::ColdStartFlaggedShare,
+        ),
+    ] {
+        assert!(!fires(&s, &cold, &weak(at), code), "{code:?} fired at E");
+        assert!(
+            fires(&s, &cold, &weak(above), code),
+            "{code:?} did not fire above E"
+        );
+    }
+    // Against a baseline: the modified z-score and the CUSUM, each at a limit set to the batch's own
+    // value (and the other rule's limit out of the way).
+    let h = history(&[0.01, 0.02, 0.03, 0.02, 0.01, 0.02, 0.03, 0.02, 0.02]);
+    let b = Baseline::compute(&s, &h, 0.06);
+    assert!(
+        !b.cold_start && b.modified_z > 0.0 && b.cusum > 0.0,
+        "{b:?}"
+    );
+    let outlier = |limit: f64| PolicySettings {
+        modified_z_limit: limit,
+        cusum_h: 1e9,
+        ..batch_rules()
+    };
+    let drift = |limit: f64| PolicySettings {
+        modified_z_limit: 1e9,
+        cusum_h: limit,
+        ..batch_rules()
+    };
+    let sig = cost_only(0.06);
+    let below = |x: f64| f64::from_bits(x.to_bits() - 1);
+    assert!(!fires(
+        &outlier(b.modified_z),
+        &h,
+        &sig,
+        ReasonCode::RepairCostOutlier
+    ));
+    assert!(fires(
+        &outlier(below(b.modified_z)),
+        &h,
+        &sig,
+        ReasonCode::RepairCostOutlier
+    ));
+    assert!(!fires(
+        &drift(b.cusum),
+        &h,
+        &sig,
+        ReasonCode::RepairCostDrift
+    ));
+    assert!(fires(
+        &drift(below(b.cusum)),
+        &h,
+        &sig,
+        ReasonCode::RepairCostDrift
+    ));
+    // The flagged share's baseline likewise.
+    let fh = share_history(&[0.05, 0.06, 0.07, 0.06, 0.05, 0.06, 0.07, 0.06, 0.06]);
+    let fb = Baseline::flagged_share(&s, &fh, 0.12, 1000);
+    assert!(
+        !fb.cold_start && fb.modified_z > 0.0 && fb.cusum > 0.0,
+        "{fb:?}"
+    );
+    let sig = share(0.12, 1000);
+    assert!(!fires(
+        &outlier(fb.modified_z),
+        &fh,
+        &sig,
+        ReasonCode::FlaggedShareOutlier
+    ));
+    assert!(fires(
+        &outlier(below(fb.modified_z)),
+        &fh,
+        &sig,
+        ReasonCode::FlaggedShareOutlier
+    ));
+    assert!(!fires(
+        &drift(fb.cusum),
+        &fh,
+        &sig,
+        ReasonCode::FlaggedShareDrift
+    ));
+    assert!(fires(
+        &drift(below(fb.cusum)),
+        &fh,
+        &sig,
+        ReasonCode::FlaggedShareDrift
+    ));
+}
+
+/// A batch whose items lie beyond the trusted set's reach is told so (`items_unlike_pool`, a finding for
+/// operations), and its batch-level scores, which mix in those items, are not judged: the repair cost that
+/// holds the same batch at the ceiling without the shift does not hold it with the shift. Written for a
+/// mutation run's missed mutants (`shift_rule` removed; `&&` → `||` in the guard that skips the batch
+/// scores, which then skipped them for every batch).
+#[test]
+fn items_unlike_the_pool_are_told_apart_and_their_batch_scores_are_not_judged() {
+    let s = PolicySettings::default();
+    let h = VendorHistory::default();
+    let base = BatchSignals {
+        clean_flagged_share: 0.07,
+        ..cost_only(0.3)
+    };
+    assert!(!base.unlike_pool(&s).0);
+    let d = decide_batch(&s, &h, &base);
+    assert!(codes(&d).contains(&ReasonCode::RepairCostCeiling), "{d:?}");
+    assert!(!codes(&d).contains(&ReasonCode::ItemsUnlikePool));
+    // 400 of 1,000 items beyond the reach where a batch like the pool has 1 % there.
+    let shifted = BatchSignals {
+        unlike_items: 400,
+        unlike_tail: 0.01,
+        ..base
+    };
+    assert!(shifted.unlike_pool(&s).0);
+    let d = decide_batch(&s, &h, &shifted);
+    let c = codes(&d);
+    assert!(c.contains(&ReasonCode::ItemsUnlikePool), "{d:?}");
+    assert!(!c.contains(&ReasonCode::RepairCostCeiling), "{d:?}");
+    assert!(!c.contains(&ReasonCode::ColdStartRepairCost), "{d:?}");
+}
+
+/// `judge_labels = false` switches the per-label test off: a batch whose paper items are flagged 14 of
+/// 77 against 3 expected is held by it when on, and neither tested nor held when off. Written for a
+/// mutation run's missed mutant (`&&` → `||` in its guard, which tested the labels whatever the setting).
+#[test]
+fn the_per_label_test_runs_only_when_asked() {
+    let labels = vec![
+        classes::LabelFlags {
+            class: 0,
+            name: "cardboard".into(),
+            items: 123,
+            flagged: 9,
+            expected: 9.0,
+        },
+        classes::LabelFlags {
+            class: 1,
+            name: "paper".into(),
+            items: 77,
+            flagged: 14,
+            expected: 3.0,
+        },
+    ];
+    let sig = BatchSignals {
+        flagged_share: 23.0 / 200.0,
+        items: 200,
+        clean_flagged_share: 12.0 / 200.0,
+        labels,
+        ..share(23.0 / 200.0, 200)
+    };
+    let h = VendorHistory::default();
+    let on = decide_batch(&PolicySettings::default(), &h, &sig);
+    assert!(
+        codes(&on).contains(&ReasonCode::FlaggedItemsInClass),
+        "{on:?}"
+    );
+    let off = PolicySettings {
+        judge_labels: false,
+        ..PolicySettings::default()
+    };
+    let d = decide_batch(&off, &h, &sig);
+    assert!(d.labels.is_empty(), "{:?}", d.labels);
+    assert!(!codes(&d).contains(&ReasonCode::FlaggedItemsInClass));
+}
