@@ -44,7 +44,8 @@ pub struct Reach {
     factor: Cholesky,
     /// The squared-distance threshold `t`.
     pub threshold: f64,
-    /// The share `τ` of the reference sample beyond `t` (at least `1 − unlike_quantile`).
+    /// `τ = 1 − unlike_quantile` (at least `1e-6`): the share of the reference sample beyond `t` is at
+    /// most this (see [`Reach::fit`]).
     pub tail: f64,
     /// Items in the reference sample.
     pub reference_items: usize,
@@ -88,8 +89,11 @@ impl Reach {
         let q = settings.unlike_quantile.clamp(0.5, 1.0);
         let idx = ((q * m as f64).ceil() as usize).clamp(1, m) - 1;
         reach.threshold = d[idx].max(chi2_quantile_0999(p));
-        let beyond = d.iter().filter(|&&v| v > reach.threshold).count() as f64;
-        reach.tail = (beyond / m as f64).max(1.0 - q).max(1e-6);
+        // The share of the reference beyond the threshold is at most `1 − q`: the threshold is at least
+        // the reference's own `q` point, `d[idx]` with `idx + 1 = ⌈q m⌉`, and only the `m − ⌈q m⌉ ≤
+        // (1 − q) m` items above that can lie beyond it. So the tail is `1 − q` (a mutation run found the
+        // count of those items could never change it).
+        reach.tail = (1.0 - q).max(1e-6);
         Some(reach)
     }
 
@@ -222,5 +226,102 @@ mod tests {
         let mut bad = Array2::<f64>::zeros((5, 2));
         bad[[0, 0]] = f64::NAN;
         assert!(Reach::fit(&s, bad.view()).is_none());
+    }
+
+    /// `Reach::fit` refuses what cannot measure a reach, as documented: one item, no feature, a
+    /// non-finite value; two items are enough (the ridge keeps the covariance positive definite). Written
+    /// for a mutation run's missed mutants in its guard.
+    #[test]
+    fn a_reach_needs_two_items_some_features_and_finite_values() {
+        let s = PolicySettings::default();
+        let two = ndarray::array![[0.0, 1.0], [1.0, 0.0]];
+        assert!(Reach::fit(&s, two.view()).is_some());
+        assert!(Reach::fit(&s, two.slice(ndarray::s![..1, ..])).is_none());
+        assert!(Reach::fit(&s, Array2::<f64>::zeros((5, 0)).view()).is_none());
+        let mut bad = ndarray::array![[0.0, 1.0], [1.0, 0.0], [0.5, 0.5]];
+        bad[[2, 1]] = f64::NAN;
+        assert!(Reach::fit(&s, bad.view()).is_none());
+        bad[[2, 1]] = f64::INFINITY;
+        assert!(Reach::fit(&s, bad.view()).is_none());
+    }
+
+    /// `Reach::fit` worked by hand on two items of one feature, 1 and 3: mean 2, sample variance
+    /// `((−1)² + 1²)/(2 − 1) = 2`, plus the ridge 0.1, so the squared distance of 5 is `3²/2.1` and of each
+    /// reference item `1/2.1`. Neither reference item lies beyond the threshold (at least the chi-squared
+    /// 0.999 point for one degree of freedom, 10.83 in the tables), so the tail is its floor
+    /// `1 − unlike_quantile` = 0.01. Written for a mutation run's missed mutants in the centring, the
+    /// `m − 1` divisor and the tail's floor.
+    #[test]
+    fn a_reach_is_the_ridged_sample_covariance_worked_by_hand() {
+        let s = PolicySettings::default();
+        assert_eq!((s.unlike_ridge, s.unlike_quantile), (0.1, 0.99));
+        let r = Reach::fit(&s, ndarray::array![[1.0], [3.0]].view()).unwrap();
+        let d = r.distances(ndarray::array![[5.0], [1.0], [3.0]].view());
+        for (got, want) in d.iter().zip([9.0 / 2.1, 1.0 / 2.1, 1.0 / 2.1]) {
+            assert!((got - want).abs() < 1e-12, "{d:?}");
+        }
+        assert!(r.threshold > 10.0 && r.threshold < 11.5, "{}", r.threshold);
+        assert!((r.tail - 0.01).abs() < 1e-12, "{}", r.tail);
+        assert_eq!(r.reference_items, 2);
+    }
+
+    /// The threshold is the `unlike_quantile` point of the reference's own distances when that lies above
+    /// the chi-squared floor: 19 items at 0 and one at 100 (mean 5, sample variance
+    /// `(19·5² + 95²)/19 = 500`, plus the ridge), the 0.99 point is the largest distance, `95²/500.1`
+    /// (18.05 > 10.83), and nothing lies beyond it.
+    #[test]
+    fn the_threshold_is_the_reference_quantile_above_the_chi_squared_floor() {
+        let s = PolicySettings::default();
+        let mut x = Array2::<f64>::zeros((20, 1));
+        x[[19, 0]] = 100.0;
+        let r = Reach::fit(&s, x.view()).unwrap();
+        let want = 95.0f64.powi(2) / 500.1;
+        assert!(
+            (r.threshold - want).abs() < 1e-9,
+            "{} vs {want}",
+            r.threshold
+        );
+        assert!(r.check(x.view()).beyond.iter().all(|b| !b));
+        assert!((r.tail - 0.01).abs() < 1e-12);
+    }
+
+    /// The reference sample: the trusted rows, then the reservoir's rows cut to the first `d` columns (its
+    /// mapped features start with the standardised ones; the intercept and any further map columns are
+    /// left out); a reservoir narrower than the trusted features (none yet) adds nothing. Written for a
+    /// mutation run's missed mutants: no test called it directly.
+    #[test]
+    fn the_reference_sample_stacks_the_trusted_items_on_the_reservoirs_first_columns() {
+        let trusted = ndarray::array![[1.0, 2.0], [3.0, 4.0]];
+        let reservoir = ndarray::array![[5.0, 6.0, 1.0], [7.0, 8.0, 1.0], [9.0, 10.0, 1.0]];
+        let both = reference_sample(trusted.view(), reservoir.view());
+        assert_eq!(
+            both,
+            ndarray::array![[1.0, 2.0], [3.0, 4.0], [5.0, 6.0], [7.0, 8.0], [9.0, 10.0]]
+        );
+        // Exactly as wide as the trusted features: every row, every column.
+        let exact = reference_sample(trusted.view(), reservoir.slice(ndarray::s![.., ..2]));
+        assert_eq!(exact.nrows(), 5);
+        let none = reference_sample(trusted.view(), Array2::<f64>::zeros((0, 3)).view());
+        assert_eq!(none, trusted);
+        let narrow = reference_sample(trusted.view(), Array2::<f64>::ones((4, 1)).view());
+        assert_eq!(narrow, trusted);
+    }
+
+    /// `unlike_pool` worked by hand: nothing to judge without items or without items beyond reach; a
+    /// share under `unlike_min_share` (0.25) is not unlike the pool however small its binomial tail (200
+    /// of 1,000 where the pool has 1 %); 300 of 1,000 is. Written for a mutation run's missed mutants
+    /// (the guard, the share, the conjunction).
+    #[test]
+    fn unlike_pool_needs_both_the_share_and_the_tail() {
+        let s = PolicySettings::default();
+        assert_eq!(unlike_pool(&s, 0, 5, 0.01), (false, 1.0));
+        assert_eq!(unlike_pool(&s, 100, 0, 0.01), (false, 1.0));
+        let (unlike, p) = unlike_pool(&s, 1_000, 200, 0.01);
+        assert!(!unlike && p < s.unlike_alpha, "{p}");
+        let (unlike, p) = unlike_pool(&s, 1_000, 300, 0.01);
+        assert!(unlike && p < s.unlike_alpha, "{p}");
+        // Many items beyond reach where the pool itself has many there: a share, but no surprise.
+        let (unlike, p) = unlike_pool(&s, 1_000, 300, 0.3);
+        assert!(!unlike && p > s.unlike_alpha, "{p}");
     }
 }
