@@ -747,8 +747,14 @@ fn a_signal_exactly_at_its_limit_does_not_fire_and_just_above_does() {
             "{code:?} did not fire above E"
         );
     }
-    // Against a baseline: the modified z-score and the CUSUM, each at a limit set to the batch's own
-    // value (and the other rule's limit out of the way).
+}
+
+/// The baseline rules at their limits, as above: the modified z-score and the CUSUM of the repair cost
+/// and of the flagged share, each at a limit set to the batch's own value (the other rule's limit out of
+/// the way), then at the next representable value below it.
+#[test]
+fn a_baseline_rule_exactly_at_its_limit_does_not_fire_and_just_below_does() {
+    let s = batch_rules();
     let h = history(&[0.01, 0.02, 0.03, 0.02, 0.01, 0.02, 0.03, 0.02, 0.02]);
     let b = Baseline::compute(&s, &h, 0.06);
     assert!(
