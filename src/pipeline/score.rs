@@ -715,7 +715,7 @@ impl Worker {
             Ok(()) => self.pool.dirty = true,
             Err(e) => {
                 tracing::warn!(batch_id = %rec.id, error = %e, "items kept out of the pool did not reach the clean level's labels model");
-                self.metrics.error("persist", "labels_model");
+                self.metrics.error("persist", "pool_update");
             }
         }
     }
