@@ -850,7 +850,7 @@ impl PoolSummary {
 /// The pool's own fit above the dense threshold: truncated Newton ([`super::truncated`]) preconditioned by
 /// the Kronecker factors of the data Hessian at the start (`θ = 0`: every item has the uniform class
 /// curvature there, so the factors are exact at the start and a fair approximation along the way),
-/// damped by the ridge `λ`.
+/// plus the learner's ridge (`λ`, and `INTERCEPT_RIDGE` on the intercepts: [`KronFactors::ridged_inverse`]).
 fn fit_kronecker(
     settings: &ModelSettings,
     obj: &Objective<'_>,
@@ -859,8 +859,8 @@ fn fit_kronecker(
 ) -> (Array1<f64>, TrainReport) {
     let prob = super::learner::predict_proba(obj.phi, &init, obj.classes());
     let factors = KronFactors::from_data(obj.phi, prob.view(), obj.weight, obj.norm);
-    let l2 = settings.l2;
-    let pre = move |r: &Array1<f64>| factors.solve_damped(1.0, l2, r);
+    let inverse = factors.ridged_inverse(1.0, settings.l2, super::learner::INTERCEPT_RIDGE);
+    let pre = move |r: &Array1<f64>| inverse.apply(r);
     let (theta, report, _) = super::truncated::train_newton_cg(
         obj,
         init,

@@ -4,9 +4,9 @@
 //! Each outer step solves `H(θ) d = −∇L(θ)` only to a relative residual
 //! `η = min(½, √‖∇L‖)` (the forcing sequence of Eisenstat & Walker, "Choosing the forcing terms in an
 //! inexact Newton method", SIAM J. Sci. Comput. 1996, which keeps Newton's superlinear convergence), with
-//! `H(θ) v` from [`Objective::hvp`] and a preconditioner `M⁻¹ ≈ H⁻¹` — with a pool summary, the damped
-//! Kronecker-factored inverse `(s B ⊗ A + λ I)⁻¹` of the pool's curvature ([`super::kron`]), which is
-//! nearly the whole Hessian when the pool outweighs the batch. An Armijo backtracking line search makes
+//! `H(θ) v` from [`Objective::hvp`] and a preconditioner `M⁻¹ ≈ H⁻¹` — with a pool summary, the
+//! Kronecker-factored inverse `(s B ⊗ A + D)⁻¹` of the pool's curvature plus the learner's ridge `D`
+//! ([`super::kron`]), nearly the whole Hessian when the pool outweighs the batch. An Armijo backtracking line search makes
 //! every step descend (Nocedal & Wright, *Numerical Optimization*, 2006, §7.1, "Newton–CG").
 
 use std::time::Instant;
@@ -16,13 +16,17 @@ use ndarray::Array1;
 use super::learner::{armijo_step, Objective, TrainReport};
 use super::linalg::conjugate_gradient_with;
 
-/// The preconditioner of [`train_newton_cg`] for an objective: the damped inverse of its prior's
-/// Kronecker factors, `(a B ⊗ A + λ I)⁻¹` (`a` the prior's weight), or the identity when the prior has none.
+/// The preconditioner of [`train_newton_cg`] for an objective: the exact inverse of its prior's
+/// Kronecker-factored curvature plus the learner's ridge, `(a B ⊗ A + D)⁻¹` (`a` the prior's weight, `D`
+/// the ridge `λ` with the intercepts' `INTERCEPT_RIDGE`; [`super::kron::RidgedInverse`]), or the identity
+/// when the prior has none. Built once per objective: the product costs two `K × p` by `p × p` products.
 pub fn kron_preconditioner<'a>(obj: &Objective<'a>) -> impl Fn(&Array1<f64>) -> Array1<f64> + 'a {
-    let kron = obj.prior.and_then(|q| q.kron.map(|f| (f, q.scale)));
-    let mu = obj.l2;
-    move |r: &Array1<f64>| match kron {
-        Some((f, scale)) => f.solve_damped(scale, mu, r),
+    let inverse = obj.prior.and_then(|q| {
+        q.kron
+            .map(|f| f.ridged_inverse(q.scale, obj.l2, super::learner::INTERCEPT_RIDGE))
+    });
+    move |r: &Array1<f64>| match &inverse {
+        Some(inv) => inv.apply(r),
         None => r.clone(),
     }
 }

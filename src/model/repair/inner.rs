@@ -160,7 +160,8 @@ impl Ctx<'_> {
                 let obj = self.inner.objective(&y_all);
                 let res = if obj.prior.is_some_and(|q| q.kron.is_some()) {
                     // Above the dense threshold: preconditioned by the pool summary's Kronecker factors,
-                    // `(a B ⊗ A + λ I)⁻¹`, nearly `H⁻¹` when the pool outweighs the batch.
+                    // `(a B ⊗ A + D)⁻¹` with the learner's ridge `D` (`RidgedInverse`), nearly `H⁻¹` when the pool
+                    // outweighs the batch.
                     conjugate_gradient_with(
                         |v| obj.hvp(prob.view(), v),
                         rhs,
