@@ -944,4 +944,6 @@ pub fn decide_batch(
 }
 
 #[cfg(test)]
+mod signals_tests;
+#[cfg(test)]
 mod tests;
