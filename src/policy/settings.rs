@@ -335,6 +335,8 @@ mod tests {
     use super::*;
 
     type Set = fn(&mut PolicySettings, f64);
+    /// Fields of one kind of range check, values it accepts, values it refuses.
+    type Kind<'a> = (&'a [(&'a str, Set)], &'a [f64], &'a [f64]);
 
     /// The key `validate` names for `s`, or `None` when it accepts `s`.
     fn rejected_key(s: &PolicySettings) -> Option<&'static str> {
@@ -406,7 +408,7 @@ mod tests {
             ("unlike_alpha", |s, v| s.unlike_alpha = v),
             ("label_alpha", |s, v| s.label_alpha = v),
         ];
-        let kinds: [(&[(&str, Set)], &[f64], &[f64]); 4] = [
+        let kinds: [Kind<'_>; 4] = [
             (&unit, &[0.0, 1.0, 0.5], &[-tiny, above_one]),
             (&nonneg, &[0.0, tiny, 1e6], &[-tiny, -1.0]),
             (&pos, &[tiny, 1e6], &[0.0, -tiny]),

@@ -34,8 +34,9 @@ fn item(index: usize, label: usize, suspicion: f64, label_fit: LabelFit) -> Item
     }
 }
 
-/// Six items, threshold 0.5: items 0, 2 (exactly at the threshold: a flag) and 4 are flagged; item 5's
-/// label has no per-label expectation (it is counted in the totals only).
+/// Six items, threshold 0.5: items 0, 2 (exactly at the threshold: a flag), 4 and 5 are flagged (four
+/// against two, so a flipped comparison shows); item 5's label has no per-label expectation (it is counted
+/// in the totals only).
 fn assessment() -> Assessment {
     Assessment {
         items: vec![
@@ -44,22 +45,22 @@ fn assessment() -> Assessment {
             item(2, 1, 0.5, fit(-0.7, -0.6, 0.2)),
             item(3, 1, 0.1, fit(-0.1, -0.2, 0.01)),
             item(4, 2, 0.7, fit(-2.0, -0.4, 0.3)),
-            item(5, 5, 0.3, fit(-0.3, -0.3, 0.02)),
+            item(5, 5, 0.8, fit(-0.3, -0.3, 0.02)),
         ],
         expected_flagged_by_label: vec![0.4, 0.3, 0.2],
         ..Assessment::default()
     }
 }
 
-/// Worked by hand: 3 of 6 flagged, mean suspicion 2.7 / 6, per label (items, flagged) = (2, 1), (2, 1),
+/// Worked by hand: 4 of 6 flagged, mean suspicion 3.2 / 6, per label (items, flagged) = (2, 1), (2, 1),
 /// (1, 1) with the engine's expectations, and the label fit the sum over all six items.
 #[test]
 fn signals_count_flags_in_total_and_per_label_as_worked_by_hand() {
     let s = BatchSignals::from_assessment(&assessment(), 0.5);
     assert_eq!(s.items, 6);
-    assert_eq!(s.flagged_share, 0.5);
+    assert!((s.flagged_share - 4.0 / 6.0).abs() < 1e-12);
     assert!(
-        (s.mean_suspicion - 0.45).abs() < 1e-12,
+        (s.mean_suspicion - 3.2 / 6.0).abs() < 1e-12,
         "{}",
         s.mean_suspicion
     );
@@ -81,30 +82,31 @@ fn signals_count_flags_in_total_and_per_label_as_worked_by_hand() {
     assert!(empty.flagged_share.is_nan() && empty.mean_suspicion.is_nan());
 }
 
-/// Items 1 (not flagged) and 4 (flagged) lie beyond the trusted set's reach: one unlike flag; the per-label
-/// expectations scale by the judged share 4/6; the two items leave their labels' tallies and the fit.
+/// Items 4 and 5 (both flagged) lie beyond the trusted set's reach: two unlike flags; the per-label
+/// expectations scale by the judged share 4/6; the two items leave the tallies (item 5's label has none)
+/// and the fit.
 #[test]
 fn the_shift_check_takes_the_items_beyond_reach_out_of_the_label_tallies() {
     let a = assessment();
     let report = ShiftReport {
-        beyond: vec![false, true, false, false, true, false],
+        beyond: vec![false, false, false, false, true, true],
         unlike_items: 2,
         tail: 0.03,
     };
     let s = BatchSignals::from_assessment(&a, 0.5).with_shift(&a, 0.5, &report);
     assert_eq!(
         (s.unlike_items, s.unlike_flagged, s.unlike_tail),
-        (2, 1, 0.03)
+        (2, 2, 0.03)
     );
     assert_eq!((s.judged_items(), s.judged_flagged()), (4, 2));
     let tallies: Vec<(u64, u64)> = s.labels.iter().map(|l| (l.items, l.flagged)).collect();
-    assert_eq!(tallies, vec![(1, 1), (2, 1), (0, 0)]);
+    assert_eq!(tallies, vec![(2, 1), (2, 1), (0, 0)]);
     for (l, e) in s.labels.iter().zip([0.4, 0.3, 0.2]) {
         assert!((l.expected - e * 4.0 / 6.0).abs() < 1e-12, "{l:?}");
     }
-    assert!((s.label_fit.loglik - -2.1).abs() < 1e-12);
+    assert!((s.label_fit.loglik - -2.0).abs() < 1e-12);
     assert!((s.label_fit.expected - -1.6).abs() < 1e-12);
-    assert!((s.label_fit.variance - 0.33).abs() < 1e-12);
+    assert!((s.label_fit.variance - 0.36).abs() < 1e-12);
     // An empty batch keeps nothing to judge: its expectations become 0, not NaN.
     let empty = Assessment {
         expected_flagged_by_label: vec![0.4],
