@@ -202,21 +202,8 @@ impl KronFactors {
     /// Solve `(s B ⊗ A + μ I) x = v` exactly through the eigendecompositions (module docs). Eigenvalues
     /// below zero (round-off of a semidefinite factor) count as zero; `μ > 0` keeps the system definite.
     pub fn solve_damped(&self, s: f64, mu: f64, v: &Array1<f64>) -> Array1<f64> {
-        let (p, k) = self.dims();
-        let e = self.eigen();
-        let vm = v
-            .view()
-            .into_shape_with_order((k, p))
-            .expect("v has p·K entries");
-        let mut m = e.b_vec.t().dot(&vm.dot(&e.a_vec));
-        for (u, mut row) in m.rows_mut().into_iter().enumerate() {
-            let bu = e.b_val[u].max(0.0);
-            for (j, x) in row.iter_mut().enumerate() {
-                *x /= s * bu * e.a_val[j].max(0.0) + mu;
-            }
-        }
-        let out = e.b_vec.dot(&m.dot(&e.a_vec.t()));
-        Array1::from(out.into_raw_vec_and_offset().0)
+        // The ridged inverse with the same ridge everywhere: no correction, the formula above.
+        self.ridged_inverse(s, mu, mu).apply(v)
     }
 
     /// The exact inverse of `s B ⊗ A + D`, where the ridge `D` is `μ` on every weight and `r` on the
