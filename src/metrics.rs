@@ -90,6 +90,7 @@ struct Flow {
     batch_items: IntCounterVec,
     admission_items: IntCounterVec,
     unlike_pool: IntCounterVec,
+    recalled: IntCounterVec,
     batch_bytes: IntCounterVec,
     repair_cost: HistogramVec,
     repair_cost_last: GaugeVec,
@@ -225,6 +226,18 @@ impl Flow {
                         "Batches held because their items are unlike the pool and the trusted set \
                          (items_unlike_pool), by vendor: a data-source finding for operations, not a \
                          finding about the vendor's labels.",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            recalled: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "batches_recalled_total",
+                        "Accepted batches taken back out of the pool for review because a later batch of \
+                         the same vendor was held by a stream rule (recalled_on_drift), by vendor: a \
+                         suspicion for review, not proof.",
                     ),
                     &["vendor"],
                 )?,
@@ -526,6 +539,7 @@ impl Metrics {
                 m.flow.admission_items.with_label_values(&[v, f]);
             }
             m.flow.unlike_pool.with_label_values(&[v]);
+            m.flow.recalled.with_label_values(&[v]);
             for f in ["json", "markdown"] {
                 m.state.notices_written.with_label_values(&[v, f]);
             }
@@ -591,6 +605,13 @@ impl Metrics {
     pub fn unlike_pool(&self, vendor: &str) {
         if self.known(vendor) {
             self.flow.unlike_pool.with_label_values(&[vendor]).inc();
+        }
+    }
+
+    /// `n` accepted batches of the vendor were recalled for review (`recalled_on_drift`).
+    pub fn recalled(&self, vendor: &str, n: u64) {
+        if n > 0 && self.known(vendor) {
+            self.flow.recalled.with_label_values(&[vendor]).inc_by(n);
         }
     }
 

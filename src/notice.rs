@@ -94,6 +94,9 @@ pub enum NoticeVerdict {
     Rejected,
     /// A previously accepted batch was pulled back out of the pool after a re-check.
     Withdrawn,
+    /// A previously accepted batch was taken back out of the pool, to be reviewed, because a later batch
+    /// of the same vendor was held by a stream rule (the change most likely began before it).
+    Recalled,
 }
 
 impl NoticeVerdict {
@@ -107,14 +110,19 @@ impl NoticeVerdict {
             NoticeVerdict::Released => "released",
             NoticeVerdict::Rejected => "rejected",
             NoticeVerdict::Withdrawn => "withdrawn",
+            NoticeVerdict::Recalled => "recalled",
         }
     }
 
-    /// Whether this is a decision taken after review (its files get a `.<verdict>` suffix).
+    /// Whether this is a later decision on a batch that already had its first verdict — a review
+    /// decision, or a recall — so its files get a `.<verdict>` suffix.
     pub fn is_review(self) -> bool {
         matches!(
             self,
-            NoticeVerdict::Released | NoticeVerdict::Rejected | NoticeVerdict::Withdrawn
+            NoticeVerdict::Released
+                | NoticeVerdict::Rejected
+                | NoticeVerdict::Withdrawn
+                | NoticeVerdict::Recalled
         )
     }
 
@@ -127,6 +135,7 @@ impl NoticeVerdict {
             NoticeVerdict::Released => "Batch released after review",
             NoticeVerdict::Rejected => "Batch rejected after review",
             NoticeVerdict::Withdrawn => "Batch withdrawn from the training pool",
+            NoticeVerdict::Recalled => "Accepted batch taken back for review",
         }
     }
 
@@ -139,6 +148,7 @@ impl NoticeVerdict {
             NoticeVerdict::Released => "After review, the batch joined the training pool. Items listed were excluded or relabeled by the reviewer.",
             NoticeVerdict::Rejected => "After review, the batch was rejected and will not join the training pool.",
             NoticeVerdict::Withdrawn => "After a re-check against an updated trusted set, this previously accepted batch was taken back out of the training pool pending review.",
+            NoticeVerdict::Recalled => "This previously accepted batch was taken back out of the training pool and is held for review by a person: a later batch from this vendor was held by a check that looks across the vendor's recent items, and this batch was accepted after that check began to rise. This is a suspicion for review, not a finding about any item.",
         }
     }
 }
@@ -443,6 +453,10 @@ impl Notice {
             NoticeVerdict::Withdrawn => (
                 NextAction::Contact,
                 "Please contact the plant: a reviewer will go through the batch with you.".to_string(),
+            ),
+            NoticeVerdict::Recalled => (
+                NextAction::None,
+                "Nothing is required yet. A reviewer decides; a further notice for this file follows with the outcome. Please do not resend the file meanwhile.".to_string(),
             ),
         };
         NextStep { action, text }

@@ -162,6 +162,13 @@ fn print_verdict(r: &BatchRecord) {
                 for reason in &d.reasons {
                     println!("      reason: {} - {}", reason.code, reason.detail);
                 }
+                if d.recall > 0 {
+                    println!(
+                        "      recall: this vendor's {} batch(es) accepted since that statistic last stood at 0 \
+                         go back to quarantine for review (recalled_on_drift)",
+                        d.recall
+                    );
+                }
             }
             let flagged: Vec<_> = r
                 .suspects

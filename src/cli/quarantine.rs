@@ -549,6 +549,15 @@ fn print_show(r: &ShowReport, dir: &Path, top: usize, page: Option<&Path>) {
     if let Some(n) = b.items {
         println!("  items          {n}");
     }
+    if let Some(rc) = &b.recalled {
+        println!(
+            "  recalled       {}: accepted, then taken back for review when batch {} of this vendor was held by {} \
+             (this batch came after that statistic last stood at 0; a suspicion, not proof)",
+            rc.at.format("%Y-%m-%d %H:%M:%S UTC"),
+            sanitize(&rc.held_batch),
+            rc.rules.join(", ")
+        );
+    }
     if let Some(s) = &b.scores {
         println!(
             "  repair cost    {:.4}  (share of label mass the repair moves)",

@@ -59,6 +59,15 @@ pub enum Attack {
     Shifted(f64),
 }
 
+/// What one accepted batch let into the pool.
+#[derive(Debug, Clone, Copy)]
+struct Entered {
+    poison: usize,
+    agreeing: usize,
+    poisoned: bool,
+    recalled: bool,
+}
+
 /// One scripted case.
 #[derive(Debug, Clone)]
 struct Case {
@@ -92,8 +101,17 @@ pub struct CaseReport {
     pub first_poisoned: Option<usize>,
     /// Flipped labels delivered.
     pub poison_delivered: usize,
-    /// Flipped labels that entered the pool with their wrong label.
+    /// Flipped labels in the pool with their wrong label at the end of the stream (entered and not
+    /// recalled since).
     pub poison_in_pool: usize,
+    /// Flipped labels that entered the pool and were taken back out when a later batch's stream rule
+    /// recalled their batch for review (`[policy] recall_on_drift`): in the pool for a while (a training
+    /// run in between would have used them), out of it at the end.
+    pub poison_recalled: usize,
+    /// Accepted batches recalled for review by a later held batch.
+    pub batches_recalled: usize,
+    /// Of those, batches without poison (review load the recall costs).
+    pub clean_batches_recalled: usize,
     /// Of those, the ones whose wrong label is the pool model's own most likely class for the item when
     /// it was delivered: poison that agrees with the model, which no check through that model can see
     /// (only the trusted items near it can).
@@ -102,8 +120,10 @@ pub struct CaseReport {
     pub poisoned_accepted: usize,
     /// Poisoned deliveries let through: poisoned batches accepted with at least one poisoned item entering
     /// the pool with its wrong label (a poisoned batch accepted with every poisoned item held back for
-    /// review does not count).
+    /// review does not count) and not recalled since.
     pub let_through: usize,
+    /// Poisoned deliveries let through and recalled later.
+    pub let_through_recalled: usize,
     /// Items without poison in accepted batches.
     pub clean_items_accepted: usize,
     /// Of those, the items kept out of the pool (flagged or unsure items waiting for review): the review
@@ -131,8 +151,8 @@ impl CaseReport {
         mask: &[bool],
         y: &[usize],
         best_guess: &[usize],
-    ) {
-        let before = self.poison_in_pool;
+    ) -> Entered {
+        let (before, agreeing_before) = (self.poison_in_pool, self.poison_in_pool_agreeing);
         for (id, &label) in entry.ids.iter().zip(&entry.labels) {
             if let Some(i) = ids.iter().position(|x| x == id) {
                 if mask[i] && label != y[i] {
@@ -153,6 +173,32 @@ impl CaseReport {
                 if !entered.contains(id) {
                     self.clean_items_kept_out += 1;
                 }
+            }
+        }
+        Entered {
+            poison: self.poison_in_pool - before,
+            agreeing: self.poison_in_pool_agreeing - agreeing_before,
+            poisoned: mask.iter().any(|&m| m),
+            recalled: false,
+        }
+    }
+
+    /// Take the last `n` accepted batches back out of the pool (those not recalled already): what the
+    /// daemon does for `Decision::recall`.
+    fn recall(&mut self, accepted: &mut [Entered], n: u32) {
+        let from = accepted.len().saturating_sub(n as usize);
+        for e in accepted[from..].iter_mut().filter(|e| !e.recalled) {
+            e.recalled = true;
+            self.batches_recalled += 1;
+            if !e.poisoned {
+                self.clean_batches_recalled += 1;
+            }
+            self.poison_in_pool -= e.poison;
+            self.poison_in_pool_agreeing -= e.agreeing;
+            self.poison_recalled += e.poison;
+            if e.poison > 0 {
+                self.let_through -= 1;
+                self.let_through_recalled += 1;
             }
         }
     }
@@ -402,6 +448,40 @@ fn best_guesses(summary: &PoolSummary, x: &Array2<f64>) -> Result<Vec<usize>, Mo
         .collect())
 }
 
+impl CaseReport {
+    /// An empty report for a case.
+    fn new(case: &Case) -> Self {
+        CaseReport {
+            name: case.name.into(),
+            follows: case.follows.into(),
+            data: match case.data {
+                Data::Plant => "plant".into(),
+                Data::Wine => "winequality".into(),
+            },
+            batches: case.batches.len(),
+            held: 0,
+            poisoned_batches: 0,
+            first_held: None,
+            first_poisoned: None,
+            poison_delivered: 0,
+            poison_in_pool: 0,
+            poison_recalled: 0,
+            batches_recalled: 0,
+            clean_batches_recalled: 0,
+            poison_in_pool_agreeing: 0,
+            poisoned_accepted: 0,
+            let_through: 0,
+            let_through_recalled: 0,
+            clean_items_accepted: 0,
+            clean_items_kept_out: 0,
+            clean_batches: 0,
+            clean_held: 0,
+            held_as_label_trouble: 0,
+            told: Vec::new(),
+        }
+    }
+}
+
 /// Replay one case from the start state.
 fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
     let mut summary = if case.empty_pool {
@@ -417,31 +497,9 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
     let classes = s.source.class_names();
     let trusted_ids: Vec<String> = scenario::item_ids("t", s.trusted_y.len());
     let w = Array1::ones(s.trusted_y.len());
-    let mut r = CaseReport {
-        name: case.name.into(),
-        follows: case.follows.into(),
-        data: match case.data {
-            Data::Plant => "plant".into(),
-            Data::Wine => "winequality".into(),
-        },
-        batches: case.batches.len(),
-        held: 0,
-        poisoned_batches: 0,
-        first_held: None,
-        first_poisoned: None,
-        poison_delivered: 0,
-        poison_in_pool: 0,
-        poison_in_pool_agreeing: 0,
-        poisoned_accepted: 0,
-        let_through: 0,
-        clean_items_accepted: 0,
-        clean_items_kept_out: 0,
-        clean_batches: 0,
-        clean_held: 0,
-        held_as_label_trouble: 0,
-        told: Vec::new(),
-    };
+    let mut r = CaseReport::new(case);
     let mut told = std::collections::BTreeMap::<String, usize>::new();
+    let mut accepted_log: Vec<Entered> = Vec::new();
     for (b, &(size, a)) in case.batches.iter().enumerate() {
         let bseed = seed.wrapping_mul(1_000_003).wrapping_add(b as u64);
         let (mut x, y) = s.source.sample(size, bseed);
@@ -526,10 +584,17 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
                 history = h;
             }
             if let Some(entry) = v.pool {
-                r.count_entry(&entry, &ids, &mask, &y, &best_guess);
+                accepted_log.push(r.count_entry(&entry, &ids, &mask, &y, &best_guess));
                 let ex = Array2::from_shape_vec((entry.ids.len(), entry.n_features), entry.x)
                     .map_err(|e| ModelError::Shape(e.to_string()))?;
                 summary.absorb(&s.config.model, ex.view(), &entry.labels)?;
+            } else {
+                accepted_log.push(Entered {
+                    poison: 0,
+                    agreeing: 0,
+                    poisoned: poison > 0,
+                    recalled: false,
+                });
             }
             // Items kept out for review join the model of the items as delivered (the clean level's labels
             // model) where the trusted-anchored model does not doubt them, as in the daemon.
@@ -537,6 +602,10 @@ fn replay(s: &Start, case: &Case, seed: u64) -> Result<CaseReport, ModelError> {
             let kept: Vec<usize> = rows.iter().map(|&i| given[i]).collect();
             summary.absorb_kept_out(&s.config.model, x.select(Axis(0), &rows).view(), &kept)?;
         } else {
+            // The summary keeps what the recalled batches taught it (the daemon rebuilds it from the
+            // stored pool): the replay's model stays the more poisoned one.
+            let recall = v.record.decision.as_ref().map_or(0, |d| d.recall);
+            r.recall(&mut accepted_log, recall);
             r.held += 1;
             r.first_held.get_or_insert(b + 1);
             if poison == 0 {
@@ -647,7 +716,7 @@ pub fn render_text(c: &Casebook) -> String {
     let _ = writeln!(s, "attack casebook ({}; plant unless marked wine, 150-item batches unless named; a hold is a suspicion for review, not proof)", if c.quick { "quick" } else { "full" });
     let _ = writeln!(
         s,
-        "{:<38} {:>7} {:>5} {:>10} {:>19} {:>8} {:>8} {:>13} {:>9} {:>10} {:>10}",
+        "{:<38} {:>7} {:>5} {:>10} {:>19} {:>8} {:>8} {:>9} {:>13} {:>9} {:>10} {:>10}",
         "case",
         "batches",
         "held",
@@ -655,6 +724,7 @@ pub fn render_text(c: &Casebook) -> String {
         "poison in pool",
         "agreeing",
         "let thru",
+        "recalled",
         "clean held",
         "kept out",
         "label told",
@@ -671,7 +741,7 @@ pub fn render_text(c: &Casebook) -> String {
         };
         let _ = writeln!(
             s,
-            "{:<38} {:>7} {:>5} {:>10} {:>7}/{:<4} {:>5.1}% {:>8} {:>8} {:>6}/{:<6} {:>9} {:>10} {:>10}",
+            "{:<38} {:>7} {:>5} {:>10} {:>7}/{:<4} {:>5.1}% {:>8} {:>8} {:>9} {:>6}/{:<6} {:>9} {:>10} {:>10}",
             r.name,
             r.batches,
             r.held,
@@ -681,6 +751,7 @@ pub fn render_text(c: &Casebook) -> String {
             100.0 * r.poison_share(),
             r.poison_in_pool_agreeing,
             r.let_through,
+            format!("{}/{}", r.poison_recalled, r.batches_recalled),
             r.clean_held,
             r.clean_batches,
             kept_out,
@@ -692,7 +763,10 @@ pub fn render_text(c: &Casebook) -> String {
         s,
         "\nagreeing: poison in the pool whose wrong label is the pool model's own most likely class — \
          invisible to any check through that model; only trusted items near it can speak\n\
+         poison in pool, let thru: at the end of the stream, after recalls\n\
          let thru: poisoned deliveries accepted with some of their poison entering the pool\n\
+         recalled: poison / batches taken back out of the pool when a later batch's stream rule held it \
+         (in the pool meanwhile)\n\
          kept out: the clean items of accepted batches that wait for review (flagged or unsure) — the \
          review load the item admission costs"
     );
@@ -732,6 +806,7 @@ mod tests {
         let clean = by("clean stream");
         assert_eq!((clean.poison_delivered, clean.clean_batches), (0, 12));
         assert_eq!(clean.clean_held, 0, "{clean:?}");
+        assert_eq!(clean.batches_recalled, 0, "{clean:?}");
         let uniform = by("uniform 10 %");
         assert!(
             uniform.poison_delivered > 0 && uniform.poison_share() <= 0.10,
@@ -751,6 +826,13 @@ mod tests {
         // holds uniform flips (at batch 2 in this run, measured when written).
         let flips = by("uniform 10 % (wine)");
         assert!(flips.first_held.is_some(), "{flips:?}");
+        // ... and its hold (a stream rule) recalls the batches accepted while the statistic climbed: the
+        // flips that had entered with them leave the pool (3 of 45 from 2 batches in this run, measured
+        // when written; with `recall_on_drift` off they stay).
+        assert!(
+            flips.poison_recalled > 0 && flips.poison_in_pool == 0,
+            "{flips:?}"
+        );
         let shift = by("covariate shift");
         assert!(shift.first_held.is_some(), "{shift:?}");
         assert_eq!(shift.held_as_label_trouble, 0, "{shift:?}");
@@ -765,6 +847,10 @@ mod tests {
             assert!(r.let_through <= r.poisoned_accepted && r.let_through <= r.poison_in_pool);
             assert_eq!(r.let_through == 0, r.poison_in_pool == 0, "{r:?}");
             assert!(r.held >= r.clean_held && r.held <= r.batches);
+            assert!(r.clean_batches_recalled <= r.batches_recalled);
+            assert!(r.batches_recalled + r.held <= r.batches, "{r:?}");
+            assert!(r.let_through + r.let_through_recalled <= r.poisoned_accepted);
+            assert!(r.poison_in_pool + r.poison_recalled <= r.poison_delivered);
             assert!(r.clean_items_kept_out <= r.clean_items_accepted);
         }
         // A filtered run replays its case with the seed it has in the full run: the same figures.

@@ -15,7 +15,10 @@
 //!    redo then unlinks the original) — never in neither;
 //! 3. writes the vendor notice into `notices/<vendor>/` through [`crate::notice`] (atomic; every notice says
 //!    that a flag is a suspicion pending review, not proof);
-//! 4. records the terminal state with an audit record naming the folder and the notice files (flushed).
+//! 4. for a batch held by a stream rule, recalls the vendor's batches accepted since that rule's
+//!    statistic was last 0 ([`crate::review::recall_accepted`]; idempotent);
+//! 5. records the terminal state with an audit record naming the folder, the notice files and the
+//!    recalled batches (flushed).
 //!
 //! Every step is idempotent, so the daemon redoes [`settle`] for batches it finds `Decided` at startup.
 
@@ -278,6 +281,16 @@ pub fn settle(
             written.push(name);
         }
     }
+    // A hold by a stream rule reaches back over the vendor's batches accepted since the rule's statistic
+    // was last 0 (`review::recall_accepted`); before the batch is settled, so a crash redoes it.
+    let recalled = if outcome == Outcome::Quarantined {
+        crate::review::recall_accepted(ws, config, store, record)?
+    } else {
+        Vec::new()
+    };
+    if let Some(m) = metrics {
+        m.recalled(&record.vendor, recalled.len() as u64);
+    }
     let audit = AuditRecord::new("daemon", "filed")
         .batch(&record.id, &record.vendor)
         .outcome(outcome.as_str())
@@ -285,6 +298,7 @@ pub fn settle(
             "folder": outcome.folder(),
             "file": record.file_name,
             "notices": written,
+            "recalled": recalled,
         }));
     let settled = store.transition(
         &record.id,

@@ -107,6 +107,10 @@ pub struct ItemEvidence {
     pub items_total: u64,
     /// The label-fit CUSUM after the last accepted batch, in item standard deviations.
     pub fit_cusum: f64,
+    /// Accepted batches since the item CUSUM was last 0 (Montgomery's `N⁺`; see [`ItemJudgement::recall`]).
+    pub cusum_run: u32,
+    /// Accepted batches since the label-fit CUSUM was last 0.
+    pub fit_run: u32,
 }
 
 /// How one batch's items were judged: the numbers behind `flagged_items_excess` and
@@ -165,6 +169,12 @@ pub struct ItemJudgement {
     /// Its decision interval.
     #[serde(default)]
     pub fit_cusum_h: f64,
+    /// The vendor's accepted batches since the item CUSUM was last 0, before this batch.
+    #[serde(default)]
+    pub cusum_run: u32,
+    /// The vendor's accepted batches since the label-fit CUSUM was last 0, before this batch.
+    #[serde(default)]
+    pub fit_run: u32,
 }
 
 impl ItemJudgement {
@@ -181,6 +191,23 @@ impl ItemJudgement {
     /// Whether the label-fit CUSUM crosses its `h` (never when `h` is 0: records from before it existed).
     pub fn unlikely(&self) -> bool {
         self.fit_cusum_h > 0.0 && self.fit_cusum > self.fit_cusum_h
+    }
+
+    /// How many of the vendor's most recent accepted batches to take back out of the pool for review when
+    /// this batch is held: the accepted batches since the CUSUM that fires was last 0 (the larger run when
+    /// both fire), 0 when neither stream rule fires.
+    ///
+    /// A CUSUM that signals also dates the change: the shift most likely began just after the last
+    /// period at which the statistic was 0, i.e. `N⁺` periods back, where `N⁺` counts the consecutive
+    /// periods it has been above 0 (Montgomery, *Introduction to Statistical Quality Control*, §9.1 on the
+    /// tabular CUSUM; from memory, 6th ed.). The batches accepted in that run were judged while the
+    /// statistic was already climbing: a drip or a split delivery gets its early files in before the
+    /// stream rule can fire. Recalling them keeps that poison out of the next training run; a reviewer
+    /// releases whatever was right. The run is bounded by the batches in the vendor's evidence window.
+    pub fn recall(&self) -> u32 {
+        let drift = if self.drift() { self.cusum_run } else { 0 };
+        let fit = if self.unlikely() { self.fit_run } else { 0 };
+        drift.max(fit)
     }
 
     /// The label-fit rule in one sentence.
@@ -286,6 +313,8 @@ impl ItemEvidence {
             fit_cusum_before: self.fit_cusum,
             fit_cusum: (self.fit_cusum + fit_step).max(0.0),
             fit_cusum_h: settings.fit_cusum_h,
+            cusum_run: self.cusum_run.min(self.accepted.len() as u32),
+            fit_run: self.fit_run.min(self.accepted.len() as u32),
         }
     }
 
@@ -295,6 +324,13 @@ impl ItemEvidence {
         let j = self.judge(settings, s);
         self.cusum = j.cusum;
         self.fit_cusum = j.fit_cusum;
+        // N⁺: consecutive accepted batches with the statistic above 0 (`ItemJudgement::recall`).
+        self.cusum_run = if j.cusum > 0.0 { self.cusum_run + 1 } else { 0 };
+        self.fit_run = if j.fit_cusum > 0.0 {
+            self.fit_run + 1
+        } else {
+            0
+        };
         self.push(settings, Tally::of(settings, s), false);
     }
 
@@ -302,9 +338,16 @@ impl ItemEvidence {
     /// lift the vendor's level, see the module documentation); the CUSUM restarts at 0 (a person looked
     /// at the vendor's current level).
     pub fn record_released(&mut self, settings: &PolicySettings, s: &BatchSignals) {
+        self.restart();
+        self.push(settings, Tally::of(settings, s), true);
+    }
+
+    /// Both CUSUMs and their runs back to 0 (a person looked at the vendor's current level).
+    pub fn restart(&mut self) {
         self.cusum = 0.0;
         self.fit_cusum = 0.0;
-        self.push(settings, Tally::of(settings, s), true);
+        self.cusum_run = 0;
+        self.fit_run = 0;
     }
 
     fn push(&mut self, settings: &PolicySettings, t: Tally, released: bool) {

@@ -497,3 +497,108 @@ fn the_label_fit_cusum_has_the_published_run_lengths() {
         "in-control ARL in 4-item batches {arl0}"
     );
 }
+
+/// The stream rules date the change they hold on (Montgomery's `N⁺`: accepted batches since the CUSUM was
+/// last 0), and a hold reaches back over those batches (`Decision::recall`), worked by hand on the
+/// label-fit CUSUM: with unit item variance a 150-item batch at `z` adds `−z √150 − 15`; at
+/// `z = −24/√150` that is `+9`, so four batches climb to 36 and are accepted and the fifth (45 > 40) is
+/// held reaching back over four. A right-labelled batch (`−15`) between them lowers the statistic without
+/// reaching 0, so the run goes on; one that brings it to 0 ends it. Without the setting nothing is
+/// recalled; a hold by the batch test alone (statistic at 0) reaches back over nothing; a reviewer's
+/// restart (`reset_cusum`) clears both statistics and their runs. Fails with the run restarted at 1
+/// instead of 0, or the runs left out of `reset_cusum`; the next test fails with the run restarted at
+/// every positive step (each tried by hand).
+#[test]
+fn a_hold_by_a_stream_rule_recalls_the_batches_since_its_statistic_was_last_zero() {
+    let s = PolicySettings::default();
+    let up = fitted(150, 8, 0.05, -24.0 / 150f64.sqrt());
+    let right = fitted(150, 8, 0.05, 0.0);
+    let mut h = established(&s);
+    assert_eq!((h.evidence.fit_cusum, h.evidence.fit_run), (0.0, 0));
+    let v = deliver(&s, &mut h, &vec![up.clone(); 4]);
+    assert_eq!(v, [Verdict::Accept; 4]);
+    assert!(
+        (h.evidence.fit_cusum - 36.0).abs() < 1e-9,
+        "{:?}",
+        h.evidence
+    );
+    assert_eq!(h.evidence.fit_run, 4);
+    let d = decide_batch(&s, &h, &up);
+    assert_eq!(d.verdict, Verdict::Quarantine);
+    assert_eq!(
+        (d.items.as_ref().map(|j| j.fit_run), d.recall),
+        (Some(4), 4)
+    );
+    // Off: the same hold, nothing recalled.
+    let off = PolicySettings {
+        recall_on_drift: false,
+        ..s.clone()
+    };
+    assert_eq!(decide_batch(&off, &h, &up).recall, 0);
+    // An accepted batch's decision never recalls.
+    let mut lower = established(&s);
+    deliver(&s, &mut lower, &[up.clone(), up.clone()]);
+    let accepted = decide_batch(&s, &lower, &right);
+    assert_eq!((accepted.verdict, accepted.recall), (Verdict::Accept, 0));
+    // 9 + 9 − 15 = 3 > 0: the run goes on through a right-labelled batch; 3 − 15 < 0 ends it.
+    deliver(&s, &mut lower, std::slice::from_ref(&right));
+    assert_eq!(lower.evidence.fit_run, 3);
+    deliver(&s, &mut lower, &[right]);
+    assert_eq!((lower.evidence.fit_cusum, lower.evidence.fit_run), (0.0, 0));
+    // A hold by the batch test alone: the statistics stand at 0, nothing to reach back over.
+    let fresh = established(&s);
+    let excess = decide_batch(&s, &fresh, &batch(150, 40, 0.05));
+    assert!(excess
+        .reasons
+        .iter()
+        .any(|r| r.code == ReasonCode::FlaggedItemsExcess));
+    assert_eq!((excess.verdict, excess.recall), (Verdict::Quarantine, 0));
+    // A reviewer's restart clears both statistics and their runs.
+    h.reset_cusum(&s);
+    assert_eq!(
+        (
+            h.evidence.fit_cusum,
+            h.evidence.fit_run,
+            h.evidence.cusum,
+            h.evidence.cusum_run
+        ),
+        (0.0, 0, 0.0, 0)
+    );
+}
+
+/// The item CUSUM's run (`flagged_items_drift`), worked by hand: at level 0.05 against `p₁ = 0.08`, a
+/// 150-item batch with 12 flagged adds `12 ln(0.08/0.05) + 138 ln(0.92/0.95) ≈ 1.21` nats, too few for
+/// the batch test (the binomial tail at 12 of 150 is about 0.06); six batches reach about 7.3 (under
+/// `h` = 8) and the seventh crosses it, reaching back over six. The run never covers more batches than
+/// the vendor's evidence window holds.
+#[test]
+fn the_item_cusum_dates_its_drift_too_within_the_window() {
+    let s = PolicySettings::default();
+    let step = 12.0 * (0.08f64 / 0.05).ln() + 138.0 * (0.92f64 / 0.95).ln();
+    assert!((step - 1.21).abs() < 0.01, "{step}");
+    let drip = batch(150, 12, 0.05);
+    let mut h = established(&s);
+    let v = deliver(&s, &mut h, &vec![drip.clone(); 6]);
+    assert_eq!(v, [Verdict::Accept; 6]);
+    assert_eq!(h.evidence.cusum_run, 6);
+    assert!(
+        (h.evidence.cusum - 6.0 * step).abs() < 1e-6,
+        "{:?}",
+        h.evidence
+    );
+    let d = decide_batch(&s, &h, &drip);
+    assert!(d
+        .reasons
+        .iter()
+        .any(|r| r.code == ReasonCode::FlaggedItemsDrift));
+    assert_eq!(d.recall, 6);
+    // A window of 450 items keeps the newest three 150-item batches: the run reported is at most three.
+    let narrow = PolicySettings {
+        evidence_items: 450,
+        ..s.clone()
+    };
+    let mut w = established(&narrow);
+    deliver(&narrow, &mut w, &vec![drip.clone(); 6]);
+    assert_eq!(w.evidence.cusum_run, 6);
+    assert_eq!(w.evidence.judge(&narrow, &drip).cusum_run, 3);
+}

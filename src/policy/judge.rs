@@ -88,6 +88,10 @@ pub(super) fn judge(
     } else {
         Verdict::Quarantine
     };
+    let recall = match &items {
+        Some(j) if verdict == Verdict::Quarantine && settings.recall_on_drift => j.recall(),
+        _ => 0,
+    };
     Decision {
         verdict,
         reasons,
@@ -96,6 +100,7 @@ pub(super) fn judge(
         signals: signals.cloned(),
         items,
         labels,
+        recall,
     }
 }
 

@@ -564,7 +564,7 @@ impl VendorHistory {
     pub fn reset_cusum(&mut self, settings: &PolicySettings) {
         let window = settings.history_window.max(1);
         self.cusum = 0.0;
-        self.evidence.cusum = 0.0;
+        self.evidence.restart();
         self.accepted_costs.extend(self.pending_costs.drain(..));
         while self.accepted_costs.len() > window {
             self.accepted_costs.pop_front();
@@ -910,6 +910,11 @@ pub struct Decision {
     /// records, from [`decide`], and with `judge_labels = false`).
     #[serde(default)]
     pub labels: Vec<LabelCheck>,
+    /// For a held batch: how many of the vendor's most recent accepted batches to take back out of the
+    /// pool for review (`[policy] recall_on_drift`, [`ItemJudgement::recall`]); 0 otherwise and in older
+    /// records.
+    #[serde(default)]
+    pub recall: u32,
 }
 
 /// Decide one batch from its repair cost and damage alone: the flagged-share rules are skipped.

@@ -138,6 +138,11 @@ pub struct PolicySettings {
     /// length about 17,000 batches of 30–150 items, or 188,000 one-item files, by Siegmund's approximation;
     /// see `policy::evidence`).
     pub fit_cusum_h: f64,
+    /// When a stream rule (`flagged_items_drift`, `labels_unlikely`) holds a batch, also take the vendor's
+    /// accepted batches since that CUSUM was last 0 back out of the pool for review (see
+    /// `ItemJudgement::recall`): the files a drip or a split delivery got in while the statistic was
+    /// still climbing. Default true.
+    pub recall_on_drift: bool,
     /// Lowest level a vendor is judged against (keeps the likelihood ratio finite). Fraction; default 0.005.
     pub item_level_floor: f64,
     /// The clean level used when the engine computed none (records from before it did). Fraction; default
@@ -195,6 +200,7 @@ impl Default for PolicySettings {
             item_cusum_h: 8.0,
             fit_drift_shift: 0.1,
             fit_cusum_h: 40.0,
+            recall_on_drift: true,
             item_level_floor: 0.005,
             clean_level_unknown: 0.10,
             unlike_quantile: 0.99,

@@ -196,8 +196,9 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     // The vendor notice is recorded with the decision (an outbox: see `finish_pending`).
     let n = release_notice(&rec, &table, &plan);
     // A released batch joins its vendor's record (so a vendor whose honest batches the computed limits
-    // hold is not stuck in cold start), in the same transaction as the release.
-    let released = released_signals(&rec, &table, &plan);
+    // hold is not stuck in cold start), in the same transaction as the release; a recalled batch was
+    // counted there when it was accepted.
+    let released = released_signals(&rec, &table, &plan).filter(|_| rec.recalled.is_none());
     let policy = &env.config.policy;
     let settled = env.store.transition_with_history(
         &rec.id,
@@ -829,11 +830,19 @@ pub(crate) fn finish_pending(
     store: &Store,
 ) -> Result<usize, ReviewError> {
     let mut n = 0;
-    for rec in store.batches_in(&[
-        BatchState::Released,
-        BatchState::ReviewRejected,
-        BatchState::Withdrawn,
-    ])? {
+    let recalled = store
+        .batches_in(&[BatchState::Quarantined])?
+        .into_iter()
+        .filter(|r| r.recalled.is_some());
+    for rec in store
+        .batches_in(&[
+            BatchState::Released,
+            BatchState::ReviewRejected,
+            BatchState::Withdrawn,
+        ])?
+        .into_iter()
+        .chain(recalled)
+    {
         let dest = folder_for_state(rec.state).unwrap_or("rejected");
         if !ws.folder(dest).join(&rec.file_name).exists() {
             move_for_state(ws, &rec)?;

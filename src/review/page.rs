@@ -153,6 +153,17 @@ fn summary_table(h: &mut String, report: &ShowReport) {
     if let Some(n) = b.items {
         row(h, "Items", &n.to_string());
     }
+    if let Some(rc) = &b.recalled {
+        row(
+            h,
+            "Recalled",
+            &html_escape(&format!(
+                "accepted, then taken back for review when batch {} of this vendor was held by {} (a suspicion, not proof)",
+                rc.held_batch,
+                rc.rules.join(", ")
+            )),
+        );
+    }
     if let Some(s) = &b.scores {
         row(h, "Repair cost", &format!("{:.4}", s.repair_cost));
         row(h, "Damage (nats)", &format!("{:.4}", s.damage));

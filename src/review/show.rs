@@ -37,8 +37,11 @@ pub struct QueueEntry {
     pub damage: Option<f64>,
     /// Items whose label the repair moved.
     pub flagged_items: Option<usize>,
-    /// The policy's reason codes.
+    /// The policy's reason codes (`recalled_on_drift` for an accepted batch recalled for review).
     pub reasons: Vec<String>,
+    /// For a recalled batch: the later batch whose hold recalled it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub recalled_by: Option<String>,
 }
 
 /// Quarantined batches, oldest first.
@@ -50,16 +53,16 @@ pub fn list(env: &ReviewEnv<'_>) -> Result<Vec<QueueEntry>, ReviewError> {
         .batches_in(&[BatchState::Quarantined])?
         .into_iter()
         .map(|r| QueueEntry {
-            reasons: r
-                .decision
-                .as_ref()
-                .map(|d| {
-                    d.reasons
-                        .iter()
-                        .map(|x| x.code.as_str().to_string())
-                        .collect()
-                })
-                .unwrap_or_default(),
+            reasons: match (&r.recalled, &r.decision) {
+                (Some(_), _) => vec![super::RECALLED_ON_DRIFT.to_string()],
+                (None, Some(d)) => d
+                    .reasons
+                    .iter()
+                    .map(|x| x.code.as_str().to_string())
+                    .collect(),
+                (None, None) => Vec::new(),
+            },
+            recalled_by: r.recalled.as_ref().map(|c| c.held_batch.clone()),
             repair_cost: r.scores.as_ref().map(|s| s.repair_cost),
             damage: r.scores.as_ref().map(|s| s.damage),
             flagged_items: r.scores.as_ref().map(|s| s.flagged_items),

@@ -212,6 +212,26 @@ pub struct BatchRecord {
     /// or dropped, and what a reviewer later decided.
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub held: Vec<HeldItem>,
+    /// Set when the batch, once accepted, was taken back out of the pool for review because a later
+    /// batch of its vendor was held by a stream rule (see [`Recall`]).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub recalled: Option<Recall>,
+}
+
+/// Why an accepted batch was taken back out of the pool and quarantined for review: a later batch of the
+/// same vendor was held by a stream rule (`flagged_items_drift` or `labels_unlikely`), and this batch was
+/// accepted while that rule's statistic was already above 0, where the change most likely began (see
+/// [`crate::policy::ItemJudgement::recall`]). A suspicion for review, not proof.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Recall {
+    /// The later batch whose hold reached back to this one.
+    pub held_batch: String,
+    /// The stream rules that fired on it (reason codes).
+    pub rules: Vec<String>,
+    /// How many of the vendor's accepted batches the hold reached back over.
+    pub batches: u32,
+    /// When the batch was recalled.
+    pub at: DateTime<Utc>,
 }
 
 /// Where a flagged item of an accepted batch stands.
@@ -322,6 +342,7 @@ impl BatchRecord {
             notices: Vec::new(),
             pending_notices: Vec::new(),
             held: Vec::new(),
+            recalled: None,
         }
     }
 }

@@ -52,7 +52,7 @@ mod pool;
 
 pub use batch::{
     AuditRecord, BatchRecord, BatchScores, BatchState, HeldItem, HeldState, HeldWhy, Outcome,
-    RejectReason, Suspect,
+    Recall, RejectReason, Suspect,
 };
 pub use features::{FeatureImport, PoolImport, Provenance, POOL_IMPORT_CHUNK};
 

@@ -24,6 +24,7 @@ mod features;
 mod harden;
 mod intake;
 mod policy;
+mod recall;
 mod review;
 mod util;
 mod ux;

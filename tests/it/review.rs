@@ -1608,6 +1608,7 @@ fn every_kind_of_notice_validates_and_the_validator_rejects_bad_ones() {
         NoticeVerdict::Released,
         NoticeVerdict::Rejected,
         NoticeVerdict::Withdrawn,
+        NoticeVerdict::Recalled,
     ] {
         let mut n = Notice::new(verdict, DecidedBy::Reviewer, batch());
         n.reasons

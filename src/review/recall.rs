@@ -1,0 +1,165 @@
+//! Recall: when a stream rule holds a vendor's batch, the vendor's batches accepted since that rule's
+//! statistic was last 0 are taken back out of the pool and quarantined for review.
+//!
+//! A CUSUM that signals also dates the change: it most likely began just after the last batch at which
+//! the statistic stood at 0 (see [`crate::policy::ItemJudgement::recall`]). The batches accepted since were
+//! judged while the evidence was building; a drip, or a delivery cut into small files, gets its first
+//! files in that way. The policy's decision carries how many to reach back over
+//! ([`crate::policy::Decision::recall`]); this module does it, in the store, for the batches still
+//! accepted:
+//!
+//! 1. each moves `accepted → quarantined` with its pool entry removed (the pool epoch changes, so the
+//!    scoring worker rebuilds its summary exactly), an audit record `recall` naming the held batch, the
+//!    record's [`crate::store::Recall`], and a vendor notice `recalled` stored in the same transaction
+//!    (the outbox of review decisions: [`super::finish_pending`] sends what a crash left);
+//! 2. then, best effort, the file moves to `quarantine/` and the notice is written.
+//!
+//! Idempotent: a batch no longer accepted (already recalled, withdrawn) is left alone, so the daemon can
+//! redo it after a crash. A reviewer then releases or rejects each recalled batch like any held one; a
+//! release does not count the batch in the vendor's record a second time (it was counted when accepted).
+//! The notice names no item: a recall is a suspicion about the vendor's stream, not a finding about items.
+
+use chrono::Utc;
+
+use crate::config::Config;
+use crate::notice::{BatchRef, DecidedBy, Notice, NoticeReason, NoticeVerdict};
+use crate::policy::Verdict;
+use crate::store::{AuditRecord, BatchRecord, BatchState, PoolChange, Recall, Store, StoreError};
+use crate::workspace::Workspace;
+
+use super::decide::{move_for_state, send_pending_notice};
+
+/// The reason code of a recall in notices and the audit trail.
+pub const RECALLED_ON_DRIFT: &str = "recalled_on_drift";
+
+/// The vendor's batches a hold on `held` reaches back over: the `held.decision.recall` most recent
+/// batches of the same vendor that the policy accepted before it (newest first), whatever their state
+/// now. Empty when the decision asks for no recall.
+pub fn recall_targets(store: &Store, held: &BatchRecord) -> Result<Vec<BatchRecord>, StoreError> {
+    let n = held.decision.as_ref().map_or(0, |d| d.recall) as usize;
+    if n == 0 {
+        return Ok(Vec::new());
+    }
+    let before = held.decided_at.unwrap_or_else(Utc::now);
+    let mut accepted: Vec<BatchRecord> = store
+        .batches()?
+        .into_iter()
+        .filter(|r| {
+            r.vendor == held.vendor
+                && r.id != held.id
+                && r.decision
+                    .as_ref()
+                    .is_some_and(|d| d.verdict == Verdict::Accept)
+                && r.decided_at.is_some_and(|t| t <= before)
+        })
+        .collect();
+    accepted.sort_by(|a, b| b.decided_at.cmp(&a.decided_at).then(b.id.cmp(&a.id)));
+    accepted.truncate(n);
+    Ok(accepted)
+}
+
+/// Recall the batches [`recall_targets`] names that are still accepted (module documentation). Returns
+/// the ids recalled now; problems with a file move or a notice are logged and left to
+/// [`super::finish_pending`].
+pub fn recall_accepted(
+    ws: &Workspace,
+    config: &Config,
+    store: &Store,
+    held: &BatchRecord,
+) -> Result<Vec<String>, StoreError> {
+    let targets = recall_targets(store, held)?;
+    let rules: Vec<String> = held
+        .decision
+        .iter()
+        .flat_map(|d| d.reasons.iter().map(|r| r.code))
+        .filter(|c| {
+            matches!(
+                c,
+                crate::policy::ReasonCode::FlaggedItemsDrift
+                    | crate::policy::ReasonCode::LabelsUnlikely
+            )
+        })
+        .map(|c| c.as_str().to_string())
+        .collect();
+    let reach = targets.len() as u32;
+    let mut done = Vec::new();
+    for rec in targets.iter().filter(|r| r.state == BatchState::Accepted) {
+        let recall = Recall {
+            held_batch: held.id.clone(),
+            rules: rules.clone(),
+            batches: reach,
+            at: Utc::now(),
+        };
+        let audit = AuditRecord::new("daemon", "recall")
+            .batch(&rec.id, &rec.vendor)
+            .outcome(BatchState::Quarantined.as_str())
+            .reason(format!(
+                "{RECALLED_ON_DRIFT}: batch {} of this vendor was held by {}; this batch was accepted after \
+                 that statistic last stood at 0",
+                held.id,
+                rules.join(", ")
+            ))
+            .detail(serde_json::json!({
+                "held_batch": held.id,
+                "rules": rules,
+                "reach": reach,
+            }));
+        let notice = recall_notice(rec, held);
+        let settled = match store.transition(
+            &rec.id,
+            &[BatchState::Accepted],
+            BatchState::Quarantined,
+            PoolChange::Remove,
+            vec![audit],
+            |r| {
+                r.recalled = Some(recall.clone());
+                r.pending_notices.push(notice.clone());
+            },
+        ) {
+            Ok(s) => s,
+            // A reviewer withdrew it meanwhile: nothing to recall.
+            Err(StoreError::Conflict { .. }) => continue,
+            Err(e) => return Err(e),
+        };
+        if let Err(e) = move_for_state(ws, &settled) {
+            tracing::warn!(batch_id = %settled.id, error = %e, "recall: moving the file to quarantine/ failed; retried at the next start or review command");
+        }
+        if let Err(e) = send_pending_notice(ws, config, store, &settled, "daemon") {
+            tracing::warn!(batch_id = %settled.id, error = %e, "recall: writing the vendor notice failed; retried at the next start or review command");
+        }
+        tracing::warn!(
+            batch_id = %settled.id,
+            vendor = %settled.vendor,
+            held_batch = %held.id,
+            "accepted batch recalled for review (a suspicion, not proof)"
+        );
+        done.push(settled.id);
+    }
+    Ok(done)
+}
+
+/// The vendor notice of a recall: no item is named (module documentation).
+fn recall_notice(rec: &BatchRecord, held: &BatchRecord) -> Notice {
+    let mut n = Notice::new(
+        NoticeVerdict::Recalled,
+        DecidedBy::Policy,
+        BatchRef {
+            batch_id: rec.id.clone(),
+            vendor: rec.vendor.clone(),
+            file_name: Some(rec.original_name.clone()),
+            sha256: rec.sha256.clone(),
+            received_at: rec.claimed_at,
+            decided_at: Utc::now(),
+        },
+    );
+    n.reasons.push(NoticeReason::new(
+        RECALLED_ON_DRIFT,
+        format!(
+            "A later batch from this vendor folder (batch {}) was held by a check across the vendor's recent \
+             items; this batch was accepted after that check began to rise, so it is reviewed too.",
+            held.id
+        ),
+    ));
+    n.items_total = rec.items.map(|x| x as u64);
+    n
+}
