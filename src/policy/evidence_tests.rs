@@ -202,9 +202,11 @@ fn a_release_without_the_corrected_items_teaches_the_level_that_stood() {
         fixed.evidence.judge(&s, &next).level < as_is.evidence.judge(&s, &next).level,
         "a batch released with its errors corrected lifts the level less"
     );
-    // Removing more than there is never underflows.
+    // Removing more than there is never underflows, and an empty remainder has share 0, not 0/0 (a NaN
+    // share would read as invalid scores; the mutation run's `items > 0` → `>= 0` gave NaN here).
     let none = b.without_items(1_000, 1_000);
     assert_eq!((none.items, none.flagged_items()), (0, 0));
+    assert_eq!(none.flagged_share, 0.0);
 }
 
 /// A batch whose judged items' labels are `z` standard deviations less (negative) or more likely than
