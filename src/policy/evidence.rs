@@ -195,7 +195,7 @@ impl ItemJudgement {
 
     /// How many of the vendor's most recent accepted batches to take back out of the pool for review when
     /// this batch is held: the accepted batches since the CUSUM that fires was last 0 (the larger run when
-    /// both fire), 0 when neither stream rule fires.
+    /// both fire), where the hold needed them; 0 otherwise.
     ///
     /// A CUSUM that signals also dates the change: the shift most likely began just after the last
     /// period at which the statistic was 0, i.e. `N⁺` periods back, where `N⁺` counts the consecutive
@@ -204,9 +204,22 @@ impl ItemJudgement {
     /// statistic was already climbing: a drip or a split delivery gets its early files in before the
     /// stream rule can fire. Recalling them keeps that poison out of the next training run; a reviewer
     /// releases whatever was right. The run is bounded by the batches in the vendor's evidence window.
+    ///
+    /// Only where the hold needed the run: a batch whose own step crosses `h` (`L > h`) would have been
+    /// held from a statistic at 0, so it dates the change at itself, and the batches before it — clean
+    /// ones often leave the statistic a little above 0 — are not recalled. (Without this, two clean
+    /// batches followed by one with 30 % flipped labels recalled the clean ones in the daemon tests.)
     pub fn recall(&self) -> u32 {
-        let drift = if self.drift() { self.cusum_run } else { 0 };
-        let fit = if self.unlikely() { self.fit_run } else { 0 };
+        let drift = if self.drift() && self.llr <= self.cusum_h {
+            self.cusum_run
+        } else {
+            0
+        };
+        let fit = if self.unlikely() && self.fit_step <= self.fit_cusum_h {
+            self.fit_run
+        } else {
+            0
+        };
         drift.max(fit)
     }
 

@@ -507,7 +507,8 @@ fn the_label_fit_cusum_has_the_published_run_lengths() {
 /// held reaching back over four. A right-labelled batch (`−15`) between them lowers the statistic without
 /// reaching 0, so the run goes on; one that brings it to 0 ends it. Without the setting nothing is
 /// recalled; a hold by the batch test alone (statistic at 0) reaches back over nothing; a reviewer's
-/// restart (`reset_cusum`) clears both statistics and their runs. Fails with the run restarted at 1
+/// restart (`reset_cusum`) clears both statistics and their runs; a batch that crosses `h` on its own
+/// recalls nothing (without that rule, the test fails there). Fails with the run restarted at 1
 /// instead of 0, or the runs left out of `reset_cusum`; the next test fails with the run restarted at
 /// every positive step (each tried by hand).
 #[test]
@@ -547,6 +548,13 @@ fn a_hold_by_a_stream_rule_recalls_the_batches_since_its_statistic_was_last_zero
     assert_eq!(lower.evidence.fit_run, 3);
     deliver(&s, &mut lower, &[right]);
     assert_eq!((lower.evidence.fit_cusum, lower.evidence.fit_run), (0.0, 0));
+    // A batch that crosses h on its own (step 45 > 40 from 36) dates the change at itself: the run
+    // before it is not recalled (`L > h`), though the statistic was above 0.
+    let jump = fitted(150, 8, 0.05, -60.0 / 150f64.sqrt());
+    let alone = decide_batch(&s, &h, &jump);
+    assert_eq!(alone.verdict, Verdict::Quarantine);
+    assert!((alone.items.as_ref().unwrap().fit_step - 45.0).abs() < 1e-9);
+    assert_eq!(alone.recall, 0);
     // A hold by the batch test alone: the statistics stand at 0, nothing to reach back over.
     let fresh = established(&s);
     let excess = decide_batch(&s, &fresh, &batch(150, 40, 0.05));

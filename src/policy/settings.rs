@@ -141,7 +141,8 @@ pub struct PolicySettings {
     /// When a stream rule (`flagged_items_drift`, `labels_unlikely`) holds a batch, also take the vendor's
     /// accepted batches since that CUSUM was last 0 back out of the pool for review (see
     /// `ItemJudgement::recall`): the files a drip or a split delivery got in while the statistic was
-    /// still climbing. Default true.
+    /// still climbing; only where the hold needed them (a batch whose own step crosses `h` recalls
+    /// nothing). Default true.
     pub recall_on_drift: bool,
     /// Lowest level a vendor is judged against (keeps the likelihood ratio finite). Fraction; default 0.005.
     pub item_level_floor: f64,

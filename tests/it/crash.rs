@@ -131,15 +131,24 @@ fn sigkill_at_random_moments_loses_nothing_and_repeats_nothing() {
     }
     assert_eq!(verdicts.len(), recs.len());
     let mut files_seen = 0;
+    let mut recalled = 0;
     for r in &recs {
         let outcome = &verdicts[&r.id];
         let folder = match outcome.as_str() {
+            // An accepted batch a later hold recalled (`recalled_on_drift`) is in quarantine, out of the
+            // pool; nothing else moves a batch in this test (no reviewer).
+            "accepted" if r.recalled.is_some() => "quarantine",
             "accepted" => "accepted",
             "quarantined" => "quarantine",
             "rejected" | "duplicate" => "rejected",
             other => panic!("unknown outcome {other}"),
         };
         assert_eq!(r.outcome.map(|o| o.as_str()), Some(outcome.as_str()));
+        if r.recalled.is_some() {
+            assert_eq!(r.state, BatchState::Quarantined, "{}", r.id);
+            assert!(r.pool_seq.is_none(), "{} recalled but in the pool", r.id);
+            recalled += 1;
+        }
         assert!(
             ws.path(folder).join(&r.file_name).exists(),
             "{} ({outcome}) not in {folder}/",
@@ -190,7 +199,9 @@ fn sigkill_at_random_moments_loses_nothing_and_repeats_nothing() {
     // recovery paths); a test whose kills all land while the daemon is idle checks nothing. Shown to fail
     // by a planted defect in this test (waiting for every delivered file to settle before each kill: 0 of
     // 24 kills mid-batch).
-    println!("{kills_mid_batch} of {rounds} kills left a batch between claim and filing");
+    println!(
+        "{kills_mid_batch} of {rounds} kills left a batch between claim and filing; {recalled} batches recalled"
+    );
     assert!(
         kills_mid_batch >= rounds / 4,
         "only {kills_mid_batch} of {rounds} kills hit a batch in flight"

@@ -52,16 +52,17 @@ fn metric(addr: std::net::SocketAddr, name: &str) -> Option<f64> {
         .and_then(|v| v.parse().ok())
 }
 
-/// The item CUSUM is made sensitive and the batch rules blunt (a test setting, so that a stream rule —
-/// the item CUSUM or the label fit's — is what holds): the drip's files are accepted while the statistic climbs, and the file that
-/// crosses `h` recalls them. The drip's 300-item files carry 1 %, 2 %, 3 %, … uniform flips (a slow
-/// drip); it is delivered file by file until one is held (at most 8).
+/// The batch rules are blunted and the label-fit CUSUM's interval widened (test settings: on the plant
+/// a 300-item file with 3 % flipped labels steps that statistic by about 47, past the default `h` = 40
+/// on its own, and a batch that crosses `h` by itself recalls nothing), so that the drip's first files
+/// are accepted while the statistic climbs and a later file's hold needs them. The drip's 300-item files
+/// carry 1 %, 2 %, 3 %, … uniform flips; it is delivered file by file until one is held (at most 8).
 #[test]
 fn a_stream_hold_recalls_the_batches_accepted_since_its_statistic_was_last_zero() {
     let ws = Ws::with(
         &["drip-co"],
         &[
-            ("item_cusum_h = 8.0", "item_cusum_h = 3.0"),
+            ("fit_cusum_h = 40.0", "fit_cusum_h = 100.0"),
             ("item_alpha = 1e-4", "item_alpha = 1e-300"),
             ("label_alpha = 1e-4", "label_alpha = 1e-300"),
             (
