@@ -132,3 +132,36 @@ fn signals_saved_without_the_sharpness_read_it_as_one() {
     let back: BatchSignals = serde_json::from_value(v).expect("signals deserialise");
     assert_eq!(back.clean_level_sharpness, 1.0);
 }
+
+/// The clean level the item rules start from: the computed share where it is a positive finite number
+/// (capped at 1), `clean_level_unknown` otherwise — a share of exactly 0 means "not computed" (records
+/// from before the engine computed it). Written for the mutation run of `mod.rs` (`>` → `>=` and `&&` →
+/// `||` in `clean_level` survived: no test gave it 0 or an infinite share).
+#[test]
+fn the_clean_level_is_the_computed_share_only_where_it_is_positive_and_finite() {
+    let s = PolicySettings::default();
+    let with = |c: f64| BatchSignals {
+        clean_flagged_share: c,
+        ..BatchSignals::invalid()
+    };
+    assert_eq!(with(0.3).clean_level(&s), 0.3);
+    assert_eq!(with(1.5).clean_level(&s), 1.0);
+    for c in [0.0, -0.1, f64::INFINITY, f64::NAN] {
+        assert_eq!(with(c).clean_level(&s), s.clean_level_unknown, "{c}");
+    }
+}
+
+/// `separates_poorly` is strict: a batch whose right labels would flag exactly `cold_start_weak_model_share`
+/// is not a weak-model batch, the next representable share above it is (mutation run of `mod.rs`: `>` →
+/// `>=` survived).
+#[test]
+fn a_weak_model_is_one_strictly_above_the_share() {
+    let s = PolicySettings::default();
+    let with = |e: f64| BatchSignals {
+        expected_flagged_share: e,
+        ..BatchSignals::invalid()
+    };
+    let limit = s.cold_start_weak_model_share;
+    assert!(!with(limit).separates_poorly(&s));
+    assert!(with(f64::from_bits(limit.to_bits() + 1)).separates_poorly(&s));
+}

@@ -278,6 +278,36 @@ fn head_start_applies_when_leaving_cold_start() {
     assert_relative_eq!(h.cusum, 2.5);
 }
 
+/// Leaving cold start at exactly `min_history` values: the next value is judged against the baseline
+/// (its CUSUM step is taken and it waits aside while the statistic is above 0) rather than joining the
+/// baseline unjudged; with a one-value cold start the head start is set by that one value. Written for the
+/// mutation run of `mod.rs` (`<` → `<=` and `>=` → `<` at the cold-start edge of `record_value` survived:
+/// the head-start test above leaves cold start with `min_history` = 8, where the second mutant happens to
+/// end with the same statistic).
+#[test]
+fn the_value_after_cold_start_is_judged_and_a_one_value_cold_start_gets_its_head_start() {
+    let s = batch_rules();
+    let mut h = VendorHistory::default();
+    for _ in 0..s.min_history {
+        h.record_accepted(&s, &cost_only(0.0));
+    }
+    assert_eq!((h.accepted_costs.len(), h.cusum), (s.min_history, 0.0));
+    h.record_accepted(&s, &cost_only(0.5));
+    assert!(h.cusum > 0.0, "{h:?}");
+    assert_eq!(
+        (h.accepted_costs.len(), h.pending_costs.len()),
+        (s.min_history, 1)
+    );
+    let one = PolicySettings {
+        min_history: 1,
+        cusum_head_start: true,
+        ..batch_rules()
+    };
+    let mut h = VendorHistory::default();
+    h.record_accepted(&one, &cost_only(0.0));
+    assert_relative_eq!(h.cusum, one.cusum_h / 2.0);
+}
+
 #[test]
 fn invalid_scores_quarantine() {
     let s = batch_rules();
