@@ -454,6 +454,12 @@ fn label_fit_run_lengths(s: &PolicySettings, n: usize, shift: f64, runs: usize, 
         let mut len = 0usize;
         loop {
             len += 1;
+            // A chart that never signals fails here instead of hanging the test (the in-control mean is
+            // about 930 steps; a run of 10⁶ has probability far below 10⁻¹⁰⁰ — a defect, not noise).
+            assert!(
+                len <= 1_000_000,
+                "the label-fit CUSUM never fired in 10⁶ batches"
+            );
             let z: f64 = StandardNormal.sample(&mut rng);
             let b = fit_only(n, z - shift);
             if ev.judge(s, &b).unlikely() {

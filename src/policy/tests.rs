@@ -934,3 +934,34 @@ fn the_per_label_test_runs_only_when_asked() {
     assert!(d.labels.is_empty(), "{:?}", d.labels);
     assert!(!codes(&d).contains(&ReasonCode::FlaggedItemsInClass));
 }
+
+/// The values held aside during a CUSUM excursion and the baseline they join afterwards both stay within
+/// `history_window`: twelve values that climb the statistic leave ten aside, and when it returns to 0
+/// the baseline keeps its newest ten. Written for the mutation run of `mod.rs` (`>` → `==` / `>=` in
+/// `record_value`'s two trims survived: no test held more values aside than the window).
+#[test]
+fn the_held_aside_values_and_the_baseline_stay_within_the_window() {
+    let s = PolicySettings {
+        history_window: 10,
+        ..batch_rules()
+    };
+    let mut h = VendorHistory::default();
+    for _ in 0..s.min_history {
+        h.record_accepted(&s, &cost_only(0.0));
+    }
+    for _ in 0..12 {
+        h.record_accepted(&s, &cost_only(0.006));
+    }
+    assert!(h.cusum > 0.0, "{h:?}");
+    assert_eq!(
+        (h.accepted_costs.len(), h.pending_costs.len()),
+        (s.min_history, 10)
+    );
+    let mut zeros = 0;
+    while h.cusum > 0.0 {
+        h.record_accepted(&s, &cost_only(0.0));
+        zeros += 1;
+        assert!(zeros < 100, "{h:?}");
+    }
+    assert_eq!((h.accepted_costs.len(), h.pending_costs.len()), (10, 0));
+}
