@@ -11,7 +11,7 @@
 //! 1. each moves `accepted → quarantined` with its pool entry removed (the pool epoch changes, so the
 //!    scoring worker rebuilds its summary exactly), an audit record `recall` naming the held batch, the
 //!    record's [`crate::store::Recall`], and a vendor notice `recalled` stored in the same transaction
-//!    (the outbox of review decisions: [`super::finish_pending`] sends what a crash left);
+//!    (the outbox of review decisions: `review::finish_pending` sends what a crash left);
 //! 2. then, best effort, the file moves to `quarantine/` and the notice is written.
 //!
 //! Idempotent: a batch no longer accepted (already recalled, withdrawn) is left alone, so the daemon can
@@ -60,7 +60,7 @@ pub fn recall_targets(store: &Store, held: &BatchRecord) -> Result<Vec<BatchReco
 
 /// Recall the batches [`recall_targets`] names that are still accepted (module documentation). Returns
 /// the ids recalled now; problems with a file move or a notice are logged and left to
-/// [`super::finish_pending`].
+/// `review::finish_pending`.
 pub fn recall_accepted(
     ws: &Workspace,
     config: &Config,
