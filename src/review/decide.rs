@@ -206,7 +206,14 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         BatchState::Released,
         pool,
         vec![audit],
-        |r| r.pending_notices.push(n.clone()),
+        |r| {
+            r.pending_notices.push(n.clone());
+            // A recalled batch's items held back at its acceptance: this release decides every item
+            // (the plan above), so none stays waiting for `quarantine admit`, which would add it twice.
+            if r.recalled.is_some() {
+                r.held.clear();
+            }
+        },
         |h| {
             if let Some(s) = &released {
                 h.record_released(policy, s);

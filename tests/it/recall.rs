@@ -223,6 +223,12 @@ fn a_stream_hold_recalls_the_batches_accepted_since_its_statistic_was_last_zero(
     let before = ok_json(&["quarantine", "show", &dir, &held_id, "--json"]);
     let accepted_before = before["vendor"]["accepted_total"].as_u64().unwrap();
     let one = recalled[0]["batch_id"].as_str().unwrap();
+    let shown = ok_json(&["quarantine", "show", &dir, one, "--json"]);
+    let kept_back = shown["batch"]["held"].as_array().map_or(0, Vec::len);
+    assert!(
+        kept_back > 0,
+        "its flagged items were held back at acceptance: {shown}"
+    );
     let r = ok_json(&[
         "quarantine",
         "release",
@@ -235,6 +241,17 @@ fn a_stream_hold_recalls_the_batches_accepted_since_its_statistic_was_last_zero(
         "--json",
     ]);
     assert_eq!(r["state"], "released");
+    // The release decided every item: none of its earlier held-back items waits for `quarantine admit`
+    // (which would add it to the pool a second time).
+    let waiting = ok_json(&["quarantine", "held", &dir, "--json"]);
+    assert!(
+        !waiting
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|e| e["batch_id"] == one),
+        "{waiting}"
+    );
     let after = ok_json(&["quarantine", "show", &dir, &held_id, "--json"]);
     assert_eq!(
         after["vendor"]["accepted_total"].as_u64().unwrap(),
