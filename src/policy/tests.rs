@@ -965,3 +965,23 @@ fn the_held_aside_values_and_the_baseline_stay_within_the_window() {
     }
     assert_eq!((h.accepted_costs.len(), h.pending_costs.len()), (10, 0));
 }
+
+/// Released batches join both baselines directly, each kept to `history_window` values: five releases
+/// into a three-value window leave the newest three of each. Written for the mutation run of `mod.rs`
+/// (`>` → `==` in `record_released`'s flagged-share trim survived: no test released more batches than
+/// the window holds).
+#[test]
+fn released_batches_keep_both_baselines_within_the_window() {
+    let s = PolicySettings {
+        history_window: 3,
+        ..batch_rules()
+    };
+    let mut h = VendorHistory::default();
+    for i in 0..5 {
+        h.record_released(&s, &share(f64::from(i) / 100.0, 1_000));
+    }
+    assert_eq!(h.accepted_total, 5);
+    assert_eq!(h.accepted_costs.len(), 3);
+    let kept: Vec<f64> = h.flagged_share.accepted.iter().copied().collect();
+    assert_eq!(kept, [0.02, 0.03, 0.04]);
+}
