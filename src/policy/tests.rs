@@ -985,3 +985,19 @@ fn released_batches_keep_both_baselines_within_the_window() {
     let kept: Vec<f64> = h.flagged_share.accepted.iter().copied().collect();
     assert_eq!(kept, [0.02, 0.03, 0.04]);
 }
+
+/// A vendor is in cold start, per signal, until it has `min_history` accepted values: one short of it
+/// it is, at it it is not. Written for the mutation run of `mod.rs` (`is_cold` returning false, `<` →
+/// `==` / `<=` in both survived: the tests only asked after far more, or far fewer, batches).
+#[test]
+fn cold_start_ends_exactly_at_min_history_for_each_signal() {
+    let s = batch_rules();
+    let mut h = VendorHistory::default();
+    assert!(h.is_cold(&s) && h.flagged_share_is_cold(&s));
+    for _ in 0..s.min_history - 1 {
+        h.record_accepted(&s, &share(0.05, 1_000));
+    }
+    assert!(h.is_cold(&s) && h.flagged_share_is_cold(&s));
+    h.record_accepted(&s, &share(0.05, 1_000));
+    assert!(!h.is_cold(&s) && !h.flagged_share_is_cold(&s));
+}
