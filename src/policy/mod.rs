@@ -949,6 +949,8 @@ pub fn decide_batch(
 }
 
 #[cfg(test)]
+mod history_tests;
+#[cfg(test)]
 mod signals_tests;
 #[cfg(test)]
 mod tests;
