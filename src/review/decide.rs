@@ -686,23 +686,24 @@ pub fn withdraw(env: &ReviewEnv<'_>, req: &WithdrawRequest) -> Result<DecisionRe
     Ok(report)
 }
 
+/// The notice's reference to a batch, for a decision taken now.
+pub(super) fn batch_ref_now(rec: &BatchRecord) -> BatchRef {
+    BatchRef {
+        batch_id: rec.id.clone(),
+        vendor: rec.vendor.clone(),
+        file_name: Some(rec.original_name.clone()),
+        sha256: rec.sha256.clone(),
+        received_at: rec.claimed_at,
+        decided_at: Utc::now(),
+    }
+}
+
 pub(super) fn review_notice(
     rec: &BatchRecord,
     verdict: NoticeVerdict,
     reason: NoticeReason,
 ) -> Notice {
-    let mut n = Notice::new(
-        verdict,
-        DecidedBy::Reviewer,
-        BatchRef {
-            batch_id: rec.id.clone(),
-            vendor: rec.vendor.clone(),
-            file_name: Some(rec.original_name.clone()),
-            sha256: rec.sha256.clone(),
-            received_at: rec.claimed_at,
-            decided_at: Utc::now(),
-        },
-    );
+    let mut n = Notice::new(verdict, DecidedBy::Reviewer, batch_ref_now(rec));
     n.reasons.push(reason);
     // The policy's original reasons (their numbers are removed unless scores are disclosed).
     if let Some(d) = &rec.decision {

@@ -22,12 +22,12 @@
 use chrono::Utc;
 
 use crate::config::Config;
-use crate::notice::{BatchRef, DecidedBy, Notice, NoticeReason, NoticeVerdict};
+use crate::notice::{DecidedBy, Notice, NoticeReason, NoticeVerdict};
 use crate::policy::Verdict;
 use crate::store::{AuditRecord, BatchRecord, BatchState, PoolChange, Recall, Store, StoreError};
 use crate::workspace::Workspace;
 
-use super::decide::{move_for_state, send_pending_notice};
+use super::decide::{batch_ref_now, move_for_state, send_pending_notice};
 
 /// The reason code of a recall in notices and the audit trail.
 pub const RECALLED_ON_DRIFT: &str = "recalled_on_drift";
@@ -143,14 +143,7 @@ fn recall_notice(rec: &BatchRecord, held: &BatchRecord) -> Notice {
     let mut n = Notice::new(
         NoticeVerdict::Recalled,
         DecidedBy::Policy,
-        BatchRef {
-            batch_id: rec.id.clone(),
-            vendor: rec.vendor.clone(),
-            file_name: Some(rec.original_name.clone()),
-            sha256: rec.sha256.clone(),
-            received_at: rec.claimed_at,
-            decided_at: Utc::now(),
-        },
+        batch_ref_now(rec),
     );
     n.reasons.push(NoticeReason::new(
         RECALLED_ON_DRIFT,

@@ -1,7 +1,6 @@
 //! Recall through the daemon: a vendor's drip gets its first files accepted while a stream rule's CUSUM
-//! climbs;
-//! when a later file crosses the decision interval, the batches accepted since the statistic last stood
-//! at 0 go back to quarantine, out of the pool, with a notice that names no item, and a reviewer can
+//! climbs; when a later file crosses the decision interval, the batches accepted since the statistic last
+//! stood at 0 go back to quarantine, out of the pool, with a notice that names no item, and a reviewer can
 //! release one without counting it twice in the vendor's record.
 
 use std::collections::HashMap;
@@ -9,19 +8,10 @@ use std::time::{Duration, Instant};
 
 use serde_json::Value;
 
+use crate::review::{metric, ok_json};
 use crate::util::*;
 
 const T: Duration = Duration::from_secs(120);
-
-fn ok_json(args: &[&str]) -> Value {
-    let out = run_bin(args);
-    assert!(
-        out.status.success(),
-        "{args:?}: {}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    serde_json::from_slice(&out.stdout).unwrap()
-}
 
 /// Batch id → (outcome, reason) of every `recall` record in the audit trail.
 fn recalls(dir: &str) -> HashMap<String, (String, String)> {
@@ -42,14 +32,6 @@ fn recalls(dir: &str) -> HashMap<String, (String, String)> {
         }
     }
     m
-}
-
-fn metric(addr: std::net::SocketAddr, name: &str) -> Option<f64> {
-    let (_, body) = http_get(addr, "/metrics").ok()?;
-    body.lines()
-        .find(|l| l.starts_with(name) && l[name.len()..].starts_with(' '))
-        .and_then(|l| l.split_whitespace().nth(1))
-        .and_then(|v| v.parse().ok())
 }
 
 /// The batch rules are blunted and the label-fit CUSUM's interval widened (test settings: on the plant

@@ -30,7 +30,7 @@ fn lw(args: &[&str]) -> Output {
     run_bin(args)
 }
 
-fn ok_json(args: &[&str]) -> Value {
+pub(crate) fn ok_json(args: &[&str]) -> Value {
     let out = lw(args);
     assert!(
         out.status.success(),
@@ -127,7 +127,7 @@ fn queue(dir: &str) -> HashMap<String, String> {
         .collect()
 }
 
-fn metric(addr: std::net::SocketAddr, name: &str) -> Option<f64> {
+pub(crate) fn metric(addr: std::net::SocketAddr, name: &str) -> Option<f64> {
     let (_, body) = http_get(addr, "/metrics").ok()?;
     body.lines()
         .find(|l| l.starts_with(name) && l[name.len()..].starts_with(' '))
