@@ -399,6 +399,13 @@ impl Filer {
             }
         };
         self.metrics.stage("notice", t.elapsed());
+        // A hold that recalled batches took items out of the pool: the scoring worker rebuilds its summary
+        // (it catches up only when told, or at its hourly refresh).
+        if settled.outcome == Some(Outcome::Quarantined)
+            && settled.decision.as_ref().is_some_and(|d| d.recall > 0)
+        {
+            self.shared.pool_changed.store(true, Ordering::SeqCst);
+        }
         let outcome = settled.outcome.map_or("rejected", |o| o.as_str());
         self.metrics.batch_outcome(
             &settled.vendor,

@@ -169,6 +169,25 @@ fn a_stream_hold_recalls_the_batches_accepted_since_its_statistic_was_last_zero(
         let id = e["batch_id"].as_str().unwrap();
         assert!(!accepted.iter().any(|f| f.starts_with(id)), "{accepted:?}");
     }
+    // The scoring worker's pool (what the next batch is judged against, and the pool-size metric) drops
+    // the recalled items too: it ends at the admitted items of the batches still accepted.
+    let in_pool: u64 = accepted
+        .iter()
+        .map(|f| {
+            let id = f.split('.').next().unwrap();
+            let b = &ok_json(&["quarantine", "show", &dir, id, "--json"])["batch"];
+            b["items"].as_u64().unwrap() - b["held"].as_array().map_or(0, Vec::len) as u64
+        })
+        .sum();
+    let t = Instant::now();
+    while metric(d.addr, "labelweir_pool_items") != Some(in_pool as f64) {
+        assert!(
+            t.elapsed() < T,
+            "pool items {:?}, {in_pool} admitted in accepted batches",
+            metric(d.addr, "labelweir_pool_items")
+        );
+        std::thread::sleep(Duration::from_millis(100));
+    }
 
     // The recall notices name no item and validate against the schema.
     let notices = ws.path("notices").join("drip-co");
