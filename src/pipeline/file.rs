@@ -16,7 +16,7 @@
 //! 3. writes the vendor notice into `notices/<vendor>/` through [`crate::notice`] (atomic; every notice says
 //!    that a flag is a suspicion pending review, not proof);
 //! 4. for a batch held by a stream rule, recalls the vendor's batches accepted since that rule's
-//!    statistic was last 0 ([`crate::review::recall_accepted`]; idempotent);
+//!    statistic was last 0 ([`super::recall::recall_accepted`]; idempotent);
 //! 5. records the terminal state with an audit record naming the folder, the notice files and the
 //!    recalled batches (flushed).
 //!
@@ -61,7 +61,7 @@ pub enum FileError {
     Panicked,
 }
 
-fn io_err(op: &'static str, path: &Path) -> impl FnOnce(std::io::Error) -> FileError {
+pub(crate) fn io_err(op: &'static str, path: &Path) -> impl FnOnce(std::io::Error) -> FileError {
     let path = path.to_path_buf();
     move |source| FileError::Io { op, path, source }
 }
@@ -282,9 +282,9 @@ pub fn settle(
         }
     }
     // A hold by a stream rule reaches back over the vendor's batches accepted since the rule's statistic
-    // was last 0 (`review::recall_accepted`); before the batch is settled, so a crash redoes it.
+    // was last 0 (`recall::recall_accepted`); before the batch is settled, so a crash redoes it.
     let recalled = if outcome == Outcome::Quarantined {
-        crate::review::recall_accepted(ws, config, store, record)?
+        super::recall::recall_accepted(ws, config, store, record)?
     } else {
         Vec::new()
     };

@@ -55,6 +55,8 @@ use crate::store::{BatchRecord, RejectReason, StoreError};
 pub mod features;
 pub mod file;
 pub mod ingest;
+pub mod outbox;
+pub mod recall;
 pub mod score;
 pub mod verdict;
 pub mod watch;

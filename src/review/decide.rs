@@ -10,18 +10,18 @@ use serde::{Deserialize, Serialize};
 use crate::config::Config;
 use crate::data::{Classes, Table};
 use crate::notice;
-use crate::notice::{
-    item_codes, BatchRef, DecidedBy, Notice, NoticeItem, NoticeReason, NoticeVerdict,
-};
+use crate::notice::{item_codes, DecidedBy, Notice, NoticeItem, NoticeReason, NoticeVerdict};
 use crate::policy::Verdict;
 use crate::store::{
     AuditRecord, BatchRecord, BatchState, PoolChange, PoolEntry, Store, TrustedItem, RECORD_VERSION,
 };
 use crate::workspace::Workspace;
 
+use crate::pipeline::outbox::{batch_ref_now, move_for_state, send_pending_notice};
+
 use super::{
-    folder_for_state, get_batch, io_err, page_name, read_batch_table, RejectRequest,
-    ReleaseRequest, ReviewEnv, ReviewError, WithdrawRequest,
+    folder_for_state, get_batch, read_batch_table, RejectRequest, ReleaseRequest, ReviewEnv,
+    ReviewError, WithdrawRequest,
 };
 
 /// What a decision did.
@@ -686,18 +686,6 @@ pub fn withdraw(env: &ReviewEnv<'_>, req: &WithdrawRequest) -> Result<DecisionRe
     Ok(report)
 }
 
-/// The notice's reference to a batch, for a decision taken now.
-pub(super) fn batch_ref_now(rec: &BatchRecord) -> BatchRef {
-    BatchRef {
-        batch_id: rec.id.clone(),
-        vendor: rec.vendor.clone(),
-        file_name: Some(rec.original_name.clone()),
-        sha256: rec.sha256.clone(),
-        received_at: rec.claimed_at,
-        decided_at: Utc::now(),
-    }
-}
-
 pub(super) fn review_notice(
     rec: &BatchRecord,
     verdict: NoticeVerdict,
@@ -739,88 +727,6 @@ pub(super) fn finish_decision(
             "writing the vendor notice failed ({e}); the next review command retries"
         )),
     }
-}
-
-/// Write a record's pending vendor notices, then remove them from the record in the store together with
-/// an audit entry each naming the files ([`Store::notices_sent`]). Writing is idempotent (same file
-/// names), so a crash between the two, or two processes finishing the same decision, only writes the
-/// same files again. Returns the file names (none when nothing was pending).
-pub(super) fn send_pending_notice(
-    ws: &Workspace,
-    config: &Config,
-    store: &Store,
-    rec: &BatchRecord,
-    by: &str,
-) -> Result<Vec<String>, ReviewError> {
-    if rec.pending_notices.is_empty() {
-        return Ok(Vec::new());
-    }
-    let dir = ws.notices(&rec.vendor);
-    let mut files = Vec::new();
-    let mut audits = Vec::new();
-    for pending in &rec.pending_notices {
-        let paths =
-            notice::write_notice(&dir, pending, &config.notices).map_err(io_err(dir.display()))?;
-        let these: Vec<String> = paths
-            .iter()
-            .filter_map(|p| p.file_name().map(|s| s.to_string_lossy().into_owned()))
-            .collect();
-        audits.push(
-            AuditRecord::new(by, "notice")
-                .batch(&rec.id, &rec.vendor)
-                .outcome(pending.verdict.as_str())
-                .detail(serde_json::json!({ "files": these })),
-        );
-        files.extend(these);
-    }
-    // Recorded only if still pending: whoever sent them first keeps the single audit entry.
-    store.notices_sent(&rec.id, &rec.pending_notices, &files, audits)?;
-    Ok(files)
-}
-
-/// Move a decided batch's file (and its report) out of `quarantine/` or `accepted/` into the folder its
-/// state calls for. Idempotent; returns where the file is.
-pub(super) fn move_for_state(
-    ws: &Workspace,
-    rec: &BatchRecord,
-) -> Result<Option<PathBuf>, ReviewError> {
-    let Some(dest) = folder_for_state(rec.state) else {
-        return Ok(None);
-    };
-    let dest_dir = ws.folder(dest);
-    let target = dest_dir.join(&rec.file_name);
-    let report_name = crate::pipeline::file::report_name(rec);
-    let page_name = page_name(&rec.id);
-    for src in ["quarantine", "accepted"] {
-        if src == dest {
-            continue;
-        }
-        let src_dir = ws.folder(src);
-        let mut moved = false;
-        // The review page `quarantine show` wrote beside the report travels with it.
-        for name in [
-            rec.file_name.as_str(),
-            report_name.as_str(),
-            page_name.as_str(),
-        ] {
-            let from = src_dir.join(name);
-            if std::fs::symlink_metadata(&from).is_ok() {
-                let to = dest_dir.join(name);
-                if std::fs::symlink_metadata(&to).is_ok() {
-                    // A previous attempt already put a copy there.
-                    std::fs::remove_file(&from).map_err(io_err(from.display()))?;
-                } else {
-                    std::fs::rename(&from, &to).map_err(io_err(from.display()))?;
-                }
-                moved = true;
-            }
-        }
-        if moved {
-            crate::fsx::sync_dir(&dest_dir).map_err(io_err(dest_dir.display()))?;
-            crate::fsx::sync_dir(&src_dir).map_err(io_err(src_dir.display()))?;
-        }
-    }
-    Ok(target.exists().then_some(target))
 }
 
 /// Finish what a crash interrupted after a review decision was recorded: file moves and vendor notices.

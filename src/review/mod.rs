@@ -47,7 +47,6 @@ mod held;
 mod page;
 mod page_parts;
 mod projection;
-mod recall;
 mod rescan;
 mod show;
 mod sweep;
@@ -59,7 +58,6 @@ pub use explain::*;
 pub use held::*;
 pub use page::*;
 use projection::*;
-pub use recall::*;
 pub use rescan::*;
 pub use show::*;
 pub use sweep::*;
@@ -141,6 +139,18 @@ impl ReviewError {
                 source: None,
             },
             _ => Self::Model(message),
+        }
+    }
+}
+
+impl From<crate::pipeline::file::FileError> for ReviewError {
+    fn from(e: crate::pipeline::file::FileError) -> Self {
+        match e {
+            crate::pipeline::file::FileError::Store(s) => s.into(),
+            other => Self::Io {
+                message: other.to_string(),
+                source: None,
+            },
         }
     }
 }

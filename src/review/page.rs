@@ -8,6 +8,8 @@ use crate::store::{BatchRecord, BatchState};
 use crate::text::html_escape;
 use crate::workspace::Workspace;
 
+pub(crate) use crate::pipeline::outbox::page_name;
+
 use super::{folder_for_state, Projection, ShowReport};
 
 /// Colour for a suspicion in `[0, 1]`: a linear blend from blue (`#2166ac`, low) to red (`#b2182b`,
@@ -30,11 +32,6 @@ pub(super) fn suspicion_colour(s: Option<f64>) -> String {
             )
         }
     }
-}
-
-/// The review page's file name, beside the batch's report: `<batch id>.review.html`.
-pub(crate) fn page_name(batch_id: &str) -> String {
-    format!("{batch_id}.review.html")
 }
 
 /// Where `quarantine show` writes a batch's review page by default: beside its report, in the folder of

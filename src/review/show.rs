@@ -54,7 +54,7 @@ pub fn list(env: &ReviewEnv<'_>) -> Result<Vec<QueueEntry>, ReviewError> {
         .into_iter()
         .map(|r| QueueEntry {
             reasons: match (&r.recalled, &r.decision) {
-                (Some(_), _) => vec![super::RECALLED_ON_DRIFT.to_string()],
+                (Some(_), _) => vec![crate::pipeline::recall::RECALLED_ON_DRIFT.to_string()],
                 (None, Some(d)) => d
                     .reasons
                     .iter()
@@ -367,18 +367,7 @@ pub(super) fn get_batch(store: &Store, batch: &str) -> Result<BatchRecord, Revie
     )))
 }
 
-/// The folder a batch's file is in for its state (`None` when it has none).
-pub fn folder_for_state(state: BatchState) -> Option<&'static str> {
-    match state {
-        BatchState::Accepted | BatchState::Released => Some("accepted"),
-        BatchState::Quarantined => Some("quarantine"),
-        BatchState::Rejected
-        | BatchState::Duplicate
-        | BatchState::ReviewRejected
-        | BatchState::Withdrawn => Some("rejected"),
-        BatchState::Claimed | BatchState::Decided | BatchState::Vanished => None,
-    }
-}
+pub use crate::pipeline::outbox::folder_for_state;
 
 pub(super) fn read_batch_table(
     env: &ReviewEnv<'_>,

@@ -11,7 +11,7 @@
 //! 1. each moves `accepted → quarantined` with its pool entry removed (the pool epoch changes, so the
 //!    scoring worker rebuilds its summary exactly), an audit record `recall` naming the held batch, the
 //!    record's [`crate::store::Recall`], and a vendor notice `recalled` stored in the same transaction
-//!    (the outbox of review decisions: `review::finish_pending` sends what a crash left);
+//!    (the outbox of review decisions, [`super::outbox`]: `review::finish_pending` sends what a crash left);
 //! 2. then, best effort, the file moves to `quarantine/` and the notice is written.
 //!
 //! Idempotent: a batch no longer accepted (already recalled, withdrawn) is left alone, so the daemon can
@@ -27,7 +27,7 @@ use crate::policy::Verdict;
 use crate::store::{AuditRecord, BatchRecord, BatchState, PoolChange, Recall, Store, StoreError};
 use crate::workspace::Workspace;
 
-use super::decide::{batch_ref_now, move_for_state, send_pending_notice};
+use super::outbox::{batch_ref_now, move_for_state, send_pending_notice};
 
 /// The reason code of a recall in notices and the audit trail.
 pub const RECALLED_ON_DRIFT: &str = "recalled_on_drift";
