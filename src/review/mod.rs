@@ -147,6 +147,10 @@ impl From<crate::pipeline::file::FileError> for ReviewError {
     fn from(e: crate::pipeline::file::FileError) -> Self {
         match e {
             crate::pipeline::file::FileError::Store(s) => s.into(),
+            crate::pipeline::file::FileError::Io { op, path, source } => Self::Io {
+                message: format!("{op} {}: {source}", path.display()),
+                source: Some(source),
+            },
             other => Self::Io {
                 message: other.to_string(),
                 source: None,
