@@ -72,13 +72,7 @@ pub fn recall_accepted(
         .decision
         .iter()
         .flat_map(|d| d.reasons.iter().map(|r| r.code))
-        .filter(|c| {
-            matches!(
-                c,
-                crate::policy::ReasonCode::FlaggedItemsDrift
-                    | crate::policy::ReasonCode::LabelsUnlikely
-            )
-        })
+        .filter(|c| c.is_stream_rule())
         .map(|c| c.as_str().to_string())
         .collect();
     let reach = targets.len() as u32;

@@ -704,6 +704,15 @@ impl ReasonCode {
                 | ReasonCode::ItemsUnlikePool
         )
     }
+
+    /// Whether the code is a stream rule, whose hold may recall the vendor's batches accepted on the
+    /// statistic's way up ([`ItemJudgement::recall`]).
+    pub fn is_stream_rule(self) -> bool {
+        matches!(
+            self,
+            ReasonCode::FlaggedItemsDrift | ReasonCode::LabelsUnlikely
+        )
+    }
 }
 
 impl std::fmt::Display for ReasonCode {
