@@ -86,11 +86,7 @@ fn file_into_folder(
     let src_dir = ws.processing();
     let src = src_dir.join(&record.file_name);
     let dst_dir = ws.folder(outcome.folder());
-    let mode = if outcome == Outcome::Quarantined {
-        0o440
-    } else {
-        0o640
-    };
+    let mode = super::outbox::mode_for_folder(outcome.folder());
     let report_name = report_name(record);
     let copied: Vec<u8>;
     let mut writes: Vec<(&str, &[u8])> = Vec::with_capacity(2);

@@ -43,8 +43,21 @@ pub fn batch_ref_now(rec: &BatchRecord) -> BatchRef {
     }
 }
 
+/// The mode a file the daemon wrote takes in a terminal folder: read-only in `quarantine/` (the evidence a
+/// reviewer judges does not change under them), owner read-write and group read elsewhere, as
+/// first filing gives it.
+pub fn mode_for_folder(folder: &str) -> u32 {
+    if folder == "quarantine" {
+        0o440
+    } else {
+        0o640
+    }
+}
+
 /// Move a decided batch's file (and its report) out of `quarantine/` or `accepted/` into the folder its
-/// state calls for. Idempotent; returns where the file is.
+/// state calls for, with that folder's mode ([`mode_for_folder`]) on the files the daemon owns: a batch
+/// recalled from `accepted/` becomes read-only, a released one writable by its owner again. Idempotent;
+/// returns where the file is.
 pub fn move_for_state(ws: &Workspace, rec: &BatchRecord) -> Result<Option<PathBuf>, FileError> {
     let Some(dest) = folder_for_state(rec.state) else {
         return Ok(None);
@@ -82,7 +95,27 @@ pub fn move_for_state(ws: &Workspace, rec: &BatchRecord) -> Result<Option<PathBu
             crate::fsx::sync_dir(&src_dir).map_err(io_err("fsync", &src_dir))?;
         }
     }
+    // On every attempt, not only after a rename: a crash between the two is mended by the next.
+    for name in [&rec.file_name, &report_name, &page_name] {
+        let path = dest_dir.join(name);
+        if std::fs::symlink_metadata(&path).is_ok() {
+            set_mode_if_ours(&path, mode_for_folder(dest))?;
+        }
+    }
     Ok(target.exists().then_some(target))
+}
+
+/// Give a regular file the daemon alone owns (its user, one link) the mode; anything else (an entry first
+/// filing moved as it was because it could not be read) keeps its own.
+fn set_mode_if_ours(path: &std::path::Path, mode: u32) -> Result<(), FileError> {
+    use std::os::unix::fs::{MetadataExt, PermissionsExt};
+    let m = std::fs::symlink_metadata(path).map_err(io_err("stat", path))?;
+    let ours = m.uid() == rustix::process::geteuid().as_raw() && m.nlink() == 1;
+    if m.is_file() && ours && m.mode() & 0o7777 != mode {
+        std::fs::set_permissions(path, std::fs::Permissions::from_mode(mode))
+            .map_err(io_err("chmod", path))?;
+    }
+    Ok(())
 }
 
 /// Write a record's pending vendor notices, then remove them from the record in the store together with

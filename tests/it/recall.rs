@@ -14,6 +14,16 @@ use crate::util::*;
 const T: Duration = Duration::from_secs(120);
 
 /// Batch id → (outcome, reason) of every `recall` record in the audit trail.
+/// A file's permission bits (panics when it is missing).
+fn mode(path: &std::path::Path) -> u32 {
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::metadata(path)
+        .unwrap_or_else(|e| panic!("{}: {e}", path.display()))
+        .permissions()
+        .mode()
+        & 0o7777
+}
+
 fn recalls(dir: &str) -> HashMap<String, (String, String)> {
     let out = run_bin(&["audit", dir, "--json"]);
     let mut m = HashMap::new();
@@ -66,12 +76,12 @@ fn a_stream_hold_recalls_the_batches_accepted_since_its_statistic_was_last_zero(
     let dir = ws.dir.display().to_string();
     let d = Daemon::start(&ws);
     ws.deliver("drip-co", "w00.csv", &clean_batch("w00", 300, 40).csv());
-    ws.wait_settled(1, T);
+    ws.wait_filed(1, T);
     let mut held: Option<Value> = None;
     for w in 1..=8u64 {
         let b = uniform_flipped_batch(&format!("w{w:02}"), 300, 40 + w, 0.01 * w as f64);
         ws.deliver("drip-co", &format!("w{w:02}.csv"), &b.csv());
-        ws.wait_settled(1 + w as usize, T);
+        ws.wait_filed(1 + w as usize, T);
         // The file just delivered (recalled files join the list too, and they are older).
         let q = ok_json(&["quarantine", "list", &dir, "--json"]);
         let name = format!("w{w:02}.csv");
@@ -157,10 +167,8 @@ fn a_stream_hold_recalls_the_batches_accepted_since_its_statistic_was_last_zero(
             "out of the pool: {show}"
         );
         let file = show["batch"]["file_name"].as_str().unwrap();
-        assert!(
-            ws.path("quarantine").join(file).exists(),
-            "{file} in quarantine/"
-        );
+        // Read-only in quarantine/, as a batch held on arrival is (it was 0640 in accepted/).
+        assert_eq!(mode(&ws.path("quarantine").join(file)), 0o440, "{file}");
     }
     // Nothing older than the run was recalled (the names above are exactly the run's files), and no
     // recalled file is left in accepted/.
@@ -242,6 +250,8 @@ fn a_stream_hold_recalls_the_batches_accepted_since_its_statistic_was_last_zero(
         "--json",
     ]);
     assert_eq!(r["state"], "released");
+    let file = shown["batch"]["file_name"].as_str().unwrap();
+    assert_eq!(mode(&ws.path("accepted").join(file)), 0o640, "{file}");
     // The release decided every item: none of its earlier held-back items waits for `quarantine admit`
     // (which would add it to the pool a second time).
     let waiting = ok_json(&["quarantine", "held", &dir, "--json"]);

@@ -84,7 +84,7 @@ fn fixture_workspace() -> (Ws, HashMap<String, String>) {
     let d = Daemon::start(&ws);
     let read = |rel: &str| std::fs::read(fixture(rel)).unwrap();
     ws.deliver("acme", "pool.csv", &read("pool.csv"));
-    ws.wait_settled(1, T);
+    ws.wait_filed(1, T);
     let dir_s = ws.dir.display().to_string();
     let held = ok_json(&["quarantine", "list", &dir_s, "--json"]);
     if let Some(p) = held.as_array().unwrap().first() {
