@@ -35,27 +35,31 @@ pub const RECALLED_ON_DRIFT: &str = "recalled_on_drift";
 /// The vendor's batches a hold on `held` reaches back over: the `held.decision.recall` most recent
 /// batches of the same vendor that the policy accepted before it (newest first), whatever their state
 /// now. Empty when the decision asks for no recall.
+///
+/// "Most recent" is by arrival (batch ids are handed out in arrival order), which is the order the
+/// policy judged them in: one scoring worker takes claimed batches first in, first out. The scan walks
+/// back from the held batch and stops at the `n`-th match, so a recall costs the vendor's recent
+/// history, not the store's.
 pub fn recall_targets(store: &Store, held: &BatchRecord) -> Result<Vec<BatchRecord>, StoreError> {
     let n = held.decision.as_ref().map_or(0, |d| d.recall) as usize;
+    let mut found = Vec::with_capacity(n);
     if n == 0 {
-        return Ok(Vec::new());
+        return Ok(found);
     }
-    let before = held.decided_at.unwrap_or_else(Utc::now);
-    let mut accepted: Vec<BatchRecord> = store
-        .batches()?
-        .into_iter()
-        .filter(|r| {
-            r.vendor == held.vendor
-                && r.id != held.id
-                && r.decision
-                    .as_ref()
-                    .is_some_and(|d| d.verdict == Verdict::Accept)
-                && r.decided_at.is_some_and(|t| t <= before)
-        })
-        .collect();
-    accepted.sort_by(|a, b| b.decided_at.cmp(&a.decided_at).then(b.id.cmp(&a.id)));
-    accepted.truncate(n);
-    Ok(accepted)
+    for rec in store.batches_before(&held.id) {
+        let rec = rec?;
+        let accepted = rec
+            .decision
+            .as_ref()
+            .is_some_and(|d| d.verdict == Verdict::Accept);
+        if rec.vendor == held.vendor && accepted {
+            found.push(rec);
+            if found.len() == n {
+                break;
+            }
+        }
+    }
+    Ok(found)
 }
 
 /// Recall the batches [`recall_targets`] names that are still accepted (module documentation). Returns
@@ -149,4 +153,57 @@ fn recall_notice(rec: &BatchRecord, held: &BatchRecord) -> Notice {
     ));
     n.items_total = rec.items.map(|x| x as u64);
     n
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::StoreSettings;
+    use crate::policy::{PolicySettings, VendorHistory};
+
+    /// Store a decided record of `vendor` with the next id; `recall` is what its decision asks for.
+    fn put(store: &Store, vendor: &str, verdict: Verdict, recall: u32) -> BatchRecord {
+        let id = store.new_batch_id().unwrap();
+        let mut rec = BatchRecord::claimed(id.clone(), vendor, "x.csv".into(), format!("{id}.csv"));
+        let mut d = crate::policy::decide(
+            &PolicySettings::default(),
+            &VendorHistory::default(),
+            0.0,
+            0.0,
+        );
+        d.verdict = verdict;
+        d.recall = recall;
+        rec.decision = Some(d);
+        store.record_claim(&rec).unwrap();
+        rec
+    }
+
+    #[test]
+    fn the_targets_are_the_vendors_newest_accepted_batches_before_the_hold() {
+        let d = tempfile::tempdir().unwrap();
+        let store = Store::open(&d.path().join("state"), &StoreSettings::default()).unwrap();
+        let (a, q) = (Verdict::Accept, Verdict::Quarantine);
+        let v1 = put(&store, "v", a, 0);
+        let v2 = put(&store, "v", a, 0);
+        put(&store, "v", q, 0); // held: not a target
+        put(&store, "w", a, 0); // another vendor
+        let v5 = put(&store, "v", a, 0);
+        let held = put(&store, "v", q, 2);
+        put(&store, "v", a, 0); // after the hold
+        let ids = |held: &BatchRecord| -> Vec<String> {
+            recall_targets(&store, held)
+                .unwrap()
+                .into_iter()
+                .map(|r| r.id)
+                .collect()
+        };
+        assert_eq!(ids(&held), [v5.id.clone(), v2.id.clone()]);
+        // Reaching further than the history goes stops at its first batch.
+        let mut far = held.clone();
+        far.decision.as_mut().unwrap().recall = 10;
+        assert_eq!(ids(&far), [v5.id, v2.id, v1.id]);
+        let mut none = held;
+        none.decision.as_mut().unwrap().recall = 0;
+        assert!(ids(&none).is_empty());
+    }
 }

@@ -49,6 +49,7 @@ use crate::policy::VendorHistory;
 pub mod batch;
 mod features;
 mod pool;
+mod trusted;
 
 pub use batch::{
     AuditRecord, BatchRecord, BatchScores, BatchState, HeldItem, HeldState, HeldWhy, Outcome,
@@ -586,6 +587,21 @@ impl Store {
             .collect()
     }
 
+    /// Batches that arrived before `batch_id`, newest first, read lazily: a caller that needs the last few
+    /// of one vendor stops early instead of decoding the whole history.
+    pub fn batches_before<'a>(
+        &'a self,
+        batch_id: &str,
+    ) -> impl Iterator<Item = Result<BatchRecord, StoreError>> + 'a {
+        self.trees[T_BATCHES]
+            .range(..batch_id.as_bytes())
+            .rev()
+            .map(|kv| {
+                let (k, v) = kv.map_err(StoreError::sled("scan batches"))?;
+                dec("batch", &k, &v)
+            })
+    }
+
     /// Batches in any of the given states, in id order.
     pub fn batches_in(&self, states: &[BatchState]) -> Result<Vec<BatchRecord>, StoreError> {
         Ok(self
@@ -910,49 +926,6 @@ impl Store {
                 dec("audit", &k, &v)
             })
             .collect()
-    }
-
-    // ----- trusted set -----
-
-    /// Every trusted item, in id order.
-    pub fn trusted_items(&self) -> Result<Vec<TrustedItem>, StoreError> {
-        self.trees[T_TRUSTED]
-            .iter()
-            .map(|kv| {
-                let (k, v) = kv.map_err(StoreError::sled("scan trusted"))?;
-                dec("trusted item", &k, &v)
-            })
-            .collect()
-    }
-
-    /// Add or replace trusted items and remove others, with audit records, in one flushed transaction.
-    /// Only review commands call this; nothing on the ingest path can.
-    pub fn update_trusted(
-        &self,
-        add: &[TrustedItem],
-        remove: &[String],
-        audit: Vec<AuditRecord>,
-    ) -> Result<(), StoreError> {
-        let adds: Vec<(Vec<u8>, Vec<u8>)> = add
-            .iter()
-            .map(|t| Ok((t.id.as_bytes().to_vec(), enc("trusted item", t)?)))
-            .collect::<Result<_, StoreError>>()?;
-        let mut audits = Vec::new();
-        for a in audit {
-            audits.push(self.prepare_audit(a)?);
-        }
-        self.run_tx("update trusted", |t| {
-            for id in remove {
-                t[T_TRUSTED].remove(id.as_bytes())?;
-            }
-            for (k, v) in &adds {
-                t[T_TRUSTED].insert(k.as_slice(), v.as_slice())?;
-            }
-            for (k, v) in &audits {
-                t[T_AUDIT].insert(k, v.as_slice())?;
-            }
-            Ok(())
-        })
     }
 
     fn run_tx<R>(
