@@ -454,11 +454,13 @@ fn label_fit_run_lengths(s: &PolicySettings, n: usize, shift: f64, runs: usize, 
         let mut len = 0usize;
         loop {
             len += 1;
-            // A chart that never signals fails here instead of hanging the test (the in-control mean is
-            // about 930 steps; a run of 10⁶ has probability far below 10⁻¹⁰⁰ — a defect, not noise).
+            // A chart that never signals fails here instead of hanging the test. The in-control mean is
+            // about 930 steps and the run length is close to geometric, so P(run > 50,000) ≈
+            // exp(−50,000 / 930) ≈ 5·10⁻²⁴: a defect, not noise. (At 10⁶ a mutant that silenced the chart
+            // still ran past a 240 s mutation-test limit.)
             assert!(
-                len <= 1_000_000,
-                "the label-fit CUSUM never fired in 10⁶ batches"
+                len <= 50_000,
+                "the label-fit CUSUM never fired in 50,000 batches"
             );
             let z: f64 = StandardNormal.sample(&mut rng);
             let b = fit_only(n, z - shift);
