@@ -103,3 +103,84 @@ fn cold_start_ends_exactly_at_min_history_for_each_signal() {
     h.record_accepted(&s, &share(0.05, 1_000));
     assert!(!h.is_cold(&s) && !h.flagged_share_is_cold(&s));
 }
+
+/// A reviewer's reset lets the values held aside join the baselines, each kept to `history_window`: 8
+/// kept and 5 aside in a window of 10 leave the newest ten, the five aside last; every statistic is back
+/// at 0. Written for the mutation run of `mod.rs` (`>` → `==` / `>=` in `reset_cusum`'s trim survived:
+/// no test reset a record with more values than its window).
+#[test]
+fn a_reset_lets_the_held_aside_values_in_within_the_window() {
+    let s = PolicySettings {
+        history_window: 10,
+        ..batch_rules()
+    };
+    let mut h = VendorHistory::default();
+    h.accepted_costs.extend((0..8).map(f64::from));
+    h.pending_costs.extend((8..13).map(f64::from));
+    h.flagged_share
+        .accepted
+        .extend((0..8).map(|i| f64::from(i) / 100.0));
+    h.flagged_share
+        .pending
+        .extend((8..13).map(|i| f64::from(i) / 100.0));
+    (h.cusum, h.flagged_share.cusum) = (3.0, 2.0);
+    (h.evidence.cusum, h.evidence.fit_cusum) = (1.0, 4.0);
+    h.reset_cusum(&s);
+    let costs: Vec<f64> = h.accepted_costs.iter().copied().collect();
+    assert_eq!(costs, (3..13).map(f64::from).collect::<Vec<_>>());
+    let shares: Vec<f64> = h.flagged_share.accepted.iter().copied().collect();
+    assert_eq!(
+        shares,
+        (3..13).map(|i| f64::from(i) / 100.0).collect::<Vec<_>>()
+    );
+    assert!(h.pending_costs.is_empty() && h.flagged_share.pending.is_empty());
+    assert_eq!(
+        (
+            h.cusum,
+            h.flagged_share.cusum,
+            h.evidence.cusum,
+            h.evidence.fit_cusum
+        ),
+        (0.0, 0.0, 0.0, 0.0)
+    );
+}
+
+/// The names the notices, audit trail and metrics carry, and which reasons are label findings and
+/// stream rules (the recall and the latch act on the stream rules only). Written for the mutation run of
+/// `mod.rs` (`Verdict::as_str` returning "" or "xyzzy", and `is_label_finding` returning true, survived
+/// the policy's tests).
+#[test]
+fn verdict_names_and_the_kinds_of_reason_are_the_documented_ones() {
+    for (v, name) in [
+        (Verdict::Accept, "accept"),
+        (Verdict::Quarantine, "quarantine"),
+    ] {
+        assert_eq!(v.as_str(), name);
+        assert_eq!(
+            serde_json::to_value(v).unwrap(),
+            name,
+            "serialised as named"
+        );
+    }
+    let not_labels: Vec<ReasonCode> = ReasonCode::ALL
+        .into_iter()
+        .filter(|c| !c.is_label_finding())
+        .collect();
+    assert_eq!(
+        not_labels,
+        [
+            ReasonCode::WithinBaseline,
+            ReasonCode::WithinColdStartLimits,
+            ReasonCode::ScoreInvalid,
+            ReasonCode::ItemsUnlikePool
+        ]
+    );
+    let stream: Vec<ReasonCode> = ReasonCode::ALL
+        .into_iter()
+        .filter(|c| c.is_stream_rule())
+        .collect();
+    assert_eq!(
+        stream,
+        [ReasonCode::FlaggedItemsDrift, ReasonCode::LabelsUnlikely]
+    );
+}
