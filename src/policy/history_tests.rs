@@ -147,8 +147,8 @@ fn a_reset_lets_the_held_aside_values_in_within_the_window() {
 
 /// The names the notices, audit trail and metrics carry, and which reasons are label findings and
 /// stream rules (the recall and the latch act on the stream rules only). Written for the mutation run of
-/// `mod.rs` (`Verdict::as_str` returning "" or "xyzzy", and `is_label_finding` returning true, survived
-/// the policy's tests).
+/// `mod.rs` (`Verdict::as_str` returning "" or "xyzzy", `is_label_finding` and `is_stream_rule`
+/// returning a constant, and `Display` writing nothing survived the policy's tests).
 #[test]
 fn verdict_names_and_the_kinds_of_reason_are_the_documented_ones() {
     for (v, name) in [
@@ -161,6 +161,11 @@ fn verdict_names_and_the_kinds_of_reason_are_the_documented_ones() {
             name,
             "serialised as named"
         );
+    }
+    // Displayed as serialised (the audit trail's reason and the metric labels use the display form).
+    for c in ReasonCode::ALL {
+        assert_eq!(c.to_string(), c.as_str());
+        assert_eq!(serde_json::to_value(c).unwrap(), c.as_str());
     }
     let not_labels: Vec<ReasonCode> = ReasonCode::ALL
         .into_iter()
