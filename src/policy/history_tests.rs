@@ -189,3 +189,26 @@ fn verdict_names_and_the_kinds_of_reason_are_the_documented_ones() {
         [ReasonCode::FlaggedItemsDrift, ReasonCode::LabelsUnlikely]
     );
 }
+
+/// The flagged share's scale floor is the binomial standard error `√(m(1 − m)/n)` of a batch of `n`
+/// items where that exceeds the configured floor, and the configured floor for a batch with no items
+/// (no binomial term: `n = 0` would make it infinite). Worked by hand: median 0.1 over identical shares
+/// (MAD and mean deviation 0), `n` = 100 → `√(0.09/100)` = 0.03 > 0.01; `n` = 10,000 → 0.003 < 0.01.
+/// Written for the mutation run of `mod.rs` (the guard `items > 0` replaced by `true` or `>=` survived).
+#[test]
+fn the_share_floor_is_the_binomial_error_of_the_batch_or_the_configured_floor() {
+    let s = batch_rules();
+    let mut h = VendorHistory::default();
+    h.flagged_share.accepted.extend([0.1; 8]);
+    let b = |items| Baseline::flagged_share(&s, &h, 0.2, items);
+    let small = b(100);
+    assert_eq!(small.scale_source, ScaleSource::BinomialStandardError);
+    assert_relative_eq!(small.sigma, 0.03, epsilon = 1e-12);
+    let large = b(10_000);
+    assert_eq!(large.scale_source, ScaleSource::Floor);
+    assert_relative_eq!(large.sigma, s.flagged_share_min_scale);
+    let empty = b(0);
+    assert_eq!(empty.scale_source, ScaleSource::Floor);
+    assert_relative_eq!(empty.sigma, s.flagged_share_min_scale);
+    assert_relative_eq!(empty.standardized, (0.2 - 0.1) / s.flagged_share_min_scale);
+}
