@@ -146,7 +146,7 @@ fn a_reset_lets_the_held_aside_values_in_within_the_window() {
 }
 
 /// The names the notices, audit trail and metrics carry, and which reasons are label findings and
-/// stream rules (the recall and the latch act on the stream rules only). Written for the mutation run of
+/// stream rules (a recall follows a hold by a stream rule only). Written for the mutation run of
 /// `mod.rs` (`Verdict::as_str` returning "" or "xyzzy", `is_label_finding` and `is_stream_rule`
 /// returning a constant, and `Display` writing nothing survived the policy's tests).
 #[test]
