@@ -212,3 +212,24 @@ fn the_share_floor_is_the_binomial_error_of_the_batch_or_the_configured_floor() 
     assert_relative_eq!(empty.sigma, s.flagged_share_min_scale);
     assert_relative_eq!(empty.standardized, (0.2 - 0.1) / s.flagged_share_min_scale);
 }
+
+/// Where most of a vendor's values are equal the MAD is 0, and the scale falls back to the mean absolute
+/// deviation (`1.253314 · mean |x − m|`, the normal consistency factor √(π/2)) before the floor. Worked
+/// by hand: shares [0.1 ×5, 0.5, 0.6, 0.9] have median 0.1, deviations [0 ×5, 0.4, 0.5, 0.8], MAD 0 and
+/// mean absolute deviation 1.7/8 = 0.2125, so σ̂ = 0.26633 (above the floor 0.01). Written for the
+/// mutation run of `mod.rs` (`mad > 0` → `>=` and `mean_abs_dev > 0` → `==` / `<` in `Baseline::of`
+/// survived).
+#[test]
+fn mostly_equal_values_are_scaled_by_their_mean_absolute_deviation() {
+    let s = batch_rules();
+    let mut h = VendorHistory::default();
+    h.flagged_share
+        .accepted
+        .extend([0.1, 0.1, 0.1, 0.1, 0.1, 0.5, 0.6, 0.9]);
+    let b = Baseline::flagged_share(&s, &h, 0.2, 10_000);
+    assert_eq!((b.median, b.mad), (0.1, 0.0));
+    assert_relative_eq!(b.mean_abs_dev, 0.2125, epsilon = 1e-12);
+    assert_eq!(b.scale_source, ScaleSource::MeanAbsoluteDeviation);
+    assert_relative_eq!(b.sigma, 1.253314 * 0.2125, epsilon = 1e-5);
+    assert_relative_eq!(b.standardized, 0.1 / b.sigma, epsilon = 1e-12);
+}
