@@ -233,3 +233,36 @@ fn mostly_equal_values_are_scaled_by_their_mean_absolute_deviation() {
     assert_relative_eq!(b.sigma, 1.253314 * 0.2125, epsilon = 1e-5);
     assert_relative_eq!(b.standardized, 0.1 / b.sigma, epsilon = 1e-12);
 }
+
+/// While a vendor is in cold start its baseline reports no modified z, standardised value or CUSUM (the
+/// absolute limits judge it), and a value that is not a finite number gets none either. Written for the
+/// mutation run of `mod.rs` (`cold_start || !x.is_finite()` → `&&` in `Baseline::of` survived: the
+/// decisions do not read those numbers in cold start, but the decision record and `quarantine show` do).
+#[test]
+fn a_cold_start_or_non_finite_value_reports_no_z_and_no_cusum() {
+    let s = batch_rules();
+    let mut h = VendorHistory::default();
+    h.accepted_costs.extend([0.01, 0.02]);
+    h.cusum = 1.5;
+    let cold = Baseline::compute(&s, &h, 0.5);
+    assert!(cold.cold_start);
+    assert_eq!(
+        (
+            cold.modified_z,
+            cold.standardized,
+            cold.cusum_before,
+            cold.cusum
+        ),
+        (0.0, 0.0, 0.0, 0.0)
+    );
+    h.accepted_costs
+        .extend([0.01, 0.02, 0.01, 0.02, 0.01, 0.02]);
+    let warm = Baseline::compute(&s, &h, f64::NAN);
+    assert!(!warm.cold_start);
+    assert_eq!(
+        (warm.modified_z, warm.standardized, warm.cusum),
+        (0.0, 0.0, 0.0)
+    );
+    let judged = Baseline::compute(&s, &h, 0.5);
+    assert!(judged.modified_z > 0.0 && judged.cusum > 0.0, "{judged:?}");
+}
