@@ -620,3 +620,29 @@ fn the_item_cusum_dates_its_drift_too_within_the_window() {
     assert_eq!(w.evidence.cusum_run, 6);
     assert_eq!(w.evidence.judge(&narrow, &drip).cusum_run, 3);
 }
+
+/// A hold reaches back over the run of the rule that fired, not over the other statistic's run: each
+/// chart is set by hand (item CUSUM 1.0 after a run of 3, label fit 36 after a run of 1, and the
+/// reverse), worked with the steps above (8 of 150 flagged at level 0.05 steps the item CUSUM by
+/// `8 ln 1.6 + 142 ln(0.92/0.95)` ≈ −0.80; `fitted(…, −24/√150)` steps the label fit by +9; 12 of 150
+/// steps the item CUSUM by +1.21 and a batch without a label fit leaves that chart alone). Written for
+/// the mutation run of `evidence.rs` (`&&` → `||` in `ItemJudgement::recall` survived).
+#[test]
+fn a_hold_reaches_back_over_the_run_of_the_rule_that_fired_only() {
+    let s = PolicySettings::default();
+    let codes = |d: &crate::policy::Decision| -> Vec<ReasonCode> {
+        d.reasons.iter().map(|r| r.code).collect()
+    };
+    let mut h = established(&s);
+    (h.evidence.cusum, h.evidence.cusum_run) = (1.0, 3);
+    (h.evidence.fit_cusum, h.evidence.fit_run) = (36.0, 1);
+    let d = decide_batch(&s, &h, &fitted(150, 8, 0.05, -24.0 / 150f64.sqrt()));
+    assert_eq!(codes(&d), [ReasonCode::LabelsUnlikely]);
+    assert_eq!(d.recall, 1, "the label fit's run, not the item CUSUM's 3");
+    let mut h = established(&s);
+    (h.evidence.cusum, h.evidence.cusum_run) = (7.5, 2);
+    (h.evidence.fit_cusum, h.evidence.fit_run) = (10.0, 4);
+    let d = decide_batch(&s, &h, &batch(150, 12, 0.05));
+    assert_eq!(codes(&d), [ReasonCode::FlaggedItemsDrift]);
+    assert_eq!(d.recall, 2, "the item CUSUM's run, not the label fit's 4");
+}
