@@ -285,6 +285,31 @@ mod tests {
         assert!((r.tail - 0.01).abs() < 1e-12);
     }
 
+    /// With a reference large enough that its 0.99 point is not its largest distance, the threshold is
+    /// that point: 197 items at 0 and three at 60, 80 and 100 (mean 1.2, sample variance
+    /// `(197·1.2² + 58.8² + 78.8² + 98.8²)/199 = 19,712/199`, plus the ridge 0.1); `⌈0.99 · 200⌉ = 198`,
+    /// so the threshold is the 198th distance, the item at 60: `58.8²/(19,712/199 + 0.1)` ≈ 34.87
+    /// (above the floor 10.83), and the two items beyond it are the reference's 1 %. Written for a
+    /// mutation run's missed mutant (`q * m` → `q + m` in the index gives the largest distance instead,
+    /// which a 20-item reference could not tell apart).
+    #[test]
+    fn a_large_reference_puts_the_threshold_at_its_quantile_not_its_maximum() {
+        let s = PolicySettings::default();
+        let mut x = Array2::<f64>::zeros((200, 1));
+        for (i, v) in [60.0, 80.0, 100.0].into_iter().enumerate() {
+            x[[197 + i, 0]] = v;
+        }
+        let r = Reach::fit(&s, x.view()).unwrap();
+        let want = 58.8f64.powi(2) / (19_712.0 / 199.0 + 0.1);
+        assert!(
+            (r.threshold - want).abs() < 1e-9,
+            "{} vs {want}",
+            r.threshold
+        );
+        let beyond = r.check(x.view()).beyond;
+        assert_eq!(beyond.iter().filter(|b| **b).count(), 2, "80 and 100");
+    }
+
     /// The reference sample: the trusted rows, then the reservoir's rows cut to the first `d` columns (its
     /// mapped features start with the standardised ones; the intercept and any further map columns are
     /// left out); a reservoir narrower than the trusted features (none yet) adds nothing. Written for a
