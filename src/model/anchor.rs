@@ -656,7 +656,16 @@ mod tests {
         }
         let gamma = 0.3;
         let lin = ctx.linearise(&y, Array1::zeros(9), far(), None, false);
-        let (_, g) = outer.value_grad(&lin, &y, &lin.theta, gamma, &mut None);
+        let (v, g) = outer.value_grad(&lin, &y, &lin.theta, gamma, &mut None);
+        // The value beside the gradient is `F_γ` itself (`Outer::value`, written separately): the
+        // projected descent's sufficient-decrease test reads it. (Written for a mutation run of the
+        // derivative code: `*` → `+`, `-` → `+`, `/` → `*` in the value's formula survived, since only the
+        // gradient was checked.)
+        let direct = outer.value(&y, &lin.theta, gamma);
+        assert!(
+            (v - direct).abs() <= 1e-12 * (1.0 + direct.abs()),
+            "value {v:.12e} against F_γ {direct:.12e}"
+        );
         let f_at = |yy: &Array2<f64>| {
             let l = ctx.linearise(yy, lin.theta.clone(), far(), None, false);
             outer.value(yy, &l.theta, gamma)
