@@ -25,7 +25,9 @@ use serde::{Deserialize, Serialize};
 use sled::transaction::{ConflictableTransactionError, TransactionError};
 use sled::Transactional;
 
-use super::{dec, enc, u64_of, AuditRecord, PoolEntry, Store, StoreError, T_AUDIT, T_META};
+use super::{
+    dec, decoded, enc, u64_of, AuditRecord, PoolEntry, Store, StoreError, T_AUDIT, T_META,
+};
 use super::{META_POOL_SEQ, T_POOL, T_POOL_INDEX};
 use crate::data::FeatureTable;
 
@@ -186,13 +188,12 @@ impl Store {
 
     /// Every import into the feature table, oldest first.
     pub fn feature_imports(&self) -> Result<Vec<FeatureImport>, StoreError> {
-        self.named(T_FEATURE_IMPORTS)?
-            .iter()
-            .map(|kv| {
-                let (k, v) = kv.map_err(StoreError::sled("scan feature imports"))?;
-                dec("feature import", &k, &v)
-            })
-            .collect()
+        decoded(
+            self.named(T_FEATURE_IMPORTS)?.iter(),
+            "scan feature imports",
+            "feature import",
+        )
+        .collect()
     }
 
     /// Import a feature table's rows (last writer wins for ids already present, see the module

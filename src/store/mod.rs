@@ -343,6 +343,18 @@ fn dec<T: DeserializeOwned>(what: &'static str, key: &[u8], v: &[u8]) -> Result<
     })
 }
 
+/// Decode the values of a scan (`Tree::iter` or `range`) as `what`, a sled error naming the scan `op`.
+fn decoded<T: DeserializeOwned>(
+    scan: impl Iterator<Item = sled::Result<(sled::IVec, sled::IVec)>>,
+    op: &'static str,
+    what: &'static str,
+) -> impl Iterator<Item = Result<T, StoreError>> {
+    scan.map(move |kv| {
+        let (k, v) = kv.map_err(StoreError::sled(op))?;
+        dec(what, &k, &v)
+    })
+}
+
 fn u64_of(v: Option<sled::IVec>) -> u64 {
     v.and_then(|v| <[u8; 8]>::try_from(v.as_ref()).ok())
         .map(u64::from_be_bytes)
@@ -578,13 +590,7 @@ impl Store {
 
     /// All batches, in id order (= arrival order).
     pub fn batches(&self) -> Result<Vec<BatchRecord>, StoreError> {
-        self.trees[T_BATCHES]
-            .iter()
-            .map(|kv| {
-                let (k, v) = kv.map_err(StoreError::sled("scan batches"))?;
-                dec("batch", &k, &v)
-            })
-            .collect()
+        decoded(self.trees[T_BATCHES].iter(), "scan batches", "batch").collect()
     }
 
     /// Batches that arrived before `batch_id`, newest first, read lazily: a caller that needs the last few
@@ -593,13 +599,11 @@ impl Store {
         &'a self,
         batch_id: &str,
     ) -> impl Iterator<Item = Result<BatchRecord, StoreError>> + 'a {
-        self.trees[T_BATCHES]
-            .range(..batch_id.as_bytes())
-            .rev()
-            .map(|kv| {
-                let (k, v) = kv.map_err(StoreError::sled("scan batches"))?;
-                dec("batch", &k, &v)
-            })
+        decoded(
+            self.trees[T_BATCHES].range(..batch_id.as_bytes()).rev(),
+            "scan batches",
+            "batch",
+        )
     }
 
     /// Batches in any of the given states, in id order.
@@ -919,13 +923,12 @@ impl Store {
 
     /// The audit trail in order, starting after sequence number `after` (0: from the start).
     pub fn audit_since(&self, after: u64) -> Result<Vec<AuditRecord>, StoreError> {
-        self.trees[T_AUDIT]
-            .range((after + 1).to_be_bytes()..)
-            .map(|kv| {
-                let (k, v) = kv.map_err(StoreError::sled("scan audit"))?;
-                dec("audit", &k, &v)
-            })
-            .collect()
+        decoded(
+            self.trees[T_AUDIT].range((after + 1).to_be_bytes()..),
+            "scan audit",
+            "audit",
+        )
+        .collect()
     }
 
     fn run_tx<R>(

@@ -1,18 +1,12 @@
 //! The store's trusted side: the expert-verified items every batch is judged against. Written only by
 //! review commands, in one flushed transaction with their audit records; nothing on the ingest path can.
 
-use super::{dec, enc, AuditRecord, Store, StoreError, TrustedItem, T_AUDIT, T_TRUSTED};
+use super::{decoded, enc, AuditRecord, Store, StoreError, TrustedItem, T_AUDIT, T_TRUSTED};
 
 impl Store {
     /// Every trusted item, in id order.
     pub fn trusted_items(&self) -> Result<Vec<TrustedItem>, StoreError> {
-        self.trees[T_TRUSTED]
-            .iter()
-            .map(|kv| {
-                let (k, v) = kv.map_err(StoreError::sled("scan trusted"))?;
-                dec("trusted item", &k, &v)
-            })
-            .collect()
+        decoded(self.trees[T_TRUSTED].iter(), "scan trusted", "trusted item").collect()
     }
 
     /// Add or replace trusted items and remove others, with audit records, in one flushed transaction.
