@@ -51,6 +51,8 @@ pub struct Config {
     pub notices: NoticeSettings,
     /// Trusted-set upkeep.
     pub trusted: TrustedSettings,
+    /// Expert spot checks of accepted batches.
+    pub spot_checks: crate::policy::spot::SpotSettings,
 }
 
 /// Which filesystem watcher feeds the hints (rescans are the truth either way).
@@ -511,6 +513,9 @@ impl Config {
                 return Err(invalid(key, "must be in [0, 1]"));
             }
         }
+        self.spot_checks
+            .validate()
+            .map_err(|(key, why)| invalid(&format!("spot_checks.{key}"), why))?;
         Ok(())
     }
 

@@ -91,6 +91,9 @@ struct Flow {
     admission_items: IntCounterVec,
     unlike_pool: IntCounterVec,
     recalled: IntCounterVec,
+    spot_checks: IntCounterVec,
+    spot_items: IntCounterVec,
+    spot_signals: IntCounterVec,
     batch_bytes: IntCounterVec,
     repair_cost: HistogramVec,
     repair_cost_last: GaugeVec,
@@ -236,8 +239,44 @@ impl Flow {
                     opts(
                         "batches_recalled_total",
                         "Accepted batches taken back out of the pool for review because a later batch of \
-                         the same vendor was held by a stream rule (recalled_on_drift), by vendor: a \
-                         suspicion for review, not proof.",
+                         the same vendor was held by a stream rule (recalled_on_drift) or the experts' spot \
+                         checks signalled (recalled_on_spot_check), by vendor: a suspicion for review, not \
+                         proof.",
+                    ),
+                    &["vendor"],
+                )?,
+            )?,
+            spot_checks: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "spot_checks_total",
+                        "Accepted batches whose items were picked for the experts' spot check (event \
+                         picked) and whose spot check the experts answered (event answered), by vendor; \
+                         picked less answered is what waits for the experts.",
+                    ),
+                    &["vendor", "event"],
+                )?,
+            )?,
+            spot_items: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "spot_check_items_total",
+                        "Spot-checked items the experts answered, by vendor and whether the vendor's label \
+                         agreed with theirs (result agree or disagree). A disagreement is a suspicion for \
+                         review, not proof: experts err too.",
+                    ),
+                    &["vendor", "result"],
+                )?,
+            )?,
+            spot_signals: reg(
+                r,
+                IntCounterVec::new(
+                    opts(
+                        "spot_check_signals_total",
+                        "Spot-check charts that reached their limit, by vendor: the vendor's batches wait \
+                         for review until a reviewer clears the hold (a suspicion, not proof).",
                     ),
                     &["vendor"],
                 )?,
@@ -540,6 +579,13 @@ impl Metrics {
             }
             m.flow.unlike_pool.with_label_values(&[v]);
             m.flow.recalled.with_label_values(&[v]);
+            for e in ["picked", "answered"] {
+                m.flow.spot_checks.with_label_values(&[v, e]);
+            }
+            for r in ["agree", "disagree"] {
+                m.flow.spot_items.with_label_values(&[v, r]);
+            }
+            m.flow.spot_signals.with_label_values(&[v]);
             for f in ["json", "markdown"] {
                 m.state.notices_written.with_label_values(&[v, f]);
             }
@@ -612,6 +658,33 @@ impl Metrics {
     pub fn recalled(&self, vendor: &str, n: u64) {
         if n > 0 && self.known(vendor) {
             self.flow.recalled.with_label_values(&[vendor]).inc_by(n);
+        }
+    }
+
+    /// An accepted batch's items were picked for the experts' spot check.
+    pub fn spot_check_picked(&self, vendor: &str) {
+        if self.known(vendor) {
+            self.flow
+                .spot_checks
+                .with_label_values(&[vendor, "picked"])
+                .inc();
+        }
+    }
+
+    /// The experts answered a spot check: `agreed` and `disagreed` items, and whether a chart signalled.
+    pub fn spot_check_answered(&self, vendor: &str, agreed: u64, disagreed: u64, signal: bool) {
+        if self.known(vendor) {
+            let f = &self.flow;
+            f.spot_checks.with_label_values(&[vendor, "answered"]).inc();
+            f.spot_items
+                .with_label_values(&[vendor, "agree"])
+                .inc_by(agreed);
+            f.spot_items
+                .with_label_values(&[vendor, "disagree"])
+                .inc_by(disagreed);
+            if signal {
+                f.spot_signals.with_label_values(&[vendor]).inc();
+            }
         }
     }
 

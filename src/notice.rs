@@ -671,6 +671,9 @@ fn generic_policy_detail(code: &str) -> Option<&'static str> {
         ReasonCode::FlaggedItemsInClass => {
             "Among the items given one label, more were flagged for review than the checks expect if those labels were right."
         }
+        ReasonCode::SpotCheckDisagreement => {
+            "Expert checks of a sample of items from this vendor's recent batches disagreed with the labels more often than expected, so its batches wait for review."
+        }
         ReasonCode::ItemsUnlikePool => {
             "The items are unlike the data the checks were built on, so their labels could not be judged. This is not a finding about your labels; our operations team will look at the data source."
         }

@@ -95,6 +95,12 @@ impl Workspace {
         self.root.join(name)
     }
 
+    /// `DIR/spot-checks`: the items of accepted batches waiting for the experts' labels, one file per
+    /// batch (`<batch>.csv`, the label column empty).
+    pub fn spot_checks(&self) -> PathBuf {
+        self.root.join("spot-checks")
+    }
+
     /// `DIR/notices/<vendor>`.
     pub fn notices(&self, vendor: &str) -> PathBuf {
         self.root.join("notices").join(vendor)
@@ -195,6 +201,7 @@ pub fn prepare_folders(ws: &Workspace, config: &Config) -> Result<(), WorkspaceE
         ws.features_incoming(),
         ws.features_imported(),
         ws.features_rejected(),
+        ws.spot_checks(),
     ];
     for v in &config.vendors {
         dirs.push(ws.vendor_inbox(v));

@@ -67,6 +67,10 @@ struct CasebookArgs {
     /// full run.
     #[arg(long, value_name = "TEXT")]
     case: Option<String>,
+    /// Batches between an accepted batch's spot check and the simulated expert's answers (the experts'
+    /// turnaround; `[spot_checks] enabled = false` in `--config` replays without spot checks).
+    #[arg(long, value_name = "N", default_value_t = labelweir::eval::casebook::EXPERT_LAG)]
+    expert_lag: usize,
 }
 
 /// Sizes for `bench daemon` (defaults: 30 batches of 1,000 items against a pool of 100,000).
@@ -270,6 +274,7 @@ fn casebook(a: CasebookArgs) -> anyhow::Result<u8> {
         seed: a.seed,
         config,
         only: a.case,
+        expert_lag: a.expert_lag,
     };
     let report = casebook::run(&opts, progress_unless(a.json))
         .map_err(|e| Failure::new(exit::INTERNAL, format!("casebook failed: {e}")))?;

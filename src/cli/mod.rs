@@ -17,6 +17,7 @@ pub mod pool;
 pub mod progress;
 pub mod quarantine;
 pub mod run;
+pub mod spot;
 pub mod trusted;
 pub mod vendor;
 

@@ -550,13 +550,42 @@ fn print_show(r: &ShowReport, dir: &Path, top: usize, page: Option<&Path>) {
         println!("  items          {n}");
     }
     if let Some(rc) = &b.recalled {
-        println!(
-            "  recalled       {}: accepted, then taken back for review when batch {} of this vendor was held by {} \
-             (this batch came after that statistic last stood at 0; a suspicion, not proof)",
-            rc.at.format("%Y-%m-%d %H:%M:%S UTC"),
-            sanitize(&rc.held_batch),
-            rc.rules.join(", ")
-        );
+        let spot = labelweir::policy::ReasonCode::SpotCheckDisagreement.as_str();
+        if rc.rules.iter().any(|r| r == spot) {
+            println!(
+                "  recalled       {}: accepted, then taken back for review when the experts' answers to batch {}'s \
+                 spot check signalled (this batch came after that chart last stood at 0; a suspicion, not proof)",
+                rc.at.format("%Y-%m-%d %H:%M:%S UTC"),
+                sanitize(&rc.held_batch),
+            );
+        } else {
+            println!(
+                "  recalled       {}: accepted, then taken back for review when batch {} of this vendor was held by {} \
+                 (this batch came after that statistic last stood at 0; a suspicion, not proof)",
+                rc.at.format("%Y-%m-%d %H:%M:%S UTC"),
+                sanitize(&rc.held_batch),
+                rc.rules.join(", ")
+            );
+        }
+    }
+    if let Some(sc) = &b.spot_check {
+        let n = sc.items.len();
+        match &sc.answered {
+            None => println!(
+                "  spot check     {n} items wait for the experts (spot-checks/{}.csv)",
+                sanitize(&b.id)
+            ),
+            Some(a) => println!(
+                "  spot check     {} of {n} answers by {} differ from the vendor's labels{}",
+                a.disagreed,
+                sanitize(&a.by),
+                if a.signal.is_some() {
+                    "; they raised the vendor's spot-check signal"
+                } else {
+                    ""
+                }
+            ),
+        }
     }
     if let Some(s) = &b.scores {
         println!(

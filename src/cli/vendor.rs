@@ -20,10 +20,12 @@ enum Command {
     ResetDrift(ResetDriftArgs),
 }
 
-/// After a drift alarm (`repair_cost_drift`, `flagged_share_drift`) was checked and the vendor's current
-/// level is accepted as its new normal: set both drift statistics (CUSUMs) back to 0 and let the values
-/// held aside during the drift join the vendor's baselines. A drift alarm is a suspicion for review, not
-/// proof; resetting it is a reviewer's judgement and is audited.
+/// After a drift alarm (`repair_cost_drift`, `flagged_share_drift`, the item stream's rules) was checked
+/// and the vendor's current level is accepted as its new normal: set the drift statistics (CUSUMs) back
+/// to 0 and let the values held aside during the drift join the vendor's baselines. Also clears a
+/// spot-check hold (`spot_check_disagreement`) once the expert's answers were looked at, and restarts the
+/// spot-check charts. An alarm is a suspicion for review, not proof; resetting it is a reviewer's
+/// judgement and is audited.
 #[derive(Debug, clap::Args)]
 struct ResetDriftArgs {
     /// Workspace folder.
@@ -64,6 +66,12 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
                     r.held_values_joined,
                     r.baseline_batches
                 );
+                if r.spot_hold_cleared {
+                    println!(
+                        "vendor {}: spot-check hold cleared; its batches are judged by their scores again",
+                        sanitize(&r.vendor)
+                    );
+                }
             }
         }
     }

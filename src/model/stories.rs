@@ -184,6 +184,7 @@ mod tests {
             anchored_doubt: 0.0,
             repair_weight: 0.2,
             wrong_probability: 0.0,
+            reference_margin: 0.0,
             flagged_at_step: None,
         }
     }

@@ -277,6 +277,29 @@ pub fn settle(
             written.push(name);
         }
     }
+    // The experts' copy of an accepted batch's spot-check items; best effort (the store keeps them, and
+    // `spot-check list` names them), so a full disk delays it without holding up the filing.
+    if let (Some(m), true) = (
+        metrics,
+        outcome == Outcome::Accepted && record.spot_check.is_some(),
+    ) {
+        m.spot_check_picked(&record.vendor);
+    }
+    let spot_file = if outcome == Outcome::Accepted && record.spot_check.is_some() {
+        let names = store
+            .workspace_meta()
+            .map(|m| m.features)
+            .unwrap_or_default();
+        match super::spot::write_request(ws, config, &names, record) {
+            Ok(p) => p.and_then(|p| p.file_name().map(|n| n.to_string_lossy().into_owned())),
+            Err(e) => {
+                tracing::warn!(batch_id = %record.id, error = %e, "writing the spot-check file failed; `labelweir spot-check list` still names the batch");
+                None
+            }
+        }
+    } else {
+        None
+    };
     // A hold by a stream rule reaches back over the vendor's batches accepted since the rule's statistic
     // was last 0 (`recall::recall_accepted`); before the batch is settled, so a crash redoes it.
     let recalled = if outcome == Outcome::Quarantined {
@@ -295,6 +318,7 @@ pub fn settle(
             "file": record.file_name,
             "notices": written,
             "recalled": recalled,
+            "spot_check": spot_file,
         }));
     let settled = store.transition(
         &record.id,

@@ -58,6 +58,7 @@ pub mod ingest;
 pub mod outbox;
 pub mod recall;
 pub mod score;
+pub mod spot;
 pub mod verdict;
 pub mod watch;
 

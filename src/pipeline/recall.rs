@@ -29,8 +29,22 @@ use crate::workspace::Workspace;
 
 use super::outbox::{batch_ref_now, move_for_state, send_pending_notice};
 
-/// The reason code of a recall in notices and the audit trail.
+/// The reason code of a recall by a stream rule in notices and the audit trail.
 pub const RECALLED_ON_DRIFT: &str = "recalled_on_drift";
+
+/// The reason code of a recall set off by the experts' spot-check answers ([`crate::policy::spot`]).
+pub const RECALLED_ON_SPOT_CHECK: &str = "recalled_on_spot_check";
+
+/// The reason code of a recorded recall: [`RECALLED_ON_SPOT_CHECK`] when the spot-check rule set it off,
+/// else [`RECALLED_ON_DRIFT`].
+pub fn code_of(r: &Recall) -> &'static str {
+    let spot = crate::policy::ReasonCode::SpotCheckDisagreement.as_str();
+    if r.rules.iter().any(|c| c == spot) {
+        RECALLED_ON_SPOT_CHECK
+    } else {
+        RECALLED_ON_DRIFT
+    }
+}
 
 /// The vendor's batches a hold on `held` reaches back over: the `held.decision.recall` most recent
 /// batches of the same vendor that the policy accepted before it (newest first), whatever their state
@@ -79,30 +93,69 @@ pub fn recall_accepted(
         .filter(|c| c.is_stream_rule())
         .map(|c| c.as_str().to_string())
         .collect();
+    let cause = Cause {
+        batch: held.id.clone(),
+        audit_reason: format!(
+            "{RECALLED_ON_DRIFT}: batch {} of this vendor was held by {}; this batch was accepted after \
+             that statistic last stood at 0",
+            held.id,
+            rules.join(", ")
+        ),
+        notice: format!(
+            "A later batch from this vendor folder (batch {}) was held by a check across the vendor's recent \
+             items; this batch was accepted after that check began to rise, so it is reviewed too.",
+            held.id
+        ),
+        code: RECALLED_ON_DRIFT,
+        rules,
+    };
+    recall_records(ws, config, store, &targets, &cause, "daemon")
+}
+
+/// Why batches are recalled: the batch that set it off, the rules, and the words for the audit trail and
+/// the vendor notice.
+pub struct Cause {
+    /// The batch whose hold (or whose spot-check answers) reached back.
+    pub batch: String,
+    /// The rules behind it (reason codes).
+    pub rules: Vec<String>,
+    /// The audit record's reason.
+    pub audit_reason: String,
+    /// The vendor notice's sentence (names no item).
+    pub notice: String,
+    /// The notice's reason code.
+    pub code: &'static str,
+}
+
+/// Recall `targets` that are still accepted, for `cause`, recorded as done by `actor` (steps 1–2 of the
+/// module documentation). Returns the ids recalled now.
+pub fn recall_records(
+    ws: &Workspace,
+    config: &Config,
+    store: &Store,
+    targets: &[BatchRecord],
+    cause: &Cause,
+    actor: &str,
+) -> Result<Vec<String>, StoreError> {
     let reach = targets.len() as u32;
     let mut done = Vec::new();
     for rec in targets.iter().filter(|r| r.state == BatchState::Accepted) {
         let recall = Recall {
-            held_batch: held.id.clone(),
-            rules: rules.clone(),
+            held_batch: cause.batch.clone(),
+            rules: cause.rules.clone(),
             batches: reach,
             at: Utc::now(),
         };
-        let audit = AuditRecord::new("daemon", "recall")
+        let audit = AuditRecord::new(actor, "recall")
             .batch(&rec.id, &rec.vendor)
             .outcome(BatchState::Quarantined.as_str())
-            .reason(format!(
-                "{RECALLED_ON_DRIFT}: batch {} of this vendor was held by {}; this batch was accepted after \
-                 that statistic last stood at 0",
-                held.id,
-                rules.join(", ")
-            ))
+            .reason(cause.audit_reason.clone())
             .detail(serde_json::json!({
-                "held_batch": held.id,
-                "rules": rules,
+                "held_batch": cause.batch,
+                "rules": cause.rules,
                 "reach": reach,
             }));
-        let notice = recall_notice(rec, held);
+        let notice = recall_notice(rec, cause);
         let settled = match store.transition(
             &rec.id,
             &[BatchState::Accepted],
@@ -122,13 +175,13 @@ pub fn recall_accepted(
         if let Err(e) = move_for_state(ws, &settled) {
             tracing::warn!(batch_id = %settled.id, error = %e, "recall: moving the file to quarantine/ failed; retried at the next start or review command");
         }
-        if let Err(e) = send_pending_notice(ws, config, store, &settled, "daemon") {
+        if let Err(e) = send_pending_notice(ws, config, store, &settled, actor) {
             tracing::warn!(batch_id = %settled.id, error = %e, "recall: writing the vendor notice failed; retried at the next start or review command");
         }
         tracing::warn!(
             batch_id = %settled.id,
             vendor = %settled.vendor,
-            held_batch = %held.id,
+            held_batch = %cause.batch,
             "accepted batch recalled for review (a suspicion, not proof)"
         );
         done.push(settled.id);
@@ -137,20 +190,14 @@ pub fn recall_accepted(
 }
 
 /// The vendor notice of a recall: no item is named (module documentation).
-fn recall_notice(rec: &BatchRecord, held: &BatchRecord) -> Notice {
+fn recall_notice(rec: &BatchRecord, cause: &Cause) -> Notice {
     let mut n = Notice::new(
         NoticeVerdict::Recalled,
         DecidedBy::Policy,
         batch_ref_now(rec),
     );
-    n.reasons.push(NoticeReason::new(
-        RECALLED_ON_DRIFT,
-        format!(
-            "A later batch from this vendor folder (batch {}) was held by a check across the vendor's recent \
-             items; this batch was accepted after that check began to rise, so it is reviewed too.",
-            held.id
-        ),
-    ));
+    n.reasons
+        .push(NoticeReason::new(cause.code, cause.notice.clone()));
     n.items_total = rec.items.map(|x| x as u64);
     n
 }

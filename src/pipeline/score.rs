@@ -603,6 +603,7 @@ impl Worker {
                 score_seconds: score_elapsed.as_secs_f64(),
                 classes: &self.meta.classes,
                 trusted_ids: &self.trusted.ids,
+                spot_seed: rand::random(),
             },
             decision,
             history,

@@ -13,7 +13,7 @@ use crate::policy::{
 };
 use crate::store::{
     AuditRecord, BatchRecord, BatchScores, HeldItem, HeldState, HeldWhy, Outcome, PoolEntry,
-    RejectReason, Suspect,
+    RejectReason, SpotCheck, SpotItem, Suspect,
 };
 
 /// What the engine said about a batch: its assessment, or why there is none (an engine error or panic).
@@ -150,6 +150,9 @@ pub struct ScoredBatch<'a> {
     pub classes: &'a [String],
     /// The trusted items' ids, by index.
     pub trusted_ids: &'a [String],
+    /// Seed of the spot check's random draw: unpredictable in the daemon (the operating system's
+    /// randomness), so a vendor cannot know which items will be checked; fixed in a replay.
+    pub spot_seed: u64,
 }
 
 /// Rows of an accepted batch's items that were kept out of the pool (held for review or dropped, not
@@ -211,6 +214,7 @@ pub fn scored(
     let pool = if accept {
         let (entry, held) = admit(config, &record, &batch);
         record.held = held;
+        record.spot_check = spot_check(config, &batch);
         (!entry.ids.is_empty()).then_some(entry)
     } else {
         None
@@ -240,6 +244,33 @@ pub fn scored(
         assessment: if accept { None } else { batch.scored.ok() },
         pool,
     }
+}
+
+/// The items of an accepted batch to send to the experts ([`policy::spot::pick`] on the reference
+/// model's margins), with the vendor's labels and the features; `None` when spot checks are off or the
+/// batch has no assessment.
+fn spot_check(config: &Config, batch: &ScoredBatch<'_>) -> Option<SpotCheck> {
+    let s = &config.spot_checks;
+    let a = batch.scored.as_ref().ok().filter(|_| s.enabled)?;
+    let n = batch.table.ids.len();
+    let mut margins = vec![f64::MAX; n];
+    for it in a.items.iter().filter(|it| it.index < n) {
+        margins[it.index] = it.reference_margin;
+    }
+    // Rows without a score (none in practice) are never the least sure.
+    let items: Vec<SpotItem> = policy::spot::pick(&margins, s, batch.spot_seed)
+        .into_iter()
+        .map(|(i, stratum)| SpotItem {
+            id: batch.table.ids[i].clone(),
+            stratum,
+            label: batch.table.labels[i].clone(),
+            features: batch.table.features.row(i).to_vec(),
+        })
+        .collect();
+    (!items.is_empty()).then_some(SpotCheck {
+        items,
+        answered: None,
+    })
 }
 
 /// The pool entry of an accepted batch and its flagged items that did not enter as delivered, under
@@ -423,6 +454,7 @@ mod tests {
                 score_seconds: 0.1,
                 classes: &["a".into()],
                 trusted_ids: &[],
+                spot_seed: 0,
             },
             d,
             history,

@@ -73,6 +73,7 @@ pub(super) fn judge(
         }
         label_rule(&labels, &mut reasons);
     }
+    spot_rule(history, &mut reasons);
     let verdict = if reasons.is_empty() {
         let mut r = accepting_reason(
             &baseline,
@@ -419,4 +420,25 @@ fn accepting_reason(
 fn flagged_count(s: &BatchSignals) -> String {
     let k = (s.flagged_share * s.items as f64).round();
     format!("{k:.0} of {}", s.items)
+}
+
+/// The spot-check hold ([`super::spot`]): once the experts' answers on a vendor's accepted batches have
+/// signalled, every later batch waits for review whatever its scores, until a reviewer clears the hold.
+fn spot_rule(history: &VendorHistory, reasons: &mut Vec<Reason>) {
+    if let Some(h) = &history.spot_hold {
+        let stratum = match h.stratum {
+            super::spot::Stratum::Hard => "items the model is least sure of",
+            super::spot::Stratum::Random => "items drawn at random",
+        };
+        push(
+            reasons,
+            ReasonCode::SpotCheckDisagreement,
+            format!(
+                "expert spot checks of this vendor's accepted batches disagree with its labels more often than a \
+                 clean labeler's would ({stratum}: {} of {} checked items differ; chart {:.2} after batch {}); every \
+                 batch waits for review until a reviewer clears the hold",
+                h.disagreed, h.checked, h.statistic, h.batch
+            ),
+        );
+    }
 }

@@ -78,6 +78,7 @@ pub mod evidence;
 mod judge;
 mod settings;
 pub mod shift;
+pub mod spot;
 mod stats;
 
 pub use admission::{
@@ -402,6 +403,13 @@ pub struct VendorHistory {
     /// The flagged items as one stream ([`evidence`]): empty in records written before it existed.
     #[serde(default)]
     pub evidence: ItemEvidence,
+    /// The expert spot checks' charts ([`spot`]).
+    #[serde(default)]
+    pub spot: spot::SpotCharts,
+    /// Set when a spot-check chart signalled: every later batch is held (`spot_check_disagreement`)
+    /// until a reviewer clears it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub spot_hold: Option<spot::SpotHold>,
 }
 
 /// The accepted values of one signal other than the repair cost, with its CUSUM state (see
@@ -429,6 +437,8 @@ impl Default for VendorHistory {
             accepted_total: 0,
             flagged_share: SignalHistory::default(),
             evidence: ItemEvidence::default(),
+            spot: spot::SpotCharts::default(),
+            spot_hold: None,
         }
     }
 }
@@ -560,11 +570,14 @@ impl VendorHistory {
     }
 
     /// Reset both CUSUMs to 0 and let the held-aside values join the baselines (a reviewer acknowledged a
-    /// drift alarm and accepts the vendor's current level).
+    /// drift alarm and accepts the vendor's current level); likewise restart the item stream's charts and
+    /// the spot-check charts, and clear a spot-check hold (the reviewer looked at the expert's answers).
     pub fn reset_cusum(&mut self, settings: &PolicySettings) {
         let window = settings.history_window.max(1);
         self.cusum = 0.0;
         self.evidence.restart();
+        self.spot.restart();
+        self.spot_hold = None;
         self.accepted_costs.extend(self.pending_costs.drain(..));
         while self.accepted_costs.len() > window {
             self.accepted_costs.pop_front();
@@ -644,6 +657,10 @@ pub enum ReasonCode {
     /// Quarantine: among the items given one label, more are flagged than the noise allows if the
     /// labels were right — a systematic error on one class ([`classes`]).
     FlaggedItemsInClass,
+    /// Quarantine: the experts' spot checks of the vendor's accepted batches disagree with its labels
+    /// more often than a clean labeler's would ([`spot`]); every batch waits for review until a reviewer
+    /// clears the hold.
+    SpotCheckDisagreement,
 }
 
 impl ReasonCode {
@@ -668,11 +685,12 @@ impl ReasonCode {
             ReasonCode::LabelsUnlikely => "labels_unlikely",
             ReasonCode::ItemsUnlikePool => "items_unlike_pool",
             ReasonCode::FlaggedItemsInClass => "flagged_items_in_class",
+            ReasonCode::SpotCheckDisagreement => "spot_check_disagreement",
         }
     }
 
     /// Every code, for documentation and schema checks.
-    pub const ALL: [ReasonCode; 18] = [
+    pub const ALL: [ReasonCode; 19] = [
         ReasonCode::WithinBaseline,
         ReasonCode::WithinColdStartLimits,
         ReasonCode::ScoreInvalid,
@@ -691,6 +709,7 @@ impl ReasonCode {
         ReasonCode::LabelsUnlikely,
         ReasonCode::ItemsUnlikePool,
         ReasonCode::FlaggedItemsInClass,
+        ReasonCode::SpotCheckDisagreement,
     ];
 
     /// Whether the code says something about the batch's labels (false for the accepting codes, an

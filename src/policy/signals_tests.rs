@@ -30,6 +30,7 @@ fn item(index: usize, label: usize, suspicion: f64, label_fit: LabelFit) -> Item
         anchored_doubt: 0.0,
         repair_weight: 0.2,
         wrong_probability: suspicion,
+        reference_margin: 0.0,
         flagged_at_step: None,
     }
 }

@@ -39,6 +39,9 @@ pub struct DriftReset {
     pub held_values_joined: usize,
     /// Accepted repair costs in the vendor's baseline after the reset.
     pub baseline_batches: usize,
+    /// Whether a spot-check hold ([`crate::policy::spot`]) was cleared.
+    #[serde(default)]
+    pub spot_hold_cleared: bool,
 }
 
 /// Reset a vendor's drift statistic (see the module documentation).
@@ -57,11 +60,13 @@ pub fn drift_reset(
     let mut h = env.store.vendor_history(&req.vendor)?;
     let (cost_before, share_before) = (h.cusum, h.flagged_share.cusum);
     let held = h.pending_costs.len() + h.flagged_share.pending.len();
+    let spot_hold_cleared = h.spot_hold.is_some();
     h.reset_cusum(&env.config.policy);
     let mut detail = caller_detail(env);
     detail["repair_cost_cusum_before"] = serde_json::json!(cost_before);
     detail["flagged_share_cusum_before"] = serde_json::json!(share_before);
     detail["held_values_joined"] = serde_json::json!(held);
+    detail["spot_hold_cleared"] = serde_json::json!(spot_hold_cleared);
     let mut audit = AuditRecord::new(&req.by, "drift_reset")
         .reason(req.reason.clone())
         .detail(detail);
@@ -74,6 +79,7 @@ pub fn drift_reset(
         flagged_share_cusum_before: share_before,
         held_values_joined: held,
         baseline_batches: h.accepted_costs.len(),
+        spot_hold_cleared,
     })
 }
 

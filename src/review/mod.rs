@@ -49,6 +49,7 @@ mod page_parts;
 mod projection;
 mod rescan;
 mod show;
+mod spot;
 mod sweep;
 mod trusted;
 
@@ -60,6 +61,7 @@ pub use page::*;
 use projection::*;
 pub use rescan::*;
 pub use show::*;
+pub use spot::*;
 pub use sweep::*;
 pub use trusted::*;
 
@@ -365,6 +367,10 @@ pub enum Request {
         /// Who asked.
         by: String,
     },
+    /// Accepted batches whose spot check waits for the experts.
+    SpotList,
+    /// Record the experts' answers to a spot check.
+    SpotAnswer(SpotAnswerRequest),
     /// The audit trail, filtered.
     Audit {
         /// Only records at or after this time.
@@ -409,6 +415,8 @@ pub fn handle(env: &ReviewEnv<'_>, req: Request) -> Result<serde_json::Value, Re
         }),
         Request::DriftReset(r) => json(drift_reset(env, &r)?),
         Request::HeldList => json(held_list(env)?),
+        Request::SpotList => json(spot_list(env)?),
+        Request::SpotAnswer(r) => json(spot_answer(env, &r)?),
         Request::HeldDecide(r) => json(held_decide(env, &r)?),
         Request::Rescan { by } => json(rescan(env, &by)?),
         Request::PoolSweep(r) => json(pool_sweep(env, &r)?),

@@ -37,7 +37,8 @@ pub struct QueueEntry {
     pub damage: Option<f64>,
     /// Items whose label the repair moved.
     pub flagged_items: Option<usize>,
-    /// The policy's reason codes (`recalled_on_drift` for an accepted batch recalled for review).
+    /// The policy's reason codes (`recalled_on_drift` or `recalled_on_spot_check` for an accepted batch
+    /// recalled for review).
     pub reasons: Vec<String>,
     /// For a recalled batch: the later batch whose hold recalled it.
     #[serde(default, skip_serializing_if = "Option::is_none")]
@@ -54,7 +55,7 @@ pub fn list(env: &ReviewEnv<'_>) -> Result<Vec<QueueEntry>, ReviewError> {
         .into_iter()
         .map(|r| QueueEntry {
             reasons: match (&r.recalled, &r.decision) {
-                (Some(_), _) => vec![crate::pipeline::recall::RECALLED_ON_DRIFT.to_string()],
+                (Some(c), _) => vec![crate::pipeline::recall::code_of(c).to_string()],
                 (None, Some(d)) => d
                     .reasons
                     .iter()

@@ -216,6 +216,51 @@ pub struct BatchRecord {
     /// batch of its vendor was held by a stream rule (see [`Recall`]).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub recalled: Option<Recall>,
+    /// The items of an accepted batch picked for the experts' spot check, and their answers once given
+    /// ([`crate::policy::spot`]).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub spot_check: Option<SpotCheck>,
+}
+
+/// An accepted batch's spot check: the items sent to the experts (without the vendor's labels, which
+/// they must not see) and, once given, their answers.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SpotCheck {
+    /// The items, hard ones first.
+    pub items: Vec<SpotItem>,
+    /// The experts' answers, once given.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub answered: Option<SpotAnswers>,
+}
+
+/// One spot-checked item.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SpotItem {
+    /// Item id.
+    pub id: String,
+    /// Why it was picked.
+    pub stratum: crate::policy::spot::Stratum,
+    /// The vendor's label (never shown to the experts before they answer).
+    pub label: String,
+    /// Its features, in the workspace's feature order (the experts' file carries them; the trusted set
+    /// takes them with the answer).
+    pub features: Vec<f64>,
+}
+
+/// The experts' answers to a spot check.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct SpotAnswers {
+    /// Who answered.
+    pub by: String,
+    /// When the answers were recorded.
+    pub at: DateTime<Utc>,
+    /// The expert's label per item, in the order of [`SpotCheck::items`].
+    pub labels: Vec<String>,
+    /// How many differ from the vendor's.
+    pub disagreed: usize,
+    /// The chart that signalled on these answers, if one did.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub signal: Option<crate::policy::spot::Stratum>,
 }
 
 /// Why an accepted batch was taken back out of the pool and quarantined for review: a later batch of the
@@ -343,6 +388,7 @@ impl BatchRecord {
             pending_notices: Vec::new(),
             held: Vec::new(),
             recalled: None,
+            spot_check: None,
         }
     }
 }

@@ -53,7 +53,7 @@ mod trusted;
 
 pub use batch::{
     AuditRecord, BatchRecord, BatchScores, BatchState, HeldItem, HeldState, HeldWhy, Outcome,
-    Recall, RejectReason, Suspect,
+    Recall, RejectReason, SpotAnswers, SpotCheck, SpotItem, Suspect,
 };
 pub use features::{FeatureImport, PoolImport, Provenance, POOL_IMPORT_CHUNK};
 
@@ -797,7 +797,26 @@ impl Store {
                 }
             }
             if let Some((k, v)) = &history {
-                t[T_HISTORY].insert(k.as_slice(), v.as_slice())?;
+                // The spot-check state is written by `spot-check answer` and `vendor reset-drift` alone
+                // (the scoring worker's copy may predate an answer): keep the stored one.
+                let stored: Option<VendorHistory> = t[T_HISTORY]
+                    .get(k.as_slice())?
+                    .map(|cur| dec("history", k, &cur))
+                    .transpose()
+                    .map_err(ConflictableTransactionError::Abort)?;
+                match stored {
+                    Some(cur) => {
+                        let mut h: VendorHistory =
+                            dec("history", k, v).map_err(ConflictableTransactionError::Abort)?;
+                        h.spot = cur.spot;
+                        h.spot_hold = cur.spot_hold;
+                        let v = enc("history", &h).map_err(ConflictableTransactionError::Abort)?;
+                        t[T_HISTORY].insert(k.as_slice(), v)?;
+                    }
+                    None => {
+                        t[T_HISTORY].insert(k.as_slice(), v.as_slice())?;
+                    }
+                }
             }
             if let Some(f) = history_edit {
                 let key = record.vendor.as_bytes();

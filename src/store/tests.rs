@@ -247,3 +247,48 @@ fn a_transition_with_history_updates_both_or_neither() {
     // Another vendor's history is untouched.
     assert_eq!(s.vendor_history("v2").unwrap().accepted_total, 0);
 }
+
+/// The scoring worker writes the vendor's history with a verdict from the copy it read before scoring;
+/// a spot-check answer recorded meanwhile must survive it (the worker's copy of the spot-check state
+/// is stale by design). Fails with the verdict writing its copy whole.
+#[test]
+fn a_verdict_keeps_the_stored_spot_check_state() {
+    use crate::policy::spot::{SpotHold, Stratum};
+    let (_d, s) = tmp_store();
+    let stale = VendorHistory::default();
+    let mut answered = VendorHistory::default();
+    answered.spot.hard.s = 6.0;
+    answered.spot.hard.run = vec!["b1".into()];
+    answered.spot_hold = Some(SpotHold {
+        batch: "b1".into(),
+        stratum: Stratum::Hard,
+        statistic: 6.0,
+        checked: 8,
+        disagreed: 8,
+    });
+    s.set_vendor_history(
+        "v1",
+        &answered,
+        AuditRecord::new("expert", "spot_check_answer"),
+    )
+    .unwrap();
+    let mut worker = stale.clone();
+    worker.accepted_total = 1;
+    let mut r = claimed(&s);
+    r.outcome = Some(Outcome::Accepted);
+    s.record_verdict(
+        &r,
+        AuditRecord::new("daemon", "verdict"),
+        false,
+        Some(&worker),
+        None,
+        None,
+    )
+    .unwrap();
+    let h = s.vendor_history("v1").unwrap();
+    assert_eq!(h.accepted_total, 1, "the worker's part is written");
+    assert_eq!(
+        (h.spot.clone(), h.spot_hold.clone()),
+        (answered.spot, answered.spot_hold)
+    );
+}

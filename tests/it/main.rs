@@ -26,5 +26,6 @@ mod intake;
 mod policy;
 mod recall;
 mod review;
+mod spot;
 mod util;
 mod ux;

@@ -121,12 +121,28 @@ pub(crate) fn score_items(
                 anchored_doubt,
                 repair_weight: w,
                 wrong_probability: p_wrong[i],
+                reference_margin: margin(p_ref.row(i)),
                 flagged_at_step: anchored.first_flagged[i],
                 label_fit: Default::default(),
             }
         })
         .collect();
     (items, noise_rate)
+}
+
+/// A probability row's margin: the largest entry less the second largest (the largest alone for one
+/// class).
+fn margin(p: ndarray::ArrayView1<'_, f64>) -> f64 {
+    let (mut first, mut second) = (f64::NEG_INFINITY, f64::NEG_INFINITY);
+    for &v in p {
+        if v > first {
+            second = first;
+            first = v;
+        } else if v > second {
+            second = v;
+        }
+    }
+    (first - second.max(0.0)).clamp(0.0, 1.0)
 }
 
 /// The fusion's flag rule as the clean level reads it: for item `j` carrying label `c`,
@@ -229,6 +245,17 @@ pub(crate) fn trusted_reports(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Worked by hand: the largest probability less the second largest, ties giving 0, one class its
+    /// probability alone.
+    #[test]
+    fn the_margin_is_the_best_class_less_the_runner_up() {
+        let m = |v: &[f64]| margin(ndarray::ArrayView1::from(v));
+        assert!((m(&[0.2, 0.5, 0.3]) - 0.2).abs() < 1e-12);
+        assert!((m(&[0.6, 0.1, 0.3]) - 0.3).abs() < 1e-12);
+        assert_eq!(m(&[0.4, 0.4, 0.2]), 0.0);
+        assert_eq!(m(&[1.0]), 1.0);
+    }
 
     /// The per-label expectations add up to the batch's expected flagged count `n · m₀`, and each is the
     /// formula of `Assessment::expected_flagged_by_label` worked by hand on a three-item batch.

@@ -104,6 +104,11 @@ pub struct ItemScore {
     /// review; the flag follows the suspicion.
     #[serde(default)]
     pub wrong_probability: f64,
+    /// The reference model's margin on the item, whatever its label: its most likely class's probability
+    /// less the runner-up's, in `[0, 1]`. Small where the model is least sure; what expert spot checks
+    /// rank their hard items by ([`crate::policy::spot`]).
+    #[serde(default)]
+    pub reference_margin: f64,
     /// Step of the repair path at which this item's relaxed label first left its given class, if it did.
     pub flagged_at_step: Option<usize>,
     /// The item's term of the batch's label fit ([`LabelFit`]): `ln p_ref(y)` with `p_ref` floored at

@@ -1,0 +1,308 @@
+//! Expert spot checks through the daemon: every accepted batch gets a spot-check file (picked items, no
+//! vendor labels); answers that agree move nothing; answers that disagree on two batches raise the
+//! least-sure chart's signal, which recalls the batches of its run, holds the vendor's next delivery
+//! (`spot_check_disagreement`) until a reviewer clears it, and grows the trusted set.
+
+use std::collections::HashMap;
+use std::time::{Duration, Instant};
+
+use serde_json::Value;
+
+use crate::review::ok_json;
+use crate::util::*;
+
+const T: Duration = Duration::from_secs(120);
+
+/// The value of the metric line that starts with `name` and carries every one of `labels`.
+fn metric_with(addr: std::net::SocketAddr, name: &str, labels: &[&str]) -> Option<f64> {
+    let (_, body) = http_get(addr, "/metrics").ok()?;
+    body.lines()
+        .find(|l| l.starts_with(&format!("{name}{{")) && labels.iter().all(|x| l.contains(x)))
+        .and_then(|l| l.rsplit(' ').next())
+        .and_then(|v| v.parse().ok())
+}
+
+/// The spot-check file's rows: (id, label cell), checking its header against the workspace's columns.
+fn spot_rows(ws: &Ws, batch: &str) -> Vec<(String, String)> {
+    let text = std::fs::read_to_string(ws.path("spot-checks").join(format!("{batch}.csv")))
+        .unwrap_or_else(|e| panic!("spot-checks/{batch}.csv: {e}"));
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    assert_eq!(&header[..2], ["id", "label"], "{header:?}");
+    assert_eq!(header.len(), 2 + labelweir::scenario::feature_names().len());
+    lines
+        .map(|l| {
+            let mut c = l.split(',');
+            (c.next().unwrap().to_string(), c.next().unwrap().to_string())
+        })
+        .collect()
+}
+
+/// An answer file: each picked item with `label_of(vendor's label index)`.
+fn answers(
+    rows: &[(String, String)],
+    vendor: &HashMap<String, usize>,
+    label_of: impl Fn(usize) -> usize,
+) -> Vec<u8> {
+    let names = labelweir::scenario::class_names();
+    let mut s = String::from("id,label\n");
+    for (id, _) in rows {
+        s.push_str(&format!("{id},{}\n", names[label_of(vendor[id])]));
+    }
+    s.into_bytes()
+}
+
+#[test]
+fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted_set() {
+    let ws = Ws::new(&["sorter-co"]);
+    let dir = ws.dir.display().to_string();
+    let d = Daemon::start(&ws);
+    let mut vendor_labels = HashMap::new();
+    for w in 0..3u64 {
+        let b = clean_batch(&format!("s{w}-"), 150, 60 + w);
+        for (id, &l) in b.ids.iter().zip(&b.labels) {
+            vendor_labels.insert(id.clone(), l);
+        }
+        ws.deliver("sorter-co", &format!("s{w}.csv"), &b.csv());
+        ws.wait_filed(1 + w as usize, T);
+    }
+    // Every accepted batch waits for the experts, with 4 least-sure and 4 random items and a file
+    // without the vendor's labels.
+    let list = ok_json(&["spot-check", "list", &dir, "--json"]);
+    let pending: Vec<String> = list
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["batch_id"].as_str().unwrap().to_string())
+        .collect();
+    assert_eq!(pending.len(), 3, "three clean batches accepted: {list}");
+    for e in list.as_array().unwrap() {
+        assert_eq!(
+            (e["hard"].as_u64(), e["random"].as_u64()),
+            (Some(4), Some(4)),
+            "{e}"
+        );
+    }
+    let rows: Vec<Vec<(String, String)>> = pending.iter().map(|b| spot_rows(&ws, b)).collect();
+    for r in &rows {
+        assert_eq!(r.len(), 8);
+        assert!(
+            r.iter()
+                .all(|(id, label)| label.is_empty() && vendor_labels.contains_key(id)),
+            "{r:?}"
+        );
+    }
+    let k = labelweir::scenario::class_names().len();
+    let answer = |i: usize, label_of: &dyn Fn(usize) -> usize| -> Value {
+        let file = ws.path(&format!("answers-{i}.csv"));
+        std::fs::write(&file, answers(&rows[i], &vendor_labels, label_of)).unwrap();
+        ok_json(&[
+            "spot-check",
+            "answer",
+            &dir,
+            &pending[i],
+            file.to_str().unwrap(),
+            "--by",
+            "expert-a",
+            "--json",
+        ])
+    };
+    // Every picked item needs an answer from the workspace's classes, and only picked items are taken.
+    let bad = |name: &str, body: &str, says: &str| {
+        let file = ws.path(name);
+        std::fs::write(&file, body).unwrap();
+        let out = run_bin(&[
+            "spot-check",
+            "answer",
+            &dir,
+            &pending[0],
+            file.to_str().unwrap(),
+            "--by",
+            "x",
+        ]);
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(!out.status.success() && err.contains(says), "{name}: {err}");
+    };
+    let (first, rest) = (&rows[0][0].0, &rows[0][1..]);
+    let some: String = rest.iter().map(|(id, _)| format!("{id},paper\n")).collect();
+    bad("missing.csv", &format!("id,label\n{some}"), "has no answer");
+    bad(
+        "unknown.csv",
+        &format!("id,label\n{first},banana\n{some}"),
+        "is not one of the workspace's classes",
+    );
+    bad(
+        "extra.csv",
+        &format!("id,label\n{first},paper\n{some}other-item,paper\n"),
+        "was not picked",
+    );
+    bad("nolabel.csv", "id,class\nx,paper\n", "no \"label\" column");
+    assert_eq!(
+        ok_json(&["spot-check", "list", &dir, "--json"])
+            .as_array()
+            .unwrap()
+            .len(),
+        3,
+        "nothing recorded"
+    );
+    // Answers that agree: no disagreement, no signal; the file is gone and the items are trusted.
+    let a0 = answer(0, &|l| l);
+    assert_eq!(
+        (a0["checked"].as_u64(), a0["disagreed"].as_u64()),
+        (Some(8), Some(0)),
+        "{a0}"
+    );
+    assert!(a0["signal"].is_null() && a0["vendor_held"] == false, "{a0}");
+    assert_eq!(a0["trusted_added"], 8);
+    assert!(!ws
+        .path("spot-checks")
+        .join(format!("{}.csv", pending[0]))
+        .exists());
+    // Answering twice is refused.
+    let again = run_bin(&[
+        "spot-check",
+        "answer",
+        &dir,
+        &pending[0],
+        ws.path("answers-0.csv").to_str().unwrap(),
+        "--by",
+        "x",
+    ]);
+    assert!(!again.status.success());
+    assert!(String::from_utf8_lossy(&again.stderr).contains("was answered by expert-a"));
+    // Two batches whose every picked label differs from the expert's: the least-sure chart signals on
+    // the second (4 × (ln 3 − ln 1.3) = 3.34 a batch against 5.5) and reaches back over both.
+    let a1 = answer(1, &|l| (l + 1) % k);
+    assert!(a1["signal"].is_null(), "{a1}");
+    let a2 = answer(2, &|l| (l + 1) % k);
+    assert_eq!(a2["signal"], "hard", "{a2}");
+    assert_eq!(a2["vendor_held"], true);
+    let mut recalled: Vec<String> = a2["recalled"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap().to_string())
+        .collect();
+    recalled.sort();
+    assert_eq!(recalled, [pending[1].clone(), pending[2].clone()], "{a2}");
+    let q = ok_json(&["quarantine", "list", &dir, "--json"]);
+    for id in &recalled {
+        let e = q
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|e| e["batch_id"] == id.as_str())
+            .unwrap_or_else(|| panic!("{id} in quarantine: {q}"));
+        assert_eq!(e["reasons"][0], "recalled_on_spot_check");
+        assert_eq!(e["recalled_by"], pending[2].as_str());
+        // The recall notice names no item (a suspicion about the stream, not a finding about items).
+        let notices = ws.path("notices").join("sorter-co");
+        let t = Instant::now();
+        let mut p = notice_file(&notices, id, "recalled.json");
+        while !p.exists() && t.elapsed() < T {
+            std::thread::sleep(Duration::from_millis(100));
+            p = notice_file(&notices, id, "recalled.json");
+        }
+        let n: Value = serde_json::from_slice(&std::fs::read(&p).unwrap()).unwrap();
+        assert_eq!(n["verdict"], "recalled", "{n}");
+        assert_eq!(n["reasons"][0]["code"], "recalled_on_spot_check", "{n}");
+        assert!(n["items"].as_array().is_none_or(Vec::is_empty), "{n}");
+    }
+    crate::review::validate_notices(&ws.path("notices").join("sorter-co"));
+    // A reviewer's view of a recalled batch says why, and what the experts answered.
+    let shown = run_bin(&["quarantine", "show", &dir, &recalled[1]]);
+    let text = String::from_utf8_lossy(&shown.stdout);
+    assert!(
+        text.contains(&format!(
+            "answers to batch {}'s spot check signalled",
+            pending[2]
+        )),
+        "{text}"
+    );
+    assert!(
+        text.contains("8 of 8 answers by expert-a differ from the vendor's labels; they raised"),
+        "{text}"
+    );
+    // The 24 answered items are trusted now, under ids a vendor cannot choose.
+    let trusted = ok_json(&["trusted", "list", &dir, "--json"]);
+    let spot_items = trusted.to_string().matches("\"spot:").count();
+    assert_eq!(spot_items, 24, "{trusted}");
+    // The vendor's next delivery waits for review, whatever its scores.
+    ws.deliver("sorter-co", "s3.csv", &clean_batch("s3-", 150, 70).csv());
+    ws.wait_filed(4, T);
+    let q = ok_json(&["quarantine", "list", &dir, "--json"]);
+    let held = q
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|e| e["original_name"] == "s3.csv")
+        .expect("s3 held");
+    assert!(
+        held["reasons"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|r| r == "spot_check_disagreement"),
+        "{held}"
+    );
+    assert_eq!(
+        metric_with(
+            d.addr,
+            "labelweir_spot_check_items_total",
+            &["sorter-co", "disagree"]
+        ),
+        Some(16.0)
+    );
+    assert_eq!(
+        metric_with(
+            d.addr,
+            "labelweir_spot_check_items_total",
+            &["sorter-co", "\"agree\""]
+        ),
+        Some(8.0)
+    );
+    assert_eq!(
+        metric_with(d.addr, "labelweir_spot_check_signals_total", &["sorter-co"]),
+        Some(1.0)
+    );
+    assert_eq!(
+        metric_with(
+            d.addr,
+            "labelweir_spot_checks_total",
+            &["sorter-co", "answered"]
+        ),
+        Some(3.0)
+    );
+    // A reviewer who looked at the answers clears the hold; the next delivery is judged on its scores.
+    let reset = ok_json(&[
+        "vendor",
+        "reset-drift",
+        &dir,
+        "sorter-co",
+        "--reason",
+        "answers checked",
+        "--by",
+        "rev",
+        "--json",
+    ]);
+    assert_eq!(reset["spot_hold_cleared"], true, "{reset}");
+    ws.deliver("sorter-co", "s4.csv", &clean_batch("s4-", 150, 71).csv());
+    ws.wait_filed(5, T);
+    let q = ok_json(&["quarantine", "list", &dir, "--json"]);
+    if let Some(e) = q
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|e| e["original_name"] == "s4.csv")
+    {
+        assert!(
+            !e["reasons"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .any(|r| r == "spot_check_disagreement"),
+            "{e}"
+        );
+    }
+    drop(d);
+}
