@@ -759,3 +759,46 @@ fn only_kept_out_items_the_trusted_anchored_model_does_not_doubt_reach_the_label
     let rows = crate::model::summary::kept_out_for_labels_model(&items, [0, 1, 2, 3, 9]);
     assert_eq!(rows, vec![0, 3]);
 }
+
+/// `Objective::data_hessian` assembles the pool in chunks of 4,096 rows; a pool of 5,000 rows (two
+/// chunks, weights other than 1) gives the per-item sum of the formula written out,
+/// `Σ_i (w_i / N) (diag(p_i) − p_i p_iᵀ) ⊗ φ_i φ_iᵀ`. The library's other Hessian checks use small pools,
+/// one chunk, where the second chunk's row count cannot be wrong (a mutation run found it unchecked).
+#[test]
+fn the_data_hessian_over_several_chunks_is_the_per_item_sum() {
+    let (n, p, k) = (5_000, 2, 3);
+    let mut rng = ChaCha8Rng::seed_from_u64(4096);
+    let phi = Array2::from_shape_fn((n, p), |_| rng.random_range(-1.0..1.0));
+    let y = Array2::<f64>::zeros((n, k));
+    let weight = Array1::from_shape_fn(n, |_| rng.random_range(0.5..2.0));
+    let prob = Array2::from_shape_fn((n, k), |(i, c)| ((i * 7 + c * 3) % 5 + 1) as f64);
+    let prob = &prob
+        / &prob
+            .sum_axis(ndarray::Axis(1))
+            .insert_axis(ndarray::Axis(1));
+    let norm = 1_234.0;
+    let obj = Objective {
+        phi: phi.view(),
+        y: y.view(),
+        weight: Some(weight.view()),
+        norm,
+        l2: 0.0,
+        prior: None,
+    };
+    let h = obj.data_hessian(prob.view());
+    let mut want = Array2::<f64>::zeros((p * k, p * k));
+    for i in 0..n {
+        for a in 0..k {
+            for b in 0..k {
+                let d = if a == b { prob[[i, a]] } else { 0.0 };
+                let s = weight[i] / norm * (d - prob[[i, a]] * prob[[i, b]]);
+                for r in 0..p {
+                    for c in 0..p {
+                        want[[a * p + r, b * p + c]] += s * phi[[i, r]] * phi[[i, c]];
+                    }
+                }
+            }
+        }
+    }
+    assert!(max_abs(&(&h - &want)) < 1e-10, "{}", max_abs(&(&h - &want)));
+}
