@@ -421,7 +421,9 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
     rt.block_on(daemon::run(Workspace::new(&ws_dir), config, opts, shutdown))
         .map_err(|e| Failure::new(super::daemon_exit(&e), e.to_string()))?;
     println!(
-        "\nfolders: {}/accepted, quarantine (read-only copies + reports), rejected; vendor notices in notices/<vendor>/",
+        "\nfolders: {}/accepted, quarantine (read-only copies + reports), rejected; vendor notices in notices/<vendor>/;\n\
+         spot-checks/: items of accepted batches for the trusted-set experts to label (`labelweir spot-check list {}`)",
+        ws_dir.display(),
         ws_dir.display()
     );
     Ok(exit::OK)
