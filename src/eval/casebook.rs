@@ -14,7 +14,7 @@
 //! class and fixes the standardisation (as `labelweir init` does); the pool starts with 2,000 in-house
 //! items carrying their true labels.
 
-use ndarray::{Array1, Array2, Axis};
+use ndarray::{Array2, Axis};
 use serde::Serialize;
 
 use crate::config::Config;
@@ -24,7 +24,6 @@ use crate::model::{
     TrustedInput,
 };
 use crate::pipeline::verdict;
-use crate::policy::spot::Stratum;
 use crate::policy::VendorHistory;
 use crate::scenario::{self, Plant};
 use crate::store::{BatchRecord, PoolEntry};
@@ -483,20 +482,6 @@ fn best_guesses(summary: &PoolSummary, x: &Array2<f64>) -> Result<Vec<usize>, Mo
         .collect())
 }
 
-/// The simulated expert's answer for an item whose true class is `truth`: right, except with probability
-/// [`EXPERT_ERROR`], then a uniformly drawn other class.
-fn expert_answer(truth: usize, k: usize, rng: &mut impl rand::Rng) -> usize {
-    if k > 1 && rng.random::<f64>() < EXPERT_ERROR {
-        let other = rng.random_range(0..k - 1);
-        if other >= truth {
-            other + 1
-        } else {
-            other
-        }
-    } else {
-        truth
-    }
-}
 
 impl CaseReport {
     /// An empty report for a case.
@@ -535,77 +520,6 @@ impl CaseReport {
     }
 }
 
-/// The simulated trusted-set experts: the spot checks they were asked, answered `lag` batches later.
-struct Experts {
-    lag: usize,
-    /// (batch place, `(stratum, vendor's label ≠ the expert's answer)` per picked item).
-    asked: std::collections::VecDeque<(usize, Vec<(Stratum, bool)>)>,
-    rng: rand_chacha::ChaCha8Rng,
-}
-
-impl Experts {
-    fn new(lag: usize, seed: u64) -> Self {
-        use rand::SeedableRng;
-        Experts {
-            lag,
-            asked: Default::default(),
-            rng: rand_chacha::ChaCha8Rng::seed_from_u64(seed ^ 0xe4e7),
-        }
-    }
-
-    /// Batch `b`'s spot check: the expert labels the picked items blind (from their true labels `y`).
-    fn ask(
-        &mut self,
-        b: usize,
-        check: &crate::store::SpotCheck,
-        ids: &[String],
-        y: &[usize],
-        given: &[usize],
-        k: usize,
-    ) {
-        let answers = check
-            .items
-            .iter()
-            .filter_map(|it| Some((ids.iter().position(|x| *x == it.id)?, it.stratum)))
-            .map(|(i, stratum)| (stratum, given[i] != expert_answer(y[i], k, &mut self.rng)))
-            .collect();
-        self.asked.push_back((b, answers));
-    }
-
-    /// The answers due after batch `b`: into the vendor's charts, as `spot-check answer` does; a signal
-    /// holds the vendor and takes back the batches of the chart's run.
-    fn answer_due(
-        &mut self,
-        b: usize,
-        config: &Config,
-        history: &mut VendorHistory,
-        r: &mut CaseReport,
-        accepted: &mut [Entered],
-    ) {
-        while self.asked.front().is_some_and(|(at, _)| at + self.lag <= b) {
-            let Some((at, answers)) = self.asked.pop_front() else {
-                break;
-            };
-            r.spot_checked += answers.len();
-            r.spot_disagreed += answers.iter().filter(|(_, x)| *x).count();
-            let name = format!("b{at}");
-            let o = history.spot.take(&name, &answers, &config.spot_checks);
-            if let Some(hold) = history.spot.hold(&name, &o) {
-                if history.spot_hold.is_none() {
-                    history.spot_hold = Some(hold);
-                    r.spot_signal_at.get_or_insert(b + 1);
-                }
-                let places: Vec<usize> = o
-                    .reach
-                    .iter()
-                    .filter_map(|n| n.strip_prefix('b')?.parse().ok())
-                    .collect();
-                r.recall_batches(accepted, &places);
-            }
-        }
-    }
-}
-
 /// Replay one case from the start state.
 fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseReport, ModelError> {
     let mut summary = if case.empty_pool {
@@ -619,8 +533,8 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
     };
     let mut history = VendorHistory::default();
     let classes = s.source.class_names();
-    let trusted_ids: Vec<String> = scenario::item_ids("t", s.trusted_y.len());
-    let w = Array1::ones(s.trusted_y.len());
+    // The trusted set as the experts' answers grow it (up to `[spot_checks] trusted_max` of them).
+    let mut trusted = Trusted::new(s);
     let mut r = CaseReport::new(case);
     let mut told = std::collections::BTreeMap::<String, usize>::new();
     let mut accepted_log: Vec<Entered> = Vec::new();
@@ -651,9 +565,9 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
             &s.standardizer,
             s.source.classes(),
             TrustedInput {
-                x: s.trusted_x.view(),
-                y: &s.trusted_y,
-                weight: w.view(),
+                x: trusted.x.view(),
+                y: &trusted.y,
+                weight: trusted.w.view(),
             },
             PoolInput::Summary(&summary),
             x.view(),
@@ -664,7 +578,7 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
             verdict::shift_check(
                 &s.config,
                 &s.standardizer,
-                s.trusted_x.view(),
+                trusted.x.view(),
                 summary.reservoir_phi.view(),
                 x.view(),
             )
@@ -686,7 +600,7 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
                 scored,
                 score_seconds: 0.0,
                 classes: &classes,
-                trusted_ids: &trusted_ids,
+                trusted_ids: &trusted.ids,
                 spot_seed: bseed ^ 0x5b07,
             },
             decision,
@@ -745,7 +659,8 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
                 r.held_as_label_trouble += 1;
             }
         }
-        experts.answer_due(b, &s.config, &mut history, &mut r, &mut accepted_log);
+        let answered = experts.answer_due(b, &s.config, &mut history, &mut r, &mut accepted_log);
+        trusted.grow(s, answered);
     }
     r.told = told.into_iter().collect();
     Ok(r)
@@ -935,6 +850,10 @@ pub fn render_text(c: &Casebook) -> String {
     }
     s
 }
+
+#[path = "casebook_experts.rs"]
+mod experts;
+use experts::{Experts, Trusted};
 
 #[cfg(test)]
 #[path = "casebook_tests.rs"]

@@ -66,6 +66,10 @@ pub struct SpotSettings {
     pub h_random: f64,
     /// Decision limit of the hard chart.
     pub h_hard: f64,
+    /// The most answered items kept in the trusted set (the oldest spot-checked items retire first, never
+    /// the others); 0 keeps answers out of the trusted set. Bounds what the growing set costs each
+    /// assessment.
+    pub trusted_max: usize,
 }
 
 impl Default for SpotSettings {
@@ -84,6 +88,7 @@ impl Default for SpotSettings {
             odds_ratio: 3.0,
             h_random: 4.5,
             h_hard: 5.5,
+            trusted_max: 400,
         }
     }
 }

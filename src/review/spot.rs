@@ -14,7 +14,8 @@
 //!    that names no item);
 //! 3. the answered items join the trusted set (ids `spot:<batch>:<item>`, so a vendor's item id can never
 //!    replace a trusted item; source "spot check of batch …"), as expert-verified items, where the
-//!    learner was least sure or at random.
+//!    learner was least sure or at random; past `[spot_checks] trusted_max` the oldest answered items
+//!    retire (never the team's own items), so the set's cost to every assessment stays bounded.
 //!
 //! A disagreement is a suspicion for review, not proof: experts err too.
 
@@ -26,7 +27,9 @@ use serde::{Deserialize, Serialize};
 
 use super::decide::{caller_detail, require_by};
 use super::show::get_batch;
-use super::{trusted_add, ReviewEnv, ReviewError, TrustedAddRequest};
+use super::{
+    trusted_add, trusted_remove, ReviewEnv, ReviewError, TrustedAddRequest, TrustedRemoveRequest,
+};
 use crate::pipeline::recall::{recall_records, Cause, RECALLED_ON_SPOT_CHECK};
 use crate::policy::spot::{SpotHold, SpotOutcome, Stratum};
 use crate::store::{AuditRecord, BatchState, PoolChange, SpotAnswers};
@@ -401,6 +404,9 @@ fn add_to_trusted(
     items: &[crate::store::SpotItem],
     labels: &[String],
 ) -> Result<usize, ReviewError> {
+    if env.config.spot_checks.trusted_max == 0 {
+        return Ok(0);
+    }
     let ids: Vec<String> = items.iter().map(|i| trusted_id(batch, &i.id)).collect();
     let width = env.meta.features.len();
     let flat: Vec<f64> = items
@@ -435,5 +441,30 @@ fn add_to_trusted(
             replace: true,
         },
     )?;
+    // Past the cap the oldest spot-checked items retire; the team's own trusted items never do.
+    let mut spot: Vec<crate::store::TrustedItem> = env
+        .store
+        .trusted_items()?
+        .into_iter()
+        .filter(|t| t.id.starts_with("spot:"))
+        .collect();
+    let max = env.config.spot_checks.trusted_max;
+    if spot.len() > max {
+        spot.sort_by(|a, b| a.added_at.cmp(&b.added_at).then_with(|| a.id.cmp(&b.id)));
+        let ids: Vec<String> = spot[..spot.len() - max]
+            .iter()
+            .map(|t| t.id.clone())
+            .collect();
+        trusted_remove(
+            env,
+            &TrustedRemoveRequest {
+                ids,
+                by: req.by.clone(),
+                reason: format!(
+                    "the oldest spot-checked items past [spot_checks] trusted_max = {max}"
+                ),
+            },
+        )?;
+    }
     Ok(change.added.len() + change.replaced.len())
 }

@@ -54,9 +54,15 @@ fn answers(
 
 #[test]
 fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted_set() {
-    let ws = Ws::new(&["sorter-co"]);
+    // At most 12 answered items stay in the trusted set (the shipped cap is 400).
+    let ws = Ws::with(&["sorter-co"], &[("trusted_max = 400", "trusted_max = 12")]);
     let dir = ws.dir.display().to_string();
     let d = Daemon::start(&ws);
+    let trusted_items_at_init = ok_json(&["trusted", "list", &dir, "--json"])
+        .to_string()
+        .matches("\"trusted-")
+        .count();
+    assert!(trusted_items_at_init > 0);
     let mut vendor_labels = HashMap::new();
     for w in 0..3u64 {
         let b = clean_batch(&format!("s{w}-"), 150, 60 + w);
@@ -223,10 +229,26 @@ fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted
         text.contains("8 of 8 answers by expert-a differ from the vendor's labels; they raised"),
         "{text}"
     );
-    // The 24 answered items are trusted now, under ids a vendor cannot choose.
+    // The answered items are trusted now, under ids a vendor cannot choose: the newest 12 of the 24 (the
+    // cap), the team's own items untouched.
     let trusted = ok_json(&["trusted", "list", &dir, "--json"]);
-    let spot_items = trusted.to_string().matches("\"spot:").count();
-    assert_eq!(spot_items, 24, "{trusted}");
+    let text = trusted.to_string();
+    assert_eq!(text.matches("\"spot:").count(), 12, "{trusted}");
+    assert_eq!(
+        text.matches(&format!("\"spot:{}:", pending[2])).count(),
+        8,
+        "{trusted}"
+    );
+    assert_eq!(
+        text.matches(&format!("\"spot:{}:", pending[0])).count(),
+        0,
+        "{trusted}"
+    );
+    assert_eq!(
+        text.matches("\"trusted-").count(),
+        trusted_items_at_init,
+        "{trusted}"
+    );
     // The vendor's next delivery waits for review, whatever its scores.
     ws.deliver("sorter-co", "s3.csv", &clean_batch("s3-", 150, 70).csv());
     ws.wait_filed(4, T);
