@@ -39,7 +39,8 @@ struct ListArgs {
 
 /// Record the experts' labels for one batch's spot check. FILE is CSV with the id and label columns
 /// (the batch's spot-check file with its label column filled in will do); every picked item needs an
-/// answer. The answered items join the trusted set as `spot:<batch>:<item>`.
+/// answer. With `[spot_checks] trusted_max` above 0 the answered items join the trusted set as
+/// `spot:<batch>:<item>`.
 #[derive(Debug, clap::Args)]
 struct AnswerArgs {
     /// Workspace folder.

@@ -482,7 +482,6 @@ fn best_guesses(summary: &PoolSummary, x: &Array2<f64>) -> Result<Vec<usize>, Mo
         .collect())
 }
 
-
 impl CaseReport {
     /// An empty report for a case.
     fn new(case: &Case) -> Self {

@@ -12,10 +12,10 @@
 //! 2. then, on a signal, the vendor's batches in that chart's run that are still accepted are recalled for
 //!    review (the same path as a stream rule's recall: out of the pool, into `quarantine/`, a notice
 //!    that names no item);
-//! 3. the answered items join the trusted set (ids `spot:<batch>:<item>`, so a vendor's item id can never
-//!    replace a trusted item; source "spot check of batch …"), as expert-verified items, where the
-//!    learner was least sure or at random; past `[spot_checks] trusted_max` the oldest answered items
-//!    retire (never the team's own items), so the set's cost to every assessment stays bounded.
+//! 3. with `[spot_checks] trusted_max` above 0 (off by default, see [`crate::policy::spot::SpotSettings`]),
+//!    the answered items join the trusted set (ids `spot:<batch>:<item>`, so a vendor's item id can never
+//!    replace a trusted item; source "spot check of batch …"); past the cap the oldest answered items
+//!    retire (never the team's own items).
 //!
 //! A disagreement is a suspicion for review, not proof: experts err too.
 

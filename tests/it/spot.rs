@@ -54,8 +54,8 @@ fn answers(
 
 #[test]
 fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted_set() {
-    // At most 12 answered items stay in the trusted set (the shipped cap is 400).
-    let ws = Ws::with(&["sorter-co"], &[("trusted_max = 400", "trusted_max = 12")]);
+    // At most 12 answered items stay in the trusted set (shipped: 0, none).
+    let ws = Ws::with(&["sorter-co"], &[("trusted_max = 0", "trusted_max = 12")]);
     let dir = ws.dir.display().to_string();
     let d = Daemon::start(&ws);
     let trusted_items_at_init = ok_json(&["trusted", "list", &dir, "--json"])
@@ -327,4 +327,58 @@ fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted
         );
     }
     drop(d);
+}
+
+/// With the shipped settings (`trusted_max = 0`) the answers feed the charts but stay out of the trusted
+/// set: a trusted set filled with the items the model is least sure of moves every vendor's repair cost
+/// (see `[spot_checks] trusted_max`). Run with the daemon stopped (the command opens the store itself).
+#[test]
+fn by_default_answers_stay_out_of_the_trusted_set() {
+    let ws = Ws::new(&["sorter-co"]);
+    let dir = ws.dir.display().to_string();
+    let d = Daemon::start(&ws);
+    let b = clean_batch("t0-", 150, 90);
+    ws.deliver("sorter-co", "t0.csv", &b.csv());
+    ws.wait_filed(1, T);
+    drop(d);
+    let list = ok_json(&["spot-check", "list", &dir, "--json"]);
+    let batch = list[0]["batch_id"]
+        .as_str()
+        .expect("the accepted batch waits")
+        .to_string();
+    let labels: HashMap<String, usize> = b
+        .ids
+        .iter()
+        .cloned()
+        .zip(b.labels.iter().copied())
+        .collect();
+    let file = ws.path("answers.csv");
+    std::fs::write(&file, answers(&spot_rows(&ws, &batch), &labels, |l| l)).unwrap();
+    let a = ok_json(&[
+        "spot-check",
+        "answer",
+        &dir,
+        &batch,
+        file.to_str().unwrap(),
+        "--by",
+        "expert-b",
+        "--json",
+    ]);
+    assert_eq!(
+        (
+            a["checked"].as_u64(),
+            a["disagreed"].as_u64(),
+            a["trusted_added"].as_u64()
+        ),
+        (Some(8), Some(0), Some(0)),
+        "{a}"
+    );
+    let trusted = ok_json(&["trusted", "list", &dir, "--json"]).to_string();
+    assert!(!trusted.contains("\"spot:"), "{trusted}");
+    assert_eq!(
+        ok_json(&["spot-check", "list", &dir, "--json"])
+            .as_array()
+            .map(Vec::len),
+        Some(0)
+    );
 }
