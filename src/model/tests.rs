@@ -802,3 +802,96 @@ fn the_data_hessian_over_several_chunks_is_the_per_item_sum() {
     }
     assert!(max_abs(&(&h - &want)) < 1e-10, "{}", max_abs(&(&h - &want)));
 }
+
+/// A pool term whose curvature is zero (an empty dense Hessian, no Kronecker factors: what an empty pool's
+/// summary carries) adds nothing to the dense Hessian; the Hessian equals the one without the term, also
+/// in `hvp`. A mutation run found the empty case's guard unchecked (with it dropped, the empty matrix was
+/// added to the full one).
+#[test]
+fn a_pool_term_without_curvature_adds_nothing_to_the_hessian() {
+    use super::learner::{predict_proba, Quadratic};
+    let (n, k) = (20, 3);
+    let (x, y) = blobs(n, 2, k, 8);
+    let fm = FeatureMap::new(
+        Standardizer::fit(&[x.view()]).unwrap(),
+        FeatureMapKind::Linear,
+        1,
+    )
+    .unwrap();
+    let phi = fm.apply(x.view()).unwrap();
+    let m = phi.ncols() * k;
+    let yy = one_hot(&y, k);
+    let center = Array1::<f64>::zeros(m);
+    let grad = Array1::from_shape_fn(m, |j| 0.01 * j as f64);
+    let empty = Array2::<f64>::zeros((0, 0));
+    let base = Objective {
+        phi: phi.view(),
+        y: yy.view(),
+        weight: None,
+        norm: n as f64,
+        l2: 0.1,
+        prior: None,
+    };
+    let with = Objective {
+        prior: Some(Quadratic {
+            scale: 2.0,
+            center: center.view(),
+            grad: grad.view(),
+            hess: empty.view(),
+            kron: None,
+        }),
+        ..base
+    };
+    let theta = Array1::from_shape_fn(m, |j| 0.05 * (j as f64).sin());
+    let prob = predict_proba(phi.view(), &theta, k);
+    assert!(max_abs(&(&with.hessian(prob.view()) - &base.hessian(prob.view()))) < 1e-14);
+    let v = Array1::from_shape_fn(m, |j| (j as f64).cos());
+    assert!(max_abs(&(&with.hvp(prob.view(), &v) - &base.hvp(prob.view(), &v))) < 1e-14);
+}
+
+/// `train` with solver settings the optimiser refuses (a negative gradient tolerance; the configuration
+/// never allows one) returns the starting point with a report that says why and carries the objective and
+/// gradient norm at that point. A mutation run found these report fields unchecked.
+#[test]
+fn a_refused_solver_setup_is_reported_with_the_starting_point() {
+    use super::learner::train;
+    let (n, k) = (20, 3);
+    let (x, y) = blobs(n, 2, k, 9);
+    let fm = FeatureMap::new(
+        Standardizer::fit(&[x.view()]).unwrap(),
+        FeatureMapKind::Linear,
+        1,
+    )
+    .unwrap();
+    let phi = fm.apply(x.view()).unwrap();
+    let m = phi.ncols() * k;
+    let yy = one_hot(&y, k);
+    let obj = Objective {
+        phi: phi.view(),
+        y: yy.view(),
+        weight: None,
+        norm: n as f64,
+        l2: 0.1,
+        prior: None,
+    };
+    let init = Array1::<f64>::zeros(m);
+    let (f0, g0, _) = obj.value_grad(&init);
+    let (theta, report) = train(
+        &obj,
+        init.clone(),
+        -1.0,
+        100,
+        std::time::Duration::from_secs(5),
+    );
+    assert_eq!(theta, init);
+    assert!(!report.converged, "{report:?}");
+    assert!(
+        report.stopped.starts_with("solver setup failed"),
+        "{report:?}"
+    );
+    assert!((report.objective - f0).abs() < 1e-12, "{report:?}");
+    assert!(
+        (report.grad_norm - g0.dot(&g0).sqrt()).abs() < 1e-12,
+        "{report:?}"
+    );
+}
