@@ -803,6 +803,18 @@ fn the_data_hessian_over_several_chunks_is_the_per_item_sum() {
     assert!(max_abs(&(&h - &want)) < 1e-10, "{}", max_abs(&(&h - &want)));
 }
 
+/// `n` blob items in two dimensions and `k` classes, mapped (standardised, intercept) and one-hot labelled.
+fn mapped_blobs(n: usize, k: usize, seed: u64) -> (Array2<f64>, Array2<f64>) {
+    let (x, y) = blobs(n, 2, k, seed);
+    let fm = FeatureMap::new(
+        Standardizer::fit(&[x.view()]).unwrap(),
+        FeatureMapKind::Linear,
+        1,
+    )
+    .unwrap();
+    (fm.apply(x.view()).unwrap(), one_hot(&y, k))
+}
+
 /// A pool term whose curvature is zero (an empty dense Hessian, no Kronecker factors: what an empty pool's
 /// summary carries) adds nothing to the dense Hessian; the Hessian equals the one without the term, also
 /// in `hvp`. A mutation run found the empty case's guard unchecked (with it dropped, the empty matrix was
@@ -811,16 +823,8 @@ fn the_data_hessian_over_several_chunks_is_the_per_item_sum() {
 fn a_pool_term_without_curvature_adds_nothing_to_the_hessian() {
     use super::learner::{predict_proba, Quadratic};
     let (n, k) = (20, 3);
-    let (x, y) = blobs(n, 2, k, 8);
-    let fm = FeatureMap::new(
-        Standardizer::fit(&[x.view()]).unwrap(),
-        FeatureMapKind::Linear,
-        1,
-    )
-    .unwrap();
-    let phi = fm.apply(x.view()).unwrap();
+    let (phi, yy) = mapped_blobs(n, k, 8);
     let m = phi.ncols() * k;
-    let yy = one_hot(&y, k);
     let center = Array1::<f64>::zeros(m);
     let grad = Array1::from_shape_fn(m, |j| 0.01 * j as f64);
     let empty = Array2::<f64>::zeros((0, 0));
@@ -856,16 +860,8 @@ fn a_pool_term_without_curvature_adds_nothing_to_the_hessian() {
 fn a_refused_solver_setup_is_reported_with_the_starting_point() {
     use super::learner::train;
     let (n, k) = (20, 3);
-    let (x, y) = blobs(n, 2, k, 9);
-    let fm = FeatureMap::new(
-        Standardizer::fit(&[x.view()]).unwrap(),
-        FeatureMapKind::Linear,
-        1,
-    )
-    .unwrap();
-    let phi = fm.apply(x.view()).unwrap();
+    let (phi, yy) = mapped_blobs(n, k, 9);
     let m = phi.ncols() * k;
-    let yy = one_hot(&y, k);
     let obj = Objective {
         phi: phi.view(),
         y: yy.view(),
