@@ -279,13 +279,11 @@ pub fn settle(
     }
     // The experts' copy of an accepted batch's spot-check items; best effort (the store keeps them, and
     // `spot-check list` names them), so a full disk delays it without holding up the filing.
-    if let (Some(m), true) = (
-        metrics,
-        outcome == Outcome::Accepted && record.spot_check.is_some(),
-    ) {
+    let picked = outcome == Outcome::Accepted && record.spot_check.is_some();
+    if let (Some(m), true) = (metrics, picked) {
         m.spot_check_picked(&record.vendor);
     }
-    let spot_file = if outcome == Outcome::Accepted && record.spot_check.is_some() {
+    let spot_file = if picked {
         let names = store
             .workspace_meta()
             .map(|m| m.features)

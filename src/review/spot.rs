@@ -241,9 +241,10 @@ pub fn spot_answer(
             source: None,
         })?;
     // The record is edited before the vendor's history in the transaction, so the signal goes into the
-    // answers afterwards.
+    // answers afterwards (informational: the hold is in the vendor's history already, so a failure here is
+    // logged, not returned).
     if outcome.fired.is_some() {
-        env.store.transition(
+        if let Err(e) = env.store.transition(
             &settled.id,
             &[settled.state],
             settled.state,
@@ -254,7 +255,9 @@ pub fn spot_answer(
                     a.signal = outcome.fired;
                 }
             },
-        )?;
+        ) {
+            tracing::warn!(batch_id = %settled.id, error = %e, "noting the spot-check signal on the batch record failed");
+        }
     }
     if let Some(m) = crate::metrics::get() {
         let n = outcomes.len() as u64;
@@ -269,8 +272,8 @@ pub fn spot_answer(
         Some(hold) => recall_run(env, req, &rec, &outcome, hold)?,
         None => Vec::new(),
     };
-    // The answered items join the trusted set under ids no vendor can choose.
-    // The answers are recorded whatever happens here; a failure is reported, not fatal.
+    // With `trusted_max` above 0 the answered items join the trusted set under ids no vendor can choose;
+    // the answers are recorded whatever happens there, so a failure is reported, not returned.
     let (trusted_added, trusted_error) = match add_to_trusted(
         env,
         req,
