@@ -194,4 +194,75 @@ mod tests {
         assert!((mean - 0.08).abs() < 1e-12, "mean {mean}");
         assert!((sd - 0.106f64.sqrt()).abs() < 1e-12, "sd {sd}");
     }
+
+    /// With time for every draw, the estimate is the mean and deviation over the label draws of the
+    /// linearised model's trusted loss: on two items and three classes the nine label combinations are
+    /// enumerated exactly (each with its probability `p_1c · p_2c'`), through the same `theta_at` and
+    /// `trusted_value`. Sixteen draws with the linear term as control variate leave only the remainder's
+    /// sampling error, so the mean must sit within 3 of its standard errors (σ_r / 4) of the exact one, and
+    /// the deviation within a fifth. The library's other test of this function stops before any draw; a
+    /// mutation run found the draws' arithmetic unchecked.
+    #[test]
+    fn with_time_the_expected_damage_is_the_average_over_the_label_draws() {
+        let settings = ModelSettings {
+            l2: 1e-3,
+            ..ModelSettings::default()
+        };
+        let k = 3;
+        // Few items and a small L2 weight: each label moves the model far, so the trusted loss curves and
+        // the remainder beyond the linear term is not negligible.
+        let phi = Array2::from_shape_fn((8, 2), |(i, j)| if j == 0 { 1.0 } else { i as f64 / 4.0 });
+        let y_pool = one_hot(&[0, 1, 2, 0, 1, 2], k);
+        let inner = Inner::for_test(phi.clone(), Some(y_pool), 6..8, settings.l2);
+        let phi_t = phi.slice(s![0..3, ..]).to_owned();
+        let y_t = [0, 1, 2];
+        let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
+        let batch_y = [0, 1];
+        let far = Instant::now() + std::time::Duration::from_secs(60);
+        let lin = ctx.linearise(
+            &one_hot(&batch_y, k),
+            Array1::zeros(2 * k),
+            far,
+            None,
+            false,
+        );
+        let theta_hat = lin.theta.clone();
+        let phi_with = ctx.trusted_value(&theta_hat);
+        let (_, g) = ctx.loss_and_hypergradient(&lin, &theta_hat, &mut None);
+        let p_ref = ndarray::array![[0.2, 0.5, 0.3], [0.6, 0.1, 0.3]];
+        let damage = 0.7;
+        let (mean, sd) =
+            expected_damage(&ctx, &lin, &g, &p_ref, &batch_y, damage, phi_with, 11, far);
+        // Exact moments over the nine label combinations.
+        let (mut m1, mut m2, mut r1, mut r2) = (0.0, 0.0, 0.0, 0.0);
+        for a in 0..k {
+            for b in 0..k {
+                let pr = p_ref[[0, a]] * p_ref[[1, b]];
+                let y = one_hot(&[a, b], k);
+                let theta = ctx.theta_at(&lin, &y, &mut None);
+                let d = ctx.trusted_value(&theta) - phi_with;
+                let linear = g[[0, a]] - g[[0, batch_y[0]]] + g[[1, b]] - g[[1, batch_y[1]]];
+                m1 += pr * d;
+                m2 += pr * d * d;
+                r1 += pr * (d - linear);
+                r2 += pr * (d - linear).powi(2);
+            }
+        }
+        let exact_sd = (m2 - m1 * m1).max(0.0).sqrt();
+        let r_sd = (r2 - r1 * r1).max(0.0).sqrt();
+        assert!(
+            r1 > 1e-4 && r1 > r_sd,
+            "the remainder matters here: mean {r1}, sd {r_sd}"
+        );
+        let tol = 3.0 * r_sd / (EXPECTED_DAMAGE_DRAWS as f64).sqrt();
+        assert!(
+            (mean - (damage + m1)).abs() <= tol,
+            "mean {mean}, exact {} ± {tol}",
+            damage + m1
+        );
+        assert!(
+            (sd - exact_sd).abs() <= 0.2 * exact_sd,
+            "sd {sd}, exact {exact_sd}"
+        );
+    }
 }
