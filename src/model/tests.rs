@@ -891,3 +891,45 @@ fn a_refused_solver_setup_is_reported_with_the_starting_point() {
         "{report:?}"
     );
 }
+
+/// Above the dense threshold (`dense_max_params = 0`) the implicit-function solves go through conjugate
+/// gradients and the convergence record counts their iterations (at least one per solve, and the repair
+/// path makes several). The integration suite compares the CG path with the dense one
+/// (`tests/it/engine.rs`); this library copy lets a `--lib` mutation run see the count (`+=` → `*=` on it
+/// in `Ctx::solve_h` was missed there, 2026-12-05).
+#[test]
+fn conjugate_gradient_solves_are_counted() {
+    let k = 3;
+    let (xp, yp) = blobs(60, 2, k, 21);
+    let (xt, yt) = blobs(15, 2, k, 22);
+    let (xb, mut yb) = blobs(30, 2, k, 23);
+    for i in [0, 7, 14] {
+        yb[i] = (yb[i] + 1) % k;
+    }
+    let settings = ModelSettings {
+        dense_max_params: 0,
+        ..ModelSettings::default()
+    };
+    let stdz = Standardizer::fit(&[xt.view(), xp.view(), xb.view()]).unwrap();
+    let ct = Array1::from_elem(yt.len(), 1.0);
+    let a = assess(
+        &settings,
+        &stdz,
+        k,
+        TrustedInput {
+            x: xt.view(),
+            y: &yt,
+            weight: ct.view(),
+        },
+        PoolInput::Exact {
+            x: xp.view(),
+            y: &yp,
+        },
+        xb.view(),
+        &yb,
+    )
+    .unwrap();
+    assert_eq!(a.convergence.linear_solver, "cg");
+    assert!(a.convergence.linear_converged, "{:?}", a.convergence);
+    assert!(a.convergence.linear_iterations >= 3, "{:?}", a.convergence);
+}
