@@ -3,8 +3,8 @@
 
 use std::path::PathBuf;
 
+use super::exit;
 use super::quarantine::{dispatch, print_json};
-use super::{exit, Failure};
 use labelweir::policy::spot::Stratum;
 use labelweir::review::{Request, SpotAnswerRequest, SpotAnswered, SpotPending};
 use labelweir::text::sanitize;
@@ -83,23 +83,11 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
             }
         }
         Command::Answer(a) => {
-            let content = std::fs::read(&a.file).map_err(|e| {
-                Failure::new(exit::INPUT, format!("read {}: {e}", a.file.display()))
-            })?;
-            let content = String::from_utf8(content).map_err(|_| {
-                Failure::new(
-                    exit::INPUT,
-                    format!("{} is not UTF-8 text", a.file.display()),
-                )
-            })?;
+            let (file_name, content) = super::trusted::read_text_file(&a.file)?;
             let req = SpotAnswerRequest {
                 batch: a.batch,
                 by: a.by.unwrap_or_else(super::init::os_user),
-                file_name: a
-                    .file
-                    .file_name()
-                    .map(|s| s.to_string_lossy().into_owned())
-                    .unwrap_or_default(),
+                file_name,
                 content,
             };
             let v = dispatch(&a.dir, Request::SpotAnswer(req))?;

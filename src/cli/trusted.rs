@@ -109,25 +109,27 @@ struct RescanArgs {
     json: bool,
 }
 
+/// A file sent over the admin channel: its name (no folder) and its content, which must be UTF-8 text
+/// (an input error otherwise, as for a file that cannot be read).
+pub(super) fn read_text_file(path: &std::path::Path) -> anyhow::Result<(String, String)> {
+    let bytes = std::fs::read(path)
+        .map_err(|e| Failure::new(exit::INPUT, format!("read {}: {e}", path.display())))?;
+    let content = String::from_utf8(bytes)
+        .map_err(|_| Failure::new(exit::INPUT, format!("{} is not UTF-8 text", path.display())))?;
+    let name = path
+        .file_name()
+        .map(|s| s.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    Ok((name, content))
+}
+
 /// Run the subcommand.
 pub fn run(args: Args) -> anyhow::Result<u8> {
     match args.command {
         Command::Add(a) => {
-            let content = std::fs::read(&a.file).map_err(|e| {
-                Failure::new(exit::INPUT, format!("read {}: {e}", a.file.display()))
-            })?;
-            let content = String::from_utf8(content).map_err(|_| {
-                Failure::new(
-                    exit::INPUT,
-                    format!("{} is not UTF-8 text", a.file.display()),
-                )
-            })?;
+            let (file_name, content) = read_text_file(&a.file)?;
             let req = TrustedAddRequest {
-                file_name: a
-                    .file
-                    .file_name()
-                    .map(|s| s.to_string_lossy().into_owned())
-                    .unwrap_or_default(),
+                file_name,
                 content,
                 by: a.by.unwrap_or_else(super::init::os_user),
                 source: a.source,
