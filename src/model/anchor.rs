@@ -594,40 +594,8 @@ mod tests {
     use super::*;
     use crate::model::learner::one_hot;
     use crate::model::repair::{Ctx, Inner};
-    use crate::model::ModelSettings;
+    use crate::model::testkit::{blobs, far, tight};
     use rand::{Rng, SeedableRng};
-    use std::time::Duration;
-
-    /// Three Gaussian classes in two features (plus the intercept column the learner expects last):
-    /// `n` rows, class `i % 3`, centres on a triangle.
-    fn blobs(n: usize, seed: u64) -> (Array2<f64>, Vec<usize>) {
-        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
-        let centres = [(-1.5, 0.0), (1.5, 0.0), (0.0, 2.0)];
-        let mut phi = Array2::zeros((n, 3));
-        let mut y = Vec::with_capacity(n);
-        for i in 0..n {
-            let c = i % 3;
-            phi[[i, 0]] = centres[c].0 + rng.random_range(-0.8..0.8);
-            phi[[i, 1]] = centres[c].1 + rng.random_range(-0.8..0.8);
-            phi[[i, 2]] = 1.0;
-            y.push(c);
-        }
-        (phi, y)
-    }
-
-    fn tight() -> ModelSettings {
-        ModelSettings {
-            l2: 0.05,
-            inner_tol: 1e-11,
-            inner_max_iters: 200,
-            trusted_confidence: 5.0,
-            ..ModelSettings::default()
-        }
-    }
-
-    fn far() -> Instant {
-        Instant::now() + Duration::from_secs(60)
-    }
 
     /// The published objective's gradient against central finite differences of `F_γ` with the learner
     /// re-solved exactly at every perturbed labelling (no linearisation), along directions that keep every

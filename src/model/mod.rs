@@ -42,6 +42,8 @@ pub mod sweep;
 pub mod truncated;
 
 #[cfg(test)]
+mod testkit;
+#[cfg(test)]
 mod tests;
 
 use serde::{Deserialize, Serialize};

@@ -390,6 +390,10 @@ pub(crate) fn repair_point(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::model::learner::one_hot;
+    use crate::model::repair::Inner;
+    use crate::model::testkit::{blobs, far, tight};
+    use crate::model::ModelSettings;
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;
 
@@ -470,5 +474,108 @@ mod tests {
             kept > 50 && moved_off > 50,
             "{kept} kept, {moved_off} moved off"
         );
+    }
+
+    /// The descent at one `γ` ends where `F_γ(Y) = Φ(θ_lin(Y)) + γ C(Y)` is stationary over the product of
+    /// simplices: every row is a fixed point of the projected-gradient map, `Y_i = Π_Δ(Y_i − η ∇_i F)`
+    /// (the first-order optimality condition of a convex function over a convex set; Bertsekas, "Nonlinear
+    /// Programming", 2nd ed. 1999, Prop. 2.1.3), checked at a step `η` of the test's own choosing with the
+    /// gradient `G − (γ/n_B) e_ŷ` recomputed here, not the one the descent carried. Also: `F` went down,
+    /// the returned `θ` is `θ_lin` at the final labels, above `γ_max` no label moves, and the iteration
+    /// counters count (each iteration at least one trial; the convergence rule, not the cap, ended it).
+    ///
+    /// Written for the mutation run of 2026-12-05 (DEVELOPERS.md): the path-level tests let 27 mutants of
+    /// `projected_gradient` and `descend_projected` through (the ranking survives a sloppy descent). Each of
+    /// the mutants listed there as killed by this test fails it: the penalty's gradient sign or scale,
+    /// the acceptance test's terms, the step-size rules, the stale `θ` and the counters.
+    #[test]
+    fn projected_gradient_stops_where_the_penalised_objective_is_stationary() {
+        let settings = ModelSettings {
+            repair_iters: 5000,
+            ..tight()
+        };
+        let k = 3;
+        let (phi_p, y_p) = blobs(24, 1);
+        let (phi_b, mut y_b) = blobs(9, 2);
+        y_b[0] = 1; // two wrong labels
+        y_b[4] = 2;
+        let (phi_t, y_t) = blobs(6, 3);
+        let phi = ndarray::concatenate(ndarray::Axis(0), &[phi_p.view(), phi_b.view()]).unwrap();
+        let inner = Inner::for_test(phi, Some(one_hot(&y_p, k)), 24..33, settings.l2);
+        let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
+        let y_hat = one_hot(&y_b, k);
+        let lin = ctx.linearise(&y_hat, Array1::zeros(9), far(), None, false);
+        let n_b = y_b.len() as f64;
+        let (_, g0) = ctx.loss_and_hypergradient(&lin, &lin.theta, &mut None);
+        let gamma_max = (0..y_b.len())
+            .map(|i| {
+                (0..k)
+                    .map(|c| g0[[i, y_b[i]]] - g0[[i, c]])
+                    .fold(0.0, f64::max)
+            })
+            .fold(0.0, f64::max)
+            * n_b;
+        assert!(gamma_max > 0.0, "the planted labels should pull");
+        let f_of = |y: &Array2<f64>| {
+            let th = ctx.theta_at(&lin, y, &mut None);
+            let mass: f64 = moved(y, &y_b).iter().sum();
+            (th, mass)
+        };
+        for frac in [2.0, 0.5, 0.1, 0.01] {
+            let gamma = gamma_max * frac;
+            *ctx.conv.borrow_mut() = crate::model::repair::Convergence::default();
+            let mut y = y_hat.clone();
+            let mut step = f64::NAN;
+            let theta = projected_gradient(
+                &ctx, &lin, &mut y, &y_b, gamma, &mut step, &mut None, &mut None,
+            );
+            let (direct, mass) = f_of(&y);
+            let gap = (&theta - &direct)
+                .iter()
+                .fold(0.0f64, |a, v| a.max(v.abs()));
+            assert!(
+                gap <= 1e-9,
+                "γ = {frac}·γ_max: returned θ is off θ_lin(Y) by {gap:e}"
+            );
+            if frac > 1.0 {
+                assert_eq!(y, y_hat, "above γ_max no label moves");
+                continue;
+            }
+            assert!(mass > 0.5, "γ = {frac}·γ_max moved only {mass} label mass");
+            let value = |th: &Array1<f64>, m: f64| ctx.trusted_value(th) + gamma * m / n_b;
+            let (f_start, f_end) = (value(&lin.theta, 0.0), value(&direct, mass));
+            assert!(
+                f_end < f_start - 1e-6,
+                "γ = {frac}·γ_max: F went from {f_start} to {f_end}"
+            );
+            let (_, mut g) = ctx.loss_and_hypergradient(&lin, &direct, &mut None);
+            for (i, &c) in y_b.iter().enumerate() {
+                g[[i, c]] -= gamma / n_b;
+            }
+            let eta = 0.5 / g0.iter().fold(0.0f64, |a, v| a.max(v.abs()));
+            let mut worst = 0.0f64;
+            for i in 0..y_b.len() {
+                let mut v: Vec<f64> = (0..k).map(|c| y[[i, c]] - eta * g[[i, c]]).collect();
+                project_simplex(&mut v);
+                for c in 0..k {
+                    worst = worst.max((v[c] - y[[i, c]]).abs());
+                }
+            }
+            assert!(
+                worst <= 2e-3,
+                "γ = {frac}·γ_max: not stationary, a projected-gradient step still moves {worst:e}"
+            );
+            let conv = ctx.conv.borrow();
+            assert!(
+                conv.repair_iterations >= 1
+                    && conv.repair_iterations < settings.repair_iters as u64
+                    && conv.repair_trials >= conv.repair_iterations,
+                "γ = {frac}·γ_max: {conv:?}"
+            );
+            eprintln!(
+                "γ = {frac}·γ_max: mass {mass:.3}, residual {worst:.2e}, {} iterations, {} trials",
+                conv.repair_iterations, conv.repair_trials
+            );
+        }
     }
 }
