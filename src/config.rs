@@ -508,6 +508,7 @@ impl Config {
                 "admission.unsure_min_suspicion",
                 self.admission.unsure_min_suspicion,
             ),
+            ("admission.hold_suspicion", self.admission.hold_suspicion),
         ] {
             if !(0.0..=1.0).contains(&v) {
                 return Err(invalid(key, "must be in [0, 1]"));

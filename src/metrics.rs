@@ -324,9 +324,10 @@ impl Flow {
                 IntCounterVec::new(
                     opts(
                         "flagged_items_total",
-                        "Items of scored batches flagged for review (proposed label differs from the given \
-                         one), by vendor; with labelweir_batch_items_total it gives the flagged share over \
-                         time. A flag is a suspicion for review, not proof.",
+                        "Items of scored batches flagged (suspicion at the batch's flag line: the engine \
+                         proposes another label; a right label gets there on at most [model] clean_flag_rate \
+                         of the items), by vendor; with labelweir_batch_items_total it gives the flagged \
+                         share over time. A flag is a suspicion for review, not proof.",
                     ),
                     &["vendor"],
                 )?,
@@ -336,7 +337,7 @@ impl Flow {
                 GaugeVec::new(
                     opts(
                         "flagged_share_last",
-                        "Share of the vendor's last scored batch flagged for review (a suspicion, not proof).",
+                        "Share of the vendor's last scored batch flagged at its flag line (a suspicion, not proof).",
                     ),
                     &["vendor"],
                 )?,

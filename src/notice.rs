@@ -648,28 +648,28 @@ fn generic_policy_detail(code: &str) -> Option<&'static str> {
             "This vendor's recent batches have drifted upward in the share of labels that would have to change."
         }
         ReasonCode::FlaggedShareCeiling => {
-            "The share of items flagged for review is above the fixed limit for every vendor."
+            "The share of items in doubt (held for a reviewer's check) is above the fixed limit for every vendor."
         }
         ReasonCode::ColdStartFlaggedShare => {
-            "The share of items flagged for review is above the limit used while a vendor's history is short."
+            "The share of items in doubt (held for a reviewer's check) is above the limit used while a vendor's history is short."
         }
         ReasonCode::FlaggedShareOutlier => {
-            "The share of items flagged for review is far above this vendor's usual range."
+            "The share of items in doubt (held for a reviewer's check) is far above this vendor's usual range."
         }
         ReasonCode::FlaggedShareDrift => {
-            "This vendor's recent batches have drifted upward in the share of items flagged for review."
+            "This vendor's recent batches have drifted upward in the share of items in doubt."
         }
         ReasonCode::FlaggedItemsExcess => {
-            "More items were flagged for review than the checks expect for a batch of this size."
+            "More items were in doubt than the checks expect for a batch of this size with correct labels."
         }
         ReasonCode::FlaggedItemsDrift => {
-            "Across this vendor's recent items, the share flagged for review has drifted upward."
+            "Across this vendor's recent items, the share in doubt has drifted upward."
         }
         ReasonCode::LabelsUnlikely => {
             "Across this vendor's recent items, the labels fit the checks' model less well than correct labels would."
         }
         ReasonCode::FlaggedItemsInClass => {
-            "Among the items given one label, more were flagged for review than the checks expect if those labels were right."
+            "Among the items given one label, more were in doubt than the checks expect if those labels were right."
         }
         ReasonCode::SpotCheckDisagreement => {
             "Expert checks of a sample of items from this vendor's recent batches disagreed with the labels more often than expected, so its batches wait for review."

@@ -116,8 +116,13 @@ pub struct Report {
     pub assessment: Assessment,
     /// The policy's answer (default vendor history: cold start).
     pub decision: Decision,
-    /// Suspicion at or above which an item counts as flagged (`[model] flag_threshold`).
+    /// The floor of the flag line (`[model] flag_threshold`).
     pub flag_threshold: f64,
+    /// The batch's flag line: suspicion at or above which an item counts as flagged
+    /// ([`Assessment::flag_line`]).
+    pub flag_line: f64,
+    /// `[model] clean_flag_rate`: the share a batch with the right labels would flag at the line.
+    pub clean_flag_rate: f64,
     /// The flagged items grouped by (given → proposed), with the trusted items nearest them.
     pub stories: Vec<SuspectStory>,
 }
@@ -305,6 +310,7 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
         settings,
     )
     .map_err(engine_error)?;
+    let flag_line = assessment.flag_line_or(settings.flag_threshold);
     Ok(Report {
         batch_path: batch.source.clone(),
         trusted_path: trusted.source.clone(),
@@ -318,6 +324,8 @@ pub fn assess_files(args: &Args) -> anyhow::Result<Report> {
         assessment,
         decision,
         flag_threshold: settings.flag_threshold,
+        flag_line,
+        clean_flag_rate: settings.clean_flag_rate,
         stories,
     })
 }
@@ -356,7 +364,7 @@ fn stories_of(
         trusted_y,
         standardizer.transform(batch.features.view())?.view(),
         &assessment.items,
-        settings.flag_threshold,
+        assessment.flag_line_or(settings.flag_threshold),
     ))
 }
 
@@ -389,7 +397,7 @@ fn per_class(r: &Report) -> Vec<Value> {
     for it in &r.assessment.items {
         n[it.label] += 1;
         sum[it.label] += it.suspicion;
-        if it.suspicion >= r.flag_threshold {
+        if it.suspicion >= r.flag_line {
             flagged[it.label] += 1;
         }
         if it.proposed_label != it.label {
@@ -424,7 +432,7 @@ pub fn report_json(r: &Report) -> Value {
                 "suspicion": it.suspicion,
                 "proposed_label": name(it.proposed_label),
                 "confidence": it.confidence,
-                "flagged": it.suspicion >= r.flag_threshold,
+                "flagged": it.suspicion >= r.flag_line,
                 "repair_signal": it.repair_signal,
                 "repair_label": name(it.repair_label),
                 "learner_doubt": it.learner_doubt,
@@ -462,7 +470,9 @@ pub fn report_json(r: &Report) -> Value {
         "note": CAUTION,
         "items": items,
         "flag_threshold": r.flag_threshold,
-        "flagged": a.items.iter().filter(|i| i.suspicion >= r.flag_threshold).count(),
+        "flag_line": r.flag_line,
+        "clean_flag_rate": r.clean_flag_rate,
+        "flagged": a.items.iter().filter(|i| i.suspicion >= r.flag_line).count(),
         "expected_flagged_share": {
             "share": a.expected_flagged_share,
             "sd": a.expected_flagged_sd,
@@ -673,13 +683,14 @@ pub fn render_text(r: &Report, top: usize) -> String {
     let flagged = a
         .items
         .iter()
-        .filter(|i| i.suspicion >= r.flag_threshold)
+        .filter(|i| i.suspicion >= r.flag_line)
         .count();
     let _ = writeln!(
         o,
-        "flagged:     {flagged} of {} items at suspicion ≥ {}",
+        "flagged:     {flagged} of {} items at suspicion ≥ {:.3} (this batch's flag line: with the right labels it would flag at most {:.0} % of them)",
         a.items.len(),
-        r.flag_threshold
+        r.flag_line,
+        100.0 * r.clean_flag_rate
     );
     render_stories(&mut o, r);
     if !a.broken_trusted.is_empty() {

@@ -176,7 +176,7 @@ fn print_verdict(r: &BatchRecord) {
                 .filter(|s| s.proposed_label != s.label)
                 .collect();
             println!(
-                "      {} item(s) flagged for review; top suspects (a suspicion, not proof):",
+                "      {} item(s) flagged (the engine proposes another label); top suspects (a suspicion, not proof):",
                 flagged.len()
             );
             for s in flagged.iter().take(3) {

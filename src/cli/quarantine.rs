@@ -369,12 +369,20 @@ fn print_held(list: &[HeldBatch]) {
          batch's highest suspicions; either is a suspicion for review, not proof):"
     );
     println!(
-        "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7}",
-        "BATCH", "VENDOR", "ITEMS", "IN POOL", "WAITING", "PROPOSED", "DROPPED", "UNSURE"
+        "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7} {:>8}",
+        "BATCH",
+        "VENDOR",
+        "ITEMS",
+        "IN POOL",
+        "WAITING",
+        "PROPOSED",
+        "DROPPED",
+        "UNSURE",
+        "IN DOUBT"
     );
     for b in list {
         println!(
-            "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7}",
+            "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7} {:>8}",
             sanitize(&b.batch_id),
             sanitize(&b.vendor),
             b.items.unwrap_or(0),
@@ -382,7 +390,8 @@ fn print_held(list: &[HeldBatch]) {
             b.waiting,
             b.admitted_proposed,
             b.dropped,
-            b.unsure
+            b.unsure,
+            b.in_doubt
         );
     }
 }

@@ -133,8 +133,15 @@ pub struct ModelSettings {
     pub reference_items_per_param: f64,
     /// Wall-clock budget for one assessment, in milliseconds (every solve is also bounded by iterations).
     pub time_budget_ms: u64,
-    /// Items whose suspicion reaches this are flagged: their proposed label becomes the best alternative class.
+    /// The floor of a batch's flag line: no item whose suspicion is below this is flagged. Items whose
+    /// suspicion reaches the batch's line ([`Assessment::flag_line`]) are flagged: their proposed label
+    /// becomes the best alternative class.
     pub flag_threshold: f64,
+    /// The share of a batch's items that may be flagged when the batch carries the right labels: each
+    /// batch's flag line is raised above `flag_threshold` until a batch labelled the way the (calibrated)
+    /// reference model expects would flag at most this share (see [`Assessment::flag_line`]). 1 keeps the
+    /// line at `flag_threshold`.
+    pub clean_flag_rate: f64,
     /// Capacity of the pool summary's reservoir, a uniform sample of pool items (0 turns it off). While the
     /// pool has at most this many items the summary is exact; beyond, the sample corrects the quadratic
     /// model of the pool's loss (see [`PoolSummary::term`]). Memory: `8·p` bytes per item.
@@ -191,6 +198,7 @@ impl Default for ModelSettings {
             reference_items_per_param: 2.0,
             time_budget_ms: 30_000,
             flag_threshold: 0.5,
+            clean_flag_rate: 0.03,
             pool_reservoir: 4096,
             reservoir_min_share: 0.02,
             trusted_confidence: 100.0,
@@ -288,6 +296,9 @@ impl ModelSettings {
         }
         if !(0.0..=1.0).contains(&self.flag_threshold) {
             return bad("flag_threshold", "must be in [0, 1]");
+        }
+        if !(0.0..=1.0).contains(&self.clean_flag_rate) {
+            return bad("clean_flag_rate", "must be in [0, 1]");
         }
         if self.pool_reservoir > 1 << 20 {
             return bad("pool_reservoir", "must be ≤ 1048576 items");

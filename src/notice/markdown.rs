@@ -115,7 +115,7 @@ impl Notice {
                     .map_or(String::new(), |t| format!(" of {t}"));
                 let _ = writeln!(
                     md,
-                    "\n## Items\n\n{}{total} {} flagged for review. No item is named unless a reviewer discloses it.",
+                    "\n## Items\n\n{}{total} {} in doubt and held for a reviewer's check. No item is named unless a reviewer discloses it.",
                     self.items_listed_total,
                     if self.items_listed_total == 1 { "item was" } else { "items were" }
                 );

@@ -116,6 +116,7 @@ fn nothing_flagged(w: &mut Worker) {
     let mut c = (*w.config).clone();
     c.model.flag_threshold = 1.0;
     c.admission.unsure_share = 0.0;
+    c.admission.hold_suspicion = 1.0;
     w.config = Arc::new(c);
 }
 

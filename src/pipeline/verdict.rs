@@ -293,8 +293,11 @@ fn admit(
             .collect();
         let suspicion: Vec<f64> = a.items.iter().map(|s| s.suspicion).collect();
         let unsure = policy::unsure_items(&config.admission, &suspicion, &flagged);
+        let doubt = policy::doubtful_items(&config.admission, &suspicion, &flagged);
         for (k, s) in a.items.iter().enumerate() {
-            let (f, why) = if unsure[k] {
+            let (f, why) = if doubt[k] {
+                (policy::unsure_fate(&config.admission), HeldWhy::InDoubt)
+            } else if unsure[k] {
                 (policy::unsure_fate(&config.admission), HeldWhy::Unsure)
             } else {
                 let f = policy::item_fate(&config.admission, flagged[k], s.confidence);

@@ -55,6 +55,12 @@ pub struct AdmissionSettings {
     pub unsure_share: f64,
     /// The least suspicion for an unflagged item to be unsure.
     pub unsure_min_suspicion: f64,
+    /// An unflagged item whose suspicion reaches this is unsure whatever the share: where the classes
+    /// overlap, a batch's flag line ([`crate::model::Assessment::flag_line`]) rises above
+    /// `[model] flag_threshold` so that a flag stays rare on right labels, and the items between the floor
+    /// and the line still wait for a reviewer rather than enter the pool. Default 0.5 (the floor's
+    /// default); 1 turns it off.
+    pub hold_suspicion: f64,
 }
 
 impl Default for AdmissionSettings {
@@ -64,6 +70,7 @@ impl Default for AdmissionSettings {
             relabel_min_confidence: 0.9,
             unsure_share: 0.05,
             unsure_min_suspicion: 0.25,
+            hold_suspicion: 0.5,
         }
     }
 }
@@ -112,9 +119,25 @@ pub fn item_fate(settings: &AdmissionSettings, flagged: bool, confidence: f64) -
     }
 }
 
-/// Which unflagged items are unsure: of the items not flagged, the `⌈unsure_share · n⌉` with the highest
-/// suspicion (ties by position), among those whose suspicion reaches `unsure_min_suspicion`; `n` counts
-/// every item of the batch. A NaN suspicion is never unsure (such an item is flagged by the engine).
+/// Which unflagged items are in doubt: those not flagged whose suspicion reaches `hold_suspicion`
+/// (between the floor of the flag line and the batch's line, where the line rose above the floor). They
+/// wait like the unsure items ([`unsure_fate`]).
+pub fn doubtful_items(
+    settings: &AdmissionSettings,
+    suspicion: &[f64],
+    flagged: &[bool],
+) -> Vec<bool> {
+    suspicion
+        .iter()
+        .zip(flagged)
+        .map(|(&s, &f)| !f && s >= settings.hold_suspicion)
+        .collect()
+}
+
+/// Which unflagged items are unsure: of the items neither flagged nor in doubt ([`doubtful_items`]),
+/// the `⌈unsure_share · n⌉` with the highest suspicion (ties by position), among those whose suspicion
+/// reaches `unsure_min_suspicion`; `n` counts every item of the batch. A NaN suspicion is never unsure
+/// (such an item is flagged by the engine).
 pub fn unsure_items(
     settings: &AdmissionSettings,
     suspicion: &[f64],
@@ -124,7 +147,11 @@ pub fn unsure_items(
     let quota = (settings.unsure_share * n as f64).ceil() as usize;
     let mut out = vec![false; n];
     let mut candidates: Vec<usize> = (0..n)
-        .filter(|&i| !flagged[i] && suspicion[i] >= settings.unsure_min_suspicion)
+        .filter(|&i| {
+            !flagged[i]
+                && suspicion[i] >= settings.unsure_min_suspicion
+                && suspicion[i] < settings.hold_suspicion
+        })
         .collect();
     candidates.sort_by(|&a, &b| suspicion[b].total_cmp(&suspicion[a]).then(a.cmp(&b)));
     for &i in candidates.iter().take(quota) {
@@ -190,6 +217,25 @@ mod tests {
             ..s
         };
         assert!(unsure_items(&s, &sus, &flagged).iter().all(|&v| !v));
+        // A flag line above the hold line (0.7 here): the unflagged item at or above `hold_suspicion`
+        // (0.6) is in doubt, and the share's quota is taken from the rest (0.45, then the first 0.3).
+        let s = AdmissionSettings {
+            unsure_share: 0.2,
+            ..s
+        };
+        let flagged = sus.map(|v| v >= 0.7);
+        let d = doubtful_items(&s, &sus, &flagged);
+        assert_eq!((0..10).filter(|&i| d[i]).collect::<Vec<_>>(), [6]);
+        let u = unsure_items(&s, &sus, &flagged);
+        assert_eq!((0..10).filter(|&i| u[i]).collect::<Vec<_>>(), [2, 3]);
+        // With the hold line at 1 nothing is in doubt and the quota takes 0.6 and 0.45.
+        let s = AdmissionSettings {
+            hold_suspicion: 1.0,
+            ..s
+        };
+        assert!(doubtful_items(&s, &sus, &flagged).iter().all(|&v| !v));
+        let u = unsure_items(&s, &sus, &flagged);
+        assert_eq!((0..10).filter(|&i| u[i]).collect::<Vec<_>>(), [3, 6]);
     }
 
     #[test]

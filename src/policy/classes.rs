@@ -84,7 +84,7 @@ impl LabelCheck {
     /// One sentence with the numbers.
     pub fn describe(&self) -> String {
         format!(
-            "items labelled {}: {} of {} flagged for review, {:.1} to expect if the labels were right \
+            "items labelled {}: {} of {} in doubt, {:.1} to expect if the labels were right \
              (a share {:.3} of the batch's {} judged items); binomial tail {:.2e} < {:.2e} (the limit {:.0e} shared by {} labels)",
             self.label.display_name(),
             self.label.flagged,

@@ -240,7 +240,7 @@ impl ItemJudgement {
             "a short record (the computed clean level dominates)"
         };
         format!(
-            "{} of {} judged items flagged against level {:.4} = computed clean level {:.4}{} {:+.4} from {} ({} items; \
+            "{} of {} judged items in doubt against level {:.4} = computed clean level {:.4}{} {:+.4} from {} ({} items; \
              own excess {:+.4}, released excess {:+.4}): binomial tail {:.2e} (limit {:.0e}); item CUSUM {:.2} → {:.2} nats (h = {:.1}, p₁ = {:.4})",
             self.flagged,
             self.items,

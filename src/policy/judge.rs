@@ -40,7 +40,7 @@ pub(super) fn judge(
     if !repair_cost.is_finite() || !damage.is_finite() || share_invalid {
         let detail = match &flagged {
             Some((s, _)) => format!(
-                "repair cost {repair_cost}, damage {damage} or flagged share {} is not a finite number",
+                "repair cost {repair_cost}, damage {damage} or share in doubt {} is not a finite number",
                 s.flagged_share
             ),
             None => format!("repair cost {repair_cost} or damage {damage} is not a finite number"),
@@ -118,7 +118,7 @@ fn label_rule(labels: &[super::LabelCheck], reasons: &mut Vec<Reason>) {
             reasons,
             ReasonCode::FlaggedItemsInClass,
             format!(
-                "more flagged items in one class than if its labels were right — {}",
+                "more items in doubt in one class than if its labels were right — {}",
                 fired.join("; ")
             ),
         );
@@ -133,7 +133,7 @@ fn item_rules(j: &ItemJudgement, reasons: &mut Vec<Reason>) {
             reasons,
             ReasonCode::FlaggedItemsExcess,
             format!(
-                "more flagged items than the noise of {} items allows: {}",
+                "more items in doubt than the noise of {} items allows: {}",
                 j.items,
                 j.describe()
             ),
@@ -144,7 +144,7 @@ fn item_rules(j: &ItemJudgement, reasons: &mut Vec<Reason>) {
             reasons,
             ReasonCode::FlaggedItemsDrift,
             format!(
-                "the vendor's flagged items drift above its level: {}",
+                "the vendor's items in doubt drift above its level: {}",
                 j.describe()
             ),
         );
@@ -223,7 +223,7 @@ fn ceilings(
                 reasons,
                 ReasonCode::FlaggedShareCeiling,
                 format!(
-                    "{} items flagged for review (share {:.4}) exceeds the ceiling {:.4}{}",
+                    "{} items in doubt (share {:.4}) exceeds the ceiling {:.4}{}",
                     flagged_count(s),
                     s.flagged_share,
                     settings.max_flagged_share + clean,
@@ -342,7 +342,7 @@ fn flagged_share_rules(
                 reasons,
                 ReasonCode::ColdStartFlaggedShare,
                 format!(
-                    "{} items flagged for review (share {x:.4}) exceeds the {which} {limit:.4}{} ({} of {} baseline batches so far)",
+                    "{} items in doubt (share {x:.4}) exceeds the {which} {limit:.4}{} ({} of {} baseline batches so far)",
                     flagged_count(s),
                     if weak_model {
                         format!(
@@ -363,7 +363,7 @@ fn flagged_share_rules(
                 reasons,
                 ReasonCode::FlaggedShareOutlier,
                 format!(
-                    "{} items flagged for review (share {x:.4}) against the vendor's median share {:.4}: modified z-score {:.2} > {:.2}",
+                    "{} items in doubt (share {x:.4}) against the vendor's median share {:.4}: modified z-score {:.2} > {:.2}",
                     flagged_count(s), fb.median, fb.modified_z, settings.modified_z_limit
                 ),
             );
@@ -373,7 +373,7 @@ fn flagged_share_rules(
                 reasons,
                 ReasonCode::FlaggedShareDrift,
                 format!(
-                    "CUSUM of the vendor's standardised flagged share {:.2} > h = {:.2} (slow upward drift)",
+                    "CUSUM of the vendor's standardised share in doubt {:.2} > h = {:.2} (slow upward drift)",
                     fb.cusum, settings.cusum_h
                 ),
             );
@@ -390,10 +390,10 @@ fn accepting_reason(
 ) -> Reason {
     let share = flagged.map_or(String::new(), |(s, fb)| {
         if fb.cold_start {
-            format!(", flagged share {:.4}", s.flagged_share)
+            format!(", share in doubt {:.4}", s.flagged_share)
         } else {
             format!(
-                ", flagged share {:.4} (median {:.4}, modified z {:.2}, CUSUM {:.2})",
+                ", share in doubt {:.4} (median {:.4}, modified z {:.2}, CUSUM {:.2})",
                 s.flagged_share, fb.median, fb.modified_z, fb.cusum
             )
         }

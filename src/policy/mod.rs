@@ -82,7 +82,7 @@ pub mod spot;
 mod stats;
 
 pub use admission::{
-    item_fate, unsure_fate, unsure_items, AdmissionSettings, FlaggedItems, ItemFate,
+    doubtful_items, item_fate, unsure_fate, unsure_items, AdmissionSettings, FlaggedItems, ItemFate,
 };
 pub use classes::{LabelCheck, LabelFlags};
 pub use evidence::{ItemEvidence, ItemJudgement};
@@ -184,7 +184,10 @@ fn one() -> f64 {
 }
 
 impl BatchSignals {
-    /// The signals of an engine assessment; `flag_threshold` is `[model] flag_threshold`.
+    /// The signals of an engine assessment; `flag_threshold` is `[model] flag_threshold` (`t`, the doubt
+    /// line: the policy counts the items *in doubt*, not only those flagged at the batch's higher flag
+    /// line, [`crate::model::Assessment::flag_line`] — a count of common events tells a moderate shift
+    /// from noise better than a count of rare ones).
     ///
     /// `flagged_share = #{i : s_i ≥ t} / n`, `mean_suspicion = Σ s_i / n` over the batch's `n` items (both
     /// NaN for an empty batch, which the policy treats as an invalid score).

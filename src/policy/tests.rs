@@ -317,7 +317,7 @@ fn cold_start_judges_the_flagged_share() {
     // 27 of 300 flagged (0.09 ≤ 0.10) against a large pool: accepted, the reason names the share.
     let ok = decide_batch(&s, &h, &share(0.09, 300));
     assert_eq!(ok.verdict, Verdict::Accept);
-    assert!(ok.reasons[0].detail.contains("flagged share 0.0900"));
+    assert!(ok.reasons[0].detail.contains("share in doubt 0.0900"));
     assert!(ok
         .flagged_share_baseline
         .as_ref()
@@ -496,7 +496,7 @@ fn flagged_share_outlier_by_the_modified_z_score() {
     assert_eq!(d.reasons[0].code, ReasonCode::WithinBaseline);
     assert!(d.reasons[0]
         .detail
-        .contains("flagged share 0.1200 (median 0.0700"));
+        .contains("share in doubt 0.1200 (median 0.0700"));
     // Fewer flags than usual are never suspicious.
     assert_eq!(
         decide_batch(&s, &h, &share(0.0, 1000)).verdict,

@@ -34,6 +34,10 @@ pub struct HeldBatch {
     /// [`crate::policy::unsure_items`]).
     #[serde(default)]
     pub unsure: usize,
+    /// Of the held items, those kept out as in doubt: not flagged, but at or above `[admission]
+    /// hold_suspicion` (see [`crate::policy::doubtful_items`]).
+    #[serde(default)]
+    pub in_doubt: usize,
     /// Every held item and where it stands.
     pub held: Vec<HeldItem>,
 }
@@ -62,6 +66,7 @@ pub fn held_list(env: &ReviewEnv<'_>) -> Result<Vec<HeldBatch>, ReviewError> {
             admitted: count(HeldState::Admitted),
             dropped: count(HeldState::Dropped),
             unsure: r.held.iter().filter(|h| h.why == HeldWhy::Unsure).count(),
+            in_doubt: r.held.iter().filter(|h| h.why == HeldWhy::InDoubt).count(),
             held: r.held.clone(),
         });
     }

@@ -331,11 +331,14 @@ pub struct HeldItem {
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum HeldWhy {
-    /// The engine proposes another label (suspicion at or above the flag threshold).
+    /// The engine proposes another label (suspicion at or above the batch's flag line).
     #[default]
     Flagged,
     /// Not flagged, but among the batch's highest suspicions: the engine cannot vouch for its label.
     Unsure,
+    /// Not flagged, but in doubt: its suspicion reaches `[admission] hold_suspicion`, below the batch's
+    /// flag line (see [`crate::policy::doubtful_items`]).
+    InDoubt,
 }
 
 impl HeldWhy {
@@ -344,6 +347,7 @@ impl HeldWhy {
         match self {
             Self::Flagged => "flagged",
             Self::Unsure => "unsure",
+            Self::InDoubt => "in_doubt",
         }
     }
 }

@@ -1842,8 +1842,9 @@ fn flagged_items_of_an_accepted_batch_are_held_for_review() {
             .filter(|h| h.state == labelweir::store::HeldState::AdmittedProposed)
             .collect();
         for h in &rec.held {
-            // Unsure items (not flagged) have no other label to enter with: they wait under `relabel`.
-            let unsure = h.why == labelweir::store::HeldWhy::Unsure;
+            // Unsure items and items in doubt (not flagged) have no other label to enter with: they
+            // wait under `relabel`.
+            let unsure = h.why != labelweir::store::HeldWhy::Flagged;
             let expect = match (mode, unsure, h.confidence >= floor) {
                 ("drop", _, _) => labelweir::store::HeldState::Dropped,
                 (_, false, true) => labelweir::store::HeldState::AdmittedProposed,
@@ -1916,8 +1917,8 @@ fn notices_name_no_item_unless_a_reviewer_discloses() {
         std::thread::sleep(Duration::from_millis(100));
     }
     assert_no_item("policy verdicts");
-    // Flagged items waiting (the unsure ones wait too, and the notice does not count them: it says
-    // what was flagged).
+    // Items in doubt waiting: the flagged ones and those in doubt below the batch's flag line (the
+    // unsure ones wait too, and the notice does not count them: it says what was in doubt).
     let store_held = |id: &str| {
         let v = ok_json(&["quarantine", "held", &dir, "--json"]);
         v.as_array()
@@ -1942,7 +1943,7 @@ fn notices_name_no_item_unless_a_reviewer_discloses() {
     assert_eq!(csv.lines().count(), 1, "a header only: {csv}");
     let md = std::fs::read_to_string(notice_file(&notices, &aid, "md")).unwrap();
     assert!(
-        md.contains(&format!("{} of 300 items were flagged", store_held(&aid))),
+        md.contains(&format!("{} of 300 items were in doubt", store_held(&aid))),
         "{md}"
     );
     let nq = ws.notice("north-sort", &qid);

@@ -6,7 +6,9 @@ use ndarray::{Array1, Array2, ArrayView2};
 
 use crate::model::calibration::{class_mix_weights, sharpen, Sharpness, SharpnessFit};
 
-use super::fusion::{expected_flagged, score_items, trusted_reports, Evidence, FlagRule};
+use super::fusion::{
+    expected_flagged, flag_line, propose_at, score_items, trusted_reports, Evidence, FlagRule,
+};
 use super::path::{penalty_path, repair_point};
 use super::reference::{fit_pool, reference, Reference};
 use super::{
@@ -208,13 +210,9 @@ pub fn assess(
     timings.repair = t_rep.elapsed();
 
     // ---- 5. items -----------------------------------------------------------------------------------------
-    let (mut items, noise_rate) = score_items(
-        settings,
-        batch_y,
-        k,
-        &ev.fusion(&refm, &point.mass, big_pool),
-    );
-    let (sharpness, (expected_flagged_share, expected_flagged_sd, expected_flagged_by_label)) =
+    let fusion = ev.fusion(&refm, &point.mass, big_pool);
+    let (mut items, noise_rate) = score_items(settings, batch_y, k, &fusion);
+    let (sharpness, line, (expected_flagged_share, expected_flagged_sd, expected_flagged_by_label)) =
         clean_expectation(settings, &refm, &phi_b, &ev, trusted, pool, k, &mut items);
     let (broken_trusted, trusted_still_wrong) = trusted_reports(
         phi_t.view(),
@@ -261,6 +259,7 @@ pub fn assess(
         expected_damage,
         expected_damage_sd,
         reference_sharpness: sharpness,
+        flag_line: line,
     })
 }
 
@@ -438,8 +437,11 @@ fn damage_or_unknown(ctx: &Ctx<'_>, damage: f64, deadline: Instant) -> (f64, Vec
 /// are taken to follow the pool's labels model (`PoolSummary::labels_model`: the pool model as fitted from
 /// unselected stored items, or the model of the items of accepted batches as delivered for a pool that was
 /// never fitted from items; `p_ref` while the pool is not the reference or has neither), sharpened by the measured
-/// sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on; and each item's
-/// [`LabelFit`] term against the same distribution (set on `items`, in batch order).
+/// sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on (the expected items in
+/// doubt, at `[model] flag_threshold`); the batch's flag line (`Assessment::flag_line`, from
+/// `flag_threshold` and `clean_flag_rate`, against the same distribution), at which each item's proposed
+/// label is set; and each item's [`LabelFit`] term against the same distribution (set on `items`, in
+/// batch order).
 #[allow(clippy::too_many_arguments)]
 fn clean_expectation(
     settings: &ModelSettings,
@@ -450,7 +452,7 @@ fn clean_expectation(
     pool: PoolInput<'_>,
     k: usize,
     items: &mut [ItemScore],
-) -> (Sharpness, (f64, f64, Vec<f64>)) {
+) -> (Sharpness, f64, (f64, f64, Vec<f64>)) {
     let mut sharpness = reference_sharpness(refm, trusted, pool, k);
     if !settings.calibrate_clean_level {
         sharpness.applied = 1.0;
@@ -476,6 +478,13 @@ fn clean_expectation(
         base_weight: ev.base_weight,
         threshold: settings.flag_threshold,
     };
+    let line = flag_line(
+        &rule,
+        &p_label,
+        settings.flag_threshold,
+        settings.clean_flag_rate,
+    );
+    propose_at(items, line);
     // The label fit only while the pool is the reference: a cross-fitted reference's probabilities are
     // calibrated by nothing (its sharpness is not measured), and clean fixture batches scored through one
     // read z ≈ −4. Without it the terms stay 0 (`V` = 0: no evidence either way).
@@ -486,7 +495,7 @@ fn clean_expectation(
             it.label_fit = fit;
         }
     }
-    (sharpness, expected_flagged(&rule, &p_label))
+    (sharpness, line, expected_flagged(&rule, &p_label))
 }
 
 /// Each item's [`LabelFit`] term: its given label under `p_ref` (floored at `1e-4`), against a label

@@ -167,12 +167,87 @@ pub(crate) struct FlagRule<'a> {
 }
 
 impl FlagRule<'_> {
-    /// `flag_j(c)`.
-    fn flags(&self, j: usize, c: usize) -> bool {
+    /// The rule's suspicion of item `j` carrying label `c`: `(w_jc − b)⁺ (1 − p_A,jc) + (1 − w_jc)(1 − p_ref,jc)`.
+    fn score(&self, j: usize, c: usize) -> f64 {
         let w = self.weights_by_class[[j, c]];
         let anchored = (1.0 - self.p_anchor[[j, c]]).clamp(0.0, 1.0);
         let learner = (1.0 - self.p_ref[[j, c]]).clamp(0.0, 1.0);
-        (w - self.base_weight).max(0.0) * anchored + (1.0 - w) * learner >= self.threshold
+        (w - self.base_weight).max(0.0) * anchored + (1.0 - w) * learner
+    }
+
+    /// `flag_j(c)`.
+    fn flags(&self, j: usize, c: usize) -> bool {
+        self.score(j, c) >= self.threshold
+    }
+}
+
+/// The batch's flag line: the least suspicion `τ ≥ floor` at which a batch carrying the right labels is
+/// expected to flag at most `rate` of its items,
+///
+/// `τ* = max(floor, min{τ : m₀(τ) ≤ rate})`, `m₀(τ) = (1/n) Σ_j Σ_c p̃_jc · 1[s_jc ≥ τ]`,
+///
+/// with `s_jc` the rule's suspicion of item `j` labelled `c` ([`FlagRule`], the repair's share taken as 0)
+/// and `p̃` the distribution the right labels are taken to follow. `m₀` is a step function that falls as
+/// `τ` rises; the line sits halfway between the last suspicion it keeps and the first it drops (above the
+/// highest one, at most 1, when even that one alone weighs more than `rate`). A flag at this line is a
+/// statement with a known error rate — "a right label scores this high on at most `rate` of the items" —
+/// whatever the learner's accuracy: where the classes overlap, the line rises until clean batches flag
+/// no more than `rate`; where the learner is sure, it stays at the floor. The line depends on the items'
+/// features and the trusted set, never on the delivered labels, so a vendor cannot move it by labelling.
+/// (The rule is ours: a per-batch false-positive rate control, the Neyman–Pearson way of fixing the
+/// size of a test; no published source for its use here.)
+pub(crate) fn flag_line(rule: &FlagRule<'_>, p_label: &Array2<f64>, floor: f64, rate: f64) -> f64 {
+    let (n_b, k) = rule.p_ref.dim();
+    if n_b == 0 || rate >= 1.0 {
+        return floor;
+    }
+    let mut mass: Vec<(f64, f64)> = (0..n_b)
+        .flat_map(|j| (0..k).map(move |c| (j, c)))
+        .map(|(j, c)| {
+            (
+                rule.score(j, c),
+                p_label[[j, c]].clamp(0.0, 1.0) / n_b as f64,
+            )
+        })
+        .filter(|&(s, w)| s >= floor && w > 0.0)
+        .collect();
+    mass.sort_by(|a, b| b.0.total_cmp(&a.0));
+    let mut kept = 0.0;
+    let mut above = f64::NAN;
+    let mut i = 0;
+    while i < mass.len() {
+        let s = mass[i].0;
+        let mut w = 0.0;
+        while i < mass.len() && mass[i].0 == s {
+            w += mass[i].1;
+            i += 1;
+        }
+        if kept + w > rate {
+            let line = if above.is_nan() {
+                (s + 1.0) / 2.0
+            } else {
+                (s + above) / 2.0
+            };
+            return line.max(floor).min(1.0);
+        }
+        kept += w;
+        above = s;
+    }
+    floor
+}
+
+/// Sets each item's proposed label and confidence at the batch's flag line: an item whose suspicion
+/// reaches `line` is flagged, its proposed label the best alternative class and its confidence
+/// `suspicion × alternative_share`; any other keeps its given label with confidence `1 − suspicion`.
+pub(crate) fn propose_at(items: &mut [ItemScore], line: f64) {
+    for it in items {
+        if it.suspicion >= line {
+            it.proposed_label = it.alternative_label;
+            it.confidence = (it.suspicion * it.alternative_share).clamp(0.0, 1.0);
+        } else {
+            it.proposed_label = it.label;
+            it.confidence = 1.0 - it.suspicion;
+        }
     }
 }
 
@@ -300,6 +375,90 @@ mod tests {
         let (_, _, by) = expected_flagged(&rule, &p);
         for (got, want) in by.iter().zip([0.05, 0.25, 0.2]) {
             assert!((got - want).abs() < 1e-12, "{by:?}");
+        }
+    }
+
+    /// The flag line worked by hand: two items, two classes, no repair weight, so the rule's suspicion is
+    /// `1 − p_ref`. With `p_ref = p̃ = [[0.9, 0.1], [0.6, 0.4]]` the suspicions at or above the floor 0.5
+    /// are 0.9 (item 0 labelled 1, chance 0.1, weight 0.05 of the batch) and 0.6 (item 1 labelled 1,
+    /// chance 0.4, weight 0.2). A rate of 3 % keeps neither (the line goes above 0.9, halfway to 1), 10 %
+    /// keeps the first (halfway between 0.6 and 0.9), 30 % keeps both (the floor), 1 is the floor; and at
+    /// each line the expected clean flagged share is at most the rate.
+    #[test]
+    fn the_flag_line_is_the_least_suspicion_at_which_right_labels_flag_at_most_the_rate() {
+        let p = ndarray::array![[0.9, 0.1], [0.6, 0.4]];
+        let sure = Array2::ones((2, 2));
+        let w = Array2::zeros((2, 2));
+        let rule = FlagRule {
+            p_ref: &p,
+            p_anchor: &sure,
+            weights_by_class: &w,
+            base_weight: 0.0,
+            threshold: 0.5,
+        };
+        for (rate, want) in [
+            (0.03, 0.95),
+            (0.1, 0.75),
+            (0.3, 0.5),
+            (1.0, 0.5),
+            (0.0, 0.95),
+        ] {
+            let line = flag_line(&rule, &p, 0.5, rate);
+            assert!((line - want).abs() < 1e-12, "rate {rate}: line {line}");
+            let at = FlagRule {
+                threshold: line,
+                ..rule
+            };
+            let (share, _, _) = expected_flagged(&at, &p);
+            assert!(share <= rate + 1e-12, "rate {rate}: {share}");
+        }
+        // A higher floor is kept: nothing below it flags whatever the rate.
+        assert_eq!(flag_line(&rule, &p, 0.8, 0.3), 0.8);
+        // An empty batch: the floor.
+        let none = Array2::<f64>::zeros((0, 2));
+        let empty = FlagRule {
+            p_ref: &none,
+            p_anchor: &none,
+            weights_by_class: &none,
+            base_weight: 0.0,
+            threshold: 0.5,
+        };
+        assert_eq!(flag_line(&empty, &none, 0.5, 0.03), 0.5);
+    }
+
+    /// At the line an item is flagged (proposed label its best alternative, confidence
+    /// `suspicion × share`); below it, it keeps its label with confidence `1 − suspicion`.
+    #[test]
+    fn items_are_flagged_at_the_line_and_not_below_it() {
+        let item = |suspicion: f64| ItemScore {
+            index: 0,
+            label: 0,
+            suspicion,
+            proposed_label: 0,
+            confidence: 0.0,
+            alternative_label: 2,
+            alternative_share: 0.5,
+            repair_mass: 0.0,
+            repair_signal: 0.0,
+            repair_label: 2,
+            learner_doubt: suspicion,
+            anchored_doubt: 0.0,
+            repair_weight: 0.0,
+            wrong_probability: 0.0,
+            reference_margin: 0.0,
+            flagged_at_step: None,
+            label_fit: Default::default(),
+        };
+        let mut items = vec![item(0.8), item(0.7), item(0.69)];
+        propose_at(&mut items, 0.7);
+        let got: Vec<(usize, f64)> = items
+            .iter()
+            .map(|i| (i.proposed_label, i.confidence))
+            .collect();
+        let want = [(2, 0.4), (2, 0.35), (0, 0.31)];
+        for ((gl, gc), (wl, wc)) in got.iter().zip(want) {
+            assert_eq!(*gl, wl, "{got:?}");
+            assert!((gc - wc).abs() < 1e-12, "{got:?}");
         }
     }
 }

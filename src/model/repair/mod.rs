@@ -63,7 +63,8 @@ pub struct ItemScore {
     pub label: usize,
     /// Combined suspicion in `[0, 1]`, higher means more likely mislabeled: `w·repair_signal + (1 − w)·
     /// learner_doubt` with `w` = [`ItemScore::repair_weight`], which the trusted audit raises where the
-    /// reference model is unsound. Items at or above `flag_threshold` are flagged. A suspicion, not proof.
+    /// reference model is unsound. Items at or above the batch's flag line ([`Assessment::flag_line`]) are
+    /// flagged. A suspicion, not proof.
     pub suspicion: f64,
     /// Proposed label (class index); equals `label` when the engine sees no reason to change it.
     pub proposed_label: usize,
@@ -254,7 +255,9 @@ pub struct Assessment {
     pub reference: String,
     /// Trusted-set size and pool size used.
     pub sizes: Sizes,
-    /// The flagged share the batch would have if every item's label were drawn from its calibrated
+    /// The share of items *in doubt* (suspicion at or above `[model] flag_threshold`, the doubt line the
+    /// policy counts; the items an accepted batch holds for review) the batch would have if every item's
+    /// label were drawn from its calibrated
     /// label distribution `p̃` — the pool's labels model (`PoolSummary::labels_model`: as fitted from
     /// unselected stored items, or of the accepted items as delivered; `p_ref` while the pool is not the
     /// reference or has neither), sharpened by [`Assessment::reference_sharpness`]
@@ -262,9 +265,10 @@ pub struct Assessment {
     /// taken as 0 (a batch carrying the right labels asks the repair to move nothing):
     /// `m₀ = (1/n) Σ_i q_i`, `q_i = Σ_c p̃_ic · 1[(w_ic − b)⁺ (1 − p_A,ic) + (1 − w_ic)(1 − p_ref,ic) ≥ τ]`,
     /// with `w_ic` the repair weight the trusted audit gives item `i` labelled `c`, `b` the base weight,
-    /// `p_A` the trusted-anchored model and `τ` the flag threshold. Where the learner separates the
-    /// classes poorly even a clean batch has many items the reference model doubts, and this is the share
-    /// to expect; the policy judges the observed flags against it.
+    /// `p_A` the trusted-anchored model and `τ` the doubt line `[model] flag_threshold`. Where the learner
+    /// separates the classes poorly even a clean batch has many items the reference model doubts, and
+    /// this is the share to expect; the policy judges the observed share in doubt against it. (The flag
+    /// shown per item sits at the batch's higher [`Assessment::flag_line`].)
     #[serde(default)]
     pub expected_flagged_share: f64,
     /// Standard deviation of that share (Poisson-binomial): `√(Σ_i q_i (1 − q_i)) / n`.
@@ -297,6 +301,17 @@ pub struct Assessment {
     /// model as it is) while the reference is cross-fitted or the trusted set is too small.
     #[serde(default)]
     pub reference_sharpness: crate::model::calibration::Sharpness,
+    /// The batch's flag line: items whose suspicion reaches it are flagged. The least suspicion at or
+    /// above `[model] flag_threshold` at which a batch carrying the right labels — labels drawn from the
+    /// same calibrated distribution as [`Assessment::expected_flagged_share`] — is expected to flag at most
+    /// `[model] clean_flag_rate` of its items:
+    /// `τ* = max(τ₀, min{τ : (1/n) Σ_i Σ_c p̃_ic 1[s_ic ≥ τ] ≤ r})`, with `s_ic` the fusion's suspicion of
+    /// item `i` labelled `c` (the repair's share taken as 0). So a flag means the same on every data set:
+    /// a right label scores that high on at most `r` of the items, however well the learner separates the
+    /// classes. It depends on the items' features and the trusted set, not on the delivered labels.
+    /// Reports written before it existed read 0 here; [`Assessment::flag_line_or`] then gives the floor.
+    #[serde(default)]
+    pub flag_line: f64,
 }
 
 /// How likely labels are under the reference model, against what right labels would give: for items
@@ -364,6 +379,21 @@ pub struct Sizes {
 }
 
 impl Assessment {
+    /// The batch's flag line, never below `floor` (`[model] flag_threshold`): a report written before the
+    /// line existed (0, or not a number) reads as the floor, as it was then.
+    pub fn flag_line_or(&self, floor: f64) -> f64 {
+        if self.flag_line.is_finite() {
+            self.flag_line.max(floor)
+        } else {
+            floor
+        }
+    }
+
+    /// Whether an item's suspicion reaches the batch's flag line (at least `floor`).
+    pub fn is_flagged(&self, item: &ItemScore, floor: f64) -> bool {
+        item.suspicion >= self.flag_line_or(floor)
+    }
+
     /// Items sorted by suspicion, highest first (ties by batch order).
     pub fn ranked(&self) -> Vec<&ItemScore> {
         let mut v: Vec<&ItemScore> = self.items.iter().collect();

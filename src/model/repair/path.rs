@@ -578,4 +578,70 @@ mod tests {
             );
         }
     }
+
+    /// Each step the descent accepts meets the sufficient-decrease bound it promises: for
+    /// `Y⁺ = Π_Δ(Y − η ∇F)`, `F(Y⁺) ≤ F(Y) − ‖Y⁺ − Y‖² / (2η)` (the projection's property
+    /// `⟨∇F, Y⁺ − Y⟩ ≤ −‖Y⁺ − Y‖²/η` turns the test's quadratic model into this; Beck & Teboulle,
+    /// "A Fast Iterative Shrinkage-Thresholding Algorithm for Linear Inverse Problems", SIAM J. Imaging
+    /// Sciences 2009, Lemma 2.3). Driven one iteration at a time (`repair_iters = 1`), with `F` computed
+    /// here from `θ_lin(Y)` and the moved mass, and `η` the step the call accepted. Written for the
+    /// mutation run of 2026-12-05: the stationarity test above let through two mutants of the quadratic
+    /// model (`+ ‖d‖²/(2η)` → `* ‖d‖²/(2η)`, and `2η` → `2 + η`), which accept steps the bound rejects
+    /// and still end at a stationary point.
+    #[test]
+    fn every_accepted_step_meets_the_sufficient_decrease_bound() {
+        let settings = ModelSettings {
+            repair_iters: 1,
+            ..tight()
+        };
+        let k = 3;
+        let (phi_p, y_p) = blobs(24, 1);
+        let (phi_b, mut y_b) = blobs(9, 2);
+        y_b[0] = 1;
+        y_b[4] = 2;
+        let (phi_t, y_t) = blobs(6, 3);
+        let phi = ndarray::concatenate(ndarray::Axis(0), &[phi_p.view(), phi_b.view()]).unwrap();
+        let inner = Inner::for_test(phi, Some(one_hot(&y_p, k)), 24..33, settings.l2);
+        let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
+        let y_hat = one_hot(&y_b, k);
+        let lin = ctx.linearise(&y_hat, Array1::zeros(9), far(), None, false);
+        let n_b = y_b.len() as f64;
+        let (_, g0) = ctx.loss_and_hypergradient(&lin, &lin.theta, &mut None);
+        let gamma_max = (0..y_b.len())
+            .map(|i| {
+                (0..k)
+                    .map(|c| g0[[i, y_b[i]]] - g0[[i, c]])
+                    .fold(0.0, f64::max)
+            })
+            .fold(0.0, f64::max)
+            * n_b;
+        let f = |y: &Array2<f64>, gamma: f64| {
+            let th = ctx.theta_at(&lin, y, &mut None);
+            ctx.trusted_value(&th) + gamma * moved(y, &y_b).iter().sum::<f64>() / n_b
+        };
+        for frac in [0.5, 0.1, 0.01] {
+            let gamma = gamma_max * frac;
+            let mut y = y_hat.clone();
+            let mut step = f64::NAN;
+            let mut moves = 0;
+            for call in 0..200 {
+                let before = y.clone();
+                projected_gradient(
+                    &ctx, &lin, &mut y, &y_b, gamma, &mut step, &mut None, &mut None,
+                );
+                let dd: f64 = (&y - &before).iter().map(|v| v * v).sum();
+                if dd == 0.0 {
+                    break;
+                }
+                moves += 1;
+                let (f0, f1) = (f(&before, gamma), f(&y, gamma));
+                let bound = f0 - dd / (2.0 * step);
+                assert!(
+                    f1 <= bound + 1e-12 * f0.abs(),
+                    "γ = {frac}·γ_max, call {call}: F went {f0:.12} → {f1:.12}, the bound is {bound:.12} (η = {step:e})"
+                );
+            }
+            assert!(moves >= 2, "γ = {frac}·γ_max: only {moves} accepted steps");
+        }
+    }
 }
