@@ -217,10 +217,13 @@ mod tests {
             ..s
         };
         assert!(unsure_items(&s, &sus, &flagged).iter().all(|&v| !v));
-        // A flag line above the hold line (0.7 here): the unflagged item at or above `hold_suspicion`
-        // (0.6) is in doubt, and the share's quota is taken from the rest (0.45, then the first 0.3).
+        // A flag line above the hold line (0.7 here): the unflagged item at `hold_suspicion` (0.6, exactly
+        // at it) is in doubt, and the share's quota is taken from the rest (0.45, then the first 0.3), not
+        // from it. (Written for the mutation run of 2026-12-05: `<` → `<=` against `hold_suspicion` in
+        // `unsure_items` let the item in doubt take a quota slot, [6, 3].)
         let s = AdmissionSettings {
             unsure_share: 0.2,
+            hold_suspicion: 0.6,
             ..s
         };
         let flagged = sus.map(|v| v >= 0.7);
