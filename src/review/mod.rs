@@ -164,7 +164,9 @@ impl From<crate::pipeline::file::FileError> for ReviewError {
 impl From<StoreError> for ReviewError {
     fn from(e: StoreError) -> Self {
         match e {
-            StoreError::Conflict { .. } => Self::Refused(e.to_string()),
+            StoreError::Conflict { .. } | StoreError::Refused { .. } => {
+                Self::Refused(e.to_string())
+            }
             StoreError::NotFound { .. } => Self::NotFound(e.to_string()),
             other => Self::Store {
                 message: other.to_string(),

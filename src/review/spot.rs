@@ -198,12 +198,19 @@ pub fn spot_answer(
         .detail(detail);
     let now = Utc::now();
     let batch_id = rec.id.clone();
-    let settled = env.store.transition_with_history(
+    let settled = env.store.transition_with_history_unless(
         &rec.id,
         &[rec.state],
         rec.state,
-        PoolChange::None,
         vec![audit],
+        |r| {
+            let a = r.spot_check.as_ref()?.answered.as_ref()?;
+            Some(format!(
+                "the spot check was answered by {} at {}",
+                crate::text::sanitize(&a.by),
+                a.at.format("%Y-%m-%d %H:%M:%S UTC")
+            ))
+        },
         |r| {
             if let Some(c) = r.spot_check.as_mut() {
                 c.answered = Some(SpotAnswers {

@@ -105,6 +105,14 @@ pub enum StoreError {
         /// States that would have allowed the transition.
         expected: String,
     },
+    /// The batch's record refuses the change (e.g. a spot check answered already).
+    #[error("batch {batch}: {why}")]
+    Refused {
+        /// The batch.
+        batch: String,
+        /// Why, in words.
+        why: String,
+    },
     /// No such record.
     #[error("no {what} {key}")]
     NotFound {
@@ -671,6 +679,7 @@ impl Store {
             pool_add,
             None,
             None,
+            None,
         )
     }
 
@@ -694,7 +703,7 @@ impl Store {
         audit: Vec<AuditRecord>,
         edit: impl Fn(&mut BatchRecord),
     ) -> Result<BatchRecord, StoreError> {
-        self.transition_inner(batch_id, expect, to, pool, audit, &edit, None)
+        self.transition_inner(batch_id, expect, to, pool, audit, &edit, None, None)
     }
 
     #[allow(clippy::too_many_arguments)]
@@ -707,6 +716,7 @@ impl Store {
         audit: Vec<AuditRecord>,
         edit: &dyn Fn(&mut BatchRecord),
         history: Option<&dyn Fn(&mut VendorHistory)>,
+        refuse: Option<&Refusal>,
     ) -> Result<BatchRecord, StoreError> {
         let now = Utc::now();
         let (pool_add, pool_remove) = match pool {
@@ -732,6 +742,7 @@ impl Store {
             pool_add,
             pool_remove,
             history,
+            refuse,
         )
     }
 
@@ -748,6 +759,7 @@ impl Store {
         pool_add: Option<Vec<u8>>,
         pool_remove: Option<&str>,
         history_edit: Option<&dyn Fn(&mut VendorHistory)>,
+        refuse: Option<&Refusal>,
     ) -> Result<BatchRecord, StoreError> {
         let mut audits = Vec::with_capacity(audit.len());
         for a in audit {
@@ -767,6 +779,14 @@ impl Store {
                 dec("batch", id.as_bytes(), &cur).map_err(ConflictableTransactionError::Abort)?;
             if !expect.contains(&cur.state) {
                 return Err(ConflictableTransactionError::Abort(conflict(&cur, expect)));
+            }
+            // Checked on the record as stored, inside the transaction: of two concurrent changes that
+            // each read the record before the other wrote, the second is refused here.
+            if let Some(why) = refuse.and_then(|f| f(&cur)) {
+                return Err(ConflictableTransactionError::Abort(StoreError::Refused {
+                    batch: id.to_string(),
+                    why,
+                }));
             }
             let mut record = cur;
             edit(&mut record);
@@ -973,6 +993,10 @@ impl Store {
         }
     }
 }
+
+/// A check on a batch's record as stored, run inside a transition's transaction: `Some(why)` refuses
+/// the transition ([`StoreError::Refused`]).
+pub(crate) type Refusal<'a> = dyn Fn(&BatchRecord) -> Option<String> + 'a;
 
 fn conflict(rec: &BatchRecord, expect: &[BatchState]) -> StoreError {
     StoreError::Conflict {

@@ -166,7 +166,43 @@ impl Store {
         edit: impl Fn(&mut BatchRecord),
         history: impl Fn(&mut VendorHistory),
     ) -> Result<BatchRecord, StoreError> {
-        self.transition_inner(batch_id, expect, to, pool, audit, &edit, Some(&history))
+        self.transition_inner(
+            batch_id,
+            expect,
+            to,
+            pool,
+            audit,
+            &edit,
+            Some(&history),
+            None,
+        )
+    }
+
+    /// [`Store::transition_with_history`] refused, inside the transaction, when `refuse` says why on the
+    /// record as stored ([`StoreError::Refused`]): a change that must happen once (an answer to a spot
+    /// check) cannot happen twice when two requests race, since each read the record before the other
+    /// wrote it and the second's transaction retries on the first's write.
+    #[allow(clippy::too_many_arguments)]
+    pub fn transition_with_history_unless(
+        &self,
+        batch_id: &str,
+        expect: &[BatchState],
+        to: BatchState,
+        audit: Vec<AuditRecord>,
+        refuse: impl Fn(&BatchRecord) -> Option<String>,
+        edit: impl Fn(&mut BatchRecord),
+        history: impl Fn(&mut VendorHistory),
+    ) -> Result<BatchRecord, StoreError> {
+        self.transition_inner(
+            batch_id,
+            expect,
+            to,
+            PoolChange::None,
+            audit,
+            &edit,
+            Some(&history),
+            Some(&refuse),
+        )
     }
 
     /// A vendor's history (empty if none yet).

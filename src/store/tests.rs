@@ -292,3 +292,79 @@ fn a_verdict_keeps_the_stored_spot_check_state() {
         (answered.spot, answered.spot_hold)
     );
 }
+
+/// A change that must happen once is refused inside the transaction when the record as stored says so:
+/// two answers to one spot check that each read the batch before the other wrote (the race the review
+/// path's early check cannot see) update the vendor's history once. The second call stands for the
+/// racing request: it passes its own stale copy's check and reaches the store. Fails with the guard
+/// left out of the transaction (`refuse` ignored): the history is bumped twice and the second answer
+/// overwrites the first.
+#[test]
+fn a_refused_change_writes_nothing_and_says_why() {
+    use crate::store::{SpotAnswers, SpotCheck};
+    let (_d, s) = tmp_store();
+    let mut r = claimed(&s);
+    r.outcome = Some(Outcome::Accepted);
+    r.spot_check = Some(SpotCheck {
+        items: Vec::new(),
+        answered: None,
+    });
+    let r = s
+        .record_verdict(
+            &r,
+            AuditRecord::new("daemon", "verdict"),
+            true,
+            None,
+            None,
+            None,
+        )
+        .unwrap();
+    let answer = |by: &'static str| {
+        s.transition_with_history_unless(
+            &r.id,
+            &[r.state],
+            r.state,
+            vec![AuditRecord::new(by, "spot_check_answer")],
+            |rec| {
+                rec.spot_check
+                    .as_ref()?
+                    .answered
+                    .as_ref()
+                    .map(|a| format!("answered by {}", a.by))
+            },
+            |rec| {
+                if let Some(c) = rec.spot_check.as_mut() {
+                    c.answered = Some(SpotAnswers {
+                        by: by.into(),
+                        at: Utc::now(),
+                        labels: Vec::new(),
+                        disagreed: 0,
+                        signal: None,
+                    });
+                }
+            },
+            |h| h.accepted_total += 1,
+        )
+    };
+    answer("first").unwrap();
+    match answer("second") {
+        Err(StoreError::Refused { why, .. }) => assert_eq!(why, "answered by first"),
+        other => panic!("the second answer went through: {other:?}"),
+    }
+    assert_eq!(s.vendor_history("v1").unwrap().accepted_total, 1);
+    let stored = s.batch(&r.id).unwrap().unwrap();
+    assert_eq!(
+        stored.spot_check.unwrap().answered.unwrap().by,
+        "first",
+        "the first answer stands"
+    );
+    let audit = s.audit_since(0).unwrap();
+    assert_eq!(
+        audit
+            .iter()
+            .filter(|a| a.action == "spot_check_answer")
+            .count(),
+        1,
+        "the refused answer left no audit record"
+    );
+}
