@@ -175,6 +175,49 @@ mod tests {
     use super::*;
     use crate::model::learner::one_hot;
 
+    /// A tiny training problem on a line: `pool` pool items labelled 0, 1, 2, … in turn, then two batch
+    /// items, one feature plus the intercept; the trusted items are the first three rows.
+    fn on_a_line(pool: usize, l2: f64) -> (Inner, Array2<f64>) {
+        let n = pool + 2;
+        let phi = Array2::from_shape_fn((n, 2), |(i, j)| if j == 0 { 1.0 } else { i as f64 / 4.0 });
+        let labels: Vec<usize> = (0..pool).map(|i| i % 3).collect();
+        let inner = Inner::for_test(phi.clone(), Some(one_hot(&labels, 3)), pool..n, l2);
+        (inner, phi.slice(s![0..3, ..]).to_owned())
+    }
+
+    /// The exact mean and deviation of the linearised damage `d = Φ(θ_lin(Y′)) − Φ(θ̂)` over the nine
+    /// label combinations of two items (each with its probability `p_1a · p_2b`), and of its remainder
+    /// beyond the linear term `⟨G, Y′ − Y⟩`: `(E d, sd d, E r, sd r)`.
+    fn exact_moments(
+        ctx: &Ctx<'_>,
+        lin: &Linearisation,
+        g: &Array2<f64>,
+        p_ref: &Array2<f64>,
+        batch_y: &[usize],
+        phi_with: f64,
+    ) -> (f64, f64, f64, f64) {
+        let k = p_ref.ncols();
+        let (mut m1, mut m2, mut r1, mut r2) = (0.0, 0.0, 0.0, 0.0);
+        for a in 0..k {
+            for b in 0..k {
+                let pr = p_ref[[0, a]] * p_ref[[1, b]];
+                let theta = ctx.theta_at(lin, &one_hot(&[a, b], k), &mut None);
+                let d = ctx.trusted_value(&theta) - phi_with;
+                let linear = g[[0, a]] - g[[0, batch_y[0]]] + g[[1, b]] - g[[1, batch_y[1]]];
+                m1 += pr * d;
+                m2 += pr * d * d;
+                r1 += pr * (d - linear);
+                r2 += pr * (d - linear).powi(2);
+            }
+        }
+        (
+            m1,
+            (m2 - m1 * m1).max(0.0).sqrt(),
+            r1,
+            (r2 - r1 * r1).max(0.0).sqrt(),
+        )
+    }
+
     /// Out of time before the first draw, the expected damage is the damage plus the linear term's mean and
     /// its standard deviation, in closed form: per item the label is categorical with probabilities
     /// `p_ref,i`, so `⟨G_i, Y′_i − Y_i⟩` has mean `Σ_c p_ic G_ic − G_iŷ` and variance
@@ -192,10 +235,7 @@ mod tests {
         let settings = ModelSettings::default();
         let k = 3;
         // A tiny training problem, only to have a context and a linearisation to pass (no draw uses them).
-        let phi = Array2::from_shape_fn((8, 2), |(i, j)| if j == 0 { 1.0 } else { i as f64 / 4.0 });
-        let y_pool = one_hot(&[0, 1, 2, 0, 1, 2], k);
-        let inner = Inner::for_test(phi.clone(), Some(y_pool), 6..8, settings.l2);
-        let phi_t = phi.slice(s![0..3, ..]).to_owned();
+        let (inner, phi_t) = on_a_line(6, settings.l2);
         let y_t = [0, 1, 2];
         let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
         let batch_y = [0, 1];
@@ -240,10 +280,7 @@ mod tests {
         let k = 3;
         // Few items and a small L2 weight: each label moves the model far, so the trusted loss curves and
         // the remainder beyond the linear term is not negligible.
-        let phi = Array2::from_shape_fn((8, 2), |(i, j)| if j == 0 { 1.0 } else { i as f64 / 4.0 });
-        let y_pool = one_hot(&[0, 1, 2, 0, 1, 2], k);
-        let inner = Inner::for_test(phi.clone(), Some(y_pool), 6..8, settings.l2);
-        let phi_t = phi.slice(s![0..3, ..]).to_owned();
+        let (inner, phi_t) = on_a_line(6, settings.l2);
         let y_t = [0, 1, 2];
         let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
         let batch_y = [0, 1];
@@ -262,23 +299,7 @@ mod tests {
         let damage = 0.7;
         let (mean, sd) =
             expected_damage(&ctx, &lin, &g, &p_ref, &batch_y, damage, phi_with, 11, far);
-        // Exact moments over the nine label combinations.
-        let (mut m1, mut m2, mut r1, mut r2) = (0.0, 0.0, 0.0, 0.0);
-        for a in 0..k {
-            for b in 0..k {
-                let pr = p_ref[[0, a]] * p_ref[[1, b]];
-                let y = one_hot(&[a, b], k);
-                let theta = ctx.theta_at(&lin, &y, &mut None);
-                let d = ctx.trusted_value(&theta) - phi_with;
-                let linear = g[[0, a]] - g[[0, batch_y[0]]] + g[[1, b]] - g[[1, batch_y[1]]];
-                m1 += pr * d;
-                m2 += pr * d * d;
-                r1 += pr * (d - linear);
-                r2 += pr * (d - linear).powi(2);
-            }
-        }
-        let exact_sd = (m2 - m1 * m1).max(0.0).sqrt();
-        let r_sd = (r2 - r1 * r1).max(0.0).sqrt();
+        let (m1, exact_sd, r1, r_sd) = exact_moments(&ctx, &lin, &g, &p_ref, &batch_y, phi_with);
         assert!(
             r1 > 1e-4 && r1 > r_sd,
             "the remainder matters here: mean {r1}, sd {r_sd}"
@@ -307,10 +328,7 @@ mod tests {
     fn with_many_draws_the_estimate_converges_to_the_exact_moments() {
         let settings = ModelSettings::default();
         let k = 3;
-        let phi = Array2::from_shape_fn((5, 2), |(i, j)| if j == 0 { 1.0 } else { i as f64 / 4.0 });
-        let y_pool = one_hot(&[0, 1, 2], k);
-        let inner = Inner::for_test(phi.clone(), Some(y_pool), 3..5, settings.l2);
-        let phi_t = phi.slice(s![0..3, ..]).to_owned();
+        let (inner, phi_t) = on_a_line(3, settings.l2);
         let y_t = [0, 1, 2];
         let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
         let batch_y = [0, 1];
@@ -326,21 +344,7 @@ mod tests {
         let (_, g) = ctx.loss_and_hypergradient(&lin, &lin.theta, &mut None);
         let p_ref = ndarray::array![[0.2, 0.5, 0.3], [0.6, 0.1, 0.3]];
         let damage = 0.7;
-        let (mut m1, mut m2, mut r1, mut r2) = (0.0, 0.0, 0.0, 0.0);
-        for a in 0..k {
-            for b in 0..k {
-                let pr = p_ref[[0, a]] * p_ref[[1, b]];
-                let theta = ctx.theta_at(&lin, &one_hot(&[a, b], k), &mut None);
-                let d = ctx.trusted_value(&theta) - phi_with;
-                let linear = g[[0, a]] - g[[0, batch_y[0]]] + g[[1, b]] - g[[1, batch_y[1]]];
-                m1 += pr * d;
-                m2 += pr * d * d;
-                r1 += pr * (d - linear);
-                r2 += pr * (d - linear).powi(2);
-            }
-        }
-        let exact_sd = (m2 - m1 * m1).max(0.0).sqrt();
-        let r_sd = (r2 - r1 * r1).max(0.0).sqrt();
+        let (m1, exact_sd, _, r_sd) = exact_moments(&ctx, &lin, &g, &p_ref, &batch_y, phi_with);
         assert!(
             r_sd > 0.2 * exact_sd,
             "remainder sd {r_sd}, total {exact_sd}"

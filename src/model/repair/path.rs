@@ -476,6 +476,46 @@ mod tests {
         );
     }
 
+    /// Three Gaussian classes: a 24-item pool, a 9-item batch with two wrong labels (items 0 and 4), six
+    /// trusted items, in exact mode with unit weights.
+    struct Planted {
+        inner: Inner,
+        phi_t: Array2<f64>,
+        y_t: Vec<usize>,
+        y_b: Vec<usize>,
+    }
+
+    impl Planted {
+        fn new(l2: f64) -> Self {
+            let (phi_p, y_p) = blobs(24, 1);
+            let (phi_b, mut y_b) = blobs(9, 2);
+            y_b[0] = 1;
+            y_b[4] = 2;
+            let (phi_t, y_t) = blobs(6, 3);
+            let phi =
+                ndarray::concatenate(ndarray::Axis(0), &[phi_p.view(), phi_b.view()]).unwrap();
+            let inner = Inner::for_test(phi, Some(one_hot(&y_p, 3)), 24..33, l2);
+            Self {
+                inner,
+                phi_t,
+                y_t,
+                y_b,
+            }
+        }
+    }
+
+    /// `γ_max = n_B max_i max_k (G_iŷ − G_ik)⁺`, written here from the formula (the path computes its own).
+    fn gamma_max_of(g0: &Array2<f64>, y_b: &[usize]) -> f64 {
+        (0..y_b.len())
+            .map(|i| {
+                (0..g0.ncols())
+                    .map(|c| g0[[i, y_b[i]]] - g0[[i, c]])
+                    .fold(0.0, f64::max)
+            })
+            .fold(0.0, f64::max)
+            * y_b.len() as f64
+    }
+
     /// The descent at one `γ` ends where `F_γ(Y) = Φ(θ_lin(Y)) + γ C(Y)` is stationary over the product of
     /// simplices: every row is a fixed point of the projected-gradient map, `Y_i = Π_Δ(Y_i − η ∇_i F)`
     /// (the first-order optimality condition of a convex function over a convex set; Bertsekas, "Nonlinear
@@ -495,30 +535,18 @@ mod tests {
             ..tight()
         };
         let k = 3;
-        let (phi_p, y_p) = blobs(24, 1);
-        let (phi_b, mut y_b) = blobs(9, 2);
-        y_b[0] = 1; // two wrong labels
-        y_b[4] = 2;
-        let (phi_t, y_t) = blobs(6, 3);
-        let phi = ndarray::concatenate(ndarray::Axis(0), &[phi_p.view(), phi_b.view()]).unwrap();
-        let inner = Inner::for_test(phi, Some(one_hot(&y_p, k)), 24..33, settings.l2);
-        let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
-        let y_hat = one_hot(&y_b, k);
+        let p = Planted::new(settings.l2);
+        let y_b = &p.y_b;
+        let ctx = Ctx::for_test(&settings, &p.inner, &p.phi_t, &p.y_t, k);
+        let y_hat = one_hot(y_b, k);
         let lin = ctx.linearise(&y_hat, Array1::zeros(9), far(), None, false);
         let n_b = y_b.len() as f64;
         let (_, g0) = ctx.loss_and_hypergradient(&lin, &lin.theta, &mut None);
-        let gamma_max = (0..y_b.len())
-            .map(|i| {
-                (0..k)
-                    .map(|c| g0[[i, y_b[i]]] - g0[[i, c]])
-                    .fold(0.0, f64::max)
-            })
-            .fold(0.0, f64::max)
-            * n_b;
+        let gamma_max = gamma_max_of(&g0, y_b);
         assert!(gamma_max > 0.0, "the planted labels should pull");
         let f_of = |y: &Array2<f64>| {
             let th = ctx.theta_at(&lin, y, &mut None);
-            let mass: f64 = moved(y, &y_b).iter().sum();
+            let mass: f64 = moved(y, y_b).iter().sum();
             (th, mass)
         };
         for frac in [2.0, 0.5, 0.1, 0.01] {
@@ -527,7 +555,7 @@ mod tests {
             let mut y = y_hat.clone();
             let mut step = f64::NAN;
             let theta = projected_gradient(
-                &ctx, &lin, &mut y, &y_b, gamma, &mut step, &mut None, &mut None,
+                &ctx, &lin, &mut y, y_b, gamma, &mut step, &mut None, &mut None,
             );
             let (direct, mass) = f_of(&y);
             let gap = (&theta - &direct)
@@ -595,29 +623,17 @@ mod tests {
             ..tight()
         };
         let k = 3;
-        let (phi_p, y_p) = blobs(24, 1);
-        let (phi_b, mut y_b) = blobs(9, 2);
-        y_b[0] = 1;
-        y_b[4] = 2;
-        let (phi_t, y_t) = blobs(6, 3);
-        let phi = ndarray::concatenate(ndarray::Axis(0), &[phi_p.view(), phi_b.view()]).unwrap();
-        let inner = Inner::for_test(phi, Some(one_hot(&y_p, k)), 24..33, settings.l2);
-        let ctx = Ctx::for_test(&settings, &inner, &phi_t, &y_t, k);
-        let y_hat = one_hot(&y_b, k);
+        let p = Planted::new(settings.l2);
+        let y_b = &p.y_b;
+        let ctx = Ctx::for_test(&settings, &p.inner, &p.phi_t, &p.y_t, k);
+        let y_hat = one_hot(y_b, k);
         let lin = ctx.linearise(&y_hat, Array1::zeros(9), far(), None, false);
         let n_b = y_b.len() as f64;
         let (_, g0) = ctx.loss_and_hypergradient(&lin, &lin.theta, &mut None);
-        let gamma_max = (0..y_b.len())
-            .map(|i| {
-                (0..k)
-                    .map(|c| g0[[i, y_b[i]]] - g0[[i, c]])
-                    .fold(0.0, f64::max)
-            })
-            .fold(0.0, f64::max)
-            * n_b;
+        let gamma_max = gamma_max_of(&g0, y_b);
         let f = |y: &Array2<f64>, gamma: f64| {
             let th = ctx.theta_at(&lin, y, &mut None);
-            ctx.trusted_value(&th) + gamma * moved(y, &y_b).iter().sum::<f64>() / n_b
+            ctx.trusted_value(&th) + gamma * moved(y, y_b).iter().sum::<f64>() / n_b
         };
         for frac in [0.5, 0.1, 0.01] {
             let gamma = gamma_max * frac;
@@ -627,7 +643,7 @@ mod tests {
             for call in 0..200 {
                 let before = y.clone();
                 projected_gradient(
-                    &ctx, &lin, &mut y, &y_b, gamma, &mut step, &mut None, &mut None,
+                    &ctx, &lin, &mut y, y_b, gamma, &mut step, &mut None, &mut None,
                 );
                 let dd: f64 = (&y - &before).iter().map(|v| v * v).sum();
                 if dd == 0.0 {
