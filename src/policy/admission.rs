@@ -55,7 +55,8 @@ pub struct AdmissionSettings {
     pub unsure_share: f64,
     /// The least suspicion for an unflagged item to be unsure.
     pub unsure_min_suspicion: f64,
-    /// An unflagged item whose suspicion reaches this is unsure whatever the share: where the classes
+    /// An unflagged item whose suspicion reaches this is *in doubt* and waits like an unsure one, whatever
+    /// the share ([`doubtful_items`]): where the classes
     /// overlap, a batch's flag line ([`crate::model::Assessment::flag_line`]) rises above
     /// `[model] flag_threshold` so that a flag stays rare on right labels, and the items between the floor
     /// and the line still wait for a reviewer rather than enter the pool. Default 0.5 (the floor's

@@ -167,13 +167,8 @@ pub fn spot_answer(
         .spot_check
         .clone()
         .ok_or_else(|| ReviewError::NotFound(format!("batch {} has no spot check", rec.id)))?;
-    if let Some(a) = &check.answered {
-        return Err(ReviewError::Refused(format!(
-            "the spot check of batch {} was answered by {} at {}",
-            rec.id,
-            crate::text::sanitize(&a.by),
-            a.at.format("%Y-%m-%d %H:%M:%S UTC")
-        )));
+    if let Some(why) = answered_already(&rec) {
+        return Err(ReviewError::Refused(format!("batch {}: {why}", rec.id)));
     }
     let labels = expert_labels(env, req, &rec.id, &check.items)?;
     let outcomes: Vec<(Stratum, bool)> = check
@@ -203,14 +198,7 @@ pub fn spot_answer(
         &[rec.state],
         rec.state,
         vec![audit],
-        |r| {
-            let a = r.spot_check.as_ref()?.answered.as_ref()?;
-            Some(format!(
-                "the spot check was answered by {} at {}",
-                crate::text::sanitize(&a.by),
-                a.at.format("%Y-%m-%d %H:%M:%S UTC")
-            ))
-        },
+        answered_already,
         |r| {
             if let Some(c) = r.spot_check.as_mut() {
                 c.answered = Some(SpotAnswers {
@@ -312,6 +300,17 @@ pub fn spot_answer(
         trusted_added,
         trusted_error,
     })
+}
+
+/// Why a batch's spot check takes no (further) answer: it was answered already, by whom and when. Checked
+/// before the answer is read and again inside the store's transaction (a racing answer).
+fn answered_already(r: &crate::store::BatchRecord) -> Option<String> {
+    let a = r.spot_check.as_ref()?.answered.as_ref()?;
+    Some(format!(
+        "the spot check was answered by {} at {}",
+        crate::text::sanitize(&a.by),
+        a.at.format("%Y-%m-%d %H:%M:%S UTC")
+    ))
 }
 
 /// The experts' label per picked item, in the spot check's order: every item answered, with one of the

@@ -85,18 +85,14 @@ pub(crate) fn score_items(
             let pi = blend.row(i);
             // Best alternative class under the blend, and its share of the non-given mass:
             // P(alternative | the given label is wrong). The proposed label is the alternative once the
-            // suspicion reaches `flag_threshold`, otherwise the given label.
+            // suspicion reaches the batch's flag line ([`propose_at`], once the line is known); until then
+            // every item keeps its given label.
             let alt = argmax((0..k).map(|c| if c == given { f64::NEG_INFINITY } else { pi[c] }));
             let rest: f64 = (0..k).filter(|&c| c != given).map(|c| pi[c]).sum();
             let share = if rest > 0.0 {
                 pi[alt] / rest
             } else {
                 1.0 / (k - 1) as f64
-            };
-            let (proposed_label, confidence) = if suspicion >= settings.flag_threshold {
-                (alt, (suspicion * share).clamp(0.0, 1.0))
-            } else {
-                (given, 1.0 - suspicion)
             };
             let rho = anchored.mean_labels.row(i);
             let repair_label = argmax((0..k).map(|c| {
@@ -110,8 +106,8 @@ pub(crate) fn score_items(
                 index: i,
                 label: given,
                 suspicion,
-                proposed_label,
-                confidence,
+                proposed_label: given,
+                confidence: 1.0 - suspicion,
                 alternative_label: alt,
                 alternative_share: share.clamp(0.0, 1.0),
                 repair_mass: ev.repair_mass[i],

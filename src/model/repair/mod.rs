@@ -389,11 +389,6 @@ impl Assessment {
         }
     }
 
-    /// Whether an item's suspicion reaches the batch's flag line (at least `floor`).
-    pub fn is_flagged(&self, item: &ItemScore, floor: f64) -> bool {
-        item.suspicion >= self.flag_line_or(floor)
-    }
-
     /// Items sorted by suspicion, highest first (ties by batch order).
     pub fn ranked(&self) -> Vec<&ItemScore> {
         let mut v: Vec<&ItemScore> = self.items.iter().collect();
