@@ -394,5 +394,24 @@ pub fn signal_notes(rec: &BatchRecord, assessment: Option<&Assessment>) -> Vec<S
         format!("{:.3}", a.estimated_wrong_share),
         "The batch's estimated share of wrong labels, behind every item's suspicion.",
     ));
+    if a.flag_line > 0.0 {
+        let flagged = a
+            .items
+            .iter()
+            .filter(|i| i.proposed_label != i.label)
+            .count();
+        let in_doubt = rec
+            .decision
+            .as_ref()
+            .and_then(|d| d.signals.as_ref())
+            .map_or(String::new(), |s| {
+                format!("; {} in doubt", s.flagged_items())
+            });
+        v.push(note(
+            "flag line",
+            format!("{:.3} ({flagged} flagged{in_doubt})", a.flag_line),
+            "The suspicion at which an item of this batch is flagged and gets a proposed label: a batch carrying the right labels would have at most [model] clean_flag_rate of its items (3 % by default) above it, whatever the data. Items below it but at [model] flag_threshold or more are in doubt: the policy counts them and an accepted batch holds them for review, but no label is proposed for them.",
+        ));
+    }
     v
 }
