@@ -38,6 +38,7 @@ pub(crate) fn open(
     let meta = store.workspace_meta()?;
     check_against_meta(config, &meta)?;
     let redo = reconcile(ws, config, &store, Some(metrics))?;
+    resume_spot_recalls(ws, config, &store, &meta);
     let pool = score::load_pool(&store, &meta, config)?;
     let trusted = TrustedArrays::load(&store, &meta)?;
     Ok(Opened {
@@ -47,6 +48,33 @@ pub(crate) fn open(
         pool,
         trusted,
     })
+}
+
+/// Finish the recalls that spot-check signals asked for before a stop or a crash cut them short
+/// ([`review::resume_spot_recalls`]), before the pool is loaded. A failure is logged, not fatal: the
+/// vendor's hold is in its history already, so its next batches wait for review either way, and the next
+/// start tries again.
+fn resume_spot_recalls(ws: &Workspace, config: &Config, store: &Store, meta: &WorkspaceMeta) {
+    let env = review::ReviewEnv {
+        ws,
+        config,
+        store,
+        meta,
+        hooks: &review::NoHooks,
+        caller: review::Caller::default(),
+    };
+    match review::resume_spot_recalls(&env) {
+        Ok(done) if !done.is_empty() => {
+            tracing::warn!(
+                recalled = done.len(),
+                "recovery: finished the recall of a spot-check signal"
+            )
+        }
+        Ok(_) => {}
+        Err(e) => {
+            tracing::warn!(error = %e, "recovery: the recall of a spot-check signal failed; retried at the next start")
+        }
+    }
 }
 
 /// Remove the temporary files a killed process left in the folders labelweir writes for others to read

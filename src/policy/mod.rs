@@ -413,6 +413,11 @@ pub struct VendorHistory {
     /// until a reviewer clears it.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub spot_hold: Option<spot::SpotHold>,
+    /// A spot-check signal's recall not finished yet: written with the signal, in the same transaction,
+    /// and cleared once the chart's run is recalled, so that a stop or a crash in between finishes the
+    /// recall at the daemon's next start (`review::resume_spot_recalls`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub spot_recall: Option<spot::PendingRecall>,
 }
 
 /// The accepted values of one signal other than the repair cost, with its CUSUM state (see
@@ -442,6 +447,7 @@ impl Default for VendorHistory {
             evidence: ItemEvidence::default(),
             spot: spot::SpotCharts::default(),
             spot_hold: None,
+            spot_recall: None,
         }
     }
 }

@@ -231,6 +231,16 @@ pub struct SpotHold {
     pub disagreed: u64,
 }
 
+/// The recall a spot-check signal asks for: the batch whose answers signalled and the batches of the
+/// chart's run.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct PendingRecall {
+    /// The batch whose answers raised the signal.
+    pub cause: String,
+    /// The batches to recall (those still accepted are).
+    pub batches: Vec<String>,
+}
+
 /// A vendor's spot-check charts.
 #[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
 #[serde(default)]

@@ -31,7 +31,7 @@ use super::{
     trusted_add, trusted_remove, ReviewEnv, ReviewError, TrustedAddRequest, TrustedRemoveRequest,
 };
 use crate::pipeline::recall::{recall_records, Cause, RECALLED_ON_SPOT_CHECK};
-use crate::policy::spot::{SpotHold, SpotOutcome, Stratum};
+use crate::policy::spot::{PendingRecall, SpotHold, SpotOutcome, Stratum};
 use crate::store::{AuditRecord, BatchState, PoolChange, SpotAnswers};
 
 /// A batch whose spot check waits for the experts.
@@ -216,6 +216,12 @@ pub fn spot_answer(
             if h.spot_hold.is_none() {
                 h.spot_hold.clone_from(&hold);
             }
+            if hold.is_some() {
+                h.spot_recall = Some(PendingRecall {
+                    cause: batch_id.clone(),
+                    batches: o.reach.clone(),
+                });
+            }
             if let Ok(mut s) = seen.lock() {
                 *s = Some((
                     o,
@@ -264,7 +270,7 @@ pub fn spot_answer(
         );
     }
     let recalled = match &hold {
-        Some(hold) => recall_run(env, req, &rec, &outcome, hold)?,
+        Some(hold) => recall_run(env, &req.by, &rec, &outcome.reach, Some(hold))?,
         None => Vec::new(),
     };
     // With `trusted_max` above 0 the answered items join the trusted set under ids no vendor can choose;
@@ -356,13 +362,13 @@ fn expert_labels(
 /// as a stream rule's recall), tell a running daemon the pool changed, count and log it.
 fn recall_run(
     env: &ReviewEnv<'_>,
-    req: &SpotAnswerRequest,
+    actor: &str,
     rec: &crate::store::BatchRecord,
-    outcome: &SpotOutcome,
-    hold: &SpotHold,
+    reach: &[String],
+    hold: Option<&SpotHold>,
 ) -> Result<Vec<String>, ReviewError> {
     let mut targets = Vec::new();
-    for id in &outcome.reach {
+    for id in reach {
         if let Some(r) = env.store.batch(id)? {
             targets.push(r);
         }
@@ -383,8 +389,16 @@ fn recall_run(
         ),
         code: RECALLED_ON_SPOT_CHECK,
     };
-    let recalled = recall_records(env.ws, env.config, env.store, &targets, &cause, &req.by)
+    let recalled = recall_records(env.ws, env.config, env.store, &targets, &cause, actor)
         .map_err(ReviewError::from)?;
+    // Done: the pending recall written with the signal is cleared (a stop before this line finishes it
+    // at the next start, `resume_spot_recalls`; recalling a batch twice does nothing).
+    let cause_id = rec.id.clone();
+    env.store.edit_vendor_history(&rec.vendor, |h| {
+        if h.spot_recall.as_ref().is_some_and(|p| p.cause == cause_id) {
+            h.spot_recall = None;
+        }
+    })?;
     if !recalled.is_empty() {
         env.hooks.pool_changed();
     }
@@ -394,11 +408,32 @@ fn recall_run(
     tracing::warn!(
         vendor = %rec.vendor,
         batch_id = %rec.id,
-        chart = ?hold.stratum,
+        chart = ?hold.map(|h| h.stratum),
         recalled = recalled.len(),
         "spot-check signal: the vendor's batches wait for review (a suspicion, not proof)"
     );
     Ok(recalled)
+}
+
+/// Finish the recalls that spot-check signals asked for and that a stop or a crash interrupted (a
+/// vendor's history still carries its `spot_recall`): each batch of the chart's run still accepted is
+/// recalled, as the answer would have done, and the pending recall is cleared. Run by the daemon at
+/// startup, before it scores anything. Returns the batches recalled.
+pub fn resume_spot_recalls(env: &ReviewEnv<'_>) -> Result<Vec<String>, ReviewError> {
+    let mut all = Vec::new();
+    for vendor in &env.config.vendors {
+        let Some(pending) = env.store.vendor_history(vendor)?.spot_recall else {
+            continue;
+        };
+        let Some(cause) = env.store.batch(&pending.cause)? else {
+            env.store
+                .edit_vendor_history(vendor, |h| h.spot_recall = None)?;
+            continue;
+        };
+        tracing::info!(vendor = %vendor, batch_id = %cause.id, "recovery: finishing the recall a spot-check signal asked for");
+        all.extend(recall_run(env, "daemon", &cause, &pending.batches, None)?);
+    }
+    Ok(all)
 }
 
 /// The trusted-set id of a spot-checked item.

@@ -745,6 +745,7 @@ impl Store {
                             dec("history", k, v).map_err(ConflictableTransactionError::Abort)?;
                         h.spot = cur.spot;
                         h.spot_hold = cur.spot_hold;
+                        h.spot_recall = cur.spot_recall;
                         let v = enc("history", &h).map_err(ConflictableTransactionError::Abort)?;
                         t[T_HISTORY].insert(k.as_slice(), v)?;
                     }

@@ -1,6 +1,8 @@
 //! The store's pool side: the accepted items, the saved pool summary and its epoch, and each vendor's
 //! history.
 
+use sled::transaction::ConflictableTransactionError;
+
 use super::{
     dec, enc, u64_of, AuditRecord, BatchRecord, BatchState, PoolChange, PoolEntry, SavedSummary,
     Store, StoreError, VendorHistory, META_EPOCH, SUMMARY_KEY, T_AUDIT, T_HISTORY, T_META, T_POOL,
@@ -213,6 +215,26 @@ impl Store {
             .map(|v| dec("history", vendor.as_bytes(), &v))
             .transpose()?
             .unwrap_or_default())
+    }
+
+    /// Edit a vendor's history in place (flushed): `edit` runs inside the transaction on the history as
+    /// stored (again if the transaction retries), so nothing another writer put there meanwhile is lost.
+    pub fn edit_vendor_history(
+        &self,
+        vendor: &str,
+        edit: impl Fn(&mut VendorHistory),
+    ) -> Result<(), StoreError> {
+        self.run_tx("edit history", |t| {
+            let mut h: VendorHistory = match t[T_HISTORY].get(vendor.as_bytes())? {
+                Some(v) => dec("history", vendor.as_bytes(), &v)
+                    .map_err(ConflictableTransactionError::Abort)?,
+                None => VendorHistory::default(),
+            };
+            edit(&mut h);
+            let v = enc("history", &h).map_err(ConflictableTransactionError::Abort)?;
+            t[T_HISTORY].insert(vendor.as_bytes(), v)?;
+            Ok(())
+        })
     }
 
     /// Replace a vendor's history (flushed), e.g. after a reviewer resets its drift statistic.

@@ -326,7 +326,13 @@ fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted
             "{e}"
         );
     }
-    drop(d);
+    assert!(d.stop().success());
+    // The recall the signal asked for was done with the answer, so nothing is left pending for the next
+    // start.
+    assert_eq!(
+        ws.store().vendor_history("sorter-co").unwrap().spot_recall,
+        None
+    );
 }
 
 /// With the shipped settings (`trusted_max = 0`) the answers feed the charts but stay out of the trusted
@@ -380,5 +386,64 @@ fn by_default_answers_stay_out_of_the_trusted_set() {
             .as_array()
             .map(Vec::len),
         Some(0)
+    );
+}
+
+/// A stop between a spot-check signal and its recall loses nothing: the recall the signal asks for is
+/// written into the vendor's history with the signal, in one transaction, and a daemon finishes it at its
+/// next start, before it scores anything. The pending recall is planted here as a crash right after the
+/// answer's transaction leaves it (the answer path itself recalls at once, see the test above). Fails
+/// with the startup step left out: both batches stay accepted.
+#[test]
+fn a_recall_cut_short_by_a_stop_is_finished_at_the_next_start() {
+    use labelweir::policy::spot::PendingRecall;
+    use labelweir::store::BatchState;
+    let ws = Ws::new(&["sorter-co"]);
+    let d = Daemon::start(&ws);
+    for w in 0..2u64 {
+        let b = clean_batch(&format!("r{w}-"), 150, 70 + w);
+        ws.deliver("sorter-co", &format!("r{w}.csv"), &b.csv());
+        ws.wait_filed(1 + w as usize, T);
+    }
+    assert!(d.stop().success());
+    let store = ws.store();
+    let ids: Vec<String> = store
+        .batches_in(&[BatchState::Accepted])
+        .unwrap()
+        .iter()
+        .map(|r| r.id.clone())
+        .collect();
+    assert_eq!(ids.len(), 2, "both clean batches accepted");
+    let pending = PendingRecall {
+        cause: ids[1].clone(),
+        batches: ids.clone(),
+    };
+    store
+        .edit_vendor_history("sorter-co", |h| h.spot_recall = Some(pending.clone()))
+        .unwrap();
+    drop(store);
+
+    let d = Daemon::start(&ws);
+    assert!(d.stop().success());
+    let store = ws.store();
+    for id in &ids {
+        let r = store.batch(id).unwrap().unwrap();
+        assert_eq!(r.state, BatchState::Quarantined, "{id} recalled");
+        assert_eq!(
+            r.recalled.as_ref().map(|x| x.held_batch.as_str()),
+            Some(ids[1].as_str()),
+            "{id}: {:?}",
+            r.recalled
+        );
+    }
+    assert_eq!(
+        store.vendor_history("sorter-co").unwrap().spot_recall,
+        None,
+        "the pending recall is cleared once done"
+    );
+    assert_eq!(
+        store.pool_entry_of(&ids[0]).unwrap(),
+        None,
+        "out of the pool"
     );
 }
