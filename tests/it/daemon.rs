@@ -396,9 +396,12 @@ fn a_redelivered_batch_is_a_duplicate() {
 
 #[test]
 fn files_still_being_written_are_left_alone() {
+    // The writer below pauses 700 ms; the quiet period is four times that, so that a test thread
+    // descheduled on a loaded two-core machine (the whole suite runs in parallel) does not stretch the
+    // pause past it (seen once in CI with 1,500 ms: the slow file was read half written).
     let ws = Ws::with(
         &["v1"],
-        &[("quiet_period_ms = 150", "quiet_period_ms = 1500")],
+        &[("quiet_period_ms = 150", "quiet_period_ms = 3000")],
     );
     let d = Daemon::start(&ws);
     let inbox = ws.path("inbox/v1");
