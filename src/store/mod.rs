@@ -755,16 +755,7 @@ impl Store {
                 }
             }
             if let Some(f) = history_edit {
-                let key = record.vendor.as_bytes();
-                let mut h: VendorHistory = match t[T_HISTORY].get(key)? {
-                    Some(v) => {
-                        dec("history", key, &v).map_err(ConflictableTransactionError::Abort)?
-                    }
-                    None => VendorHistory::default(),
-                };
-                f(&mut h);
-                let v = enc("history", &h).map_err(ConflictableTransactionError::Abort)?;
-                t[T_HISTORY].insert(key, v)?;
+                edit_history_in(&t[T_HISTORY], &record.vendor, f)?;
             }
             if let Some((k, v)) = &assessment {
                 t[T_ASSESS].insert(k.as_slice(), v.as_slice())?;
@@ -913,6 +904,24 @@ impl Store {
 /// A check on a batch's record as stored, run inside a transition's transaction: `Some(why)` refuses
 /// the transition ([`StoreError::Refused`]).
 pub(crate) type Refusal<'a> = dyn Fn(&BatchRecord) -> Option<String> + 'a;
+
+/// Edit a vendor's history as stored (the default history when there is none), inside a transaction on
+/// the history tree.
+pub(crate) fn edit_history_in(
+    tree: &TransactionalTree,
+    vendor: &str,
+    edit: &dyn Fn(&mut VendorHistory),
+) -> TxResult<()> {
+    let key = vendor.as_bytes();
+    let mut h: VendorHistory = match tree.get(key)? {
+        Some(v) => dec("history", key, &v).map_err(ConflictableTransactionError::Abort)?,
+        None => VendorHistory::default(),
+    };
+    edit(&mut h);
+    let v = enc("history", &h).map_err(ConflictableTransactionError::Abort)?;
+    tree.insert(key, v)?;
+    Ok(())
+}
 
 fn conflict(rec: &BatchRecord, expect: &[BatchState]) -> StoreError {
     StoreError::Conflict {

@@ -1,8 +1,6 @@
 //! The store's pool side: the accepted items, the saved pool summary and its epoch, and each vendor's
 //! history.
 
-use sled::transaction::ConflictableTransactionError;
-
 use super::{
     dec, enc, u64_of, AuditRecord, BatchRecord, BatchState, PoolChange, PoolEntry, SavedSummary,
     Store, StoreError, VendorHistory, META_EPOCH, SUMMARY_KEY, T_AUDIT, T_HISTORY, T_META, T_POOL,
@@ -225,15 +223,7 @@ impl Store {
         edit: impl Fn(&mut VendorHistory),
     ) -> Result<(), StoreError> {
         self.run_tx("edit history", |t| {
-            let mut h: VendorHistory = match t[T_HISTORY].get(vendor.as_bytes())? {
-                Some(v) => dec("history", vendor.as_bytes(), &v)
-                    .map_err(ConflictableTransactionError::Abort)?,
-                None => VendorHistory::default(),
-            };
-            edit(&mut h);
-            let v = enc("history", &h).map_err(ConflictableTransactionError::Abort)?;
-            t[T_HISTORY].insert(vendor.as_bytes(), v)?;
-            Ok(())
+            super::edit_history_in(&t[T_HISTORY], vendor, &edit)
         })
     }
 
