@@ -393,6 +393,11 @@ pub struct TrustedAudit {
     pub mean_repair_weight: f64,
     /// Batch items whose repair weight the audit raised above `base + 0.1`.
     pub items_reweighted: usize,
+    /// The sharpness `α` of the trusted neighbours' labels model, chosen by the trusted items'
+    /// leave-one-out likelihood (`crate::model::neighbours`; 0 with too few trusted items, and in records
+    /// written before it existed): high where the verified classes lie well apart.
+    #[serde(default)]
+    pub neighbour_sharpness: f64,
     /// The audit in one sentence.
     pub summary: String,
 }
@@ -545,6 +550,7 @@ pub(super) fn trusted_audit(
             base_repair_weight: base,
             mean_repair_weight: mean_w,
             items_reweighted: raised,
+            neighbour_sharpness: 0.0,
             summary,
         },
     )

@@ -35,6 +35,7 @@ pub mod features;
 pub mod kron;
 pub mod learner;
 pub mod linalg;
+mod neighbours;
 pub mod repair;
 pub mod stories;
 pub mod summary;

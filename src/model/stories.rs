@@ -182,6 +182,7 @@ mod tests {
             repair_label: proposed,
             learner_doubt: 1.0 - suspicion,
             anchored_doubt: 0.0,
+            neighbour_doubt: 0.0,
             repair_weight: 0.2,
             wrong_probability: 0.0,
             reference_margin: 0.0,

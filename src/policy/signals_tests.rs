@@ -28,6 +28,7 @@ fn item(index: usize, label: usize, suspicion: f64, label_fit: LabelFit) -> Item
         repair_label: label,
         learner_doubt: suspicion,
         anchored_doubt: 0.0,
+        neighbour_doubt: 0.0,
         repair_weight: 0.2,
         wrong_probability: suspicion,
         reference_margin: 0.0,

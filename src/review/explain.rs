@@ -372,6 +372,15 @@ pub fn signal_notes(rec: &BatchRecord, assessment: Option<&Assessment>) -> Vec<S
         "One minus the probability of the item's label under the model fitted together with the trusted items, weighted up: doubt that holds even where the pool is biased.",
     ));
     v.push(note(
+        "trusted neighbours' doubt",
+        if a.trusted_audit.neighbour_sharpness > 0.0 {
+            format!("per item, 0 to 1 (sharpness {})", a.trusted_audit.neighbour_sharpness)
+        } else {
+            "per item, 0 to 1".into()
+        },
+        "One minus the share the verified items nearest to the item give its label, each class weighed by how close its nearest verified item lies: no model in between, so a bias the pool or the batch has taught the model does not hide it. It counts, beside the trusted-anchored doubt (whichever is larger), where the repair weight is raised.",
+    ));
+    v.push(note(
         "repair weight",
         format!(
             "mean {:.2} (base {:.2}); raised for {} items",
@@ -379,7 +388,7 @@ pub fn signal_notes(rec: &BatchRecord, assessment: Option<&Assessment>) -> Vec<S
             a.trusted_audit.base_repair_weight,
             a.trusted_audit.items_reweighted
         ),
-        "How much an item's suspicion leans on the repair evidence rather than on the reference model. The trusted audit raises it near trusted items the reference model gets wrong.",
+        "How much an item's suspicion leans on the trusted evidence (the repair signal, the trusted-anchored doubt, the trusted neighbours' doubt) rather than on the reference model. The trusted audit raises it near trusted items the reference model gets wrong.",
     ));
     v.push(note(
         "trusted audit",

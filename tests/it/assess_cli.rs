@@ -578,6 +578,9 @@ fn hostile_numbers_give_finite_output_not_a_crash() {
             "repair_mass",
             "repair_signal",
             "learner_doubt",
+            "anchored_doubt",
+            "neighbour_doubt",
+            "wrong_probability",
             "repair_weight",
         ] {
             let v = num(&it[key]);

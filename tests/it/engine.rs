@@ -1192,8 +1192,8 @@ fn bench_engine_quick_json_reports_every_attack_and_baseline() {
             }
             assert_eq!(
                 methods.len(),
-                7,
-                "engine, three signals alone, two baselines, the ceiling"
+                8,
+                "engine, four signals alone, two baselines, the ceiling"
             );
             for m in methods {
                 for key in ["auroc", "average_precision", "precision_at_half_recall"] {

@@ -531,6 +531,7 @@ fn show_explains_the_signals_and_keeps_accepted_batches_apart_from_held_ones() {
         "repair signal",
         "reference model's doubt",
         "trusted-anchored doubt",
+        "trusted neighbours' doubt",
         "repair weight",
         "trusted audit",
         "labeled paper, proposed cardboard",

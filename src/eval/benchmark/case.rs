@@ -365,6 +365,13 @@ fn score_methods(
         &proposed,
         truth,
     ));
+    methods.push(method_score(
+        METHODS[4],
+        &col(|i| i.neighbour_doubt),
+        positive,
+        &proposed,
+        truth,
+    ));
     let nt: BaselineScores = nearest_trusted(
         st,
         k,
@@ -374,7 +381,7 @@ fn score_methods(
         delivered,
     )?;
     methods.push(method_score(
-        METHODS[4],
+        METHODS[5],
         &nt.score,
         positive,
         &nt.proposed,
@@ -392,7 +399,7 @@ fn score_methods(
         seed ^ 0xC5,
     )?;
     methods.push(method_score(
-        METHODS[5],
+        METHODS[6],
         &cv.score,
         positive,
         &cv.proposed,

@@ -11,9 +11,9 @@
 //!    batch; on the plant also a sub-population flip (a vendor who labels wet cardboard as paper). The clean
 //!    batch is assessed too.
 //! 3. **Score.** The engine ([`crate::model::assess`], incremental mode against a pool summary, exactly
-//!    what the daemon does) and the two [`super::baselines`] score every batch item; the engine's three
-//!    signals are also ranked alone (ablation): the repair path (`path_score`), the reference model
-//!    (`reference_disagreement`) and their combination (`suspicion`). A [`CEILING`] row — the learner given
+//!    what the daemon does) and the two [`super::baselines`] score every batch item; besides the fused
+//!    `suspicion`, each of the engine's signals is ranked alone (ablation): the repair signal, the
+//!    learner's doubt, the trusted-anchored doubt and the trusted neighbours' doubt. A [`CEILING`] row — the learner given
 //!    the batch's true labels — shows what any detector or proposer built on this learner can reach.
 //! 4. **Measure.** Item-level AUROC, average precision, precision at recall ½ and proposed-label accuracy
 //!    among the top `k` ([`super::metrics`]); the batch's repair cost, damage and the default policy's
@@ -203,11 +203,12 @@ impl MethodScore {
 }
 
 /// The engine's own methods, the baselines and the ceiling, in table order.
-pub const METHODS: [&str; 7] = [
+pub const METHODS: [&str; 8] = [
     "labelweir (suspicion)",
     "  repair signal alone",
     "  learner doubt alone",
     "  trusted-anchored doubt alone",
+    "  trusted neighbours' doubt alone",
     "nearest trusted (baseline)",
     "cross-validated loss (baseline)",
     CEILING,

@@ -87,8 +87,9 @@ fn case(attack: Attack, engine: (f64, f64), baselines: [(f64, f64); 2]) -> CaseR
             m(METHODS[1], engine),
             m(METHODS[2], engine),
             m(METHODS[3], engine),
-            m(METHODS[4], baselines[0]),
-            m(METHODS[5], baselines[1]),
+            m(METHODS[4], engine),
+            m(METHODS[5], baselines[0]),
+            m(METHODS[6], baselines[1]),
             m(CEILING, (1.0, 1.0)),
         ],
     }

@@ -17,6 +17,7 @@ use super::{
 };
 use crate::model::anchor::{anchored_model, anchored_path, trusted_audit, AnchoredPath};
 use crate::model::learner::{one_hot, predict_proba, trusted_loss};
+use crate::model::neighbours::{neighbour_model, NeighbourModel};
 use crate::model::{check_labels, FeatureMap, ModelError, ModelSettings, Standardizer};
 
 /// The checked inputs of an assessment in the learner's feature space.
@@ -323,6 +324,8 @@ struct TrustedEvidence {
     weights_by_class: Array2<f64>,
     /// The configured base repair weight for this reference.
     base_weight: f64,
+    /// The trusted neighbours' labels model for the batch items.
+    neighbours: NeighbourModel,
     /// The audit itself.
     trusted_audit: crate::model::TrustedAudit,
 }
@@ -340,6 +343,7 @@ impl TrustedEvidence {
             p_anchor: &self.p_anchor,
             anchored: &self.anchored,
             repair_weights: &self.repair_weights,
+            neighbours: &self.neighbours,
             base_weight: self.base_weight,
             repair_mass,
             big_pool,
@@ -408,12 +412,19 @@ fn trusted_evidence(
         settings.trusted_neighbours,
         audited,
     );
+    // What the verified items near each batch item say, with no learner in between.
+    let neighbours = neighbour_model(phi_t.view(), trusted.y, phi_b.view(), k);
+    let trusted_audit = crate::model::TrustedAudit {
+        neighbour_sharpness: neighbours.sharpness,
+        ..trusted_audit
+    };
     TrustedEvidence {
         anchored,
         p_anchor,
         repair_weights: weights.given,
         weights_by_class: weights.by_class,
         base_weight,
+        neighbours,
         trusted_audit,
     }
 }
@@ -437,11 +448,13 @@ fn damage_or_unknown(ctx: &Ctx<'_>, damage: f64, deadline: Instant) -> (f64, Vec
 /// are taken to follow the pool's labels model (`PoolSummary::labels_model`: the pool model as fitted from
 /// unselected stored items, or the model of the items of accepted batches as delivered for a pool that was
 /// never fitted from items; `p_ref` while the pool is not the reference or has neither), sharpened by the measured
-/// sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on (the expected items in
-/// doubt, at `[model] flag_threshold`); the batch's flag line (`Assessment::flag_line`, from
-/// `flag_threshold` and `clean_flag_rate`, against the same distribution), at which each item's proposed
-/// label is set; and each item's [`LabelFit`] term against the same distribution (set on `items`, in
-/// batch order).
+/// sharpness ([`reference_sharpness`]) when `[model] calibrate_clean_level` is on, and moved toward the
+/// trusted neighbours' labels where the trusted audit distrusts the reference ([`toward_neighbours`])
+/// (the expected items in doubt, at `[model] flag_threshold`); the batch's flag line
+/// (`Assessment::flag_line`, from `flag_threshold` and `clean_flag_rate`, against the same distribution),
+/// at which each item's proposed label is set; and each item's [`LabelFit`] term against the sharpened
+/// labels model alone (set on `items`, in batch order; the label fit asks how well the reference model
+/// itself expects the given labels).
 #[allow(clippy::too_many_arguments)]
 fn clean_expectation(
     settings: &ModelSettings,
@@ -471,16 +484,22 @@ fn clean_expectation(
         p_fit.as_ref().unwrap_or(&refm.p_ref).view(),
         sharpness.applied,
     );
+    // Where the trusted audit distrusts the reference, the right labels lean toward what the verified
+    // items nearby say (`toward_neighbours`): otherwise a reference that learned a vendor's bias would
+    // expect the biased labels, the neighbours' doubt of them would count as clean, and the clean level
+    // would rise with the bias itself (measured: DEVELOPERS.md, "The trusted neighbours").
+    let p_flag = toward_neighbours(&p_label, ev);
     let rule = FlagRule {
         p_ref: &refm.p_ref,
         p_anchor: &ev.p_anchor,
         weights_by_class: &ev.weights_by_class,
+        neighbours: Some(&ev.neighbours),
         base_weight: ev.base_weight,
         threshold: settings.flag_threshold,
     };
     let line = flag_line(
         &rule,
-        &p_label,
+        &p_flag,
         settings.flag_threshold,
         settings.clean_flag_rate,
     );
@@ -495,7 +514,7 @@ fn clean_expectation(
             it.label_fit = fit;
         }
     }
-    (sharpness, line, expected_flagged(&rule, &p_label))
+    (sharpness, line, expected_flagged(&rule, &p_flag))
 }
 
 /// Each item's [`LabelFit`] term: its given label under `p_ref` (floored at `1e-4`), against a label
@@ -548,9 +567,63 @@ fn reference_sharpness(
     Sharpness::combine(pool_fit, trusted_fit, "too few items to measure it")
 }
 
+/// The right labels' distribution moved toward the trusted neighbours' labels model where the trusted
+/// audit distrusts the reference: `p̃′_j = (1 − λ_j) p̃_j + λ_j p_N,j`, `λ_j = min_c w_jc − b` (the weight
+/// the audit adds near item `j` whatever its label, so that no delivered label moves it; 0 where the
+/// audit finds the reference sound, leaving `p̃` as it was). Rows stay distributions (convex mixtures).
+fn toward_neighbours(p_label: &Array2<f64>, ev: &TrustedEvidence) -> Array2<f64> {
+    mix_toward(
+        p_label,
+        &ev.weights_by_class,
+        ev.base_weight,
+        &ev.neighbours.p,
+    )
+}
+
+/// `p̃′` of [`toward_neighbours`] from its parts: `weights_by_class` (`w_jc`), `base` (`b`) and `p_n`.
+fn mix_toward(
+    p_label: &Array2<f64>,
+    weights_by_class: &Array2<f64>,
+    base: f64,
+    p_n: &Array2<f64>,
+) -> Array2<f64> {
+    let mut out = p_label.clone();
+    for (j, mut row) in out.rows_mut().into_iter().enumerate() {
+        let w = weights_by_class
+            .row(j)
+            .iter()
+            .copied()
+            .fold(f64::INFINITY, f64::min);
+        let lambda = (w - base).clamp(0.0, 1.0);
+        for (c, v) in row.iter_mut().enumerate() {
+            *v = (1.0 - lambda) * *v + lambda * p_n[[j, c]];
+        }
+    }
+    out
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+    use ndarray::array;
+
+    /// Worked by hand: item 0's weights are all at the base (λ = 0, `p̃` kept); item 1's least weight is
+    /// 0.6 against a base of 0.2 (λ = 0.4: 0.6 · [0.9, 0.1] + 0.4 · [0.2, 0.8] = [0.62, 0.38]), whatever
+    /// its class-1 weight of 0.9 (the label the vendor gave cannot move it).
+    #[test]
+    fn the_right_labels_lean_toward_the_neighbours_by_the_weight_the_audit_adds_for_every_label() {
+        let p = array![[0.7, 0.3], [0.9, 0.1]];
+        let w = array![[0.2, 0.2], [0.6, 0.9]];
+        let p_n = array![[0.1, 0.9], [0.2, 0.8]];
+        let got = mix_toward(&p, &w, 0.2, &p_n);
+        let want = array![[0.7, 0.3], [0.62, 0.38]];
+        for (g, w) in got.iter().zip(want.iter()) {
+            assert!((g - w).abs() < 1e-12, "{got:?}");
+        }
+        for row in got.rows() {
+            assert!((row.sum() - 1.0).abs() < 1e-12);
+        }
+    }
 
     /// [`label_fits`] worked by hand on two items (natural logarithms to five places). Item 0, label 1,
     /// `p = (0.7, 0.2, 0.1)` for both the reference and the right labels: `ℓ = ln 0.2 = −1.60944`,

@@ -7,6 +7,7 @@ use ndarray::{Array1, Array2, ArrayView2};
 use super::{argmax, ItemScore, TrustedItemReport};
 use crate::model::anchor::AnchoredPath;
 use crate::model::learner::predict_proba;
+use crate::model::neighbours::NeighbourModel;
 use crate::model::ModelSettings;
 
 /// The per-item evidence the fusion reads.
@@ -19,6 +20,8 @@ pub(crate) struct Evidence<'a> {
     pub(crate) anchored: &'a AnchoredPath,
     /// Repair weight per item, from the trusted audit.
     pub(crate) repair_weights: &'a [f64],
+    /// The trusted neighbours' labels model `p_N`.
+    pub(crate) neighbours: &'a NeighbourModel,
     /// The configured base weight (where the audit finds the reference sound).
     pub(crate) base_weight: f64,
     /// Moved mass per item at the repair-cost point.
@@ -31,9 +34,17 @@ pub(crate) struct Evidence<'a> {
 ///
 /// The suspicion fuses the repair signal (the published objective's path) with the learner's doubt, item
 /// by item, with the weight the trusted audit gives the repair there: the configured base weight where the
-/// reference model is sound on the nearby trusted items and of the item's class, more where it is not. The
-/// best alternative class comes from the blend `q_j = w_j ρ_j + (1 − w_j) p_ref,j` of the repair's
-/// path-averaged relaxed label and the reference prediction.
+/// reference model is sound on the nearby trusted items and of the item's class, more where it is not:
+///
+/// `s_j = b·r_j + (w_j − b)⁺ · max(1 − p_A(ŷ_j), 1 − p_N(ŷ_j)) + (1 − w_j)(1 − p_ref(ŷ_j))`,
+///
+/// `r_j` the repair's own signal, `p_A` the trusted-anchored model, `p_N` the trusted neighbours' labels
+/// model ([`crate::model::neighbours`]). What the audit adds above the base goes to the trusted evidence:
+/// the larger of the two doubts, because a model anchored on the trusted items but trained beside a
+/// biased pool can learn the bias too, while the verified items near the item cannot. The best
+/// alternative class comes from the blend `q_j = b ρ_j + (w_j − b) p_N,j + (1 − w_j) p_ref,j` of the
+/// repair's path-averaged relaxed label, the neighbours' labels and the reference prediction (`b` capped
+/// at `w_j`).
 pub(crate) fn score_items(
     settings: &ModelSettings,
     batch_y: &[usize],
@@ -46,8 +57,11 @@ pub(crate) fn score_items(
         let mut q = p_ref.clone();
         for (j, mut row) in q.rows_mut().into_iter().enumerate() {
             let w = ev.repair_weights[j];
+            let b = ev.base_weight.min(w);
             for c in 0..k {
-                row[c] = w * anchored.mean_labels[[j, c]] + (1.0 - w) * row[c];
+                row[c] = b * anchored.mean_labels[[j, c]]
+                    + (w - b) * ev.neighbours.p[[j, c]]
+                    + (1.0 - w) * row[c];
             }
         }
         q
@@ -69,8 +83,9 @@ pub(crate) fn score_items(
             // serves best there: under the pool reference the mass the minimal repair moves at the target
             // crossing (the items the post-condition needs relabelled; the pool model orders the rest better
             // than any path does), under a cross-fit the published path's rank. What the audit adds above
-            // the base goes to the trusted-anchored doubt, which leans on the trusted set where the
-            // reference model has learned a bias.
+            // the base goes to the trusted evidence (the trusted-anchored doubt or the neighbours' doubt,
+            // whichever is larger), which leans on the trusted set where the reference model has learned
+            // a bias.
             let w = ev.repair_weights[i];
             let base_signal = if ev.big_pool {
                 ev.repair_mass[i]
@@ -78,8 +93,9 @@ pub(crate) fn score_items(
                 anchored.score[i]
             };
             let anchored_doubt = (1.0 - ev.p_anchor[[i, given]]).clamp(0.0, 1.0);
+            let neighbour_doubt = ev.neighbours.doubt(i, given);
             let suspicion = (ev.base_weight * base_signal
-                + (w - ev.base_weight).max(0.0) * anchored_doubt
+                + (w - ev.base_weight).max(0.0) * anchored_doubt.max(neighbour_doubt)
                 + (1.0 - w) * disagreement)
                 .clamp(0.0, 1.0);
             let pi = blend.row(i);
@@ -115,6 +131,7 @@ pub(crate) fn score_items(
                 repair_label,
                 learner_doubt: disagreement,
                 anchored_doubt,
+                neighbour_doubt,
                 repair_weight: w,
                 wrong_probability: p_wrong[i],
                 reference_margin: margin(p_ref.row(i)),
@@ -143,12 +160,13 @@ fn margin(p: ndarray::ArrayView1<'_, f64>) -> f64 {
 
 /// The fusion's flag rule as the clean level reads it: for item `j` carrying label `c`,
 ///
-/// `flag_j(c) = 1[(w_jc − b)⁺ (1 − p_A,jc) + (1 − w_jc)(1 − p_ref,jc) ≥ τ]`,
+/// `flag_j(c) = 1[(w_jc − b)⁺ max(1 − p_A,jc, 1 − p_N,jc) + (1 − w_jc)(1 − p_ref,jc) ≥ τ]`,
 ///
 /// the suspicion of [`score_items`] with the repair's own share `b · s_j` taken as 0: a batch carrying the
 /// right labels asks the minimal repair to move nothing (its cost point is where the target is already
 /// met). `w_jc` is the weight the trusted audit would give item `j` with label `c` (the neighbourhood's
-/// excess is the item's, the class excesses are `c`'s), `p_A` the trusted-anchored model's probabilities.
+/// excess is the item's, the class excesses are `c`'s), `p_A` the trusted-anchored model's probabilities,
+/// `p_N` the trusted neighbours' (read as no doubt, `1 − p_N = 0`, where `neighbours` is `None`).
 pub(crate) struct FlagRule<'a> {
     /// Reference probabilities `p_ref`.
     pub(crate) p_ref: &'a Array2<f64>,
@@ -156,6 +174,8 @@ pub(crate) struct FlagRule<'a> {
     pub(crate) p_anchor: &'a Array2<f64>,
     /// `w_jc` (`n_B × K`).
     pub(crate) weights_by_class: &'a Array2<f64>,
+    /// `p_N`, or `None` for a rule without the neighbours' doubt.
+    pub(crate) neighbours: Option<&'a NeighbourModel>,
     /// The base weight `b`.
     pub(crate) base_weight: f64,
     /// The flag threshold `τ`.
@@ -163,10 +183,14 @@ pub(crate) struct FlagRule<'a> {
 }
 
 impl FlagRule<'_> {
-    /// The rule's suspicion of item `j` carrying label `c`: `(w_jc − b)⁺ (1 − p_A,jc) + (1 − w_jc)(1 − p_ref,jc)`.
+    /// The rule's suspicion of item `j` carrying label `c`:
+    /// `(w_jc − b)⁺ max(1 − p_A,jc, 1 − p_N,jc) + (1 − w_jc)(1 − p_ref,jc)`.
     fn score(&self, j: usize, c: usize) -> f64 {
         let w = self.weights_by_class[[j, c]];
-        let anchored = (1.0 - self.p_anchor[[j, c]]).clamp(0.0, 1.0);
+        let neighbours = self.neighbours.map_or(0.0, |n| n.doubt(j, c));
+        let anchored = (1.0 - self.p_anchor[[j, c]])
+            .clamp(0.0, 1.0)
+            .max(neighbours);
         let learner = (1.0 - self.p_ref[[j, c]]).clamp(0.0, 1.0);
         (w - self.base_weight).max(0.0) * anchored + (1.0 - w) * learner
     }
@@ -341,6 +365,7 @@ mod tests {
             p_ref: &p,
             p_anchor: &sure,
             weights_by_class: &w,
+            neighbours: None,
             base_weight: 0.0,
             threshold: 0.5,
         };
@@ -372,6 +397,27 @@ mod tests {
         for (got, want) in by.iter().zip([0.05, 0.25, 0.2]) {
             assert!((got - want).abs() < 1e-12, "{by:?}");
         }
+        // The trusted neighbours naming class 1 for item 1 (p_N = [0.1, 0.8, 0.1]), undecided elsewhere
+        // (1/3 each): item 1's class 0 now scores 0.2 · max(0, 0.9) + 0.8 · 0.55 = 0.62 ≥ 0.5 and adds
+        // 0.45; its class 1 gives 0.2 · 0.2 + 0.44 = 0.48 and stays unflagged; item 2's class 2 gives
+        // 0.5 · max(0.2, 2/3) + 0.05 ≈ 0.383, still unflagged; item 0 has no weight above the base.
+        let third = 1.0 / 3.0;
+        let nn = NeighbourModel {
+            p: ndarray::array![
+                [third, third, third],
+                [0.1, 0.8, 0.1],
+                [third, third, third]
+            ],
+            sharpness: 1.0,
+        };
+        let with_nn = FlagRule {
+            neighbours: Some(&nn),
+            ..rule
+        };
+        let (_, _, by) = expected_flagged(&with_nn, &p);
+        for (got, want) in by.iter().zip([0.5, 0.25, 0.2]) {
+            assert!((got - want).abs() < 1e-12, "{by:?}");
+        }
     }
 
     /// The flag line worked by hand: two items, two classes, no repair weight, so the rule's suspicion is
@@ -389,6 +435,7 @@ mod tests {
             p_ref: &p,
             p_anchor: &sure,
             weights_by_class: &w,
+            neighbours: None,
             base_weight: 0.0,
             threshold: 0.5,
         };
@@ -416,6 +463,7 @@ mod tests {
             p_ref: &none,
             p_anchor: &none,
             weights_by_class: &none,
+            neighbours: None,
             base_weight: 0.0,
             threshold: 0.5,
         };
@@ -439,6 +487,7 @@ mod tests {
             repair_label: 2,
             learner_doubt: suspicion,
             anchored_doubt: 0.0,
+            neighbour_doubt: 0.0,
             repair_weight: 0.0,
             wrong_probability: 0.0,
             reference_margin: 0.0,

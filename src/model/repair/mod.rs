@@ -96,6 +96,12 @@ pub struct ItemScore {
     /// items (weighted `anchor_confidence`) and to pool ∪ batch as delivered.
     #[serde(default)]
     pub anchored_doubt: f64,
+    /// The trusted neighbours' doubt: `1 − p_N(given label)`, what the verified items nearest to this
+    /// item say, with no learner in between ([`crate::model::neighbours`]: each class weighted by the
+    /// distance to its nearest trusted item). It counts where the trusted audit has raised the repair
+    /// weight (0 in records written before it existed).
+    #[serde(default)]
+    pub neighbour_doubt: f64,
     /// Weight of the repair evidence in this item's blend, set by the trusted audit of the reference model
     /// near the item (the base weight where the reference model is sound on the nearby trusted items).
     #[serde(default)]
