@@ -419,13 +419,16 @@ fn weight_of_excess(base: f64, x: f64) -> f64 {
 }
 
 /// Per-item repair weights from the trusted audit of the model `theta_audit`, and the audit record.
+/// `d_bt`: the squared distances from each batch item to each trusted item in the learner's feature space
+/// (`crate::model::neighbours::squared_distances`, computed once per batch for the audit and the
+/// trusted neighbours alike).
 #[allow(clippy::too_many_arguments)]
 pub(super) fn trusted_audit(
     phi_t: ArrayView2<'_, f64>,
     y_t: &[usize],
     c_t: ArrayView1<'_, f64>,
     theta_audit: &Array1<f64>,
-    phi_b: ArrayView2<'_, f64>,
+    d_bt: ArrayView2<'_, f64>,
     given: &[usize],
     k: usize,
     base: f64,
@@ -499,15 +502,12 @@ pub(super) fn trusted_audit(
     let pred_excess = group_excess(&by_pred, &pred_count);
     // Squared distances in the learner's feature space (standardised features, plus an intercept column
     // that is the same for every row and cancels).
-    let norm_t: Vec<f64> = phi_t.rows().into_iter().map(|r| r.dot(&r)).collect();
-    let mut weights = Vec::with_capacity(phi_b.nrows());
-    let mut by_class = Array2::zeros((phi_b.nrows(), k));
-    let cross = phi_b.dot(&phi_t.t());
+    let mut weights = Vec::with_capacity(d_bt.nrows());
+    let mut by_class = Array2::zeros((d_bt.nrows(), k));
     let mut order: Vec<(f64, usize)> = Vec::with_capacity(m);
-    for (j, row) in phi_b.rows().into_iter().enumerate() {
-        let nb = row.dot(&row);
+    for (j, row) in d_bt.rows().into_iter().enumerate() {
         order.clear();
-        order.extend((0..m).map(|t| (nb + norm_t[t] - 2.0 * cross[[j, t]], t)));
+        order.extend(row.iter().copied().zip(0..m));
         let kth = kappa.min(order.len()) - 1;
         order.select_nth_unstable_by(kth, |a, b| a.0.total_cmp(&b.0));
         let (s, w) = order[..=kth].iter().fold((0.0, 0.0), |(s, w), &(_, t)| {

@@ -55,8 +55,9 @@ impl NeighbourModel {
     }
 }
 
-/// Squared Euclidean distances between the rows of `a` and of `b`.
-fn squared_distances(a: ArrayView2<'_, f64>, b: ArrayView2<'_, f64>) -> Array2<f64> {
+/// Squared Euclidean distances between the rows of `a` and of `b`: `‖a_i‖² + ‖b_j‖² − 2 a_i·b_j`, floored
+/// at 0 (rounding).
+pub(crate) fn squared_distances(a: ArrayView2<'_, f64>, b: ArrayView2<'_, f64>) -> Array2<f64> {
     let na: Vec<f64> = a.rows().into_iter().map(|r| r.dot(&r)).collect();
     let nb: Vec<f64> = b.rows().into_iter().map(|r| r.dot(&r)).collect();
     let mut d = a.dot(&b.t());
@@ -110,15 +111,16 @@ fn probabilities(log_d: &[Option<f64>], alpha: f64, out: &mut [f64]) {
     }
 }
 
-/// The trusted neighbours' labels model for the batch items `phi_b`, from the trusted items `phi_t`
-/// (the learner's feature space) and their verified labels `y_t` (module docs).
+/// The trusted neighbours' labels model for the batch items, from the trusted items `phi_t` (the
+/// learner's feature space), their verified labels `y_t` and `d_bt`, the squared distances from each batch
+/// item to each trusted item ([`squared_distances`]; module docs).
 pub(crate) fn neighbour_model(
     phi_t: ArrayView2<'_, f64>,
     y_t: &[usize],
-    phi_b: ArrayView2<'_, f64>,
+    d_bt: ArrayView2<'_, f64>,
     k: usize,
 ) -> NeighbourModel {
-    let (m, n_b) = (y_t.len(), phi_b.nrows());
+    let (m, n_b) = (y_t.len(), d_bt.nrows());
     if m < 2 || k < 2 || y_t.iter().any(|&c| c >= k) {
         return NeighbourModel::uniform(n_b, k);
     }
@@ -140,7 +142,6 @@ pub(crate) fn neighbour_model(
         .map(|&a| (a, loo_log_likelihood(a)))
         .max_by(|a, b| a.1.total_cmp(&b.1))
         .map_or(1.0, |(a, _)| a);
-    let d_bt = squared_distances(phi_b, phi_t);
     let mut probs = Array2::zeros((n_b, k));
     let mut row = vec![0.0; k];
     for j in 0..n_b {
@@ -181,7 +182,12 @@ mod tests {
         // 9: the ratio rises with x, and so must the doubt, whatever α the leave-one-out picks.
         let t = array![[0.0], [1.0], [10.0], [11.0]];
         let b = array![[2.0], [6.0], [9.0]];
-        let model = neighbour_model(t.view(), &[0, 0, 1, 1], b.view(), 2);
+        let model = neighbour_model(
+            t.view(),
+            &[0, 0, 1, 1],
+            squared_distances(b.view(), t.view()).view(),
+            2,
+        );
         let d: Vec<f64> = (0..3).map(|j| model.doubt(j, 0)).collect();
         assert!(d[0] < d[1] && d[1] < d[2], "{d:?}");
         assert!(d[0] < 0.5 && d[2] > 0.5, "{d:?}");
@@ -195,7 +201,12 @@ mod tests {
     fn rows_are_distributions_and_separated_classes_are_sharp() {
         let t = array![[0.0, 0.0], [0.0, 1.0], [5.0, 0.0], [5.0, 1.0]];
         let b = array![[0.1, 0.0], [2.5, 0.5], [4.0, 0.5]];
-        let model = neighbour_model(t.view(), &[0, 0, 1, 1], b.view(), 3);
+        let model = neighbour_model(
+            t.view(),
+            &[0, 0, 1, 1],
+            squared_distances(b.view(), t.view()).view(),
+            3,
+        );
         for row in model.p.rows() {
             assert!((row.sum() - 1.0).abs() < 1e-12);
             assert!(row.iter().all(|&v| v >= FLOOR / 3.0 - 1e-15));
@@ -213,7 +224,9 @@ mod tests {
     /// Too little trusted evidence: uniform, no sharpness.
     #[test]
     fn one_trusted_item_says_nothing() {
-        let model = neighbour_model(array![[0.0]].view(), &[1], array![[3.0], [4.0]].view(), 3);
+        let t = array![[0.0]];
+        let d = squared_distances(array![[3.0], [4.0]].view(), t.view());
+        let model = neighbour_model(t.view(), &[1], d.view(), 3);
         assert!(model.p.iter().all(|&v| (v - 1.0 / 3.0).abs() < 1e-12));
         assert_eq!(model.sharpness, 0.0);
     }

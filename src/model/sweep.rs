@@ -152,12 +152,13 @@ impl SweepScorer {
         let phi = self.summary_map.apply(x)?;
         let p_pool = predict_proba(phi.view(), &self.theta_pool, self.k);
         let p_anchor = predict_proba(phi.view(), &self.theta_anchor, self.k);
+        let d_bt = crate::model::neighbours::squared_distances(phi.view(), self.phi_t.view());
         let (weights, audit) = trusted_audit(
             self.phi_t.view(),
             &self.y_t,
             self.c_t.view(),
             &self.theta_pool,
-            phi.view(),
+            d_bt.view(),
             y,
             self.k,
             self.base_weight,

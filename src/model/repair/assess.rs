@@ -17,7 +17,7 @@ use super::{
 };
 use crate::model::anchor::{anchored_model, anchored_path, trusted_audit, AnchoredPath};
 use crate::model::learner::{one_hot, predict_proba, trusted_loss};
-use crate::model::neighbours::{neighbour_model, NeighbourModel};
+use crate::model::neighbours::{neighbour_model, squared_distances, NeighbourModel};
 use crate::model::{check_labels, FeatureMap, ModelError, ModelSettings, Standardizer};
 
 /// The checked inputs of an assessment in the learner's feature space.
@@ -400,12 +400,15 @@ fn trusted_evidence(
     } else {
         settings.repair_weight
     };
+    // Squared distances from each batch item to each trusted item, for the audit's neighbourhoods and the
+    // trusted neighbours' labels model alike.
+    let d_bt = squared_distances(phi_b.view(), phi_t.view());
     let (weights, trusted_audit) = trusted_audit(
         phi_t.view(),
         trusted.y,
         trusted.weight,
         theta_audit,
-        phi_b.view(),
+        d_bt.view(),
         batch_y,
         k,
         base_weight,
@@ -413,7 +416,7 @@ fn trusted_evidence(
         audited,
     );
     // What the verified items near each batch item say, with no learner in between.
-    let neighbours = neighbour_model(phi_t.view(), trusted.y, phi_b.view(), k);
+    let neighbours = neighbour_model(phi_t.view(), trusted.y, d_bt.view(), k);
     let trusted_audit = crate::model::TrustedAudit {
         neighbour_sharpness: neighbours.sharpness,
         ..trusted_audit
