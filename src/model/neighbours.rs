@@ -40,8 +40,9 @@ pub(crate) struct NeighbourModel {
 }
 
 impl NeighbourModel {
-    /// No trusted evidence (fewer than two trusted items, or one class): `p_N` uniform, so the doubt of
-    /// every label is `1 − 1/K` and never exceeds the trusted-anchored doubt's range.
+    /// No trusted evidence (fewer than two trusted items, or one class): `p_N` uniform, the doubt of every
+    /// label `1 − 1/K`, the same for every item and label, so it orders nothing. (With fewer than two
+    /// trusted items the trusted audit raises no weight either, and the fusion never reads it.)
     pub(crate) fn uniform(n_b: usize, k: usize) -> Self {
         Self {
             p: Array2::from_elem((n_b, k), 1.0 / k.max(1) as f64),
