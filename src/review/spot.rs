@@ -421,13 +421,15 @@ fn recall_run(
 /// startup, before it scores anything. Returns the batches recalled.
 pub fn resume_spot_recalls(env: &ReviewEnv<'_>) -> Result<Vec<String>, ReviewError> {
     let mut all = Vec::new();
-    for vendor in &env.config.vendors {
-        let Some(pending) = env.store.vendor_history(vendor)?.spot_recall else {
+    // Every stored history, not only the configured vendors': a vendor taken out of the configuration
+    // with a recall pending still has poisoned batches in the pool.
+    for (vendor, history) in env.store.vendor_histories()? {
+        let Some(pending) = history.spot_recall else {
             continue;
         };
         let Some(cause) = env.store.batch(&pending.cause)? else {
             env.store
-                .edit_vendor_history(vendor, |h| h.spot_recall = None)?;
+                .edit_vendor_history(&vendor, |h| h.spot_recall = None)?;
             continue;
         };
         tracing::info!(vendor = %vendor, batch_id = %cause.id, "recovery: finishing the recall a spot-check signal asked for");

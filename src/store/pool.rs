@@ -215,6 +215,21 @@ impl Store {
             .unwrap_or_default())
     }
 
+    /// Every vendor with a stored history, and that history, in vendor order — including vendors the
+    /// configuration no longer lists (a spot-check recall pending for one must still be finished).
+    pub fn vendor_histories(&self) -> Result<Vec<(String, VendorHistory)>, StoreError> {
+        self.trees[T_HISTORY]
+            .iter()
+            .map(|kv| {
+                let (k, v) = kv.map_err(StoreError::sled("scan histories"))?;
+                Ok((
+                    String::from_utf8_lossy(&k).into_owned(),
+                    dec("history", &k, &v)?,
+                ))
+            })
+            .collect()
+    }
+
     /// Edit a vendor's history in place (flushed): `edit` runs inside the transaction on the history as
     /// stored (again if the transaction retries), so nothing another writer put there meanwhile is lost.
     pub fn edit_vendor_history(

@@ -368,3 +368,33 @@ fn a_refused_change_writes_nothing_and_says_why() {
         "the refused answer left no audit record"
     );
 }
+
+/// Every stored vendor history is listed, in vendor order, whether or not the configuration still names
+/// the vendor (the store knows nothing of the configuration): what the daemon's startup reads to finish
+/// a spot-check recall pending for a vendor taken out of it. Fails if the listing read only given names
+/// or lost a history's contents.
+#[test]
+fn every_stored_vendor_history_is_listed_with_its_contents() {
+    let (_d, s) = tmp_store();
+    assert!(s.vendor_histories().unwrap().is_empty());
+    let pending = VendorHistory {
+        spot_recall: Some(crate::policy::spot::PendingRecall {
+            cause: "b-7".into(),
+            batches: vec!["b-3".into(), "b-5".into()],
+        }),
+        ..VendorHistory::default()
+    };
+    s.set_vendor_history("zeta", &pending, AuditRecord::new("test", "seed"))
+        .unwrap();
+    s.set_vendor_history(
+        "alpha",
+        &VendorHistory::default(),
+        AuditRecord::new("test", "seed"),
+    )
+    .unwrap();
+    let listed = s.vendor_histories().unwrap();
+    let names: Vec<&str> = listed.iter().map(|(v, _)| v.as_str()).collect();
+    assert_eq!(names, ["alpha", "zeta"]);
+    assert_eq!(listed[1].1, pending);
+    assert_eq!(listed[0].1.spot_recall, None);
+}
