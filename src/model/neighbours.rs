@@ -222,6 +222,30 @@ mod tests {
         assert!((model.p[[1, 0]] - model.p[[1, 1]]).abs() < 1e-9);
     }
 
+    /// The nearest trusted item of each class is the *nearest*, not the last one read, and the item left
+    /// out is left out: squared distances `[1, 4, 16, 9]` to items of classes `[0, 0, 1, 1]` give
+    /// `ln d = (ln 1, ln 3)`; leaving item 0 out, `(ln 2, ln 3)`; a class with no item, `None` (worked by
+    /// hand; `ln d = ½ ln d²`).
+    #[test]
+    fn the_nearest_item_of_each_class_counts_and_the_left_out_one_does_not() {
+        let row = array![1.0, 4.0, 16.0, 9.0];
+        let close = |got: &[Option<f64>], want: &[Option<f64>]| {
+            got.len() == want.len()
+                && got.iter().zip(want).all(|(g, w)| match (g, w) {
+                    (Some(g), Some(w)) => (g - w).abs() < 1e-12,
+                    (None, None) => true,
+                    _ => false,
+                })
+        };
+        let all = log_nearest(row.view(), &[0, 0, 1, 1], 3, None);
+        assert!(close(&all, &[Some(0.0), Some(3f64.ln()), None]), "{all:?}");
+        let loo = log_nearest(row.view(), &[0, 0, 1, 1], 3, Some(0));
+        assert!(
+            close(&loo, &[Some(2f64.ln()), Some(3f64.ln()), None]),
+            "{loo:?}"
+        );
+    }
+
     /// Too little trusted evidence: uniform, no sharpness.
     #[test]
     fn one_trusted_item_says_nothing() {
