@@ -246,6 +246,24 @@ mod tests {
         );
     }
 
+    /// The weights are computed shifted by their largest exponent, so distances far below 1 at a sharp
+    /// `α` stay finite: `ln d = (−60, −59)` at `α = 16` would be `e^960` unshifted (∞, and ∞/∞ = NaN);
+    /// shifted, `p_N(0) = ε/2 + (1 − ε)/(1 + e^{−16})`. With no trusted item of any class the model is
+    /// uniform (worked by hand from the module docs' formula).
+    #[test]
+    fn extreme_distances_stay_finite_and_no_evidence_is_uniform() {
+        let mut p = [0.0; 2];
+        probabilities(&[Some(-60.0), Some(-59.0)], 16.0, &mut p);
+        let want = FLOOR / 2.0 + (1.0 - FLOOR) / (1.0 + (-16f64).exp());
+        assert!(
+            (p[0] - want).abs() < 1e-12 && (p[0] + p[1] - 1.0).abs() < 1e-12,
+            "{p:?}"
+        );
+        let mut q = [0.0; 4];
+        probabilities(&[None, None, None, None], 2.0, &mut q);
+        assert!(q.iter().all(|&v| (v - 0.25).abs() < 1e-12), "{q:?}");
+    }
+
     /// Too little trusted evidence: uniform, no sharpness.
     #[test]
     fn one_trusted_item_says_nothing() {
