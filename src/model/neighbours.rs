@@ -264,7 +264,8 @@ mod tests {
         assert!(q.iter().all(|&v| (v - 0.25).abs() < 1e-12), "{q:?}");
     }
 
-    /// Too little trusted evidence: uniform, no sharpness.
+    /// Too little trusted evidence (one item, or a label outside the classes): uniform, no sharpness; two
+    /// items are enough.
     #[test]
     fn one_trusted_item_says_nothing() {
         let t = array![[0.0]];
@@ -272,5 +273,13 @@ mod tests {
         let model = neighbour_model(t.view(), &[1], d.view(), 3);
         assert!(model.p.iter().all(|&v| (v - 1.0 / 3.0).abs() < 1e-12));
         assert_eq!(model.sharpness, 0.0);
+        // A label outside the classes (the engine checks labels before, this is the guard): uniform too.
+        let t2 = array![[0.0], [10.0]];
+        let d2 = squared_distances(array![[1.0]].view(), t2.view());
+        let bad = neighbour_model(t2.view(), &[0, 7], d2.view(), 3);
+        assert!(bad.p.iter().all(|&v| (v - 1.0 / 3.0).abs() < 1e-12));
+        // Two trusted items are enough: the item at x = 1 is class 0's.
+        let two = neighbour_model(t2.view(), &[0, 1], d2.view(), 3);
+        assert!(two.sharpness > 0.0 && two.p[[0, 0]] > 0.5, "{:?}", two.p);
     }
 }
