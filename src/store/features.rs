@@ -375,15 +375,11 @@ impl Store {
 
     /// The provenance of every imported pool chunk, by its pool-entry batch id.
     pub fn pool_imports(&self) -> Result<Vec<(String, PoolImport)>, StoreError> {
-        self.named(T_POOL_IMPORTS)?
-            .iter()
-            .map(|kv| {
-                let (k, v) = kv.map_err(StoreError::sled("scan pool imports"))?;
-                Ok((
-                    String::from_utf8_lossy(&k).into_owned(),
-                    dec("pool import", &k, &v)?,
-                ))
-            })
-            .collect()
+        super::decoded_by_name(
+            self.named(T_POOL_IMPORTS)?.iter(),
+            "scan pool imports",
+            "pool import",
+        )
+        .collect()
     }
 }

@@ -278,6 +278,18 @@ fn decoded<T: DeserializeOwned>(
     })
 }
 
+/// [`decoded`] with each value's key, read as text: for trees keyed by a name (a vendor, a batch id).
+fn decoded_by_name<T: DeserializeOwned>(
+    scan: impl Iterator<Item = sled::Result<(sled::IVec, sled::IVec)>>,
+    op: &'static str,
+    what: &'static str,
+) -> impl Iterator<Item = Result<(String, T), StoreError>> {
+    scan.map(move |kv| {
+        let (k, v) = kv.map_err(StoreError::sled(op))?;
+        Ok((String::from_utf8_lossy(&k).into_owned(), dec(what, &k, &v)?))
+    })
+}
+
 fn u64_of(v: Option<sled::IVec>) -> u64 {
     v.and_then(|v| <[u8; 8]>::try_from(v.as_ref()).ok())
         .map(u64::from_be_bytes)

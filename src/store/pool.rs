@@ -218,16 +218,7 @@ impl Store {
     /// Every vendor with a stored history, and that history, in vendor order — including vendors the
     /// configuration no longer lists (a spot-check recall pending for one must still be finished).
     pub fn vendor_histories(&self) -> Result<Vec<(String, VendorHistory)>, StoreError> {
-        self.trees[T_HISTORY]
-            .iter()
-            .map(|kv| {
-                let (k, v) = kv.map_err(StoreError::sled("scan histories"))?;
-                Ok((
-                    String::from_utf8_lossy(&k).into_owned(),
-                    dec("history", &k, &v)?,
-                ))
-            })
-            .collect()
+        super::decoded_by_name(self.trees[T_HISTORY].iter(), "scan histories", "history").collect()
     }
 
     /// Edit a vendor's history in place (flushed): `edit` runs inside the transaction on the history as
