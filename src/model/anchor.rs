@@ -394,8 +394,9 @@ pub struct TrustedAudit {
     /// Batch items whose repair weight the audit raised above `base + 0.1`.
     pub items_reweighted: usize,
     /// The sharpness `α` of the trusted neighbours' labels model, chosen by the trusted items'
-    /// leave-one-out likelihood (`crate::model::neighbours`; 0 with too few trusted items, and in records
-    /// written before it existed): high where the verified classes lie well apart.
+    /// leave-one-out likelihood (`crate::model::neighbours`): high where the verified classes lie well
+    /// apart. 0 where no such model was built: with too few trusted items, in the pool sweep's audit
+    /// (which does not use the neighbours), and in records written before it existed.
     #[serde(default)]
     pub neighbour_sharpness: f64,
     /// The audit in one sentence.
