@@ -97,7 +97,7 @@ pub struct ItemScore {
     #[serde(default)]
     pub anchored_doubt: f64,
     /// The trusted neighbours' doubt: `1 − p_N(given label)`, what the verified items nearest to this
-    /// item say, with no learner in between ([`crate::model::neighbours`]: each class weighted by the
+    /// item say, with no learner in between (`crate::model::neighbours`: each class weighted by the
     /// distance to its nearest trusted item). It counts where the trusted audit has raised the repair
     /// weight (0 in records written before it existed).
     #[serde(default)]
