@@ -228,19 +228,7 @@ impl Objective<'_> {
     /// Hessian-vector product `H[v]` at the point whose probabilities are `prob`.
     pub fn hvp(&self, prob: ArrayView2<'_, f64>, v: &Array1<f64>) -> Array1<f64> {
         let p = self.dim();
-        let k = self.classes();
-        let u = self.phi.dot(&weights_view(v, p, k));
-        let mut r = Array2::zeros(u.raw_dim());
-        for i in 0..u.nrows() {
-            let w = self.weight(i);
-            let pi = prob.row(i);
-            let ui = u.row(i);
-            let pu = pi.dot(&ui);
-            for c in 0..k {
-                r[[i, c]] = w * pi[c] * (ui[c] - pu);
-            }
-        }
-        let mut out = flatten_pk(self.phi.t().dot(&r).view()) / self.norm;
+        let mut out = self.data_hvp(self.phi, prob, v);
         for (idx, (o, &vi)) in out.iter_mut().zip(v.iter()).enumerate() {
             let reg = if idx % p == p - 1 {
                 INTERCEPT_RIDGE
@@ -253,6 +241,32 @@ impl Objective<'_> {
             out.scaled_add(q.scale, &q.hess_dot(v));
         }
         out
+    }
+
+    /// The data term's Hessian-vector product alone, `Φᵀ diag(w) R / N` with
+    /// `R_ic = p_ic (u_ic − p_iᵀ u_i)`, `U = Φ V`, computed with the rows `phi` in place of the objective's
+    /// own (the same rows in another basis of the features, [`super::kron::FeatureFrame`]; `phi` has the
+    /// objective's row count).
+    pub fn data_hvp(
+        &self,
+        phi: ArrayView2<'_, f64>,
+        prob: ArrayView2<'_, f64>,
+        v: &Array1<f64>,
+    ) -> Array1<f64> {
+        let p = phi.ncols();
+        let k = self.classes();
+        let u = phi.dot(&weights_view(v, p, k));
+        let mut r = Array2::zeros(u.raw_dim());
+        for i in 0..u.nrows() {
+            let w = self.weight(i);
+            let pi = prob.row(i);
+            let ui = u.row(i);
+            let pu = pi.dot(&ui);
+            for c in 0..k {
+                r[[i, c]] = w * pi[c] * (ui[c] - pu);
+            }
+        }
+        flatten_pk(phi.t().dot(&r).view()) / self.norm
     }
 
     /// The data term's Hessian alone (no penalties, no prior), assembled densely:

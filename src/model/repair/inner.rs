@@ -1,7 +1,7 @@
 //! The training problem over pool ∪ batch and its linearisation `Y ↦ θ*(Y)` (implicit function theorem).
 
 use std::ops::Range;
-use std::sync::Arc;
+use std::sync::{Arc, OnceLock};
 use std::time::Instant;
 
 use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2};
@@ -9,10 +9,9 @@ use ndarray::{s, Array1, Array2, ArrayView1, ArrayView2};
 use super::reference::PoolRows;
 
 use crate::model::learner::{
-    logits, one_hot, solve_factored, train_chord, trusted_loss, vstack, Objective,
+    logits, one_hot, solve_factored, train_chord, trusted_loss, vstack, Objective, INTERCEPT_RIDGE,
 };
 use crate::model::linalg::{conjugate_gradient, conjugate_gradient_with, Cholesky};
-use crate::model::truncated::kron_preconditioner;
 use crate::model::{ModelSettings, PoolTerm};
 
 /// The training problem over pool ∪ batch: mapped features with the pool's rows (the pool's items in exact
@@ -26,6 +25,9 @@ pub(crate) struct Inner {
     pub(crate) norm: f64,
     l2: f64,
     prior: Option<PoolTerm>,
+    /// `Φ U_A`: the rows in the eigenbasis of the pool's Kronecker feature factor, for the solves above
+    /// the dense threshold ([`crate::model::kron::FeatureFrame`]); computed on first use.
+    rotated: OnceLock<Array2<f64>>,
 }
 
 impl Inner {
@@ -57,6 +59,7 @@ impl Inner {
             norm: n_p as f64 + n_b as f64,
             l2,
             prior: pool.term,
+            rotated: OnceLock::new(),
         }
     }
 
@@ -158,18 +161,31 @@ impl Ctx<'_> {
             HessianSolver::Cg { prob } => {
                 let y_all = self.inner.labels(lin.y_anchor.view());
                 let obj = self.inner.objective(&y_all);
-                let res = if obj.prior.is_some_and(|q| q.kron.is_some()) {
+                let kron = obj.prior.and_then(|q| q.kron.map(|f| (q.scale, f)));
+                let res = if let Some((scale, factors)) = kron {
                     // Above the dense threshold: preconditioned by the pool summary's Kronecker factors,
                     // `(a B ⊗ A + D)⁻¹` with the learner's ridge `D` (`RidgedInverse`), nearly `H⁻¹` when the pool
-                    // outweighs the batch.
-                    conjugate_gradient_with(
-                        |v| obj.hvp(prob.view(), v),
-                        rhs,
-                        warm,
-                        kron_preconditioner(&obj),
+                    // outweighs the batch; solved in the eigenbasis of the feature factor, where the pool's
+                    // term and the preconditioner cost `O(K² p)` a product (`FeatureFrame`).
+                    let frame = factors.frame(scale, obj.l2, INTERCEPT_RIDGE);
+                    let phi = self
+                        .inner
+                        .rotated
+                        .get_or_init(|| frame.rotate_rows(self.inner.phi.view()));
+                    let mut res = conjugate_gradient_with(
+                        |v| {
+                            let mut out = obj.data_hvp(phi.view(), prob.view(), v);
+                            out += &frame.pool_and_ridge_dot(v);
+                            out
+                        },
+                        &frame.into_frame(rhs),
+                        warm.map(|w| frame.into_frame(&w)),
+                        |r| frame.precondition(r),
                         self.settings.cg_tol,
                         self.settings.cg_max_iters,
-                    )
+                    );
+                    res.x = frame.out_of_frame(&res.x);
+                    res
                 } else {
                     conjugate_gradient(
                         |v| obj.hvp(prob.view(), v),
@@ -356,6 +372,7 @@ impl Inner {
             norm,
             l2,
             prior: None,
+            rotated: OnceLock::new(),
         }
     }
 }
