@@ -43,7 +43,8 @@ enum Command {
 }
 
 /// Admit (`quarantine admit`) or drop (`quarantine drop`) held items of an accepted batch: the flagged
-/// items that `[admission] flagged = "hold"` kept out of the pool (`quarantine held` lists them).
+/// items that `[admission] flagged = "hold"` kept out of the pool, and the items the experts' spot-check
+/// answers contradicted (`quarantine held` lists them).
 #[derive(Debug, clap::Args)]
 struct HeldArgs {
     /// Workspace folder.
@@ -59,7 +60,8 @@ struct HeldArgs {
     /// This held item (repeat for more). Default: every item of the batch still waiting.
     #[arg(long = "item", value_name = "ID")]
     items: Vec<String>,
-    /// Admit with the engine's proposed label instead of the given one (admit only).
+    /// Admit with the proposed label instead of the given one (admit only): the engine's, or the experts'
+    /// answer for an item their spot check contradicted.
     #[arg(long)]
     proposed: bool,
     /// Print JSON.
@@ -366,10 +368,11 @@ fn print_held(list: &[HeldBatch]) {
     }
     println!(
         "Flagged and unsure items of accepted batches kept out of the pool (unsure: not flagged, but among the \
-         batch's highest suspicions; either is a suspicion for review, not proof):"
+         batch's highest suspicions; experts: taken out when the trusted-set experts' spot check gave another \
+         label; each is a suspicion for review, not proof):"
     );
     println!(
-        "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7} {:>8}",
+        "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7} {:>8} {:>8}",
         "BATCH",
         "VENDOR",
         "ITEMS",
@@ -378,11 +381,12 @@ fn print_held(list: &[HeldBatch]) {
         "PROPOSED",
         "DROPPED",
         "UNSURE",
-        "IN DOUBT"
+        "IN DOUBT",
+        "EXPERTS"
     );
     for b in list {
         println!(
-            "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7} {:>8}",
+            "{:<12} {:<16} {:>6} {:>8} {:>8} {:>9} {:>8} {:>7} {:>8} {:>8}",
             sanitize(&b.batch_id),
             sanitize(&b.vendor),
             b.items.unwrap_or(0),
@@ -391,7 +395,8 @@ fn print_held(list: &[HeldBatch]) {
             b.admitted_proposed,
             b.dropped,
             b.unsure,
-            b.in_doubt
+            b.in_doubt,
+            b.expert_disagreed
         );
     }
 }

@@ -105,6 +105,13 @@ pub fn run(args: Args) -> anyhow::Result<u8> {
                     r.random_statistic,
                     r.trusted_added
                 );
+                if !r.held_for_review.is_empty() {
+                    println!(
+                        "{} items sat in the pool with a label the experts contradicted: out of the pool now, waiting for a reviewer (`labelweir quarantine held`): {}",
+                        r.held_for_review.len(),
+                        r.held_for_review.iter().map(|i| sanitize(i)).collect::<Vec<_>>().join(", ")
+                    );
+                }
                 if let Some(e) = &r.trusted_error {
                     println!(
                         "the answered items did not join the trusted set ({}); add them with `labelweir trusted add`",

@@ -158,6 +158,12 @@ pub struct CaseReport {
     /// 1-based number of the batch after which the expert's answers raised a spot-check signal, if they
     /// did; from then on the vendor's batches wait for review (`spot_check_disagreement`).
     pub spot_signal_at: Option<usize>,
+    /// Flipped labels in the pool that the experts' answers contradicted: out of the pool, waiting for a
+    /// reviewer (as `spot-check answer` does).
+    pub poison_held_by_experts: usize,
+    /// Right labels in the pool that an expert's mistaken answer took out for review (review load the
+    /// experts' mistakes cost).
+    pub clean_held_by_experts: usize,
 }
 
 impl CaseReport {
@@ -216,6 +222,45 @@ impl CaseReport {
     /// daemon does when a spot-check chart signals.
     fn recall_batches(&mut self, accepted: &mut [Entered], batches: &[usize]) {
         self.take_back(accepted.iter_mut().filter(|e| batches.contains(&e.batch)));
+    }
+
+    /// An expert answered an item of accepted batch `batch` that sits in the pool with label `pool_label`
+    /// (`agreeing`: that label is the pool model's best guess) and true class `truth`: an answer other than
+    /// `pool_label` takes the item out of the pool for review. A flipped label leaves the pool's poison
+    /// (and the delivery stops counting as let through once none of its poison is left); a right label
+    /// taken out by a mistaken answer is counted apart.
+    fn hold_contradicted(
+        &mut self,
+        accepted: &mut [Entered],
+        batch: usize,
+        pool_label: usize,
+        agreeing: bool,
+        truth: usize,
+        answer: usize,
+    ) {
+        let Some(e) = accepted
+            .iter_mut()
+            .find(|e| e.batch == batch && !e.recalled)
+        else {
+            return;
+        };
+        if answer == pool_label {
+            return;
+        }
+        if pool_label != truth && e.poison > 0 {
+            e.poison -= 1;
+            self.poison_in_pool -= 1;
+            self.poison_held_by_experts += 1;
+            if agreeing && e.agreeing > 0 {
+                e.agreeing -= 1;
+                self.poison_in_pool_agreeing -= 1;
+            }
+            if e.poison == 0 {
+                self.let_through -= 1;
+            }
+        } else if pool_label == truth {
+            self.clean_held_by_experts += 1;
+        }
     }
 
     fn take_back<'e>(&mut self, entries: impl Iterator<Item = &'e mut Entered>) {
@@ -515,6 +560,8 @@ impl CaseReport {
             spot_checked: 0,
             spot_disagreed: 0,
             spot_signal_at: None,
+            poison_held_by_experts: 0,
+            clean_held_by_experts: 0,
         }
     }
 }
@@ -622,10 +669,12 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
             if let Some(h) = v.history {
                 history = h;
             }
-            if let Some(entry) = v.pool {
-                accepted_log.push(r.count_entry(b, &entry, &ids, &mask, &y, &best_guess));
-                let ex = Array2::from_shape_vec((entry.ids.len(), entry.n_features), entry.x)
-                    .map_err(|e| ModelError::Shape(e.to_string()))?;
+            let pool_entry = v.pool;
+            if let Some(entry) = &pool_entry {
+                accepted_log.push(r.count_entry(b, entry, &ids, &mask, &y, &best_guess));
+                let ex =
+                    Array2::from_shape_vec((entry.ids.len(), entry.n_features), entry.x.clone())
+                        .map_err(|e| ModelError::Shape(e.to_string()))?;
                 summary.absorb(&s.config.model, ex.view(), &entry.labels)?;
             } else {
                 accepted_log.push(Entered {
@@ -642,7 +691,23 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
             let kept: Vec<usize> = rows.iter().map(|&i| given[i]).collect();
             summary.absorb_kept_out(&s.config.model, x.select(Axis(0), &rows).view(), &kept)?;
             if let Some(check) = &v.record.spot_check {
-                experts.ask(b, check, &ids, &y, &given, s.source.classes());
+                // Each row's label in the pool, if it entered, and whether that label is the pool
+                // model's best guess.
+                let mut in_pool: Vec<Option<(usize, bool)>> = vec![None; ids.len()];
+                if let Some(entry) = &pool_entry {
+                    for (id, &label) in entry.ids.iter().zip(&entry.labels) {
+                        if let Some(i) = ids.iter().position(|x| x == id) {
+                            in_pool[i] = Some((label, label == best_guess[i]));
+                        }
+                    }
+                }
+                let rows = experts::Delivered {
+                    ids: &ids,
+                    truth: &y,
+                    given: &given,
+                    in_pool: &in_pool,
+                };
+                experts.ask(b, check, &rows, s.source.classes());
             }
         } else {
             // The summary keeps what the recalled batches taught it (the daemon rebuilds it from the
@@ -825,20 +890,22 @@ pub fn render_text(c: &Casebook) -> String {
         let _ = writeln!(
             s,
             "\nexpert spot checks, simulated (items answered, vendor label ≠ expert answer, batch after \
-             which the answers signalled; the expert errs on {:.0} % of items and answers {} batch(es) \
-             later)",
+             which the answers signalled, items in the pool the answers took out for review: flipped / \
+             right; the expert errs on {:.0} % of items and answers {} batch(es) later)",
             100.0 * EXPERT_ERROR,
             c.expert_lag
         );
         for r in &c.cases {
             let _ = writeln!(
                 s,
-                "  {:<38} {:>5} checked {:>4} disagreed  signal {}",
+                "  {:<38} {:>5} checked {:>4} disagreed  signal {:<13} out for review {} / {}",
                 r.name,
                 r.spot_checked,
                 r.spot_disagreed,
                 r.spot_signal_at
                     .map_or("—".into(), |b| format!("at batch {b}")),
+                r.poison_held_by_experts,
+                r.clean_held_by_experts,
             );
         }
     }

@@ -11,8 +11,15 @@ use crate::policy::VendorHistory;
 use crate::scenario;
 
 /// One batch's spot check as the simulated expert answered it: (batch place, `(stratum, vendor's label ≠
-/// the expert's answer)` per picked item, the items' features with the expert's labels).
-type Asked = (usize, Vec<(Stratum, bool)>, Vec<(Vec<f64>, usize)>);
+/// the expert's answer)` per picked item, the items' features with the expert's labels, and per picked
+/// item that entered the pool `(label in the pool, that label is the model's best guess, true class,
+/// expert's answer)`).
+type Asked = (
+    usize,
+    Vec<(Stratum, bool)>,
+    Vec<(Vec<f64>, usize)>,
+    Vec<(usize, bool, usize, usize)>,
+);
 
 /// The trusted set of one replay: the workspace's items, then the answered items the experts' spot
 /// checks added (at most `[spot_checks] trusted_max`, the oldest retiring first), as the daemon keeps it.
@@ -62,6 +69,15 @@ impl Trusted {
     }
 }
 
+/// One accepted batch's rows as the simulated experts see them: ids, true classes, the vendor's labels,
+/// and each row's label in the pool (with whether it is the pool model's best guess) if it entered.
+pub(super) struct Delivered<'a> {
+    pub(super) ids: &'a [String],
+    pub(super) truth: &'a [usize],
+    pub(super) given: &'a [usize],
+    pub(super) in_pool: &'a [Option<(usize, bool)>],
+}
+
 /// The simulated trusted-set experts: the spot checks they were asked, answered `lag` batches later.
 pub(super) struct Experts {
     lag: usize,
@@ -81,18 +97,18 @@ impl Experts {
         }
     }
 
-    /// Batch `b`'s spot check: the expert labels the picked items blind (from their true labels `y`).
+    /// Batch `b`'s spot check: the expert labels the picked items blind (from their true labels).
     pub(super) fn ask(
         &mut self,
         b: usize,
         check: &crate::store::SpotCheck,
-        ids: &[String],
-        y: &[usize],
-        given: &[usize],
+        rows: &Delivered<'_>,
         k: usize,
     ) {
+        let (ids, y, given, in_pool) = (rows.ids, rows.truth, rows.given, rows.in_pool);
         let mut answers = Vec::with_capacity(check.items.len());
         let mut items = Vec::with_capacity(check.items.len());
+        let mut pooled = Vec::new();
         for it in &check.items {
             let Some(i) = ids.iter().position(|x| *x == it.id) else {
                 continue;
@@ -100,13 +116,18 @@ impl Experts {
             let answer = expert_answer(y[i], k, &mut self.rng);
             answers.push((it.stratum, given[i] != answer));
             items.push((it.features.clone(), answer));
+            if let Some((label, agreeing)) = in_pool.get(i).copied().flatten() {
+                pooled.push((label, agreeing, y[i], answer));
+            }
         }
-        self.asked.push_back((b, answers, items));
+        self.asked.push_back((b, answers, items, pooled));
     }
 
-    /// The answers due after batch `b`: into the vendor's charts, as `spot-check answer` does; a signal
-    /// holds the vendor and takes back the batches of the chart's run. Returns the answered items (for
-    /// the trusted set).
+    /// The answers due after batch `b`: answered items still in the pool whose label the expert
+    /// contradicts leave it for review, and the answers go into the vendor's charts, as `spot-check answer`
+    /// does; a signal holds the
+    /// vendor and takes back the batches of the chart's run. Returns the answered items (for the trusted
+    /// set).
     pub(super) fn answer_due(
         &mut self,
         b: usize,
@@ -119,11 +140,15 @@ impl Experts {
         while self
             .asked
             .front()
-            .is_some_and(|(at, _, _)| at + self.lag <= b)
+            .is_some_and(|(at, _, _, _)| at + self.lag <= b)
         {
-            let Some((at, answers, items)) = self.asked.pop_front() else {
+            let Some((at, answers, items, pooled)) = self.asked.pop_front() else {
                 break;
             };
+            // Answered items still in the pool whose label the expert contradicts leave it for review.
+            for (label, agreeing, truth, answer) in pooled {
+                r.hold_contradicted(accepted, at, label, agreeing, truth, answer);
+            }
             out.extend(items);
             r.spot_checked += answers.len();
             r.spot_disagreed += answers.iter().filter(|(_, x)| *x).count();

@@ -254,8 +254,10 @@ fn spot_check(config: &Config, batch: &ScoredBatch<'_>) -> Option<SpotCheck> {
     let a = batch.scored.as_ref().ok().filter(|_| s.enabled)?;
     let n = batch.table.ids.len();
     let mut margins = vec![f64::MAX; n];
+    let mut scores = vec![(0.0, 0.0); n];
     for it in a.items.iter().filter(|it| it.index < n) {
         margins[it.index] = it.reference_margin;
+        scores[it.index] = (it.suspicion, it.confidence);
     }
     // Rows without a score (none in practice) are never the least sure.
     let items: Vec<SpotItem> = policy::spot::pick(&margins, s, batch.spot_seed)
@@ -265,6 +267,8 @@ fn spot_check(config: &Config, batch: &ScoredBatch<'_>) -> Option<SpotCheck> {
             stratum,
             label: batch.table.labels[i].clone(),
             features: batch.table.features.row(i).to_vec(),
+            suspicion: scores[i].0,
+            confidence: scores[i].1,
         })
         .collect();
     (!items.is_empty()).then_some(SpotCheck {

@@ -1,5 +1,6 @@
 //! Held items: the flagged and unsure items of accepted batches that wait for a reviewer (see
-//! [`crate::policy::AdmissionSettings`]). A reviewer lists them and admits them (with the given or the
+//! [`crate::policy::AdmissionSettings`]), and the items the trusted-set experts' spot checks contradicted
+//! (`spot-check answer` takes them out of the pool). A reviewer lists them and admits them (with the given or the
 //! proposed label) or drops them; each decision is one audited store transition that also replaces the
 //! batch's pool entry. A flag is a suspicion for review, not proof.
 
@@ -38,6 +39,10 @@ pub struct HeldBatch {
     /// hold_suspicion` (see [`crate::policy::doubtful_items`]).
     #[serde(default)]
     pub in_doubt: usize,
+    /// Of the held items, those taken out of the pool because the trusted-set experts' spot check gave
+    /// another label.
+    #[serde(default)]
+    pub expert_disagreed: usize,
     /// Every held item and where it stands.
     pub held: Vec<HeldItem>,
 }
@@ -67,6 +72,11 @@ pub fn held_list(env: &ReviewEnv<'_>) -> Result<Vec<HeldBatch>, ReviewError> {
             dropped: count(HeldState::Dropped),
             unsure: r.held.iter().filter(|h| h.why == HeldWhy::Unsure).count(),
             in_doubt: r.held.iter().filter(|h| h.why == HeldWhy::InDoubt).count(),
+            expert_disagreed: r
+                .held
+                .iter()
+                .filter(|h| h.why == HeldWhy::ExpertDisagreed)
+                .count(),
             held: r.held.clone(),
         });
     }

@@ -32,7 +32,9 @@ use super::{
 };
 use crate::pipeline::recall::{recall_records, Cause, RECALLED_ON_SPOT_CHECK};
 use crate::policy::spot::{PendingRecall, SpotHold, SpotOutcome, Stratum};
-use crate::store::{AuditRecord, BatchState, PoolChange, SpotAnswers};
+use crate::store::{
+    AuditRecord, BatchState, HeldItem, HeldState, HeldWhy, PoolChange, SpotAnswers,
+};
 
 /// A batch whose spot check waits for the experts.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -85,6 +87,10 @@ pub struct SpotAnswered {
     pub vendor_held: bool,
     /// Accepted batches recalled for review because of the signal.
     pub recalled: Vec<String>,
+    /// Items of this batch that sat in the pool with a label the experts contradicted: out of the pool
+    /// now, waiting for a reviewer (`labelweir quarantine held`).
+    #[serde(default)]
+    pub held_for_review: Vec<String>,
     /// Items that joined the trusted set.
     pub trusted_added: usize,
     /// Why they did not, when adding them failed (the answers are recorded all the same; add them with
@@ -193,10 +199,13 @@ pub fn spot_answer(
         .detail(detail);
     let now = Utc::now();
     let batch_id = rec.id.clone();
+    // Items in the pool whose label the experts contradicted leave it and wait for a reviewer.
+    let (pool, contradicted) = contradicted_items(env, &rec, &check.items, &labels)?;
     let settled = env.store.transition_with_history_unless(
         &rec.id,
         &[rec.state],
         rec.state,
+        pool,
         vec![audit],
         answered_already,
         |r| {
@@ -208,6 +217,11 @@ pub fn spot_answer(
                     disagreed,
                     signal: None,
                 });
+            }
+            for h in &contradicted {
+                if !r.held.iter().any(|x| x.id == h.id) {
+                    r.held.push(h.clone());
+                }
             }
         },
         |h| {
@@ -260,6 +274,9 @@ pub fn spot_answer(
             tracing::warn!(batch_id = %settled.id, error = %e, "noting the spot-check signal on the batch record failed");
         }
     }
+    if !contradicted.is_empty() {
+        env.hooks.pool_changed();
+    }
     if let Some(m) = crate::metrics::get() {
         let n = outcomes.len() as u64;
         m.spot_check_answered(
@@ -268,6 +285,7 @@ pub fn spot_answer(
             disagreed as u64,
             hold.is_some(),
         );
+        m.admission(&rec.vendor, contradicted.iter().map(|_| "held"));
     }
     let recalled = match &hold {
         Some(hold) => recall_run(env, &req.by, &rec, &outcome.reach, Some(hold))?,
@@ -303,9 +321,58 @@ pub fn spot_answer(
         signal: outcome.fired,
         vendor_held,
         recalled,
+        held_for_review: contradicted.iter().map(|h| h.id.clone()).collect(),
         trusted_added,
         trusted_error,
     })
+}
+
+/// The pool change and the held items for the picked items of `rec` whose experts' label differs from the
+/// label they sit in the pool with: each leaves the batch's pool entry and waits for a reviewer
+/// (`HeldWhy::ExpertDisagreed`, the experts' label proposed, the engine's suspicion of the vendor's label
+/// kept). Nothing changes for a batch out of the pool, for items not in it (held or dropped already),
+/// or for items whose pool label the experts confirm.
+fn contradicted_items(
+    env: &ReviewEnv<'_>,
+    rec: &crate::store::BatchRecord,
+    items: &[crate::store::SpotItem],
+    labels: &[String],
+) -> Result<(PoolChange, Vec<HeldItem>), ReviewError> {
+    let none = || Ok((PoolChange::None, Vec::new()));
+    if !matches!(rec.state, BatchState::Accepted | BatchState::Released) {
+        return none();
+    }
+    let Some(mut entry) = env.store.pool_entry_of(&rec.id)? else {
+        return none();
+    };
+    let classes = crate::data::Classes::from_labels(&env.meta.classes);
+    let n_f = entry.n_features;
+    let mut held = Vec::new();
+    for (it, answer) in items.iter().zip(labels) {
+        let Some(pos) = entry.ids.iter().position(|i| *i == it.id) else {
+            continue;
+        };
+        if classes.index_of(answer) == Some(entry.labels[pos]) {
+            continue;
+        }
+        entry.ids.remove(pos);
+        entry.labels.remove(pos);
+        entry.x.drain(pos * n_f..(pos + 1) * n_f);
+        held.push(HeldItem {
+            id: it.id.clone(),
+            label: it.label.clone(),
+            proposed_label: answer.clone(),
+            suspicion: it.suspicion,
+            confidence: it.confidence,
+            state: HeldState::Waiting,
+            decided_by: "spot check".into(),
+            why: HeldWhy::ExpertDisagreed,
+        });
+    }
+    if held.is_empty() {
+        return none();
+    }
+    Ok((PoolChange::Replace(entry), held))
 }
 
 /// Why a batch's spot check takes no (further) answer: it was answered already, by whom and when. Checked

@@ -245,6 +245,14 @@ pub struct SpotItem {
     /// Its features, in the workspace's feature order (the experts' file carries them; the trusted set
     /// takes them with the answer).
     pub features: Vec<f64>,
+    /// The engine's suspicion of the vendor's label and its confidence in the proposed one (never shown to
+    /// the experts; kept for the held item an answer that contradicts the label creates). 0 in records
+    /// from before they were kept.
+    #[serde(default)]
+    pub suspicion: f64,
+    /// See `suspicion`.
+    #[serde(default)]
+    pub confidence: f64,
 }
 
 /// The experts' answers to a spot check.
@@ -339,6 +347,10 @@ pub enum HeldWhy {
     /// Not flagged, but in doubt: its suspicion reaches `[admission] hold_suspicion`, below the batch's
     /// flag line (see [`crate::policy::doubtful_items`]).
     InDoubt,
+    /// In the pool until the trusted-set experts answered its spot check with another label: it left the
+    /// pool and waits for a reviewer (`proposed_label` is the experts' answer). Experts err too; a
+    /// reviewer admits it with either label or drops it.
+    ExpertDisagreed,
 }
 
 impl HeldWhy {
@@ -348,6 +360,7 @@ impl HeldWhy {
             Self::Flagged => "flagged",
             Self::Unsure => "unsure",
             Self::InDoubt => "in_doubt",
+            Self::ExpertDisagreed => "expert_disagreed",
         }
     }
 }

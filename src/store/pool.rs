@@ -181,13 +181,16 @@ impl Store {
     /// [`Store::transition_with_history`] refused, inside the transaction, when `refuse` says why on the
     /// record as stored ([`StoreError::Refused`]): a change that must happen once (an answer to a spot
     /// check) cannot happen twice when two requests race, since each read the record before the other
-    /// wrote it and the second's transaction retries on the first's write.
+    /// wrote it and the second's transaction retries on the first's write. `pool` changes the batch's
+    /// pool entry in the same transaction (an answer that takes contradicted items out of the pool).
+    #[allow(clippy::too_many_arguments)]
     #[allow(clippy::too_many_arguments)]
     pub fn transition_with_history_unless(
         &self,
         batch_id: &str,
         expect: &[BatchState],
         to: BatchState,
+        pool: PoolChange,
         audit: Vec<AuditRecord>,
         refuse: impl Fn(&BatchRecord) -> Option<String>,
         edit: impl Fn(&mut BatchRecord),
@@ -197,7 +200,7 @@ impl Store {
             batch_id,
             expect,
             to,
-            PoolChange::None,
+            pool,
             audit,
             &edit,
             Some(&history),

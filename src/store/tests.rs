@@ -324,6 +324,7 @@ fn a_refused_change_writes_nothing_and_says_why() {
             &r.id,
             &[r.state],
             r.state,
+            PoolChange::None,
             vec![AuditRecord::new(by, "spot_check_answer")],
             |rec| {
                 rec.spot_check

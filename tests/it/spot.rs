@@ -447,3 +447,123 @@ fn a_recall_cut_short_by_a_stop_is_finished_at_the_next_start() {
         "out of the pool"
     );
 }
+
+/// An item that sits in the pool with a label the experts' spot check contradicts leaves the pool and
+/// waits for a reviewer (`expert_disagreed`, the experts' label proposed) in the answer's transaction;
+/// the items the experts confirm stay. A reviewer can then admit it with the experts' label. Fails with
+/// the pool change left out of the answer: the batch's pool count stays as it was.
+#[test]
+fn a_contradicted_item_leaves_the_pool_and_waits_for_a_reviewer() {
+    let ws = Ws::new(&["sorter-co"]);
+    let dir = ws.dir.display().to_string();
+    let d = Daemon::start(&ws);
+    let b = clean_batch("c0-", 150, 91);
+    ws.deliver("sorter-co", "c0.csv", &b.csv());
+    ws.wait_filed(1, T);
+    drop(d);
+    let list = ok_json(&["spot-check", "list", &dir, "--json"]);
+    let batch = list[0]["batch_id"]
+        .as_str()
+        .expect("the accepted batch waits")
+        .to_string();
+    let held_entry = |v: &Value| -> Option<Value> {
+        v.as_array()?
+            .iter()
+            .find(|h| h["batch_id"] == batch.as_str())
+            .cloned()
+    };
+    let before = held_entry(&ok_json(&["quarantine", "held", &dir, "--json"]));
+    let held_before: Vec<String> = before
+        .as_ref()
+        .and_then(|h| h["held"].as_array().cloned())
+        .unwrap_or_default()
+        .iter()
+        .map(|h| h["id"].as_str().unwrap().to_string())
+        .collect();
+    let in_pool_before = before.as_ref().map_or(150 - held_before.len() as u64, |h| {
+        h["in_pool"].as_u64().unwrap()
+    });
+    let labels: HashMap<String, usize> = b
+        .ids
+        .iter()
+        .cloned()
+        .zip(b.labels.iter().copied())
+        .collect();
+    let rows = spot_rows(&ws, &batch);
+    // The first picked item still in the pool gets another class from the experts; the rest, the vendor's.
+    let (target, _) = rows
+        .iter()
+        .find(|(id, _)| !held_before.contains(id))
+        .expect("a picked item in the pool")
+        .clone();
+    let k = labelweir::scenario::class_names().len();
+    let names = labelweir::scenario::class_names();
+    let expert = (labels[&target] + 1) % k;
+    let mut text = String::from("id,label\n");
+    for (id, _) in &rows {
+        let l = if *id == target { expert } else { labels[id] };
+        text.push_str(&format!("{id},{}\n", names[l]));
+    }
+    let file = ws.path("answers.csv");
+    std::fs::write(&file, text).unwrap();
+    let a = ok_json(&[
+        "spot-check",
+        "answer",
+        &dir,
+        &batch,
+        file.to_str().unwrap(),
+        "--by",
+        "expert-c",
+        "--json",
+    ]);
+    assert_eq!(a["disagreed"].as_u64(), Some(1), "{a}");
+    assert_eq!(a["held_for_review"], serde_json::json!([target]), "{a}");
+    let after = held_entry(&ok_json(&["quarantine", "held", &dir, "--json"])).expect("listed");
+    assert_eq!(
+        after["in_pool"].as_u64(),
+        Some(in_pool_before - 1),
+        "{after}"
+    );
+    assert_eq!(after["expert_disagreed"].as_u64(), Some(1), "{after}");
+    let item = after["held"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|h| h["id"] == target.as_str())
+        .expect("the contradicted item is held")
+        .clone();
+    assert_eq!(
+        (
+            item["why"].as_str(),
+            item["state"].as_str(),
+            item["label"].as_str(),
+            item["proposed_label"].as_str()
+        ),
+        (
+            Some("expert_disagreed"),
+            Some("waiting"),
+            Some(names[labels[&target]].as_str()),
+            Some(names[expert].as_str())
+        ),
+        "{item}"
+    );
+    // The engine's view of the vendor's label travels with it (kept from the spot check's pick).
+    assert!(item["confidence"].as_f64().unwrap() > 0.0, "{item}");
+    // The reviewer admits it with the experts' label: back in the pool.
+    ok_json(&[
+        "quarantine",
+        "admit",
+        &dir,
+        &batch,
+        "--item",
+        &target,
+        "--proposed",
+        "--reason",
+        "the experts' label",
+        "--by",
+        "reviewer-c",
+        "--json",
+    ]);
+    let back = held_entry(&ok_json(&["quarantine", "held", &dir, "--json"])).expect("listed");
+    assert_eq!(back["in_pool"].as_u64(), Some(in_pool_before), "{back}");
+}
