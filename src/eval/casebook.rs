@@ -211,6 +211,19 @@ impl CaseReport {
         }
     }
 
+    /// Count a held batch (the `b`-th, 0-based): clean or not, and whether its reasons called it label
+    /// trouble.
+    fn note_held(&mut self, b: usize, clean: bool, label_trouble: bool) {
+        self.held += 1;
+        self.first_held.get_or_insert(b + 1);
+        if clean {
+            self.clean_held += 1;
+        }
+        if label_trouble {
+            self.held_as_label_trouble += 1;
+        }
+    }
+
     /// Take the last `n` accepted batches back out of the pool (those not recalled already): what the
     /// daemon does for `Decision::recall`.
     fn recall(&mut self, accepted: &mut [Entered], n: u32) {
@@ -691,16 +704,7 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
             let kept: Vec<usize> = rows.iter().map(|&i| given[i]).collect();
             summary.absorb_kept_out(&s.config.model, x.select(Axis(0), &rows).view(), &kept)?;
             if let Some(check) = &v.record.spot_check {
-                // Each row's label in the pool, if it entered, and whether that label is the pool
-                // model's best guess.
-                let mut in_pool: Vec<Option<(usize, bool)>> = vec![None; ids.len()];
-                if let Some(entry) = &pool_entry {
-                    for (id, &label) in entry.ids.iter().zip(&entry.labels) {
-                        if let Some(i) = ids.iter().position(|x| x == id) {
-                            in_pool[i] = Some((label, label == best_guess[i]));
-                        }
-                    }
-                }
+                let in_pool = labels_in_pool(pool_entry.as_ref(), &ids, &best_guess);
                 let rows = experts::Delivered {
                     ids: &ids,
                     truth: &y,
@@ -714,20 +718,30 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
             // stored pool): the replay's model stays the more poisoned one.
             let recall = v.record.decision.as_ref().map_or(0, |d| d.recall);
             r.recall(&mut accepted_log, recall);
-            r.held += 1;
-            r.first_held.get_or_insert(b + 1);
-            if poison == 0 {
-                r.clean_held += 1;
-            }
-            if codes.iter().any(|c| c.is_label_finding()) {
-                r.held_as_label_trouble += 1;
-            }
+            r.note_held(b, poison == 0, codes.iter().any(|c| c.is_label_finding()));
         }
         let answered = experts.answer_due(b, &s.config, &mut history, &mut r, &mut accepted_log);
         trusted.grow(s, answered);
     }
     r.told = told.into_iter().collect();
     Ok(r)
+}
+
+/// Each row's label in the pool, if it entered, and whether that label is the pool model's best guess.
+fn labels_in_pool(
+    entry: Option<&PoolEntry>,
+    ids: &[String],
+    best_guess: &[usize],
+) -> Vec<Option<(usize, bool)>> {
+    let mut in_pool = vec![None; ids.len()];
+    if let Some(entry) = entry {
+        for (id, &label) in entry.ids.iter().zip(&entry.labels) {
+            if let Some(i) = ids.iter().position(|x| x == id) {
+                in_pool[i] = Some((label, label == best_guess[i]));
+            }
+        }
+    }
+    in_pool
 }
 
 /// The scripted cases; `quick` shortens every stream.

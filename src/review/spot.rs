@@ -258,21 +258,8 @@ pub fn spot_answer(
     // The record is edited before the vendor's history in the transaction, so the signal goes into the
     // answers afterwards (informational: the hold is in the vendor's history already, so a failure here is
     // logged, not returned).
-    if outcome.fired.is_some() {
-        if let Err(e) = env.store.transition(
-            &settled.id,
-            &[settled.state],
-            settled.state,
-            PoolChange::None,
-            vec![],
-            |r| {
-                if let Some(a) = r.spot_check.as_mut().and_then(|c| c.answered.as_mut()) {
-                    a.signal = outcome.fired;
-                }
-            },
-        ) {
-            tracing::warn!(batch_id = %settled.id, error = %e, "noting the spot-check signal on the batch record failed");
-        }
+    if let Some(fired) = outcome.fired {
+        note_signal(env, &settled, fired);
     }
     if !contradicted.is_empty() {
         env.hooks.pool_changed();
@@ -325,6 +312,25 @@ pub fn spot_answer(
         trusted_added,
         trusted_error,
     })
+}
+
+/// Note the chart that signalled on the answered batch's record (informational: the hold is in the
+/// vendor's history already, so a failure is logged, not returned).
+fn note_signal(env: &ReviewEnv<'_>, settled: &crate::store::BatchRecord, fired: Stratum) {
+    if let Err(e) = env.store.transition(
+        &settled.id,
+        &[settled.state],
+        settled.state,
+        PoolChange::None,
+        vec![],
+        |r| {
+            if let Some(a) = r.spot_check.as_mut().and_then(|c| c.answered.as_mut()) {
+                a.signal = Some(fired);
+            }
+        },
+    ) {
+        tracing::warn!(batch_id = %settled.id, error = %e, "noting the spot-check signal on the batch record failed");
+    }
 }
 
 /// The pool change and the held items for the picked items of `rec` whose experts' label differs from the
