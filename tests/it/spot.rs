@@ -338,13 +338,15 @@ fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted
 /// With the shipped settings (`trusted_max = 0`) the answers feed the charts but stay out of the trusted
 /// set: a trusted set filled with the items the model is least sure of moves every vendor's repair cost
 /// (see `[spot_checks] trusted_max`). Run with the daemon stopped (the command opens the store itself).
-#[test]
-fn by_default_answers_stay_out_of_the_trusted_set() {
+/// One clean 150-item batch of the plant (`prefix`, `seed`) delivered by one vendor and accepted, the
+/// daemon stopped: the workspace, its folder, the batch id whose spot check waits, and the vendor's label
+/// of each item.
+fn one_spot_checked_batch(prefix: &str, seed: u64) -> (Ws, String, String, HashMap<String, usize>) {
     let ws = Ws::new(&["sorter-co"]);
     let dir = ws.dir.display().to_string();
     let d = Daemon::start(&ws);
-    let b = clean_batch("t0-", 150, 90);
-    ws.deliver("sorter-co", "t0.csv", &b.csv());
+    let b = clean_batch(&format!("{prefix}-"), 150, seed);
+    ws.deliver("sorter-co", &format!("{prefix}.csv"), &b.csv());
     ws.wait_filed(1, T);
     drop(d);
     let list = ok_json(&["spot-check", "list", &dir, "--json"]);
@@ -352,24 +354,36 @@ fn by_default_answers_stay_out_of_the_trusted_set() {
         .as_str()
         .expect("the accepted batch waits")
         .to_string();
-    let labels: HashMap<String, usize> = b
+    let labels = b
         .ids
         .iter()
         .cloned()
         .zip(b.labels.iter().copied())
         .collect();
+    (ws, dir, batch, labels)
+}
+
+/// `spot-check answer` for `batch` with the answer file `content`, by `by`; its JSON report.
+fn answer_with(ws: &Ws, dir: &str, batch: &str, content: &[u8], by: &str) -> Value {
     let file = ws.path("answers.csv");
-    std::fs::write(&file, answers(&spot_rows(&ws, &batch), &labels, |l| l)).unwrap();
-    let a = ok_json(&[
+    std::fs::write(&file, content).unwrap();
+    ok_json(&[
         "spot-check",
         "answer",
-        &dir,
-        &batch,
+        dir,
+        batch,
         file.to_str().unwrap(),
         "--by",
-        "expert-b",
+        by,
         "--json",
-    ]);
+    ])
+}
+
+#[test]
+fn by_default_answers_stay_out_of_the_trusted_set() {
+    let (ws, dir, batch, labels) = one_spot_checked_batch("t0", 90);
+    let file = answers(&spot_rows(&ws, &batch), &labels, |l| l);
+    let a = answer_with(&ws, &dir, &batch, &file, "expert-b");
     assert_eq!(
         (
             a["checked"].as_u64(),
@@ -454,18 +468,7 @@ fn a_recall_cut_short_by_a_stop_is_finished_at_the_next_start() {
 /// the pool change left out of the answer: the batch's pool count stays as it was.
 #[test]
 fn a_contradicted_item_leaves_the_pool_and_waits_for_a_reviewer() {
-    let ws = Ws::new(&["sorter-co"]);
-    let dir = ws.dir.display().to_string();
-    let d = Daemon::start(&ws);
-    let b = clean_batch("c0-", 150, 91);
-    ws.deliver("sorter-co", "c0.csv", &b.csv());
-    ws.wait_filed(1, T);
-    drop(d);
-    let list = ok_json(&["spot-check", "list", &dir, "--json"]);
-    let batch = list[0]["batch_id"]
-        .as_str()
-        .expect("the accepted batch waits")
-        .to_string();
+    let (ws, dir, batch, labels) = one_spot_checked_batch("c0", 91);
     let held_entry = |v: &Value| -> Option<Value> {
         v.as_array()?
             .iter()
@@ -483,12 +486,6 @@ fn a_contradicted_item_leaves_the_pool_and_waits_for_a_reviewer() {
     let in_pool_before = before.as_ref().map_or(150 - held_before.len() as u64, |h| {
         h["in_pool"].as_u64().unwrap()
     });
-    let labels: HashMap<String, usize> = b
-        .ids
-        .iter()
-        .cloned()
-        .zip(b.labels.iter().copied())
-        .collect();
     let rows = spot_rows(&ws, &batch);
     // The first picked item still in the pool gets another class from the experts; the rest, the vendor's.
     let (target, _) = rows
@@ -504,18 +501,7 @@ fn a_contradicted_item_leaves_the_pool_and_waits_for_a_reviewer() {
         let l = if *id == target { expert } else { labels[id] };
         text.push_str(&format!("{id},{}\n", names[l]));
     }
-    let file = ws.path("answers.csv");
-    std::fs::write(&file, text).unwrap();
-    let a = ok_json(&[
-        "spot-check",
-        "answer",
-        &dir,
-        &batch,
-        file.to_str().unwrap(),
-        "--by",
-        "expert-c",
-        "--json",
-    ]);
+    let a = answer_with(&ws, &dir, &batch, text.as_bytes(), "expert-c");
     assert_eq!(a["disagreed"].as_u64(), Some(1), "{a}");
     assert_eq!(a["held_for_review"], serde_json::json!([target]), "{a}");
     let after = held_entry(&ok_json(&["quarantine", "held", &dir, "--json"])).expect("listed");
