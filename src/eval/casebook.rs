@@ -237,8 +237,8 @@ impl CaseReport {
         self.take_back(accepted.iter_mut().filter(|e| batches.contains(&e.batch)));
     }
 
-    /// An expert answered an item of accepted batch `batch` that sits in the pool with label `pool_label`
-    /// (`agreeing`: that label is the pool model's best guess) and true class `truth`: an answer other than
+    /// An expert answered an item of accepted batch `batch` that sits in the pool as `row` (its label,
+    /// whether that is the pool model's best guess, whether it was poisoned) with true class `truth`: an answer other than
     /// `pool_label` takes the item out of the pool for review. A flipped label leaves the pool's poison
     /// (and the delivery stops counting as let through once none of its poison is left); a right label
     /// taken out by a mistaken answer is counted apart.
@@ -246,11 +246,11 @@ impl CaseReport {
         &mut self,
         accepted: &mut [Entered],
         batch: usize,
-        pool_label: usize,
-        agreeing: bool,
+        row: InPool,
         truth: usize,
         answer: usize,
     ) {
+        let (pool_label, agreeing) = (row.label, row.agreeing);
         let Some(e) = accepted
             .iter_mut()
             .find(|e| e.batch == batch && !e.recalled)
@@ -260,7 +260,7 @@ impl CaseReport {
         if answer == pool_label {
             return;
         }
-        if pool_label != truth && e.poison > 0 {
+        if row.poisoned && pool_label != truth && e.poison > 0 {
             e.poison -= 1;
             self.poison_in_pool -= 1;
             self.poison_held_by_experts += 1;
@@ -682,12 +682,11 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
             if let Some(h) = v.history {
                 history = h;
             }
-            let pool_entry = v.pool;
-            if let Some(entry) = &pool_entry {
-                accepted_log.push(r.count_entry(b, entry, &ids, &mask, &y, &best_guess));
-                let ex =
-                    Array2::from_shape_vec((entry.ids.len(), entry.n_features), entry.x.clone())
-                        .map_err(|e| ModelError::Shape(e.to_string()))?;
+            let in_pool = labels_in_pool(v.pool.as_ref(), &ids, &mask, &best_guess);
+            if let Some(entry) = v.pool {
+                accepted_log.push(r.count_entry(b, &entry, &ids, &mask, &y, &best_guess));
+                let ex = Array2::from_shape_vec((entry.ids.len(), entry.n_features), entry.x)
+                    .map_err(|e| ModelError::Shape(e.to_string()))?;
                 summary.absorb(&s.config.model, ex.view(), &entry.labels)?;
             } else {
                 accepted_log.push(Entered {
@@ -704,7 +703,6 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
             let kept: Vec<usize> = rows.iter().map(|&i| given[i]).collect();
             summary.absorb_kept_out(&s.config.model, x.select(Axis(0), &rows).view(), &kept)?;
             if let Some(check) = &v.record.spot_check {
-                let in_pool = labels_in_pool(pool_entry.as_ref(), &ids, &best_guess);
                 let rows = experts::Delivered {
                     ids: &ids,
                     truth: &y,
@@ -727,21 +725,35 @@ fn replay(s: &Start, case: &Case, seed: u64, expert_lag: usize) -> Result<CaseRe
     Ok(r)
 }
 
-/// Each row's label in the pool, if it entered, and whether that label is the pool model's best guess.
+/// Each row's label in the pool, if it entered: the label, whether it is the pool model's best guess, and
+/// whether the row is poisoned (`mask`).
 fn labels_in_pool(
     entry: Option<&PoolEntry>,
     ids: &[String],
+    mask: &[bool],
     best_guess: &[usize],
-) -> Vec<Option<(usize, bool)>> {
+) -> Vec<Option<InPool>> {
     let mut in_pool = vec![None; ids.len()];
     if let Some(entry) = entry {
         for (id, &label) in entry.ids.iter().zip(&entry.labels) {
             if let Some(i) = ids.iter().position(|x| x == id) {
-                in_pool[i] = Some((label, label == best_guess[i]));
+                in_pool[i] = Some(InPool {
+                    label,
+                    agreeing: label == best_guess[i],
+                    poisoned: mask[i],
+                });
             }
         }
     }
     in_pool
+}
+
+/// A row of an accepted batch as it sits in the pool (see [`labels_in_pool`]).
+#[derive(Debug, Clone, Copy)]
+struct InPool {
+    label: usize,
+    agreeing: bool,
+    poisoned: bool,
 }
 
 /// The scripted cases; `quick` shortens every stream.

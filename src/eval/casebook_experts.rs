@@ -12,13 +12,12 @@ use crate::scenario;
 
 /// One batch's spot check as the simulated expert answered it: (batch place, `(stratum, vendor's label ≠
 /// the expert's answer)` per picked item, the items' features with the expert's labels, and per picked
-/// item that entered the pool `(label in the pool, that label is the model's best guess, true class,
-/// expert's answer)`).
+/// item that entered the pool `(how it sits in the pool, true class, expert's answer)`).
 type Asked = (
     usize,
     Vec<(Stratum, bool)>,
     Vec<(Vec<f64>, usize)>,
-    Vec<(usize, bool, usize, usize)>,
+    Vec<(super::InPool, usize, usize)>,
 );
 
 /// The trusted set of one replay: the workspace's items, then the answered items the experts' spot
@@ -70,12 +69,12 @@ impl Trusted {
 }
 
 /// One accepted batch's rows as the simulated experts see them: ids, true classes, the vendor's labels,
-/// and each row's label in the pool (with whether it is the pool model's best guess) if it entered.
+/// and how each row sits in the pool if it entered.
 pub(super) struct Delivered<'a> {
     pub(super) ids: &'a [String],
     pub(super) truth: &'a [usize],
     pub(super) given: &'a [usize],
-    pub(super) in_pool: &'a [Option<(usize, bool)>],
+    pub(super) in_pool: &'a [Option<super::InPool>],
 }
 
 /// The simulated trusted-set experts: the spot checks they were asked, answered `lag` batches later.
@@ -116,8 +115,8 @@ impl Experts {
             let answer = expert_answer(y[i], k, &mut self.rng);
             answers.push((it.stratum, given[i] != answer));
             items.push((it.features.clone(), answer));
-            if let Some((label, agreeing)) = in_pool.get(i).copied().flatten() {
-                pooled.push((label, agreeing, y[i], answer));
+            if let Some(row) = in_pool.get(i).copied().flatten() {
+                pooled.push((row, y[i], answer));
             }
         }
         self.asked.push_back((b, answers, items, pooled));
@@ -146,8 +145,8 @@ impl Experts {
                 break;
             };
             // Answered items still in the pool whose label the expert contradicts leave it for review.
-            for (label, agreeing, truth, answer) in pooled {
-                r.hold_contradicted(accepted, at, label, agreeing, truth, answer);
+            for (row, truth, answer) in pooled {
+                r.hold_contradicted(accepted, at, row, truth, answer);
             }
             out.extend(items);
             r.spot_checked += answers.len();

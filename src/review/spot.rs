@@ -218,11 +218,7 @@ pub fn spot_answer(
                     signal: None,
                 });
             }
-            for h in &contradicted {
-                if !r.held.iter().any(|x| x.id == h.id) {
-                    r.held.push(h.clone());
-                }
-            }
+            file_held(r, &contradicted);
         },
         |h| {
             let o = h.spot.take(&batch_id, &outcomes, settings);
@@ -312,6 +308,17 @@ pub fn spot_answer(
         trusted_added,
         trusted_error,
     })
+}
+
+/// File the contradicted items among the batch's held items. An item held before and admitted by a
+/// reviewer is in the pool again; its entry waits anew.
+fn file_held(r: &mut crate::store::BatchRecord, contradicted: &[HeldItem]) {
+    for h in contradicted {
+        match r.held.iter_mut().find(|x| x.id == h.id) {
+            Some(x) => *x = h.clone(),
+            None => r.held.push(h.clone()),
+        }
+    }
 }
 
 /// Note the chart that signalled on the answered batch's record (informational: the hold is in the

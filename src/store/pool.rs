@@ -184,7 +184,6 @@ impl Store {
     /// wrote it and the second's transaction retries on the first's write. `pool` changes the batch's
     /// pool entry in the same transaction (an answer that takes contradicted items out of the pool).
     #[allow(clippy::too_many_arguments)]
-    #[allow(clippy::too_many_arguments)]
     pub fn transition_with_history_unless(
         &self,
         batch_id: &str,
