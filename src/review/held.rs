@@ -140,6 +140,10 @@ pub struct HeldReport {
 /// Admit or drop held items (audited as `held_decision`; the pool entry is replaced in the same
 /// transaction, so the pool summary is rebuilt exactly).
 pub fn held_decide(env: &ReviewEnv<'_>, req: &HeldRequest) -> Result<HeldReport, ReviewError> {
+    super::retrying(|| held_decide_once(env, req))
+}
+
+fn held_decide_once(env: &ReviewEnv<'_>, req: &HeldRequest) -> Result<HeldReport, ReviewError> {
     require_reason(&req.reason)?;
     require_by(&req.by)?;
     let rec = get_batch(env.store, &req.batch)?;
@@ -219,16 +223,41 @@ pub fn held_decide(env: &ReviewEnv<'_>, req: &HeldRequest) -> Result<HeldReport,
         .detail(detail);
     let by = req.by.clone();
     let to = req.action.state();
-    let settled =
-        env.store
-            .transition(&rec.id, &[rec.state], rec.state, pool, vec![audit], |r| {
-                for h in r.held.iter_mut() {
-                    if h.state == HeldState::Waiting && chosen_set.contains(h.id.as_str()) {
-                        h.state = to;
-                        h.decided_by = by.clone();
-                    }
+    let seen = rec.pool_seq;
+    env.hooks.before_pool_edit(&rec.id);
+    // Prepared from the pool entry and the held items as read above: refused (and prepared again) when
+    // another request changed either meanwhile, so no decision overwrites another's.
+    let refuse = |r: &crate::store::BatchRecord| {
+        let still_waiting = r
+            .held
+            .iter()
+            .filter(|h| h.state == HeldState::Waiting && chosen_set.contains(h.id.as_str()))
+            .count();
+        super::pool_entry_moved(seen, r).or_else(|| {
+            (still_waiting != chosen_set.len()).then(|| {
+                format!(
+                    "{}: another reviewer decided some of these held items meanwhile",
+                    super::POOL_ENTRY_MOVED
+                )
+            })
+        })
+    };
+    let settled = env.store.transition_unless(
+        &rec.id,
+        &[rec.state],
+        rec.state,
+        pool,
+        vec![audit],
+        refuse,
+        |r| {
+            for h in r.held.iter_mut() {
+                if h.state == HeldState::Waiting && chosen_set.contains(h.id.as_str()) {
+                    h.state = to;
+                    h.decided_by = by.clone();
                 }
-            })?;
+            }
+        },
+    )?;
     if req.action != HeldAction::Drop {
         env.hooks.pool_changed();
     }

@@ -19,7 +19,12 @@
 //!
 //! A decision is one store transition ([`Store::transition`]) that checks the batch's current state
 //! inside the transaction, so of two reviewers deciding the same batch at once the second is refused
-//! ([`ReviewError::Refused`]) and nothing is released twice. Side effects follow the flushed transition:
+//! ([`ReviewError::Refused`]) and nothing is released twice. A change prepared from what a request read
+//! before its transaction — a spot-check answer taking contradicted items out of a batch's pool entry, a
+//! held-item decision putting items in — is written only if that entry (its pool sequence number) and the
+//! held items it decides are still as read ([`Store::transition_unless`]); otherwise it is prepared again
+//! from the store as it now is ([`retrying`]), so two requests on one batch never overwrite each other's
+//! change. Side effects follow the flushed transition:
 //! the file moves out of `quarantine/` (release → `accepted/`, reject and withdraw → `rejected/`, with its
 //! report), then the vendor notice is written (and recorded in the audit trail). The notice is stored with
 //! the decision, in the same transaction (an outbox), so if the process dies in between, the next review
@@ -192,6 +197,37 @@ pub trait ReviewHooks: Send + Sync {
     /// A long operation (the pool sweep) has done `done` of `total` units (items scored): for a progress
     /// display, directly or as progress lines on the admin channel. Called often; keep it cheap.
     fn progress(&self, _done: usize, _total: usize) {}
+    /// A request has read `batch`'s pool entry and held items and is about to write the change it
+    /// prepared from them (a spot-check answer, a held-item decision). Nothing to do in the daemon; a seam
+    /// where a test runs a second request at the worst moment.
+    fn before_pool_edit(&self, _batch: &str) {}
+}
+
+/// Why a change prepared from a batch's pool entry as read at sequence `seen` must not be written: the
+/// entry stored now is another (another request replaced or removed it meanwhile). Checked inside the
+/// store's transaction ([`Store::transition_unless`]), so of two requests that each read the entry before
+/// the other wrote it, the second is refused instead of overwriting the first's change; [`retrying`] then
+/// prepares it again from the entry as it now is.
+fn pool_entry_moved(seen: Option<u64>, r: &crate::store::BatchRecord) -> Option<String> {
+    (r.pool_seq != seen).then(|| POOL_ENTRY_MOVED.to_string())
+}
+
+const POOL_ENTRY_MOVED: &str =
+    "the batch's pool entry changed while this request was prepared (another review request on the \
+     same batch); nothing was changed";
+
+/// Run `op` again (up to three times in all) while the store refuses it because the batch's pool entry
+/// changed under it ([`pool_entry_moved`]); any other outcome is returned as it is.
+fn retrying<T>(mut op: impl FnMut() -> Result<T, ReviewError>) -> Result<T, ReviewError> {
+    let mut tries = 1;
+    loop {
+        match op() {
+            Err(ReviewError::Refused(why)) if why.contains(POOL_ENTRY_MOVED) && tries < 3 => {
+                tries += 1;
+            }
+            other => return other,
+        }
+    }
 }
 
 /// Hooks for a stopped daemon: nothing to tell (it catches up from the store at its next start).

@@ -167,6 +167,13 @@ pub fn spot_answer(
     env: &ReviewEnv<'_>,
     req: &SpotAnswerRequest,
 ) -> Result<SpotAnswered, ReviewError> {
+    super::retrying(|| spot_answer_once(env, req))
+}
+
+fn spot_answer_once(
+    env: &ReviewEnv<'_>,
+    req: &SpotAnswerRequest,
+) -> Result<SpotAnswered, ReviewError> {
     require_by(&req.by)?;
     let rec = get_batch(env.store, &req.batch)?;
     let check = rec
@@ -201,13 +208,15 @@ pub fn spot_answer(
     let batch_id = rec.id.clone();
     // Items in the pool whose label the experts contradicted leave it and wait for a reviewer.
     let (pool, contradicted) = contradicted_items(env, &rec, &check.items, &labels)?;
+    let entry_seq = rec.pool_seq;
+    env.hooks.before_pool_edit(&rec.id);
     let settled = env.store.transition_with_history_unless(
         &rec.id,
         &[rec.state],
         rec.state,
         pool,
         vec![audit],
-        answered_already,
+        |r| answered_already(r).or_else(|| super::pool_entry_moved(entry_seq, r)),
         |r| {
             if let Some(c) = r.spot_check.as_mut() {
                 c.answered = Some(SpotAnswers {

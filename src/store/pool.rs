@@ -178,6 +178,33 @@ impl Store {
         )
     }
 
+    /// [`Store::transition`] refused, inside the transaction, when `refuse` says why on the record as
+    /// stored ([`StoreError::Refused`]): a change prepared from what a request read before the transaction
+    /// (a batch's pool entry, its held items) is refused when another writer changed that meanwhile,
+    /// instead of overwriting the other's change.
+    #[allow(clippy::too_many_arguments)]
+    pub fn transition_unless(
+        &self,
+        batch_id: &str,
+        expect: &[BatchState],
+        to: BatchState,
+        pool: PoolChange,
+        audit: Vec<AuditRecord>,
+        refuse: impl Fn(&BatchRecord) -> Option<String>,
+        edit: impl Fn(&mut BatchRecord),
+    ) -> Result<BatchRecord, StoreError> {
+        self.transition_inner(
+            batch_id,
+            expect,
+            to,
+            pool,
+            audit,
+            &edit,
+            None,
+            Some(&refuse),
+        )
+    }
+
     /// [`Store::transition_with_history`] refused, inside the transaction, when `refuse` says why on the
     /// record as stored ([`StoreError::Refused`]): a change that must happen once (an answer to a spot
     /// check) cannot happen twice when two requests race, since each read the record before the other

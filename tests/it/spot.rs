@@ -342,10 +342,14 @@ fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted
 /// daemon stopped: the workspace, its folder, the batch id whose spot check waits, and the vendor's label
 /// of each item.
 fn one_spot_checked_batch(prefix: &str, seed: u64) -> (Ws, String, String, HashMap<String, usize>) {
+    one_spot_checked(prefix, clean_batch(&format!("{prefix}-"), 150, seed))
+}
+
+/// [`one_spot_checked_batch`] with the batch `b` (which must be accepted).
+fn one_spot_checked(prefix: &str, b: Batch) -> (Ws, String, String, HashMap<String, usize>) {
     let ws = Ws::new(&["sorter-co"]);
     let dir = ws.dir.display().to_string();
     let d = Daemon::start(&ws);
-    let b = clean_batch(&format!("{prefix}-"), 150, seed);
     ws.deliver("sorter-co", &format!("{prefix}.csv"), &b.csv());
     ws.wait_filed(1, T);
     drop(d);
@@ -552,4 +556,180 @@ fn a_contradicted_item_leaves_the_pool_and_waits_for_a_reviewer() {
     ]);
     let back = held_entry(&ok_json(&["quarantine", "held", &dir, "--json"])).expect("listed");
     assert_eq!(back["in_pool"].as_u64(), Some(in_pool_before), "{back}");
+}
+
+/// Calls `race` once, the first time a request is about to write the change it prepared from a batch's
+/// pool entry: the worst moment for a second request on the same batch.
+struct RaceAt<'a> {
+    fired: std::sync::atomic::AtomicBool,
+    race: &'a (dyn Fn() + Sync),
+}
+
+impl labelweir::review::ReviewHooks for RaceAt<'_> {
+    fn before_pool_edit(&self, _batch: &str) {
+        if !self.fired.swap(true, std::sync::atomic::Ordering::SeqCst) {
+            (self.race)();
+        }
+    }
+}
+
+/// Two review requests on one batch's pool entry at once lose neither change: a spot-check answer that
+/// takes a contradicted item out of the pool and a reviewer admitting a held item of the same batch, the
+/// second request run at the worst moment — when the first has read the entry and not yet written the
+/// change it prepared from it. The first's transaction sees the entry moved, is refused and prepared again
+/// from the entry as it now is. Without that check the overtaken request wrote back the entry it had read
+/// and the other's change was silently lost (checked by removing the check: every race then fails).
+#[derive(Clone, Copy, PartialEq)]
+enum Race {
+    /// The answer is overtaken by an admission.
+    AnswerByAdmission,
+    /// The admission is overtaken by the answer.
+    AdmissionByAnswer,
+    /// The admission is overtaken by a drop of the same item.
+    AdmissionByDrop,
+}
+
+fn race_on_one_pool_entry(race: Race) {
+    use labelweir::review::{self, Caller, HeldAction, HeldRequest, ReviewEnv, SpotAnswerRequest};
+    // 3 % flips: accepted, with its flagged items held back.
+    let b = uniform_flipped_batch("r0-", 150, 93, 0.03);
+    let (ws, dir, batch, labels) = one_spot_checked("r0", b);
+    let held = ok_json(&["quarantine", "held", &dir, "--json"]);
+    let waiting: Vec<String> = held
+        .as_array()
+        .and_then(|a| a.iter().find(|h| h["batch_id"] == batch.as_str()))
+        .and_then(|h| h["held"].as_array().cloned())
+        .unwrap_or_default()
+        .iter()
+        .filter(|h| h["state"] == "waiting")
+        .map(|h| h["id"].as_str().unwrap().to_string())
+        .collect();
+    let admitted = waiting.first().expect("a held item waits").clone();
+    let rows = spot_rows(&ws, &batch);
+    let (target, _) = rows
+        .iter()
+        .find(|(id, _)| !waiting.contains(id))
+        .expect("a picked item in the pool")
+        .clone();
+    let names = labelweir::scenario::class_names();
+    let expert = (labels[&target] + 1) % names.len();
+    let mut text = String::from("id,label\n");
+    for (id, _) in &rows {
+        let l = if *id == target { expert } else { labels[id] };
+        text.push_str(&format!("{id},{}\n", names[l]));
+    }
+
+    let config = labelweir::config::Config::from_workspace(&ws.dir).unwrap();
+    let store = labelweir::store::Store::open_workspace(&ws.dir, &config.store).unwrap();
+    let meta = store.workspace_meta().unwrap();
+    let place = labelweir::workspace::Workspace::new(&ws.dir);
+    let env = |hooks| ReviewEnv {
+        ws: &place,
+        config: &config,
+        store: &store,
+        meta: &meta,
+        hooks,
+        caller: Caller::default(),
+    };
+    let answer = |env: &ReviewEnv<'_>| {
+        let a = review::spot_answer(
+            env,
+            &SpotAnswerRequest {
+                batch: batch.clone(),
+                by: "expert-r".into(),
+                file_name: "answers.csv".into(),
+                content: text.clone(),
+            },
+        )
+        .expect("the answer");
+        assert_eq!(a.held_for_review, vec![target.clone()], "{a:?}");
+    };
+    let decide = |env: &ReviewEnv<'_>, action: HeldAction| {
+        review::held_decide(
+            env,
+            &HeldRequest {
+                batch: batch.clone(),
+                by: "reviewer-r".into(),
+                reason: "checked by hand".into(),
+                action,
+                items: vec![admitted.clone()],
+            },
+        )
+    };
+    let admit = |env: &ReviewEnv<'_>| {
+        let r = decide(env, HeldAction::Admit).expect("the admission");
+        assert_eq!(r.items, vec![admitted.clone()], "{r:?}");
+    };
+    let plain = env(&review::NoHooks);
+    let overtake = || match race {
+        Race::AnswerByAdmission => admit(&plain),
+        Race::AdmissionByAnswer => answer(&plain),
+        Race::AdmissionByDrop => {
+            decide(&plain, HeldAction::Drop).expect("the drop");
+        }
+    };
+    let hooks = RaceAt {
+        fired: std::sync::atomic::AtomicBool::new(false),
+        race: &overtake,
+    };
+    match race {
+        Race::AnswerByAdmission => answer(&env(&hooks)),
+        Race::AdmissionByAnswer => admit(&env(&hooks)),
+        Race::AdmissionByDrop => {
+            // Prepared again, the admission finds the item decided and says so; nothing enters the pool.
+            let e = decide(&env(&hooks), HeldAction::Admit).expect_err("refused");
+            assert!(e.to_string().contains("waiting for review"), "{e}");
+        }
+    }
+    assert!(hooks.fired.load(std::sync::atomic::Ordering::SeqCst));
+    let entry = store
+        .pool_entry_of(&batch)
+        .unwrap()
+        .expect("the batch is in the pool");
+    let rec = store.batch(&batch).unwrap().expect("the batch");
+    let state_of = |id: &str| rec.held.iter().find(|h| h.id == id).map(|h| h.state);
+    if race == Race::AdmissionByDrop {
+        assert!(
+            !entry.ids.contains(&admitted),
+            "a dropped item entered the pool"
+        );
+        assert_eq!(
+            state_of(&admitted),
+            Some(labelweir::store::HeldState::Dropped)
+        );
+        return;
+    }
+    assert!(
+        entry.ids.contains(&admitted),
+        "the admitted item is not in the pool"
+    );
+    assert!(
+        !entry.ids.contains(&target),
+        "the contradicted item is still in the pool"
+    );
+    assert_eq!(
+        state_of(&admitted),
+        Some(labelweir::store::HeldState::Admitted)
+    );
+    assert_eq!(
+        state_of(&target),
+        Some(labelweir::store::HeldState::Waiting)
+    );
+}
+
+#[test]
+fn a_spot_answer_overtaken_by_a_held_decision_on_its_batch_keeps_both() {
+    race_on_one_pool_entry(Race::AnswerByAdmission);
+}
+
+#[test]
+fn a_held_decision_overtaken_by_a_spot_answer_on_its_batch_keeps_both() {
+    race_on_one_pool_entry(Race::AdmissionByAnswer);
+}
+
+/// Two reviewers decide the same held item at once: the drop that overtakes an admission stands, and the
+/// item does not enter the pool behind it.
+#[test]
+fn an_admission_overtaken_by_a_drop_of_the_same_item_admits_nothing() {
+    race_on_one_pool_entry(Race::AdmissionByDrop);
 }
