@@ -750,6 +750,14 @@ fn print_decision(v: serde_json::Value, json: bool) -> anyhow::Result<()> {
         println!("    ... {} more (see --json)", d.relabeled.len() - 10);
     }
     print_skipped(&d);
+    if !d.held_waiting.is_empty() {
+        println!(
+            "  {} {} the experts contradicted stay out of the pool, waiting for a reviewer (quarantine held): {}",
+            d.held_waiting.len(),
+            plural(d.held_waiting.len(), "item", "items"),
+            sanitize(&d.held_waiting.join(", "))
+        );
+    }
     if !d.promoted.is_empty() {
         println!(
             "  promoted to the trusted set: {}",

@@ -62,6 +62,12 @@ pub struct DecisionReport {
     /// The confidence floor applied to proposed labels (release with `accept_proposed`).
     #[serde(default)]
     pub min_confidence: Option<f64>,
+    /// Items of a recalled batch that the experts' spot-check answers had taken out of the pool: a
+    /// release that neither relabels nor excludes them by name leaves them out, still waiting for a
+    /// reviewer (`quarantine held`, `quarantine admit`), instead of putting them back with the vendor's
+    /// label.
+    #[serde(default)]
+    pub held_waiting: Vec<String>,
 }
 
 /// A proposed label a release did not take because the engine was not confident enough in it.
@@ -96,6 +102,7 @@ impl DecisionReport {
             dry_run: false,
             skipped_weak: Vec::new(),
             min_confidence: None,
+            held_waiting: Vec::new(),
         }
     }
 }
@@ -172,6 +179,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         report.relabeled = plan.relabeled;
         report.skipped_weak = plan.skipped_weak;
         report.min_confidence = plan.min_confidence;
+        report.held_waiting = plan.waiting_ids.clone();
         report.promoted = plan.promote.iter().map(|&i| table.ids[i].clone()).collect();
         return Ok(report);
     }
@@ -183,6 +191,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     detail["exclude_flagged"] = serde_json::json!(req.exclude_flagged);
     detail["skipped_weak"] = serde_json::json!(plan.skipped_weak.len());
     detail["items_into_pool"] = serde_json::json!(n_pool);
+    detail["held_waiting"] = serde_json::json!(plan.waiting_ids);
     let audit = AuditRecord::new(&req.by, "release")
         .batch(&rec.id, &rec.vendor)
         .outcome(BatchState::Released.as_str())
@@ -199,6 +208,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     // hold is not stuck in cold start), in the same transaction as the release; a recalled batch was
     // counted there when it was accepted.
     let released = released_signals(&rec, &table, &plan).filter(|_| rec.recalled.is_none());
+    let waiting: HashSet<&str> = plan.waiting_ids.iter().map(String::as_str).collect();
     let policy = &env.config.policy;
     let settled = env.store.transition_with_history(
         &rec.id,
@@ -209,9 +219,10 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
         |r| {
             r.pending_notices.push(n.clone());
             // A recalled batch's items held back at its acceptance: this release decides every item
-            // (the plan above), so none stays waiting for `quarantine admit`, which would add it twice.
+            // (the plan above), so none stays waiting for `quarantine admit`, which would add it twice —
+            // but for the items the experts contradicted, which the plan leaves out and waiting.
             if r.recalled.is_some() {
-                r.held.clear();
+                r.held.retain(|h| waiting.contains(h.id.as_str()));
             }
         },
         |h| {
@@ -227,6 +238,7 @@ pub fn release(env: &ReviewEnv<'_>, req: &ReleaseRequest) -> Result<DecisionRepo
     report.relabeled = plan.relabeled.clone();
     report.skipped_weak = plan.skipped_weak.clone();
     report.min_confidence = plan.min_confidence;
+    report.held_waiting = plan.waiting_ids.clone();
     if !plan.promote.is_empty() {
         promote(env, req, &rec, &table, &plan, &mut report)?;
     }
@@ -276,6 +288,11 @@ struct ReleasePlan {
     skipped_weak: Vec<SkippedProposal>,
     /// The floor (with `accept_proposed`).
     min_confidence: Option<f64>,
+    /// Rows of a recalled batch that the experts contradicted (held, waiting) and that this release does
+    /// not name: out of the pool, still waiting.
+    waiting: HashSet<usize>,
+    /// Their ids, sorted.
+    waiting_ids: Vec<String>,
 }
 
 impl ReleasePlan {
@@ -283,7 +300,7 @@ impl ReleasePlan {
     fn pool_entry(&self, env: &ReviewEnv<'_>, rec: &BatchRecord, table: &Table) -> PoolEntry {
         let classes = Classes::from_labels(&env.meta.classes);
         let keep: Vec<usize> = (0..table.len())
-            .filter(|i| !self.excluded.contains(i))
+            .filter(|i| !self.excluded.contains(i) && !self.waiting.contains(i))
             .collect();
         PoolEntry {
             batch_id: rec.id.clone(),
@@ -364,6 +381,23 @@ fn plan_release(
             )));
         }
     }
+    // The items the experts contradicted while the batch was in the pool keep waiting for a reviewer,
+    // unless this release names them (a relabel or an exclusion is that reviewer's decision).
+    let mut waiting = HashSet::new();
+    if rec.recalled.is_some() {
+        for h in &rec.held {
+            if h.state != crate::store::HeldState::Waiting
+                || h.why != crate::store::HeldWhy::ExpertDisagreed
+            {
+                continue;
+            }
+            if let Some(&i) = index.get(h.id.as_str()) {
+                if !excluded.contains(&i) && !explicit.contains(&i) {
+                    waiting.insert(i);
+                }
+            }
+        }
+    }
     let mut skipped_weak = Vec::new();
     let proposals = if req.accept_proposed || req.exclude_flagged {
         proposals_for(env, rec, table)?
@@ -371,7 +405,11 @@ fn plan_release(
         Vec::new()
     };
     for (i, proposed, confidence) in proposals {
-        if excluded.contains(&i) || explicit.contains(&i) || labels[i] == proposed {
+        if excluded.contains(&i)
+            || explicit.contains(&i)
+            || waiting.contains(&i)
+            || labels[i] == proposed
+        {
             continue;
         }
         match min_confidence {
@@ -405,6 +443,8 @@ fn plan_release(
     }
     let mut excluded_ids: Vec<String> = excluded.iter().map(|&i| table.ids[i].clone()).collect();
     excluded_ids.sort();
+    let mut waiting_ids: Vec<String> = waiting.iter().map(|&i| table.ids[i].clone()).collect();
+    waiting_ids.sort();
     Ok(ReleasePlan {
         labels,
         excluded,
@@ -413,6 +453,8 @@ fn plan_release(
         promote,
         skipped_weak,
         min_confidence,
+        waiting,
+        waiting_ids,
     })
 }
 

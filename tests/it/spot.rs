@@ -733,3 +733,94 @@ fn a_held_decision_overtaken_by_a_spot_answer_on_its_batch_keeps_both() {
 fn an_admission_overtaken_by_a_drop_of_the_same_item_admits_nothing() {
     race_on_one_pool_entry(Race::AdmissionByDrop);
 }
+
+/// A batch that the experts' answers recalled and a reviewer then releases keeps the items those answers
+/// contradicted out of the pool, waiting in `quarantine held`, unless the release names them: before, the
+/// release put every item back with the vendor's label and forgot they were held.
+#[test]
+fn a_release_after_a_spot_check_recall_keeps_the_contradicted_items_waiting() {
+    let ws = Ws::new(&["sorter-co"]);
+    let dir = ws.dir.display().to_string();
+    let d = Daemon::start(&ws);
+    let mut vendor_labels = HashMap::new();
+    for w in 0..2u64 {
+        let b = clean_batch(&format!("v{w}-"), 150, 80 + w);
+        for (id, &l) in b.ids.iter().zip(&b.labels) {
+            vendor_labels.insert(id.clone(), l);
+        }
+        ws.deliver("sorter-co", &format!("v{w}.csv"), &b.csv());
+        ws.wait_filed(1 + w as usize, T);
+    }
+    let pending: Vec<String> = ok_json(&["spot-check", "list", &dir, "--json"])
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["batch_id"].as_str().unwrap().to_string())
+        .collect();
+    assert_eq!(pending.len(), 2);
+    let held_ids = |batch: &str| -> Vec<String> {
+        ok_json(&["quarantine", "held", &dir, "--json"])
+            .as_array()
+            .and_then(|a| a.iter().find(|h| h["batch_id"] == batch))
+            .and_then(|h| h["held"].as_array().cloned())
+            .unwrap_or_default()
+            .iter()
+            .filter(|h| h["state"] == "waiting")
+            .map(|h| h["id"].as_str().unwrap().to_string())
+            .collect()
+    };
+    let before = held_ids(&pending[0]);
+    let rows = spot_rows(&ws, &pending[0]);
+    let mut contradicted: Vec<String> = rows
+        .iter()
+        .map(|(id, _)| id.clone())
+        .filter(|id| !before.contains(id))
+        .collect();
+    contradicted.sort();
+    assert!(!contradicted.is_empty(), "picked items in the pool");
+    // Every picked label contradicted on both batches: the least-sure chart signals on the second and
+    // recalls both (see the test above for the arithmetic).
+    let k = labelweir::scenario::class_names().len();
+    for (i, b) in pending.iter().enumerate() {
+        let file = ws.path(&format!("answers-{i}.csv"));
+        std::fs::write(
+            &file,
+            answers(&spot_rows(&ws, b), &vendor_labels, |l| (l + 1) % k),
+        )
+        .unwrap();
+        answer_with(&ws, &dir, b, &std::fs::read(&file).unwrap(), "expert-v");
+    }
+    let q = ok_json(&["quarantine", "list", &dir, "--json"]);
+    assert!(
+        q.as_array()
+            .unwrap()
+            .iter()
+            .any(|e| e["batch_id"] == pending[0].as_str()),
+        "recalled: {q}"
+    );
+    let r = ok_json(&[
+        "quarantine",
+        "release",
+        &dir,
+        &pending[0],
+        "--by",
+        "reviewer-v",
+        "--reason",
+        "the rest looked right",
+        "--json",
+    ]);
+    let waiting: Vec<String> = r["held_waiting"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_str().unwrap().to_string())
+        .collect();
+    assert_eq!(waiting, contradicted, "{r}");
+    assert_eq!(
+        r["items_into_pool"].as_u64(),
+        Some(150 - contradicted.len() as u64),
+        "{r}"
+    );
+    assert_eq!(held_ids(&pending[0]), contradicted);
+    drop(d);
+}
