@@ -10,7 +10,9 @@
 //! summary then stands for 1,000,000 items: the pool enters scoring only through its summary), and a
 //! 1,000-item batch under 10 % uniform flips and 10 % region flips (the items nearest one centre relabelled
 //! to one grade; the systematic-bias setting of Zhang, Zhu & Wright, "Training Set Debugging Using Trusted
-//! Items", AAAI 2018). Reported: the median scoring time, the summary's memory, convergence, AUROC of the
+//! Items", AAAI 2018). Reported: the median scoring time (and the first run's, which also pays for the
+//! trusted set's own cross-validation; the engine remembers it for the batches after), the summary's
+//! memory, convergence (in every run, or from the second on), AUROC of the
 //! suspicions against the planted flips (Hanley & McNeil 1982), and — where the exact dense computation
 //! is affordable — its agreement with the Kronecker-factored one on the same problem (Spearman's ρ of the
 //! suspicions and the share of the top 20).
@@ -76,12 +78,19 @@ pub struct ScaleRow {
     pub summary_fit_ms: f64,
     /// Median scoring time of the 1,000-item batch, milliseconds.
     pub median_ms: f64,
+    /// The first run's scoring time, milliseconds: the first batch against this trusted set in the
+    /// process, which also pays for the trusted set's own cross-validation (remembered for the batches
+    /// after it).
+    pub first_ms: f64,
     /// Timing repetitions.
     pub repeats: usize,
     /// Bytes held by the summary.
     pub summary_bytes: usize,
     /// Every solve converged and the time budget held, in every run of the case.
     pub converged: bool,
+    /// The same in every run after the first (what a workspace sees from its second batch against one
+    /// trusted set on).
+    pub converged_after_first: bool,
     /// AUROC under 10 % uniform flips.
     pub auroc_uniform: Option<f64>,
     /// AUROC under 10 % region flips.
@@ -254,19 +263,25 @@ pub fn run_case(opts: &ScaleOptions, d: usize, k: usize) -> Result<ScaleRow, Mod
     let repeats = if opts.quick { 1 } else { 3 };
     let mut times = Vec::with_capacity(repeats);
     let mut ok = true;
+    let mut ok_after_first = true;
     let mut notes = Vec::new();
     let mut uniform = None;
-    for _ in 0..repeats {
+    for rep in 0..repeats {
         let (a, ms) = prob.assess(settings, k, &summary, &prob.uniform.0)?;
         times.push(ms);
         ok &= converged(&a);
+        if rep > 0 {
+            ok_after_first &= converged(&a);
+        }
         notes.extend(a.convergence.notes.iter().cloned());
         uniform = Some(a);
     }
+    let first_ms = times[0];
     times.sort_by(f64::total_cmp);
     let uniform = uniform.expect("at least one repetition");
     let (region, _) = prob.assess(settings, k, &summary, &prob.region.0)?;
     ok &= converged(&region);
+    ok_after_first &= converged(&region);
     notes.extend(region.convergence.notes.iter().cloned());
     notes.sort();
     notes.dedup();
@@ -289,9 +304,11 @@ pub fn run_case(opts: &ScaleOptions, d: usize, k: usize) -> Result<ScaleRow, Mod
         pool_items: summary.n,
         summary_fit_ms,
         median_ms: times[times.len() / 2],
+        first_ms,
         repeats,
         summary_bytes: summary.memory_bytes(),
         converged: ok,
+        converged_after_first: ok_after_first,
         auroc_uniform: auroc(&suspicions(&uniform), &prob.uniform.1),
         auroc_region: auroc(&suspicions(&region), &prob.region.1),
         agreement,
@@ -356,15 +373,20 @@ fn render_row(r: &ScaleRow) -> String {
         },
     );
     format!(
-        "d {:>5} K {:>3} p*K {:>6} {:<9} median {:>8.0} ms  summary {:>7.1} MB (fit {:.1} s)  converged {:<3}  AUROC uniform {} region {}  vs dense: {}",
+        "d {:>5} K {:>3} p*K {:>6} {:<9} median {:>8.0} ms (first {:.0} ms)  summary {:>7.1} MB (fit {:.1} s)  converged {:<3}  AUROC uniform {} region {}  vs dense: {}",
         r.features,
         r.classes,
         r.params,
         r.curvature,
         r.median_ms,
+        r.first_ms,
         r.summary_bytes as f64 / 1e6,
         r.summary_fit_ms / 1e3,
-        if r.converged { "yes" } else { "no" },
+        match (r.converged, r.converged_after_first) {
+            (true, _) => "yes",
+            (false, true) => "from the 2nd batch",
+            (false, false) => "no",
+        },
         opt(r.auroc_uniform),
         opt(r.auroc_region),
         agree
