@@ -23,7 +23,7 @@
 //! before its transaction — a spot-check answer taking contradicted items out of a batch's pool entry, a
 //! held-item decision putting items in — is written only if that entry (its pool sequence number) and the
 //! held items it decides are still as read ([`Store::transition_unless`]); otherwise it is prepared again
-//! from the store as it now is ([`retrying`]), so two requests on one batch never overwrite each other's
+//! from the store as it now is (up to three times), so two requests on one batch never overwrite each other's
 //! change. Side effects follow the flushed transition:
 //! the file moves out of `quarantine/` (release → `accepted/`, reject and withdraw → `rejected/`, with its
 //! report), then the vendor notice is written (and recorded in the audit trail). The notice is stored with
