@@ -234,12 +234,7 @@ fn held_decide_once(env: &ReviewEnv<'_>, req: &HeldRequest) -> Result<HeldReport
             .filter(|h| h.state == HeldState::Waiting && chosen_set.contains(h.id.as_str()))
             .count();
         super::pool_entry_moved(seen, r).or_else(|| {
-            (still_waiting != chosen_set.len()).then(|| {
-                format!(
-                    "{}: another reviewer decided some of these held items meanwhile",
-                    super::POOL_ENTRY_MOVED
-                )
-            })
+            (still_waiting != chosen_set.len()).then(|| super::HELD_ITEMS_MOVED.to_string())
         })
     };
     let settled = env.store.transition_unless(

@@ -216,13 +216,21 @@ const POOL_ENTRY_MOVED: &str =
     "the batch's pool entry changed while this request was prepared (another review request on the \
      same batch); nothing was changed";
 
-/// Run `op` again (up to three times in all) while the store refuses it because the batch's pool entry
-/// changed under it ([`pool_entry_moved`]); any other outcome is returned as it is.
+/// Why a held-item decision prepared from the held items as read must not be written: another reviewer
+/// decided some of the same items meanwhile.
+const HELD_ITEMS_MOVED: &str =
+    "some of these held items were decided while this request was prepared (another reviewer); nothing \
+     was changed";
+
+/// Run `op` again (up to three times in all) while the store refuses it because what it was prepared
+/// from changed under it ([`pool_entry_moved`], [`HELD_ITEMS_MOVED`]); any other outcome is returned as
+/// it is.
 fn retrying<T>(mut op: impl FnMut() -> Result<T, ReviewError>) -> Result<T, ReviewError> {
+    let stale = |why: &str| why.contains(POOL_ENTRY_MOVED) || why.contains(HELD_ITEMS_MOVED);
     let mut tries = 1;
     loop {
         match op() {
-            Err(ReviewError::Refused(why)) if why.contains(POOL_ENTRY_MOVED) && tries < 3 => {
+            Err(ReviewError::Refused(why)) if stale(&why) && tries < 3 => {
                 tries += 1;
             }
             other => return other,

@@ -38,6 +38,43 @@ fn spot_rows(ws: &Ws, batch: &str) -> Vec<(String, String)> {
         .collect()
 }
 
+/// An answer file for the picked `rows` in which the experts give the first picked item not among `held`
+/// (so still in the pool) another class and every other item the vendor's label; that item and the file.
+fn contradict_one(
+    rows: &[(String, String)],
+    held: &[String],
+    vendor: &HashMap<String, usize>,
+) -> (String, String) {
+    let (target, _) = rows
+        .iter()
+        .find(|(id, _)| !held.contains(id))
+        .expect("a picked item in the pool")
+        .clone();
+    let names = labelweir::scenario::class_names();
+    let expert = (vendor[&target] + 1) % names.len();
+    let mut text = String::from("id,label\n");
+    for (id, _) in rows {
+        let l = if *id == target { expert } else { vendor[id] };
+        text.push_str(&format!("{id},{}\n", names[l]));
+    }
+    (target, text)
+}
+
+/// Deliver `n` clean 150-item batches (`{prefix}{w}.csv`, seeds from `seed`) to `sorter-co` and wait for
+/// each verdict; the vendor's label of every delivered item.
+fn deliver_clean(ws: &Ws, prefix: &str, n: u64, seed: u64) -> HashMap<String, usize> {
+    let mut labels = HashMap::new();
+    for w in 0..n {
+        let b = clean_batch(&format!("{prefix}{w}-"), 150, seed + w);
+        for (id, &l) in b.ids.iter().zip(&b.labels) {
+            labels.insert(id.clone(), l);
+        }
+        ws.deliver("sorter-co", &format!("{prefix}{w}.csv"), &b.csv());
+        ws.wait_filed(1 + w as usize, T);
+    }
+    labels
+}
+
 /// An answer file: each picked item with `label_of(vendor's label index)`.
 fn answers(
     rows: &[(String, String)],
@@ -63,15 +100,7 @@ fn disagreeing_spot_checks_recall_their_run_hold_the_vendor_and_grow_the_trusted
         .matches("\"trusted-")
         .count();
     assert!(trusted_items_at_init > 0);
-    let mut vendor_labels = HashMap::new();
-    for w in 0..3u64 {
-        let b = clean_batch(&format!("s{w}-"), 150, 60 + w);
-        for (id, &l) in b.ids.iter().zip(&b.labels) {
-            vendor_labels.insert(id.clone(), l);
-        }
-        ws.deliver("sorter-co", &format!("s{w}.csv"), &b.csv());
-        ws.wait_filed(1 + w as usize, T);
-    }
+    let vendor_labels = deliver_clean(&ws, "s", 3, 60);
     // Every accepted batch waits for the experts, with 4 least-sure and 4 random items and a file
     // without the vendor's labels.
     let list = ok_json(&["spot-check", "list", &dir, "--json"]);
@@ -490,21 +519,9 @@ fn a_contradicted_item_leaves_the_pool_and_waits_for_a_reviewer() {
     let in_pool_before = before.as_ref().map_or(150 - held_before.len() as u64, |h| {
         h["in_pool"].as_u64().unwrap()
     });
-    let rows = spot_rows(&ws, &batch);
-    // The first picked item still in the pool gets another class from the experts; the rest, the vendor's.
-    let (target, _) = rows
-        .iter()
-        .find(|(id, _)| !held_before.contains(id))
-        .expect("a picked item in the pool")
-        .clone();
-    let k = labelweir::scenario::class_names().len();
+    let (target, text) = contradict_one(&spot_rows(&ws, &batch), &held_before, &labels);
     let names = labelweir::scenario::class_names();
-    let expert = (labels[&target] + 1) % k;
-    let mut text = String::from("id,label\n");
-    for (id, _) in &rows {
-        let l = if *id == target { expert } else { labels[id] };
-        text.push_str(&format!("{id},{}\n", names[l]));
-    }
+    let expert = (labels[&target] + 1) % names.len();
     let a = answer_with(&ws, &dir, &batch, text.as_bytes(), "expert-c");
     assert_eq!(a["disagreed"].as_u64(), Some(1), "{a}");
     assert_eq!(a["held_for_review"], serde_json::json!([target]), "{a}");
@@ -605,19 +622,7 @@ fn race_on_one_pool_entry(race: Race) {
         .map(|h| h["id"].as_str().unwrap().to_string())
         .collect();
     let admitted = waiting.first().expect("a held item waits").clone();
-    let rows = spot_rows(&ws, &batch);
-    let (target, _) = rows
-        .iter()
-        .find(|(id, _)| !waiting.contains(id))
-        .expect("a picked item in the pool")
-        .clone();
-    let names = labelweir::scenario::class_names();
-    let expert = (labels[&target] + 1) % names.len();
-    let mut text = String::from("id,label\n");
-    for (id, _) in &rows {
-        let l = if *id == target { expert } else { labels[id] };
-        text.push_str(&format!("{id},{}\n", names[l]));
-    }
+    let (target, text) = contradict_one(&spot_rows(&ws, &batch), &waiting, &labels);
 
     let config = labelweir::config::Config::from_workspace(&ws.dir).unwrap();
     let store = labelweir::store::Store::open_workspace(&ws.dir, &config.store).unwrap();
@@ -742,15 +747,7 @@ fn a_release_after_a_spot_check_recall_keeps_the_contradicted_items_waiting() {
     let ws = Ws::new(&["sorter-co"]);
     let dir = ws.dir.display().to_string();
     let d = Daemon::start(&ws);
-    let mut vendor_labels = HashMap::new();
-    for w in 0..2u64 {
-        let b = clean_batch(&format!("v{w}-"), 150, 80 + w);
-        for (id, &l) in b.ids.iter().zip(&b.labels) {
-            vendor_labels.insert(id.clone(), l);
-        }
-        ws.deliver("sorter-co", &format!("v{w}.csv"), &b.csv());
-        ws.wait_filed(1 + w as usize, T);
-    }
+    let vendor_labels = deliver_clean(&ws, "v", 2, 80);
     let pending: Vec<String> = ok_json(&["spot-check", "list", &dir, "--json"])
         .as_array()
         .unwrap()
